@@ -1,0 +1,21 @@
+from pathlib import Path
+
+from snakemake.utils import min_version
+
+min_version("9.0")
+
+
+configfile: str(Path(workflow.basedir) / "config" / "workflow.yaml")
+
+
+include: "rules/common.smk"
+include: "rules/validate.smk"
+include: "rules/behaviour.smk"
+include: "rules/regime.smk"
+include: "rules/evaluate.smk"
+include: "rules/report.smk"
+
+
+rule all:
+    input:
+        final_outputs(),

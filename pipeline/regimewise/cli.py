@@ -1,0 +1,165 @@
+"""Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema``.
+
+``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
+folder as its working directory; ``check`` validates a protocol and its records without writing anything.
+Errors a user can fix print one line (what, where, how to fix) and exit with status 1; ``--debug`` shows
+the traceback or the full workflow log.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import subprocess
+import sys
+import traceback
+from pathlib import Path
+
+from . import __version__
+from .errors import UserInputError
+from .protocol import export_schema, load_protocol
+from .stages import ERROR_PREFIX
+
+REPOSITORY = Path(__file__).resolve().parents[2]
+SNAKEFILE = REPOSITORY / "Snakefile"
+DEMO_PROTOCOL = REPOSITORY / "config" / "protocol.yaml"
+CAUTION = (
+    "Research use only: not medical advice. Treatment decisions stay with licensed clinicians, "
+    "under local law and with ethics approval."
+)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="regimewise", description=__doc__.splitlines()[0])
+    parser.add_argument("--version", action="version", version=f"regimewise {__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks and the full workflow log")
+    commands = parser.add_subparsers(dest="command", required=True)
+
+    demo = commands.add_parser("demo", help="run the whole analysis on the invented demo cohort")
+    _add_run_options(demo, default_out="results/demo")
+
+    run = commands.add_parser("run", help="run the whole analysis for a protocol")
+    run.add_argument("protocol", help="protocol YAML file")
+    _add_run_options(run, default_out=None)
+
+    check = commands.add_parser("check", help="validate a protocol and its records; write nothing")
+    check.add_argument("protocol", help="protocol YAML file")
+
+    simulate = commands.add_parser("simulate", help="write an invented cohort from the demo scenario's simulator")
+    simulate.add_argument("--out", required=True, help="folder for decisions.csv, episodes.csv, truth.json")
+    simulate.add_argument("--episodes", type=int, default=3000)
+    simulate.add_argument("--seed", type=int, default=20261201)
+    simulate.add_argument("--strength", type=float, default=1.0, help="hidden-confounding strength (0 = none)")
+
+    schema = commands.add_parser("schema", help="write the protocol's JSON Schema")
+    schema.add_argument("--out", default="config/protocol.schema.json")
+    return parser
+
+
+def _add_run_options(parser, default_out):
+    parser.add_argument("--out", default=default_out, help="results folder (default: results/<run_name>)")
+    parser.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return COMMANDS[args.command](args)
+    except UserInputError as err:
+        if args.debug:
+            traceback.print_exc()
+        print(ERROR_PREFIX + " ".join(str(err).split()), file=sys.stderr)
+        return 1
+
+
+# ---------------------------------------------------------------------------------------------- commands
+def cmd_demo(args) -> int:
+    return _run_workflow(DEMO_PROTOCOL, args)
+
+
+def cmd_run(args) -> int:
+    return _run_workflow(Path(args.protocol), args)
+
+
+def cmd_check(args) -> int:
+    from .validate import validate_records
+
+    pf = load_protocol(args.protocol)
+    summary = validate_records(pf).summary
+    print(
+        f"{pf.path.name}: protocol valid; {summary['rows_kept']} decisions in {summary['episodes']} episodes "
+        f"({summary['patients']} patients) pass validation."
+    )
+    return 0
+
+
+def cmd_simulate(args) -> int:
+    from .simulate import write_cohort
+
+    if args.episodes < 1:
+        raise UserInputError("--episodes must be at least 1")
+    write_cohort(args.out, n_episodes=args.episodes, seed=args.seed, confounding_strength=args.strength)
+    print(f"wrote an invented cohort of {args.episodes} episodes to {args.out} (demo use only)")
+    return 0
+
+
+def cmd_schema(args) -> int:
+    export_schema(args.out)
+    print(f"wrote {args.out}")
+    return 0
+
+
+COMMANDS = {"demo": cmd_demo, "run": cmd_run, "check": cmd_check, "simulate": cmd_simulate, "schema": cmd_schema}
+
+
+# ---------------------------------------------------------------------------------------------- workflow
+def _run_workflow(protocol: Path, args) -> int:
+    if not SNAKEFILE.is_file():
+        raise UserInputError(
+            f"workflow files not found beside the package ({SNAKEFILE}); install regimewise from a checkout "
+            "with `pip install -e .`"
+        )
+    if args.cores < 1:
+        raise UserInputError("--cores must be at least 1")
+    pf = load_protocol(protocol)
+    out = Path(args.out or f"results/{pf.protocol.study.run_name}").resolve()
+    out.mkdir(parents=True, exist_ok=True)
+    workflow_log = out / "logs" / "workflow.log"
+    workflow_log.parent.mkdir(parents=True, exist_ok=True)
+    command = [
+        sys.executable, "-m", "snakemake",
+        "--snakefile", str(SNAKEFILE),
+        "--directory", str(out),
+        "--cores", str(args.cores),
+        "--rerun-incomplete",
+        "--config", f"protocol={pf.path}", "results=.", "logs=logs", "benchmarks=benchmarks",
+    ]  # fmt: skip
+    print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
+    print(CAUTION)
+    with open(workflow_log, "w", encoding="utf-8") as handle:
+        finished = subprocess.run(command, stdout=handle, stderr=subprocess.STDOUT, env=_workflow_env(), check=False)
+    if finished.returncode != 0:
+        if args.debug:
+            print(workflow_log.read_text(encoding="utf-8"), file=sys.stderr)
+        raise UserInputError(_first_stage_error(workflow_log) or f"the workflow failed; see {workflow_log}")
+    print(f"report:  {out / 'report' / 'report.html'}")
+    print(f"summary: {out / 'report' / 'summary.json'}")
+    return 0
+
+
+def _workflow_env() -> dict:
+    env = dict(os.environ)
+    env.setdefault("PYTHONHASHSEED", "0")
+    return env
+
+
+def _first_stage_error(workflow_log: Path) -> str | None:
+    """The first one-line error a stage printed, without the prefix."""
+    for line in workflow_log.read_text(encoding="utf-8", errors="replace").splitlines():
+        if line.startswith(ERROR_PREFIX):
+            return line[len(ERROR_PREFIX):]
+    return None
+
+
+if __name__ == "__main__":
+    sys.exit(main())

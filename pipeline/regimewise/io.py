@@ -1,0 +1,125 @@
+"""Reading tables and writing artifacts whole or not at all.
+
+Every artifact is written to a temporary name in its destination folder and renamed into place, so a crash
+never leaves a half-written file under a final name. JSON is written with sorted keys and a fixed float
+representation so identical inputs give identical bytes.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import UserInputError
+
+
+@contextmanager
+def atomic_path(path: str | Path):
+    """Yield a temporary path beside ``path``; rename it onto ``path`` only if the block succeeds."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp)
+    try:
+        yield tmp
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def write_text(path: str | Path, text: str) -> None:
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8", newline="\n")
+
+
+def write_bytes(path: str | Path, data: bytes) -> None:
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(data)
+
+
+def to_jsonable(value):
+    """Convert numpy scalars/arrays, tuples and non-finite floats into plain JSON values (NaN/inf -> null)."""
+    if isinstance(value, dict):
+        return {str(k): to_jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [to_jsonable(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [to_jsonable(v) for v in value.tolist()]
+    if isinstance(value, (np.bool_, bool)):
+        return bool(value)
+    if isinstance(value, (np.integer, int)):
+        return int(value)
+    if isinstance(value, (np.floating, float)):
+        value = float(value)
+        return value if math.isfinite(value) else None
+    if isinstance(value, Path):
+        return str(value)
+    return value
+
+
+def dumps_json(obj) -> str:
+    return json.dumps(to_jsonable(obj), indent=2, sort_keys=True, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def write_json(path: str | Path, obj) -> None:
+    write_text(path, dumps_json(obj))
+
+
+def read_json(path: str | Path):
+    return json.loads(Path(path).read_text(encoding="utf-8"))
+
+
+def write_parquet(path: str | Path, frame: pd.DataFrame) -> None:
+    """Write a DataFrame to Parquet atomically (no index; deterministic for the same pyarrow version)."""
+    with atomic_path(path) as tmp:
+        frame.to_parquet(tmp, index=False, engine="pyarrow", compression="zstd")
+
+
+def read_parquet(path: str | Path) -> pd.DataFrame:
+    return pd.read_parquet(path, engine="pyarrow")
+
+
+def read_table(path: str | Path, what: str) -> pd.DataFrame:
+    """Read a CSV or Parquet table named in the protocol, with a clear error when it cannot be read.
+
+    CSV columns are read as text first would lose nothing, but typed reading is what users expect; numeric
+    parsing problems are reported by validation, so columns are parsed by pandas' default inference.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise UserInputError(f"{what} file {path} not found; check data.{what} in the protocol")
+    suffix = path.suffix.lower()
+    try:
+        if suffix in {".parquet", ".pq"}:
+            frame = pd.read_parquet(path, engine="pyarrow")
+        elif suffix in {".csv", ".txt"}:
+            frame = pd.read_csv(path, encoding="utf-8-sig", low_memory=False)
+        else:
+            raise UserInputError(f"{what} file {path}: unknown format {suffix!r}; use .csv or .parquet")
+    except UserInputError:
+        raise
+    except pd.errors.EmptyDataError:
+        raise UserInputError(f"{what} file {path} is empty; it needs a header row and at least one record") from None
+    except (ValueError, OSError, UnicodeDecodeError) as err:
+        raise UserInputError(f"{what} file {path} cannot be read ({' '.join(str(err).split())[:200]})") from None
+    if frame.empty:
+        raise UserInputError(f"{what} file {path} has a header but no records")
+    return frame
+
+
+def sha256_file(path: str | Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()

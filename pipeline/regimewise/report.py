@@ -1,0 +1,176 @@
+"""The report stage: one self-contained report.html, summary.json and the provenance appendix.
+
+The report opens with the cautions, then the protocol, the validation counts, the usual-care model, the
+learned regime in words, the value table and the provenance. Figures are inline SVG (no external assets)
+drawn without timestamps so identical inputs give identical bytes. Counts from 1 to
+``report.min_cell_count - 1`` are shown as ``<min_cell_count``.
+"""
+
+from __future__ import annotations
+
+import io as _io
+from importlib import resources
+
+import jinja2
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+
+from .io import read_json, write_json, write_text  # noqa: E402
+from .protocol import load_protocol  # noqa: E402
+from .provenance import provenance  # noqa: E402
+
+CAUTIONS = (
+    "Research use only. This report describes a statistical analysis of historical records; it is not medical "
+    "advice and must not be used to treat any patient.",
+    "Any strategy shown here is a hypothesis to be studied, not a recommendation. Treatment decisions stay with "
+    "licensed clinicians, who know the patient, and follow local law, regulations and ethics approval.",
+    "The estimates assume that every reason clinicians had for their choices is recorded in the data (no "
+    "unmeasured confounding), that usual care gave every compared action a real chance, and that the models "
+    "are adequate. None of these can be proven from the records alone.",
+)
+
+SUMMARY_SCHEMA_VERSION = "1"
+
+
+def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance_out, **_unused):
+    """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
+    pf = load_protocol(protocol)
+    p = pf.protocol
+    parts = {
+        "validation": read_json(validation),
+        "behaviour": read_json(behaviour),
+        "regime": read_json(regime),
+        "values": read_json(values),
+    }
+    prov = provenance(pf)
+    headline = build_summary(p, parts, prov)
+    write_json(provenance_out, prov)
+    write_json(summary, headline)
+    write_text(html, render_html(p, parts, prov, headline))
+
+
+# ---------------------------------------------------------------------------------------------- summary.json
+def build_summary(p, parts, prov) -> dict:
+    """Every headline number, keyed as documented in the README (section 'summary.json')."""
+    values = parts["values"]
+    return {
+        "schema_version": SUMMARY_SCHEMA_VERSION,
+        "study": {"title": p.study.title, "version": p.study.version, "run_name": p.study.run_name},
+        "caution": CAUTIONS[0],
+        "cohort": {
+            "episodes": parts["validation"]["episodes"],
+            "patients": parts["validation"]["patients"],
+            "decisions": parts["validation"]["rows_kept"],
+        },
+        "usual_care_model": {
+            "auc": parts["behaviour"]["auc"],
+            "converged": parts["behaviour"]["model"]["converged"],
+            "inverse_probability_weights": parts["behaviour"]["inverse_probability_weights"],
+        },
+        "regime": {
+            "support_threshold": parts["regime"]["constraints"]["support_threshold"],
+            "decisions_changed_by_support": parts["regime"]["decisions_changed_by_support"],
+            "share_differs_from_taken": parts["regime"]["share_differs_from_taken"],
+        },
+        "values": {r["name"]: r["estimates"] for r in values["regimes"]},
+        "usual_care_observed": values["usual_care_observed"],
+        "contrasts": values["contrasts"],
+        "minimum_reliable_ess": values["minimum_reliable_ess"],
+        "protocol_sha256": prov["protocol"]["sha256"],
+        "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
+        "root_seed": prov["root_seed"],
+    }
+
+
+# ---------------------------------------------------------------------------------------------- figures
+def _svg(fig) -> str:
+    buffer = _io.StringIO()
+    fig.savefig(buffer, format="svg", metadata={"Date": None}, bbox_inches="tight")
+    plt.close(fig)
+    text = buffer.getvalue()
+    return text[text.index("<svg") :]
+
+
+def _style():
+    plt.rcParams.update(
+        {"svg.hashsalt": "regimewise", "svg.fonttype": "none", "font.size": 9, "axes.spines.top": False,
+         "axes.spines.right": False}
+    )  # fmt: skip
+
+
+def actions_by_step_figure(labels, by_step) -> str:
+    """Share of each action recommended (learned regime) and taken (usual care) at each decision point."""
+    _style()
+    steps = sorted(by_step, key=int)
+    fig, axes = plt.subplots(1, 2, figsize=(8.5, 3.0), sharey=True)
+    for ax, key, title in zip(axes, ("taken", "recommended"), ("Usual care (taken)", "Learned regime (recommended)")):
+        bottom = [0.0] * len(steps)
+        for label in labels:
+            share = [by_step[s][key][label] / by_step[s]["decisions"] for s in steps]
+            ax.bar([int(s) for s in steps], share, bottom=bottom, label=label, edgecolor="white", linewidth=0.5)
+            bottom = [b + v for b, v in zip(bottom, share)]
+        ax.set_title(title)
+        ax.set_xlabel("decision point")
+    axes[0].set_ylabel("share of decisions")
+    axes[1].legend(loc="center left", bbox_to_anchor=(1.0, 0.5), frameon=False)
+    return _svg(fig)
+
+
+def value_figure(regimes, estimators) -> str:
+    """Point estimate of each regime's value by each estimator (hollow markers: effective sample too small)."""
+    _style()
+    fig, ax = plt.subplots(figsize=(6.5, 0.45 * len(regimes) + 1.0))
+    markers = {"pdwis": "o", "wdr": "s"}
+    for j, est in enumerate(estimators):
+        for i, r in enumerate(regimes):
+            e = r["estimates"].get(est)
+            if e is None or e["value"] is None:
+                continue
+            y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * 0.25
+            face = "none" if e["low_ess"] else f"C{j}"
+            ax.plot([e["value"]], [y], markers.get(est, "o"), color=f"C{j}", markerfacecolor=face,
+                    label=est if i == 0 else None)  # fmt: skip
+    ax.set_yticks(range(len(regimes)), [r["label"] for r in reversed(regimes)])
+    ax.set_xlabel("estimated value (expected total reward per episode)")
+    ax.legend(frameon=False, loc="lower right")
+    return _svg(fig)
+
+
+# ---------------------------------------------------------------------------------------------- html
+def cell_count(n, threshold):
+    """Small-cell rule: counts 1..threshold-1 are shown as '<threshold' (common practice, no source)."""
+    n = int(n)
+    return f"<{threshold}" if 0 < n < threshold else f"{n:,}"
+
+
+def _number(x, digits=3):
+    return "—" if x is None else f"{x:,.{digits}f}"
+
+
+def render_html(p, parts, prov, headline) -> str:
+    environment = jinja2.Environment(
+        loader=jinja2.FunctionLoader(lambda name: resources.files("regimewise").joinpath("templates", name).read_text()),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    environment.filters["cell"] = lambda n: cell_count(n, p.report.min_cell_count)
+    environment.filters["num"] = _number
+    environment.filters["pct"] = lambda x: "—" if x is None else f"{100 * x:.1f}%"
+    template = environment.get_template("report.html")
+    regime = parts["regime"]
+    return template.render(
+        p=p,
+        cautions=CAUTIONS,
+        validation=parts["validation"],
+        behaviour=parts["behaviour"],
+        regime=regime,
+        values=parts["values"],
+        prov=prov,
+        summary=headline,
+        actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
+        value_figure=value_figure(parts["values"]["regimes"], p.evaluation.estimators),
+    )

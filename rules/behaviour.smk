@@ -1,0 +1,16 @@
+# ---- behaviour: the usual-care model, its probabilities and diagnostics ---------------------------------
+rule behaviour:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+    output:
+        proba=results("behaviour/behaviour_proba.parquet"),
+        diagnostics=results("behaviour/behaviour.json"),
+    log:
+        logs("behaviour"),
+    benchmark:
+        benchmarks("behaviour")
+    params:
+        code=stage_code_hash("behaviour"),
+    script:
+        "scripts/run_stage.py"

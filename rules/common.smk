@@ -1,0 +1,24 @@
+# ---- settings shared by every stage: validated once, at parse time -------------------------------------
+from regimewise.workflow import load_settings, stage_code_hash
+
+SETTINGS = load_settings(config)
+
+
+def results(path):
+    return path if SETTINGS.results == "." else f"{SETTINGS.results}/{path}"
+
+
+def logs(name):
+    return f"{SETTINGS.logs}/{name}.log"
+
+
+def benchmarks(name):
+    return f"{SETTINGS.benchmarks}/{name}.tsv"
+
+
+def record_inputs():
+    return SETTINGS.record_inputs
+
+
+def final_outputs():
+    return [results("report/report.html"), results("report/summary.json")]

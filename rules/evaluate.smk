@@ -1,0 +1,17 @@
+# ---- evaluate: off-policy values of the learned regime, usual care and fixed strategies -----------------
+rule evaluate:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+        table=results("regime/recommendations.parquet"),
+    output:
+        values=results("evaluate/values.json"),
+    log:
+        logs("evaluate"),
+    benchmark:
+        benchmarks("evaluate")
+    params:
+        code=stage_code_hash("evaluate"),
+    script:
+        "scripts/run_stage.py"

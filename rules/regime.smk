@@ -1,0 +1,17 @@
+# ---- regime: constrained fitted-Q iteration --------------------------------------------------------------
+rule regime:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+    output:
+        table=results("regime/recommendations.parquet"),
+        regime=results("regime/regime.json"),
+    log:
+        logs("regime"),
+    benchmark:
+        benchmarks("regime")
+    params:
+        code=stage_code_hash("regime"),
+    script:
+        "scripts/run_stage.py"

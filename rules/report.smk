@@ -1,0 +1,22 @@
+# ---- report: one self-contained HTML file, summary.json and the provenance appendix ---------------------
+rule report:
+    input:
+        unpack(record_inputs),
+        validation=results("validate/validation.json"),
+        decisions=results("validate/decisions.parquet"),
+        behaviour=results("behaviour/behaviour.json"),
+        regime=results("regime/regime.json"),
+        table=results("regime/recommendations.parquet"),
+        values=results("evaluate/values.json"),
+    output:
+        html=results("report/report.html"),
+        summary=results("report/summary.json"),
+        provenance=results("report/appendix/provenance.json"),
+    log:
+        logs("report"),
+    benchmark:
+        benchmarks("report")
+    params:
+        code=stage_code_hash("report"),
+    script:
+        "scripts/run_stage.py"

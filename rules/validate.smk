@@ -1,0 +1,16 @@
+# ---- validate: records against the data contract and the protocol ---------------------------------------
+rule validate:
+    input:
+        unpack(record_inputs),
+    output:
+        decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
+        summary=results("validate/validation.json"),
+    log:
+        logs("validate"),
+    benchmark:
+        benchmarks("validate")
+    params:
+        code=stage_code_hash("validate"),
+    script:
+        "scripts/run_stage.py"

@@ -1,0 +1,127 @@
+"""Validation of the decisions table: clean records pass, and each defect is named precisely."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from pydantic import ValidationError
+from tiny import tiny_decisions, write_tiny
+
+from regimewise.errors import DataValidationError, UserInputError
+from regimewise.protocol import load_protocol
+from regimewise.validate import _failing_rows, decision_rules, row_model, validate_records
+
+
+def test_clean_records_pass_and_are_sorted_and_typed(tmp_path):
+    frame = tiny_decisions().sample(frac=1.0, random_state=1)  # shuffled rows
+    result = validate_records(load_protocol(write_tiny(tmp_path, decisions=frame)))
+    d = result.decisions
+    assert list(d.columns) == ["episode_id", "patient_id", "step", "day", "bp", "flag", "action", "reward"]
+    assert d["step"].dtype == np.int64 and d["bp"].dtype == np.float64
+    assert (d.groupby("episode_id")["step"].apply(list) == pd.Series([[0, 1, 2]] * 40, index=d["episode_id"].unique())).all()
+    assert result.summary["episodes"] == 40 and result.summary["patients"] == 20
+    assert result.summary["rows_kept"] == 120
+    assert sum(result.summary["actions"].values()) == 120
+    assert list(result.episodes.columns) == ["episode_id", "patient_id", "n_decisions"]
+
+
+def _corrupt(change):
+    frame = tiny_decisions()
+    change(frame)
+    return frame
+
+
+def _set(row, column, value):
+    def change(frame):
+        frame[column] = frame[column].astype(object)
+        frame.loc[row, column] = value
+
+    return change
+
+
+# (change, rule expected, the 1-based data row named, the column named)
+DEFECTS = {
+    "missing column": (lambda f: f.drop(columns=["bp"], inplace=True), "missing_column", None, "bp"),
+    "text in a numeric state": (_set(4, "bp", "high"), "number", 5, "bp"),
+    "state above its plausible range": (_set(7, "bp", 300.0), "number", 8, "bp"),
+    "binary state not 0/1": (_set(2, "flag", 2), "whole_number", 3, "flag"),
+    "unknown action label": (_set(5, "action", "double"), "action_label", 6, "action"),
+    "missing state value": (_set(9, "bp", np.nan), "missing_value", 10, "bp"),
+    "missing action": (_set(3, "action", np.nan), "missing_value", 4, "action"),
+    "infinite reward": (_set(11, "reward", np.inf), "number", 12, "reward"),
+    "fractional step": (_set(1, "step", 1.5), "whole_number", 2, "step"),
+    "step beyond the horizon": (_set(2, "step", 3), "whole_number", 3, "step"),
+    "negative day": (_set(0, "day", -4), "whole_number", 1, "day"),
+    "duplicate decision": (_set(1, "step", 0), "duplicate_decision", 2, "step"),
+    "gap in steps": (_set(5, "step", 1), "duplicate_decision", 6, "step"),
+    "day goes backwards": (_set(2, "day", 1), "day_order", 3, "day"),
+    "two patients in one episode": (_set(1, "patient_id", "P999"), "patient_per_episode", 1, "patient_id"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(DEFECTS))
+def test_each_defect_is_named(tmp_path, case):
+    change, rule, row, column = DEFECTS[case]
+    path = write_tiny(tmp_path, decisions=_corrupt(change))
+    with pytest.raises(DataValidationError) as info:
+        validate_records(load_protocol(path))
+    message = str(info.value)
+    assert "\n" not in message
+    assert "decisions.csv" in message
+    assert f"[rule {rule}]" in message
+    assert f"column {column!r}" in message
+    if row is not None:
+        assert f"row {row}:" in message or f"row {row}," in message
+
+
+def test_step_sequence_must_start_at_zero(tmp_path):
+    frame = tiny_decisions()
+    frame = frame[~((frame["episode_id"] == "E005") & (frame["step"] == 0))]
+    with pytest.raises(DataValidationError, match=r"expected step 0.*\[rule step_sequence\]"):
+        validate_records(load_protocol(write_tiny(tmp_path, decisions=frame)))
+
+
+def test_empty_and_header_only_files(tmp_path):
+    path = write_tiny(tmp_path)
+    (tmp_path / "decisions.csv").write_text("", encoding="utf-8")
+    with pytest.raises(UserInputError, match="is empty"):
+        validate_records(load_protocol(path))
+    (tmp_path / "decisions.csv").write_text("episode_id,patient_id,step,day,bp,flag,action,reward\n")
+    with pytest.raises(UserInputError, match="header but no records"):
+        validate_records(load_protocol(path))
+
+
+def test_missing_decisions_file(tmp_path):
+    path = write_tiny(tmp_path)
+    (tmp_path / "decisions.csv").unlink()
+    with pytest.raises(UserInputError, match="not found"):
+        validate_records(load_protocol(path))
+
+
+# The pydantic row model and the vectorised check come from the same field rules; they must agree on every
+# value (property-based test with hypothesis).
+@settings(max_examples=60, deadline=None)
+@given(
+    bp=st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.text(max_size=5), st.integers(-10, 400)),
+    flag=st.one_of(st.integers(-2, 3), st.floats(-1, 2)),
+    action=st.sampled_from(["hold", "up", "down", "sideways", ""]),
+)
+def test_row_model_agrees_with_vectorised_check(tmp_path_factory, bp, flag, action):
+    path = write_tiny(tmp_path_factory.mktemp("p"))
+    rules = decision_rules(load_protocol(path))
+    frame = tiny_decisions(n_episodes=1).iloc[[0]].astype(object)
+    frame.iloc[0, frame.columns.get_loc("bp")] = bp
+    frame.iloc[0, frame.columns.get_loc("flag")] = flag
+    frame.iloc[0, frame.columns.get_loc("action")] = action
+    vectorised_bad = any(_failing_rows(frame, rule)[0] for rule in rules)
+    record = {f"c{i}": (None if isinstance(v := frame[r.column].iat[0], float) and np.isnan(v) else v)
+              for i, r in enumerate(rules)}
+    try:
+        row_model(rules).model_validate(record)
+        model_bad = False
+    except ValidationError:
+        model_bad = True
+    assert vectorised_bad == model_bad

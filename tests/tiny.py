@@ -1,0 +1,61 @@
+"""A tiny valid protocol with made-up records, for tests (not a real or realistic study)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import yaml
+
+REPOSITORY = Path(__file__).resolve().parents[1]
+
+
+def tiny_protocol_dict(decisions="decisions.csv", episodes=None) -> dict:
+    """A minimal protocol: two states, three actions, horizon 3 (the data are made up for tests)."""
+    return {
+        "study": {"title": "Tiny test study", "question": "Does the test pass?", "version": "0.1", "run_name": "tiny"},
+        "data": {"decisions": decisions, "episodes": episodes},
+        "states": [
+            {"name": "bp", "label": "Pressure", "kind": "continuous", "unit": "mmHg", "plausible_range": [70, 250]},
+            {"name": "flag", "label": "A flag", "kind": "binary", "plausible_range": [0, 1]},
+        ],
+        "actions": [
+            {"label": "hold", "description": "keep"},
+            {"label": "up", "description": "increase"},
+            {"label": "down", "description": "decrease"},
+        ],
+        "reward": {"description": "made-up reward"},
+        "horizon": 3,
+        "seed": 7,
+    }
+
+
+def tiny_decisions(n_episodes=40, seed=0) -> pd.DataFrame:
+    """A valid decisions table for the tiny protocol."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for e in range(n_episodes):
+        for t in range(3):
+            rows.append(
+                {
+                    "episode_id": f"E{e:03d}",
+                    "patient_id": f"P{e // 2:03d}",
+                    "step": t,
+                    "day": 90 * t + int(rng.integers(0, 5)),
+                    "bp": round(float(rng.normal(140, 15)), 1),
+                    "flag": int(rng.integers(0, 2)),
+                    "action": ["hold", "up", "down"][int(rng.integers(0, 3))],
+                    "reward": round(float(rng.normal()), 3),
+                }
+            )
+    return pd.DataFrame(rows)
+
+
+def write_tiny(folder: Path, protocol=None, decisions=None) -> Path:
+    """Write a tiny protocol and decisions file into folder; return the protocol path."""
+    folder.mkdir(parents=True, exist_ok=True)
+    (decisions if decisions is not None else tiny_decisions()).to_csv(folder / "decisions.csv", index=False)
+    path = folder / "protocol.yaml"
+    path.write_text(yaml.safe_dump(protocol or tiny_protocol_dict(), sort_keys=False), encoding="utf-8")
+    return path
