@@ -16,7 +16,7 @@ def benchmarks(name):
     return f"{SETTINGS.benchmarks}/{name}.tsv"
 
 
-def record_inputs():
+def record_inputs(wildcards):
     return SETTINGS.record_inputs
 
 

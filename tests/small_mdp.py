@@ -3,7 +3,7 @@
 Everything here is written out in tables and solved by exact backward induction with numpy, independently
 of the package: it is the external yardstick for fitted-Q iteration, fitted-Q evaluation and the
 importance-sampling estimators (Puterman 1994, Markov Decision Processes, ch. 4, finite-horizon backward
-induction).
+induction; chapter cited from memory).
 
 The process has three states, three actions and three decision steps. After the action at step t the
 process moves to one of the three states or ends (outcome index ``END``); an episode also ends after the
@@ -76,7 +76,7 @@ def _continuation(transition_t, v_next):
 
 
 def backward_induction(transition, reward_mean, gamma=1.0, permitted=None, fallback=None):
-    """Exact optimal Q, V and policy by backward induction (Puterman 1994, section 4.5).
+    """Exact optimal Q, V and policy by backward induction (Puterman 1994, ch. 4).
 
     ``permitted`` (H, S, K) restricts the maximisation; a state with no permitted action takes
     ``fallback[t, s]``.

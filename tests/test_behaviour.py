@@ -10,7 +10,10 @@ import statsmodels.api as sm
 from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import roc_auc_score
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
 
+from regimewise import behaviour
 from regimewise.behaviour import MultinomialLogitBehaviour, multiclass_auc, probability_of_taken
 from regimewise.errors import ConvergenceWarning, StatisticalWarning, UserInputError
 from regimewise.weighting import (
@@ -47,8 +50,10 @@ def _unpenalised_sklearn_logit():
 
 def test_multinomial_probabilities_equal_sklearn(anes, anes_model):
     X, pid, _ = anes
-    reference = _unpenalised_sklearn_logit().fit(X.to_numpy(), pid)
-    # Reference: scikit-learn's unpenalised multinomial LogisticRegression (lbfgs) on the same design.
+    # Reference: scikit-learn's unpenalised multinomial LogisticRegression (lbfgs) on the same design. Its columns
+    # are standardised first so lbfgs converges fast; an unpenalised fit's probabilities do not change under an
+    # affine rescaling of the covariates.
+    reference = make_pipeline(StandardScaler(), _unpenalised_sklearn_logit()).fit(X.to_numpy(), pid)
     np.testing.assert_allclose(anes_model.predict_proba(X), reference.predict_proba(X.to_numpy()), atol=1e-5)
 
 
@@ -223,15 +228,30 @@ def test_ipw_mean_difference_cluster_sandwich_by_hand():
     assert result.n_clusters == 60
 
 
-def test_quasi_separation_falls_back_to_bfgs_with_a_warning():
+def test_quasi_separation_warns_and_saturates():
     x = np.linspace(-1.0, 1.0, 60).reshape(-1, 1)
     action = np.where(x[:, 0] > 0.5, 2, np.random.default_rng(0).integers(0, 2, 60))
-    with pytest.warns(ConvergenceWarning, match="refitted with BFGS"):
+    with pytest.warns(ConvergenceWarning, match="did not converge"):
         model = MultinomialLogitBehaviour().fit(x, action, n_actions=3)
     proba = model.predict_proba(x)
-    assert model.method_ == "bfgs"
+    assert np.isfinite(model.llf_)
     np.testing.assert_allclose(proba.sum(axis=1), 1.0, atol=1e-12)
-    # Under quasi-separation the fitted probabilities of the separated action tend to 0 and 1
-    # (Albert & Anderson 1984, Biometrika 71:1): action 2 exactly where x > 0.5.
+    # Under quasi-separation the maximum-likelihood estimate diverges and the fitted probabilities of the
+    # separated action tend to 0 and 1 (Albert & Anderson 1984, Biometrika 71:1): action 2 exactly where x > 0.5.
     assert proba[x[:, 0] > 0.5, 2].min() > 0.99
     assert proba[x[:, 0] < 0.4, 2].max() < 0.01
+
+
+def test_newton_breakdown_falls_back_to_bfgs(anes, anes_model, monkeypatch):
+    X, pid, _ = anes
+    run = behaviour._run_mnlogit
+
+    def newton_breaks(design, endog, method, maxiter):
+        return None if method == "newton" else run(design, endog, method, maxiter)
+
+    monkeypatch.setattr(behaviour, "_run_mnlogit", newton_breaks)
+    with pytest.warns(ConvergenceWarning, match="refitted with BFGS"):
+        model = MultinomialLogitBehaviour(maxiter=2000).fit(X, pid, n_actions=7)
+    assert model.method_ == "bfgs"
+    # Reference: the Newton fit above (itself equal to statsmodels MNLogit); BFGS stops at a looser gradient.
+    np.testing.assert_allclose(model.predict_proba(X), anes_model.predict_proba(X), atol=1e-3)

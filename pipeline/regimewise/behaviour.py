@@ -34,7 +34,7 @@ def _as_design(X, what="X"):
         raise UserInputError(f"{what} must be a non-empty 2-D array (rows = decisions); got shape {values.shape}")
     if not np.all(np.isfinite(values)):
         bad = sorted({names[j] if names else str(j) for j in np.where(~np.isfinite(values))[1]})
-        raise UserInputError(f"{what} has missing or infinite values in column(s) {', '.join(bad)}; impute or drop them")
+        raise UserInputError(f"{what} has missing or infinite values in column(s) {', '.join(bad)}; impute or drop")
     return values, names
 
 
@@ -47,9 +47,12 @@ def _as_actions(action, n_actions, n_rows=None):
         raise UserInputError(f"action must be 1-D (one code per decision); got shape {values.shape}")
     if n_rows is not None and values.shape[0] != n_rows:
         raise UserInputError(f"action has {values.shape[0]} entries but the covariates have {n_rows} rows")
-    codes = values.astype(int) if values.dtype.kind in "biuf" else None
-    if codes is None or not np.array_equal(codes, values) or codes.min(initial=0) < 0 or codes.max(initial=0) >= n_actions:
-        raise UserInputError(f"action must hold integer codes 0..{int(n_actions) - 1}; map action labels to codes first")
+    message = f"action must hold integer codes 0..{int(n_actions) - 1}; map action labels to codes first"
+    if values.dtype.kind not in "biuf" or not np.all(np.isfinite(values)):
+        raise UserInputError(message)
+    codes = values.astype(int)
+    if not np.array_equal(codes, values) or codes.min(initial=0) < 0 or codes.max(initial=0) >= n_actions:
+        raise UserInputError(message)
     return codes
 
 
@@ -73,8 +76,16 @@ def _run_mnlogit(design, endog, method, maxiter):
             result = sm.MNLogit(endog, design).fit(method=method, maxiter=maxiter, disp=0, skip_hessian=True)
         except np.linalg.LinAlgError:
             return None
-    finite = np.all(np.isfinite(result.params)) and np.isfinite(result.llf)
-    return result if finite else None
+    return result if np.all(np.isfinite(result.params)) else None
+
+
+def _log_proba(design, params):
+    """Log-probabilities of the reference class and the others, computed stably in log space.
+
+    ``design`` includes the constant column; ``params`` has one column per non-reference class.
+    """
+    linear = np.column_stack([np.zeros(design.shape[0]), design @ params])
+    return log_softmax(linear, axis=1)
 
 
 def _breakdown_message(reason):
@@ -186,26 +197,31 @@ class MultinomialLogitBehaviour:
         varying = scale > 0
         design = sm.add_constant((values[:, varying] - mean[varying]) / scale[varying], has_constant="add")
         self._check_rank(design)
-        result = self._fit_mnlogit(design, np.searchsorted(self.classes_, codes))
-        self.params_ = self._unscale(np.asarray(result.params), mean, scale)
+        endog = np.searchsorted(self.classes_, codes)
+        result = self._fit_mnlogit(design, endog)
+        params = np.asarray(result.params)
+        # statsmodels' llf overflows to nan when probabilities saturate; compute it in log space instead.
+        llf = float(_log_proba(design, params)[np.arange(endog.size), endog].sum())
+        if llf > _SEPARATION_LLF:
+            raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
+        self.params_ = self._unscale(params, mean, scale)
         self.converged_ = bool(result.mle_retvals.get("converged", True))
         self.n_iter_ = result.mle_retvals.get("iterations")
-        self.llf_ = float(result.llf)
+        self.llf_ = llf
         self._warn_fit_problems()
         return self
 
     def predict_proba(self, X):
         """Probability of every action, shape (n, n_actions_), columns in action-code order."""
         if not hasattr(self, "params_"):
-            raise NotFittedError("this MultinomialLogitBehaviour is not fitted yet; call fit(X, action, n_actions) first")
+            raise NotFittedError("this MultinomialLogitBehaviour is not fitted yet; call fit(X, action, n_actions)")
         values, names = _as_design(X)
         if values.shape[1] != self.n_features_in_:
             raise UserInputError(f"X has {values.shape[1]} columns but the model was fitted on {self.n_features_in_}")
         if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
             raise UserInputError("X has different column names or order than at fit; pass the same design columns")
         proba = np.zeros((values.shape[0], self.n_actions_))
-        linear = np.column_stack([np.zeros(values.shape[0]), self.params_[0] + values @ self.params_[1:]])
-        proba[:, self.classes_] = np.exp(log_softmax(linear, axis=1))
+        proba[:, self.classes_] = np.exp(_log_proba(np.column_stack([np.ones(len(values)), values]), self.params_))
         return proba
 
     def _fit_mnlogit(self, design, endog):
@@ -217,8 +233,6 @@ class MultinomialLogitBehaviour:
             result = _run_mnlogit(design, endog, "bfgs", self.maxiter)
         if result is None:
             raise UserInputError(_breakdown_message("singular Hessian or non-finite estimates"))
-        if result.llf > _SEPARATION_LLF:
-            raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
         return result
 
     def _warn_fit_problems(self):

@@ -45,6 +45,32 @@ class StateScaler:
         return {"names": list(self.names), "means": list(self.means), "scales": list(self.scales)}
 
 
+@dataclass(frozen=True)
+class QFeatures:
+    """Covariates of the Q-model: scaled states, plus the squares of non-binary states for a quadratic basis.
+
+    The Q-model stays linear in its parameters (least squares per decision point and action, i.e. full
+    action-by-covariate interactions); squares let it bend, e.g. for a reward penalising distance from a target.
+    """
+
+    scaler: StateScaler
+    squared: tuple[int, ...]
+
+    @classmethod
+    def from_protocol(cls, scaler: StateScaler, protocol: Protocol) -> QFeatures:
+        quadratic = protocol.q_model.basis == "quadratic"
+        squared = tuple(i for i, s in enumerate(protocol.states) if quadratic and s.kind != "binary")
+        return cls(scaler, squared)
+
+    def transform(self, frame: pd.DataFrame) -> np.ndarray:
+        states = self.scaler.transform(frame)
+        return np.column_stack([states, states[:, list(self.squared)] ** 2]) if self.squared else states
+
+    @property
+    def names(self) -> list[str]:
+        return list(self.scaler.names) + [f"{self.scaler.names[i]}^2" for i in self.squared]
+
+
 def behaviour_design(scaler: StateScaler, frame: pd.DataFrame, horizon: int, include_step: bool) -> np.ndarray:
     """Covariates of the usual-care model: the scaled states and, if asked, the decision index / horizon."""
     states = scaler.transform(frame)

@@ -486,7 +486,9 @@ class FittedQEvaluation(_BackwardQModel):
         q = self.q_values(X, step)
         action = check_codes(action, "action", self.n_actions)
         if action.shape[0] != q.shape[0]:
-            raise UserInputError(f"action has {action.shape[0]} values for {q.shape[0]} decisions; pass one per decision.")
+            raise UserInputError(
+                f"action has {action.shape[0]} values for {q.shape[0]} decisions; pass one per decision."
+            )
         v = _policy_average(q, check_proba(target_proba, q.shape[0], self.n_actions, "target_proba"))
         return q[np.arange(q.shape[0]), action], v
 

@@ -278,7 +278,7 @@ def doubly_robust(weights, q_taken, v_target, gamma=1.0):
     """Doubly robust estimator for sequential decisions (Jiang & Li 2016), per-decision form.
 
     V = Σ_t γ^t Σ_i [w_{i,t} r_{i,t} − (w_{i,t} Q̂_t(s_{i,t}, a_{i,t}) − w_{i,t−1} V̂_t(s_{i,t}))] with
-    w_{i,t} = ρ_{i,t}/n and w_{i,−1} = 1/n (the form of Thomas & Brunskill 2016, section 4). With Q̂ ≡ 0 it is
+    w_{i,t} = ρ_{i,t}/n and w_{i,−1} = 1/n (the form given by Thomas & Brunskill 2016). With Q̂ ≡ 0 it is
     per-decision importance sampling.
 
     Parameters

@@ -118,6 +118,9 @@ class QModelSpec(_Strict):
     """Model of the action-value function at each decision point."""
 
     kind: Literal["linear"] = Field("linear", description="least squares with action-by-state interactions")
+    basis: Literal["linear", "quadratic"] = Field(
+        "linear", description="quadratic adds the square of every non-binary state to the covariates"
+    )
     ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] = 0.0
 
 
@@ -132,7 +135,7 @@ class Constraints(_Strict):
 class EvaluationSpec(_Strict):
     """Off-policy evaluation settings."""
 
-    estimators: Annotated[list[Literal["pdwis", "wdr"]], Field(min_length=1)] = ["pdwis", "wdr"]
+    estimators: Annotated[list[Literal["pdwis", "wdr", "fqe"]], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
     fixed_strategies: bool = Field(True, description="also evaluate 'always <action>' for every action")
 
     @model_validator(mode="after")

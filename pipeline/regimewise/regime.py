@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from .behaviour import MultinomialLogitBehaviour
-from .features import StateScaler, action_codes, behaviour_design, episode_codes
+from .features import QFeatures, StateScaler, action_codes, behaviour_design, episode_codes
 from .fqi import FittedQIteration
 from .protocol import Protocol
 
@@ -41,18 +41,19 @@ class LearnedRegime:
     """A deterministic regime: the permitted action with the largest fitted Q-value."""
 
     usual_care: UsualCareModel
+    q_features: QFeatures
     fqi: FittedQIteration
     action_labels: tuple[str, ...]
 
     def q_values(self, frame: pd.DataFrame) -> np.ndarray:
-        return self.fqi.q_values(self.usual_care.scaler.transform(frame), frame["step"].to_numpy(dtype=np.int64))
+        return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
 
     def recommend(self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None) -> np.ndarray:
         """Recommended action codes; usual-care probabilities are estimated unless given."""
         if behaviour_proba is None:
             behaviour_proba = self.usual_care.predict_proba(frame)
         steps = frame["step"].to_numpy(dtype=np.int64)
-        return self.fqi.recommend(self.usual_care.scaler.transform(frame), steps, behaviour_proba)
+        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba)
 
     def __call__(self, frame: pd.DataFrame) -> np.ndarray:
         return self.recommend(frame)
@@ -70,7 +71,7 @@ def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareMode
 
 
 def fit_q_learning(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, scaler: StateScaler
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures
 ) -> FittedQIteration:
     """Backward fitted-Q iteration on the decisions, constrained by usual-care support."""
     return FittedQIteration(
@@ -80,7 +81,7 @@ def fit_q_learning(
         support_threshold=protocol.constraints.support_threshold,
         alpha=protocol.q_model.ridge_alpha,
     ).fit(
-        scaler.transform(decisions),
+        features.transform(decisions),
         decisions["step"].to_numpy(dtype=np.int64),
         action_codes(decisions, protocol.action_labels),
         decisions["reward"].to_numpy(dtype=float),
@@ -93,5 +94,6 @@ def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
     """Fit usual care, then the constrained regime, on validated decisions sorted by episode and step."""
     usual_care = fit_usual_care(decisions, protocol)
     proba = usual_care.predict_proba(decisions)
-    fqi = fit_q_learning(decisions, proba, protocol, usual_care.scaler)
-    return LearnedRegime(usual_care, fqi, protocol.action_labels)
+    features = QFeatures.from_protocol(usual_care.scaler, protocol)
+    fqi = fit_q_learning(decisions, proba, protocol, features)
+    return LearnedRegime(usual_care, features, fqi, protocol.action_labels)

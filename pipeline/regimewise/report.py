@@ -19,7 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 
 from .io import read_json, write_json, write_text  # noqa: E402
 from .protocol import load_protocol  # noqa: E402
-from .provenance import provenance  # noqa: E402
+from .provenance import provenance as build_provenance  # noqa: E402
 
 CAUTIONS = (
     "Research use only. This report describes a statistical analysis of historical records; it is not medical "
@@ -34,7 +34,7 @@ CAUTIONS = (
 SUMMARY_SCHEMA_VERSION = "1"
 
 
-def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance_out, **_unused):
+def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
     pf = load_protocol(protocol)
     p = pf.protocol
@@ -44,9 +44,9 @@ def report_stage(protocol, validation, behaviour, regime, values, html, summary,
         "regime": read_json(regime),
         "values": read_json(values),
     }
-    prov = provenance(pf)
+    prov = build_provenance(pf)
     headline = build_summary(p, parts, prov)
-    write_json(provenance_out, prov)
+    write_json(provenance, prov)
     write_json(summary, headline)
     write_text(html, render_html(p, parts, prov, headline))
 
@@ -122,8 +122,9 @@ def value_figure(regimes, estimators) -> str:
     """Point estimate of each regime's value by each estimator (hollow markers: effective sample too small)."""
     _style()
     fig, ax = plt.subplots(figsize=(6.5, 0.45 * len(regimes) + 1.0))
-    markers = {"pdwis": "o", "wdr": "s"}
+    markers = {"pdwis": "o", "wdr": "s", "fqe": "D"}
     for j, est in enumerate(estimators):
+        labelled = False
         for i, r in enumerate(regimes):
             e = r["estimates"].get(est)
             if e is None or e["value"] is None:
@@ -131,7 +132,8 @@ def value_figure(regimes, estimators) -> str:
             y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * 0.25
             face = "none" if e["low_ess"] else f"C{j}"
             ax.plot([e["value"]], [y], markers.get(est, "o"), color=f"C{j}", markerfacecolor=face,
-                    label=est if i == 0 else None)  # fmt: skip
+                    label=None if labelled else est)  # fmt: skip
+            labelled = True
     ax.set_yticks(range(len(regimes)), [r["label"] for r in reversed(regimes)])
     ax.set_xlabel("estimated value (expected total reward per episode)")
     ax.legend(frameon=False, loc="lower right")

@@ -54,8 +54,8 @@ same noise for every regime; usual care draws its actions from its own stream of
 
 References
 ----------
-Glasserman, P. (2004). *Monte Carlo Methods in Financial Engineering*, section 4.2 (common random
-numbers for comparing systems). Springer.
+Glasserman, P. (2004). *Monte Carlo Methods in Financial Engineering*, ch. 4 (variance reduction,
+including common random numbers for comparing systems). Springer. (Chapter recalled from memory.)
 """
 
 from __future__ import annotations
@@ -64,7 +64,6 @@ import argparse
 import json
 import os
 import sys
-import tempfile
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -687,7 +686,7 @@ def true_returns(regime, n=100_000, seed=0, confounding_strength=1.0, gamma=1.0,
     """Per-episode discounted return when every decision follows ``regime``.
 
     Common random numbers: for one seed the baseline population and every noise draw are the same whatever
-    the regime, so ``true_returns(a) - true_returns(b)`` is a paired difference (Glasserman 2004, 4.2).
+    the regime, so ``true_returns(a) - true_returns(b)`` is a paired difference (Glasserman 2004, ch. 4).
     ``true_returns("usual_care", n, seed)`` equals the returns of ``simulate_cohort(n, seed)``.
 
     Parameters
@@ -776,13 +775,13 @@ def _format_table(frame):
 def _write_text_atomic(path, text):
     """Write ``text`` to ``path`` whole or not at all (temporary file in the same folder, then rename)."""
     path = Path(path)
-    handle, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
-        with os.fdopen(handle, "w", encoding="utf-8", newline="\n") as stream:
+        with open(tmp, "w", encoding="utf-8", newline="\n") as stream:
             stream.write(text)
         os.replace(tmp, path)
     except BaseException:
-        Path(tmp).unlink(missing_ok=True)
+        tmp.unlink(missing_ok=True)
         raise
 
 

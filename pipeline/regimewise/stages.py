@@ -16,10 +16,12 @@ import pandas as pd
 
 from .behaviour import multiclass_auc, probability_of_taken
 from .errors import UserInputError
-from .features import StateScaler, action_codes
-from .io import read_json, read_parquet, write_json, write_parquet
+from .evaluate import evaluate_all
+from .features import QFeatures, StateScaler, action_codes
+from .io import read_parquet, write_json, write_parquet
 from .protocol import load_protocol
 from .regime import fit_q_learning, fit_usual_care
+from .report import report_stage
 from .validate import validate_records
 from .weighting import inverse_probability_weights, weight_summary
 
@@ -105,22 +107,22 @@ def regime_stage(protocol, decisions, proba, table, regime):
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
-    scaler = StateScaler.fit(frame, p)
-    fqi = fit_q_learning(frame, probabilities, p, scaler)
+    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p)
+    fqi = fit_q_learning(frame, probabilities, p, features)
     steps = frame["step"].to_numpy(dtype=np.int64)
-    features = scaler.transform(frame)
-    q = fqi.q_values(features, steps)
-    recommended = fqi.recommend(features, steps, probabilities)
+    X = features.transform(frame)
+    q = fqi.q_values(X, steps)
+    recommended = fqi.recommend(X, steps, probabilities)
     labels = np.asarray(p.action_labels)
     out = frame[["episode_id", "step", "action"]].copy()
     out["recommended"] = labels[recommended]
     out[[f"q_{a}" for a in p.action_labels]] = q
     out[[f"permitted_{a}" for a in p.action_labels]] = probabilities >= p.constraints.support_threshold
     write_parquet(table, out)
-    write_json(regime, regime_summary(p, frame, fqi, scaler, recommended, probabilities))
+    write_json(regime, regime_summary(p, frame, fqi, features, recommended, probabilities))
 
 
-def regime_summary(p, frame, fqi, scaler, recommended, probabilities) -> dict:
+def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
     """The constraints in force, what they changed, and recommended versus taken actions by step."""
     taken = action_codes(frame, p.action_labels)
     labels = p.action_labels
@@ -142,12 +144,24 @@ def regime_summary(p, frame, fqi, scaler, recommended, probabilities) -> dict:
         "by_step": by_step,
         "q_model": {
             "kind": p.q_model.kind,
+            "basis": p.q_model.basis,
             "ridge_alpha": p.q_model.ridge_alpha,
-            "covariates": ["intercept", *scaler.names],
+            "covariates": ["intercept", *features.names],
             "coefficients": np.asarray(fqi.coef_).tolist(),
-            "scaler": scaler.to_dict(),
+            "scaler": features.scaler.to_dict(),
         },
     }
+
+
+# ---------------------------------------------------------------------------------------------- evaluate
+def evaluate_stage(protocol, decisions, proba, table, values):
+    """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    recommended = action_codes(
+        read_parquet(table).rename(columns={"action": "taken", "recommended": "action"}), p.action_labels
+    )
+    write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), recommended, p))
 
 
 # ---------------------------------------------------------------------------------------------- dispatch
@@ -155,6 +169,8 @@ STAGES = {
     "validate": validate_stage,
     "behaviour": behaviour_stage,
     "regime": regime_stage,
+    "evaluate": evaluate_stage,
+    "report": report_stage,
 }
 
 
