@@ -12,5 +12,7 @@ rule behaviour:
         benchmarks("behaviour")
     params:
         code=stage_code_hash("behaviour"),
+    conda:
+        "envs/regimewise.yaml"
     script:
         "scripts/run_stage.py"

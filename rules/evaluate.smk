@@ -13,5 +13,7 @@ rule evaluate:
         benchmarks("evaluate")
     params:
         code=stage_code_hash("evaluate"),
+    conda:
+        "envs/regimewise.yaml"
     script:
         "scripts/run_stage.py"

@@ -13,5 +13,7 @@ rule regime:
         benchmarks("regime")
     params:
         code=stage_code_hash("regime"),
+    conda:
+        "envs/regimewise.yaml"
     script:
         "scripts/run_stage.py"

@@ -18,5 +18,7 @@ rule report:
         benchmarks("report")
     params:
         code=stage_code_hash("report"),
+    conda:
+        "envs/regimewise.yaml"
     script:
         "scripts/run_stage.py"

@@ -12,5 +12,7 @@ rule validate:
         benchmarks("validate")
     params:
         code=stage_code_hash("validate"),
+    conda:
+        "envs/regimewise.yaml"
     script:
         "scripts/run_stage.py"

@@ -17,6 +17,7 @@ from pathlib import Path
 
 from . import __version__
 from .errors import UserInputError
+from .io import require_file
 from .protocol import export_schema, load_protocol
 from .stages import ERROR_PREFIX
 
@@ -122,6 +123,9 @@ def _run_workflow(protocol: Path, args) -> int:
     if args.cores < 1:
         raise UserInputError("--cores must be at least 1")
     pf = load_protocol(protocol)
+    require_file(pf.decisions_path, "decisions")
+    if pf.episodes_path is not None:
+        require_file(pf.episodes_path, "episodes")
     out = Path(args.out or f"results/{pf.protocol.study.run_name}").resolve()
     out.mkdir(parents=True, exist_ok=True)
     workflow_log = out / "logs" / "workflow.log"

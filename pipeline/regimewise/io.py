@@ -89,15 +89,21 @@ def read_parquet(path: str | Path) -> pd.DataFrame:
     return pd.read_parquet(path, engine="pyarrow")
 
 
+def require_file(path: str | Path, what: str) -> Path:
+    """The path, or a one-line error naming the protocol setting to fix."""
+    path = Path(path)
+    if not path.is_file():
+        raise UserInputError(f"{what} file {path} not found; check data.{what} in the protocol")
+    return path
+
+
 def read_table(path: str | Path, what: str) -> pd.DataFrame:
     """Read a CSV or Parquet table named in the protocol, with a clear error when it cannot be read.
 
     CSV columns are read as text first would lose nothing, but typed reading is what users expect; numeric
     parsing problems are reported by validation, so columns are parsed by pandas' default inference.
     """
-    path = Path(path)
-    if not path.is_file():
-        raise UserInputError(f"{what} file {path} not found; check data.{what} in the protocol")
+    path = require_file(path, what)
     suffix = path.suffix.lower()
     try:
         if suffix in {".parquet", ".pq"}:
