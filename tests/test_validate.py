@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from pydantic import ValidationError
-from tiny import tiny_decisions, write_tiny
+from tiny import set_cell, tiny_decisions, write_tiny
 
 from regimewise.errors import DataValidationError, UserInputError
 from regimewise.protocol import load_protocol
@@ -34,31 +34,23 @@ def _corrupt(change):
     return frame
 
 
-def _set(row, column, value):
-    def change(frame):
-        frame[column] = frame[column].astype(object)
-        frame.loc[row, column] = value
-
-    return change
-
-
 # (change, rule expected, the 1-based data row named, the column named)
 DEFECTS = {
     "missing column": (lambda f: f.drop(columns=["bp"], inplace=True), "missing_column", None, "bp"),
-    "text in a numeric state": (_set(4, "bp", "high"), "number", 5, "bp"),
-    "state above its plausible range": (_set(7, "bp", 300.0), "number", 8, "bp"),
-    "binary state not 0/1": (_set(2, "flag", 2), "whole_number", 3, "flag"),
-    "unknown action label": (_set(5, "action", "double"), "action_label", 6, "action"),
-    "missing state value": (_set(9, "bp", np.nan), "missing_value", 10, "bp"),
-    "missing action": (_set(3, "action", np.nan), "missing_value", 4, "action"),
-    "infinite reward": (_set(11, "reward", np.inf), "number", 12, "reward"),
-    "fractional step": (_set(1, "step", 1.5), "whole_number", 2, "step"),
-    "step beyond the horizon": (_set(2, "step", 3), "whole_number", 3, "step"),
-    "negative day": (_set(0, "day", -4), "whole_number", 1, "day"),
-    "duplicate decision": (_set(1, "step", 0), "duplicate_decision", 2, "step"),
-    "gap in steps": (_set(5, "step", 1), "duplicate_decision", 6, "step"),
-    "day goes backwards": (_set(2, "day", 1), "day_order", 3, "day"),
-    "two patients in one episode": (_set(1, "patient_id", "P999"), "patient_per_episode", 1, "patient_id"),
+    "text in a numeric state": (set_cell(4, "bp", "high"), "number", 5, "bp"),
+    "state above its plausible range": (set_cell(7, "bp", 300.0), "number", 8, "bp"),
+    "binary state not 0/1": (set_cell(2, "flag", 2), "whole_number", 3, "flag"),
+    "unknown action label": (set_cell(5, "action", "double"), "action_label", 6, "action"),
+    "missing state value": (set_cell(9, "bp", np.nan), "missing_value", 10, "bp"),
+    "missing action": (set_cell(3, "action", np.nan), "missing_value", 4, "action"),
+    "infinite reward": (set_cell(11, "reward", np.inf), "number", 12, "reward"),
+    "fractional step": (set_cell(1, "step", 1.5), "whole_number", 2, "step"),
+    "step beyond the horizon": (set_cell(2, "step", 3), "whole_number", 3, "step"),
+    "negative day": (set_cell(0, "day", -4), "whole_number", 1, "day"),
+    "duplicate decision": (set_cell(1, "step", 0), "duplicate_decision", 2, "step"),
+    "gap in steps": (set_cell(5, "step", 1), "duplicate_decision", 6, "step"),
+    "day goes backwards": (set_cell(2, "day", 1), "day_order", 3, "day"),
+    "two patients in one episode": (set_cell(1, "patient_id", "P999"), "patient_per_episode", 1, "patient_id"),
 }
 
 

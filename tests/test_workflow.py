@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 import yaml
-from tiny import REPOSITORY
+from tiny import REPOSITORY, set_cell
 
 from regimewise.simulate import write_cohort
 
@@ -122,14 +122,6 @@ def _records_with(study: Path, tmp_path: Path, change) -> Path:
     return path
 
 
-def _set_cell(row, column, value):
-    def change(frame):
-        frame[column] = frame[column].astype(object)
-        frame.loc[row, column] = value
-
-    return change
-
-
 BAD_PROTOCOLS = {
     "unknown key": (lambda p: p.update(sneaky=True), "sneaky: unknown setting"),
     "threshold out of range": (lambda p: p["constraints"].update(support_threshold=2), "support_threshold"),
@@ -141,9 +133,9 @@ BAD_PROTOCOLS = {
 }
 
 BAD_RECORDS = {
-    "state out of range": (_set_cell(10, "sbp", 400.0), "column 'sbp'"),
-    "unknown action": (_set_cell(3, "action", "double_dose"), "[rule action_label]"),
-    "duplicate decision": (_set_cell(1, "step", 0), "[rule duplicate_decision]"),
+    "state out of range": (set_cell(10, "sbp", 400.0), "column 'sbp'"),
+    "unknown action": (set_cell(3, "action", "double_dose"), "[rule action_label]"),
+    "duplicate decision": (set_cell(1, "step", 0), "[rule duplicate_decision]"),
     "missing column": (lambda f: f.drop(columns=["potassium"], inplace=True), "[rule missing_column]"),
 }
 

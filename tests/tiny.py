@@ -59,3 +59,13 @@ def write_tiny(folder: Path, protocol=None, decisions=None) -> Path:
     path = folder / "protocol.yaml"
     path.write_text(yaml.safe_dump(protocol or tiny_protocol_dict(), sort_keys=False), encoding="utf-8")
     return path
+
+
+def set_cell(row, column, value):
+    """A change that puts value into one cell (column cast to object so any value fits)."""
+
+    def change(frame: pd.DataFrame) -> None:
+        frame[column] = frame[column].astype(object)
+        frame.loc[row, column] = value
+
+    return change

@@ -77,8 +77,12 @@ def regime_targets(logged: LoggedDecisions, recommended: np.ndarray, labels: tup
     return targets
 
 
-def evaluate_regime(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol) -> dict:
-    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag."""
+def evaluate_regime(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, deterministic: bool) -> dict:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
+
+    ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
+    deterministic regimes only; it is null for a stochastic regime such as usual care.
+    """
     fqe = FittedQEvaluation(
         n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
         alpha=protocol.q_model.ridge_alpha,
@@ -96,6 +100,8 @@ def evaluate_regime(logged: LoggedDecisions, target: np.ndarray, protocol: Proto
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATOR_NAMES[name]].to_dict()
         estimate["low_ess"] = bool(estimate["ess"] is None or estimate["ess"] < floor)
+        if not deterministic:
+            estimate["n_following"] = None
         out[name] = estimate
     return out
 
@@ -120,7 +126,7 @@ def evaluate_all(frame: pd.DataFrame, behaviour_proba: np.ndarray, recommended: 
     """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts."""
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
     regimes = [
-        {"name": name, "label": label, "estimates": evaluate_regime(logged, target, protocol)}
+        {"name": name, "label": label, "estimates": evaluate_regime(logged, target, protocol, name != "usual_care")}
         for name, label, target in regime_targets(
             logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies
         )

@@ -17,6 +17,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from .errors import UserInputError
 
@@ -79,10 +81,16 @@ def read_json(path: str | Path):
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def write_parquet(path: str | Path, frame: pd.DataFrame) -> None:
-    """Write a DataFrame to Parquet atomically (no index; deterministic for the same pyarrow version)."""
+def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = None) -> None:
+    """Write a DataFrame to Parquet atomically (no index; deterministic for the same pyarrow version).
+
+    ``caution``, if given, is stored in the file's metadata under the key ``regimewise.caution``.
+    """
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    if caution is not None:
+        table = table.replace_schema_metadata({**(table.schema.metadata or {}), b"regimewise.caution": caution.encode()})
     with atomic_path(path) as tmp:
-        frame.to_parquet(tmp, index=False, engine="pyarrow", compression="zstd")
+        pq.write_table(table, tmp, compression="zstd")
 
 
 def read_parquet(path: str | Path) -> pd.DataFrame:

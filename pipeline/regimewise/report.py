@@ -78,10 +78,35 @@ def build_summary(p, parts, prov) -> dict:
         "usual_care_observed": values["usual_care_observed"],
         "contrasts": values["contrasts"],
         "minimum_reliable_ess": values["minimum_reliable_ess"],
+        "headline": headline_sentence(p, values),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
     }
+
+
+def headline_sentence(p, values) -> str:
+    """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
+    contrasts = {c["estimator"]: c for c in values["contrasts"]}
+    name = "wdr" if "wdr" in contrasts else p.evaluation.estimators[0]
+    contrast = contrasts[name]
+    ess = values["regimes"][0]["estimates"][name]["ess"]
+    if contrast["difference"] is None:
+        return (
+            f"The {name} estimate of the learned regime's value is undefined: no episode in the records follows it "
+            "far enough for the weights to say anything."
+        )
+    direction = "higher" if contrast["difference"] > 0 else "lower"
+    sentence = (
+        f"By {name}, the learned regime's expected total reward per episode is {abs(contrast['difference']):.2f} "
+        f"{direction} than usual care's, resting on an effective sample of {ess:.1f} episodes"
+    )
+    if contrast["low_ess"]:
+        return sentence + (
+            f", below the {values['minimum_reliable_ess']:.0f} needed to trust it: the data cannot confirm this "
+            "difference; a higher support threshold keeps the regime closer to usual care and better supported."
+        )
+    return sentence + "."
 
 
 # ---------------------------------------------------------------------------------------------- figures
@@ -143,6 +168,8 @@ def value_figure(regimes, estimators) -> str:
 # ---------------------------------------------------------------------------------------------- html
 def cell_count(n, threshold):
     """Small-cell rule: counts 1..threshold-1 are shown as '<threshold' (common practice, no source)."""
+    if n is None:
+        return "—"
     n = int(n)
     return f"<{threshold}" if 0 < n < threshold else f"{n:,}"
 

@@ -28,6 +28,10 @@ from .weighting import inverse_probability_weights, weight_summary
 log = logging.getLogger("regimewise")
 
 ERROR_PREFIX = "regimewise error: "
+RECOMMENDATION_CAUTION = (
+    "Research use only: recommendations of a regime learned from historical records are hypotheses for study, "
+    "not medical advice; treatment decisions stay with licensed clinicians under local law and ethics approval."
+)
 
 
 # ---------------------------------------------------------------------------------------------- validate
@@ -118,7 +122,7 @@ def regime_stage(protocol, decisions, proba, table, regime):
     out["recommended"] = labels[recommended]
     out[[f"q_{a}" for a in p.action_labels]] = q
     out[[f"permitted_{a}" for a in p.action_labels]] = probabilities >= p.constraints.support_threshold
-    write_parquet(table, out)
+    write_parquet(table, out, caution=RECOMMENDATION_CAUTION)
     write_json(regime, regime_summary(p, frame, fqi, features, recommended, probabilities))
 
 
@@ -134,6 +138,7 @@ def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
             "taken": {a: int(np.sum(taken[rows] == k)) for k, a in enumerate(labels)},
         }
     return {
+        "caution": RECOMMENDATION_CAUTION,
         "method": "finite-horizon fitted-Q iteration (backward induction), linear Q-model with action-by-state "
         "interactions, support-constrained",
         "constraints": {"support_threshold": p.constraints.support_threshold},

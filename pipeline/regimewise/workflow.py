@@ -23,7 +23,7 @@ STAGE_MODULES = {
     "behaviour": ("behaviour.py", "features.py", "regime.py", "weighting.py"),
     "regime": ("fqi.py", "features.py", "regime.py"),
     "evaluate": ("ope.py", "fqi.py", "features.py", "evaluate.py"),
-    "report": ("report.py", "provenance.py", "templates/report.html"),
+    "report": ("report.py", "provenance.py", "templates/report.html", "templates/sections/*.html"),
 }
 SHARED_MODULES = ("errors.py", "io.py", "protocol.py", "stages.py")
 
@@ -67,7 +67,8 @@ def load_settings(config: dict) -> Settings:
 def stage_code_hash(stage: str) -> str:
     """SHA-256 (first 16 hex digits) of the package version and the source of the stage's modules."""
     digest = hashlib.sha256(__version__.encode())
-    for name in sorted(set(STAGE_MODULES[stage]) | set(SHARED_MODULES)):
-        digest.update(name.encode())
-        digest.update((PACKAGE_DIR / name).read_bytes())
+    patterns = sorted(set(STAGE_MODULES[stage]) | set(SHARED_MODULES))
+    for path in sorted(p for pattern in patterns for p in PACKAGE_DIR.glob(pattern)):
+        digest.update(path.relative_to(PACKAGE_DIR).as_posix().encode())
+        digest.update(path.read_bytes())
     return digest.hexdigest()[:16]
