@@ -13,6 +13,8 @@ include: "rules/validate.smk"
 include: "rules/behaviour.smk"
 include: "rules/regime.smk"
 include: "rules/evaluate.smk"
+include: "rules/describe.smk"
+include: "rules/bootstrap.smk"
 include: "rules/report.smk"
 
 

@@ -20,5 +20,9 @@ def record_inputs(wildcards):
     return SETTINGS.record_inputs
 
 
+def bootstrap_shard_files():
+    return [results(f"bootstrap/shards/shard_{k}.json") for k in range(SETTINGS.bootstrap_shards)]
+
+
 def final_outputs():
     return [results("report/report.html"), results("report/summary.json")]

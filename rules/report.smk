@@ -8,6 +8,8 @@ rule report:
         regime=results("regime/regime.json"),
         table=results("regime/recommendations.parquet"),
         values=results("evaluate/values.json"),
+        cohort=results("describe/cohort.json"),
+        intervals=results("bootstrap/intervals.json"),
     output:
         html=results("report/report.html"),
         summary=results("report/summary.json"),

@@ -7,7 +7,8 @@ rule validate:
         episodes=results("validate/episodes.parquet"),
         summary=results("validate/validation.json"),
     log:
-        logs("validate"),
+        main=logs("validate"),
+        errors=f"{SETTINGS.logs}/validation_errors.csv",
     benchmark:
         benchmarks("validate")
     params:

@@ -13,6 +13,8 @@ import pytest
 
 import small_mdp as sm
 from regimewise.errors import StatisticalWarning, UserInputError
+from scipy import stats
+
 from regimewise.fqi import FittedQEvaluation
 from regimewise.ope import (
     evaluate_off_policy,
@@ -60,6 +62,19 @@ def test_hand_worked_example():
         assert est.max_weight_share == pytest.approx(4 / 7.75)
         assert est.n_following == 2 and est.n_episodes == 3  # episode 1 leaves the regime with prob .5
         assert est.per_step_ess == pytest.approx((5.25**2 / 9.5625, 7.75**2 / 23.8125))
+
+
+def test_closed_form_standard_errors_of_the_hand_worked_example():
+    out = evaluate_off_policy(**HAND, horizon=2, q_taken=np.zeros(5), v_target=np.zeros(5))
+    # IS and PDIS are means of per-episode terms: their SE is the standard error of the mean (scipy.stats.sem)
+    assert out["IS"].se == pytest.approx(stats.sem([4 * 3, 2.5 * 3, 1.25 * 4]))  # ρ_H · G
+    assert out["PDIS"].se == pytest.approx(stats.sem([2 * 1 + 4 * 2, 2 * 0 + 2.5 * 3, 1.25 * 4]))  # Σ_t ρ_t r_t
+    assert out["DR"].se == pytest.approx(out["PDIS"].se)  # Q ≡ 0: DR is PDIS (Thomas & Brunskill 2016)
+    # WIS by the ratio linearisation, by hand: V = 24.5/7.75, SE² = Σ ρ²(G − V)² / (Σρ)²
+    v = 24.5 / 7.75
+    expected = np.sqrt(16 * (3 - v) ** 2 + 6.25 * (3 - v) ** 2 + 1.5625 * (4 - v) ** 2) / 7.75
+    assert out["WIS"].se == pytest.approx(expected)
+    assert np.isnan(out["PDWIS"].se) and np.isnan(out["WDR"].se)  # no closed form here: use the bootstrap
 
 
 def test_hand_worked_example_discounted():
@@ -192,6 +207,7 @@ def test_estimators_recover_the_exact_value_of_a_fixed_regime():
     exact = MDP.initial @ v_exact[0]
     big = sm.sample_episodes(MDP, 150 * 800, seed=2024)
     values = {name: [] for name in ("IS", "WIS", "PDIS", "PDWIS", "DR", "WDR", "FQE")}
+    ses = {name: [] for name in ("IS", "WIS", "PDIS", "DR")}
     for sample in sm.split_samples(big, 800):
         target = sm.rows_proba(proba, sample)
         fqe = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
@@ -206,11 +222,17 @@ def test_estimators_recover_the_exact_value_of_a_fixed_regime():
         values["FQE"].append(fqe.value_estimate(sample["X"][first], target[first]))
         for name, est in out.items():
             values[name].append(est.value)
+            if name in ses:
+                ses[name].append(est.se)
     assert len(values["IS"]) == 150
     for name, vals in values.items():
         vals = np.asarray(vals)
         se = vals.std(ddof=1) / np.sqrt(vals.size)
         assert abs(vals.mean() - exact) < 3 * se, (name, vals.mean(), exact, se)
+    # closed-form standard errors match the spread over repeated samples: the sd of 150 values is known to
+    # about 1/sqrt(2·149) ≈ 6%, so 20% is more than 3 of its standard errors
+    for name, se_values in ses.items():
+        assert np.mean(se_values) == pytest.approx(np.std(values[name], ddof=1), rel=0.2), name
 
 
 # --------------------------------------------------------------------------------------------------------

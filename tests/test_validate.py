@@ -117,3 +117,80 @@ def test_row_model_agrees_with_vectorised_check(tmp_path_factory, bp, flag, acti
     except ValidationError:
         model_bad = True
     assert vectorised_bad == model_bad
+
+
+# ---------------------------------------------------------------------------------------------- episodes table
+def test_episodes_table_checked_and_joined(tmp_path):
+    from tiny import tiny_episodes
+
+    decisions = tiny_decisions()
+    episodes = tiny_episodes(decisions)
+    # Data contract (synthetic_cohort/README.md): the event is non-fatal, so an episode with an event may end its
+    # follow-up before its last decision; tiny_episodes gives every fifth episode an event on day 100 < day 180.
+    assert (episodes.loc[episodes["event"] == 1, "followup_days"] < decisions.groupby("episode_id")["day"].max().max()).all()
+    result = validate_records(load_protocol(write_tiny(tmp_path, decisions=decisions, episodes=episodes)))
+    assert list(result.episodes.columns) == ["episode_id", "patient_id", "n_decisions", "followup_days", "event"]
+    assert result.episodes["event"].sum() == 8 and (result.episodes["n_decisions"] == 3).all()
+
+
+# ---------------------------------------------------------------------------------------------- missing data
+def _with_missing(tmp_path, policy):
+    from tiny import tiny_protocol_dict
+
+    frame = tiny_decisions()
+    frame["bp"] = frame["bp"].astype(object)
+    frame.loc[[1, 4, 5], "bp"] = np.nan  # E000 step 1; E001 steps 1 and 2
+    frame.loc[3, "bp"] = np.nan if policy != "carry_forward" else frame.loc[3, "bp"]  # E001 step 0
+    protocol = tiny_protocol_dict()
+    protocol["data"]["missing"] = {"bp": policy}
+    return frame, validate_records(load_protocol(write_tiny(tmp_path, protocol=protocol, decisions=frame)))
+
+
+def test_missing_drop_removes_the_rest_of_the_episode(tmp_path):
+    frame, result = _with_missing(tmp_path, "drop")
+    # By hand: E000 loses steps 1-2 (2 rows); E001 loses all 3 rows (its step 0 is missing): 5 rows, 1 episode.
+    assert result.summary["missing_data"]["bp"] == {"policy": "drop", "missing": 4, "decisions_dropped": 5,
+                                                    "episodes_emptied": 1}  # fmt: skip
+    assert result.summary["rows_kept"] == 115 and result.summary["episodes"] == 39
+    assert result.decisions.loc[result.decisions["episode_id"] == "E000", "step"].tolist() == [0]
+
+
+def test_missing_carry_forward_uses_the_episode_s_last_value(tmp_path):
+    frame, result = _with_missing(tmp_path, "carry_forward")
+    d = result.decisions.set_index(["episode_id", "step"])["bp"]
+    assert d[("E000", 1)] == float(frame.loc[0, "bp"])  # filled from step 0 of the same episode
+    assert d[("E001", 1)] == d[("E001", 2)] == float(frame.loc[3, "bp"])
+    assert result.summary["missing_data"]["bp"] == {"policy": "carry_forward", "missing": 3, "filled": 3}
+
+
+def test_missing_indicator_fills_with_the_median_and_flags(tmp_path):
+    frame, result = _with_missing(tmp_path, "indicator")
+    observed = pd.to_numeric(frame["bp"]).dropna()
+    d = result.decisions.set_index(["episode_id", "step"])
+    assert d.loc[("E000", 1), "bp"] == pytest.approx(float(np.median(observed)))  # numpy's median, independent
+    assert d["bp_missing"].sum() == 4 and d.loc[("E000", 0), "bp_missing"] == 0
+    assert result.summary["missing_data"]["bp"]["filled"] == 4
+
+
+# ---------------------------------------------------------------------------------------------- reading
+@pytest.mark.parametrize(("delimiter", "bom"), [(",", False), (",", True), (";", True), ("\t", False)])
+def test_csv_delimiters_and_byte_order_mark(tmp_path, delimiter, bom):
+    from tiny import tiny_protocol_dict
+
+    protocol = tiny_protocol_dict()
+    protocol["data"]["delimiter"] = delimiter
+    path = write_tiny(tmp_path, protocol=protocol)
+    text = tiny_decisions().to_csv(index=False, sep=delimiter)
+    (tmp_path / "decisions.csv").write_bytes(("\ufeff" if bom else "").encode() + text.encode("utf-8"))
+    assert validate_records(load_protocol(path)).summary["rows_kept"] == 120
+
+
+def test_parquet_records_read_like_csv(tmp_path):
+    from tiny import tiny_protocol_dict
+
+    tiny_decisions().to_parquet(tmp_path / "decisions.parquet", index=False)
+    protocol = tiny_protocol_dict(decisions="decisions.parquet")
+    path = write_tiny(tmp_path, protocol=protocol)
+    from_parquet = validate_records(load_protocol(path)).decisions
+    from_csv = validate_records(load_protocol(write_tiny(tmp_path / "csv"))).decisions
+    pd.testing.assert_frame_equal(from_parquet, from_csv)

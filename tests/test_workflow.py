@@ -32,6 +32,7 @@ def study(tmp_path_factory) -> Path:
     protocol = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     protocol["data"]["decisions"] = "data/decisions.csv"
     protocol["data"]["episodes"] = "data/episodes.csv"
+    protocol["evaluation"].update(replicates=20, shards=2)  # the demo's 200 replicates are for the demo only
     (folder / "protocol.yaml").write_text(yaml.safe_dump(protocol, sort_keys=False), encoding="utf-8")
     return folder / "protocol.yaml"
 

@@ -52,12 +52,29 @@ def tiny_decisions(n_episodes=40, seed=0) -> pd.DataFrame:
     return pd.DataFrame(rows)
 
 
-def write_tiny(folder: Path, protocol=None, decisions=None) -> Path:
-    """Write a tiny protocol and decisions file into folder; return the protocol path."""
+def tiny_episodes(decisions: pd.DataFrame | None = None) -> pd.DataFrame:
+    """A valid episodes table for tiny_decisions: every fifth episode has a (non-fatal) event, which may fall
+    before the last decision; censored episodes are followed up 30 days past their last decision."""
+    decisions = tiny_decisions() if decisions is None else decisions
+    last = decisions.groupby("episode_id", sort=True).agg(patient_id=("patient_id", "first"), last=("day", "max"))
+    event = (np.arange(len(last)) % 5 == 0).astype(int)
+    followup = np.where(event == 1, 100, last["last"].to_numpy() + 30)
+    return pd.DataFrame(
+        {"episode_id": last.index, "patient_id": last["patient_id"].to_numpy(), "followup_days": followup,
+         "event": event}
+    )  # fmt: skip
+
+
+def write_tiny(folder: Path, protocol=None, decisions=None, episodes=None) -> Path:
+    """Write a tiny protocol and decisions file (and an episodes file if given) into folder; return the
+    protocol path."""
     folder.mkdir(parents=True, exist_ok=True)
     (decisions if decisions is not None else tiny_decisions()).to_csv(folder / "decisions.csv", index=False)
+    if episodes is not None:
+        episodes.to_csv(folder / "episodes.csv", index=False)
+    default = tiny_protocol_dict(episodes=None if episodes is None else "episodes.csv")
     path = folder / "protocol.yaml"
-    path.write_text(yaml.safe_dump(protocol or tiny_protocol_dict(), sort_keys=False), encoding="utf-8")
+    path.write_text(yaml.safe_dump(protocol or default, sort_keys=False), encoding="utf-8")
     return path
 
 

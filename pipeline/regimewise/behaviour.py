@@ -6,17 +6,31 @@ policy of off-policy evaluation (Precup, Sutton & Singh 2000).
 """
 
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import patsy
 import statsmodels.api as sm
 from scipy.special import log_softmax
 from scipy.stats import rankdata
+from sklearn.ensemble import HistGradientBoostingClassifier
 from sklearn.exceptions import NotFittedError
+from threadpoolctl import threadpool_limits
 
 from regimewise.errors import ConvergenceWarning, StatisticalWarning, UserInputError
+from regimewise.features import StateScaler
 
-__all__ = ["MultinomialLogitBehaviour", "multiclass_auc", "probability_of_taken"]
+__all__ = [
+    "BehaviourDesign",
+    "GradientBoostingBehaviour",
+    "MultinomialLogitBehaviour",
+    "apply_probability_floor",
+    "cross_fit_proba",
+    "multiclass_auc",
+    "patient_folds",
+    "probability_of_taken",
+]
 
 # A log-likelihood this close to 0 means the covariates predict every action taken with certainty: complete
 # separation, where the maximum-likelihood estimate does not exist (Albert & Anderson 1984, Biometrika 71:1).
@@ -63,6 +77,16 @@ def _standardise(values):
     constant = np.ptp(values, axis=0) == 0
     scale[constant] = 0.0
     return mean, scale
+
+
+def _prediction_design(model, X, fitted_attribute):
+    """Check that ``model`` is fitted and ``X`` has its number of columns; return ``_as_design(X)``."""
+    if not hasattr(model, fitted_attribute):
+        raise NotFittedError(f"this {type(model).__name__} is not fitted yet; call fit(X, action, n_actions)")
+    values, names = _as_design(X)
+    if values.shape[1] != model.n_features_in_:
+        raise UserInputError(f"X has {values.shape[1]} columns but the model was fitted on {model.n_features_in_}")
+    return values, names
 
 
 def _run_mnlogit(design, endog, method, maxiter):
@@ -213,11 +237,7 @@ class MultinomialLogitBehaviour:
 
     def predict_proba(self, X):
         """Probability of every action, shape (n, n_actions_), columns in action-code order."""
-        if not hasattr(self, "params_"):
-            raise NotFittedError("this MultinomialLogitBehaviour is not fitted yet; call fit(X, action, n_actions)")
-        values, names = _as_design(X)
-        if values.shape[1] != self.n_features_in_:
-            raise UserInputError(f"X has {values.shape[1]} columns but the model was fitted on {self.n_features_in_}")
+        values, names = _prediction_design(self, X, "params_")
         if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
             raise UserInputError("X has different column names or order than at fit; pass the same design columns")
         proba = np.zeros((values.shape[0], self.n_actions_))
@@ -357,3 +377,231 @@ def multiclass_auc(action, proba, n_actions):
     if present.size < 2:
         return float("nan")
     return float(np.mean([_binary_auc(codes == k, proba[:, k]) for k in present]))
+
+
+class GradientBoostingBehaviour:
+    """Histogram gradient boosting of the action taken on the state (usual-care model).
+
+    A thin wrapper of scikit-learn's ``HistGradientBoostingClassifier`` (multinomial log-loss; Friedman 2001,
+    Ann Stat 29:1189; Ke et al. 2017, LightGBM, NeurIPS) that returns one probability column per action code,
+    like :class:`MultinomialLogitBehaviour`: actions absent from the training data get probability 0. Early
+    stopping is off so that a fit depends only on the data and ``random_state``.
+
+    Parameters
+    ----------
+    max_iter : int, default 100
+        Boosting rounds.
+    learning_rate : float, default 0.1
+    max_leaf_nodes : int, default 31
+    min_samples_leaf : int, default 20
+    random_state : int or None
+        Seed of the tie-breaking randomness (derive it from the protocol seed).
+    n_threads : int or None, default 1
+        OpenMP threads for fitting and prediction (``None``: scikit-learn's default, all cores). One thread
+        keeps results byte-identical across machines and avoids oversubscription when several jobs share cores.
+
+    Attributes
+    ----------
+    classes_ : ndarray of int
+        Action codes that occur in the training data.
+    n_actions_ : int
+    n_features_in_ : int
+    estimator_ : HistGradientBoostingClassifier or None
+        The fitted scikit-learn model (``None`` when only one action occurs).
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(300, 2))
+    >>> model = GradientBoostingBehaviour(max_iter=10, random_state=0).fit(X, rng.integers(0, 2, 300), 3)
+    >>> model.predict_proba(X).shape
+    (300, 3)
+    """
+
+    def __init__(
+        self, max_iter=100, learning_rate=0.1, max_leaf_nodes=31, min_samples_leaf=20, random_state=None, n_threads=1
+    ):
+        self.max_iter = max_iter
+        self.learning_rate = learning_rate
+        self.max_leaf_nodes = max_leaf_nodes
+        self.min_samples_leaf = min_samples_leaf
+        self.random_state = random_state
+        self.n_threads = n_threads
+
+    def fit(self, X, action, n_actions):
+        """Fit on covariates ``X`` (n, p) and action codes ``action`` in ``0 .. n_actions-1``; returns self."""
+        values, _ = _as_design(X)
+        codes = _as_actions(action, n_actions, n_rows=values.shape[0])
+        self.n_actions_ = int(n_actions)
+        self.n_features_in_ = values.shape[1]
+        self.classes_ = np.unique(codes)
+        self.estimator_ = None
+        if self.classes_.size > 1:
+            estimator = HistGradientBoostingClassifier(
+                max_iter=self.max_iter,
+                learning_rate=self.learning_rate,
+                max_leaf_nodes=self.max_leaf_nodes,
+                min_samples_leaf=self.min_samples_leaf,
+                early_stopping=False,
+                random_state=self.random_state,
+            )
+            with threadpool_limits(limits=self.n_threads, user_api="openmp"):
+                self.estimator_ = estimator.fit(values, codes)
+        return self
+
+    def predict_proba(self, X):
+        """Probability of every action, shape (n, n_actions_), columns in action-code order."""
+        values, _ = _prediction_design(self, X, "classes_")
+        proba = np.zeros((values.shape[0], self.n_actions_))
+        if self.estimator_ is None:
+            proba[:, self.classes_[0]] = 1.0
+        else:
+            with threadpool_limits(limits=self.n_threads, user_api="openmp"):
+                proba[:, self.classes_] = self.estimator_.predict_proba(values)
+        return proba
+
+
+@dataclass(frozen=True)
+class BehaviourDesign:
+    """Covariates of the usual-care model: scaled states, natural-spline bases, and the decision index.
+
+    States named in ``spline_states`` enter through a natural cubic regression spline basis with ``spline_df``
+    columns (patsy ``cr``, centred so the model's own intercept stays identifiable; Hastie & Tibshirani 1990,
+    *Generalized Additive Models*; Wood 2017, *Generalized Additive Models*, 2nd ed., section 5.3.1). Knots sit
+    at quantiles of the training values; beyond the outer knots the basis continues linearly. The other states
+    enter linearly, scaled as in :class:`regimewise.features.StateScaler`.
+    """
+
+    scaler: StateScaler
+    splines: tuple[tuple[str, object], ...]
+    horizon: int
+    include_step: bool
+
+    @classmethod
+    def fit(cls, frame, protocol):
+        spec = protocol.behaviour_model
+        scaler = StateScaler.fit(frame, protocol)
+        use_splines = spec.kind == "multinomial_logit"
+        splines = tuple(
+            (name, _spline_basis(frame[name].to_numpy(dtype=float), spec.spline_df).design_info)
+            for name in (spec.spline_states if use_splines else [])
+        )
+        return cls(scaler, splines, protocol.horizon, spec.include_step)
+
+    def transform(self, frame):
+        """Design matrix (n, len(names))."""
+        spline_names = {name for name, _ in self.splines}
+        linear = [j for j, name in enumerate(self.scaler.names) if name not in spline_names]
+        blocks = [self.scaler.transform(frame)[:, linear]]
+        for name, info in self.splines:
+            blocks.append(np.asarray(patsy.build_design_matrices([info], {"x": frame[name].to_numpy(dtype=float)})[0]))
+        if self.include_step:
+            blocks.append((frame["step"].to_numpy(dtype=float) / max(self.horizon - 1, 1))[:, None])
+        return np.column_stack(blocks)
+
+    @property
+    def names(self):
+        spline_names = {name for name, _ in self.splines}
+        names = [name for name in self.scaler.names if name not in spline_names]
+        for name, info in self.splines:
+            names += [f"ns({name})[{k}]" for k in range(len(info.column_names))]
+        return names + (["step_fraction"] if self.include_step else [])
+
+
+def _spline_basis(values, df):
+    if np.unique(values).size <= df:
+        raise UserInputError(
+            f"a spline with {df} degrees of freedom needs more than {df} distinct values of its state; "
+            "lower behaviour_model.spline_df or remove the state from behaviour_model.spline_states"
+        )
+    return patsy.dmatrix(f"cr(x, df={df}, constraints='center') - 1", {"x": values})
+
+
+def patient_folds(patients, n_folds, seed):
+    """Fold index (0 .. n_folds-1) of every row; all rows of a patient share one fold.
+
+    Patients are shuffled by a generator seeded with ``seed`` and dealt round-robin into the folds, so fold
+    sizes differ by at most one patient (cross-fitting by cluster: Chernozhukov et al. 2018, Econometrics J
+    21:C1, section 3).
+
+    Examples
+    --------
+    >>> folds = patient_folds(["a", "a", "b", "c"], 2, seed=0)
+    >>> bool(folds[0] == folds[1]), sorted(set(folds.tolist()))
+    (True, [0, 1])
+    """
+    codes, uniques = pd.factorize(np.asarray(patients), sort=True)
+    if np.any(codes < 0):
+        raise UserInputError("patient identifiers are missing; every decision needs one for cross-fitting")
+    if uniques.size < n_folds:
+        raise UserInputError(
+            f"{uniques.size} patient(s) cannot fill {n_folds} cross-fitting folds; lower behaviour_model.folds"
+        )
+    order = np.random.default_rng(seed).permutation(uniques.size)
+    fold_of_patient = np.empty(uniques.size, dtype=np.int64)
+    fold_of_patient[order] = np.arange(uniques.size) % n_folds
+    return fold_of_patient[codes]
+
+
+def cross_fit_proba(make_model, X, action, n_actions, folds):
+    """Out-of-fold probabilities: each row predicted by a model fitted on the other folds.
+
+    Parameters
+    ----------
+    make_model : callable
+        Returns a fresh, unfitted model with ``fit(X, action, n_actions)`` and ``predict_proba(X)``.
+    X : array_like, shape (n, p)
+    action : array_like of int, shape (n,)
+    n_actions : int
+    folds : array_like of int, shape (n,)
+        Fold of every row (e.g. :func:`patient_folds`).
+
+    Returns
+    -------
+    ndarray, shape (n, n_actions)
+
+    References
+    ----------
+    Chernozhukov et al. (2018), Double/debiased machine learning, Econometrics J 21:C1 (cross-fitting).
+    """
+    values, _ = _as_design(X)
+    codes = _as_actions(action, n_actions, n_rows=values.shape[0])
+    folds = np.asarray(folds)
+    proba = np.empty((values.shape[0], int(n_actions)))
+    for fold in np.unique(folds):
+        test = folds == fold
+        model = make_model().fit(values[~test], codes[~test], n_actions)
+        proba[test] = model.predict_proba(values[test])
+    return proba
+
+
+def apply_probability_floor(proba, floor):
+    """Raise every probability below ``floor`` to ``floor`` and shrink the others proportionally.
+
+    Rows still sum to 1 and every entry is at least ``floor`` (needs ``floor * n_actions <= 1``); entries
+    shrunk below the floor by the rescaling are raised in turn. A floor bounds inverse-probability weights
+    by ``1 / floor`` (a form of weight truncation; Cole & Hernán 2008, Am J Epidemiol 168:656).
+
+    Examples
+    --------
+    >>> apply_probability_floor(np.array([[0.0, 0.2, 0.8]]), 0.1).round(4).tolist()
+    [[0.1, 0.18, 0.72]]
+    """
+    proba = _as_proba(proba)
+    if floor * proba.shape[1] > 1:
+        raise UserInputError(f"probability floor {floor} times {proba.shape[1]} actions exceeds 1; lower the floor")
+    if floor <= 0:
+        return proba.copy()
+    clipped = np.zeros(proba.shape, dtype=bool)
+    result = proba.copy()
+    for _ in range(proba.shape[1]):
+        newly = (result < floor) & ~clipped
+        if not newly.any():
+            break
+        clipped |= newly
+        rest = np.where(clipped, 0.0, proba)
+        budget = 1.0 - floor * clipped.sum(axis=1, keepdims=True)
+        total = rest.sum(axis=1, keepdims=True)
+        scale = np.divide(budget, total, out=np.zeros_like(total), where=total > 0)
+        result = np.where(clipped, floor, rest * scale)
+    return np.where(clipped.any(axis=1, keepdims=True), result, proba)

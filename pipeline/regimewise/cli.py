@@ -1,7 +1,8 @@
 """Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema``.
 
 ``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
-folder as its working directory; ``check`` validates a protocol and its records without writing anything.
+folder as its working directory; ``check`` validates a protocol and its records and writes only the error list
+(``--errors``, default logs/validation_errors.csv) when they fail.
 Errors a user can fix print one line (what, where, how to fix) and exit with status 1; ``--debug`` shows
 the traceback or the full workflow log.
 """
@@ -43,8 +44,9 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("protocol", help="protocol YAML file")
     _add_run_options(run, default_out=None)
 
-    check = commands.add_parser("check", help="validate a protocol and its records; write nothing")
+    check = commands.add_parser("check", help="validate a protocol and its records; on failure write the error list")
     check.add_argument("protocol", help="protocol YAML file")
+    check.add_argument("--errors", default="logs/validation_errors.csv", help="where the error list goes on failure")
 
     simulate = commands.add_parser("simulate", help="write an invented cohort from the demo scenario's simulator")
     simulate.add_argument("--out", required=True, help="folder for decisions.csv, episodes.csv, truth.json")
@@ -83,10 +85,16 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .validate import validate_records
+    from .errors import DataValidationError
+    from .validate import validate_records, write_error_report
 
     pf = load_protocol(args.protocol)
-    summary = validate_records(pf).summary
+    try:
+        summary = validate_records(pf).summary
+    except DataValidationError as err:
+        write_error_report(args.errors, err.errors)
+        _print_error_report(Path(args.errors))
+        raise
     print(
         f"{pf.path.name}: protocol valid; {summary['rows_kept']} decisions in {summary['episodes']} episodes "
         f"({summary['patients']} patients) pass validation."
@@ -143,12 +151,23 @@ def _run_workflow(protocol: Path, args) -> int:
     with open(workflow_log, "w", encoding="utf-8") as handle:
         finished = subprocess.run(command, stdout=handle, stderr=subprocess.STDOUT, env=_workflow_env(), check=False)
     if finished.returncode != 0:
+        _print_error_report(out / "logs" / "validation_errors.csv")
         if args.debug:
             print(workflow_log.read_text(encoding="utf-8"), file=sys.stderr)
         raise UserInputError(_first_stage_error(workflow_log) or f"the workflow failed; see {workflow_log}")
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
+
+
+def _print_error_report(path: Path) -> None:
+    """The first lines of validation_errors.csv, sorted by rule, on standard output (values already masked)."""
+    from .validate import report_lines
+
+    lines = report_lines(path)
+    if lines:
+        print(f"validation found problems; the full list is in {path}:")
+        print("\n".join(f"  {line}" for line in lines))
 
 
 def _workflow_env() -> dict:

@@ -7,8 +7,8 @@ gets its own Q-function rather than borrowing the learned regime's; that fitted-
 as an estimator of its own (``fqe``, the direct method). It uses no weights, but it carries the regime's weight
 diagnostics: when few episodes follow the regime, its value rests on the Q-model's extrapolation.
 
-An estimate whose Kish effective sample size is below ``max(30, 5% of episodes)`` is flagged ``low_ess``
-(common practice, no single source; the issue tracker's default).
+An estimate whose Kish effective sample size is below ``max(evaluation.minimum_ess, evaluation.minimum_ess_fraction
+× episodes)`` (defaults 30 and 5%) is flagged ``low_ess`` (common practice, no single source).
 """
 
 from __future__ import annotations
@@ -18,14 +18,16 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from .errors import UserInputError
 from .features import QFeatures, StateScaler, action_codes, episode_codes
 from .fqi import FittedQEvaluation
-from .ope import evaluate_off_policy
-from .protocol import Protocol
+from .ope import evaluate_off_policy, importance_weights
+from .protocol import EvaluationSpec, Protocol
 
-ESTIMATOR_NAMES = {"pdwis": "PDWIS", "wdr": "WDR", "fqe": "FQE"}
-MIN_RELIABLE_ESS = 30
-MIN_RELIABLE_ESS_FRACTION = 0.05
+ESTIMATOR_NAMES = {
+    "is": "IS", "wis": "WIS", "pdis": "PDIS", "pdwis": "PDWIS", "dr": "DR", "wdr": "WDR", "fqe": "FQE",
+}  # fmt: skip
+WEIGHT_HISTOGRAM_EDGES = tuple(x / 2 for x in range(-6, 9))  # log10 of the cumulative weight, 10^-3 .. 10^4
 
 
 @dataclass(frozen=True)
@@ -77,25 +79,30 @@ def regime_targets(logged: LoggedDecisions, recommended: np.ndarray, labels: tup
     return targets
 
 
-def evaluate_regime(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, deterministic: bool) -> dict:
+def evaluate_regime(
+    logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, deterministic: bool, strict: bool = True
+) -> dict:
     """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
-    deterministic regimes only; it is null for a stochastic regime such as usual care.
+    deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
+    a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
+    leaves the model-based estimators (dr, wdr, fqe) null instead of raising.
     """
-    fqe = FittedQEvaluation(
-        n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
-        alpha=protocol.q_model.ridge_alpha,
-    ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)  # fmt: skip
-    q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
+    try:
+        q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol)
+    except UserInputError:
+        if strict:
+            raise
+        q_taken, v_target, fqe_value = None, None, float("nan")
     results = evaluate_off_policy(
         logged.step, logged.action, logged.reward, logged.episode, logged.behaviour_proba, target,
         horizon=protocol.horizon, gamma=protocol.discount, q_taken=q_taken, v_target=v_target,
     )  # fmt: skip
-    first = logged.step == 0
-    fqe_value = fqe.value_estimate(logged.X[first], target[first])
-    results["FQE"] = replace(results["PDWIS"], estimator="FQE", value=fqe_value)
-    floor = minimum_reliable_ess(logged.n_episodes)
+    for name in ("DR", "WDR", "FQE"):
+        results.setdefault(name, replace(results["PDWIS"], estimator=name, value=float("nan"), se=float("nan")))
+    results["FQE"] = replace(results["PDWIS"], estimator="FQE", value=fqe_value, se=float("nan"))
+    floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
     out = {}
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATOR_NAMES[name]].to_dict()
@@ -106,8 +113,43 @@ def evaluate_regime(logged: LoggedDecisions, target: np.ndarray, protocol: Proto
     return out
 
 
-def minimum_reliable_ess(n_episodes: int) -> float:
-    return float(max(MIN_RELIABLE_ESS, MIN_RELIABLE_ESS_FRACTION * n_episodes))
+def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol):
+    """Q̂ of the action taken, V̂ under the regime at each decision, and the fqe value (Le, Voloshin & Yue 2019)."""
+    fqe = FittedQEvaluation(
+        n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
+        alpha=protocol.q_model.ridge_alpha,
+    ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)  # fmt: skip
+    q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
+    first = logged.step == 0
+    return q_taken, v_target, fqe.value_estimate(logged.X[first], target[first])
+
+
+def minimum_reliable_ess(n_episodes: int, spec: EvaluationSpec | None = None) -> float:
+    """max(minimum_ess, minimum_ess_fraction × episodes): the smallest ESS shown as reliable (defaults 30, 5%)."""
+    spec = spec or EvaluationSpec()
+    return float(max(spec.minimum_ess, spec.minimum_ess_fraction * n_episodes))
+
+
+def weight_histograms(logged: LoggedDecisions, target: np.ndarray, horizon: int) -> dict:
+    """Per decision point, how many episodes carry a zero cumulative weight and a histogram of log10 of the rest.
+
+    Weights below or above the fixed edges are counted in the first or last bin.
+    """
+    weights = importance_weights(
+        logged.step, logged.action, logged.reward, logged.episode, logged.behaviour_proba, target, horizon=horizon
+    )
+    edges = np.asarray(WEIGHT_HISTOGRAM_EDGES)
+    by_step = []
+    for t, column in enumerate(weights.cumulative.T):
+        positive = np.log10(column[column > 0])
+        counts, _ = np.histogram(np.clip(positive, edges[0], edges[-1]), bins=edges)
+        by_step.append({"step": t, "zero": int(np.sum(column <= 0)), "counts": counts.tolist()})
+    return {"log10_edges": list(WEIGHT_HISTOGRAM_EDGES), "by_step": by_step}
+
+
+def point_values(values: dict) -> dict:
+    """{regime: {estimator: value or None}} from the output of :func:`evaluate_all`."""
+    return {r["name"]: {est: e["value"] for est, e in r["estimates"].items()} for r in values["regimes"]}
 
 
 def observed_returns(logged: LoggedDecisions, gamma: float) -> np.ndarray:
@@ -122,14 +164,30 @@ def clustered_mean(values: np.ndarray, cluster: np.ndarray) -> tuple[float, floa
     return mean, float(np.sqrt(np.sum(totals**2)) / len(values))
 
 
-def evaluate_all(frame: pd.DataFrame, behaviour_proba: np.ndarray, recommended: np.ndarray, protocol: Protocol) -> dict:
-    """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts."""
+def evaluate_all(
+    frame: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    recommended: np.ndarray,
+    protocol: Protocol,
+    side_by_side: dict[str, np.ndarray] | None = None,
+    *,
+    strict: bool = True,
+) -> dict:
+    """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts.
+
+    With ``strict=False`` (bootstrap replicates) a regime whose fitted-Q evaluation cannot be fitted on these
+    records (an action it may take never occurs at some step) gets null dr, wdr and fqe values instead of
+    stopping the analysis.
+
+    ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
+    under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
+    """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
+    targets = regime_targets(logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
     regimes = [
-        {"name": name, "label": label, "estimates": evaluate_regime(logged, target, protocol, name != "usual_care")}
-        for name, label, target in regime_targets(
-            logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies
-        )
+        {"name": name, "label": label,
+         "estimates": evaluate_regime(logged, target, protocol, name != "usual_care", strict)}  # fmt: skip
+        for name, label, target in targets
     ]
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
@@ -151,8 +209,13 @@ def evaluate_all(frame: pd.DataFrame, behaviour_proba: np.ndarray, recommended: 
     return {
         "discount": protocol.discount,
         "episodes": logged.n_episodes,
-        "minimum_reliable_ess": minimum_reliable_ess(logged.n_episodes),
+        "minimum_reliable_ess": minimum_reliable_ess(logged.n_episodes, protocol.evaluation),
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
         "regimes": regimes,
         "contrasts": contrasts,
+        "learned_weight_histograms": weight_histograms(logged, targets[0][2], protocol.horizon),
+        **({} if side_by_side is None else {"side_by_side": [
+            {"name": name, "estimates": evaluate_regime(logged, one_hot(codes, len(protocol.actions)), protocol, True)}
+            for name, codes in side_by_side.items()
+        ]}),  # fmt: skip
     }

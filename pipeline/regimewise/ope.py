@@ -54,6 +54,9 @@ class OffPolicyEstimate:
     n_episodes : int
     per_step_ess : tuple of float
         Kish effective sample size of the cumulative weights at each step 0..H-1.
+    se : float
+        Standard error over episodes where a closed form exists (IS, PDIS and DR: standard deviation of the
+        per-episode terms over √n; WIS: the ratio-estimator linearisation); NaN otherwise (use the bootstrap).
     """
 
     estimator: str
@@ -64,6 +67,7 @@ class OffPolicyEstimate:
     n_following: int
     n_episodes: int
     per_step_ess: tuple
+    se: float = float("nan")
 
     def to_dict(self):
         """Plain Python values ready for JSON; NaN becomes None."""
@@ -188,7 +192,7 @@ def _kish(w):
     return float(total * total / np.sum(w * w)) if total > 0 else 0.0
 
 
-def _estimate(name, value, weights):
+def _estimate(name, value, weights, se=float("nan")):
     final = weights.cumulative[:, -1]
     total = final.sum()
     ess = _kish(final)
@@ -201,7 +205,13 @@ def _estimate(name, value, weights):
         n_following=weights.n_following,
         n_episodes=int(final.size),
         per_step_ess=tuple(_kish(column) for column in weights.cumulative.T),
+        se=float(se),
     )
+
+
+def _mean_se(terms):
+    """Standard error of the mean of independent per-episode terms: sample sd (ddof 1) over √n."""
+    return float(np.std(terms, ddof=1) / np.sqrt(terms.size)) if terms.size > 1 else float("nan")
 
 
 def _discounts(horizon, gamma):
@@ -230,7 +240,8 @@ def _self_normalised(numerator, denominator):
 def trajectory_is(weights, gamma=1.0):
     """Trajectory-wise importance sampling: mean over episodes of ρ_{i,H-1} · G_i (Precup et al. 2000)."""
     returns = weights.reward @ _discounts(weights.reward.shape[1], gamma)
-    return _estimate("IS", np.mean(weights.cumulative[:, -1] * returns), weights)
+    terms = weights.cumulative[:, -1] * returns
+    return _estimate("IS", terms.mean(), weights, _mean_se(terms))
 
 
 def weighted_trajectory_is(weights, gamma=1.0):
@@ -241,13 +252,16 @@ def weighted_trajectory_is(weights, gamma=1.0):
     """
     returns = weights.reward @ _discounts(weights.reward.shape[1], gamma)
     final = weights.cumulative[:, -1]
-    return _estimate("WIS", _self_normalised(final @ returns, final.sum()), weights)
+    value = _self_normalised(final @ returns, final.sum())
+    # ratio-estimator linearisation: Var ≈ Σ_i ρ_i² (G_i − V)² / (Σ_i ρ_i)² (Cochran 1977, Sampling Techniques, §6)
+    se = np.sqrt(np.sum((final * (returns - value)) ** 2)) / final.sum() if final.sum() > 0 else np.nan
+    return _estimate("WIS", value, weights, se)
 
 
 def per_decision_is(weights, gamma=1.0):
     """Per-decision importance sampling: (1/n) Σ_i Σ_t γ^t ρ_{i,t} r_{i,t} (Precup, Sutton & Singh 2000)."""
-    per_step = np.sum(weights.cumulative * weights.reward, axis=0) / weights.reward.shape[0]
-    return _estimate("PDIS", per_step @ _discounts(per_step.size, gamma), weights)
+    terms = (weights.cumulative * weights.reward) @ _discounts(weights.reward.shape[1], gamma)
+    return _estimate("PDIS", terms.mean(), weights, _mean_se(terms))
 
 
 def per_decision_wis(weights, gamma=1.0):
@@ -263,7 +277,10 @@ def per_decision_wis(weights, gamma=1.0):
 
 
 def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
-    """Σ_t γ^t Σ_i [w_{i,t} r_{i,t} − (w_{i,t} Q̂_t(s, a) − w_{i,t−1} V̂_t(s))] with w_{i,−1} = 1/n."""
+    """Per-episode terms Σ_t γ^t [w_{i,t} r_{i,t} − (w_{i,t} Q̂_t(s, a) − w_{i,t−1} V̂_t(s))], w_{i,−1} = 1/n.
+
+    Their sum over episodes is the estimate.
+    """
     n_rows = weights.row_step.shape[0]
     q, v = check_finite(q_taken, "q_taken", 1), check_finite(v_target, "v_target", 1)
     if not q.shape[0] == v.shape[0] == n_rows:
@@ -271,7 +288,7 @@ def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
     q, v = weights.to_grid(q), weights.to_grid(v)
     previous = np.hstack([np.full((normalised.shape[0], 1), 1.0 / normalised.shape[0]), normalised[:, :-1]])
     terms = normalised * weights.reward - (normalised * q - previous * v)
-    return terms.sum(axis=0) @ _discounts(terms.shape[1], gamma)
+    return terms @ _discounts(terms.shape[1], gamma)
 
 
 def doubly_robust(weights, q_taken, v_target, gamma=1.0):
@@ -290,8 +307,9 @@ def doubly_robust(weights, q_taken, v_target, gamma=1.0):
         V̂_t(s) = Σ_a π_e(a|s) Q̂_t(s, a) at each decision.
     gamma : float, default 1.0
     """
-    normalised = weights.cumulative / weights.cumulative.shape[0]
-    return _estimate("DR", _doubly_robust_value(normalised, weights, q_taken, v_target, gamma), weights)
+    n = weights.cumulative.shape[0]
+    per_episode = _doubly_robust_value(weights.cumulative / n, weights, q_taken, v_target, gamma)
+    return _estimate("DR", per_episode.sum(), weights, _mean_se(n * per_episode))
 
 
 def weighted_doubly_robust(weights, q_taken, v_target, gamma=1.0):
@@ -309,7 +327,7 @@ def weighted_doubly_robust(weights, q_taken, v_target, gamma=1.0):
     gamma : float, default 1.0
     """
     normalised = _self_normalised(weights.cumulative, weights.cumulative.sum(axis=0))
-    return _estimate("WDR", _doubly_robust_value(normalised, weights, q_taken, v_target, gamma), weights)
+    return _estimate("WDR", _doubly_robust_value(normalised, weights, q_taken, v_target, gamma).sum(), weights)
 
 
 def evaluate_off_policy(

@@ -59,6 +59,20 @@ class ColumnMap(_Strict):
     day: ColumnName = "day"
     action: ColumnName = "action"
     reward: ColumnName = "reward"
+    followup: ColumnName = Field("followup_days", description="episodes table: days from index to event or censoring")
+    event: ColumnName = Field("event", description="episodes table: 1 event observed, 0 censored")
+
+
+class AcknowledgedColumn(_Strict):
+    """A column whose name or values look like an identifier, kept on purpose with a written justification."""
+
+    column: ColumnName
+    justification: Annotated[str, Field(min_length=20, max_length=1000)] = Field(
+        description="why this column is not a direct identifier (recorded in the report)"
+    )
+
+
+MissingPolicy = Literal["refuse", "drop", "carry_forward", "indicator"]
 
 
 class DataSpec(_Strict):
@@ -66,7 +80,20 @@ class DataSpec(_Strict):
 
     decisions: ColumnName = Field(description="decisions table (CSV or Parquet), relative to the protocol file")
     episodes: ColumnName | None = Field(None, description="optional episodes table, relative to the protocol file")
+    root: ColumnName = Field(
+        ".", description="folder the record paths must stay inside, relative to the protocol file"
+    )
+    delimiter: Literal[",", ";", "\t"] = Field(",", description="field separator of CSV files")
     columns: ColumnMap = ColumnMap()
+    missing: dict[Identifier, MissingPolicy] = Field(
+        default_factory=dict,
+        description="per state: refuse (default), drop the decision point and the rest of its episode, "
+        "carry_forward the episode's last observation, or indicator (fill with the observed median and add "
+        "<state>_missing)",
+    )
+    acknowledged_columns: Annotated[list[AcknowledgedColumn], Field(max_length=50)] = Field(
+        default_factory=list, description="identifier-like columns kept on purpose, each with a justification"
+    )
 
 
 class StateVariable(_Strict):
@@ -98,6 +125,10 @@ class Action(_Strict):
 
     label: Identifier
     description: ShortText
+    intensity: Annotated[int, Field(ge=-10, le=10)] | None = Field(
+        None, description="ordinal change in therapy intensity this action makes (e.g. -1 step down, 0 hold, +1 "
+        "step up); needed only for constraints.max_intensity_change"
+    )
 
 
 class RewardSpec(_Strict):
@@ -109,19 +140,105 @@ class RewardSpec(_Strict):
 class BehaviourModelSpec(_Strict):
     """Model of usual care: the probability of each action given the state."""
 
-    kind: Literal["multinomial_logit"] = "multinomial_logit"
+    kind: Literal["multinomial_logit", "gradient_boosting"] = Field(
+        "multinomial_logit",
+        description="multinomial_logit (statsmodels MNLogit) or gradient_boosting (histogram gradient boosting)",
+    )
     include_step: bool = Field(True, description="add the decision index as a covariate")
-    max_iterations: Annotated[int, Field(ge=10, le=1000)] = 100
+    max_iterations: Annotated[int, Field(ge=10, le=1000)] = Field(
+        100, description="optimiser iterations (multinomial_logit) or boosting rounds (gradient_boosting)"
+    )
+    spline_states: Annotated[list[Identifier], Field(max_length=50)] = Field(
+        [], description="non-binary states entered as natural cubic splines (multinomial_logit only)"
+    )
+    spline_df: Annotated[int, Field(ge=3, le=10)] = Field(4, description="degrees of freedom of each spline")
+    folds: Annotated[int, Field(ge=1, le=20)] = Field(
+        5,
+        description="cross-fitting folds, split by patient; records get out-of-fold probabilities. 1 = no "
+        "cross-fitting (in-sample probabilities), allowed only for the parametric multinomial_logit",
+    )
+    probability_floor: Annotated[float, Field(ge=0.0, le=0.05)] = Field(
+        0.001, description="every action's estimated probability is raised to at least this (rows still sum to 1)"
+    )
+    truncation_percentiles: tuple[float, float] = Field(
+        (1.0, 99.0), description="[low, high] percentiles at which weights are truncated in the diagnostics"
+    )
+
+    @model_validator(mode="after")
+    def _percentiles_ordered(self) -> BehaviourModelSpec:
+        low, high = self.truncation_percentiles
+        if not 0.0 <= low < high <= 100.0:
+            raise ValueError(f"truncation_percentiles must satisfy 0 <= low < high <= 100, got [{low}, {high}]")
+        if self.folds == 1 and self.kind == "gradient_boosting":
+            raise ValueError("gradient_boosting must be cross-fitted: set behaviour_model.folds to 2 or more")
+        return self
 
 
 class QModelSpec(_Strict):
     """Model of the action-value function at each decision point."""
 
-    kind: Literal["linear"] = Field("linear", description="least squares with action-by-state interactions")
+    kind: Literal["linear", "gradient_boosting"] = Field(
+        "linear", description="linear: least squares with action-by-state interactions; gradient_boosting: "
+        "scikit-learn histogram gradient boosting with the action encoded as features"
+    )
     basis: Literal["linear", "quadratic"] = Field(
         "linear", description="quadratic adds the square of every non-binary state to the covariates"
     )
-    ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] = 0.0
+    ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] | Literal["cv"] = Field(
+        0.0, description="ridge penalty of the linear Q-model, or 'cv' to choose it from ridge_grid by "
+        "cross-validation with folds by patient"
+    )
+    ridge_grid: Annotated[list[Annotated[float, Field(ge=0.0, le=1e6)]], Field(min_length=1, max_length=30)] = [
+        0.0, 0.1, 1.0, 10.0, 100.0
+    ]
+    cv_folds: Annotated[int, Field(ge=2, le=20)] = Field(
+        5, description="folds by patient for choosing the ridge penalty and for the out-of-fold error"
+    )
+    learning_mode: Literal["backward", "pooled"] = Field(
+        "backward", description="backward: one Q-model per decision point, by backward induction; pooled: one "
+        "Q-model with the decision index as a feature, iterated to the tolerance (episodes of unequal length)"
+    )
+    tolerance: Annotated[float, Field(gt=0.0, le=1.0)] = Field(
+        1e-6, description="pooled mode stops when no regression target moves by more than this"
+    )
+    max_iterations: Annotated[int, Field(ge=1, le=1000)] = Field(200, description="pooled mode iteration cap")
+    boosting_max_iter: Annotated[int, Field(ge=10, le=2000)] = Field(
+        100, description="boosting rounds of each gradient boosting Q-model"
+    )
+    boosting_max_leaf_nodes: Annotated[int, Field(ge=2, le=255)] = 15
+    boosting_learning_rate: Annotated[float, Field(gt=0.0, le=1.0)] = 0.1
+    boosting_min_samples_leaf: Annotated[int, Field(ge=1, le=10_000)] = 50
+
+
+class StateCondition(_Strict):
+    """One structured condition on a state (never an expression string)."""
+
+    state: Identifier
+    comparison: Literal["below", "at_most", "above", "at_least", "in", "not_in"]
+    value: float | None = Field(None, description="threshold for below / at_most / above / at_least")
+    values: Annotated[list[float], Field(min_length=1, max_length=50)] | None = Field(
+        None, description="set of values for in / not_in"
+    )
+
+    @model_validator(mode="after")
+    def _operand(self) -> StateCondition:
+        needs_set = self.comparison in ("in", "not_in")
+        if needs_set and (self.values is None or self.value is not None):
+            raise ValueError(f"condition on {self.state!r}: comparison {self.comparison!r} takes 'values' (a list)")
+        if not needs_set and (self.value is None or self.values is not None):
+            raise ValueError(f"condition on {self.state!r}: comparison {self.comparison!r} takes 'value' (a number)")
+        return self
+
+
+class ClinicalRule(_Strict):
+    """Forbid actions at decisions where every condition holds."""
+
+    name: Identifier
+    forbid: Annotated[list[Identifier], Field(min_length=1)] = Field(description="action labels forbidden")
+    when: Annotated[list[StateCondition], Field(min_length=1, max_length=10)] = Field(
+        description="conditions that must all hold for the rule to apply"
+    )
+    reason: Annotated[str, Field(max_length=300)] = ""
 
 
 class Constraints(_Strict):
@@ -130,18 +247,55 @@ class Constraints(_Strict):
     support_threshold: Probability = Field(
         0.05, description="an action may be recommended only if usual care's estimated probability is at least this"
     )
+    clinical_rules: Annotated[list[ClinicalRule], Field(max_length=100)] = []
+    max_intensity_change: Annotated[int, Field(ge=0, le=10)] | None = Field(
+        None, description="forbid actions whose |intensity| exceeds this (every action then needs an intensity)"
+    )
+    pessimism: Annotated[float, Field(ge=0.0, le=10.0)] = Field(
+        0.0, description="k: rank actions by mean minus k standard deviations of bootstrap Q-models (0 = off)"
+    )
+    ensemble_size: Annotated[int, Field(ge=2, le=200)] = Field(
+        20, description="bootstrap Q-models (resampling patients) used when pessimism > 0"
+    )
 
 
 class EvaluationSpec(_Strict):
     """Off-policy evaluation settings."""
 
-    estimators: Annotated[list[Literal["pdwis", "wdr", "fqe"]], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
+    estimators: Annotated[
+        list[Literal["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]], Field(min_length=1)
+    ] = ["pdwis", "wdr", "fqe"]
     fixed_strategies: bool = Field(True, description="also evaluate 'always <action>' for every action")
+    replicates: Annotated[int, Field(ge=0, le=100_000)] = Field(
+        200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
+    )
+    shards: Annotated[int, Field(ge=1, le=1000)] = Field(
+        4, description="bootstrap replicates are split into this many separate workflow jobs"
+    )
+    interval_level: Annotated[float, Field(ge=0.5, le=0.999)] = Field(0.95, description="bootstrap interval level")
+    interval_method: Literal["percentile", "basic"] = Field(
+        "percentile", description="percentile, or basic (2·estimate − quantiles: corrects the bootstrap's estimated "
+        "bias, e.g. the optimism of evaluating a regime on the records it was learned from)"
+    )
+    minimum_ess_fraction: Probability = Field(
+        0.05, description="an estimate whose effective sample size is below this share of episodes is unreliable"
+    )
+    minimum_ess: Annotated[float, Field(ge=30.0)] = Field(
+        30.0, description="absolute floor of the reliable effective sample size (never below 30)"
+    )
+    m_out_of_n: bool = Field(
+        False, description="adaptive m-out-of-n bootstrap (Chakraborty, Laber & Zhao 2013) for near-tied actions"
+    )
+    m_out_of_n_alpha: Annotated[float, Field(gt=0.0, le=10.0)] = Field(
+        0.1, description="alpha of the adaptive m-out-of-n resample size m = n^((1 + alpha (1 - p)) / (1 + alpha))"
+    )
 
     @model_validator(mode="after")
     def _unique(self) -> EvaluationSpec:
         if len(set(self.estimators)) != len(self.estimators):
             raise ValueError("evaluation.estimators lists an estimator twice")
+        if self.replicates and self.shards > self.replicates:
+            raise ValueError(f"evaluation.shards ({self.shards}) exceeds evaluation.replicates ({self.replicates})")
         return self
 
 
@@ -179,6 +333,32 @@ class Protocol(_Strict):
         clash = sorted(contract & {s.source_column for s in self.states})
         if clash:
             raise ValueError(f"state column {clash[0]!r} is also a data-contract column in data.columns")
+        unknown = sorted(set(self.data.missing) - set(self.state_names))
+        if unknown:
+            raise ValueError(f"data.missing names {unknown[0]!r}, which is not a declared state")
+        _refuse_repeats([a.column for a in self.data.acknowledged_columns], "data.acknowledged_columns", "column")
+        return self
+
+    @model_validator(mode="after")
+    def _spline_states_numeric(self) -> Protocol:
+        kinds = {s.name: s.kind for s in self.states}
+        for name in self.behaviour_model.spline_states:
+            if kinds.get(name) in (None, "binary"):
+                raise ValueError(f"behaviour_model.spline_states: {name!r} is not a declared non-binary state")
+        return self
+
+    @model_validator(mode="after")
+    def _constraints_refer_to_protocol(self) -> Protocol:
+        states, labels = set(self.state_names), set(self.action_labels)
+        _refuse_repeats([r.name for r in self.constraints.clinical_rules], "constraints", "clinical rule name")
+        for rule in self.constraints.clinical_rules:
+            unknown = sorted(set(rule.forbid) - labels) or sorted({c.state for c in rule.when} - states)
+            if unknown:
+                raise ValueError(f"clinical rule {rule.name!r} names {unknown[0]!r}: not a declared action or state")
+        if self.constraints.max_intensity_change is not None:
+            missing = [a.label for a in self.actions if a.intensity is None]
+            if missing:
+                raise ValueError(f"max_intensity_change needs an intensity on every action; {missing[0]!r} has none")
         return self
 
     @property
@@ -239,6 +419,19 @@ class ProtocolFile:
         episodes = self.protocol.data.episodes
         return None if episodes is None else self.resolve(episodes)
 
+    def check_record_paths(self) -> None:
+        """Refuse a relative record path that climbs out of ``data.root`` (absolute paths are taken as written)."""
+        root = self.resolve(self.protocol.data.root)
+        for key in ("decisions", "episodes"):
+            written = getattr(self.protocol.data, key)
+            if written is None or Path(written).is_absolute():
+                continue
+            if not self.resolve(written).is_relative_to(root):
+                raise ProtocolError(
+                    f"protocol {self.path}: data.{key} {written!r} leads outside data.root {self.protocol.data.root!r};"
+                    " move the file inside that folder or widen data.root"
+                )
+
 
 def load_protocol(path: str | Path) -> ProtocolFile:
     """Read and validate a protocol file.
@@ -264,7 +457,9 @@ def load_protocol(path: str | Path) -> ProtocolFile:
         protocol = Protocol.model_validate(data)
     except ValidationError as err:
         raise ProtocolError(f"protocol {path}: {_describe_validation_error(err)}") from None
-    return ProtocolFile(protocol=protocol, path=path, sha256=hashlib.sha256(raw).hexdigest())
+    pf = ProtocolFile(protocol=protocol, path=path, sha256=hashlib.sha256(raw).hexdigest())
+    pf.check_record_paths()
+    return pf
 
 
 def _describe_validation_error(err: ValidationError) -> str:

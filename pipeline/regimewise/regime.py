@@ -16,24 +16,50 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .behaviour import MultinomialLogitBehaviour
-from .features import QFeatures, StateScaler, action_codes, behaviour_design, episode_codes
+from .behaviour import (
+    BehaviourDesign,
+    GradientBoostingBehaviour,
+    MultinomialLogitBehaviour,
+    apply_probability_floor,
+    cross_fit_proba,
+    patient_folds,
+)
+from .features import QFeatures, StateScaler, action_codes, episode_codes
+from .clinical_rules import ClinicalRuleSet
 from .fqi import FittedQIteration
 from .protocol import Protocol
 
 
-@dataclass(frozen=True)
-class UsualCareModel:
-    """The fitted usual-care model with the scaling of its covariates."""
+# Spawn key of the usual-care model's random streams under the protocol's root seed.
+BEHAVIOUR_SPAWN_KEY = 1
+# Spawn key of the Q-models' random streams (folds, boosting, bootstrap ensemble) under the root seed.
+REGIME_SPAWN_KEY = 2
+# Side-by-side regimes, each adding one safeguard to the previous one.
+SAFEGUARDS = ("unconstrained", "support", "rules", "pessimistic")
 
-    scaler: StateScaler
-    model: MultinomialLogitBehaviour
-    horizon: int
-    include_step: bool
+
+@dataclass(frozen=True, eq=False)
+class UsualCareModel:
+    """The fitted usual-care model, its design, and the cross-fitted probabilities of the training records.
+
+    ``model`` is fitted on all decisions and predicts new states (e.g. new patients in the simulator);
+    ``record_proba`` holds each training decision's out-of-fold probabilities (the model of the other folds'
+    patients), both raised to the protocol's probability floor.
+    """
+
+    design: BehaviourDesign
+    model: MultinomialLogitBehaviour | GradientBoostingBehaviour
+    floor: float
+    record_proba: np.ndarray
+    folds: np.ndarray
+
+    @property
+    def scaler(self) -> StateScaler:
+        return self.design.scaler
 
     def predict_proba(self, frame: pd.DataFrame) -> np.ndarray:
         """Estimated probability of each action (protocol order) at each row's state and step."""
-        return self.model.predict_proba(behaviour_design(self.scaler, frame, self.horizon, self.include_step))
+        return apply_probability_floor(self.model.predict_proba(self.design.transform(frame)), self.floor)
 
 
 @dataclass(frozen=True)
@@ -44,6 +70,7 @@ class LearnedRegime:
     q_features: QFeatures
     fqi: FittedQIteration
     action_labels: tuple[str, ...]
+    rules: ClinicalRuleSet | None = None
 
     def q_values(self, frame: pd.DataFrame) -> np.ndarray:
         return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
@@ -53,33 +80,69 @@ class LearnedRegime:
         if behaviour_proba is None:
             behaviour_proba = self.usual_care.predict_proba(frame)
         steps = frame["step"].to_numpy(dtype=np.int64)
-        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba)
+        permitted = None if self.rules is None else self.rules.permitted(frame)
+        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba, permitted)
 
     def __call__(self, frame: pd.DataFrame) -> np.ndarray:
         return self.recommend(frame)
 
 
-def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareModel:
-    """Fit the protocol's usual-care model: multinomial logistic regression of action on state and step."""
+def _behaviour_model_factory(protocol: Protocol, seed: int):
     spec = protocol.behaviour_model
-    scaler = StateScaler.fit(decisions, protocol)
-    design = behaviour_design(scaler, decisions, protocol.horizon, spec.include_step)
-    model = MultinomialLogitBehaviour(maxiter=spec.max_iterations).fit(
-        design, action_codes(decisions, protocol.action_labels), len(protocol.actions)
-    )
-    return UsualCareModel(scaler, model, protocol.horizon, spec.include_step)
+    if spec.kind == "gradient_boosting":
+        return lambda: GradientBoostingBehaviour(max_iter=spec.max_iterations, random_state=seed)
+    return lambda: MultinomialLogitBehaviour(maxiter=spec.max_iterations)
+
+
+def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareModel:
+    """Fit the protocol's usual-care model with K-fold cross-fitting by patient (none when ``folds`` is 1).
+
+    The model (multinomial logit or gradient boosting, optionally with spline terms) is fitted once per fold
+    for the records' out-of-fold probabilities and once on all decisions for new states. Seeds come from the
+    protocol's root seed (``SeedSequence(seed, spawn_key=(BEHAVIOUR_SPAWN_KEY,))``).
+    """
+    spec = protocol.behaviour_model
+    fold_seed, model_seed = np.random.SeedSequence(protocol.seed, spawn_key=(BEHAVIOUR_SPAWN_KEY,)).generate_state(2)
+    design = BehaviourDesign.fit(decisions, protocol)
+    X = design.transform(decisions)
+    codes = action_codes(decisions, protocol.action_labels)
+    make_model = _behaviour_model_factory(protocol, int(model_seed))
+    model = make_model().fit(X, codes, len(protocol.actions))
+    if spec.folds == 1:  # parametric model, no cross-fitting: in-sample probabilities for the records
+        folds = np.zeros(len(decisions), dtype=np.int64)
+        out_of_fold = model.predict_proba(X)
+    else:
+        folds = patient_folds(decisions["patient_id"].to_numpy(), spec.folds, int(fold_seed))
+        out_of_fold = cross_fit_proba(make_model, X, codes, len(protocol.actions), folds)
+    floor = spec.probability_floor
+    return UsualCareModel(design, model, floor, apply_probability_floor(out_of_fold, floor), folds)
 
 
 def fit_q_learning(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures
+    decisions: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    protocol: Protocol,
+    features: QFeatures,
+    *,
+    safeguards: str = "pessimistic",
+    oof_error: bool = False,
 ) -> FittedQIteration:
-    """Backward fitted-Q iteration on the decisions, constrained by usual-care support."""
+    """Fitted-Q iteration on the decisions with the protocol's Q-model, learning mode and safeguards.
+
+    ``safeguards`` is one of :data:`SAFEGUARDS`: each level adds one safeguard to the previous one
+    (``"pessimistic"``, the default, applies every safeguard the protocol sets).
+    """
+    level = SAFEGUARDS.index(safeguards)
+    c, q = protocol.constraints, protocol.q_model
+    rules = ClinicalRuleSet.from_protocol(protocol) if level >= 2 else None
     return FittedQIteration(
-        n_actions=len(protocol.actions),
-        horizon=protocol.horizon,
-        gamma=protocol.discount,
-        support_threshold=protocol.constraints.support_threshold,
-        alpha=protocol.q_model.ridge_alpha,
+        n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
+        support_threshold=c.support_threshold if level >= 1 else 0.0,
+        alpha=q.ridge_alpha, q_model=q.kind, mode=q.learning_mode, alpha_grid=tuple(q.ridge_grid),
+        cv_folds=q.cv_folds, tolerance=q.tolerance, max_iterations=q.max_iterations,
+        boosting_params=boosting_params(protocol), pessimism=c.pessimism if level >= 3 and c.pessimism > 0 else None,
+        ensemble_size=c.ensemble_size, oof_error=oof_error,
+        random_state=int(np.random.SeedSequence(protocol.seed, spawn_key=(REGIME_SPAWN_KEY,)).generate_state(1)[0]),
     ).fit(
         features.transform(decisions),
         decisions["step"].to_numpy(dtype=np.int64),
@@ -87,13 +150,71 @@ def fit_q_learning(
         decisions["reward"].to_numpy(dtype=float),
         episode_codes(decisions),
         behaviour_proba,
-    )
+        rule_permitted=None if rules is None else rules.permitted(decisions),
+        groups=pd.factorize(decisions["patient_id"], sort=False)[0] if "patient_id" in decisions else None,
+    )  # fmt: skip
+
+
+def boosting_params(protocol: Protocol) -> dict:
+    """Keyword arguments of the gradient boosting Q-model from the protocol."""
+    q = protocol.q_model
+    return {"max_iter": q.boosting_max_iter, "max_leaf_nodes": q.boosting_max_leaf_nodes,
+            "learning_rate": q.boosting_learning_rate, "min_samples_leaf": q.boosting_min_samples_leaf}  # fmt: skip
+
+
+def regime_variants(
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures
+) -> dict[str, FittedQIteration]:
+    """The side-by-side regimes: unconstrained, support-, rule-constrained and (if k > 0) pessimistic.
+
+    Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
+    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models.
+    """
+    names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
+    return {
+        name: fit_q_learning(decisions, behaviour_proba, protocol, features, safeguards=name,
+                             oof_error=name == names[-1])
+        for name in names
+    }  # fmt: skip
+
+
+SAFEGUARD_LABELS = {
+    "unconstrained": "Unconstrained",
+    "support": "Support-constrained",
+    "rules": "Rule- and support-constrained",
+    "pessimistic": "Pessimistic (rules, support, mean − k·sd)",
+}
+
+
+def safeguard_summary(protocol: Protocol, decisions: pd.DataFrame, variants: dict, chosen: dict,
+                      behaviour_proba: np.ndarray, rules: ClinicalRuleSet) -> dict:  # fmt: skip
+    """How often each side-by-side regime differs from usual care and how many decisions each safeguard changed.
+
+    ``chosen`` maps each variant name (in :data:`SAFEGUARDS` order) to its recommended action codes at the
+    decisions; a safeguard's count is the decisions where its regime differs from the previous one.
+    """
+    taken = action_codes(decisions, protocol.action_labels)
+    most_likely = behaviour_proba.argmax(axis=1)
+    violations = {name: rules.violations(decisions, codes) for name, codes in chosen.items()}
+    rows, previous = [], None
+    for name, codes in chosen.items():
+        rows.append({
+            "name": name,
+            "label": SAFEGUARD_LABELS[name],
+            "share_differs_from_taken": float(np.mean(codes != taken)),
+            "share_differs_from_usual_most_likely": float(np.mean(codes != most_likely)),
+            "decisions_changed_by_this_safeguard": None if previous is None else int(np.sum(codes != previous)),
+            "rule_violations": int(violations[name].sum()),
+            "decisions_without_permitted_action": int(variants[name].n_without_permitted_action_),
+        })  # fmt: skip
+        previous = codes
+    return {"side_by_side": rows, "clinical_rules": {**rules.to_dict(), **rules.counts(decisions)}}
 
 
 def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
     """Fit usual care, then the constrained regime, on validated decisions sorted by episode and step."""
     usual_care = fit_usual_care(decisions, protocol)
-    proba = usual_care.predict_proba(decisions)
+    proba = usual_care.record_proba
     features = QFeatures.from_protocol(usual_care.scaler, protocol)
     fqi = fit_q_learning(decisions, proba, protocol, features)
-    return LearnedRegime(usual_care, features, fqi, protocol.action_labels)
+    return LearnedRegime(usual_care, features, fqi, protocol.action_labels, ClinicalRuleSet.from_protocol(protocol))

@@ -17,6 +17,8 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 
+from .bootstrap import merge_intervals  # noqa: E402
+from .describe import section_figures, usual_care_summary  # noqa: E402
 from .io import read_json, write_json, write_text  # noqa: E402
 from .protocol import load_protocol  # noqa: E402
 from .provenance import provenance as build_provenance  # noqa: E402
@@ -34,7 +36,8 @@ CAUTIONS = (
 SUMMARY_SCHEMA_VERSION = "1"
 
 
-def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance):
+def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance, intervals=None,
+                 cohort=None):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
     pf = load_protocol(protocol)
     p = pf.protocol
@@ -42,7 +45,8 @@ def report_stage(protocol, validation, behaviour, regime, values, html, summary,
         "validation": read_json(validation),
         "behaviour": read_json(behaviour),
         "regime": read_json(regime),
-        "values": read_json(values),
+        "values": merge_intervals(read_json(values), None if intervals is None else read_json(intervals)),
+        "cohort": None if cohort is None else read_json(cohort),
     }
     prov = build_provenance(pf)
     headline = build_summary(p, parts, prov)
@@ -64,24 +68,55 @@ def build_summary(p, parts, prov) -> dict:
             "patients": parts["validation"]["patients"],
             "decisions": parts["validation"]["rows_kept"],
         },
+        "validation": {
+            "rows_read": parts["validation"]["rows_read"],
+            "decisions_dropped_missing": parts["validation"].get("rows_dropped_missing", 0),
+            "episodes_dropped_missing": parts["validation"].get("episodes_dropped_missing", 0),
+            "values_filled_missing": sum(m.get("filled", 0) for m in parts["validation"].get("missing_data", {}).values()),
+            "acknowledged_columns": [a["column"] for a in parts["validation"].get("acknowledged_columns", [])],
+        },
         "usual_care_model": {
             "auc": parts["behaviour"]["auc"],
             "converged": parts["behaviour"]["model"]["converged"],
             "inverse_probability_weights": parts["behaviour"]["inverse_probability_weights"],
+            **usual_care_summary(parts["behaviour"], parts.get("cohort")),
         },
         "regime": {
             "support_threshold": parts["regime"]["constraints"]["support_threshold"],
             "decisions_changed_by_support": parts["regime"]["decisions_changed_by_support"],
             "share_differs_from_taken": parts["regime"]["share_differs_from_taken"],
+            **safeguard_headlines(parts["regime"], values),
         },
         "values": {r["name"]: r["estimates"] for r in values["regimes"]},
         "usual_care_observed": values["usual_care_observed"],
         "contrasts": values["contrasts"],
         "minimum_reliable_ess": values["minimum_reliable_ess"],
+        "bootstrap": values["bootstrap"],
         "headline": headline_sentence(p, values),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
+    }
+
+
+def safeguard_headlines(regime: dict, values: dict) -> dict:
+    """Side-by-side regimes (what each safeguard changed, rule violations, values) and the readable tree's fidelity."""
+    if "side_by_side" not in regime:
+        return {}
+    estimates = {r["name"]: r["estimates"] for r in values.get("side_by_side", [])}
+    return {
+        "decisions_without_permitted_action": regime["decisions_without_permitted_action"],
+        "pessimism": regime["constraints"]["pessimism"],
+        "side_by_side": {
+            r["name"]: {
+                "share_differs_from_taken": r["share_differs_from_taken"],
+                "decisions_changed_by_this_safeguard": r["decisions_changed_by_this_safeguard"],
+                "rule_violations": r["rule_violations"],
+                "values": {est: e["value"] for est, e in estimates.get(r["name"], {}).items()},
+            }
+            for r in regime["side_by_side"]
+        },
+        "readable_tree_fidelity": regime["readable"]["fidelity"],
     }
 
 
@@ -99,7 +134,8 @@ def headline_sentence(p, values) -> str:
     direction = "higher" if contrast["difference"] > 0 else "lower"
     sentence = (
         f"By {name}, the learned regime's expected total reward per episode is {abs(contrast['difference']):.2f} "
-        f"{direction} than usual care's, resting on an effective sample of {ess:.1f} episodes"
+        f"{direction} than usual care's{_interval_clause(contrast, values.get('bootstrap'))}, resting on an "
+        f"effective sample of {ess:.1f} episodes"
     )
     if contrast["low_ess"]:
         return sentence + (
@@ -107,6 +143,15 @@ def headline_sentence(p, values) -> str:
             "difference; a higher support threshold keeps the regime closer to usual care and better supported."
         )
     return sentence + "."
+
+
+def _interval_clause(contrast, bootstrap) -> str:
+    """' (95% interval −1.20 to 3.40 for learned minus usual care; it includes no difference)' or ''."""
+    if contrast.get("low") is None or not bootstrap:
+        return ""
+    low, high = contrast["low"], contrast["high"]
+    covers = " — it includes no difference" if low <= 0 <= high else ""
+    return f" ({100 * bootstrap['level']:.0f}% bootstrap interval for the difference {low:.2f} to {high:.2f}{covers})"
 
 
 # ---------------------------------------------------------------------------------------------- figures
@@ -144,24 +189,49 @@ def actions_by_step_figure(labels, by_step) -> str:
 
 
 def value_figure(regimes, estimators) -> str:
-    """Point estimate of each regime's value by each estimator (hollow markers: effective sample too small)."""
+    """Forest plot: each regime's value by each estimator with its bootstrap interval.
+
+    Hollow markers and dashed grey intervals: effective sample too small to be trusted.
+    """
     _style()
-    fig, ax = plt.subplots(figsize=(6.5, 0.45 * len(regimes) + 1.0))
-    markers = {"pdwis": "o", "wdr": "s", "fqe": "D"}
+    fig, ax = plt.subplots(figsize=(7.0, 0.32 * len(regimes) * len(estimators) + 1.2))
+    markers = {"is": "v", "wis": "^", "pdis": "<", "pdwis": "o", "dr": ">", "wdr": "s", "fqe": "D"}
     for j, est in enumerate(estimators):
         labelled = False
         for i, r in enumerate(regimes):
             e = r["estimates"].get(est)
             if e is None or e["value"] is None:
                 continue
-            y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * 0.25
-            face = "none" if e["low_ess"] else f"C{j}"
-            ax.plot([e["value"]], [y], markers.get(est, "o"), color=f"C{j}", markerfacecolor=face,
-                    label=None if labelled else est)  # fmt: skip
+            y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * (0.8 / len(estimators))
+            color = "0.6" if e["low_ess"] else f"C{j}"
+            if e.get("low") is not None:
+                ax.hlines(y, e["low"], e["high"], color=color, linewidth=1.2,
+                          linestyles="dashed" if e["low_ess"] else "solid")  # fmt: skip
+            ax.plot([e["value"]], [y], markers.get(est, "o"), color=f"C{j}",
+                    markerfacecolor="none" if e["low_ess"] else f"C{j}", label=None if labelled else est)  # fmt: skip
             labelled = True
     ax.set_yticks(range(len(regimes)), [r["label"] for r in reversed(regimes)])
     ax.set_xlabel("estimated value (expected total reward per episode)")
-    ax.legend(frameon=False, loc="lower right")
+    ax.legend(frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
+    return _svg(fig)
+
+
+def weight_histogram_figure(histograms) -> str:
+    """Histogram of log10 cumulative importance weights of the learned regime at each decision point."""
+    _style()
+    by_step = histograms["by_step"]
+    edges = histograms["log10_edges"]
+    columns = min(4, len(by_step))
+    rows = -(-len(by_step) // columns)
+    fig, axes = plt.subplots(rows, columns, figsize=(2.2 * columns, 1.7 * rows), sharex=True, squeeze=False)
+    for ax in axes.flat[len(by_step) :]:
+        ax.set_visible(False)
+    for ax, h in zip(axes.flat, by_step):
+        ax.bar(edges[:-1], h["counts"], width=[b - a for a, b in zip(edges[:-1], edges[1:])], align="edge",
+               color="C0", edgecolor="white", linewidth=0.4)  # fmt: skip
+        ax.set_title(f"decision {h['step']}: {h['zero']:,} at 0", fontsize=8)
+    for ax in axes[-1]:
+        ax.set_xlabel("log10 weight")
     return _svg(fig)
 
 
@@ -202,4 +272,7 @@ def render_html(p, parts, prov, headline) -> str:
         summary=headline,
         actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
         value_figure=value_figure(parts["values"]["regimes"], p.evaluation.estimators),
+        weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
+        cohort=parts.get("cohort"),
+        usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
     )

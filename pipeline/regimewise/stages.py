@@ -13,17 +13,21 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from threadpoolctl import threadpool_limits
 
-from .behaviour import multiclass_auc, probability_of_taken
-from .errors import UserInputError
+from .clinical_rules import ClinicalRuleSet
+from .distill import distill_regime
+from .bootstrap import combine, run_shard
+from .describe import balance_by_step, cohort_table
+from .errors import DataValidationError, UserInputError
 from .evaluate import evaluate_all
 from .features import QFeatures, StateScaler, action_codes
-from .io import read_parquet, write_json, write_parquet
+from .io import read_json, read_parquet, write_json, write_parquet
+from .overlap import overlap_by_step, usual_care_diagnostics
 from .protocol import load_protocol
-from .regime import fit_q_learning, fit_usual_care
+from .regime import fit_usual_care, regime_variants, safeguard_summary
 from .report import report_stage
-from .validate import validate_records
-from .weighting import inverse_probability_weights, weight_summary
+from .validate import validate_records, write_error_report
 
 log = logging.getLogger("regimewise")
 
@@ -35,10 +39,21 @@ RECOMMENDATION_CAUTION = (
 
 
 # ---------------------------------------------------------------------------------------------- validate
-def validate_stage(protocol, decisions, episodes, summary):
-    """Check the records and write clean Parquet tables and validation.json."""
+def validate_stage(protocol, decisions, episodes, summary, errors=None):
+    """Check the records and write clean Parquet tables and validation.json.
+
+    ``errors`` (the rule's log ``errors``, in the logs folder, never a stage output) receives
+    validation_errors.csv: every finding when validation fails, only the header when it passes.
+    """
     pf = load_protocol(protocol)
-    result = validate_records(pf)
+    try:
+        result = validate_records(pf)
+    except DataValidationError as err:
+        if errors is not None:
+            write_error_report(errors, err.errors)
+        raise
+    if errors is not None:
+        write_error_report(errors, ())
     write_parquet(decisions, result.decisions)
     write_parquet(episodes, result.episodes)
     write_json(summary, result.summary)
@@ -51,54 +66,14 @@ def proba_columns(labels) -> list[str]:
 
 
 def behaviour_stage(protocol, decisions, proba, diagnostics):
-    """Fit the usual-care model; write the probability of every action at every decision and diagnostics."""
+    """Fit the usual-care model with cross-fitting; write the records' out-of-fold probabilities and diagnostics."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     model = fit_usual_care(frame, p)
-    probabilities = model.predict_proba(frame)
     table = frame[["episode_id", "step"]].copy()
-    table[proba_columns(p.action_labels)] = probabilities
+    table[proba_columns(p.action_labels)] = model.record_proba
     write_parquet(proba, table)
-    write_json(diagnostics, behaviour_diagnostics(p, frame, model, probabilities))
-
-
-def behaviour_diagnostics(p, frame, model, probabilities) -> dict:
-    """Discrimination, fit, and the distribution of the probability of the action taken, by step."""
-    codes = action_codes(frame, p.action_labels)
-    taken = probability_of_taken(probabilities, codes)
-    threshold = p.constraints.support_threshold
-    by_step = {}
-    for step, rows in frame.groupby("step").indices.items():
-        by_step[str(step)] = {
-            "decisions": int(len(rows)),
-            "taken_probability_min": float(taken[rows].min()),
-            "taken_probability_median": float(np.median(taken[rows])),
-            "share_taken_below_support": float(np.mean(taken[rows] < threshold)),
-            "auc": _safe_auc(codes[rows], probabilities[rows], len(p.actions)),
-        }
-    fitted = model.model
-    return {
-        "model": {
-            "kind": p.behaviour_model.kind,
-            "covariates": list(model.scaler.names) + (["step_fraction"] if model.include_step else []),
-            "converged": bool(fitted.converged_),
-            "log_likelihood": float(fitted.llf_),
-            "params": np.asarray(fitted.params_).tolist(),
-            "scaler": model.scaler.to_dict(),
-        },
-        "decisions": int(len(frame)),
-        "auc": float(multiclass_auc(codes, probabilities, len(p.actions))),
-        "auc_method": "one-vs-rest macro average",
-        "inverse_probability_weights": weight_summary(inverse_probability_weights(taken)),
-        "by_step": by_step,
-    }
-
-
-def _safe_auc(codes, probabilities, n_actions):
-    """AUC at one step; None when fewer than two actions occur there."""
-    if len(np.unique(codes)) < 2:
-        return None
-    return float(multiclass_auc(codes, probabilities, n_actions))
+    write_json(diagnostics, usual_care_diagnostics(p, frame, model))
 
 
 def read_probabilities(path, labels) -> np.ndarray:
@@ -107,23 +82,40 @@ def read_probabilities(path, labels) -> np.ndarray:
 
 # ---------------------------------------------------------------------------------------------- regime
 def regime_stage(protocol, decisions, proba, table, regime):
-    """Learn the support-constrained regime; write recommendations with Q-values and the fitted model."""
+    """Learn the side-by-side regimes; write recommendations with Q-values and the fitted models' summary.
+
+    The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
+    ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.SAFEGUARDS`).
+    """
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p)
-    fqi = fit_q_learning(frame, probabilities, p, features)
+    variants = regime_variants(frame, probabilities, p, features)
+    rules = ClinicalRuleSet.from_protocol(p)
+    permitted = rules.permitted(frame)
     steps = frame["step"].to_numpy(dtype=np.int64)
     X = features.transform(frame)
-    q = fqi.q_values(X, steps)
-    recommended = fqi.recommend(X, steps, probabilities)
+    chosen = {
+        name: fqi.recommend(X, steps, probabilities, permitted if name in ("rules", "pessimistic") else None)
+        for name, fqi in variants.items()
+    }
+    fqi = variants[list(variants)[-1]]
+    recommended = chosen[list(chosen)[-1]]
     labels = np.asarray(p.action_labels)
     out = frame[["episode_id", "step", "action"]].copy()
     out["recommended"] = labels[recommended]
-    out[[f"q_{a}" for a in p.action_labels]] = q
-    out[[f"permitted_{a}" for a in p.action_labels]] = probabilities >= p.constraints.support_threshold
+    for name, codes in chosen.items():
+        out[f"recommended_{name}"] = labels[codes]
+    out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
+    out[[f"permitted_{a}" for a in p.action_labels]] = (probabilities >= p.constraints.support_threshold) & permitted
     write_parquet(table, out, caution=RECOMMENDATION_CAUTION)
-    write_json(regime, regime_summary(p, frame, fqi, features, recommended, probabilities))
+    summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
+    summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
+    summary["readable"] = distill_regime(
+        frame, recommended, p.states, p.action_labels, groups=frame["patient_id"].to_numpy(), random_state=0
+    ).to_dict()
+    write_json(regime, summary)
 
 
 def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
@@ -137,22 +129,33 @@ def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
             "recommended": {a: int(np.sum(recommended[rows] == k)) for k, a in enumerate(labels)},
             "taken": {a: int(np.sum(taken[rows] == k)) for k, a in enumerate(labels)},
         }
+    q = p.q_model
     return {
         "caution": RECOMMENDATION_CAUTION,
-        "method": "finite-horizon fitted-Q iteration (backward induction), linear Q-model with action-by-state "
-        "interactions, support-constrained",
-        "constraints": {"support_threshold": p.constraints.support_threshold},
+        "method": f"fitted-Q iteration ({q.learning_mode} mode), {q.kind.replace('_', ' ')} Q-model, "
+        "clinical rules and support constraint" + (", pessimistic" if p.constraints.pessimism > 0 else ""),
+        "constraints": {
+            "support_threshold": p.constraints.support_threshold,
+            "max_intensity_change": p.constraints.max_intensity_change,
+            "pessimism": p.constraints.pessimism,
+            "ensemble_size": p.constraints.ensemble_size if p.constraints.pessimism > 0 else None,
+        },
         "decisions": int(len(frame)),
         "decisions_changed_by_support": int(fqi.n_changed_by_support_),
-        "decisions_without_permitted_action": int(np.sum((probabilities >= p.constraints.support_threshold).sum(1) == 0)),
+        "decisions_without_permitted_action": int(fqi.n_without_permitted_action_),
         "share_differs_from_taken": float(np.mean(recommended != taken)),
         "by_step": by_step,
         "q_model": {
-            "kind": p.q_model.kind,
-            "basis": p.q_model.basis,
-            "ridge_alpha": p.q_model.ridge_alpha,
+            "kind": q.kind,
+            "learning_mode": q.learning_mode,
+            "basis": q.basis,
+            "ridge_alpha": q.ridge_alpha,
+            "ridge_alpha_used": list(fqi.alpha_),
+            "iterations": int(fqi.n_iterations_),
+            "converged": bool(fqi.converged_),
+            "out_of_fold_mse_by_step": {str(t): v for t, v in (fqi.oof_mse_ or {}).items()},
             "covariates": ["intercept", *features.names],
-            "coefficients": np.asarray(fqi.coef_).tolist(),
+            "coefficients": np.asarray(fqi.coef_).tolist() if hasattr(fqi, "coef_") else None,
             "scaler": features.scaler.to_dict(),
         },
     }
@@ -163,10 +166,48 @@ def evaluate_stage(protocol, decisions, proba, table, values):
     """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    recommendations = read_parquet(table)
+    recommended = action_codes(recommendations.rename(columns={"action": "taken", "recommended": "action"}), p.action_labels)
+    variants = {
+        c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
+        for c in recommendations.columns if c.startswith("recommended_")
+    }  # side-by-side regimes of the regime stage
+    write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), recommended, p, variants or None))
+
+
+# ---------------------------------------------------------------------------------------------- describe
+def describe_stage(protocol, decisions, proba, table, cohort):
+    """Cohort table, balance before and after weighting, and overlap of taken and recommended actions by step."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    probabilities = read_probabilities(proba, p.action_labels)
     recommended = action_codes(
         read_parquet(table).rename(columns={"action": "taken", "recommended": "action"}), p.action_labels
     )
-    write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), recommended, p))
+    write_json(cohort, {
+        "caution": RECOMMENDATION_CAUTION,
+        "baseline": cohort_table(frame, p),
+        "balance_by_step": balance_by_step(frame, probabilities, p),
+        "overlap_by_step": overlap_by_step(frame["step"].to_numpy(), action_codes(frame, p.action_labels),
+                                           recommended, probabilities, p.constraints.support_threshold),
+    })  # fmt: skip
+
+
+# ---------------------------------------------------------------------------------------------- bootstrap
+def bootstrap_shard_stage(protocol, decisions, shard, replicates):
+    """Run one shard's bootstrap replicates (wildcard ``shard``), one BLAS thread per job."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    with threadpool_limits(limits=1):
+        out = run_shard(frame, p, int(shard))
+    write_json(replicates, out)
+    log.info("bootstrap shard %s: %d replicates", shard, len(out["replicates"]))
+
+
+def bootstrap_stage(protocol, values, shards, intervals):
+    """Combine the shards into percentile intervals for every value and contrast; flag disagreeing estimators."""
+    p = load_protocol(protocol).protocol
+    write_json(intervals, combine(read_json(values), [read_json(path) for path in shards], p))
 
 
 # ---------------------------------------------------------------------------------------------- dispatch
@@ -175,6 +216,9 @@ STAGES = {
     "behaviour": behaviour_stage,
     "regime": regime_stage,
     "evaluate": evaluate_stage,
+    "describe": describe_stage,
+    "bootstrap_shard": bootstrap_shard_stage,
+    "bootstrap": bootstrap_stage,
     "report": report_stage,
 }
 
@@ -193,7 +237,11 @@ def run_snakemake_job(smk) -> None:
     log.setLevel(logging.INFO)
     inputs = {k: v for k, v in smk.input.items()}
     outputs = {k: v for k, v in smk.output.items()}
-    kwargs = {k: v for k, v in {**inputs, **outputs}.items() if k in STAGE_ARGUMENTS[smk.rule]}
+    named_logs = {k: v for k, v in smk.log.items()}
+    wildcards = {k: v for k, v in smk.wildcards.items()}
+    kwargs = {
+        k: v for k, v in {**wildcards, **named_logs, **inputs, **outputs}.items() if k in STAGE_ARGUMENTS[smk.rule]
+    }
     try:
         STAGES[smk.rule](**kwargs)
     except UserInputError as err:

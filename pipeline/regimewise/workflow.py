@@ -19,12 +19,18 @@ PACKAGE_DIR = Path(__file__).resolve().parent
 
 # Modules whose source determines each stage's output (besides errors/io/protocol, shared by all).
 STAGE_MODULES = {
-    "validate": ("validate.py",),
-    "behaviour": ("behaviour.py", "features.py", "regime.py", "weighting.py"),
-    "regime": ("fqi.py", "features.py", "regime.py"),
-    "evaluate": ("ope.py", "fqi.py", "features.py", "evaluate.py"),
-    "report": ("report.py", "provenance.py", "templates/report.html", "templates/sections/*.html"),
+    "validate": ("validate.py", "deidentify.py", "missing.py"),
+    "behaviour": ("behaviour.py", "features.py", "overlap.py", "regime.py", "weighting.py"),
+    "describe": ("describe.py", "overlap.py", "behaviour.py", "features.py", "weighting.py"),
+    "regime": ("fqi.py", "features.py", "regime.py", "clinical_rules.py", "distill.py", "pessimism.py"),
+    "evaluate": ("ope.py", "fqi.py", "features.py", "evaluate.py", "pessimism.py"),
+    "report": ("report.py", "provenance.py", "describe.py", "overlap.py", "templates/report.html",
+               "templates/sections/*.html"),
 }
+# A bootstrap replicate refits usual care and the regime and evaluates every regime: all of their modules count.
+STAGE_MODULES["bootstrap"] = tuple(
+    sorted({"bootstrap.py", *STAGE_MODULES["behaviour"], *STAGE_MODULES["regime"], *STAGE_MODULES["evaluate"]})
+)
 SHARED_MODULES = ("errors.py", "io.py", "protocol.py", "stages.py")
 
 
@@ -38,6 +44,7 @@ class Settings:
     benchmarks: str
     decisions_file: str
     episodes_file: str | None
+    bootstrap_shards: int = 1
 
     @property
     def record_inputs(self) -> dict:
@@ -61,6 +68,7 @@ def load_settings(config: dict) -> Settings:
         benchmarks=str(config["benchmarks"]).rstrip("/"),
         decisions_file=str(pf.decisions_path),
         episodes_file=None if episodes is None else str(episodes),
+        bootstrap_shards=pf.protocol.evaluation.shards,
     )
 
 

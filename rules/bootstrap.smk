@@ -1,0 +1,39 @@
+# ---- bootstrap: replicates in shards (separate jobs, one thread each), then combined into intervals ------
+rule bootstrap_shard:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+    output:
+        replicates=results("bootstrap/shards/shard_{shard}.json"),
+    log:
+        logs("bootstrap_shard_{shard}"),
+    benchmark:
+        benchmarks("bootstrap_shard_{shard}")
+    wildcard_constraints:
+        shard=r"\d+",
+    threads: 1
+    params:
+        code=stage_code_hash("bootstrap"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+rule bootstrap:
+    input:
+        protocol=SETTINGS.protocol,
+        values=results("evaluate/values.json"),
+        shards=bootstrap_shard_files(),
+    output:
+        intervals=results("bootstrap/intervals.json"),
+    log:
+        logs("bootstrap"),
+    benchmark:
+        benchmarks("bootstrap")
+    params:
+        code=stage_code_hash("bootstrap"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"

@@ -1,0 +1,19 @@
+# ---- describe: cohort table, balance before and after weighting, overlap by decision point ---------------
+rule describe:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+        table=results("regime/recommendations.parquet"),
+    output:
+        cohort=results("describe/cohort.json"),
+    log:
+        logs("describe"),
+    benchmark:
+        benchmarks("describe")
+    params:
+        code=stage_code_hash("describe"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"

@@ -1,0 +1,1 @@
+"""A catalogue of defective inputs (decisions table, episodes table, protocol, files); see cases.py."""

@@ -1,0 +1,182 @@
+"""De-identification guard: Safe Harbor categories refused, day offsets and ages up to 89 accepted, and a planted
+identifier never reaches the results folder or the terminal.
+
+Source of the categories: HIPAA Privacy Rule, 45 CFR 164.514(b)(2)(i)(A)-(R) (the eighteen Safe Harbor
+identifiers, including the 90-or-older age grouping), as recalled from the regulation's text (from memory).
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+from tiny import REPOSITORY, tiny_decisions, tiny_episodes, tiny_protocol_dict, write_tiny
+
+from regimewise import cli
+from regimewise.deidentify import column_name_category, find_identifiers, looks_like_identifier, mask, scrub
+from regimewise.errors import DataValidationError
+from regimewise.protocol import load_protocol
+from regimewise.stages import validate_stage
+from regimewise.validate import validate_records
+
+# One column name per Safe Harbor category the guard can see in a name (45 CFR 164.514(b)(2)(i)).
+REFUSED_NAMES = {
+    "first_name": "person name",  # (A) names
+    "patient_name": "person name",
+    "street_address": "street address or place",  # (B) geographic subdivisions smaller than a state
+    "zip": "street address or place",
+    "city": "street address or place",
+    "date_of_birth": "full date",  # (C) all elements of dates except year
+    "admission_date": "full date",
+    "phone_number": "telephone or fax",  # (D) telephone numbers
+    "fax": "telephone or fax",  # (E) fax numbers
+    "email": "e-mail",  # (F) e-mail addresses
+    "ssn": "social-security or record number",  # (G) social security numbers
+    "medical_record_number": "social-security or record number",  # (H) medical record numbers
+    "health_plan_id": "social-security or record number",  # (I) health plan beneficiary numbers
+    "account_number": "social-security or record number",  # (J) account numbers
+    "licence_number": "device, licence or vehicle number",  # (K) certificate/license numbers
+    "vehicle_plate": "device, licence or vehicle number",  # (L) vehicle identifiers
+    "device_serial": "device, licence or vehicle number",  # (M) device identifiers and serial numbers
+    "url": "URL or IP address",  # (N) URLs
+    "ip_address": "URL or IP address",  # (O) IP addresses
+    "fingerprint": "biometric or photo",  # (P) biometric identifiers
+    "photo": "biometric or photo",  # (Q) full-face photographs
+}
+ACCEPTED_NAMES = ["episode_id", "patient_id", "step", "day", "age", "age_at_index", "followup_days", "event",
+                  "sbp", "egfr", "potassium", "female", "diabetes", "adherence", "therapy_level", "action", "reward",
+                  "stage", "usage_days"]  # fmt: skip
+
+
+@pytest.mark.parametrize("name", sorted(REFUSED_NAMES))
+def test_identifier_like_column_names_are_refused(name):
+    assert column_name_category(name) == REFUSED_NAMES[name]
+
+
+@pytest.mark.parametrize("name", ACCEPTED_NAMES)
+def test_contract_and_demo_columns_pass(name):
+    assert column_name_category(name) is None
+
+
+@pytest.mark.parametrize(
+    "value",
+    ["jane.roe@example.org", "https://example.org/p/1", "www.example.org", "192.0.2.17", "078-05-1120",
+     "MRN 4471203", "123456789", "(555) 201-9876", "+44 20 7946 0958", "2019-03-14", "14/03/2019", "02139"],
+)  # fmt: skip
+def test_identifier_like_values_are_found(value):
+    assert looks_like_identifier(value)
+    assert value not in scrub(f"parser said: {value} here") or value == "02139"
+
+
+@pytest.mark.parametrize("value", ["E00001", "P00042", "hold", "step_up", "add_agent", "90+", "3.5", "-2.190"])
+def test_ordinary_values_pass(value):
+    assert not looks_like_identifier(value)
+
+
+def test_mask_shows_length_only():
+    assert mask("jane.roe@example.org") == "[masked, 20 characters]"
+
+
+def test_ages_above_89_are_refused_unless_grouped():
+    # Safe Harbor (C): ages over 89 only as a single category of 90 or older.
+    frame = pd.DataFrame({"age": [30, 89, 90, 104], "age_group": ["40-49", "90+", "80-89", "90+"]})
+    hits = find_identifiers(frame)
+    assert [(h.column, h.row) for h in hits] == [("age", 2), ("age", 3)]
+    assert not find_identifiers(pd.DataFrame({"age": ["89", "90+", " 90+ "]}))
+
+
+def test_datetime_columns_are_refused_as_full_dates(tmp_path):
+    frame = tiny_decisions()
+    frame["seen"] = pd.Timestamp("2020-01-02")
+    frame.to_parquet(tmp_path / "decisions.parquet", index=False)
+    protocol = tiny_protocol_dict(decisions="decisions.parquet")
+    (tmp_path / "protocol.yaml").write_text(yaml.safe_dump(protocol), encoding="utf-8")
+    with pytest.raises(DataValidationError, match=r"column 'seen'.*full date.*\[rule identifier_value\]"):
+        validate_records(load_protocol(tmp_path / "protocol.yaml"))
+
+
+def test_demo_cohort_passes_the_guard():
+    # The demo has `age` (continuous, at most 89) and integer `day` offsets: both must pass.
+    result = validate_records(load_protocol(REPOSITORY / "config" / "protocol.yaml"))
+    assert result.summary["rows_kept"] == 24000
+
+
+def test_acknowledged_column_passes_and_is_recorded(tmp_path):
+    frame = tiny_decisions()
+    frame["clinic_zip"] = "00000"
+    protocol = tiny_protocol_dict()
+    why = "Constant placeholder written by the extract tool; holds no postcode of any person."
+    protocol["data"]["acknowledged_columns"] = [{"column": "clinic_zip", "justification": why}]
+    result = validate_records(load_protocol(write_tiny(tmp_path, protocol=protocol, decisions=frame)))
+    assert result.summary["acknowledged_columns"] == [{"column": "clinic_zip", "justification": why}]
+    assert "clinic_zip" not in result.decisions.columns
+
+
+PLANTED = "jane.roe@example.org"
+
+
+def _planted_study(folder, table, column):
+    decisions, episodes = tiny_decisions().astype(object), tiny_episodes().astype(object)
+    (decisions if table == "decisions" else episodes).loc[7, column] = PLANTED
+    return write_tiny(folder, decisions=decisions, episodes=episodes)
+
+
+def _everything_under(folder) -> str:
+    return "".join(p.read_bytes().decode("utf-8", "replace") for p in folder.rglob("*") if p.is_file())
+
+
+CELLS = [("decisions", c) for c in tiny_decisions().columns] + [("episodes", c) for c in tiny_episodes().columns]
+
+
+@pytest.mark.parametrize(("table", "column"), CELLS)
+def test_planted_identifier_never_reaches_results_or_terminal(tmp_path, capsys, table, column):
+    protocol = _planted_study(tmp_path / "study", table, column)
+    results = tmp_path / "results"
+    assert cli.main(["check", str(protocol), "--errors", str(results / "logs" / "validation_errors.csv")]) == 1
+    outputs = [results / "validate" / n for n in ("decisions.parquet", "episodes.parquet", "validation.json")]
+    with pytest.raises(DataValidationError, match=r"\[rule identifier_value\]"):
+        validate_stage(str(protocol), *map(str, outputs), errors=str(results / "logs" / "stage_errors.csv"))
+    captured = capsys.readouterr()
+    assert "[masked, 20 characters]" in captured.err
+    assert PLANTED not in captured.out + captured.err
+    assert (results / "logs" / "validation_errors.csv").is_file()
+    assert PLANTED not in _everything_under(results)
+
+
+def test_planted_identifier_through_the_workflow(tmp_path):
+    protocol = _planted_study(tmp_path / "study", "decisions", "action")
+    out = tmp_path / "out"
+    command = [sys.executable, "-m", "regimewise.cli", "run", protocol, "--out", out]
+    result = subprocess.run(command, capture_output=True, text=True, check=False)
+    assert result.returncode == 1
+    assert "decisions.csv, row 8, column 'action'" in result.stderr
+    assert PLANTED not in result.stdout + result.stderr
+    assert (out / "logs" / "validation_errors.csv").is_file()
+    assert PLANTED not in _everything_under(out)
+
+
+def test_report_section_lists_acknowledged_columns_and_missing_actions(tmp_path):
+    import jinja2
+    from importlib import resources
+
+    from regimewise.report import cell_count
+
+    frame = tiny_decisions()
+    frame["clinic_zip"] = "00000"
+    frame.loc[4, "bp"] = np.nan
+    protocol = tiny_protocol_dict()
+    why = "Constant placeholder written by the extract tool; holds no postcode of any person."
+    protocol["data"].update(acknowledged_columns=[{"column": "clinic_zip", "justification": why}],
+                            missing={"bp": "carry_forward"})  # fmt: skip
+    pf = load_protocol(write_tiny(tmp_path, protocol=protocol, decisions=frame))
+    summary = validate_records(pf).summary
+    source = resources.files("regimewise").joinpath("templates", "sections", "validation.html").read_text()
+    environment = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined)
+    environment.filters["cell"] = lambda n: cell_count(n, pf.protocol.report.min_cell_count)
+    html = environment.from_string(source).render(p=pf.protocol, validation=summary)
+    assert "clinic_zip" in html and "holds no postcode" in html
+    assert "carry_forward" in html and "followup_before_last_decision" in html

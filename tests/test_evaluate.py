@@ -1,0 +1,102 @@
+"""The evaluate stage's arithmetic: reliability floor, identities on real records, weight histograms, nulls.
+
+Sources of truth: the identities of self-normalised importance sampling (usual care evaluated against itself
+has unit weights, so every weighted estimator is the mean observed return and ESS = n; Precup, Sutton &
+Singh 2000), DR with Q ≡ 0 equals per-decision IS (Thomas & Brunskill 2016), scipy.stats.sem for the
+closed-form standard error of a mean, and the issue's reliability floor max(30, 5% of episodes)
+(common practice, no source).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+from tiny import REPOSITORY
+
+from regimewise import evaluate
+from regimewise.protocol import EvaluationSpec, load_protocol
+from regimewise.regime import learn_regime
+from regimewise.simulate import simulate_cohort
+from regimewise.validate import clean_decisions
+
+ALL = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
+
+
+@pytest.fixture(scope="module")
+def setting():
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    protocol = pf.protocol.model_copy(
+        update={"evaluation": pf.protocol.evaluation.model_copy(update={"estimators": ALL})}
+    )
+    decisions = clean_decisions(pf, simulate_cohort(400, seed=3, confounding_strength=0.0).decisions)
+    learned = learn_regime(decisions, protocol)
+    proba = learned.usual_care.predict_proba(decisions)
+    values = evaluate.evaluate_all(decisions, proba, learned.recommend(decisions, proba), protocol)
+    return decisions, proba, protocol, values
+
+
+@pytest.mark.parametrize("episodes, floor", [(100, 30.0), (600, 30.0), (3000, 150.0), (10_000, 500.0)])
+def test_minimum_reliable_ess_is_5_percent_but_never_below_30(episodes, floor):
+    # the issue's rule: 5% of episodes, never below 30 (common practice, no source)
+    assert evaluate.minimum_reliable_ess(episodes, EvaluationSpec()) == floor
+
+
+def test_the_floor_follows_the_protocol():
+    spec = EvaluationSpec(minimum_ess=50, minimum_ess_fraction=0.1)
+    assert evaluate.minimum_reliable_ess(3000, spec) == 300.0
+    assert evaluate.minimum_reliable_ess(100, spec) == 50.0
+    with pytest.raises(ValueError):
+        EvaluationSpec(minimum_ess=10)  # never below 30
+
+
+def test_usual_care_against_itself_gives_the_mean_return_by_every_weighted_estimator(setting):
+    decisions, _, _, values = setting
+    returns = decisions.groupby("episode_id", sort=False)["reward"].sum().to_numpy()
+    usual = next(r for r in values["regimes"] if r["name"] == "usual_care")["estimates"]
+    assert set(usual) == set(ALL)
+    for name in ("is", "wis", "pdis", "pdwis"):
+        assert usual[name]["value"] == pytest.approx(returns.mean(), abs=1e-9)  # unit weights
+        assert usual[name]["ess"] == pytest.approx(len(returns))
+        assert usual[name]["low_ess"] is False
+    # with unit weights IS is the plain mean: its closed-form SE is the standard error of the mean (scipy)
+    assert usual["is"]["se"] == pytest.approx(stats.sem(returns))
+    assert usual["pdwis"]["se"] is None and usual["fqe"]["se"] is None  # no closed form: bootstrap only
+
+
+def test_low_ess_flag_matches_the_floor(setting):
+    _, _, _, values = setting
+    floor = values["minimum_reliable_ess"]
+    assert floor == 30.0
+    for r in values["regimes"]:
+        for e in r["estimates"].values():
+            if e["ess"] is not None:
+                assert e["low_ess"] == (e["ess"] < floor)
+
+
+def test_weight_histograms_count_every_episode_at_every_step(setting):
+    decisions, _, protocol, values = setting
+    histograms = values["learned_weight_histograms"]
+    assert len(histograms["by_step"]) == protocol.horizon
+    n = decisions["episode_id"].nunique()
+    for h in histograms["by_step"]:
+        assert h["zero"] + sum(h["counts"]) == n
+    following = values["regimes"][0]["estimates"]["pdwis"]["n_following"]
+    assert n - histograms["by_step"][-1]["zero"] == following  # nonzero final weight = follows throughout
+
+
+def test_an_unfittable_model_based_estimate_is_null_only_when_not_strict(setting):
+    decisions, proba, protocol, _ = setting
+    keep = ~((decisions["step"] == 2) & (decisions["action"] == "step_down")).to_numpy()
+    episodes_kept = decisions.loc[~keep, "episode_id"].unique()
+    thin = decisions[~decisions["episode_id"].isin(episodes_kept)].reset_index(drop=True)
+    thin_proba = proba[~decisions["episode_id"].isin(episodes_kept).to_numpy()]
+    recommended = np.zeros(len(thin), dtype=np.int64)
+    with pytest.raises(Exception, match="never occurs"):
+        evaluate.evaluate_all(thin, thin_proba, recommended, protocol)
+    out = evaluate.evaluate_all(thin, thin_proba, recommended, protocol, strict=False)
+    usual = next(r for r in out["regimes"] if r["name"] == "usual_care")["estimates"]
+    assert usual["fqe"]["value"] is None and usual["wdr"]["value"] is None and usual["dr"]["value"] is None
+    assert usual["pdwis"]["value"] == pytest.approx(
+        thin.groupby("episode_id", sort=False)["reward"].sum().mean(), abs=1e-9
+    )
