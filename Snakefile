@@ -15,6 +15,7 @@ include: "rules/regime.smk"
 include: "rules/evaluate.smk"
 include: "rules/describe.smk"
 include: "rules/bootstrap.smk"
+include: "rules/sensitivity.smk"
 include: "rules/report.smk"
 
 

@@ -10,6 +10,7 @@ rule report:
         values=results("evaluate/values.json"),
         cohort=results("describe/cohort.json"),
         intervals=results("bootstrap/intervals.json"),
+        sensitivity=results("sensitivity/sensitivity.json"),
     output:
         html=results("report/report.html"),
         summary=results("report/summary.json"),

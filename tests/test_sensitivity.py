@@ -119,3 +119,30 @@ def test_tipping_point_is_where_the_lower_limit_crosses_zero():
     assert 2.0 <= crossing <= 2.0 + precision
     assert tipping_point(lambda g: -1.0) == 1.0
     assert tipping_point(lambda g: 5.0, gamma_max=4.0) is None
+
+
+def test_tipping_point_of_the_summary_is_where_the_interval_reaches_zero():
+    # Replicate curves built by hand: lower bounds falling linearly in Γ, so the 2.5% quantile of the replicates'
+    # lower bounds crosses zero at a known Γ; the summary's Γ* must sit at the first grid point past it.
+    from tiny import REPOSITORY
+
+    from regimewise.protocol import load_protocol
+    from regimewise.sensitivity import analysis_gammas, summarise_sensitivity
+
+    protocol = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
+    gammas = analysis_gammas(protocol.sensitivity)
+    replicates = [
+        {"learned": np.column_stack([shift + 3.0 - 2.0 * (gammas - 1.0), shift + 3.0 + gammas]).tolist(),
+         "usual_care": 0.0}
+        for shift in np.linspace(-0.5, 0.5, 41)
+    ]  # fmt: skip
+    point = {"learned": np.column_stack([3.0 - 2.0 * (gammas - 1.0), 3.0 + gammas]), "usual_care": 0.0,
+             "returns_sd": 1.0, "ess": 500.0, "n_episodes": 1000}  # fmt: skip
+    out = summarise_sensitivity(point, replicates, protocol, None)
+    low = np.asarray(out["curve"]["interval_low"])
+    star, precision = out["tipping_point"], protocol.sensitivity.precision
+    index = int(np.searchsorted(gammas, star - 1e-12))
+    assert low[index] <= 0 < low[index - 1]  # first grid point whose interval includes zero
+    crossing = 1.0 + (3.0 + np.quantile(np.linspace(-0.5, 0.5, 41), 0.025)) / 2.0  # exact zero of the limit
+    assert crossing <= star <= crossing + precision + 1e-9
+    assert f"{star:.2f}" in out["sentence"]

@@ -29,8 +29,9 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from . import evaluate, regime
+from . import evaluate, regime, sensitivity
 from .errors import UserInputError
+from .io import to_jsonable
 from .features import action_codes
 from .protocol import Protocol
 
@@ -75,14 +76,18 @@ def resample_patients(decisions: pd.DataFrame, groups: list[np.ndarray], rng, si
     return out
 
 
-def replicate_values(decisions: pd.DataFrame, protocol: Protocol) -> dict:
-    """Refit usual care, the Q-models and the regime on ``decisions``; {regime: {estimator: value}}."""
+def replicate_values(decisions: pd.DataFrame, protocol: Protocol) -> tuple[dict, dict]:
+    """Refit usual care, the Q-models and the regime on ``decisions``.
+
+    Returns {regime: {estimator: value}} and the confounding-sensitivity curve of the refitted regime
+    (:func:`regimewise.sensitivity.regime_curve`), so the sensitivity stage reuses these replicates.
+    """
     learned = regime.learn_regime(decisions, protocol)
     proba = record_proba(learned, decisions)
-    values = evaluate.evaluate_all(
-        decisions, proba, learned.recommend(decisions, proba), protocol, strict=False
-    )
-    return evaluate.point_values(values)
+    recommended = learned.recommend(decisions, proba)
+    values = evaluate.evaluate_all(decisions, proba, recommended, protocol, strict=False)
+    curve = sensitivity.regime_curve(decisions, proba, recommended, protocol)
+    return evaluate.point_values(values), {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]}
 
 
 def record_proba(learned, decisions: pd.DataFrame) -> np.ndarray:
@@ -97,7 +102,8 @@ def run_replicate(decisions, groups, protocol: Protocol, replicate: int, size: i
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            return {"replicate": replicate, "values": replicate_values(resample, protocol)}
+            values, curve = replicate_values(resample, protocol)
+            return {"replicate": replicate, "values": values, "sensitivity": curve}
         except (UserInputError, np.linalg.LinAlgError) as err:
             return {"replicate": replicate, "error": str(err).splitlines()[0]}
 

@@ -299,6 +299,31 @@ class EvaluationSpec(_Strict):
         return self
 
 
+class SensitivitySpec(_Strict):
+    """Sensitivity of the learned-minus-usual-care contrast to unmeasured confounding (marginal sensitivity model)."""
+
+    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=30)] = Field(
+        [1.0, 1.25, 1.5, 2.0, 3.0], description="confounding strengths Γ shown in the report's table"
+    )
+    gamma_max: Annotated[float, Field(gt=1.0, le=50.0)] = Field(
+        5.0, description="largest Γ searched for the tipping point"
+    )
+    precision: Annotated[float, Field(gt=0.0, le=0.5)] = Field(
+        0.02, description="the tipping point is found to this precision in Γ"
+    )
+    confounded_decisions: Literal["all", "first"] | Annotated[list[Annotated[int, Field(ge=0)]], Field(min_length=1)] = (
+        Field("all", description="decisions a hidden confounder may affect: all, the first, or a list of steps")
+    )
+
+    @model_validator(mode="after")
+    def _grid_fits(self) -> SensitivitySpec:
+        if max(self.gammas) > self.gamma_max:
+            raise ValueError(f"sensitivity.gammas must not exceed gamma_max ({self.gamma_max})")
+        if (self.gamma_max - 1.0) / self.precision > 5000:
+            raise ValueError("sensitivity.precision is too fine for gamma_max: at most 5000 grid points")
+        return self
+
+
 class ReportSpec(_Strict):
     """Report settings."""
 
@@ -321,6 +346,7 @@ class Protocol(_Strict):
     q_model: QModelSpec = QModelSpec()
     constraints: Constraints = Constraints()
     evaluation: EvaluationSpec = EvaluationSpec()
+    sensitivity: SensitivitySpec = SensitivitySpec()
     seed: Seed
     report: ReportSpec = ReportSpec()
 

@@ -37,7 +37,7 @@ SUMMARY_SCHEMA_VERSION = "1"
 
 
 def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance, intervals=None,
-                 cohort=None):
+                 cohort=None, sensitivity=None):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
     pf = load_protocol(protocol)
     p = pf.protocol
@@ -47,6 +47,7 @@ def report_stage(protocol, validation, behaviour, regime, values, html, summary,
         "regime": read_json(regime),
         "values": merge_intervals(read_json(values), None if intervals is None else read_json(intervals)),
         "cohort": None if cohort is None else read_json(cohort),
+        "sensitivity": None if sensitivity is None else read_json(sensitivity),
     }
     prov = build_provenance(pf)
     headline = build_summary(p, parts, prov)
@@ -93,10 +94,38 @@ def build_summary(p, parts, prov) -> dict:
         "minimum_reliable_ess": values["minimum_reliable_ess"],
         "bootstrap": values["bootstrap"],
         "headline": headline_sentence(p, values),
+        "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
     }
+
+
+def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
+    """Γ*, the bounds table, E-values and the plain sentence (the full Γ curve stays in sensitivity.json)."""
+    if sensitivity is None:
+        return None
+    keys = ("estimator", "ess", "low_ess", "confounded_decisions", "tipping_point", "gamma_max", "precision",
+            "table", "e_values", "sentence")  # fmt: skip
+    return {key: sensitivity[key] for key in keys}
+
+
+def sensitivity_figure(sensitivity: dict) -> str:
+    """Bounds of the learned-minus-usual-care difference and their bootstrap interval against Γ."""
+    _style()
+    curve = sensitivity["curve"]
+    fig, ax = plt.subplots(figsize=(6.5, 3.2))
+    ax.fill_between(curve["gamma"], curve["interval_low"], curve["interval_high"], color="C0", alpha=0.2,
+                    label=f"{100 * sensitivity['level']:.0f}% bootstrap interval of the bounds")  # fmt: skip
+    ax.plot(curve["gamma"], curve["contrast_lower"], color="C0", label="bounds of the difference")
+    ax.plot(curve["gamma"], curve["contrast_upper"], color="C0")
+    ax.axhline(0.0, color="black", linewidth=0.8)
+    if sensitivity["tipping_point"] is not None:
+        ax.axvline(sensitivity["tipping_point"], color="C3", linestyle="--", label="tipping point Γ*")
+    ax.set_xlabel("confounding strength Γ (odds-ratio bound)")
+    ax.set_ylabel("learned − usual care")
+    ax.legend(frameon=False, fontsize=8, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    return _svg(fig)
 
 
 def safeguard_headlines(regime: dict, values: dict) -> dict:
@@ -275,4 +304,6 @@ def render_html(p, parts, prov, headline) -> str:
         weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
         cohort=parts.get("cohort"),
         usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
+        sensitivity=parts.get("sensitivity"),
+        sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
     )

@@ -25,6 +25,7 @@ from .features import QFeatures, StateScaler, action_codes
 from .io import read_json, read_parquet, write_json, write_parquet
 from .overlap import overlap_by_step, usual_care_diagnostics
 from .protocol import load_protocol
+from .sensitivity import regime_curve, summarise_sensitivity
 from .regime import fit_usual_care, regime_variants, safeguard_summary
 from .report import report_stage
 from .validate import validate_records, write_error_report
@@ -210,6 +211,29 @@ def bootstrap_stage(protocol, values, shards, intervals):
     write_json(intervals, combine(read_json(values), [read_json(path) for path in shards], p))
 
 
+# ---------------------------------------------------------------------------------------------- sensitivity
+def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sensitivity):
+    """Bounds of the learned regime's value and contrast over Γ, their bootstrap intervals, Γ* and E-values."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    recommended = action_codes(
+        read_parquet(table).rename(columns={"action": "taken", "recommended": "action"}), p.action_labels
+    )
+    point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p)
+    replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
+    headline = headline_contrast(read_json(intervals), p)
+    write_json(sensitivity, summarise_sensitivity(point, replicates, p, headline))
+
+
+def headline_contrast(intervals: dict, p) -> dict | None:
+    """The learned-minus-usual-care contrast of the headline estimator (wdr if run) with its interval."""
+    name = "wdr" if "wdr" in p.evaluation.estimators else p.evaluation.estimators[0]
+    for contrast in intervals.get("contrasts", []):
+        if (contrast["regime"], contrast["versus"], contrast["estimator"]) == ("learned", "usual_care", name):
+            return contrast
+    return None
+
+
 # ---------------------------------------------------------------------------------------------- dispatch
 STAGES = {
     "validate": validate_stage,
@@ -219,6 +243,7 @@ STAGES = {
     "describe": describe_stage,
     "bootstrap_shard": bootstrap_shard_stage,
     "bootstrap": bootstrap_stage,
+    "sensitivity": sensitivity_stage,
     "report": report_stage,
 }
 

@@ -24,6 +24,7 @@ STAGE_MODULES = {
     "describe": ("describe.py", "overlap.py", "behaviour.py", "features.py", "weighting.py"),
     "regime": ("fqi.py", "features.py", "regime.py", "clinical_rules.py", "distill.py", "pessimism.py"),
     "evaluate": ("ope.py", "fqi.py", "features.py", "evaluate.py", "pessimism.py"),
+    "sensitivity": ("sensitivity.py", "features.py"),
     "report": ("report.py", "provenance.py", "describe.py", "overlap.py", "templates/report.html",
                "templates/sections/*.html"),
 }
