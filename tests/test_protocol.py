@@ -102,3 +102,18 @@ def test_missing_protocol_file(tmp_path):
 def test_paths_resolve_relative_to_the_protocol(tiny):
     pf = load_protocol(tiny)
     assert pf.decisions_path == tiny.parent / "decisions.csv"
+
+
+def test_acknowledged_columns_are_recorded_in_the_provenance_appendix(tmp_path):
+    from tiny import write_tiny
+
+    from regimewise.provenance import provenance
+
+    d = tiny_protocol_dict()
+    d["data"]["acknowledged_columns"] = [
+        {"column": "flag", "justification": "a study-assigned category code, not a record number"}
+    ]
+    pf = load_protocol(write_tiny(tmp_path, protocol=d))
+    assert provenance(pf)["acknowledged_columns"] == [
+        {"column": "flag", "justification": "a study-assigned category code, not a record number"}
+    ]

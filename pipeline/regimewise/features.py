@@ -71,14 +71,6 @@ class QFeatures:
         return list(self.scaler.names) + [f"{self.scaler.names[i]}^2" for i in self.squared]
 
 
-def behaviour_design(scaler: StateScaler, frame: pd.DataFrame, horizon: int, include_step: bool) -> np.ndarray:
-    """Covariates of the usual-care model: the scaled states and, if asked, the decision index / horizon."""
-    states = scaler.transform(frame)
-    if not include_step:
-        return states
-    return np.column_stack([states, frame["step"].to_numpy(dtype=float) / max(horizon - 1, 1)])
-
-
 def action_codes(frame: pd.DataFrame, labels: tuple[str, ...]) -> np.ndarray:
     """Integer codes of the action labels, in the protocol's order."""
     codes = pd.Categorical(frame["action"], categories=list(labels)).codes

@@ -38,6 +38,9 @@ def provenance(pf: ProtocolFile) -> dict:
         "protocol": {"file": pf.path.name, "sha256": pf.sha256, "version": pf.protocol.study.version},
         "inputs": inputs,
         "root_seed": pf.protocol.seed,
+        "acknowledged_columns": [
+            {"column": a.column, "justification": a.justification} for a in pf.protocol.data.acknowledged_columns
+        ],
         "packages": package_versions(),
         "commands": [
             f"regimewise run {pf.path.name}",

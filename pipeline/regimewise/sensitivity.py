@@ -350,7 +350,9 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
         "gamma_max": spec.gamma_max,
         "precision": spec.precision,
         "e_values": headline_e_values(headline, point["returns_sd"]),
-        "sentence": tipping_sentence(star, spec.gamma_max, benefit, limits[0]),
+        "sentence": tipping_sentence(star, spec.gamma_max, benefit) if replicates else (
+            "Without bootstrap replicates the bounds have no interval, so no tipping point is computed."
+        ),
     }
 
 
@@ -371,7 +373,7 @@ def headline_e_values(headline: dict | None, returns_sd: float) -> dict | None:
     }
 
 
-def tipping_sentence(star, gamma_max, benefit, first_interval) -> str:
+def tipping_sentence(star, gamma_max, benefit) -> str:
     """One plain sentence saying what the tipping point means."""
     if not np.isfinite(benefit):
         return "No episode follows the learned regime throughout, so its weighted value and its bounds are undefined."
