@@ -1,10 +1,11 @@
 """NHEFS worked example: IP weighting for the effect of quitting smoking on weight gain.
 
 Source of every reference value: Hernán & Robins, Causal Inference: What If (2020), chapter 12, Programs 12.2-12.4,
-with the values to three or four decimals recorded in /work/shared/METHODS.md ("Usual-care models, overlap and
+with the values to three or four decimals recorded in the design notes' METHODS.md ("Usual-care models, overlap and
 balance"); the book's text prints 3.4 (95% CI 2.4 to 4.5).
 """
 
+import causaldata  # in the test extra: a missing install must fail, not skip
 import numpy as np
 import pandas as pd
 import pytest
@@ -19,7 +20,6 @@ from regimewise.weighting import (
     weight_summary,
 )
 
-causaldata = pytest.importorskip("causaldata")
 
 
 def _indicators(column, prefix):

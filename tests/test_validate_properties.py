@@ -11,7 +11,7 @@ import math
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 from tiny import tiny_decisions, tiny_episodes, write_tiny
 
@@ -87,6 +87,7 @@ def test_corruption_is_refused_with_a_user_error(tmp_path_factory, corruption):
 
 @FAST
 @given(position=st.floats(0, 1), junk=st.binary(min_size=1, max_size=6))
+@example(position=0.0, junk=b"\xc2\x80\n")  # once crashed: a one-field header line, so pandas built a MultiIndex
 def test_damaged_bytes_never_crash(tmp_path_factory, position, junk):
     folder = tmp_path_factory.mktemp("b")
     path = write_tiny(folder, decisions=tiny_decisions(n_episodes=N_EPISODES))

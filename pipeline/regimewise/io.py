@@ -126,6 +126,11 @@ def read_table(path: str | Path, what: str, delimiter: str = ",") -> pd.DataFram
         elif suffix in {".csv", ".txt", ".tsv"}:
             _refuse_repeated_names(_csv_header(path, delimiter), path, what)
             frame = pd.read_csv(path, encoding="utf-8-sig", sep=delimiter, low_memory=False)
+            if not isinstance(frame.index, pd.RangeIndex):  # pandas moved surplus fields into the index
+                raise UserInputError(
+                    f"{what} file {path.name}: some rows have more fields than the header has columns; "
+                    "check the header line and data.delimiter"
+                )
         else:
             raise UserInputError(f"{what} file {path.name}: unknown format {suffix!r}; use .csv or .parquet")
     except UserInputError:
