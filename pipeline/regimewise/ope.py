@@ -28,6 +28,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from .errors import StatisticalWarning, UserInputError
+from .weighting import kish_ess
 from .fqi import check_finite, check_layout, check_proba
 
 _FOLLOW_TOLERANCE = 1e-12
@@ -188,8 +189,8 @@ def _check_positivity(taken_b, action, behaviour_proba, target_proba):
 
 
 def _kish(w):
-    total = w.sum()
-    return float(total * total / np.sum(w * w)) if total > 0 else 0.0
+    """Kish ESS (:func:`regimewise.weighting.kish_ess`), 0 when every weight is 0."""
+    return kish_ess(w) if w.sum() > 0 else 0.0
 
 
 def _estimate(name, value, weights, se=float("nan")):

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import UserInputError
+from .weighting import kish_ess
 
 
 # ---------------------------------------------------------------------------------------------- weight bounds
@@ -293,7 +294,7 @@ def regime_curve(decisions, behaviour_proba, recommended, protocol) -> dict:
     follows_all = np.bincount(episode, weights=np.asarray(recommended) != codes, minlength=returns.size) == 0
     weights = np.where(follows_all, np.exp(np.bincount(
         episode, weights=-np.log(behaviour_proba[np.arange(len(codes)), codes]), minlength=returns.size)), 0.0)
-    ess = float(weights.sum() ** 2 / np.sum(weights**2)) if weights.any() else 0.0
+    ess = kish_ess(weights) if weights.any() else 0.0
     return {"learned": curve, "usual_care": float(returns.mean()), "returns_sd": float(returns.std(ddof=1)),
             "ess": ess, "n_episodes": int(returns.size)}  # fmt: skip
 
