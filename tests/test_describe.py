@@ -123,6 +123,20 @@ def test_no_suppressed_cell_is_recoverable_on_random_tables(seed):
     assert not determined_cells(table, mask).any()
 
 
+@pytest.mark.parametrize("row", [[3, 20, 23], [3, 23], [3, 0, 3], [0, 2, 2], [12, 15, 27]])
+def test_one_row_tables_finish_and_hide_what_they_can(row):
+    # A one-row table (patients by first action, with their total last; no totals row) once looped forever: a
+    # one-cell column can never get a second hidden cell. What must hold, by hand: every count from 1 to 10 is
+    # hidden, and a hidden count is not recoverable as the total minus the published counts, i.e. at least two
+    # counts are hidden or the total is.
+    mask = suppress_cells(np.asarray([row]), threshold=11)[0]
+    counts, hidden = np.asarray(row[:-1]), mask[:-1]
+    assert np.all(hidden[(counts > 0) & (counts < 11)])
+    assert hidden.sum() != 1 or mask[-1]
+    if not any(0 < c < 11 for c in counts):
+        assert not mask.any()
+
+
 def test_interval_audit_finds_a_recoverable_cell():
     table = _with_margins([[3, 20], [25, 40]])
     only_primary = np.zeros(table.shape, dtype=bool)

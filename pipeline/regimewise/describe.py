@@ -107,8 +107,9 @@ def determined_cells(table, suppressed):
         return determined
     index = {cell: j for j, cell in enumerate(unknown)}
     a_eq, b_eq = [], []
-    lines = [[(r, c) for c in range(cols - 1)] + [(r, cols - 1)] for r in range(rows)]
-    lines += [[(r, c) for r in range(rows - 1)] + [(rows - 1, c)] for c in range(cols)]
+    # A table of one row (or column) has no totals row (column): its lines are the other direction only.
+    lines = [[(r, c) for c in range(cols - 1)] + [(r, cols - 1)] for r in range(rows)] if cols > 1 else []
+    lines += [[(r, c) for r in range(rows - 1)] + [(rows - 1, c)] for c in range(cols)] if rows > 1 else []
     for line in lines:
         coef, rhs = np.zeros(unknown.size), 0.0
         for position, (r, c) in enumerate(line):
@@ -126,6 +127,8 @@ def determined_cells(table, suppressed):
         objective[j] = 1.0
         low = linprog(objective, A_eq=a_eq, b_eq=b_eq, bounds=(0, None), method="highs")
         high = linprog(-objective, A_eq=a_eq, b_eq=b_eq, bounds=(0, None), method="highs")
+        if not (low.success and high.success):  # unbounded above (every total of its lines hidden): not pinned
+            continue
         determined.flat[flat] = bool(-high.fun - low.fun < 0.5)  # counts are integers
     return determined
 
@@ -162,18 +165,25 @@ def suppress_cells(table, threshold, preset=None):
         determined = determined_cells(values, mask)
         if not determined.any():
             return mask
-        r = np.argwhere(determined)[0][0]
+        before = mask.copy()
+        r, c = np.argwhere(determined)[0]
         if not _suppress_smallest(values[r], mask[r]):
             mask[r] = True
+        if np.array_equal(mask, before):  # the whole row is already hidden: hide the column too
+            mask[:, c] = True
+        if np.array_equal(mask, before):  # nothing left to hide around that cell
+            return mask
 
 
 def _line_rule(values, mask):
+    """Until no line changes: a line with exactly one suppressed cell gets a second one (or, with no positive
+    published cell left, is suppressed whole). A line of one cell cannot get a second one and is left as is."""
     changed = True
     while changed:
         changed = False
         for lines_values, lines_mask in ((values, mask), (values.T, mask.T)):
             for line_values, line_mask in zip(lines_values, lines_mask):
-                if line_mask.sum() == 1:
+                if line_mask.sum() == 1 and line_mask.size > 1:
                     if not _suppress_smallest(line_values, line_mask):
                         line_mask[:] = True
                     changed = True
