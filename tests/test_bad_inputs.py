@@ -3,7 +3,8 @@
 Each case is run twice in-process (fast): through the command line's ``check`` (exit status, one line on
 standard error naming the place, the error list written to the logs folder) and through the validate stage
 (nothing under the results folder). One defect goes through the real Snakemake workflow, and an interrupted
-workflow run resumed with ``--rerun-incomplete`` must give the same bytes as an uninterrupted one.
+workflow run, killed hard and resumed by ``regimewise run`` alone (it removes the dead run's lock itself and
+reruns incomplete outputs), must give the same bytes as an uninterrupted one.
 """
 
 from __future__ import annotations
@@ -114,20 +115,25 @@ def test_workflow_failure_leaves_error_list_in_logs_and_no_stage_output(small_st
     assert not (out / "validate").exists() or not any((out / "validate").iterdir())
 
 
-UNTIL_REGIME = ["regime/regime.json", "regime/recommendations.parquet"]
+def _quick_protocol(small_study: Path) -> Path:
+    """The small study with a handful of bootstrap replicates, so a whole run takes seconds.
+
+    Resuming is what is tested here, so the evaluation is kept lean: weighted estimators only (on 150 episodes a
+    rare action can be missing at some step within a cross-fitting fold, where the fitted-Q evaluation refuses
+    to extrapolate).
+    """
+    protocol = yaml.safe_load(small_study.read_text(encoding="utf-8"))
+    protocol["evaluation"].update(replicates=4, shards=2, estimators=["pdwis", "wis"], fixed_strategies=False)
+    path = small_study.parent / "protocol_quick.yaml"
+    path.write_text(yaml.safe_dump(protocol, sort_keys=False), encoding="utf-8")
+    return path
 
 
-def _snakemake(protocol, out, *extra):
-    """The workflow as the CLI starts it (same flags, --rerun-incomplete included), stopped after the regime rule."""
-    out.mkdir(parents=True, exist_ok=True)
-    command = [
-        sys.executable, "-m", "snakemake", *UNTIL_REGIME, *extra, "--snakefile", str(REPOSITORY / "Snakefile"),
-        "--directory", str(out), "--cores", "2", "--rerun-incomplete", "--config", f"protocol={protocol}",
-        "results=.", "logs=logs", "benchmarks=benchmarks",
-    ]  # fmt: skip
+def _start_run(protocol: Path, out: Path) -> subprocess.Popen:
+    """``regimewise run`` in its own process group (so a test can kill the run and all its children at once)."""
     env = {**os.environ, "PYTHONHASHSEED": "0"}
-    return subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
-                            env=env)  # fmt: skip
+    return subprocess.Popen([*CLI, "run", str(protocol), "--out", str(out)], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True, env=env)  # fmt: skip
 
 
 def _artifacts(out: Path) -> dict[str, bytes]:
@@ -137,22 +143,40 @@ def _artifacts(out: Path) -> dict[str, bytes]:
     return {str(p.relative_to(out)): p.read_bytes() for p in files}
 
 
-def test_interrupted_run_resumes_to_the_same_bytes(small_study, tmp_path):
+def test_killed_run_resumes_by_itself_to_the_same_bytes(small_study, tmp_path):
+    protocol = _quick_protocol(small_study)
     whole = tmp_path / "whole"
-    assert _snakemake(small_study, whole).wait(timeout=600) == 0
+    finished = _start_run(protocol, whole)
+    assert finished.wait(timeout=600) == 0, finished.communicate()[1]
     interrupted = tmp_path / "interrupted"
-    job = _snakemake(small_study, interrupted)
+    job = _start_run(protocol, interrupted)
     deadline = time.monotonic() + 600
     while not (interrupted / "behaviour" / "behaviour.json").exists() and job.poll() is None:
         assert time.monotonic() < deadline
         time.sleep(0.05)
-    os.killpg(job.pid, signal.SIGKILL)  # as a power cut would: no clean-up by Snakemake or the stage
-    job.wait()
-    assert not (interrupted / "regime" / "regime.json").exists()  # killed before the regime rule finished
-    # A killed Snakemake leaves its directory lock; removing it is the documented first step of resuming.
-    assert _snakemake(small_study, interrupted, "--unlock").wait(timeout=600) == 0
-    assert _snakemake(small_study, interrupted).wait(timeout=600) == 0
+    os.killpg(job.pid, signal.SIGKILL)  # as a power cut would: no clean-up by the CLI, Snakemake or the stage
+    job.communicate()
+    assert not (interrupted / "report" / "summary.json").exists()  # killed before the workflow finished
+    assert any((interrupted / cli.SNAKEMAKE_LOCKS).glob("*.lock"))  # the killed Snakemake left its lock behind
+    # The next `regimewise run` alone removes the dead run's lock and resumes; no manual step.
+    resumed = _start_run(protocol, interrupted)
+    out, err = resumed.communicate(timeout=600)
+    assert resumed.returncode == 0, err
+    assert "removing the lock a stopped run left" in out
     assert not list(interrupted.rglob("*.partial"))
     expected = _artifacts(whole)
-    assert {"validate/decisions.parquet", "behaviour/behaviour.json", "regime/regime.json"} <= set(expected)
+    assert {"validate/decisions.parquet", "regime/regime.json", "report/summary.json"} <= set(expected)
     assert _artifacts(interrupted) == expected
+
+
+def test_a_live_run_holding_the_folder_is_refused_in_one_line(small_study, tmp_path, capsys):
+    fcntl = pytest.importorskip("fcntl")  # POSIX only, as the CLI's run lock
+    out = tmp_path / "busy"
+    (out / cli.RUN_LOCK).parent.mkdir(parents=True)
+    with open(out / cli.RUN_LOCK, "a+b") as held:  # stands for a live run: the CLI's own kind of lock
+        fcntl.flock(held.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        assert cli.main(["run", str(small_study), "--out", str(out)]) == 1
+    captured = capsys.readouterr()
+    lines = [line for line in captured.err.splitlines() if line.strip()]
+    assert len(lines) == 1 and "another regimewise run is writing into" in lines[0], captured.err
+    assert not (out / "logs" / "workflow.log").exists()  # refused before starting Snakemake

@@ -3,6 +3,13 @@
 ``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
 folder as its working directory; ``check`` validates a protocol and its records and writes only the error list
 (``--errors``, default logs/validation_errors.csv) when they fail.
+
+A run recovers by itself from a hard kill: it holds an operating-system lock on ``.snakemake/regimewise.lock``
+in the results folder (inherited by its Snakemake process, so it stays held while any part of the run lives);
+when that lock is free but Snakemake's own directory lock is still there, the lock was left by a run that no
+longer exists, and it is removed with Snakemake's ``--unlock`` before the workflow runs with
+``--rerun-incomplete``. A second run on a results folder whose lock a live run holds is refused.
+
 Errors a user can fix print one line (what, where, how to fix) and exit with status 1; ``--debug`` shows
 the traceback or the full workflow log.
 """
@@ -14,7 +21,13 @@ import os
 import subprocess
 import sys
 import traceback
+from contextlib import contextmanager
 from pathlib import Path
+
+try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
+    import fcntl
+except ImportError:  # pragma: no cover - Windows
+    fcntl = None
 
 from . import __version__
 from .errors import UserInputError
@@ -25,6 +38,10 @@ from .stages import ERROR_PREFIX
 REPOSITORY = Path(__file__).resolve().parents[2]
 SNAKEFILE = REPOSITORY / "Snakefile"
 DEMO_PROTOCOL = REPOSITORY / "config" / "protocol.yaml"
+# The lock a live run holds, and Snakemake's own lock folder (its default "file" persistence backend), both
+# relative to the results folder.
+RUN_LOCK = Path(".snakemake") / "regimewise.lock"
+SNAKEMAKE_LOCKS = Path(".snakemake") / "locks"
 CAUTION = (
     "Research use only: not medical advice. Treatment decisions stay with licensed clinicians, "
     "under local law and with ethics approval."
@@ -138,26 +155,80 @@ def _run_workflow(protocol: Path, args) -> int:
     out.mkdir(parents=True, exist_ok=True)
     workflow_log = out / "logs" / "workflow.log"
     workflow_log.parent.mkdir(parents=True, exist_ok=True)
-    command = [
+    snakemake = [
         sys.executable, "-m", "snakemake",
         "--snakefile", str(SNAKEFILE),
         "--directory", str(out),
-        "--cores", str(args.cores),
-        "--rerun-incomplete",
-        "--config", f"protocol={pf.path}", "results=.", "logs=logs", "benchmarks=benchmarks",
     ]  # fmt: skip
-    print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
-    print(CAUTION)
-    with open(workflow_log, "w", encoding="utf-8") as handle:
-        finished = subprocess.run(command, stdout=handle, stderr=subprocess.STDOUT, env=_workflow_env(), check=False)
+    config = ["--config", f"protocol={pf.path}", "results=.", "logs=logs", "benchmarks=benchmarks"]
+    command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *config]
+    with _exclusive_run(out) as lock:
+        print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
+        print(CAUTION)
+        if lock is not None and _left_locked(out):
+            _remove_stale_lock([*snakemake, "--unlock", *config], out)
+        with open(workflow_log, "w", encoding="utf-8") as handle:
+            finished = subprocess.run(command, stdout=handle, stderr=subprocess.STDOUT, env=_workflow_env(),
+                                      pass_fds=() if lock is None else (lock.fileno(),), check=False)  # fmt: skip
     if finished.returncode != 0:
         _print_error_report(out / "logs" / "validation_errors.csv")
         if args.debug:
             print(workflow_log.read_text(encoding="utf-8"), file=sys.stderr)
-        raise UserInputError(_first_stage_error(workflow_log) or f"the workflow failed; see {workflow_log}")
+        raise UserInputError(_first_stage_error(workflow_log) or _lock_refusal(workflow_log, out)
+                             or f"the workflow failed; see {workflow_log}")  # fmt: skip
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
+
+
+@contextmanager
+def _exclusive_run(out: Path):
+    """Hold the results folder's run lock (an ``flock`` on :data:`RUN_LOCK`) for the run; yield its file.
+
+    The operating system releases the lock when the last process holding it ends, however it ends (``kill -9``
+    included); the Snakemake process inherits it, so a run whose command line was killed but whose workflow
+    still runs keeps it. Raises :class:`UserInputError` when a live run holds it. Yields ``None`` where POSIX
+    locks are missing (Windows): a dead run cannot then be told from a live one, so no stale lock is removed
+    and Snakemake refuses a locked folder itself.
+    """
+    if fcntl is None:  # pragma: no cover - Windows
+        yield None
+        return
+    path = out / RUN_LOCK
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "a+b") as handle:
+        try:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise UserInputError(
+                f"another regimewise run is writing into {out}; wait for it to finish, or pass a different --out"
+            ) from None
+        try:
+            yield handle
+        finally:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_UN)
+
+
+def _left_locked(out: Path) -> bool:
+    """Whether Snakemake's directory lock is present (checked while this run holds the run lock).
+
+    Holding the run lock proves no other regimewise run on this folder is alive, so a lock Snakemake still has
+    was left by a run that was killed before it could remove it. A Snakemake started by hand (not through
+    regimewise) in the same folder does not take the run lock and cannot be told apart; do not do that.
+    """
+    locks = out / SNAKEMAKE_LOCKS
+    return locks.is_dir() and any(locks.glob("*.lock"))
+
+
+def _remove_stale_lock(command: list[str], out: Path) -> None:
+    """Remove a dead run's Snakemake lock with Snakemake's own ``--unlock``; the run then resumes."""
+    print(f"removing the lock a stopped run left in {out}; resuming (incomplete outputs are recomputed)")
+    finished = subprocess.run(command, capture_output=True, text=True, env=_workflow_env(), check=False)
+    if finished.returncode != 0 or _left_locked(out):
+        raise UserInputError(
+            f"could not remove the lock a stopped run left in {out / SNAKEMAKE_LOCKS}; make sure no workflow runs "
+            "there, delete that folder, and run again"
+        )
 
 
 def _print_error_report(path: Path) -> None:
@@ -174,6 +245,14 @@ def _workflow_env() -> dict:
     env = dict(os.environ)
     env.setdefault("PYTHONHASHSEED", "0")
     return env
+
+
+def _lock_refusal(workflow_log: Path, out: Path) -> str | None:
+    """One line when Snakemake refused a folder whose lock regimewise could not judge (e.g. a hand-started run)."""
+    if "Directory cannot be locked" not in workflow_log.read_text(encoding="utf-8", errors="replace"):
+        return None
+    return (f"Snakemake found {out} locked by another process; wait for it to finish or pass a different --out "
+            f"(if none runs, delete {out / SNAKEMAKE_LOCKS} and run again)")  # fmt: skip
 
 
 def _first_stage_error(workflow_log: Path) -> str | None:
