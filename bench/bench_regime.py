@@ -38,8 +38,8 @@ from regimewise.simulate import best_threshold_rule, simulate_cohort, true_value
 from regimewise.validate import clean_decisions  # noqa: E402
 
 
-def protocol_for(base, kind, pessimism):
-    q = base.q_model.model_copy(update={"kind": kind})
+def protocol_for(base, kind, pessimism, basis=None):
+    q = base.q_model.model_copy(update={"kind": kind, "basis": basis or base.q_model.basis})
     c = base.constraints.model_copy(update={"pessimism": pessimism})
     return base.model_copy(update={"q_model": q, "constraints": c})
 
@@ -72,6 +72,8 @@ def main(argv=None):
     parser.add_argument("--episodes", type=int, default=5000)
     parser.add_argument("--truth-n", type=int, default=20_000, help="Monte Carlo episodes per true value")
     parser.add_argument("--q-models", nargs="+", default=["linear", "gradient_boosting"])
+    parser.add_argument("--basis", choices=["linear", "quadratic", "cubic"], default=None,
+                        help="basis of the linear Q-model (default: the protocol's)")
     parser.add_argument("--pessimism", type=float, default=0.0, help="k of the pessimistic ranking (0 = off)")
     args = parser.parse_args(argv)
     pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
@@ -79,7 +81,7 @@ def main(argv=None):
     started = time.perf_counter()
     search = best_threshold_rule(n=args.truth_n, seed=900_001, confounding_strength=0.0)
     print(f"size run: {args.seeds} seeds x {args.episodes} episodes, true values on {args.truth_n} episodes, "
-          f"Q-models {args.q_models}, pessimism k={args.pessimism}")  # fmt: skip
+          f"Q-models {args.q_models}, basis {args.basis or pf.protocol.q_model.basis}, pessimism k={args.pessimism}")  # fmt: skip
     print(f"best threshold rule (grid of {len(search.values)}, search seed 900001): {search.best}")
     ratios = {kind: [] for kind in args.q_models}
     violations = {kind: [0, 0] for kind in args.q_models}
@@ -92,7 +94,7 @@ def main(argv=None):
         for kind in args.q_models:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", StatisticalWarning)
-                regime = CountingRegime(learn(pf, decisions, protocol_for(pf.protocol, kind, args.pessimism)), rules)
+                regime = CountingRegime(learn(pf, decisions, protocol_for(pf.protocol, kind, args.pessimism, args.basis)), rules)
             learned = true_value(regime, n=args.truth_n, seed=truth_seed, confounding_strength=0.0).value
             ratios[kind].append((learned - usual) / (reference - usual))
             violations[kind][0] += regime.violations

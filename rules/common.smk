@@ -24,5 +24,13 @@ def bootstrap_shard_files():
     return [results(f"bootstrap/shards/shard_{k}.json") for k in range(SETTINGS.bootstrap_shards)]
 
 
+def sweep_spec_files():
+    return [results(f"sweep/specs/{spec}.json") for spec in SETTINGS.sweep_specs]
+
+
+def sweep_inputs(wildcards):
+    return {"sweep": results("sweep/sweep.json")} if SETTINGS.sweep_specs else {}
+
+
 def final_outputs():
     return [results("report/report.html"), results("report/summary.json")]

@@ -2,6 +2,7 @@
 rule report:
     input:
         unpack(record_inputs),
+        unpack(sweep_inputs),
         validation=results("validate/validation.json"),
         decisions=results("validate/decisions.parquet"),
         behaviour=results("behaviour/behaviour.json"),

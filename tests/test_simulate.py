@@ -22,6 +22,7 @@ from regimewise.simulate import (
     STATES,
     ScenarioParams,
     always,
+    induced_gamma,
     main,
     simulate_cohort,
     true_returns,
@@ -180,6 +181,41 @@ def test_strength_zero_removes_frailty_from_usual_care(large_cohort):
     np.testing.assert_array_equal(usual_care_probabilities(states, u1, 0.0),
                                   usual_care_probabilities(states, u2, 0.0))
     assert not np.allclose(usual_care_probabilities(states, u1, 1.0), usual_care_probabilities(states, u2, 1.0))
+
+
+def documented_probabilities(row, u, p):
+    """Usual care for one decision, re-derived from the equations in synthetic_cohort/README.md with
+    scipy.special.softmax (an implementation independent of the simulator's vectorised code)."""
+    from scipy.special import softmax
+
+    eta = {
+        "hold": 0.0,
+        "step_down": p.down_intercept + p.down_sbp * (120 - row.sbp) / 10 + p.down_potassium * max(0, row.potassium - 5)
+        + p.down_age * (row.age - 65) / 10 + p.down_frailty * u,
+        "step_up": p.up_intercept + p.up_sbp * (row.sbp - 140) / 10 + p.up_adherence * (row.adherence - 0.7)
+        - p.up_potassium * max(0, row.potassium - 4.8) - p.up_level * row.therapy_level - p.up_frailty * u,
+        "add_agent": p.add_intercept + p.add_sbp * (row.sbp - 150) / 10 + p.add_egfr * (row.egfr - 60) / 10
+        - p.add_potassium * max(0, row.potassium - 4.5) + p.add_diabetes * row.diabetes - p.add_frailty * u,
+    }
+    allowed = [a for a in ACTIONS if a != "step_down" or row.therapy_level > 0]
+    mixed = (1 - len(allowed) * p.proba_floor) * softmax([eta[a] for a in allowed]) + p.proba_floor
+    return dict(zip(allowed, mixed))
+
+
+def test_induced_gamma_is_the_largest_odds_ratio_of_the_documented_usual_care():
+    cohort = simulate_cohort(60, seed=4, confounding_strength=1.5)
+    frailty = np.repeat(cohort.frailty, 8)  # 8 decisions per episode, episode-major
+    ratios = []
+    for row, u in zip(cohort.decisions.itertuples(), frailty):
+        with_u, without_u = documented_probabilities(row, 1.5 * u, cohort.params), documented_probabilities(row, 0.0, cohort.params)
+        for a in with_u:
+            ratio = (with_u[a] / (1 - with_u[a])) / (without_u[a] / (1 - without_u[a]))
+            ratios.append(max(ratio, 1 / ratio))
+    found = induced_gamma(cohort)
+    assert found.maximum == pytest.approx(max(ratios), rel=1e-10)
+    assert found.q99 == pytest.approx(np.quantile(ratios, 0.99), rel=1e-10)
+    assert induced_gamma(simulate_cohort(60, seed=4, confounding_strength=0.0)).maximum == 1.0
+    assert induced_gamma(simulate_cohort(60, seed=4, confounding_strength=3.0)).maximum > found.maximum
 
 
 def test_strength_zero_removes_frailty_from_outcomes():

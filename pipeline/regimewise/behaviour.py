@@ -469,7 +469,8 @@ class BehaviourDesign:
     columns (patsy ``cr``, centred so the model's own intercept stays identifiable; Hastie & Tibshirani 1990,
     *Generalized Additive Models*; Wood 2017, *Generalized Additive Models*, 2nd ed., section 5.3.1). Knots sit
     at quantiles of the training values; beyond the outer knots the basis continues linearly. The other states
-    enter linearly, scaled as in :class:`regimewise.features.StateScaler`.
+    enter linearly, scaled as in :class:`regimewise.features.StateScaler`, followed by its missing-indicator
+    columns (0/1, for states with ``data.missing: indicator``; left out when constant in the training data).
     """
 
     scaler: StateScaler

@@ -32,7 +32,7 @@ from scipy import stats
 from . import evaluate, regime, sensitivity
 from .errors import UserInputError
 from .io import to_jsonable
-from .features import action_codes
+from .features import RESAMPLED_FROM, action_codes, patient_clusters
 from .protocol import Protocol
 
 BOOTSTRAP_STREAM = 6
@@ -66,27 +66,44 @@ def patient_groups(decisions: pd.DataFrame) -> list[np.ndarray]:
 
 
 def resample_patients(decisions: pd.DataFrame, groups: list[np.ndarray], rng, size: int) -> pd.DataFrame:
-    """Draw ``size`` patients with replacement; each draw becomes a new patient with new episode ids."""
+    """Draw ``size`` patients with replacement; each draw becomes a new patient with new episode ids.
+
+    The column ``resampled_from`` keeps the original patient, so cross-fitting folds keep copies together
+    (:func:`regimewise.features.patient_clusters`).
+    """
     draws = rng.integers(0, len(groups), size=size)
     rows = [groups[d] for d in draws]
     copy = np.repeat(np.arange(size), [len(r) for r in rows])
     out = decisions.iloc[np.concatenate(rows)].reset_index(drop=True)
+    out[RESAMPLED_FROM] = patient_clusters(out)  # folds keep a patient's copies together
     out["patient_id"] = copy
     out["episode_id"] = pd.Series(copy).astype(str).str.cat(out["episode_id"].astype(str), sep="/")
     return out
 
 
-def replicate_values(decisions: pd.DataFrame, protocol: Protocol) -> tuple[dict, dict]:
-    """Refit usual care, the Q-models and the regime on ``decisions``.
+def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool = False) -> tuple[dict, dict]:
+    """Refit usual care, the Q-models and the regime on ``decisions`` and evaluate it as the workflow does.
 
-    Returns {regime: {estimator: value}} and the confounding-sensitivity curve of the refitted regime
-    (:func:`regimewise.sensitivity.regime_curve`), so the sensitivity stage reuses these replicates.
+    Returns the output of :func:`regimewise.evaluate.evaluate_all` and the confounding-sensitivity curve of the
+    refitted regime (:func:`regimewise.sensitivity.regime_curve`). With ``evaluation.cross_fit_folds`` > 1, usual
+    care is fitted on all of ``decisions`` and the regime is cross-fitted by patient, as in the evaluate stage.
     """
-    learned = regime.learn_regime(decisions, protocol)
-    proba = record_proba(learned, decisions)
-    recommended = learned.recommend(decisions, proba)
-    values = evaluate.evaluate_all(decisions, proba, recommended, protocol, strict=False)
-    curve = sensitivity.regime_curve(decisions, proba, recommended, protocol)
+    if protocol.evaluation.cross_fit_folds == 1:
+        learned = regime.learn_regime(decisions, protocol)
+        proba = record_proba(learned, decisions)
+        recommended = learned.recommend(decisions, proba)
+    else:
+        proba = regime.fit_usual_care(decisions, protocol).record_proba
+        recommended = regime.cross_fitted_recommendations(decisions, proba, protocol)
+    folds = regime.crossfit_folds(decisions, protocol)
+    values = evaluate.evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds)
+    return values, sensitivity.regime_curve(decisions, proba, recommended, protocol)
+
+
+def replicate_values(decisions: pd.DataFrame, protocol: Protocol) -> tuple[dict, dict]:
+    """{regime: {estimator: value}} and the bounds curve of one replicate (:func:`learn_and_evaluate`), so the
+    sensitivity stage reuses these replicates."""
+    values, curve = learn_and_evaluate(decisions, protocol)
     return evaluate.point_values(values), {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]}
 
 

@@ -27,6 +27,8 @@ from .protocol import EvaluationSpec, Protocol
 ESTIMATOR_NAMES = {
     "is": "IS", "wis": "WIS", "pdis": "PDIS", "pdwis": "PDWIS", "dr": "DR", "wdr": "WDR", "fqe": "FQE",
 }  # fmt: skip
+# Estimators that need the fitted-Q evaluation's outcome model.
+MODEL_BASED = frozenset({"dr", "wdr", "fqe"})
 WEIGHT_HISTOGRAM_EDGES = tuple(x / 2 for x in range(-6, 9))  # log10 of the cumulative weight, 10^-3 .. 10^4
 
 
@@ -80,21 +82,24 @@ def regime_targets(logged: LoggedDecisions, recommended: np.ndarray, labels: tup
 
 
 def evaluate_regime(
-    logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, deterministic: bool, strict: bool = True
+    logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, deterministic: bool, strict: bool = True,
+    folds: np.ndarray | None = None,
 ) -> dict:
     """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
     a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
-    leaves the model-based estimators (dr, wdr, fqe) null instead of raising.
+    leaves the model-based estimators (dr, wdr, fqe) null instead of raising. ``folds`` fits the fitted-Q
+    evaluation within each fold (a cross-fitted regime, :func:`regimewise.regime.cross_fitted_recommendations`).
     """
-    try:
-        q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol)
-    except UserInputError:
-        if strict:
-            raise
-        q_taken, v_target, fqe_value = None, None, float("nan")
+    q_taken, v_target, fqe_value = None, None, float("nan")
+    if MODEL_BASED & set(protocol.evaluation.estimators):  # the Q-models are fitted only when an estimator uses them
+        try:
+            q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol, folds)
+        except UserInputError:
+            if strict:
+                raise
     results = evaluate_off_policy(
         logged.step, logged.action, logged.reward, logged.episode, logged.behaviour_proba, target,
         horizon=protocol.horizon, gamma=protocol.discount, q_taken=q_taken, v_target=v_target,
@@ -113,8 +118,30 @@ def evaluate_regime(
     return out
 
 
-def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol):
-    """Q̂ of the action taken, V̂ under the regime at each decision, and the fqe value (Le, Voloshin & Yue 2019)."""
+def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, folds=None):
+    """Q̂ of the action taken, V̂ under the regime at each decision, and the fqe value (Le, Voloshin & Yue 2019).
+
+    With ``folds`` (a fold per row, patients kept whole) the Q-models are fitted within each fold on that fold's
+    records only, so a cross-fitted regime is never scored by a model that saw the records it was learned from.
+    """
+    if folds is not None:
+        q_taken, v_target = np.empty(len(logged.step)), np.empty(len(logged.step))
+        for fold in np.unique(folds):
+            rows = folds == fold
+            part = LoggedDecisions(
+                X=logged.X[rows], step=logged.step[rows], action=logged.action[rows], reward=logged.reward[rows],
+                episode=np.unique(logged.episode[rows], return_inverse=True)[1], patient=logged.patient[rows],
+                behaviour_proba=logged.behaviour_proba[rows],
+            )  # fmt: skip
+            try:
+                q_taken[rows], v_target[rows], _ = _fitted_q_evaluation(part, target[rows], protocol)
+            except UserInputError as err:
+                raise UserInputError(
+                    f"cross-fitted evaluation, fold {int(fold) + 1} of {len(np.unique(folds))}: {err} With few "
+                    "records per fold, lower evaluation.cross_fit_folds (1 turns cross-fitting off, at the price of "
+                    "optimism) or leave fqe, dr and wdr out of evaluation.estimators."
+                ) from err
+        return q_taken, v_target, float(np.mean(v_target[logged.step == 0]))
     fqe = FittedQEvaluation(
         n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
         alpha=protocol.q_model.ridge_alpha,
@@ -172,6 +199,7 @@ def evaluate_all(
     side_by_side: dict[str, np.ndarray] | None = None,
     *,
     strict: bool = True,
+    learned_folds: np.ndarray | None = None,
 ) -> dict:
     """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts.
 
@@ -181,12 +209,16 @@ def evaluate_all(
 
     ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
     under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
+
+    ``learned_folds`` (:func:`regimewise.regime.crossfit_folds`) marks ``recommended`` as cross-fitted: the learned
+    regime's outcome models are then fitted within each fold.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
     targets = regime_targets(logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
     regimes = [
         {"name": name, "label": label,
-         "estimates": evaluate_regime(logged, target, protocol, name != "usual_care", strict)}  # fmt: skip
+         "estimates": evaluate_regime(logged, target, protocol, name != "usual_care", strict,
+                                      learned_folds if name == "learned" else None)}  # fmt: skip
         for name, label, target in targets
     ]
     returns = observed_returns(logged, protocol.discount)

@@ -8,7 +8,9 @@ Policies:
 - ``carry_forward``: fill with the same episode's most recent observed value (last observation carried forward);
   a value missing at an episode's first decision cannot be filled and is still refused.
 - ``indicator``: fill with the observed median of the variable and add a 0/1 column ``<state>_missing``
-  (missing-indicator method; Groenwold et al., CMAJ 2012;184(11):1265-9, discuss when it is biased).
+  (missing-indicator method; Groenwold et al., CMAJ 2012;184(11):1265-9, discuss when it is biased). The
+  usual-care model and the Q-model take the column as an extra binary covariate
+  (:class:`regimewise.features.StateScaler`), unless it is constant in the training decisions.
 
 Counts of every action go to validation.json. Rows keep their original index, so later findings name the file's
 own row numbers.
@@ -19,9 +21,25 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from .protocol import ProtocolFile
+from .protocol import Protocol, ProtocolFile
 
 POLICIES = ("refuse", "drop", "carry_forward", "indicator")
+INDICATOR_SUFFIX = "_missing"
+
+
+def indicator_name(state: str) -> str:
+    """Name of the 0/1 column the ``indicator`` policy adds for ``state``."""
+    return state + INDICATOR_SUFFIX
+
+
+def indicator_state(column: str) -> str:
+    """The state whose missing indicator ``column`` is (inverse of :func:`indicator_name`)."""
+    return column.removesuffix(INDICATOR_SUFFIX)
+
+
+def indicator_columns(protocol: Protocol) -> tuple[str, ...]:
+    """The missing-indicator columns of the states whose policy is ``indicator``, in the protocol's state order."""
+    return tuple(indicator_name(s.name) for s in protocol.states if protocol.data.missing.get(s.name) == "indicator")
 
 
 def _missing_mask(values: pd.Series) -> np.ndarray:
@@ -99,6 +117,6 @@ def _indicator(frame: pd.DataFrame, column: str, name: str, missing: np.ndarray)
     numbers = pd.to_numeric(frame[column].mask(missing), errors="coerce")
     fill = float(numbers.median()) if numbers.notna().any() else 0.0
     frame = frame.copy()
-    frame[f"{name}_missing"] = missing.astype(np.int64)
+    frame[indicator_name(name)] = missing.astype(np.int64)
     frame[column] = frame[column].mask(missing, fill)
     return frame, int(missing.sum())

@@ -11,6 +11,7 @@ ever evaluated as code.
 from __future__ import annotations
 
 import hashlib
+import itertools
 import json
 from dataclasses import dataclass
 from pathlib import Path
@@ -181,8 +182,9 @@ class QModelSpec(_Strict):
         "linear", description="linear: least squares with action-by-state interactions; gradient_boosting: "
         "scikit-learn histogram gradient boosting with the action encoded as features"
     )
-    basis: Literal["linear", "quadratic"] = Field(
-        "linear", description="quadratic adds the square of every non-binary state to the covariates"
+    basis: Literal["linear", "quadratic", "cubic"] = Field(
+        "linear", description="quadratic adds the square of every non-binary state to the covariates; cubic "
+        "adds the square and the cube"
     )
     ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] | Literal["cv"] = Field(
         0.0, description="ridge penalty of the linear Q-model, or 'cv' to choose it from ridge_grid by "
@@ -266,6 +268,11 @@ class EvaluationSpec(_Strict):
         list[Literal["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]], Field(min_length=1)
     ] = ["pdwis", "wdr", "fqe"]
     fixed_strategies: bool = Field(True, description="also evaluate 'always <action>' for every action")
+    cross_fit_folds: Annotated[int, Field(ge=1, le=10)] = Field(
+        2, description="the learned regime is evaluated by K-fold cross-fitting by patient: each patient's records "
+        "are scored with the regime learned from the other folds; 1 = evaluate on the records the regime was "
+        "learned from (optimistic)"
+    )
     replicates: Annotated[int, Field(ge=0, le=100_000)] = Field(
         200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
     )
@@ -332,6 +339,36 @@ class ReportSpec(_Strict):
     )
 
 
+# Settings a specification sweep may vary (axis name = the setting's place in the protocol), in grid order.
+# Weight truncation is swept through behaviour_model.probability_floor, which caps every inverse probability at
+# 1/floor; behaviour_model.truncation_percentiles only changes diagnostics, never an estimate.
+SWEEP_AXES = (
+    "constraints.support_threshold",
+    "behaviour_model.kind",
+    "behaviour_model.probability_floor",
+    "q_model.kind",
+    "q_model.basis",
+    "q_model.learning_mode",
+    "constraints.pessimism",
+)
+MAX_SPECIFICATIONS = 100
+
+
+class SweepSpec(_Strict):
+    """Specification sweep: the learned-minus-usual-care contrast recomputed under alternative analysis choices."""
+
+    axes: Annotated[
+        dict[Literal[SWEEP_AXES], Annotated[list[int | float | str], Field(min_length=1, max_length=20)]],
+        Field(min_length=1),
+    ] = Field(description="setting -> values to try; every combination is one specification (one workflow job)")
+    replicates: Annotated[int, Field(ge=2, le=10_000)] = Field(
+        50, description="patient-bootstrap replicates per specification (every model refitted in each)"
+    )
+    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=10)] = Field(
+        [1.0, 1.25, 1.5, 2.0, 3.0], description="Γ values at which each specification's bounds are shown"
+    )
+
+
 class Protocol(_Strict):
     """A regimewise research protocol."""
 
@@ -349,6 +386,7 @@ class Protocol(_Strict):
     sensitivity: SensitivitySpec = SensitivitySpec()
     seed: Seed
     report: ReportSpec = ReportSpec()
+    sweeps: SweepSpec | None = Field(None, description="optional specification sweep (none: no sweep jobs)")
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:
@@ -387,6 +425,14 @@ class Protocol(_Strict):
                 raise ValueError(f"max_intensity_change needs an intensity on every action; {missing[0]!r} has none")
         return self
 
+    @model_validator(mode="after")
+    def _sweep_grid_valid(self) -> Protocol:
+        if self.sweeps is not None:
+            if max(self.sweeps.gammas) > self.sensitivity.gamma_max:
+                raise ValueError(f"sweeps.gammas must not exceed sensitivity.gamma_max ({self.sensitivity.gamma_max})")
+            sweep_specifications(self)
+        return self
+
     @property
     def action_labels(self) -> tuple[str, ...]:
         return tuple(a.label for a in self.actions)
@@ -402,6 +448,75 @@ def _refuse_repeats(values, section, what):
         if v in seen:
             raise ValueError(f"{section}: {what} {v!r} is declared twice")
         seen.add(v)
+
+
+# ---------------------------------------------------------------------------------------------- sweeps
+@dataclass(frozen=True)
+class Specification:
+    """One specification of a sweep: its id, the swept settings and the whole protocol it analyses with.
+
+    ``prespecified`` marks the protocol's own settings (always ``spec_00``); ``in_grid`` says whether that
+    combination is also one of the axes' combinations (otherwise it was added to the grid).
+    """
+
+    id: str
+    index: int
+    settings: dict
+    prespecified: bool
+    in_grid: bool
+    protocol: Protocol
+
+
+def sweep_specifications(protocol: Protocol) -> tuple[Specification, ...]:
+    """The sweep's grid, each specification validated as a whole protocol (without ``sweeps``).
+
+    ``spec_00`` is the pre-specified analysis (the protocol's own settings); ``spec_01``, ``spec_02``, … are the
+    other combinations of the axes' values: axes in :data:`SWEEP_AXES` order, values in listed order, the last
+    axis varying fastest. Raises ValueError naming the axis and value, or the combination, that is invalid.
+    """
+    if protocol.sweeps is None:
+        return ()
+    base = {**protocol.model_dump(), "sweeps": None}
+    axes = [axis for axis in SWEEP_AXES if axis in protocol.sweeps.axes]
+    values = [[_swept_value(base, axis, v) for v in protocol.sweeps.axes[axis]] for axis in axes]
+    for axis, listed in zip(axes, values):
+        if len(set(listed)) < len(listed):
+            raise ValueError(f"sweeps.axes.{axis} lists a value twice; keep each value once")
+    own = tuple(getattr(getattr(protocol, axis.split(".")[0]), axis.split(".")[1]) for axis in axes)
+    grid = list(itertools.product(*values))
+    combos = [own, *(combo for combo in grid if combo != own)]
+    if len(combos) > MAX_SPECIFICATIONS:
+        raise ValueError(f"sweeps.axes make {len(combos)} specifications, more than {MAX_SPECIFICATIONS}; drop values")
+    out = []
+    for index, combo in enumerate(combos):
+        spec_id, settings = f"spec_{index:02d}", dict(zip(axes, combo))
+        try:
+            spec_protocol = Protocol.model_validate(_with_settings(base, settings))
+        except ValidationError as err:
+            shown = ", ".join(f"{axis}={value!r}" for axis, value in settings.items())
+            raise ValueError(f"sweeps: combination {spec_id} ({shown}) is not a valid protocol: "
+                             f"{_describe_validation_error(err)}; remove one of its values") from None  # fmt: skip
+        out.append(Specification(spec_id, index, settings, index == 0, index > 0 or own in grid, spec_protocol))
+    return tuple(out)
+
+
+def _with_settings(base: dict, settings: dict) -> dict:
+    out = dict(base)
+    for axis, value in settings.items():
+        section, field = axis.split(".")
+        out[section] = {**out[section], field: value}
+    return out
+
+
+def _swept_value(base: dict, axis: str, value):
+    """The value as the setting validates it, or ValueError naming the axis, the value and the constraint."""
+    try:
+        changed = Protocol.model_validate(_with_settings(base, {axis: value}))
+    except ValidationError as err:
+        raise ValueError(f"sweeps.axes.{axis}: value {value!r} is not allowed ({_describe_validation_error(err)}); "
+                         "change or remove it") from None  # fmt: skip
+    section, field = axis.split(".")
+    return getattr(getattr(changed, section), field)
 
 
 # ---------------------------------------------------------------------------------------------- loading

@@ -24,8 +24,9 @@ from .behaviour import (
     cross_fit_proba,
     patient_folds,
 )
-from .features import QFeatures, StateScaler, action_codes, episode_codes
+from .features import QFeatures, StateScaler, action_codes, episode_codes, patient_clusters
 from .clinical_rules import ClinicalRuleSet
+from .errors import UserInputError
 from .fqi import FittedQIteration
 from .protocol import Protocol
 
@@ -34,6 +35,8 @@ from .protocol import Protocol
 BEHAVIOUR_SPAWN_KEY = 1
 # Spawn key of the Q-models' random streams (folds, boosting, bootstrap ensemble) under the root seed.
 REGIME_SPAWN_KEY = 2
+# Stream of the patient folds of the cross-fitted evaluation (:func:`cross_fitted_recommendations`).
+CROSSFIT_SPAWN_KEY = 7
 # Side-by-side regimes, each adding one safeguard to the previous one.
 SAFEGUARDS = ("unconstrained", "support", "rules", "pessimistic")
 
@@ -112,7 +115,7 @@ def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareMode
         folds = np.zeros(len(decisions), dtype=np.int64)
         out_of_fold = model.predict_proba(X)
     else:
-        folds = patient_folds(decisions["patient_id"].to_numpy(), spec.folds, int(fold_seed))
+        folds = patient_folds(patient_clusters(decisions), spec.folds, int(fold_seed))
         out_of_fold = cross_fit_proba(make_model, X, codes, len(protocol.actions), folds)
     floor = spec.probability_floor
     return UsualCareModel(design, model, floor, apply_probability_floor(out_of_fold, floor), folds)
@@ -151,7 +154,7 @@ def fit_q_learning(
         episode_codes(decisions),
         behaviour_proba,
         rule_permitted=None if rules is None else rules.permitted(decisions),
-        groups=pd.factorize(decisions["patient_id"], sort=False)[0] if "patient_id" in decisions else None,
+        groups=pd.factorize(patient_clusters(decisions), sort=False)[0] if "patient_id" in decisions else None,
     )  # fmt: skip
 
 
@@ -218,3 +221,50 @@ def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
     features = QFeatures.from_protocol(usual_care.scaler, protocol)
     fqi = fit_q_learning(decisions, proba, protocol, features)
     return LearnedRegime(usual_care, features, fqi, protocol.action_labels, ClinicalRuleSet.from_protocol(protocol))
+
+
+def crossfit_folds(decisions: pd.DataFrame, protocol: Protocol) -> np.ndarray | None:
+    """Fold of every row for the cross-fitted evaluation (patients kept whole), or None with one fold.
+
+    Seeded by ``SeedSequence(seed, spawn_key=(CROSSFIT_SPAWN_KEY,))``, so the evaluate stage and every bootstrap
+    replicate find the folds again from the records and the protocol alone.
+    """
+    k = protocol.evaluation.cross_fit_folds
+    if k == 1:
+        return None
+    patients = patient_clusters(decisions)
+    if pd.unique(patients).size < 2 * k:
+        raise UserInputError(
+            f"evaluation.cross_fit_folds is {k} but the records hold {pd.unique(patients).size} patients; "
+            f"lower it (at least 2 patients per fold are needed)"
+        )
+    seed = int(np.random.SeedSequence(protocol.seed, spawn_key=(CROSSFIT_SPAWN_KEY,)).generate_state(1)[0])
+    return patient_folds(patients, k, seed)
+
+
+def cross_fitted_recommendations(decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol) -> np.ndarray:
+    """Action codes of the learned regime as evaluated: each patient's records scored by a regime learned without them.
+
+    Patients are dealt into ``evaluation.cross_fit_folds`` folds (:func:`regimewise.behaviour.patient_folds`,
+    seeded by ``SeedSequence(seed, spawn_key=(CROSSFIT_SPAWN_KEY,))``); the rows of fold k get the recommendations
+    of :func:`learn_regime` fitted on the other folds, with that regime's own usual-care model for the support
+    constraint, as for a new patient. Evaluating a regime on the records it was learned from is optimistic: it
+    was chosen because it looks good on them. The cross-fitted estimate targets the mean true value of the fold
+    regimes, a data-adaptive parameter (Hubbard, Kherad-Pajouh & van der Laan 2016, Int J Biostat 12(1):3-19;
+    cross-validated value of a learned rule: van der Laan & Luedtke 2015, J Causal Inference 3(1):61-95); each
+    fold regime learns from (K-1)/K of the patients, so the estimate leans conservative for the regime learned
+    from all of them. With one fold, the full-data regime's in-sample recommendations are returned. The
+    evaluation must fit its own outcome models within each fold too (``evaluate.evaluate_all(learned_folds=...)``):
+    a model fitted across folds has seen the records that chose the other folds' regimes.
+    (Both references recalled from memory; neither is in the project's METHODS.md.)
+    """
+    folds = crossfit_folds(decisions, protocol)
+    if folds is None:
+        return learn_regime(decisions, protocol).recommend(decisions, behaviour_proba)
+    recommended = np.empty(len(decisions), dtype=np.int64)
+    for fold in range(protocol.evaluation.cross_fit_folds):
+        held_out = folds == fold
+        learned = learn_regime(decisions.loc[~held_out].reset_index(drop=True), protocol)
+        recommended[held_out] = learned.recommend(decisions.loc[held_out].reset_index(drop=True))
+    return recommended
+

@@ -37,7 +37,7 @@ SUMMARY_SCHEMA_VERSION = "1"
 
 
 def report_stage(protocol, validation, behaviour, regime, values, html, summary, provenance, intervals=None,
-                 cohort=None, sensitivity=None):
+                 cohort=None, sensitivity=None, sweep=None):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
     pf = load_protocol(protocol)
     p = pf.protocol
@@ -48,6 +48,7 @@ def report_stage(protocol, validation, behaviour, regime, values, html, summary,
         "values": merge_intervals(read_json(values), None if intervals is None else read_json(intervals)),
         "cohort": None if cohort is None else read_json(cohort),
         "sensitivity": None if sensitivity is None else read_json(sensitivity),
+        "sweep": None if sweep is None else read_json(sweep),
     }
     prov = build_provenance(pf)
     headline = build_summary(p, parts, prov)
@@ -86,6 +87,7 @@ def build_summary(p, parts, prov) -> dict:
             "support_threshold": parts["regime"]["constraints"]["support_threshold"],
             "decisions_changed_by_support": parts["regime"]["decisions_changed_by_support"],
             "share_differs_from_taken": parts["regime"]["share_differs_from_taken"],
+            "cross_fit": parts["regime"]["cross_fit"],
             **safeguard_headlines(parts["regime"], values),
         },
         "values": {r["name"]: r["estimates"] for r in values["regimes"]},
@@ -95,6 +97,7 @@ def build_summary(p, parts, prov) -> dict:
         "bootstrap": values["bootstrap"],
         "headline": headline_sentence(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
+        "sweep": sweep_headlines(parts.get("sweep")),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
@@ -113,7 +116,8 @@ def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
 def sensitivity_figure(sensitivity: dict) -> str:
     """Bounds of the learned-minus-usual-care difference and their bootstrap interval against Γ."""
     _style()
-    curve = sensitivity["curve"]
+    # undefined limits (null in JSON) become gaps in the plot
+    curve = {key: [float("nan") if v is None else v for v in values] for key, values in sensitivity["curve"].items()}
     fig, ax = plt.subplots(figsize=(6.5, 3.2))
     ax.fill_between(curve["gamma"], curve["interval_low"], curve["interval_high"], color="C0", alpha=0.2,
                     label=f"{100 * sensitivity['level']:.0f}% bootstrap interval of the bounds")  # fmt: skip
@@ -125,6 +129,39 @@ def sensitivity_figure(sensitivity: dict) -> str:
     ax.set_xlabel("confounding strength Γ (odds-ratio bound)")
     ax.set_ylabel("learned − usual care")
     ax.legend(frameon=False, fontsize=8, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    return _svg(fig)
+
+
+def sweep_headlines(sweep: dict | None) -> dict | None:
+    """The specification sweep's sorted table (without the per-Γ bounds, which stay in sweep.json)."""
+    if sweep is None:
+        return None
+    keys = ("estimator", "level", "replicates", "gammas", "gamma_max", "axes", "prespecified", "prespecified_in_grid",
+            "n_specifications", "intervals_above_zero", "intervals_above_zero_low_ess", "sentence")  # fmt: skip
+    row_keys = ("id", "prespecified", "settings", "difference", "low", "high", "ess", "low_ess", "tipping_point")
+    return {**{key: sweep[key] for key in keys},
+            "specifications": [{key: row[key] for key in row_keys} for row in sweep["specifications"]]}  # fmt: skip
+
+
+def sweep_figure(sweep: dict) -> str:
+    """Sorted interval plot: each specification's learned-minus-usual-care difference with its bootstrap interval.
+
+    Lowest estimate at the bottom; the pre-specified analysis in red with a diamond; hollow markers and dashed
+    grey intervals: effective sample too small to be trusted. Specifications with an undefined estimate are left out.
+    """
+    _style()
+    rows = [r for r in sweep["specifications"] if r["difference"] is not None]
+    fig, ax = plt.subplots(figsize=(6.5, 0.26 * max(len(rows), 1) + 1.2))
+    for y, r in enumerate(rows):
+        color = "C3" if r["prespecified"] else ("0.6" if r["low_ess"] else "C0")
+        if r["low"] is not None:
+            ax.hlines(y, r["low"], r["high"], color=color, linewidth=1.2,
+                      linestyles="dashed" if r["low_ess"] else "solid")  # fmt: skip
+        ax.plot([r["difference"]], [y], "D" if r["prespecified"] else "o", color=color,
+                markerfacecolor="none" if r["low_ess"] else color)  # fmt: skip
+    ax.axvline(0.0, color="black", linewidth=0.8)
+    ax.set_yticks(range(len(rows)), [r["id"] + (" (pre-specified)" if r["prespecified"] else "") for r in rows])
+    ax.set_xlabel(f"learned − usual care ({sweep['estimator']}) with {100 * sweep['level']:.0f}% bootstrap interval")
     return _svg(fig)
 
 
@@ -306,4 +343,6 @@ def render_html(p, parts, prov, headline) -> str:
         usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
         sensitivity=parts.get("sensitivity"),
         sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
+        sweep=parts.get("sweep"),
+        sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
     )

@@ -273,11 +273,12 @@ def confounded_mask(step: np.ndarray, spec) -> np.ndarray:
     return np.isin(step, spec.confounded_decisions)
 
 
-def regime_curve(decisions, behaviour_proba, recommended, protocol) -> dict:
+def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None) -> dict:
     """Bounds of the learned regime's weighted-IS value over the Γ grid, and usual care's observed mean return.
 
     Usual care's value is the observed mean return, which hidden confounding of the choices cannot change;
-    so the contrast's bounds are the regime's bounds minus that mean.
+    so the contrast's bounds are the regime's bounds minus that mean. ``gammas`` defaults to the protocol's
+    analysis grid (:func:`analysis_gammas`).
     """
     from .features import action_codes, episode_codes
 
@@ -289,7 +290,7 @@ def regime_curve(decisions, behaviour_proba, recommended, protocol) -> dict:
     returns = np.bincount(episode, weights=reward, minlength=int(episode.max()) + 1)
     curve = bounds_curve(
         returns, behaviour_proba[np.arange(len(codes)), codes], np.asarray(recommended) == codes, episode,
-        analysis_gammas(spec), confounded_mask(step, spec),
+        analysis_gammas(spec) if gammas is None else np.asarray(gammas, dtype=float), confounded_mask(step, spec),
     )  # fmt: skip
     follows_all = np.bincount(episode, weights=np.asarray(recommended) != codes, minlength=returns.size) == 0
     weights = np.where(follows_all, np.exp(np.bincount(

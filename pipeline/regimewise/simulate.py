@@ -441,6 +441,42 @@ def usual_care_probabilities(states, frailty, confounding_strength=1.0, params=N
     return np.where(permitted, (1.0 - k_permitted * p.proba_floor) * softmax + p.proba_floor, 0.0)
 
 
+@dataclass(frozen=True)
+class InducedGamma:
+    """How strongly the hidden frailty moved usual care's choices, on the scale of Tan's (2006) model.
+
+    ``maximum`` is the largest odds ratio, over the cohort's decisions and their permitted actions, between
+    the true usual-care probability of an action with the patient's frailty and with the frailty term removed
+    (``U = 0``), taken in whichever direction exceeds 1; ``q99`` is the 99th percentile of the same ratios.
+    A marginal sensitivity model with ``Gamma >= maximum`` holds for every recorded decision when the
+    frailty-free probability stands in for the identified one. (Tan's model bounds the ratio against the
+    propensity given the recorded history, which averages over ``U``; this simulator's yardstick uses
+    ``U = 0``, as its documentation states.)
+    """
+
+    maximum: float
+    q99: float
+
+
+def induced_gamma(cohort: SimulatedCohort) -> InducedGamma:
+    """Odds ratios by which the hidden frailty moved the true usual-care probabilities of ``cohort``.
+
+    Examples
+    --------
+    >>> induced_gamma(simulate_cohort(50, seed=1, confounding_strength=0.0)).maximum
+    1.0
+    """
+    frailty = cohort.frailty[pd.factorize(cohort.decisions["episode_id"], sort=False)[0]]
+    s, p = cohort.confounding_strength, cohort.params
+    with_u = usual_care_probabilities(cohort.decisions, frailty, s, p)
+    without_u = usual_care_probabilities(cohort.decisions, np.zeros_like(frailty), s, p)
+    permitted = with_u > 0
+    odds = lambda q: q / (1.0 - q)  # noqa: E731
+    log_ratio = np.abs(np.log(odds(with_u[permitted])) - np.log(odds(without_u[permitted])))
+    ratios = np.exp(log_ratio)
+    return InducedGamma(maximum=float(ratios.max()), q99=float(np.quantile(ratios, 0.99)))
+
+
 def _draw_actions(proba, uniforms):
     """Inverse-CDF draw of one action per row: the first action whose cumulative probability exceeds u."""
     cumulative = np.cumsum(proba, axis=1)
@@ -910,6 +946,7 @@ def write_cohort(out_dir, n_episodes=3000, seed=20261201, confounding_strength=1
         "truth_n": int(n_truth),
         "gamma": gamma,
         "true_values": _truth(truth_seed, confounding_strength, n_truth, gamma, p),
+        "induced_gamma": {k: round(v, 6) for k, v in asdict(induced_gamma(cohort)).items()},
         "params": asdict(p),
     }
     paths = {name: out / name for name in ("decisions.csv", "episodes.csv", "truth.json")}

@@ -26,7 +26,8 @@ from .io import read_json, read_parquet, write_json, write_parquet
 from .overlap import overlap_by_step, usual_care_diagnostics
 from .protocol import load_protocol
 from .sensitivity import regime_curve, summarise_sensitivity
-from .regime import fit_usual_care, regime_variants, safeguard_summary
+from .sweep import combine_sweep, run_specification
+from .regime import cross_fitted_recommendations, crossfit_folds, fit_usual_care, regime_variants, safeguard_summary
 from .report import report_stage
 from .validate import validate_records, write_error_report
 
@@ -86,7 +87,9 @@ def regime_stage(protocol, decisions, proba, table, regime):
     """Learn the side-by-side regimes; write recommendations with Q-values and the fitted models' summary.
 
     The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
-    ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.SAFEGUARDS`).
+    ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.SAFEGUARDS`); the
+    ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
+    that patient (:func:`regimewise.regime.cross_fitted_recommendations`; equal to ``recommended`` with one fold).
     """
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
@@ -106,6 +109,9 @@ def regime_stage(protocol, decisions, proba, table, regime):
     labels = np.asarray(p.action_labels)
     out = frame[["episode_id", "step", "action"]].copy()
     out["recommended"] = labels[recommended]
+    folds = p.evaluation.cross_fit_folds
+    evaluated = recommended if folds == 1 else cross_fitted_recommendations(frame, probabilities, p)
+    out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
     for name, codes in chosen.items():
         out[f"recommended_{name}"] = labels[codes]
     out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
@@ -113,9 +119,11 @@ def regime_stage(protocol, decisions, proba, table, regime):
     write_parquet(table, out, caution=RECOMMENDATION_CAUTION)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
     summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
+    summary["cross_fit"] = {"folds": folds, "agreement": float(np.mean(evaluated == recommended))}
     summary["readable"] = distill_regime(
-        frame, recommended, p.states, p.action_labels, groups=frame["patient_id"].to_numpy(), random_state=0
-    ).to_dict()
+        frame, recommended, features.scaler.covariate_states(p), p.action_labels,
+        groups=frame["patient_id"].to_numpy(), random_state=0,
+    ).to_dict()  # the states, then the missing indicators the models use
     write_json(regime, summary)
 
 
@@ -163,17 +171,23 @@ def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------- evaluate
+def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarray:
+    """Action codes of one action-label column of the regime stage's recommendations table."""
+    return action_codes(recommendations.drop(columns="action").rename(columns={column: "action"}), labels)
+
+
 def evaluate_stage(protocol, decisions, proba, table, values):
     """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     recommendations = read_parquet(table)
-    recommended = action_codes(recommendations.rename(columns={"action": "taken", "recommended": "action"}), p.action_labels)
+    recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
     variants = {
         c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
         for c in recommendations.columns if c.startswith("recommended_")
     }  # side-by-side regimes of the regime stage
-    write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), recommended, p, variants or None))
+    write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), recommended, p, variants or None,
+                                    learned_folds=crossfit_folds(frame, p)))
 
 
 # ---------------------------------------------------------------------------------------------- describe
@@ -182,9 +196,7 @@ def describe_stage(protocol, decisions, proba, table, cohort):
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
-    recommended = action_codes(
-        read_parquet(table).rename(columns={"action": "taken", "recommended": "action"}), p.action_labels
-    )
+    recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
     write_json(cohort, {
         "caution": RECOMMENDATION_CAUTION,
         "baseline": cohort_table(frame, p),
@@ -216,9 +228,7 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
     """Bounds of the learned regime's value and contrast over Γ, their bootstrap intervals, Γ* and E-values."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
-    recommended = action_codes(
-        read_parquet(table).rename(columns={"action": "taken", "recommended": "action"}), p.action_labels
-    )
+    recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
     point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p)
     replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
     headline = headline_contrast(read_json(intervals), p)
@@ -234,6 +244,23 @@ def headline_contrast(intervals: dict, p) -> dict | None:
     return None
 
 
+# ---------------------------------------------------------------------------------------------- sweep
+def sweep_spec_stage(protocol, decisions, spec, result):
+    """One specification of the sweep (wildcard ``spec``): refit, evaluate and bootstrap; one BLAS thread."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    with threadpool_limits(limits=1):
+        out = run_specification(frame, p, spec)
+    write_json(result, out)
+    log.info("sweep %s: %d of %d replicates used", spec, out["replicates_used"], out["replicates"])
+
+
+def sweep_stage(protocol, specs, sweep):
+    """Combine the specifications into the table sorted by the learned-minus-usual-care contrast."""
+    p = load_protocol(protocol).protocol
+    write_json(sweep, combine_sweep([read_json(path) for path in specs], p))
+
+
 # ---------------------------------------------------------------------------------------------- dispatch
 STAGES = {
     "validate": validate_stage,
@@ -244,6 +271,8 @@ STAGES = {
     "bootstrap_shard": bootstrap_shard_stage,
     "bootstrap": bootstrap_stage,
     "sensitivity": sensitivity_stage,
+    "sweep_spec": sweep_spec_stage,
+    "sweep": sweep_stage,
     "report": report_stage,
 }
 

@@ -13,18 +13,18 @@ from pathlib import Path
 
 from . import __version__
 from .errors import UserInputError
-from .protocol import load_protocol
+from .protocol import load_protocol, sweep_specifications
 
 PACKAGE_DIR = Path(__file__).resolve().parent
 
 # Modules whose source determines each stage's output (besides errors/io/protocol, shared by all).
 STAGE_MODULES = {
     "validate": ("validate.py", "deidentify.py", "missing.py"),
-    "behaviour": ("behaviour.py", "features.py", "overlap.py", "regime.py", "weighting.py"),
-    "describe": ("describe.py", "overlap.py", "behaviour.py", "features.py", "weighting.py"),
-    "regime": ("fqi.py", "features.py", "regime.py", "clinical_rules.py", "distill.py", "pessimism.py"),
-    "evaluate": ("ope.py", "fqi.py", "features.py", "evaluate.py", "pessimism.py"),
-    "sensitivity": ("sensitivity.py", "features.py"),
+    "behaviour": ("behaviour.py", "features.py", "missing.py", "overlap.py", "regime.py", "weighting.py"),
+    "describe": ("describe.py", "overlap.py", "behaviour.py", "features.py", "missing.py", "weighting.py"),
+    "regime": ("fqi.py", "features.py", "missing.py", "regime.py", "clinical_rules.py", "distill.py", "pessimism.py"),
+    "evaluate": ("ope.py", "fqi.py", "features.py", "missing.py", "evaluate.py", "pessimism.py"),
+    "sensitivity": ("sensitivity.py", "features.py", "missing.py"),
     "report": ("report.py", "provenance.py", "describe.py", "overlap.py", "templates/report.html",
                "templates/sections/*.html"),
 }
@@ -32,6 +32,8 @@ STAGE_MODULES = {
 STAGE_MODULES["bootstrap"] = tuple(
     sorted({"bootstrap.py", *STAGE_MODULES["behaviour"], *STAGE_MODULES["regime"], *STAGE_MODULES["evaluate"]})
 )
+# A specification reruns the bootstrap's refits under other settings and bounds each one's value.
+STAGE_MODULES["sweep"] = tuple(sorted({"sweep.py", *STAGE_MODULES["bootstrap"], *STAGE_MODULES["sensitivity"]}))
 SHARED_MODULES = ("errors.py", "io.py", "protocol.py", "stages.py")
 
 
@@ -46,6 +48,7 @@ class Settings:
     decisions_file: str
     episodes_file: str | None
     bootstrap_shards: int = 1
+    sweep_specs: tuple[str, ...] = ()
 
     @property
     def record_inputs(self) -> dict:
@@ -70,6 +73,7 @@ def load_settings(config: dict) -> Settings:
         decisions_file=str(pf.decisions_path),
         episodes_file=None if episodes is None else str(episodes),
         bootstrap_shards=pf.protocol.evaluation.shards,
+        sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
     )
 
 

@@ -1,0 +1,38 @@
+# ---- sweep: the contrast under alternative analysis choices, one job per specification, then sorted ------
+rule sweep_spec:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+    output:
+        result=results("sweep/specs/{spec}.json"),
+    log:
+        logs("sweep_spec_{spec}"),
+    benchmark:
+        benchmarks("sweep_spec_{spec}")
+    wildcard_constraints:
+        spec=r"spec_\d+",
+    threads: 1
+    params:
+        code=stage_code_hash("sweep"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+rule sweep:
+    input:
+        protocol=SETTINGS.protocol,
+        specs=sweep_spec_files(),
+    output:
+        sweep=results("sweep/sweep.json"),
+    log:
+        logs("sweep"),
+    benchmark:
+        benchmarks("sweep")
+    params:
+        code=stage_code_hash("sweep"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
