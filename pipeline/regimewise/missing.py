@@ -71,7 +71,8 @@ def apply_missing_policy(pf: ProtocolFile, frame: pd.DataFrame) -> tuple[pd.Data
     counts: dict = {}
     if cols.episode_id not in frame.columns or cols.step not in frame.columns:
         return frame, counts
-    frame = frame.copy()
+    if any(policy in ("carry_forward", "indicator") for policy in policies.values()):
+        frame = frame.copy()  # these two fill columns in place; the caller's table stays as read
     for state in p.states:
         policy = policies[state.name]
         column = state.source_column

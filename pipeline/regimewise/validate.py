@@ -263,7 +263,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
     findings = []
     source = _source_rows(frame)
     ep, step, day = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64), frame[cols.day]
-    order = np.lexsort((step.to_numpy(), ep.to_numpy()))
+    in_order = _in_episode_step_order(ep.to_numpy(), step.to_numpy())  # the usual case: no sort needed
+    order = np.arange(len(frame)) if in_order else np.lexsort((step.to_numpy(), ep.to_numpy()))
     ep_s, step_s, day_s = ep.to_numpy()[order], step.to_numpy()[order], day.to_numpy(dtype=float)[order]
     same = np.r_[False, ep_s[1:] == ep_s[:-1]]
     duplicate = same & np.r_[False, step_s[1:] == step_s[:-1]]
@@ -288,8 +289,9 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
                     message=f"episode {ep_s[i]!r}: day goes backwards at step {step_s[i]}", fix="days never decrease")
         )
     if cols.patient_id is not None:
-        per_episode = frame.groupby(cols.episode_id, sort=True)[cols.patient_id].nunique()
-        for episode in per_episode.index[per_episode.to_numpy() > 1]:
+        patient_s = frame[cols.patient_id].astype(str).to_numpy()[order]
+        switched = same & np.r_[False, patient_s[1:] != patient_s[:-1]]  # a new patient id within an episode
+        for episode in np.unique(ep_s[switched]):
             row = int(source[np.flatnonzero(ep.to_numpy() == str(episode))[0]])
             findings.append(
                 Finding(file=file, row=row, column=cols.patient_id, value=None, rule="patient_per_episode",
@@ -322,25 +324,39 @@ def _header_hint(frame: pd.DataFrame) -> str:
 
 
 def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
-    """Rename to contract names, cast types and sort by episode and step (call only on a clean table)."""
+    """Rename to contract names, cast types and sort by episode and step (call only on a clean table).
+
+    The columns are built first and the frame once (one block per type); a table already in episode and step
+    order, the usual case, is not sorted again.
+    """
     p = pf.protocol
     cols = p.data.columns
-    out = pd.DataFrame(
-        {
-            "episode_id": frame[cols.episode_id].astype(str),
-            "patient_id": (frame[cols.patient_id] if cols.patient_id else frame[cols.episode_id]).astype(str),
-            "step": pd.to_numeric(frame[cols.step]).astype(np.int64),
-            "day": pd.to_numeric(frame[cols.day]).astype(np.int64),
-        }
-    )
+    columns = {
+        "episode_id": frame[cols.episode_id].astype(str),
+        "patient_id": (frame[cols.patient_id] if cols.patient_id else frame[cols.episode_id]).astype(str),
+        "step": pd.to_numeric(frame[cols.step]).astype(np.int64),
+        "day": pd.to_numeric(frame[cols.day]).astype(np.int64),
+    }
     for s in p.states:
-        out[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
-    out["action"] = frame[cols.action].astype(str)
-    out["reward"] = pd.to_numeric(frame[cols.reward]).astype(np.float64)
+        columns[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
+    columns["action"] = frame[cols.action].astype(str)
+    columns["reward"] = pd.to_numeric(frame[cols.reward]).astype(np.float64)
     for s in p.states:
         if f"{s.name}_missing" in frame.columns and p.data.missing.get(s.name) == "indicator":
-            out[f"{s.name}_missing"] = frame[f"{s.name}_missing"].astype(np.int64)
+            columns[f"{s.name}_missing"] = frame[f"{s.name}_missing"].astype(np.int64)
+    out = pd.DataFrame({name: values.to_numpy() for name, values in columns.items()}, copy=False)
+    if _in_episode_step_order(out["episode_id"].to_numpy(), out["step"].to_numpy()):
+        return out
     return out.sort_values(["episode_id", "step"], kind="mergesort").reset_index(drop=True)
+
+
+def _in_episode_step_order(episode: np.ndarray, step: np.ndarray) -> bool:
+    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give."""
+    if episode.size < 2:
+        return True
+    later = episode[1:] > episode[:-1]
+    same = episode[1:] == episode[:-1]
+    return bool(np.all(later | (same & (step[1:] > step[:-1]))))
 
 
 # ---------------------------------------------------------------------------------------------- episodes table
@@ -412,12 +428,22 @@ def check_episodes(pf: ProtocolFile, frame: pd.DataFrame, file: str, decisions: 
     return findings
 
 
+def episode_runs(decisions: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """First row and number of decisions of each episode in clean decisions (sorted by episode and step)."""
+    episode = decisions["episode_id"].to_numpy()
+    starts = np.flatnonzero(np.r_[True, episode[1:] != episode[:-1]]) if episode.size else np.zeros(0, dtype=np.int64)
+    return starts, np.diff(np.r_[starts, episode.size])
+
+
 def clean_episodes(pf: ProtocolFile, frame: pd.DataFrame | None, decisions: pd.DataFrame,
                    dropped_episodes: set[str]) -> pd.DataFrame:  # fmt: skip
     """The episodes table: decision counts per episode, joined with the protocol's episodes file when given."""
-    counts = decisions.groupby("episode_id", sort=True).agg(
-        patient_id=("patient_id", "first"), n_decisions=("step", "size")
-    ).reset_index()
+    starts, lengths = episode_runs(decisions)
+    counts = pd.DataFrame({
+        "episode_id": decisions["episode_id"].to_numpy()[starts],
+        "patient_id": decisions["patient_id"].to_numpy()[starts],
+        "n_decisions": lengths,
+    })  # fmt: skip
     if frame is None:
         return counts
     cols = pf.protocol.data.columns
@@ -468,7 +494,8 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
         return findings, None
     decisions = clean_decisions(pf, frame)
     cols = p.data.columns
-    dropped = set(raw[cols.episode_id].astype(str)) - set(decisions["episode_id"])
+    # episodes the missing-data policy emptied (none when every row was kept)
+    dropped = set() if len(decisions) == len(raw) else set(raw[cols.episode_id].astype(str)) - set(decisions["episode_id"])
     if episodes_raw is not None:
         findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped)
         if findings:
@@ -538,7 +565,7 @@ def summarise(pf: ProtocolFile, decisions: pd.DataFrame, raw: pd.DataFrame, miss
               episodes_dropped: int = 0) -> dict:  # fmt: skip
     """Counts for validation.json (no individual-level values)."""
     p = pf.protocol
-    lengths = decisions.groupby("episode_id").size()
+    starts, lengths = episode_runs(decisions)
     known = {r.column for r in decision_rules(pf)} | {f"{s}_missing" for s in p.state_names}
     return {
         "decisions_file": pf.decisions_path.name,
@@ -548,9 +575,9 @@ def summarise(pf: ProtocolFile, decisions: pd.DataFrame, raw: pd.DataFrame, miss
         "rows_rejected": 0,
         "rows_dropped_missing": int(len(raw) - len(decisions)),
         "episodes_dropped_missing": int(episodes_dropped),
-        "episodes": int(decisions["episode_id"].nunique()),
+        "episodes": int(starts.size),
         "patients": int(decisions["patient_id"].nunique()),
-        "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.to_numpy().tolist()).items())},
+        "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.tolist()).items())},
         "decisions_by_step": {str(k): int(v) for k, v in decisions.groupby("step").size().items()},
         "actions": {a: int((decisions["action"] == a).sum()) for a in p.action_labels},
         "findings_by_rule": {rule: 0 for rule in RULES_CHECKED},
