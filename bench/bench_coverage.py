@@ -75,11 +75,11 @@ def one_cohort(task):
         shard = bootstrap.run_shard(decisions, seeded, 0)
         intervals = bootstrap.combine(point, [shard], seeded)
         truth = true_value(learned, n=args.truth_episodes, seed=10_000 + seed, confounding_strength=0.0).value
-        fold_truth = truth if folds is None else sum(  # the data-adaptive target: fold regimes, episode-weighted
-            np.mean(folds[decisions["step"].to_numpy() == 0] == k) * true_value(
-                regime.learn_regime(decisions.loc[folds != k].reset_index(drop=True), seeded),
-                n=args.truth_episodes, seed=10_000 + seed, confounding_strength=0.0).value
-            for k in np.unique(folds))
+        first = decisions["step"].to_numpy() == 0  # the data-adaptive target: fold regimes, episode-weighted
+        fold_truth = truth if folds is None else sum(
+            np.mean(rows[first]) * true_value(learned_k, n=args.truth_episodes, seed=10_000 + seed,
+                                              confounding_strength=0.0).value
+            for rows, learned_k in regime.fold_regimes(decisions, seeded, folds))
     return intervals["values"], truth, fold_truth
 
 

@@ -78,8 +78,7 @@ def true_values(decisions, protocol, seed, args):
     if folds is None:
         return full, full
     first = decisions["step"].to_numpy() == 0
-    folded = sum(np.mean(folds[first] == k) * truth(regime.learn_regime(decisions.loc[folds != k].reset_index(drop=True), protocol))
-                 for k in np.unique(folds))  # fmt: skip
+    folded = sum(np.mean(rows[first]) * truth(learned) for rows, learned in regime.fold_regimes(decisions, protocol, folds))
     return full, folded
 
 

@@ -113,9 +113,13 @@ def record_proba(learned, decisions: pd.DataFrame) -> np.ndarray:
     return learned.usual_care.predict_proba(decisions) if fitted is None else fitted
 
 
-def run_replicate(decisions, groups, protocol: Protocol, replicate: int, size: int) -> dict:
-    """One replicate's values, or the reason it failed (a resample the models cannot be fitted to)."""
-    resample = resample_patients(decisions, groups, replicate_rng(protocol.seed, replicate), size)
+def run_replicate(decisions, groups, protocol: Protocol, replicate: int, size: int, rng=None) -> dict:
+    """One replicate's values, or the reason it failed (a resample the models cannot be fitted to).
+
+    ``rng`` defaults to the evaluation's stream for ``replicate`` (:func:`replicate_rng`).
+    """
+    rng = replicate_rng(protocol.seed, replicate) if rng is None else rng
+    resample = resample_patients(decisions, groups, rng, size)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:

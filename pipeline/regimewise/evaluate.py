@@ -151,6 +151,11 @@ def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: 
     return q_taken, v_target, fqe.value_estimate(logged.X[first], target[first])
 
 
+def headline_estimator(protocol: Protocol) -> str:
+    """The estimator of the headline contrast: wdr if the protocol runs it, else its first estimator."""
+    return "wdr" if "wdr" in protocol.evaluation.estimators else protocol.evaluation.estimators[0]
+
+
 def minimum_reliable_ess(n_episodes: int, spec: EvaluationSpec | None = None) -> float:
     """max(minimum_ess, minimum_ess_fraction × episodes): the smallest ESS shown as reliable (defaults 30, 5%)."""
     spec = spec or EvaluationSpec()

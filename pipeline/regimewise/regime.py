@@ -262,9 +262,15 @@ def cross_fitted_recommendations(decisions: pd.DataFrame, behaviour_proba: np.nd
     if folds is None:
         return learn_regime(decisions, protocol).recommend(decisions, behaviour_proba)
     recommended = np.empty(len(decisions), dtype=np.int64)
-    for fold in range(protocol.evaluation.cross_fit_folds):
-        held_out = folds == fold
-        learned = learn_regime(decisions.loc[~held_out].reset_index(drop=True), protocol)
+    for held_out, learned in fold_regimes(decisions, protocol, folds):
         recommended[held_out] = learned.recommend(decisions.loc[held_out].reset_index(drop=True))
     return recommended
+
+
+def fold_regimes(decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray) -> list[tuple[np.ndarray, LearnedRegime]]:
+    """For each fold of :func:`crossfit_folds`: its rows (boolean mask) and the regime learned from the other folds."""
+    return [
+        (folds == fold, learn_regime(decisions.loc[folds != fold].reset_index(drop=True), protocol))
+        for fold in np.unique(folds)
+    ]
 

@@ -18,6 +18,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 
 from .bootstrap import merge_intervals  # noqa: E402
+from .evaluate import headline_estimator  # noqa: E402
 from .describe import section_figures, usual_care_summary  # noqa: E402
 from .io import read_json, write_json, write_text  # noqa: E402
 from .protocol import load_protocol  # noqa: E402
@@ -189,7 +190,7 @@ def safeguard_headlines(regime: dict, values: dict) -> dict:
 def headline_sentence(p, values) -> str:
     """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
     contrasts = {c["estimator"]: c for c in values["contrasts"]}
-    name = "wdr" if "wdr" in contrasts else p.evaluation.estimators[0]
+    name = headline_estimator(p)
     contrast = contrasts[name]
     ess = values["regimes"][0]["estimates"][name]["ess"]
     if contrast["difference"] is None:

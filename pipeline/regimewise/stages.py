@@ -20,7 +20,7 @@ from .distill import distill_regime
 from .bootstrap import combine, run_shard
 from .describe import balance_by_step, cohort_table
 from .errors import DataValidationError, UserInputError
-from .evaluate import evaluate_all
+from .evaluate import evaluate_all, headline_estimator
 from .features import QFeatures, StateScaler, action_codes
 from .io import read_json, read_parquet, write_json, write_parquet
 from .overlap import overlap_by_step, usual_care_diagnostics
@@ -237,7 +237,7 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
 
 def headline_contrast(intervals: dict, p) -> dict | None:
     """The learned-minus-usual-care contrast of the headline estimator (wdr if run) with its interval."""
-    name = "wdr" if "wdr" in p.evaluation.estimators else p.evaluation.estimators[0]
+    name = headline_estimator(p)
     for contrast in intervals.get("contrasts", []):
         if (contrast["regime"], contrast["versus"], contrast["estimator"]) == ("learned", "usual_care", name):
             return contrast

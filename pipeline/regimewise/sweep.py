@@ -22,7 +22,6 @@ Research use only: a sweep shows how fragile an estimate is; it recommends no tr
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 import pandas as pd
@@ -60,20 +59,9 @@ def analysis_protocol(spec: Specification, protocol: Protocol) -> Protocol:
     })  # fmt: skip
 
 
-def headline_estimator(protocol: Protocol) -> str:
-    """The estimator of the headline contrast: wdr if the protocol runs it, else its first estimator."""
-    return "wdr" if "wdr" in protocol.evaluation.estimators else protocol.evaluation.estimators[0]
-
-
 def sweep_rng(root_seed: int, spec_index: int, replicate: int) -> np.random.Generator:
     """Generator of replicate ``replicate`` of specification ``spec_index``."""
     return np.random.default_rng(np.random.SeedSequence(root_seed, spawn_key=(SWEEP_STREAM, spec_index, replicate)))
-
-
-def fit_and_evaluate(decisions: pd.DataFrame, protocol: Protocol) -> tuple[dict, dict]:
-    """Learn and evaluate the regime on ``decisions`` as the workflow's stages do (evaluate_all's output, with its
-    weight diagnostics, and the bounds curve): :func:`regimewise.bootstrap.learn_and_evaluate`."""
-    return bootstrap.learn_and_evaluate(decisions, protocol)
 
 
 def contrasts(point_values: dict) -> dict:
@@ -86,7 +74,7 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
     """Point contrast, bootstrap intervals and confounding bounds of one specification of the protocol's sweep."""
     spec = find_specification(protocol, spec_id)
     p = analysis_protocol(spec, protocol)
-    values, curve = fit_and_evaluate(decisions, p)
+    values, curve = bootstrap.learn_and_evaluate(decisions, p)
     groups = bootstrap.patient_groups(decisions)
     replicates = [_replicate(decisions, groups, p, spec.index, r) for r in range(protocol.sweeps.replicates)]
     good = [r for r in replicates if "contrast" in r]
@@ -94,7 +82,7 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
     point = contrasts(evaluate.point_values(values))
     learned = values["regimes"][0]["estimates"]
     bounds = sensitivity.summarise_sensitivity(curve, [r["sensitivity"] for r in good], p, None)
-    name = headline_estimator(p)
+    name = evaluate.headline_estimator(p)
     return {
         "caution": CAUTION,
         "id": spec.id,
@@ -119,16 +107,13 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
 
 
 def _replicate(decisions, groups, protocol: Protocol, spec_index: int, replicate: int) -> dict:
-    """One patient-bootstrap replicate of a specification: its contrasts and bounds curve, or why it failed."""
-    resample = bootstrap.resample_patients(decisions, groups, sweep_rng(protocol.seed, spec_index, replicate),
-                                           len(groups))  # fmt: skip
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        try:
-            values, curve = bootstrap.replicate_values(resample, protocol)
-        except (UserInputError, np.linalg.LinAlgError) as err:
-            return {"replicate": replicate, "error": str(err).splitlines()[0]}
-    return {"replicate": replicate, "contrast": contrasts(values), "sensitivity": curve}
+    """One patient-bootstrap replicate of a specification (:func:`regimewise.bootstrap.run_replicate` with the
+    specification's own seed stream): its contrasts and bounds curve, or why it failed."""
+    rng = sweep_rng(protocol.seed, spec_index, replicate)
+    out = bootstrap.run_replicate(decisions, groups, protocol, replicate, len(groups), rng=rng)
+    if "error" in out:
+        return out
+    return {"replicate": replicate, "contrast": contrasts(out["values"]), "sensitivity": out["sensitivity"]}
 
 
 # ---------------------------------------------------------------------------------------------- combine
@@ -144,7 +129,7 @@ def combine_sweep(results: list[dict], protocol: Protocol) -> dict:
             raise UserInputError(
                 f"sweep result of {spec.id} is missing or was computed for other settings; rerun the sweep rules."
             )
-    name = headline_estimator(protocol)
+    name = evaluate.headline_estimator(protocol)
     rows = sorted((_row(found[spec.id], name) for spec in grid), key=_sort_key)
     above = [row for row in rows if row["low"] is not None and row["low"] > 0]
     above_low_ess = sum(row["low_ess"] for row in above)
