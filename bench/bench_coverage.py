@@ -19,6 +19,7 @@ Invented simulator, research use only, not medical advice.
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import time
 import warnings
@@ -45,6 +46,9 @@ def parse(argv=None):
     parser.add_argument("--truth-episodes", type=int, default=20_000)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--interval-method", choices=["percentile", "basic"], default="percentile")
+    parser.add_argument("--results", type=Path, default=None,
+                        help="JSON-lines file: each cohort's result is appended as it finishes, and cohorts already "
+                        "in the file are not run again (a long run can be resumed)")  # fmt: skip
     return parser.parse_args(argv)
 
 
@@ -80,7 +84,34 @@ def one_cohort(task):
             np.mean(rows[first]) * true_value(learned_k, n=args.truth_episodes, seed=10_000 + seed,
                                               confounding_strength=0.0).value
             for rows, learned_k in regime.fold_regimes(decisions, seeded, folds))
-    return intervals["values"], truth, fold_truth
+    values = {name: intervals["values"][name] for name in ("learned", "usual_care")}
+    return {"seed": seed, "values": values, "truth": truth, "fold_truth": fold_truth}
+
+
+def run_cohorts(args):
+    """Every cohort's result, reading finished ones from ``--results`` and appending new ones as they finish."""
+    done = {}
+    if args.results is not None and args.results.exists():
+        for line in args.results.read_text().splitlines():
+            record = json.loads(line)
+            if record["settings"] == settings(args):
+                done[record["seed"]] = record
+    todo = [(seed, args) for seed in range(args.cohorts) if seed not in done]
+    print(f"{len(done)} cohorts read from {args.results}, {len(todo)} to run", flush=True) if done else None
+    with ProcessPoolExecutor(max_workers=args.workers) as pool:
+        for record in pool.map(one_cohort, todo):
+            done[record["seed"]] = record
+            if args.results is not None:
+                with args.results.open("a") as out:
+                    out.write(json.dumps({**record, "settings": settings(args)}) + "\n")
+            if len(done) % 10 == 0:
+                print(f"  {len(done)} of {args.cohorts} cohorts", flush=True)
+    return [done[seed] for seed in range(args.cohorts)]
+
+
+def settings(args):
+    """The arguments that change a cohort's result (a results file is only reused for the same ones)."""
+    return [args.episodes, args.replicates, args.truth_episodes, args.interval_method]
 
 
 def summarise(name, truth, rows):
@@ -105,15 +136,13 @@ def main(argv=None) -> None:
           f"{args.replicates} replicates (issue target: 200 × 3000 × 200); {args.interval_method} intervals")  # fmt: skip
     start = time.perf_counter()
     usual_truth = true_value("usual_care", n=200_000, seed=7, confounding_strength=0.0).value
-    tasks = [(seed, args) for seed in range(args.cohorts)]
-    with ProcessPoolExecutor(max_workers=args.workers) as pool:
-        results = list(pool.map(one_cohort, tasks))
-    learned_rows = [values["learned"] for values, _, _ in results]
-    usual_rows = [values["usual_care"] for values, _, _ in results]
+    results = run_cohorts(args)
+    learned_rows = [r["values"]["learned"] for r in results]
+    usual_rows = [r["values"]["usual_care"] for r in results]
     summarise("learned regime (truth: Monte Carlo value of the regime learned from all patients)",
-              [truth for _, truth, _ in results], learned_rows)
+              [r["truth"] for r in results], learned_rows)
     summarise("learned regime (truth: mean value of the cross-fitted fold regimes, the data-adaptive target)",
-              [fold for _, _, fold in results], learned_rows)
+              [r["fold_truth"] for r in results], learned_rows)
     summarise("usual care", [usual_truth] * len(usual_rows), usual_rows)
     print(f"\nC = {args.cohorts}: a coverage of 95% is known to about ±{100 * np.sqrt(0.05 * 0.95 / args.cohorts):.1f} "
           f"points; wall clock {time.perf_counter() - start:.0f} s with {args.workers} workers "

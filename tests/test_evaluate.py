@@ -15,6 +15,7 @@ from scipy import stats
 from tiny import REPOSITORY
 
 from regimewise import evaluate
+from regimewise.fqi import FittedQEvaluation
 from regimewise.protocol import EvaluationSpec, load_protocol
 from regimewise.regime import learn_regime
 from regimewise.simulate import simulate_cohort
@@ -100,3 +101,26 @@ def test_an_unfittable_model_based_estimate_is_null_only_when_not_strict(setting
     assert usual["pdwis"]["value"] == pytest.approx(
         thin.groupby("episode_id", sort=False)["reward"].sum().mean(), abs=1e-9
     )
+
+
+def test_the_evaluation_models_take_their_own_ridge_penalty_even_when_learning_chooses_it_by_cv(setting):
+    # Wiring check: the fqe value is the one FittedQEvaluation gives with evaluation.fqe_ridge_alpha (whose
+    # penalised fit is checked against scikit-learn's Ridge in test_fqi.py); a learning protocol with
+    # q_model.ridge_alpha = "cv" (a choice the evaluation models do not make) evaluates without error.
+    decisions, proba, protocol, _ = setting
+    cv = protocol.model_copy(update={"q_model": protocol.q_model.model_copy(update={"ridge_alpha": "cv"})})
+    recommended = learn_regime(decisions, cv).recommend(decisions, proba)
+    logged = evaluate.LoggedDecisions.from_frame(decisions, proba, cv)
+    target = np.eye(len(cv.actions))[recommended]
+    first = logged.step == 0
+    values = []
+    for alpha in (0.0, 1.0, 50.0):
+        spec = cv.evaluation.model_copy(update={"fqe_ridge_alpha": alpha})
+        out = evaluate.evaluate_all(decisions, proba, recommended, cv.model_copy(update={"evaluation": spec}))
+        value = next(r for r in out["regimes"] if r["name"] == "learned")["estimates"]["fqe"]["value"]
+        direct = FittedQEvaluation(len(cv.actions), cv.horizon, gamma=cv.discount, alpha=alpha).fit(
+            logged.X, logged.step, logged.action, logged.reward, logged.episode, target
+        )
+        assert value == pytest.approx(direct.value_estimate(logged.X[first], target[first]), abs=1e-9)
+        values.append(value)
+    assert len(set(values)) == 3  # the penalty reaches the estimate

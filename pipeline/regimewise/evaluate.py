@@ -144,7 +144,7 @@ def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: 
         return q_taken, v_target, float(np.mean(v_target[logged.step == 0]))
     fqe = FittedQEvaluation(
         n_actions=len(protocol.actions), horizon=protocol.horizon, gamma=protocol.discount,
-        alpha=protocol.q_model.ridge_alpha,
+        alpha=protocol.evaluation.fqe_ridge_alpha,
     ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)  # fmt: skip
     q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
     first = logged.step == 0

@@ -273,6 +273,11 @@ class EvaluationSpec(_Strict):
         "are scored with the regime learned from the other folds; 1 = evaluate on the records the regime was "
         "learned from (optimistic)"
     )
+    fqe_ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] = Field(
+        1.0, description="ridge penalty of the fitted-Q evaluation models (fqe, and the Q̂ of dr and wdr) on the "
+        "standardised state features; a small penalty keeps an evaluation model from extrapolating wildly where the "
+        "regime's action is rare in the records; 0 = plain least squares"
+    )
     replicates: Annotated[int, Field(ge=0, le=100_000)] = Field(
         200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
     )
