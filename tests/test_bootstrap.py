@@ -132,7 +132,8 @@ def test_combined_intervals_use_the_replicates(study, shards, tmp_path):
     assert replicates[0]["values"]["usual_care"]["pdwis"] == pytest.approx(mean_return, abs=1e-9)
     draws = [r["values"]["usual_care"]["pdwis"] for r in replicates]
     usual = out["values"]["usual_care"]["pdwis"]
-    assert (usual["low"], usual["high"]) == pytest.approx(tuple(np.quantile(draws, [0.025, 0.975])))
+    # quantile rule of Davison & Hinkley (1997, §5.2), position (R + 1)α: numpy's "weibull" method
+    assert (usual["low"], usual["high"]) == pytest.approx(tuple(np.quantile(draws, [0.025, 0.975], method="weibull")))
     # contrasts are differences within the same replicates (replicates where no episode follows the learned
     # regime leave its pdwis undefined and are left out)
     pairs = [(r["values"]["learned"]["pdwis"], r["values"]["usual_care"]["pdwis"]) for r in replicates]
@@ -141,7 +142,9 @@ def test_combined_intervals_use_the_replicates(study, shards, tmp_path):
     contrast = next(
         c for c in out["contrasts"] if (c["regime"], c["versus"], c["estimator"]) == ("learned", "usual_care", "pdwis")
     )
-    assert (contrast["low"], contrast["high"]) == pytest.approx(tuple(np.quantile(diffs, [0.025, 0.975])))
+    assert (contrast["low"], contrast["high"]) == pytest.approx(
+        tuple(np.quantile(diffs, [0.025, 0.975], method="weibull"))
+    )
     assert contrast["difference"] == pytest.approx(point["learned"]["pdwis"] - point["usual_care"]["pdwis"])
 
 
@@ -210,13 +213,27 @@ def test_near_tie_share_is_high_when_actions_tie_and_low_when_they_are_far_apart
 
 def test_m_out_of_n_interval_is_rescaled_around_the_estimate():
     # θ̂ − √(m/n)(q*_{1−a/2} − θ̂), θ̂ − √(m/n)(q*_{a/2} − θ̂) (Chakraborty, Laber & Zhao 2013), by hand:
-    # draws 0..100 → 2.5% and 97.5% quantiles 2.5 and 97.5; θ̂ = 50, scale 0.5 → 50 − 23.75, 50 + 23.75
+    # draws 0..100 (R = 101) → quantiles at positions 102·0.025 = 2.55 and 102·0.975 = 99.45 of the ordered
+    # draws: 1.55 and 98.45; θ̂ = 50, scale 0.5 → 50 − 0.5·48.45, 50 + 0.5·48.45
     out = bootstrap.interval(50.0, list(np.arange(101.0)), 0.95, 0.5)
-    assert (out["low"], out["high"]) == pytest.approx((26.25, 73.75))
+    assert (out["low"], out["high"]) == pytest.approx((25.775, 74.225))
 
 
 def test_basic_interval_reflects_the_quantiles_around_the_estimate():
     # basic bootstrap interval 2θ̂ − q*_{1−a/2}, 2θ̂ − q*_{a/2} (Davison & Hinkley 1997, §5.2), by hand:
-    # draws 10..110 (quantiles 12.5 and 107.5), θ̂ = 50 → 100 − 107.5, 100 − 12.5; it moves against the bias
+    # draws 10..110 (quantiles 11.55 and 108.45, positions (R + 1)α as above), θ̂ = 50 → 100 − 108.45,
+    # 100 − 11.55; it moves against the bias
     out = bootstrap.interval(50.0, list(np.arange(10.0, 111.0)), 0.95, 1.0, basic=True)
-    assert (out["low"], out["high"]) == pytest.approx((-7.5, 87.5))
+    assert (out["low"], out["high"]) == pytest.approx((-8.45, 88.45))
+
+
+@pytest.mark.parametrize("n_replicates, level, ranks", [(199, 0.95, (5, 195)), (999, 0.95, (25, 975)),
+                                                        (99, 0.90, (5, 95))])  # fmt: skip
+def test_percentile_limits_are_the_textbook_order_statistics(n_replicates, level, ranks):
+    # Davison & Hinkley (1997, §5.2): with R replicates the α and 1 − α limits are the (R + 1)α-th and
+    # (R + 1)(1 − α)-th ordered replicates, whole numbers for R = 199, 999 (α = 0.025) and 99 (α = 0.05)
+    draws = np.random.default_rng(n_replicates).standard_normal(n_replicates)
+    ordered = np.sort(draws)
+    low, high = bootstrap.percentile_interval(draws, level)
+    assert (low, high) == pytest.approx((ordered[ranks[0] - 1], ordered[ranks[1] - 1]), abs=1e-12)
+    assert (low, high) != pytest.approx((ordered[ranks[0]], ordered[ranks[1] - 2]), abs=1e-6)  # not the neighbours

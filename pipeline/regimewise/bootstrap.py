@@ -32,6 +32,7 @@ from scipy import stats
 from . import evaluate, regime, sensitivity
 from .errors import UserInputError
 from .io import to_jsonable
+from .quantiles import bootstrap_quantile
 from .features import RESAMPLED_FROM, action_codes, patient_clusters
 from .protocol import Protocol
 
@@ -234,7 +235,7 @@ def collect_replicates(shards: list[dict], n_replicates: int) -> tuple[list[dict
 
 def percentile_interval(draws: np.ndarray, level: float) -> tuple[float, float]:
     """Percentile interval: the (1 − level)/2 and (1 + level)/2 quantiles of the bootstrap draws."""
-    low, high = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2])
+    low, high = bootstrap_quantile(draws, [(1 - level) / 2, (1 + level) / 2])
     return float(low), float(high)
 
 

@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import UserInputError
+from .quantiles import bootstrap_quantile
 from .weighting import kish_ess
 
 
@@ -315,8 +316,8 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
         reps = np.stack([np.asarray(r["learned"], dtype=float) - r["usual_care"] for r in replicates])
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            limits = np.column_stack([np.nanquantile(reps[:, :, 0], low_q, axis=0),
-                                      np.nanquantile(reps[:, :, 1], high_q, axis=0)])  # fmt: skip
+            limits = np.column_stack([bootstrap_quantile(reps[:, :, 0], low_q, axis=0),
+                                      bootstrap_quantile(reps[:, :, 1], high_q, axis=0)])  # fmt: skip
     else:
         limits = np.full_like(contrast, np.nan)
     benefit = contrast[0, 0]
