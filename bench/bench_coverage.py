@@ -99,7 +99,8 @@ def run_cohorts(args):
             if record["settings"] == settings(args):
                 done[record["seed"]] = record
     todo = [(seed, args) for seed in range(args.cohorts) if seed not in done]
-    print(f"{len(done)} cohorts read from {args.results}, {len(todo)} to run", flush=True) if done else None
+    if done:
+        print(f"{len(done)} cohorts read from {args.results}, {len(todo)} to run", flush=True)
     with ProcessPoolExecutor(max_workers=args.workers) as pool:
         for record in pool.map(one_cohort, todo):
             done[record["seed"]] = record

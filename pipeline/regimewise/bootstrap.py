@@ -32,9 +32,9 @@ from scipy import stats
 from . import evaluate, regime, sensitivity
 from .errors import UserInputError
 from .io import to_jsonable
-from .quantiles import bootstrap_quantile
 from .features import RESAMPLED_FROM, action_codes, patient_clusters
 from .protocol import Protocol
+from .quantiles import bootstrap_quantile
 
 BOOTSTRAP_STREAM = 6
 PRETEST_LEVEL = 0.001
