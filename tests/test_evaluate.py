@@ -105,7 +105,7 @@ def test_an_unfittable_model_based_estimate_is_null_only_when_not_strict(setting
 
 def test_the_evaluation_models_take_their_own_ridge_penalty_even_when_learning_chooses_it_by_cv(setting):
     # Wiring check: the fqe value is the one FittedQEvaluation gives with evaluation.fqe_ridge_alpha (whose
-    # penalised fit is checked against scikit-learn's Ridge in test_fqi.py); a learning protocol with
+    # penalised fit is checked against scikit-learn's Ridge in test_fqi.py, fitted-Q evaluation test); a learning protocol with
     # q_model.ridge_alpha = "cv" (a choice the evaluation models do not make) evaluates without error.
     decisions, proba, protocol, _ = setting
     cv = protocol.model_copy(update={"q_model": protocol.q_model.model_copy(update={"ridge_alpha": "cv"})})

@@ -185,6 +185,29 @@ def test_continuous_features_match_sklearn_two_step_q_learning(alpha):
             np.testing.assert_allclose(model.coef_[t, k], np.r_[m.intercept_, m.coef_], atol=1e-8)
 
 
+@pytest.mark.parametrize("alpha", [0.0, 2.5])
+def test_fitted_q_evaluation_matches_sklearn_ridge_for_a_fixed_regime(alpha):
+    # source: scikit-learn LinearRegression / Ridge (unpenalised intercept) per step and action; the first-step
+    # pseudo-outcome is r0 + γ·Q̂_1(x1, π(x1)) for the evaluated regime π (Le, Voloshin & Yue 2019), γ = 0.9;
+    # the regime: action 1 where the second state is positive
+    data = _two_step_continuous()
+    x0, x1, a, r0, r1 = data["parts"]
+    regression = (lambda: LinearRegression()) if alpha == 0 else (lambda: Ridge(alpha=alpha))
+    pi0, pi1 = (x0[:, 1] > 0).astype(int), (x1[:, 1] > 0).astype(int)
+    last = [regression().fit(x1[a[:, 1] == k], r1[a[:, 1] == k]) for k in range(2)]
+    q1 = np.column_stack([m.predict(x1) for m in last])
+    pseudo = r0 + 0.9 * q1[np.arange(len(x1)), pi1]
+    first = [regression().fit(x0[a[:, 0] == k], pseudo[a[:, 0] == k]) for k in range(2)]
+    q0 = np.column_stack([m.predict(x0) for m in first])
+    target = np.eye(2)[np.column_stack([pi0, pi1]).ravel()]
+    model = FittedQEvaluation(2, 2, gamma=0.9, alpha=alpha).fit(
+        data["X"], data["step"], data["action"], data["reward"], data["episode"], target
+    )
+    np.testing.assert_allclose(model.q_values(x1, np.ones(len(x1), dtype=int)), q1, rtol=0, atol=1e-8)
+    np.testing.assert_allclose(model.q_values(x0, np.zeros(len(x0), dtype=int)), q0, rtol=0, atol=1e-8)
+    assert model.value_estimate(x0, np.eye(2)[pi0]) == pytest.approx(q0[np.arange(len(x0)), pi0].mean(), abs=1e-8)
+
+
 def test_action_missing_at_a_step_is_never_recommended(log):
     # an action without rows at a step has no Q there: marked, warned about, never chosen
     drop = (log["step"] == 1) & (log["action"] == 2)
