@@ -27,7 +27,7 @@ import yaml
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
-from regimewise.simulate import write_cohort  # noqa: E402
+from regimewise.demo.files import write_cohort  # noqa: E402
 
 
 def parse(argv=None):
@@ -51,10 +51,24 @@ def study(folder: Path, args) -> Path:
 
 def snakemake(protocol: Path, out: Path, cores: int, target: str, forcerun=()) -> float:
     command = [
-        sys.executable, "-m", "snakemake", target, "--snakefile", str(REPOSITORY / "Snakefile"), "--directory",
-        str(out), "--cores", str(cores), "--quiet", *(["--forcerun", *forcerun] if forcerun else []),
-        "--config", f"protocol={protocol}", "results=.", "logs=logs", "benchmarks=benchmarks",
-    ]  # fmt: skip
+        sys.executable,
+        "-m",
+        "snakemake",
+        target,
+        "--snakefile",
+        str(REPOSITORY / "Snakefile"),
+        "--directory",
+        str(out),
+        "--cores",
+        str(cores),
+        "--quiet",
+        *(["--forcerun", *forcerun] if forcerun else []),
+        "--config",
+        f"protocol={protocol}",
+        "results=.",
+        "logs=logs",
+        "benchmarks=benchmarks",
+    ]
     start = time.perf_counter()
     finished = subprocess.run(command, capture_output=True, text=True, check=False)
     if finished.returncode != 0:
@@ -79,8 +93,10 @@ def main(argv=None) -> None:
             outputs[cores] = (out / "bootstrap" / "intervals.json").read_bytes()
             print(f"{cores} core(s): {times[cores]:.1f} s wall clock")
     speedup = times[1] / times[2]
-    print(f"speed-up 2 vs 1 core: {speedup:.2f}x (parallel efficiency {speedup / 2:.0%}); target >= 1.7x: "
-          f"{'met' if speedup >= 1.7 else 'NOT met'}")  # fmt: skip
+    print(
+        f"speed-up 2 vs 1 core: {speedup:.2f}x (parallel efficiency {speedup / 2:.0%}); target >= 1.7x: "
+        f"{'met' if speedup >= 1.7 else 'NOT met'}"
+    )
     print(f"intervals.json identical in both runs: {outputs[1] == outputs[2]}")
 
 

@@ -3,7 +3,7 @@
 For each of ``--cohorts`` cohorts of ``--episodes`` episodes without hidden confounding (strength 0), the demo
 protocol's regime is learned, every regime is evaluated by every estimator (the learned regime cross-fitted by
 patient, as the workflow does: ``evaluation.cross_fit_folds``), and ``--replicates`` patient
-bootstrap replicates (each refitting usual care, the Q-models and the regime; :mod:`regimewise.bootstrap`) give
+bootstrap replicates (each refitting usual care, the Q-models and the regime; :mod:`regimewise.bootstrap.replicates`) give
 percentile intervals. The truths come from the simulator by Monte Carlo: the value of the regime learned from
 that cohort (``--truth-episodes`` simulated patients), the episode-weighted mean value of the fold regimes
 the cross-fitted evaluation actually scores, and the value of usual care (once, 200,000 episodes).
@@ -32,10 +32,20 @@ import numpy as np
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
-from regimewise import bootstrap, evaluate, regime  # noqa: E402
+from regimewise.bootstrap.intervals import combine  # noqa: E402
+from regimewise.bootstrap.replicates import run_shard  # noqa: E402
+from regimewise.data.records import clean_decisions  # noqa: E402
+from regimewise.demo.simulate import simulate_cohort  # noqa: E402
+from regimewise.demo.truth import true_value  # noqa: E402
+from regimewise.evaluation.values import evaluate_all  # noqa: E402
 from regimewise.protocol import load_protocol  # noqa: E402
-from regimewise.simulate import simulate_cohort, true_value  # noqa: E402
-from regimewise.validate import clean_decisions  # noqa: E402
+from regimewise.regime.learning import (  # noqa: E402
+    cross_fitted_recommendations,
+    crossfit_folds,
+    fold_regimes,
+    learn_regime,
+    record_proba,
+)
 
 ESTIMATORS = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
 
@@ -48,17 +58,25 @@ def parse(argv=None):
     parser.add_argument("--truth-episodes", type=int, default=20_000)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--interval-method", choices=["percentile", "basic"], default="percentile")
-    parser.add_argument("--results", type=Path, default=None,
-                        help="JSON-lines file: each cohort's result is appended as it finishes, and cohorts already "
-                        "in the file are not run again (a long run can be resumed)")  # fmt: skip
+    parser.add_argument(
+        "--results",
+        type=Path,
+        default=None,
+        help="JSON-lines file: each cohort's result is appended as it finishes, and cohorts already "
+        "in the file are not run again (a long run can be resumed)",
+    )
     return parser.parse_args(argv)
 
 
 def protocol_for(args):
     pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
     spec = pf.protocol.evaluation.model_copy(
-        update={"estimators": ESTIMATORS, "replicates": args.replicates, "shards": 1,
-                "interval_method": args.interval_method}
+        update={
+            "estimators": ESTIMATORS,
+            "replicates": args.replicates,
+            "shards": 1,
+            "interval_method": args.interval_method,
+        }
     )
     return pf, pf.protocol.model_copy(update={"evaluation": spec})
 
@@ -73,19 +91,24 @@ def one_cohort(task):
     with threadpool_limits(limits=1):
         decisions = clean_decisions(pf, simulate_cohort(args.episodes, seed=seed, confounding_strength=0.0).decisions)
         seeded = protocol.model_copy(update={"seed": 1000 + seed})
-        learned = regime.learn_regime(decisions, seeded)
-        proba = bootstrap.record_proba(learned, decisions)
-        folds = regime.crossfit_folds(decisions, seeded)
-        recommended = regime.cross_fitted_recommendations(decisions, proba, seeded)
-        point = evaluate.evaluate_all(decisions, proba, recommended, seeded, learned_folds=folds)
-        shard = bootstrap.run_shard(decisions, seeded, 0)
-        intervals = bootstrap.combine(point, [shard], seeded)
+        learned = learn_regime(decisions, seeded)
+        proba = record_proba(learned, decisions)
+        folds = crossfit_folds(decisions, seeded)
+        recommended = cross_fitted_recommendations(decisions, proba, seeded)
+        point = evaluate_all(decisions, proba, recommended, seeded, learned_folds=folds)
+        shard = run_shard(decisions, seeded, 0)
+        intervals = combine(point, [shard], seeded)
         truth = true_value(learned, n=args.truth_episodes, seed=10_000 + seed, confounding_strength=0.0).value
         first = decisions["step"].to_numpy() == 0  # the data-adaptive target: fold regimes, episode-weighted
-        fold_truth = truth if folds is None else sum(
-            np.mean(rows[first]) * true_value(learned_k, n=args.truth_episodes, seed=10_000 + seed,
-                                              confounding_strength=0.0).value
-            for rows, learned_k in regime.fold_regimes(decisions, seeded, folds))
+        fold_truth = (
+            truth
+            if folds is None
+            else sum(
+                np.mean(rows[first])
+                * true_value(learned_k, n=args.truth_episodes, seed=10_000 + seed, confounding_strength=0.0).value
+                for rows, learned_k in fold_regimes(decisions, seeded, folds)
+            )
+        )
     values = {name: intervals["values"][name] for name in ("learned", "usual_care")}
     return {"seed": seed, "values": values, "truth": truth, "fold_truth": fold_truth}
 
@@ -119,8 +142,10 @@ def settings(args):
 
 def summarise(name, truth, rows):
     """Coverage, bias, RMSE and mean width of one regime's intervals, per estimator."""
-    print(f"\n{name}: coverage of the 95% interval, bias, RMSE, mean width, share of intervals that hold their "
-          "own point estimate (cohorts with a defined interval)")
+    print(
+        f"\n{name}: coverage of the 95% interval, bias, RMSE, mean width, share of intervals that hold their "
+        "own point estimate (cohorts with a defined interval)"
+    )
     print(f"{'estimator':>10} {'coverage':>9} {'bias':>8} {'RMSE':>8} {'width':>8} {'own':>6} {'n':>4}")
     for est in ESTIMATORS:
         ok = [(r[est], t) for r, t in zip(rows, truth) if r[est]["low"] is not None and r[est]["value"] is not None]
@@ -131,29 +156,41 @@ def summarise(name, truth, rows):
         cover = np.mean([e["low"] <= t <= e["high"] for e, t in ok])
         width = np.mean([e["high"] - e["low"] for e, _ in ok])
         own = np.mean([e["low"] <= e["value"] <= e["high"] for e, _ in ok])
-        print(f"{est:>10} {cover:9.1%} {err.mean():8.3f} {np.sqrt(np.mean(err**2)):8.3f} {width:8.3f} {own:6.0%} "
-              f"{len(ok):4d}")
+        print(
+            f"{est:>10} {cover:9.1%} {err.mean():8.3f} {np.sqrt(np.mean(err**2)):8.3f} {width:8.3f} {own:6.0%} "
+            f"{len(ok):4d}"
+        )
 
 
 def main(argv=None) -> None:
     args = parse(argv)
     full = args.cohorts >= 200 and args.episodes >= 3000
-    print(f"{'ISSUE' if full else 'REDUCED'} size: {args.cohorts} cohorts × {args.episodes} episodes (issue 6: "
-          f"200 × 3000), {args.replicates} bootstrap replicates per interval (the demo protocol: 200); "
-          f"{args.interval_method} intervals, limits at the (R + 1)α-th ordered replicate")  # fmt: skip
+    print(
+        f"{'ISSUE' if full else 'REDUCED'} size: {args.cohorts} cohorts × {args.episodes} episodes (issue 6: "
+        f"200 × 3000), {args.replicates} bootstrap replicates per interval (the demo protocol: 200); "
+        f"{args.interval_method} intervals, limits at the (R + 1)α-th ordered replicate"
+    )
     start = time.perf_counter()
     usual_truth = true_value("usual_care", n=200_000, seed=7, confounding_strength=0.0).value
     results = run_cohorts(args)
     learned_rows = [r["values"]["learned"] for r in results]
     usual_rows = [r["values"]["usual_care"] for r in results]
-    summarise("learned regime (truth: Monte Carlo value of the regime learned from all patients)",
-              [r["truth"] for r in results], learned_rows)
-    summarise("learned regime (truth: mean value of the cross-fitted fold regimes, the data-adaptive target)",
-              [r["fold_truth"] for r in results], learned_rows)
+    summarise(
+        "learned regime (truth: Monte Carlo value of the regime learned from all patients)",
+        [r["truth"] for r in results],
+        learned_rows,
+    )
+    summarise(
+        "learned regime (truth: mean value of the cross-fitted fold regimes, the data-adaptive target)",
+        [r["fold_truth"] for r in results],
+        learned_rows,
+    )
     summarise("usual care", [usual_truth] * len(usual_rows), usual_rows)
-    print(f"\nC = {args.cohorts}: a coverage of 95% is known to about ±{100 * np.sqrt(0.05 * 0.95 / args.cohorts):.1f} "
-          f"points; wall clock {time.perf_counter() - start:.0f} s with {args.workers} workers "
-          f"(load average now {os.getloadavg()[0]:.1f})")  # fmt: skip
+    print(
+        f"\nC = {args.cohorts}: a coverage of 95% is known to about ±{100 * np.sqrt(0.05 * 0.95 / args.cohorts):.1f} "
+        f"points; wall clock {time.perf_counter() - start:.0f} s with {args.workers} workers "
+        f"(load average now {os.getloadavg()[0]:.1f})"
+    )
 
 
 if __name__ == "__main__":

@@ -1,12 +1,12 @@
 """Benchmark: cross-fitted gradient boosting versus the scikit-learn fits it is made of; recovery of the truth.
 
 Part 1 (issue 4 target): on ``--decisions`` decisions with ``--folds`` folds split by patient, time
-``regimewise.behaviour.cross_fit_proba`` with :class:`GradientBoostingBehaviour` and, in the same run, the
+``regimewise.usual_care.crossfit.cross_fit_proba`` with :class:`GradientBoostingBehaviour` and, in the same run, the
 ``--folds`` bare ``HistGradientBoostingClassifier`` fits on the same training folds (plus their predictions
 of the held-out fold). Prints the ratio; the target is at most 1.3.
 
 Part 2: mean absolute error of the cross-fitted probabilities against the simulator's true usual-care
-probabilities (``regimewise.simulate.simulate_cohort(..., confounding_strength=0)``) for the logistic and the
+probabilities (``regimewise.demo.simulate.simulate_cohort(..., confounding_strength=0)``) for the logistic and the
 boosting models.
 
 Full size (issue 4)::
@@ -27,7 +27,9 @@ import numpy as np
 from sklearn.ensemble import HistGradientBoostingClassifier
 from threadpoolctl import threadpool_limits
 
-from regimewise.behaviour import GradientBoostingBehaviour, cross_fit_proba, patient_folds
+from regimewise.core.folds import patient_folds
+from regimewise.usual_care.boosting import GradientBoostingBehaviour
+from regimewise.usual_care.crossfit import cross_fit_proba
 
 
 def synthetic(n, seed):
@@ -45,8 +47,9 @@ def time_crossfit(n, folds, max_iter, threads, seed=0):
     X, action, patients = synthetic(n, seed)
     fold = patient_folds(patients, folds, seed=seed)
     started = time.perf_counter()
-    cross_fit_proba(lambda: GradientBoostingBehaviour(max_iter=max_iter, random_state=seed, n_threads=threads),
-                    X, action, 4, fold)  # fmt: skip
+    cross_fit_proba(
+        lambda: GradientBoostingBehaviour(max_iter=max_iter, random_state=seed, n_threads=threads), X, action, 4, fold
+    )
     ours = time.perf_counter() - started
     started = time.perf_counter()
     with threadpool_limits(limits=threads, user_api="openmp"):
@@ -59,18 +62,20 @@ def time_crossfit(n, folds, max_iter, threads, seed=0):
 
 
 def recovery(episodes, seed=17):
+    from regimewise.data.records import clean_decisions
+    from regimewise.demo.simulate import simulate_cohort
     from regimewise.protocol import load_protocol
-    from regimewise.regime import fit_usual_care
-    from regimewise.simulate import simulate_cohort
-    from regimewise.validate import clean_decisions
+    from regimewise.usual_care.fitting import fit_usual_care
 
     pf = load_protocol("config/protocol.yaml")
     cohort = simulate_cohort(episodes, seed=seed, confounding_strength=0.0)
     frame = clean_decisions(pf, cohort.decisions)
     out = {}
-    for name, settings in (("multinomial_logit (linear)", {"spline_states": []}),
-                           ("multinomial_logit (potassium spline)", {"spline_states": ["potassium"]}),
-                           ("gradient_boosting", {"kind": "gradient_boosting"})):  # fmt: skip
+    for name, settings in (
+        ("multinomial_logit (linear)", {"spline_states": []}),
+        ("multinomial_logit (potassium spline)", {"spline_states": ["potassium"]}),
+        ("gradient_boosting", {"kind": "gradient_boosting"}),
+    ):
         spec = pf.protocol.behaviour_model.model_copy(update=settings)
         model = fit_usual_care(frame, pf.protocol.model_copy(update={"behaviour_model": spec}))
         out[name] = float(np.abs(model.record_proba - cohort.behaviour_proba).mean())
@@ -86,15 +91,19 @@ def main():
     parser.add_argument("--episodes", type=int, default=5000, help="simulated episodes for part 2 (0 skips it)")
     args = parser.parse_args()
     ours, bare = time_crossfit(args.decisions, args.folds, args.max_iter, args.threads)
-    print(f"part 1: {args.decisions:,} decisions, {args.folds} folds, {args.max_iter} boosting rounds, "
-          f"{args.threads} thread(s)")  # fmt: skip
+    print(
+        f"part 1: {args.decisions:,} decisions, {args.folds} folds, {args.max_iter} boosting rounds, "
+        f"{args.threads} thread(s)"
+    )
     print(f"  cross_fit_proba with GradientBoostingBehaviour: {ours:.1f} s")
     print(f"  {args.folds} bare HistGradientBoostingClassifier fits + predictions: {bare:.1f} s")
     ratio = ours / bare
     print(f"  ratio {ratio:.3f} (target <= 1.3: {'met' if ratio <= 1.3 else 'NOT met'})")
     if args.episodes:
-        print(f"part 2: mean absolute error against the simulator's true probabilities, {args.episodes:,} episodes, "
-              "confounding strength 0, out-of-fold probabilities")  # fmt: skip
+        print(
+            f"part 2: mean absolute error against the simulator's true probabilities, {args.episodes:,} episodes, "
+            "confounding strength 0, out-of-fold probabilities"
+        )
         for name, mae in recovery(args.episodes).items():
             print(f"  {name}: {mae:.4f}")
 

@@ -3,7 +3,7 @@
 For each seed, a cohort of ``--episodes`` episodes without hidden confounding (strength 0) is simulated, the
 demo protocol's usual-care model and regime are learned with each Q-model (linear, gradient boosting), and the
 learned regime's true value is computed by Monte Carlo in the simulator. The yardstick is the best member of the
-simulator's documented family of threshold rules (:class:`regimewise.simulate.ThresholdRule`), found by grid
+simulator's documented family of threshold rules (:class:`regimewise.demo.truth.ThresholdRule`), found by grid
 search on true values with one seed and re-valued with another (to avoid the winner's curse). The ratio is
 
     (V(learned) − V(usual care)) / (V(best threshold rule) − V(usual care)),
@@ -29,13 +29,15 @@ import numpy as np
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
-from regimewise.clinical_rules import ClinicalRuleSet  # noqa: E402
+from regimewise.core.features import QFeatures  # noqa: E402
+from regimewise.data.records import clean_decisions  # noqa: E402
+from regimewise.demo.simulate import simulate_cohort  # noqa: E402
+from regimewise.demo.truth import best_threshold_rule, true_value  # noqa: E402
 from regimewise.errors import StatisticalWarning  # noqa: E402
 from regimewise.protocol import load_protocol  # noqa: E402
-from regimewise.regime import LearnedRegime, fit_q_learning, fit_usual_care  # noqa: E402
-from regimewise.features import QFeatures  # noqa: E402
-from regimewise.simulate import best_threshold_rule, simulate_cohort, true_value  # noqa: E402
-from regimewise.validate import clean_decisions  # noqa: E402
+from regimewise.regime.clinical_rules import ClinicalRuleSet  # noqa: E402
+from regimewise.regime.learning import LearnedRegime, fit_q_learning  # noqa: E402
+from regimewise.usual_care.fitting import fit_usual_care  # noqa: E402
 
 
 def protocol_for(base, kind, pessimism, basis=None):
@@ -72,16 +74,22 @@ def main(argv=None):
     parser.add_argument("--episodes", type=int, default=5000)
     parser.add_argument("--truth-n", type=int, default=20_000, help="Monte Carlo episodes per true value")
     parser.add_argument("--q-models", nargs="+", default=["linear", "gradient_boosting"])
-    parser.add_argument("--basis", choices=["linear", "quadratic", "cubic"], default=None,
-                        help="basis of the linear Q-model (default: the protocol's)")
+    parser.add_argument(
+        "--basis",
+        choices=["linear", "quadratic", "cubic"],
+        default=None,
+        help="basis of the linear Q-model (default: the protocol's)",
+    )
     parser.add_argument("--pessimism", type=float, default=0.0, help="k of the pessimistic ranking (0 = off)")
     args = parser.parse_args(argv)
     pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
     rules = ClinicalRuleSet.from_protocol(pf.protocol)
     started = time.perf_counter()
     search = best_threshold_rule(n=args.truth_n, seed=900_001, confounding_strength=0.0)
-    print(f"size run: {args.seeds} seeds x {args.episodes} episodes, true values on {args.truth_n} episodes, "
-          f"Q-models {args.q_models}, basis {args.basis or pf.protocol.q_model.basis}, pessimism k={args.pessimism}")  # fmt: skip
+    print(
+        f"size run: {args.seeds} seeds x {args.episodes} episodes, true values on {args.truth_n} episodes, "
+        f"Q-models {args.q_models}, basis {args.basis or pf.protocol.q_model.basis}, pessimism k={args.pessimism}"
+    )
     print(f"best threshold rule (grid of {len(search.values)}, search seed 900001): {search.best}")
     ratios = {kind: [] for kind in args.q_models}
     violations = {kind: [0, 0] for kind in args.q_models}
@@ -94,13 +102,18 @@ def main(argv=None):
         for kind in args.q_models:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", StatisticalWarning)
-                regime = CountingRegime(learn(pf, decisions, protocol_for(pf.protocol, kind, args.pessimism, args.basis)), rules)
+                regime = CountingRegime(
+                    learn(pf, decisions, protocol_for(pf.protocol, kind, args.pessimism, args.basis)), rules
+                )
             learned = true_value(regime, n=args.truth_n, seed=truth_seed, confounding_strength=0.0).value
             ratios[kind].append((learned - usual) / (reference - usual))
             violations[kind][0] += regime.violations
             violations[kind][1] += regime.decisions
-            print(f"seed {seed:2d} {kind:18s} usual {usual:8.3f} reference {reference:8.3f} learned {learned:8.3f} "
-                  f"ratio {ratios[kind][-1]:.3f} violations {regime.violations}", flush=True)  # fmt: skip
+            print(
+                f"seed {seed:2d} {kind:18s} usual {usual:8.3f} reference {reference:8.3f} learned {learned:8.3f} "
+                f"ratio {ratios[kind][-1]:.3f} violations {regime.violations}",
+                flush=True,
+            )
     print()
     ok = True
     for kind in args.q_models:
@@ -108,9 +121,11 @@ def main(argv=None):
         rate = violations[kind][0] / max(violations[kind][1], 1)
         passed = r.mean() >= 0.8 and violations[kind][0] == 0
         ok &= passed
-        print(f"{kind:18s} ratio mean {r.mean():.3f} sd {r.std(ddof=1) if r.size > 1 else float('nan'):.3f} "
-              f"min {r.min():.3f} max {r.max():.3f} over {r.size} seeds; rule-violation rate {rate:.4f} "
-              f"({violations[kind][0]} of {violations[kind][1]} decisions) -> {'PASS' if passed else 'FAIL'}")  # fmt: skip
+        print(
+            f"{kind:18s} ratio mean {r.mean():.3f} sd {r.std(ddof=1) if r.size > 1 else float('nan'):.3f} "
+            f"min {r.min():.3f} max {r.max():.3f} over {r.size} seeds; rule-violation rate {rate:.4f} "
+            f"({violations[kind][0]} of {violations[kind][1]} decisions) -> {'PASS' if passed else 'FAIL'}"
+        )
     print(f"elapsed {time.perf_counter() - started:.0f} s")
     return 0 if ok else 1
 

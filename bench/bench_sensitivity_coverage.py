@@ -1,10 +1,10 @@
 """Benchmark: do the confounding bounds cover the learned regime's true value when a hidden confounder acts?
 
 For each of ``--cohorts`` cohorts simulated with hidden frailty (confounding strength ``--strength``), the
-simulator reports the Γ its frailty induces (:func:`regimewise.simulate.induced_gamma`: the largest odds ratio
+simulator reports the Γ its frailty induces (:func:`regimewise.demo.truth.induced_gamma`: the largest odds ratio
 between the true usual-care probability with and without the frailty). The demo protocol's regime is learned
 (pessimism off unless ``--pessimism``, to keep the cost down), and ``--replicates`` patient-bootstrap
-replicates refit usual care, the Q-models and the regime (:func:`regimewise.bootstrap.resample_patients` with
+replicates refit usual care, the Q-models and the regime (:func:`regimewise.bootstrap.replicates.resample_patients` with
 the package's per-replicate seeds). At that Γ, the sharp bounds of the regime's weighted importance-sampling
 value (Zhao, Small & Bhattacharya 2019) give the percentile-bootstrap interval [α/2 quantile of the
 replicates' lower bounds, 1 − α/2 quantile of their upper bounds] — the interval the sensitivity stage reports.
@@ -34,10 +34,23 @@ import numpy as np
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
-from regimewise import bootstrap, regime, sensitivity  # noqa: E402
+from regimewise.bootstrap.replicates import (  # noqa: E402
+    patient_groups,
+    replicate_rng,
+    resample_patients,
+)
+from regimewise.data.records import clean_decisions  # noqa: E402
+from regimewise.demo.simulate import simulate_cohort  # noqa: E402
+from regimewise.demo.truth import induced_gamma, true_value  # noqa: E402
 from regimewise.protocol import load_protocol  # noqa: E402
-from regimewise.simulate import induced_gamma, simulate_cohort, true_value  # noqa: E402
-from regimewise.validate import clean_decisions  # noqa: E402
+from regimewise.regime.learning import (  # noqa: E402
+    cross_fitted_recommendations,
+    crossfit_folds,
+    fold_regimes,
+    learn_regime,
+)
+from regimewise.sensitivity.analysis import regime_curve  # noqa: E402
+from regimewise.usual_care.fitting import fit_usual_care  # noqa: E402
 
 
 def parse(argv=None):
@@ -61,24 +74,25 @@ def bench_protocol(args):
 
 def evaluated_bounds(decisions, protocol, gammas):
     """Bounds at each Γ (array (len, 2)) and ESS of the learned regime as the workflow evaluates it (cross-fitted)."""
-    proba = regime.fit_usual_care(decisions, protocol).record_proba
-    recommended = regime.cross_fitted_recommendations(decisions, proba, protocol)
-    curve = sensitivity.regime_curve(decisions, proba, recommended, protocol, gammas=gammas)
+    proba = fit_usual_care(decisions, protocol).record_proba
+    recommended = cross_fitted_recommendations(decisions, proba, protocol)
+    curve = regime_curve(decisions, proba, recommended, protocol, gammas=gammas)
     return curve["learned"], curve["ess"]
 
 
 def true_values(decisions, protocol, seed, args):
     """True value of the regime learned from all patients, and the episode-weighted mean true value of the
     cross-fitted fold regimes (what the cross-fitted estimate targets)."""
+
     def truth(learned):
         return true_value(learned, n=args.truth_episodes, seed=700_000 + seed, confounding_strength=args.strength).value
 
-    full = truth(regime.learn_regime(decisions, protocol))
-    folds = regime.crossfit_folds(decisions, protocol)
+    full = truth(learn_regime(decisions, protocol))
+    folds = crossfit_folds(decisions, protocol)
     if folds is None:
         return full, full
     first = decisions["step"].to_numpy() == 0
-    folded = sum(np.mean(rows[first]) * truth(learned) for rows, learned in regime.fold_regimes(decisions, protocol, folds))
+    folded = sum(np.mean(rows[first]) * truth(learned) for rows, learned in fold_regimes(decisions, protocol, folds))
     return full, folded
 
 
@@ -92,11 +106,10 @@ def one_cohort(job):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         point, ess = evaluated_bounds(decisions, protocol, gammas)
-        groups = bootstrap.patient_groups(decisions)
+        groups = patient_groups(decisions)
         draws = []
         for r in range(args.replicates):
-            resample = bootstrap.resample_patients(
-                decisions, groups, bootstrap.replicate_rng(protocol.seed + seed, r), len(groups))
+            resample = resample_patients(decisions, groups, replicate_rng(protocol.seed + seed, r), len(groups))
             try:
                 draws.append(evaluated_bounds(resample, protocol, gammas)[0])
             except Exception as err:  # a resample the models cannot be fitted to is skipped, as in the workflow
@@ -107,31 +120,47 @@ def one_cohort(job):
         name: (np.nanquantile(draws[:, i, 0], 0.025), np.nanquantile(draws[:, i, 1], 0.975))
         for i, name in enumerate(["unadjusted", "bounds"])
     }
-    return {"seed": seed, "gamma": gamma, "truth": folded, "truth_full": full, "point": point[0, 0],
-            "limits": limits, "ess": ess, "replicates": len(draws)}
+    return {
+        "seed": seed,
+        "gamma": gamma,
+        "truth": folded,
+        "truth_full": full,
+        "point": point[0, 0],
+        "limits": limits,
+        "ess": ess,
+        "replicates": len(draws),
+    }
 
 
 def main(argv=None):
     args = parse(argv)
     started = time.perf_counter()
-    print(f"size run: {args.cohorts} cohorts x {args.episodes} episodes, {args.replicates} replicates, strength "
-          f"{args.strength}, truth on {args.truth_episodes} episodes, pessimism k={args.pessimism}, "
-          f"{args.workers} workers", flush=True)
+    print(
+        f"size run: {args.cohorts} cohorts x {args.episodes} episodes, {args.replicates} replicates, strength "
+        f"{args.strength}, truth on {args.truth_episodes} episodes, pessimism k={args.pessimism}, "
+        f"{args.workers} workers",
+        flush=True,
+    )
     jobs = [(seed, args) for seed in range(1, args.cohorts + 1)]
     with ProcessPoolExecutor(max_workers=args.workers) as pool:
         results = []
         for res in pool.map(one_cohort, jobs):
             results.append(res)
             u, b = res["limits"]["unadjusted"], res["limits"]["bounds"]
-            print(f"cohort {res['seed']:3d} induced gamma {res['gamma']:.2f} truth {res['truth']:8.3f} "
-                  f"WIS {res['point']:8.3f} (ESS {res['ess']:5.1f}) unadjusted [{u[0]:8.3f}, {u[1]:8.3f}] bounds [{b[0]:8.3f}, {b[1]:8.3f}]",
-                  flush=True)
+            print(
+                f"cohort {res['seed']:3d} induced gamma {res['gamma']:.2f} truth {res['truth']:8.3f} "
+                f"WIS {res['point']:8.3f} (ESS {res['ess']:5.1f}) unadjusted [{u[0]:8.3f}, {u[1]:8.3f}] "
+                f"bounds [{b[0]:8.3f}, {b[1]:8.3f}]",
+                flush=True,
+            )
     print()
     gammas = np.array([r["gamma"] for r in results])
     ess = np.array([r["ess"] for r in results])
     print(f"induced gamma: median {np.median(gammas):.2f}, range {gammas.min():.2f} to {gammas.max():.2f}")
-    print(f"ESS of the learned regime's weighted value: median {np.median(ess):.1f}, range {ess.min():.1f} to "
-          f"{ess.max():.1f} (a small ESS makes every interval here wide; read the coverage with it)")
+    print(
+        f"ESS of the learned regime's weighted value: median {np.median(ess):.1f}, range {ess.min():.1f} to "
+        f"{ess.max():.1f} (a small ESS makes every interval here wide; read the coverage with it)"
+    )
     ok = True
     for name in ["unadjusted", "bounds"]:
         lo = np.array([r["limits"][name][0] for r in results])
@@ -143,9 +172,11 @@ def main(argv=None):
             covers[target] = (finite & (lo <= truth) & (truth <= hi)).mean()
         coverage = covers["truth"]
         se = np.sqrt(coverage * (1 - coverage) / len(results))
-        line = (f"{name:10s} coverage {100 * coverage:5.1f}% (MC se {100 * se:.1f}) of the fold regimes' mean true "
-                f"value, {100 * covers['truth_full']:5.1f}% of the full-data regime's; mean width "
-                f"{np.mean(hi[finite] - lo[finite]):.3f}; {int((~finite).sum())} cohorts without a finite interval")
+        line = (
+            f"{name:10s} coverage {100 * coverage:5.1f}% (MC se {100 * se:.1f}) of the fold regimes' mean true "
+            f"value, {100 * covers['truth_full']:5.1f}% of the full-data regime's; mean width "
+            f"{np.mean(hi[finite] - lo[finite]):.3f}; {int((~finite).sum())} cohorts without a finite interval"
+        )
         if name == "bounds":
             ok = coverage >= 0.95
             line += f" -> {'PASS' if ok else 'FAIL'} (target >= 95%)"

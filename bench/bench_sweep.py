@@ -24,7 +24,10 @@ import tempfile
 from pathlib import Path
 
 import yaml
-from bench_bootstrap_parallel import REPOSITORY, snakemake  # the same workflow call (this folder is on sys.path)
+from bench_bootstrap_parallel import (  # the same workflow call (this folder is on sys.path)
+    REPOSITORY,
+    snakemake,
+)
 
 TARGET_SECONDS = 600.0
 
@@ -40,8 +43,9 @@ def study(folder: Path, replicates: int) -> Path:
     """The demo protocol on the committed demo cohort, with the benchmark's 8-specification sweep."""
     protocol = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     cohort = REPOSITORY / "synthetic_cohort"
-    protocol["data"].update(root=str(cohort), decisions=str(cohort / "decisions.csv"),
-                            episodes=str(cohort / "episodes.csv"))  # fmt: skip
+    protocol["data"].update(
+        root=str(cohort), decisions=str(cohort / "decisions.csv"), episodes=str(cohort / "episodes.csv")
+    )
     protocol["sweeps"] = {
         "axes": {"constraints.support_threshold": [0.02, 0.05, 0.1, 0.2], "constraints.pessimism": [0.0, 1.0]},
         "replicates": replicates,
@@ -63,8 +67,10 @@ def job_seconds(out: Path) -> dict[str, float]:
 
 def main(argv=None) -> None:
     args = parse(argv)
-    print(f"specification sweep: demo cohort (3000 episodes), 8 specifications x {args.replicates} replicates, "
-          f"5 gamma values, {args.cores} cores")  # fmt: skip
+    print(
+        f"specification sweep: demo cohort (3000 episodes), 8 specifications x {args.replicates} replicates, "
+        f"5 gamma values, {args.cores} cores"
+    )
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         protocol = study(folder, args.replicates)
@@ -73,14 +79,18 @@ def main(argv=None) -> None:
         for job, seconds in job_seconds(folder / "out").items():
             print(f"  {job:24s} {seconds:8.1f} s")
         sweep = json.loads((folder / "out" / "sweep" / "sweep.json").read_text(encoding="utf-8"))
-    print(f"elapsed (validation, {sweep['n_specifications']} specification jobs, combine): {elapsed:.1f} s "
-          f"(target < {TARGET_SECONDS:.0f} s at 50 replicates: {'met' if elapsed < TARGET_SECONDS else 'missed'}"
-          f"{'' if args.replicates == 50 else ', but this run used ' + str(args.replicates) + ' replicates'})")
+    print(
+        f"elapsed (validation, {sweep['n_specifications']} specification jobs, combine): {elapsed:.1f} s "
+        f"(target < {TARGET_SECONDS:.0f} s at 50 replicates: {'met' if elapsed < TARGET_SECONDS else 'missed'}"
+        f"{'' if args.replicates == 50 else ', but this run used ' + str(args.replicates) + ' replicates'})"
+    )
     print(sweep["sentence"])
     for row in sweep["specifications"]:
-        print(f"  {row['id']}{' (pre-specified)' if row['prespecified'] else '':16s} {row['settings']} "
-              f"difference {row['difference']} interval [{row['low']}, {row['high']}] tipping point "
-              f"{row['tipping_point']}")  # fmt: skip
+        print(
+            f"  {row['id']}{' (pre-specified)' if row['prespecified'] else '':16s} {row['settings']} "
+            f"difference {row['difference']} interval [{row['low']}, {row['high']}] tipping point "
+            f"{row['tipping_point']}"
+        )
 
 
 if __name__ == "__main__":

@@ -4,7 +4,7 @@ Writes an invented 12-state decisions table as Parquet (default 1,000,000 rows: 
 then, each in a fresh subprocess so that peak memory is the task's own:
 
 - ``read``: ``pandas.read_parquet`` of the file;
-- ``validate``: ``regimewise.validate.validate_records`` (reading included: de-identification guard, missing-data
+- ``validate``: ``regimewise.data.validate.validate_records`` (reading included: de-identification guard, missing-data
   policy, field rules, row-spanning checks, cleaning).
 
 Prints wall time of both and their ratio (target: at most 3), and the validation's peak resident memory above
@@ -75,7 +75,7 @@ CHILD = r"""
 import json, resource, sys, time
 import pandas as pd
 from regimewise.protocol import load_protocol
-from regimewise.validate import validate_records
+from regimewise.data.validate import validate_records
 import psutil
 task, protocol, table = sys.argv[1:4]
 base = psutil.Process().memory_info().rss
@@ -94,8 +94,9 @@ print(json.dumps({"seconds": seconds, "peak_above_base": peak - base, "size": si
 
 def run_child(task: str, protocol: Path) -> dict:
     table = protocol.parent / "decisions.parquet"
-    out = subprocess.run([sys.executable, "-c", CHILD, task, str(protocol), str(table)], capture_output=True,
-                         text=True, check=True)  # fmt: skip
+    out = subprocess.run(
+        [sys.executable, "-c", CHILD, task, str(protocol), str(table)], capture_output=True, text=True, check=True
+    )
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 

@@ -13,7 +13,7 @@ rule bootstrap_shard:
         shard=r"\d+",
     threads: 1
     params:
-        code=stage_code_hash("bootstrap"),
+        code=stage_code_hash("bootstrap_shard"),
     conda:
         "envs/regimewise.yaml"
     script:

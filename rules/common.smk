@@ -1,5 +1,6 @@
 # ---- settings shared by every stage: validated once, at parse time -------------------------------------
-from regimewise.workflow import load_settings, stage_code_hash
+from regimewise.workflow.fingerprint import stage_code_hash
+from regimewise.workflow.settings import load_settings
 
 SETTINGS = load_settings(config)
 

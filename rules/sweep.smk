@@ -13,7 +13,7 @@ rule sweep_spec:
         spec=r"spec_\d+",
     threads: 1
     params:
-        code=stage_code_hash("sweep"),
+        code=stage_code_hash("sweep_spec"),
     conda:
         "envs/regimewise.yaml"
     script:

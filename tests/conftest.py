@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 from hypothesis import settings
-from tiny import write_tiny
+from support.tiny import write_tiny
 
 # CI runs property-based tests with a fixed seed so a result can be reproduced; local runs keep exploring.
 settings.register_profile("ci", derandomize=True)

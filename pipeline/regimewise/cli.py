@@ -24,28 +24,36 @@ import traceback
 from contextlib import contextmanager
 from pathlib import Path
 
+from regimewise import __version__
+from regimewise.cautions import TERMINAL_CAUTION
+from regimewise.data.validate import report_lines, validate_records, write_error_report
+from regimewise.demo.files import write_cohort
+from regimewise.errors import DataValidationError, UserInputError
+from regimewise.io import require_file
+from regimewise.protocol.loading import export_schema, load_protocol
+from regimewise.workflow.stages import ERROR_PREFIX
+
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
     import fcntl
 except ImportError:  # pragma: no cover - Windows
     fcntl = None
 
-from . import __version__
-from .errors import UserInputError
-from .io import require_file
-from .protocol import export_schema, load_protocol
-from .stages import ERROR_PREFIX
 
 REPOSITORY = Path(__file__).resolve().parents[2]
+
+
 SNAKEFILE = REPOSITORY / "Snakefile"
+
+
 DEMO_PROTOCOL = REPOSITORY / "config" / "protocol.yaml"
+
+
 # The lock a live run holds, and Snakemake's own lock folder (its default "file" persistence backend), both
 # relative to the results folder.
 RUN_LOCK = Path(".snakemake") / "regimewise.lock"
+
+
 SNAKEMAKE_LOCKS = Path(".snakemake") / "locks"
-CAUTION = (
-    "Research use only: not medical advice. Treatment decisions stay with licensed clinicians, "
-    "under local law and with ethics approval."
-)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -102,8 +110,6 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
-    from .errors import DataValidationError
-    from .validate import validate_records, write_error_report
 
     pf = load_protocol(args.protocol)
     try:
@@ -120,7 +126,6 @@ def cmd_check(args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from .simulate import write_cohort
 
     if args.episodes < 1:
         raise UserInputError("--episodes must be at least 1")
@@ -156,26 +161,39 @@ def _run_workflow(protocol: Path, args) -> int:
     workflow_log = out / "logs" / "workflow.log"
     workflow_log.parent.mkdir(parents=True, exist_ok=True)
     snakemake = [
-        sys.executable, "-m", "snakemake",
-        "--snakefile", str(SNAKEFILE),
-        "--directory", str(out),
-    ]  # fmt: skip
+        sys.executable,
+        "-m",
+        "snakemake",
+        "--snakefile",
+        str(SNAKEFILE),
+        "--directory",
+        str(out),
+    ]
     config = ["--config", f"protocol={pf.path}", "results=.", "logs=logs", "benchmarks=benchmarks"]
     command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *config]
     with _exclusive_run(out) as lock:
         print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
-        print(CAUTION)
+        print(TERMINAL_CAUTION)
         if lock is not None and _left_locked(out):
             _remove_stale_lock([*snakemake, "--unlock", *config], out)
         with open(workflow_log, "w", encoding="utf-8") as handle:
-            finished = subprocess.run(command, stdout=handle, stderr=subprocess.STDOUT, env=_workflow_env(),
-                                      pass_fds=() if lock is None else (lock.fileno(),), check=False)  # fmt: skip
+            finished = subprocess.run(
+                command,
+                stdout=handle,
+                stderr=subprocess.STDOUT,
+                env=_workflow_env(),
+                pass_fds=() if lock is None else (lock.fileno(),),
+                check=False,
+            )
     if finished.returncode != 0:
         _print_error_report(out / "logs" / "validation_errors.csv")
         if args.debug:
             print(workflow_log.read_text(encoding="utf-8"), file=sys.stderr)
-        raise UserInputError(_first_stage_error(workflow_log) or _lock_refusal(workflow_log, out)
-                             or f"the workflow failed; see {workflow_log}")  # fmt: skip
+        raise UserInputError(
+            _first_stage_error(workflow_log)
+            or _lock_refusal(workflow_log, out)
+            or f"the workflow failed; see {workflow_log}"
+        )
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
@@ -233,7 +251,6 @@ def _remove_stale_lock(command: list[str], out: Path) -> None:
 
 def _print_error_report(path: Path) -> None:
     """The first lines of validation_errors.csv, sorted by rule, on standard output (values already masked)."""
-    from .validate import report_lines
 
     lines = report_lines(path)
     if lines:
@@ -251,15 +268,17 @@ def _lock_refusal(workflow_log: Path, out: Path) -> str | None:
     """One line when Snakemake refused a folder whose lock regimewise could not judge (e.g. a hand-started run)."""
     if "Directory cannot be locked" not in workflow_log.read_text(encoding="utf-8", errors="replace"):
         return None
-    return (f"Snakemake found {out} locked by another process; wait for it to finish or pass a different --out "
-            f"(if none runs, delete {out / SNAKEMAKE_LOCKS} and run again)")  # fmt: skip
+    return (
+        f"Snakemake found {out} locked by another process; wait for it to finish or pass a different --out "
+        f"(if none runs, delete {out / SNAKEMAKE_LOCKS} and run again)"
+    )
 
 
 def _first_stage_error(workflow_log: Path) -> str | None:
     """The first one-line error a stage printed, without the prefix."""
     for line in workflow_log.read_text(encoding="utf-8", errors="replace").splitlines():
         if line.startswith(ERROR_PREFIX):
-            return line[len(ERROR_PREFIX):]
+            return line[len(ERROR_PREFIX) :]
     return None
 
 

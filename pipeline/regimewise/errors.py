@@ -5,6 +5,8 @@ The command-line interface prints its message as one line and exits non-zero, wi
 ``--debug`` is given. Everything else is a bug and keeps its traceback.
 """
 
+from __future__ import annotations
+
 
 class UserInputError(Exception):
     """A problem the user can fix; the message says what, where and how to fix it."""

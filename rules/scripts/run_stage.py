@@ -1,4 +1,4 @@
 # Adapter: every rule calls the package stage of the same name; no statistics here.
-from regimewise.stages import run_snakemake_job
+from regimewise.workflow.stages import run_snakemake_job
 
 run_snakemake_job(snakemake)  # noqa: F821 - injected by Snakemake

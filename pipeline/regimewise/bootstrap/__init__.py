@@ -1,0 +1,1 @@
+"""The patient bootstrap: replicates in shards, intervals (percentile, basic, m-out-of-n) and specification sweeps."""

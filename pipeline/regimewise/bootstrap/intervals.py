@@ -1,0 +1,174 @@
+"""Combining bootstrap replicates into intervals: percentile, basic and m-out-of-n limits for every value and
+contrast, with the project's quantile rule, and the estimators whose intervals disagree.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from regimewise.core.quantiles import bootstrap_quantile
+from regimewise.errors import UserInputError
+from regimewise.estimators import ESTIMATORS
+from regimewise.evaluation.values import point_values
+from regimewise.protocol.model import Protocol
+
+
+# ---------------------------------------------------------------------------------------------- combine
+def collect_replicates(shards: list[dict], n_replicates: int) -> tuple[list[dict], list[dict]]:
+    """(successful, failed) replicates in replicate order; refuse missing or repeated replicates."""
+    found = sorted((r for s in shards for r in s["replicates"]), key=lambda r: r["replicate"])
+    numbers = [r["replicate"] for r in found]
+    if numbers != list(range(n_replicates)):
+        raise UserInputError(
+            f"bootstrap shards hold replicates {numbers[:3]}… ({len(numbers)}) instead of 0..{n_replicates - 1}; "
+            "rerun the bootstrap rules after changing evaluation.replicates or evaluation.shards."
+        )
+    return [r for r in found if "values" in r], [r for r in found if "error" in r]
+
+
+def percentile_interval(draws: np.ndarray, level: float) -> tuple[float, float]:
+    """Percentile interval: the (1 − level)/2 and (1 + level)/2 quantiles of the bootstrap draws."""
+    low, high = bootstrap_quantile(draws, [(1 - level) / 2, (1 + level) / 2])
+    return float(low), float(high)
+
+
+def interval(estimate, draws, level, scale, basic=False):
+    """Percentile interval, or θ̂ − s(q* − θ̂) at the flipped quantiles: the basic interval (s = 1; Davison &
+    Hinkley 1997, §5.2) or the m-out-of-n interval (s = √(m/n); Chakraborty, Laber & Zhao 2013)."""
+    draws = np.asarray([d for d in draws if d is not None], dtype=float)
+    if estimate is None or draws.size < 2:
+        return {"low": None, "high": None, "bootstrap_se": None, "n_replicates": int(draws.size)}
+    low, high = percentile_interval(draws, level)
+    if basic or scale != 1.0:
+        low, high = estimate - scale * (high - estimate), estimate - scale * (low - estimate)
+    se = float(np.std(draws, ddof=1) * scale)
+    return {"low": low, "high": high, "bootstrap_se": se, "n_replicates": int(draws.size)}
+
+
+def regime_pairs(names: list[str]) -> list[tuple[str, str]]:
+    """Every pair once: against usual care, usual care is the reference; otherwise in listing order."""
+    pairs = [(a, b) for i, a in enumerate(names) for b in names[i + 1 :]]
+    return [(b, a) if a == "usual_care" else (a, b) for a, b in pairs]
+
+
+def _difference(values, a, b, est):
+    x, y = values[a][est], values[b][est]
+    return None if x is None or y is None else x - y
+
+
+def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
+    """Intervals for every regime × estimator and every contrast, and the estimators that disagree."""
+    spec = protocol.evaluation
+    good, failed = collect_replicates(shards, spec.replicates)
+    size = shared_resample_size(shards)
+    scale = math.sqrt(size["m"] / size["n"]) if size["n"] else 1.0
+    values = point_values(point)
+    reps = [r["values"] for r in good]
+    basic = getattr(spec, "interval_method", "percentile") == "basic"
+    settings = (spec.interval_level, scale, basic)
+    value_intervals = {
+        name: {est: {"value": v, **interval(v, [r[name][est] for r in reps], *settings)} for est, v in by_est.items()}
+        for name, by_est in values.items()
+    }
+    contrasts = [
+        {
+            "regime": a,
+            "versus": b,
+            "estimator": est,
+            "difference": _difference(values, a, b, est),
+            **interval(_difference(values, a, b, est), [_difference(r, a, b, est) for r in reps], *settings),
+        }
+        for a, b in regime_pairs(list(values))
+        for est in spec.estimators
+    ]
+    method = "m-out-of-n (Chakraborty, Laber & Zhao 2013)" if scale != 1.0 else ("basic" if basic else "percentile")
+    return {
+        "level": spec.interval_level,
+        "method": method,
+        "replicates": spec.replicates,
+        "replicates_used": len(good),
+        "replicates_failed": [{"replicate": r["replicate"], "error": r["error"]} for r in failed],
+        "resample": size,
+        "values": value_intervals,
+        "contrasts": contrasts,
+        "disagreements": disagreements(value_intervals),
+    }
+
+
+def shared_resample_size(shards: list[dict]) -> dict:
+    """The resample size the shards recorded (all shards must agree)."""
+    sizes = {tuple(sorted(s["resample"].items())) for s in shards}
+    if len(sizes) != 1:
+        raise UserInputError("bootstrap shards used different resample sizes; rerun every bootstrap shard.")
+    return dict(sizes.pop())
+
+
+def disagreements(value_intervals: dict) -> list[dict]:
+    """Pairs of estimators of one regime whose intervals do not overlap, with a short explanation."""
+    out = []
+    for name, by_est in value_intervals.items():
+        names = [e for e, v in by_est.items() if v["low"] is not None]
+        for i, a in enumerate(names):
+            for b in names[i + 1 :]:
+                x, y = by_est[a], by_est[b]
+                if x["high"] < y["low"] or y["high"] < x["low"]:
+                    out.append({"regime": name, "estimators": [a, b], "explanation": _explain(a, b)})
+    return out
+
+
+def _explain(a: str, b: str) -> str:
+    families = {ESTIMATORS[a].family, ESTIMATORS[b].family}
+    if families == {"weights"}:
+        return (
+            f"{a} and {b} use the same weights differently; unstable weights (few episodes following the "
+            "regime) are the likely cause."
+        )
+    if "weights" in families:
+        return (
+            f"{a} and {b} disagree: either the weights are unstable (few episodes follow the regime) or the "
+            "Q-model is misspecified; neither estimate should be trusted alone."
+        )
+    return (
+        f"{a} and {b} disagree: the Q-model's predictions and the weighted corrections to them point apart, "
+        "which suggests a misspecified Q-model."
+    )
+
+
+def merge_intervals(values: dict, intervals: dict | None) -> dict:
+    """values.json with each estimate and learned-versus-usual-care contrast given its interval.
+
+    Adds ``low``, ``high`` and ``bootstrap_se`` (null without a bootstrap) and, under ``bootstrap``, the
+    interval settings, every pairwise contrast and the estimators that disagree.
+    """
+    empty = {"low": None, "high": None, "bootstrap_se": None}
+    found = (intervals or {}).get("values", {})
+    pairs = {(c["regime"], c["versus"], c["estimator"]): c for c in (intervals or {}).get("contrasts", [])}
+    keep = ("low", "high", "bootstrap_se")
+    regimes = [
+        {
+            **r,
+            "estimates": {
+                est: {**e, **{k: found.get(r["name"], {}).get(est, empty)[k] for k in keep}}
+                for est, e in r["estimates"].items()
+            },
+        }
+        for r in values["regimes"]
+    ]
+    contrasts = [
+        {**c, **{k: pairs.get((c["regime"], c["versus"], c["estimator"]), empty)[k] for k in keep}}
+        for c in values["contrasts"]
+    ]
+    summary = None
+    if intervals is not None:
+        summary = {
+            k: intervals[k] for k in ("level", "method", "replicates", "replicates_used", "resample", "disagreements")
+        }
+        low = {(r["name"], est): e["low_ess"] for r in values["regimes"] for est, e in r["estimates"].items()}
+        summary["contrasts"] = [
+            {**c, "low_ess": bool(low[(c["regime"], c["estimator"])] or low[(c["versus"], c["estimator"])])}
+            for c in intervals["contrasts"]
+        ]
+        summary["replicates_failed"] = len(intervals["replicates_failed"])
+    return {**values, "regimes": regimes, "contrasts": contrasts, "bootstrap": summary}

@@ -1,0 +1,323 @@
+"""Checks that span rows of the decisions table (consecutive steps, duplicates, day order, one patient per
+episode), the episodes table and referential integrity, and the clean tables that pass them.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from regimewise.data.findings import (
+    MAX_DAY,
+    MAX_FINDINGS_PER_RULE,
+    FieldRule,
+    Finding,
+    clip_text,
+    decision_rules,
+    field_findings,
+    source_rows,
+)
+from regimewise.data.reading import read_table
+from regimewise.errors import DataValidationError
+from regimewise.protocol.loading import ProtocolFile
+
+
+# ---------------------------------------------------------------------------------------------- row-spanning checks
+def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list[Finding]:
+    cols = pf.protocol.data.columns
+    findings = []
+    source = source_rows(frame)
+    ep, step, day = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64), frame[cols.day]
+    in_order = _in_episode_step_order(ep.to_numpy(), step.to_numpy())  # the usual case: no sort needed
+    order = np.arange(len(frame)) if in_order else np.lexsort((step.to_numpy(), ep.to_numpy()))
+    ep_s, step_s, day_s = ep.to_numpy()[order], step.to_numpy()[order], day.to_numpy(dtype=float)[order]
+    same = np.r_[False, ep_s[1:] == ep_s[:-1]]
+    duplicate = same & np.r_[False, step_s[1:] == step_s[:-1]]
+    for i in np.flatnonzero(duplicate):
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[order[i]]),
+                column=cols.step,
+                value=str(step_s[i]),
+                rule="duplicate_decision",
+                message=f"episode {ep_s[i]!r} has step {step_s[i]} twice",
+                fix="keep one record per decision point",
+            )
+        )
+    expected = np.where(same, np.r_[0, step_s[:-1]] + 1, 0)
+    gap = (step_s != expected) & ~duplicate
+    for i in np.flatnonzero(gap):
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[order[i]]),
+                column=cols.step,
+                value=str(step_s[i]),
+                rule="step_sequence",
+                message=f"episode {ep_s[i]!r}: expected step {expected[i]}",
+                fix="steps run 0, 1, 2, ... without gaps",
+            )
+        )
+    backwards = same & np.r_[False, day_s[1:] < day_s[:-1]]
+    for i in np.flatnonzero(backwards):
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[order[i]]),
+                column=cols.day,
+                value=clip_text(day_s[i]),
+                rule="day_order",
+                message=f"episode {ep_s[i]!r}: day goes backwards at step {step_s[i]}",
+                fix="days never decrease",
+            )
+        )
+    if cols.patient_id is not None:
+        patient_s = frame[cols.patient_id].astype(str).to_numpy()[order]
+        switched = same & np.r_[False, patient_s[1:] != patient_s[:-1]]  # a new patient id within an episode
+        for episode in np.unique(ep_s[switched]):
+            row = int(source[np.flatnonzero(ep.to_numpy() == str(episode))[0]])
+            findings.append(
+                Finding(
+                    file=file,
+                    row=row,
+                    column=cols.patient_id,
+                    value=None,
+                    rule="patient_per_episode",
+                    message=f"episode {str(episode)!r} has more than one patient id",
+                    fix="an episode is one patient's; give each episode a single patient id",
+                )
+            )
+    return findings
+
+
+# ---------------------------------------------------------------------------------------------- entry points
+def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Finding]:
+    """All findings for a decisions table (empty list when it is clean)."""
+    rules = decision_rules(pf)
+    missing = [r.column for r in rules if r.column not in frame.columns]
+    if missing:
+        return [
+            Finding(
+                file=file,
+                row=None,
+                column=c,
+                value=None,
+                rule="missing_column",
+                message=f"required column is absent{_header_hint(frame)}",
+                fix="add it or map it in data.columns / states[].column",
+            )
+            for c in missing
+        ]
+    findings = field_findings(file, frame, rules)
+    if not findings:
+        findings = _sequence_findings(file, frame, pf)
+    return findings
+
+
+def _header_hint(frame: pd.DataFrame) -> str:
+    return f" (the file has {frame.shape[1]} column(s))"
+
+
+def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
+    """Rename to contract names, cast types and sort by episode and step (call only on a clean table).
+
+    The columns are built first and the frame once (one block per type); a table already in episode and step
+    order, the usual case, is not sorted again.
+    """
+    p = pf.protocol
+    cols = p.data.columns
+    columns = {
+        "episode_id": frame[cols.episode_id].astype(str),
+        "patient_id": (frame[cols.patient_id] if cols.patient_id else frame[cols.episode_id]).astype(str),
+        "step": pd.to_numeric(frame[cols.step]).astype(np.int64),
+        "day": pd.to_numeric(frame[cols.day]).astype(np.int64),
+    }
+    for s in p.states:
+        columns[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
+    columns["action"] = frame[cols.action].astype(str)
+    columns["reward"] = pd.to_numeric(frame[cols.reward]).astype(np.float64)
+    for s in p.states:
+        if f"{s.name}_missing" in frame.columns and p.data.missing.get(s.name) == "indicator":
+            columns[f"{s.name}_missing"] = frame[f"{s.name}_missing"].astype(np.int64)
+    out = pd.DataFrame({name: values.to_numpy() for name, values in columns.items()}, copy=False)
+    if _in_episode_step_order(out["episode_id"].to_numpy(), out["step"].to_numpy()):
+        return out
+    return out.sort_values(["episode_id", "step"], kind="mergesort").reset_index(drop=True)
+
+
+def _in_episode_step_order(episode: np.ndarray, step: np.ndarray) -> bool:
+    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give."""
+    if episode.size < 2:
+        return True
+    later = episode[1:] > episode[:-1]
+    same = episode[1:] == episode[:-1]
+    return bool(np.all(later | (same & (step[1:] > step[:-1]))))
+
+
+# ---------------------------------------------------------------------------------------------- episodes table
+def episode_rules(pf: ProtocolFile, frame: pd.DataFrame) -> list[FieldRule]:
+    """Field rules of the episodes table; follow-up and event are checked when the table has them."""
+    cols = pf.protocol.data.columns
+    rules = [FieldRule(cols.episode_id, "text", fix="every episode needs its identifier")]
+    if cols.patient_id is not None and cols.patient_id in frame.columns:
+        rules.append(FieldRule(cols.patient_id, "text", fix="every episode needs its patient identifier"))
+    if cols.followup in frame.columns:
+        rules.append(FieldRule(cols.followup, "integer", 0, MAX_DAY, fix="follow-up is whole days from 0 to 36525"))
+    if cols.event in frame.columns:
+        rules.append(FieldRule(cols.event, "integer", 0, 1, fix="event is 1 (observed) or 0 (censored)"))
+    return rules
+
+
+def check_episodes(
+    pf: ProtocolFile, frame: pd.DataFrame, file: str, decisions: pd.DataFrame, dropped_episodes: set[str]
+) -> list[Finding]:
+    """Field rules of the episodes table, then referential integrity with the (clean) decisions table.
+
+    Follow-up must reach the last decision day only for censored episodes: the event may be non-fatal, so an
+    episode with an event can have decisions after it (see synthetic_cohort/README.md).
+    """
+    cols = pf.protocol.data.columns
+    if cols.episode_id not in frame.columns:
+        return [
+            Finding(
+                file=file,
+                row=None,
+                column=cols.episode_id,
+                value=None,
+                rule="missing_column",
+                message="required column is absent",
+                fix="add the episode identifier column",
+            )
+        ]
+    findings = field_findings(file, frame, episode_rules(pf, frame))
+    if findings:
+        return findings
+    source = source_rows(frame)
+    ids = frame[cols.episode_id].astype(str)
+    for row in np.flatnonzero(ids.duplicated().to_numpy())[:MAX_FINDINGS_PER_RULE]:
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[row]),
+                column=cols.episode_id,
+                value=clip_text(ids.iat[row]),
+                rule="duplicate_episode",
+                message="episode appears twice",
+                fix="one row per episode",
+            )
+        )
+    known = set(ids)
+    last = decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
+    orphans = sorted(set(last.index) - known)
+    for episode in orphans[:MAX_FINDINGS_PER_RULE]:
+        findings.append(
+            Finding(
+                file=file,
+                row=None,
+                column=cols.episode_id,
+                value=clip_text(episode),
+                rule="episode_without_record",
+                message="decisions refer to an episode absent here",
+                fix="add the episode to the episodes table or remove its decisions",
+            )
+        )
+    childless = ~ids.isin(last.index).to_numpy() & ~ids.isin(dropped_episodes).to_numpy()
+    for row in np.flatnonzero(childless)[:MAX_FINDINGS_PER_RULE]:
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[row]),
+                column=cols.episode_id,
+                value=clip_text(ids.iat[row]),
+                rule="episode_without_decisions",
+                message="episode has no decision in the decisions table",
+                fix="remove the episode or add its decisions",
+            )
+        )
+    if findings:
+        return findings
+    joined = frame.assign(_id=ids).join(last, on="_id")
+    present = joined["last_day"].notna().to_numpy()
+    if cols.patient_id is not None and cols.patient_id in frame.columns:
+        differs = present & (joined[cols.patient_id].astype(str) != joined["_patient"]).to_numpy()
+        for row in np.flatnonzero(differs)[:MAX_FINDINGS_PER_RULE]:
+            findings.append(
+                Finding(
+                    file=file,
+                    row=int(source[row]),
+                    column=cols.patient_id,
+                    value=None,
+                    rule="patient_mismatch",
+                    message="patient id differs from the decisions table's",
+                    fix="give the episode the same patient id in both tables",
+                )
+            )
+    if cols.followup in frame.columns and cols.event in frame.columns:
+        follow = pd.to_numeric(joined[cols.followup]).to_numpy(dtype=float)
+        censored = pd.to_numeric(joined[cols.event]).to_numpy(dtype=float) == 0
+        short = present & censored & (follow < joined["last_day"].to_numpy(dtype=float))
+        for row in np.flatnonzero(short)[:MAX_FINDINGS_PER_RULE]:
+            findings.append(
+                Finding(
+                    file=file,
+                    row=int(source[row]),
+                    column=cols.followup,
+                    value=clip_text(follow[row]),
+                    rule="followup_before_last_decision",
+                    message=f"censored episode ends before its last decision (day {int(joined['last_day'].iat[row])})",
+                    fix="a censored episode is followed up at least until its last decision; correct follow-up or "
+                    "event",
+                )
+            )
+    return findings
+
+
+def episode_runs(decisions: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """First row and number of decisions of each episode in clean decisions (sorted by episode and step)."""
+    episode = decisions["episode_id"].to_numpy()
+    starts = np.flatnonzero(np.r_[True, episode[1:] != episode[:-1]]) if episode.size else np.zeros(0, dtype=np.int64)
+    return starts, np.diff(np.r_[starts, episode.size])
+
+
+def clean_episodes(
+    pf: ProtocolFile, frame: pd.DataFrame | None, decisions: pd.DataFrame, dropped_episodes: set[str]
+) -> pd.DataFrame:
+    """The episodes table: decision counts per episode, joined with the protocol's episodes file when given."""
+    starts, lengths = episode_runs(decisions)
+    counts = pd.DataFrame(
+        {
+            "episode_id": decisions["episode_id"].to_numpy()[starts],
+            "patient_id": decisions["patient_id"].to_numpy()[starts],
+            "n_decisions": lengths,
+        }
+    )
+    if frame is None:
+        return counts
+    cols = pf.protocol.data.columns
+    frame = frame.rename(columns={cols.episode_id: "episode_id", cols.followup: "followup_days", cols.event: "event"})
+    frame["episode_id"] = frame["episode_id"].astype(str)
+    frame = frame[~frame["episode_id"].isin(dropped_episodes)]
+    frame = frame.drop(columns=[c for c in ("patient_id", cols.patient_id) if c in frame.columns])
+    text = [c for c in frame.columns if c != "episode_id" and not pd.api.types.is_numeric_dtype(frame[c])]
+    frame = frame.drop(columns=text)  # free text never travels into the results
+    merged = counts.merge(frame, on="episode_id", how="left", validate="one_to_one")
+    return merged.sort_values("episode_id", kind="mergesort").reset_index(drop=True)
+
+
+def episodes_table(pf: ProtocolFile, decisions: pd.DataFrame) -> pd.DataFrame:
+    """The episodes table for clean decisions (kept for callers; reads and checks the protocol's episodes file)."""
+    frame = None
+    if pf.episodes_path is not None:
+        frame = read_table(pf.episodes_path, "episodes", pf.protocol.data.delimiter)
+        raise_if(check_episodes(pf, frame, pf.episodes_path.name, decisions, set()))
+    return clean_episodes(pf, frame, decisions, set())
+
+
+# ---------------------------------------------------------------------------------------------- whole run
+def raise_if(findings: list[Finding]) -> None:
+    if findings:
+        first = min(findings, key=lambda f: (f.row or 0, f.rule))
+        rules = sorted({f.rule for f in findings})
+        more = f" ({len(findings) - 1} more problem(s) of rules {rules})" if len(findings) > 1 else ""
+        raise DataValidationError(first.one_line() + more, findings)

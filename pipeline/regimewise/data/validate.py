@@ -1,0 +1,218 @@
+"""Validate the decision records against the data contract and the protocol.
+
+Field rules (types, ranges, labels, missing values) are declared once per column as :class:`FieldRule`. From
+them come both a vectorised pandas check, which finds the failing rows of a large table quickly, and a pydantic
+row model, which turns each failing row into precise error objects. Rules that span rows (consecutive steps,
+duplicated decisions, day order, one patient per episode) are vectorised only.
+
+Before the field rules run, the de-identification guard (:mod:`regimewise.data.deidentify`) refuses identifier-like
+columns and values, and the protocol's missing-data policy (:mod:`regimewise.data.missing`) is applied. After them
+come the episodes table and referential integrity between the two tables.
+
+Every finding names the file, the 1-based data row, the column, a value (masked when it looks like an
+identifier) and the rule. All findings go to ``validation_errors.csv`` (capped per rule, with totals), written
+by :func:`write_error_report`; the exception message is one line naming the first.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from dataclasses import dataclass
+from pathlib import Path
+
+import pandas as pd
+
+from regimewise.data.findings import (
+    MAX_FINDINGS_PER_RULE,
+    Finding,
+    decision_rules,
+    identifier_findings,
+    long_text_findings,
+)
+from regimewise.data.missing import apply_missing_policy
+from regimewise.data.reading import read_table
+from regimewise.data.records import (
+    check_decisions,
+    check_episodes,
+    clean_decisions,
+    clean_episodes,
+    episode_runs,
+    raise_if,
+)
+from regimewise.io import write_text
+from regimewise.protocol.loading import ProtocolFile
+
+ERROR_COLUMNS = ("rule", "file", "row", "column", "value", "problem", "how_to_fix")
+
+
+@dataclass(frozen=True)
+class ValidationResult:
+    """Clean tables and the counts that go to validation.json."""
+
+    decisions: pd.DataFrame
+    episodes: pd.DataFrame
+    summary: dict
+
+
+def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult | None]:
+    """Every finding for the protocol's records, and the clean result when there are none."""
+    p = pf.protocol
+    path = pf.decisions_path
+    raw = read_table(path, "decisions", p.data.delimiter)
+    episodes_raw = None if pf.episodes_path is None else read_table(pf.episodes_path, "episodes", p.data.delimiter)
+    name = Path(path).name
+    findings = identifier_findings(name, raw, pf) + long_text_findings(name, raw)
+    if episodes_raw is not None:
+        ep_name = pf.episodes_path.name
+        findings += identifier_findings(ep_name, episodes_raw, pf) + long_text_findings(ep_name, episodes_raw)
+    if findings:
+        return findings, None
+    frame, missing_actions = apply_missing_policy(pf, raw)
+    findings = check_decisions(pf, frame, name)
+    if findings:
+        return findings, None
+    decisions = clean_decisions(pf, frame)
+    cols = p.data.columns
+    # episodes the missing-data policy emptied (none when every row was kept)
+    dropped = (
+        set() if len(decisions) == len(raw) else set(raw[cols.episode_id].astype(str)) - set(decisions["episode_id"])
+    )
+    if episodes_raw is not None:
+        findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped)
+        if findings:
+            return findings, None
+    episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
+    summary = summarise(pf, decisions, raw, missing_actions, len(dropped))
+    return [], ValidationResult(decisions=decisions, episodes=episodes, summary=summary)
+
+
+def validate_records(pf: ProtocolFile) -> ValidationResult:
+    """Read, check and clean the records named in the protocol.
+
+    Raises
+    ------
+    DataValidationError
+        When any rule fails; ``errors`` holds every finding and the message names the first.
+    """
+    findings, result = collect_findings(pf)
+    raise_if(findings)
+    return result
+
+
+# ---------------------------------------------------------------------------------------------- error report
+def error_rows(findings) -> list[dict]:
+    """Rows of validation_errors.csv sorted by rule, at most MAX_FINDINGS_PER_RULE per rule, then a total row."""
+    by_rule: dict[str, list[Finding]] = {}
+    for f in findings:
+        by_rule.setdefault(f.rule, []).append(f)
+    rows = []
+    for rule in sorted(by_rule):
+        group = sorted(by_rule[rule], key=lambda f: (f.file, f.row or 0, f.column or ""))
+        for f in group[:MAX_FINDINGS_PER_RULE]:
+            rows.append(
+                {
+                    "rule": rule,
+                    "file": f.file,
+                    "row": "" if f.row is None else f.row,
+                    "column": f.column or "",
+                    "value": f.value or "",
+                    "problem": f.message,
+                    "how_to_fix": f.fix,
+                }
+            )
+        capped = (
+            " (list capped; the vectorised check may have found more rows)"
+            if len(group) >= MAX_FINDINGS_PER_RULE
+            else ""
+        )
+        rows.append(
+            {
+                "rule": rule,
+                "file": "",
+                "row": "",
+                "column": "",
+                "value": "",
+                "problem": f"total: {len(group)} finding(s) listed{capped}",
+                "how_to_fix": "",
+            }
+        )
+    return rows
+
+
+def write_error_report(path, findings) -> None:
+    """Write validation_errors.csv (header only when there are no findings)."""
+    buffer = pd.DataFrame(error_rows(findings), columns=list(ERROR_COLUMNS)).to_csv(index=False, lineterminator="\n")
+    write_text(path, buffer)
+
+
+def report_lines(path, n: int = 10) -> list[str]:
+    """The first n lines of a validation_errors.csv (already sorted by rule) for the terminal; [] if none."""
+    path = Path(path)
+    if not path.is_file():
+        return []
+    table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    listed = table[table["problem"].str.startswith("total: ") == False]  # noqa: E712
+    lines = []
+    for row in listed.head(n).itertuples(index=False):
+        where = ", ".join(
+            x for x in (row.file, row.row and f"row {row.row}", row.column and f"column {row.column!r}") if x
+        )
+        value = f" (value {row.value!r})" if row.value else ""
+        lines.append(f"[{row.rule}] {where}: {row.problem}{value}; {row.how_to_fix}")
+    if len(listed) > n:
+        lines.append(f"... and {len(listed) - n} more listed")
+    return lines
+
+
+def summarise(
+    pf: ProtocolFile,
+    decisions: pd.DataFrame,
+    raw: pd.DataFrame,
+    missing_actions: dict | None = None,
+    episodes_dropped: int = 0,
+) -> dict:
+    """Counts for validation.json (no individual-level values)."""
+    p = pf.protocol
+    starts, lengths = episode_runs(decisions)
+    known = {r.column for r in decision_rules(pf)} | {f"{s}_missing" for s in p.state_names}
+    return {
+        "decisions_file": pf.decisions_path.name,
+        "episodes_file": None if pf.episodes_path is None else pf.episodes_path.name,
+        "rows_read": int(len(raw)),
+        "rows_kept": int(len(decisions)),
+        "rows_rejected": 0,
+        "rows_dropped_missing": int(len(raw) - len(decisions)),
+        "episodes_dropped_missing": int(episodes_dropped),
+        "episodes": int(starts.size),
+        "patients": int(decisions["patient_id"].nunique()),
+        "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.tolist()).items())},
+        "decisions_by_step": {str(k): int(v) for k, v in decisions.groupby("step").size().items()},
+        "actions": {a: int((decisions["action"] == a).sum()) for a in p.action_labels},
+        "findings_by_rule": {rule: 0 for rule in RULES_CHECKED},
+        "missing_data": missing_actions or {},
+        "acknowledged_columns": [a.model_dump() for a in p.data.acknowledged_columns],
+        "extra_columns_ignored": sorted(set(map(str, raw.columns)) - known),
+    }
+
+
+RULES_CHECKED = (
+    "identifier_column",
+    "identifier_value",
+    "age_over_89",
+    "long_text",
+    "missing_column",
+    "missing_value",
+    "identifier_text",
+    "whole_number",
+    "number",
+    "action_label",
+    "duplicate_decision",
+    "step_sequence",
+    "day_order",
+    "patient_per_episode",
+    "duplicate_episode",
+    "episode_without_record",
+    "episode_without_decisions",
+    "patient_mismatch",
+    "followup_before_last_decision",
+)

@@ -1,0 +1,293 @@
+"""Off-policy values of the learned regime, usual care and the fixed 'always <action>' strategies.
+
+Each regime is evaluated by the estimators the protocol names, all on one set of importance weights per
+regime (:func:`regimewise.evaluation.ope.evaluate_off_policy`). The doubly robust estimators use, as outcome model,
+fitted-Q evaluation of the same regime (Le, Voloshin & Yue 2019) with the protocol's Q-model, so every regime
+gets its own Q-function rather than borrowing the learned regime's; that fitted-Q evaluation is also reported
+as an estimator of its own (``fqe``, the direct method). It uses no weights, but it carries the regime's weight
+diagnostics: when few episodes follow the regime, its value rests on the Q-model's extrapolation.
+
+An estimate whose Kish effective sample size is below ``max(evaluation.minimum_ess, evaluation.minimum_ess_fraction
+× episodes)`` (defaults 30 and 5%) is flagged ``low_ess`` (common practice, no single source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+import pandas as pd
+
+from regimewise.core.features import QFeatures, StateScaler, action_codes, episode_codes
+from regimewise.errors import UserInputError
+from regimewise.estimators import ESTIMATORS
+from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.evaluation.ope import evaluate_off_policy, importance_weights
+from regimewise.protocol.model import Protocol
+from regimewise.protocol.sections import EvaluationSpec
+
+WEIGHT_HISTOGRAM_EDGES = tuple(x / 2 for x in range(-6, 9))  # log10 of the cumulative weight, 10^-3 .. 10^4
+
+
+@dataclass(frozen=True)
+class LoggedDecisions:
+    """The decision table as the arrays the estimators take (rows sorted by episode and step)."""
+
+    X: np.ndarray
+    step: np.ndarray
+    action: np.ndarray
+    reward: np.ndarray
+    episode: np.ndarray
+    patient: np.ndarray
+    behaviour_proba: np.ndarray
+
+    @classmethod
+    def from_frame(cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol) -> LoggedDecisions:
+        return cls(
+            X=QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol).transform(frame),
+            step=frame["step"].to_numpy(dtype=np.int64),
+            action=action_codes(frame, protocol.action_labels),
+            reward=frame["reward"].to_numpy(dtype=float),
+            episode=episode_codes(frame),
+            patient=pd.factorize(frame["patient_id"], sort=False)[0],
+            behaviour_proba=behaviour_proba,
+        )
+
+    @property
+    def n_episodes(self) -> int:
+        return int(self.episode.max()) + 1
+
+
+def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
+    out = np.zeros((len(codes), n_actions))
+    out[np.arange(len(codes)), codes] = 1.0
+    return out
+
+
+def regime_targets(logged: LoggedDecisions, recommended: np.ndarray, labels: tuple[str, ...], fixed: bool):
+    """(name, label, target probabilities) of every regime to evaluate, learned first."""
+    k = len(labels)
+    targets = [
+        ("learned", "Learned regime", one_hot(recommended, k)),
+        ("usual_care", "Usual care", logged.behaviour_proba),
+    ]
+    if fixed:
+        targets += [
+            (f"always_{a}", f"Always {a}", one_hot(np.full(len(recommended), j), k)) for j, a in enumerate(labels)
+        ]
+    return targets
+
+
+def evaluate_regime(
+    logged: LoggedDecisions,
+    target: np.ndarray,
+    protocol: Protocol,
+    deterministic: bool,
+    strict: bool = True,
+    folds: np.ndarray | None = None,
+) -> dict:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
+
+    ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
+    deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
+    a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
+    leaves the model-based estimators (dr, wdr, fqe) null instead of raising. ``folds`` fits the fitted-Q
+    evaluation within each fold (a cross-fitted regime, :func:`regimewise.regime.learning.cross_fitted_recommendations`).
+    """
+    q_taken, v_target, fqe_value = None, None, float("nan")
+    if any(
+        ESTIMATORS[name].needs_q_model for name in protocol.evaluation.estimators
+    ):  # the Q-models are fitted only when an estimator uses them
+        try:
+            q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol, folds)
+        except UserInputError:
+            if strict:
+                raise
+    results = evaluate_off_policy(
+        logged.step,
+        logged.action,
+        logged.reward,
+        logged.episode,
+        logged.behaviour_proba,
+        target,
+        horizon=protocol.horizon,
+        gamma=protocol.discount,
+        q_taken=q_taken,
+        v_target=v_target,
+    )
+    for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
+        if e.needs_q_model:
+            results.setdefault(
+                e.label, replace(results["PDWIS"], estimator=e.label, value=float("nan"), se=float("nan"))
+            )
+    results[ESTIMATORS["fqe"].label] = replace(
+        results["PDWIS"], estimator=ESTIMATORS["fqe"].label, value=fqe_value, se=float("nan")
+    )
+    floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
+    out = {}
+    for name in protocol.evaluation.estimators:
+        estimate = results[ESTIMATORS[name].label].to_dict()
+        estimate["low_ess"] = bool(estimate["ess"] is None or estimate["ess"] < floor)
+        if not deterministic:
+            estimate["n_following"] = None
+        out[name] = estimate
+    return out
+
+
+def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol, folds=None):
+    """Q̂ of the action taken, V̂ under the regime at each decision, and the fqe value (Le, Voloshin & Yue 2019).
+
+    With ``folds`` (a fold per row, patients kept whole) the Q-models are fitted within each fold on that fold's
+    records only, so a cross-fitted regime is never scored by a model that saw the records it was learned from.
+    """
+    if folds is not None:
+        q_taken, v_target = np.empty(len(logged.step)), np.empty(len(logged.step))
+        for fold in np.unique(folds):
+            rows = folds == fold
+            part = LoggedDecisions(
+                X=logged.X[rows],
+                step=logged.step[rows],
+                action=logged.action[rows],
+                reward=logged.reward[rows],
+                episode=np.unique(logged.episode[rows], return_inverse=True)[1],
+                patient=logged.patient[rows],
+                behaviour_proba=logged.behaviour_proba[rows],
+            )
+            try:
+                q_taken[rows], v_target[rows], _ = _fitted_q_evaluation(part, target[rows], protocol)
+            except UserInputError as err:
+                raise UserInputError(
+                    f"cross-fitted evaluation, fold {int(fold) + 1} of {len(np.unique(folds))}: {err} With few "
+                    "records per fold, lower evaluation.cross_fit_folds (1 turns cross-fitting off, at the price of "
+                    "optimism) or leave fqe, dr and wdr out of evaluation.estimators."
+                ) from err
+        return q_taken, v_target, float(np.mean(v_target[logged.step == 0]))
+    fqe = FittedQEvaluation(
+        n_actions=len(protocol.actions),
+        horizon=protocol.horizon,
+        gamma=protocol.discount,
+        alpha=protocol.evaluation.fqe_ridge_alpha,
+    ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)
+    q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
+    first = logged.step == 0
+    return q_taken, v_target, fqe.value_estimate(logged.X[first], target[first])
+
+
+def headline_estimator(protocol: Protocol) -> str:
+    """The estimator of the headline contrast: wdr if the protocol runs it, else its first estimator."""
+    return "wdr" if "wdr" in protocol.evaluation.estimators else protocol.evaluation.estimators[0]
+
+
+def minimum_reliable_ess(n_episodes: int, spec: EvaluationSpec | None = None) -> float:
+    """max(minimum_ess, minimum_ess_fraction × episodes): the smallest ESS shown as reliable (defaults 30, 5%)."""
+    spec = spec or EvaluationSpec()
+    return float(max(spec.minimum_ess, spec.minimum_ess_fraction * n_episodes))
+
+
+def weight_histograms(logged: LoggedDecisions, target: np.ndarray, horizon: int) -> dict:
+    """Per decision point, how many episodes carry a zero cumulative weight and a histogram of log10 of the rest.
+
+    Weights below or above the fixed edges are counted in the first or last bin.
+    """
+    weights = importance_weights(
+        logged.step, logged.action, logged.reward, logged.episode, logged.behaviour_proba, target, horizon=horizon
+    )
+    edges = np.asarray(WEIGHT_HISTOGRAM_EDGES)
+    by_step = []
+    for t, column in enumerate(weights.cumulative.T):
+        positive = np.log10(column[column > 0])
+        counts, _ = np.histogram(np.clip(positive, edges[0], edges[-1]), bins=edges)
+        by_step.append({"step": t, "zero": int(np.sum(column <= 0)), "counts": counts.tolist()})
+    return {"log10_edges": list(WEIGHT_HISTOGRAM_EDGES), "by_step": by_step}
+
+
+def point_values(values: dict) -> dict:
+    """{regime: {estimator: value or None}} from the output of :func:`evaluate_all`."""
+    return {r["name"]: {est: e["value"] for est, e in r["estimates"].items()} for r in values["regimes"]}
+
+
+def observed_returns(logged: LoggedDecisions, gamma: float) -> np.ndarray:
+    """Discounted return Σ_t γ^t r_t of each episode."""
+    return np.bincount(logged.episode, weights=logged.reward * gamma**logged.step, minlength=logged.n_episodes)
+
+
+def clustered_mean(values: np.ndarray, cluster: np.ndarray) -> tuple[float, float]:
+    """Mean and its standard error with episodes clustered by patient (sandwich form, no small-sample factor)."""
+    mean = float(values.mean())
+    totals = np.bincount(cluster, weights=values - mean)
+    return mean, float(np.sqrt(np.sum(totals**2)) / len(values))
+
+
+def evaluate_all(
+    frame: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    recommended: np.ndarray,
+    protocol: Protocol,
+    side_by_side: dict[str, np.ndarray] | None = None,
+    *,
+    strict: bool = True,
+    learned_folds: np.ndarray | None = None,
+) -> dict:
+    """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts.
+
+    With ``strict=False`` (bootstrap replicates) a regime whose fitted-Q evaluation cannot be fitted on these
+    records (an action it may take never occurs at some step) gets null dr, wdr and fqe values instead of
+    stopping the analysis.
+
+    ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
+    under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
+
+    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted: the learned
+    regime's outcome models are then fitted within each fold.
+    """
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
+    targets = regime_targets(logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
+    regimes = [
+        {
+            "name": name,
+            "label": label,
+            "estimates": evaluate_regime(
+                logged, target, protocol, name != "usual_care", strict, learned_folds if name == "learned" else None
+            ),
+        }
+        for name, label, target in targets
+    ]
+    returns = observed_returns(logged, protocol.discount)
+    episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
+    episode_patient[logged.episode] = logged.patient
+    mean, se = clustered_mean(returns, episode_patient)
+    learned, usual = regimes[0]["estimates"], regimes[1]["estimates"]
+    contrasts = [
+        {
+            "regime": "learned",
+            "versus": "usual_care",
+            "estimator": name,
+            "difference": None
+            if learned[name]["value"] is None or usual[name]["value"] is None
+            else learned[name]["value"] - usual[name]["value"],
+            "low_ess": learned[name]["low_ess"],
+        }
+        for name in protocol.evaluation.estimators
+    ]
+    return {
+        "discount": protocol.discount,
+        "episodes": logged.n_episodes,
+        "minimum_reliable_ess": minimum_reliable_ess(logged.n_episodes, protocol.evaluation),
+        "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
+        "regimes": regimes,
+        "contrasts": contrasts,
+        "learned_weight_histograms": weight_histograms(logged, targets[0][2], protocol.horizon),
+        **(
+            {}
+            if side_by_side is None
+            else {
+                "side_by_side": [
+                    {
+                        "name": name,
+                        "estimates": evaluate_regime(logged, one_hot(codes, len(protocol.actions)), protocol, True),
+                    }
+                    for name, codes in side_by_side.items()
+                ]
+            }
+        ),
+    }

@@ -1,0 +1,111 @@
+"""Reading a protocol file: a safe YAML loader that refuses repeated keys, validation with one-line errors, the
+record paths resolved relative to the protocol file, and the JSON Schema export.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass
+from pathlib import Path
+
+import yaml
+from pydantic import ValidationError
+
+from regimewise.errors import ProtocolError
+from regimewise.protocol.model import Protocol, describe_validation_error, one_line
+
+
+# ---------------------------------------------------------------------------------------------- loading
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """A safe YAML loader that refuses a key repeated in one mapping (YAML would silently keep the last)."""
+
+
+def _construct_unique_mapping(loader, node, deep=False):
+    keys = set()
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if key in keys:
+            raise ProtocolError(
+                f"line {key_node.start_mark.line + 1}: key {key!r} appears twice in one section; keep one"
+            )
+        keys.add(key)
+    return loader.construct_mapping(node, deep=deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_unique_mapping)
+
+
+@dataclass(frozen=True)
+class ProtocolFile:
+    """A validated protocol together with where it came from."""
+
+    protocol: Protocol
+    path: Path
+    sha256: str
+
+    def resolve(self, relative: str) -> Path:
+        """Resolve a path written in the protocol, relative to the protocol file's folder."""
+        return (self.path.parent / relative).resolve()
+
+    @property
+    def decisions_path(self) -> Path:
+        return self.resolve(self.protocol.data.decisions)
+
+    @property
+    def episodes_path(self) -> Path | None:
+        episodes = self.protocol.data.episodes
+        return None if episodes is None else self.resolve(episodes)
+
+    def check_record_paths(self) -> None:
+        """Refuse a relative record path that climbs out of ``data.root`` (absolute paths are taken as written)."""
+        root = self.resolve(self.protocol.data.root)
+        for key in ("decisions", "episodes"):
+            written = getattr(self.protocol.data, key)
+            if written is None or Path(written).is_absolute():
+                continue
+            if not self.resolve(written).is_relative_to(root):
+                raise ProtocolError(
+                    f"protocol {self.path}: data.{key} {written!r} leads outside data.root {self.protocol.data.root!r};"
+                    " move the file inside that folder or widen data.root"
+                )
+
+
+def load_protocol(path: str | Path) -> ProtocolFile:
+    """Read and validate a protocol file.
+
+    Raises
+    ------
+    ProtocolError
+        One line naming the file, the setting and what to change.
+    """
+    path = Path(path).resolve()
+    if not path.is_file():
+        raise ProtocolError(f"protocol file {path} not found; give the path to a protocol YAML file")
+    raw = path.read_bytes()
+    try:
+        data = yaml.load(raw.decode("utf-8"), Loader=_UniqueKeyLoader)  # noqa: S506 - safe loader subclass
+    except ProtocolError as err:
+        raise ProtocolError(f"protocol {path}: {err}") from None
+    except (yaml.YAMLError, UnicodeDecodeError) as err:
+        raise ProtocolError(f"protocol {path}: not valid YAML ({one_line(err)}); fix the syntax") from None
+    if not isinstance(data, dict):
+        raise ProtocolError(f"protocol {path}: expected a mapping of sections (study, data, states, ...)")
+    try:
+        protocol = Protocol.model_validate(data)
+    except ValidationError as err:
+        raise ProtocolError(f"protocol {path}: {describe_validation_error(err)}") from None
+    pf = ProtocolFile(protocol=protocol, path=path, sha256=hashlib.sha256(raw).hexdigest())
+    pf.check_record_paths()
+    return pf
+
+
+def protocol_schema() -> dict:
+    """JSON Schema of the protocol, with the ``$schema`` key Snakemake's validator needs."""
+    schema = Protocol.model_json_schema()
+    return {"$schema": "https://json-schema.org/draft/2020-12/schema", **schema}
+
+
+def export_schema(path: str | Path) -> None:
+    """Write the protocol's JSON Schema (sorted keys, two-space indent, trailing newline)."""
+    Path(path).write_text(json.dumps(protocol_schema(), indent=2, sort_keys=True) + "\n", encoding="utf-8")

@@ -1,0 +1,207 @@
+"""The whole protocol (:class:`Protocol`) with its cross-section checks, and the specification sweeps it declares.
+
+A sweep's grid is expanded here (:func:`sweep_specifications`) because the protocol's own validation must refuse
+an invalid combination before any job runs.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass
+from typing import Annotated
+
+from pydantic import Field, ValidationError, model_validator
+
+from regimewise.protocol.sections import (
+    MAX_SPECIFICATIONS,
+    SWEEP_AXES,
+    Action,
+    BehaviourModelSpec,
+    Constraints,
+    DataSpec,
+    Discount,
+    EvaluationSpec,
+    QModelSpec,
+    ReportSpec,
+    RewardSpec,
+    Seed,
+    SensitivitySpec,
+    StateVariable,
+    Strict,
+    Study,
+    SweepSpec,
+)
+
+
+class Protocol(Strict):
+    """A regimewise research protocol."""
+
+    study: Study
+    data: DataSpec
+    states: Annotated[list[StateVariable], Field(min_length=1, max_length=200)]
+    actions: Annotated[list[Action], Field(min_length=2, max_length=20)]
+    reward: RewardSpec
+    horizon: Annotated[int, Field(ge=1, le=200, description="number of decision points per episode at most")]
+    discount: Discount = 1.0
+    behaviour_model: BehaviourModelSpec = BehaviourModelSpec()
+    q_model: QModelSpec = QModelSpec()
+    constraints: Constraints = Constraints()
+    evaluation: EvaluationSpec = EvaluationSpec()
+    sensitivity: SensitivitySpec = SensitivitySpec()
+    seed: Seed
+    report: ReportSpec = ReportSpec()
+    sweeps: SweepSpec | None = Field(None, description="optional specification sweep (none: no sweep jobs)")
+
+    @model_validator(mode="after")
+    def _names_unique(self) -> Protocol:
+        _refuse_repeats([s.name for s in self.states], "states", "state name")
+        _refuse_repeats([s.source_column for s in self.states], "states", "state column")
+        _refuse_repeats([a.label for a in self.actions], "actions", "action label")
+        contract = {c for c in self.data.columns.model_dump().values() if c is not None}
+        clash = sorted(contract & {s.source_column for s in self.states})
+        if clash:
+            raise ValueError(f"state column {clash[0]!r} is also a data-contract column in data.columns")
+        unknown = sorted(set(self.data.missing) - set(self.state_names))
+        if unknown:
+            raise ValueError(f"data.missing names {unknown[0]!r}, which is not a declared state")
+        _refuse_repeats([a.column for a in self.data.acknowledged_columns], "data.acknowledged_columns", "column")
+        return self
+
+    @model_validator(mode="after")
+    def _spline_states_numeric(self) -> Protocol:
+        kinds = {s.name: s.kind for s in self.states}
+        for name in self.behaviour_model.spline_states:
+            if kinds.get(name) in (None, "binary"):
+                raise ValueError(f"behaviour_model.spline_states: {name!r} is not a declared non-binary state")
+        return self
+
+    @model_validator(mode="after")
+    def _constraints_refer_to_protocol(self) -> Protocol:
+        states, labels = set(self.state_names), set(self.action_labels)
+        _refuse_repeats([r.name for r in self.constraints.clinical_rules], "constraints", "clinical rule name")
+        for rule in self.constraints.clinical_rules:
+            unknown = sorted(set(rule.forbid) - labels) or sorted({c.state for c in rule.when} - states)
+            if unknown:
+                raise ValueError(f"clinical rule {rule.name!r} names {unknown[0]!r}: not a declared action or state")
+        if self.constraints.max_intensity_change is not None:
+            missing = [a.label for a in self.actions if a.intensity is None]
+            if missing:
+                raise ValueError(f"max_intensity_change needs an intensity on every action; {missing[0]!r} has none")
+        return self
+
+    @model_validator(mode="after")
+    def _sweep_grid_valid(self) -> Protocol:
+        if self.sweeps is not None:
+            if max(self.sweeps.gammas) > self.sensitivity.gamma_max:
+                raise ValueError(f"sweeps.gammas must not exceed sensitivity.gamma_max ({self.sensitivity.gamma_max})")
+            sweep_specifications(self)
+        return self
+
+    @property
+    def action_labels(self) -> tuple[str, ...]:
+        return tuple(a.label for a in self.actions)
+
+    @property
+    def state_names(self) -> tuple[str, ...]:
+        return tuple(s.name for s in self.states)
+
+
+def _refuse_repeats(values, section, what):
+    seen = set()
+    for v in values:
+        if v in seen:
+            raise ValueError(f"{section}: {what} {v!r} is declared twice")
+        seen.add(v)
+
+
+# ---------------------------------------------------------------------------------------------- sweeps
+@dataclass(frozen=True)
+class Specification:
+    """One specification of a sweep: its id, the swept settings and the whole protocol it analyses with.
+
+    ``prespecified`` marks the protocol's own settings (always ``spec_00``); ``in_grid`` says whether that
+    combination is also one of the axes' combinations (otherwise it was added to the grid).
+    """
+
+    id: str
+    index: int
+    settings: dict
+    prespecified: bool
+    in_grid: bool
+    protocol: Protocol
+
+
+def sweep_specifications(protocol: Protocol) -> tuple[Specification, ...]:
+    """The sweep's grid, each specification validated as a whole protocol (without ``sweeps``).
+
+    ``spec_00`` is the pre-specified analysis (the protocol's own settings); ``spec_01``, ``spec_02``, … are the
+    other combinations of the axes' values: axes in :data:`SWEEP_AXES` order, values in listed order, the last
+    axis varying fastest. Raises ValueError naming the axis and value, or the combination, that is invalid.
+    """
+    if protocol.sweeps is None:
+        return ()
+    base = {**protocol.model_dump(), "sweeps": None}
+    axes = [axis for axis in SWEEP_AXES if axis in protocol.sweeps.axes]
+    values = [[_swept_value(base, axis, v) for v in protocol.sweeps.axes[axis]] for axis in axes]
+    for axis, listed in zip(axes, values):
+        if len(set(listed)) < len(listed):
+            raise ValueError(f"sweeps.axes.{axis} lists a value twice; keep each value once")
+    own = tuple(getattr(getattr(protocol, axis.split(".")[0]), axis.split(".")[1]) for axis in axes)
+    grid = list(itertools.product(*values))
+    combos = [own, *(combo for combo in grid if combo != own)]
+    if len(combos) > MAX_SPECIFICATIONS:
+        raise ValueError(f"sweeps.axes make {len(combos)} specifications, more than {MAX_SPECIFICATIONS}; drop values")
+    out = []
+    for index, combo in enumerate(combos):
+        spec_id, settings = f"spec_{index:02d}", dict(zip(axes, combo))
+        try:
+            spec_protocol = Protocol.model_validate(_with_settings(base, settings))
+        except ValidationError as err:
+            shown = ", ".join(f"{axis}={value!r}" for axis, value in settings.items())
+            raise ValueError(
+                f"sweeps: combination {spec_id} ({shown}) is not a valid protocol: "
+                f"{describe_validation_error(err)}; remove one of its values"
+            ) from None
+        out.append(Specification(spec_id, index, settings, index == 0, index > 0 or own in grid, spec_protocol))
+    return tuple(out)
+
+
+def _with_settings(base: dict, settings: dict) -> dict:
+    out = dict(base)
+    for axis, value in settings.items():
+        section, field = axis.split(".")
+        out[section] = {**out[section], field: value}
+    return out
+
+
+def _swept_value(base: dict, axis: str, value):
+    """The value as the setting validates it, or ValueError naming the axis, the value and the constraint."""
+    try:
+        changed = Protocol.model_validate(_with_settings(base, {axis: value}))
+    except ValidationError as err:
+        raise ValueError(
+            f"sweeps.axes.{axis}: value {value!r} is not allowed ({describe_validation_error(err)}); "
+            "change or remove it"
+        ) from None
+    section, field = axis.split(".")
+    return getattr(getattr(changed, section), field)
+
+
+def describe_validation_error(err: ValidationError) -> str:
+    problems = err.errors(include_url=False)
+    first = problems[0]
+    where = ".".join(str(p) for p in first["loc"]) or "(top level)"
+    if first["type"] == "extra_forbidden":
+        what = "unknown setting; check the spelling against config/protocol.schema.json"
+    elif first["type"] == "missing":
+        what = "required setting is missing"
+    else:
+        what = first["msg"]
+        if "input" in first and not isinstance(first["input"], (dict, list)):
+            what += f" (got {first['input']!r})"
+    more = f" (and {len(problems) - 1} more problem{'s' if len(problems) > 2 else ''})" if len(problems) > 1 else ""
+    return f"{where}: {one_line(what)}{more}"
+
+
+def one_line(text) -> str:
+    return " ".join(str(text).split())

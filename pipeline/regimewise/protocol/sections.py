@@ -1,0 +1,391 @@
+"""The research protocol: one YAML file, validated by a pydantic model with unknown keys forbidden.
+
+Every setting a stage reads lives here, with its constraint in its type. Paths inside the protocol resolve
+relative to the protocol file. ``config/protocol.schema.json`` is exported from :class:`Protocol` by
+:func:`export_schema` and never edited by hand.
+
+Clinical rules and reward definitions are structured data, never expression strings: nothing in a protocol is
+ever evaluated as code.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from regimewise.estimators import ESTIMATOR_NAMES
+
+# ---------------------------------------------------------------------------------------------- reusable types
+Identifier = Annotated[
+    str,
+    Field(pattern=r"^[a-z][a-z0-9_]{0,39}$", description="lower-case letters, digits and _, starting with a letter"),
+]
+
+
+ColumnName = Annotated[str, Field(min_length=1, max_length=128)]
+
+
+ShortText = Annotated[str, Field(min_length=1, max_length=300)]
+
+
+LongText = Annotated[str, Field(min_length=1, max_length=4000)]
+
+
+Probability = Annotated[float, Field(ge=0.0, le=1.0)]
+
+
+Discount = Annotated[float, Field(gt=0.0, le=1.0)]
+
+
+Seed = Annotated[int, Field(ge=0, lt=2**63)]
+EstimatorName = Literal[ESTIMATOR_NAMES]  # the registry's names, in its order
+
+
+class Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+# ---------------------------------------------------------------------------------------------- sections
+class Study(Strict):
+    """Study metadata shown at the top of the report."""
+
+    title: ShortText
+    question: LongText
+    version: Annotated[str, Field(min_length=1, max_length=40)]
+    run_name: Identifier = Field(description="results go under <results>/<run_name>/ unless --out is given")
+
+
+class ColumnMap(Strict):
+    """Names of the data-contract columns in the decisions file."""
+
+    episode_id: ColumnName = "episode_id"
+    patient_id: ColumnName | None = Field(
+        "patient_id", description="resampling cluster; null if the file has none (each episode is its own patient)"
+    )
+    step: ColumnName = "step"
+    day: ColumnName = "day"
+    action: ColumnName = "action"
+    reward: ColumnName = "reward"
+    followup: ColumnName = Field("followup_days", description="episodes table: days from index to event or censoring")
+    event: ColumnName = Field("event", description="episodes table: 1 event observed, 0 censored")
+
+
+class AcknowledgedColumn(Strict):
+    """A column whose name or values look like an identifier, kept on purpose with a written justification."""
+
+    column: ColumnName
+    justification: Annotated[str, Field(min_length=20, max_length=1000)] = Field(
+        description="why this column is not a direct identifier (recorded in the report)"
+    )
+
+
+MissingPolicy = Literal["refuse", "drop", "carry_forward", "indicator"]
+
+
+class DataSpec(Strict):
+    """Where the records are and how their columns are named."""
+
+    decisions: ColumnName = Field(description="decisions table (CSV or Parquet), relative to the protocol file")
+    episodes: ColumnName | None = Field(None, description="optional episodes table, relative to the protocol file")
+    root: ColumnName = Field(".", description="folder the record paths must stay inside, relative to the protocol file")
+    delimiter: Literal[",", ";", "\t"] = Field(",", description="field separator of CSV files")
+    columns: ColumnMap = ColumnMap()
+    missing: dict[Identifier, MissingPolicy] = Field(
+        default_factory=dict,
+        description="per state: refuse (default), drop the decision point and the rest of its episode, "
+        "carry_forward the episode's last observation, or indicator (fill with the observed median and add "
+        "<state>_missing)",
+    )
+    acknowledged_columns: Annotated[list[AcknowledgedColumn], Field(max_length=50)] = Field(
+        default_factory=list, description="identifier-like columns kept on purpose, each with a justification"
+    )
+
+
+class StateVariable(Strict):
+    """One state variable observed at every decision point."""
+
+    name: Identifier
+    column: ColumnName | None = Field(None, description="column in the decisions file; defaults to name")
+    label: ShortText
+    kind: Literal["continuous", "integer", "binary"]
+    unit: Annotated[str, Field(max_length=40)] = ""
+    plausible_range: tuple[float, float] = Field(description="[low, high]; values outside are refused")
+
+    @model_validator(mode="after")
+    def _range_ordered(self) -> StateVariable:
+        low, high = self.plausible_range
+        if not low < high:
+            raise ValueError(f"plausible_range of {self.name!r} must have low < high, got [{low}, {high}]")
+        if self.kind == "binary" and (low, high) != (0.0, 1.0):
+            raise ValueError(f"binary state {self.name!r} must have plausible_range [0, 1]")
+        return self
+
+    @property
+    def source_column(self) -> str:
+        return self.column or self.name
+
+
+class Action(Strict):
+    """One label of the action set."""
+
+    label: Identifier
+    description: ShortText
+    intensity: Annotated[int, Field(ge=-10, le=10)] | None = Field(
+        None,
+        description="ordinal change in therapy intensity this action makes (e.g. -1 step down, 0 hold, +1 "
+        "step up); needed only for constraints.max_intensity_change",
+    )
+
+
+class RewardSpec(Strict):
+    """The reward is the decisions file's reward column, observed after the action; larger is better."""
+
+    description: LongText
+
+
+class BehaviourModelSpec(Strict):
+    """Model of usual care: the probability of each action given the state."""
+
+    kind: Literal["multinomial_logit", "gradient_boosting"] = Field(
+        "multinomial_logit",
+        description="multinomial_logit (statsmodels MNLogit) or gradient_boosting (histogram gradient boosting)",
+    )
+    include_step: bool = Field(True, description="add the decision index as a covariate")
+    max_iterations: Annotated[int, Field(ge=10, le=1000)] = Field(
+        100, description="optimiser iterations (multinomial_logit) or boosting rounds (gradient_boosting)"
+    )
+    spline_states: Annotated[list[Identifier], Field(max_length=50)] = Field(
+        [], description="non-binary states entered as natural cubic splines (multinomial_logit only)"
+    )
+    spline_df: Annotated[int, Field(ge=3, le=10)] = Field(4, description="degrees of freedom of each spline")
+    folds: Annotated[int, Field(ge=1, le=20)] = Field(
+        5,
+        description="cross-fitting folds, split by patient; records get out-of-fold probabilities. 1 = no "
+        "cross-fitting (in-sample probabilities), allowed only for the parametric multinomial_logit",
+    )
+    probability_floor: Annotated[float, Field(ge=0.0, le=0.05)] = Field(
+        0.001, description="every action's estimated probability is raised to at least this (rows still sum to 1)"
+    )
+    truncation_percentiles: tuple[float, float] = Field(
+        (1.0, 99.0), description="[low, high] percentiles at which weights are truncated in the diagnostics"
+    )
+
+    @model_validator(mode="after")
+    def _percentiles_ordered(self) -> BehaviourModelSpec:
+        low, high = self.truncation_percentiles
+        if not 0.0 <= low < high <= 100.0:
+            raise ValueError(f"truncation_percentiles must satisfy 0 <= low < high <= 100, got [{low}, {high}]")
+        if self.folds == 1 and self.kind == "gradient_boosting":
+            raise ValueError("gradient_boosting must be cross-fitted: set behaviour_model.folds to 2 or more")
+        return self
+
+
+class QModelSpec(Strict):
+    """Model of the action-value function at each decision point."""
+
+    kind: Literal["linear", "gradient_boosting"] = Field(
+        "linear",
+        description="linear: least squares with action-by-state interactions; gradient_boosting: "
+        "scikit-learn histogram gradient boosting with the action encoded as features",
+    )
+    basis: Literal["linear", "quadratic", "cubic"] = Field(
+        "linear",
+        description="quadratic adds the square of every non-binary state to the covariates; cubic "
+        "adds the square and the cube",
+    )
+    ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] | Literal["cv"] = Field(
+        0.0,
+        description="ridge penalty of the linear Q-model, or 'cv' to choose it from ridge_grid by "
+        "cross-validation with folds by patient",
+    )
+    ridge_grid: Annotated[list[Annotated[float, Field(ge=0.0, le=1e6)]], Field(min_length=1, max_length=30)] = [
+        0.0,
+        0.1,
+        1.0,
+        10.0,
+        100.0,
+    ]
+    cv_folds: Annotated[int, Field(ge=2, le=20)] = Field(
+        5, description="folds by patient for choosing the ridge penalty and for the out-of-fold error"
+    )
+    learning_mode: Literal["backward", "pooled"] = Field(
+        "backward",
+        description="backward: one Q-model per decision point, by backward induction; pooled: one "
+        "Q-model with the decision index as a feature, iterated to the tolerance (episodes of unequal length)",
+    )
+    tolerance: Annotated[float, Field(gt=0.0, le=1.0)] = Field(
+        1e-6, description="pooled mode stops when no regression target moves by more than this"
+    )
+    max_iterations: Annotated[int, Field(ge=1, le=1000)] = Field(200, description="pooled mode iteration cap")
+    boosting_max_iter: Annotated[int, Field(ge=10, le=2000)] = Field(
+        100, description="boosting rounds of each gradient boosting Q-model"
+    )
+    boosting_max_leaf_nodes: Annotated[int, Field(ge=2, le=255)] = 15
+    boosting_learning_rate: Annotated[float, Field(gt=0.0, le=1.0)] = 0.1
+    boosting_min_samples_leaf: Annotated[int, Field(ge=1, le=10_000)] = 50
+
+
+class StateCondition(Strict):
+    """One structured condition on a state (never an expression string)."""
+
+    state: Identifier
+    comparison: Literal["below", "at_most", "above", "at_least", "in", "not_in"]
+    value: float | None = Field(None, description="threshold for below / at_most / above / at_least")
+    values: Annotated[list[float], Field(min_length=1, max_length=50)] | None = Field(
+        None, description="set of values for in / not_in"
+    )
+
+    @model_validator(mode="after")
+    def _operand(self) -> StateCondition:
+        needs_set = self.comparison in ("in", "not_in")
+        if needs_set and (self.values is None or self.value is not None):
+            raise ValueError(f"condition on {self.state!r}: comparison {self.comparison!r} takes 'values' (a list)")
+        if not needs_set and (self.value is None or self.values is not None):
+            raise ValueError(f"condition on {self.state!r}: comparison {self.comparison!r} takes 'value' (a number)")
+        return self
+
+
+class ClinicalRule(Strict):
+    """Forbid actions at decisions where every condition holds."""
+
+    name: Identifier
+    forbid: Annotated[list[Identifier], Field(min_length=1)] = Field(description="action labels forbidden")
+    when: Annotated[list[StateCondition], Field(min_length=1, max_length=10)] = Field(
+        description="conditions that must all hold for the rule to apply"
+    )
+    reason: Annotated[str, Field(max_length=300)] = ""
+
+
+class Constraints(Strict):
+    """Safeguards on the learned regime."""
+
+    support_threshold: Probability = Field(
+        0.05, description="an action may be recommended only if usual care's estimated probability is at least this"
+    )
+    clinical_rules: Annotated[list[ClinicalRule], Field(max_length=100)] = []
+    max_intensity_change: Annotated[int, Field(ge=0, le=10)] | None = Field(
+        None, description="forbid actions whose |intensity| exceeds this (every action then needs an intensity)"
+    )
+    pessimism: Annotated[float, Field(ge=0.0, le=10.0)] = Field(
+        0.0, description="k: rank actions by mean minus k standard deviations of bootstrap Q-models (0 = off)"
+    )
+    ensemble_size: Annotated[int, Field(ge=2, le=200)] = Field(
+        20, description="bootstrap Q-models (resampling patients) used when pessimism > 0"
+    )
+
+
+class EvaluationSpec(Strict):
+    """Off-policy evaluation settings."""
+
+    estimators: Annotated[list[EstimatorName], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
+    fixed_strategies: bool = Field(True, description="also evaluate 'always <action>' for every action")
+    cross_fit_folds: Annotated[int, Field(ge=1, le=10)] = Field(
+        2,
+        description="the learned regime is evaluated by K-fold cross-fitting by patient: each patient's records "
+        "are scored with the regime learned from the other folds; 1 = evaluate on the records the regime was "
+        "learned from (optimistic)",
+    )
+    fqe_ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] = Field(
+        1.0,
+        description="ridge penalty of the fitted-Q evaluation models (fqe, and the Q̂ of dr and wdr) on the "
+        "standardised state features; a small penalty keeps an evaluation model from extrapolating wildly where the "
+        "regime's action is rare in the records; 0 = plain least squares",
+    )
+    replicates: Annotated[int, Field(ge=0, le=100_000)] = Field(
+        200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
+    )
+    shards: Annotated[int, Field(ge=1, le=1000)] = Field(
+        4, description="bootstrap replicates are split into this many separate workflow jobs"
+    )
+    interval_level: Annotated[float, Field(ge=0.5, le=0.999)] = Field(0.95, description="bootstrap interval level")
+    interval_method: Literal["percentile", "basic"] = Field(
+        "percentile",
+        description="percentile, or basic (2·estimate − quantiles: corrects the bootstrap's estimated "
+        "bias, e.g. the optimism of evaluating a regime on the records it was learned from)",
+    )
+    minimum_ess_fraction: Probability = Field(
+        0.05, description="an estimate whose effective sample size is below this share of episodes is unreliable"
+    )
+    minimum_ess: Annotated[float, Field(ge=30.0)] = Field(
+        30.0, description="absolute floor of the reliable effective sample size (never below 30)"
+    )
+    m_out_of_n: bool = Field(
+        False, description="adaptive m-out-of-n bootstrap (Chakraborty, Laber & Zhao 2013) for near-tied actions"
+    )
+    m_out_of_n_alpha: Annotated[float, Field(gt=0.0, le=10.0)] = Field(
+        0.1, description="alpha of the adaptive m-out-of-n resample size m = n^((1 + alpha (1 - p)) / (1 + alpha))"
+    )
+
+    @model_validator(mode="after")
+    def _unique(self) -> EvaluationSpec:
+        if len(set(self.estimators)) != len(self.estimators):
+            raise ValueError("evaluation.estimators lists an estimator twice")
+        if self.replicates and self.shards > self.replicates:
+            raise ValueError(f"evaluation.shards ({self.shards}) exceeds evaluation.replicates ({self.replicates})")
+        return self
+
+
+class SensitivitySpec(Strict):
+    """Sensitivity of the learned-minus-usual-care contrast to unmeasured confounding (marginal sensitivity model)."""
+
+    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=30)] = Field(
+        [1.0, 1.25, 1.5, 2.0, 3.0], description="confounding strengths Γ shown in the report's table"
+    )
+    gamma_max: Annotated[float, Field(gt=1.0, le=50.0)] = Field(
+        5.0, description="largest Γ searched for the tipping point"
+    )
+    precision: Annotated[float, Field(gt=0.0, le=0.5)] = Field(
+        0.02, description="the tipping point is found to this precision in Γ"
+    )
+    confounded_decisions: (
+        Literal["all", "first"] | Annotated[list[Annotated[int, Field(ge=0)]], Field(min_length=1)]
+    ) = Field("all", description="decisions a hidden confounder may affect: all, the first, or a list of steps")
+
+    @model_validator(mode="after")
+    def _grid_fits(self) -> SensitivitySpec:
+        if max(self.gammas) > self.gamma_max:
+            raise ValueError(f"sensitivity.gammas must not exceed gamma_max ({self.gamma_max})")
+        if (self.gamma_max - 1.0) / self.precision > 5000:
+            raise ValueError("sensitivity.precision is too fine for gamma_max: at most 5000 grid points")
+        return self
+
+
+class ReportSpec(Strict):
+    """Report settings."""
+
+    min_cell_count: Annotated[int, Field(ge=1, le=1000)] = Field(
+        11, description="counts from 1 to min_cell_count - 1 are shown as '<min_cell_count'"
+    )
+
+
+# Settings a specification sweep may vary (axis name = the setting's place in the protocol), in grid order.
+# Weight truncation is swept through behaviour_model.probability_floor, which caps every inverse probability at
+# 1/floor; behaviour_model.truncation_percentiles only changes diagnostics, never an estimate.
+SWEEP_AXES = (
+    "constraints.support_threshold",
+    "behaviour_model.kind",
+    "behaviour_model.probability_floor",
+    "q_model.kind",
+    "q_model.basis",
+    "q_model.learning_mode",
+    "constraints.pessimism",
+)
+
+
+MAX_SPECIFICATIONS = 100
+
+
+class SweepSpec(Strict):
+    """Specification sweep: the learned-minus-usual-care contrast recomputed under alternative analysis choices."""
+
+    axes: Annotated[
+        dict[Literal[SWEEP_AXES], Annotated[list[int | float | str], Field(min_length=1, max_length=20)]],
+        Field(min_length=1),
+    ] = Field(description="setting -> values to try; every combination is one specification (one workflow job)")
+    replicates: Annotated[int, Field(ge=2, le=10_000)] = Field(
+        50, description="patient-bootstrap replicates per specification (every model refitted in each)"
+    )
+    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=10)] = Field(
+        [1.0, 1.25, 1.5, 2.0, 3.0], description="Γ values at which each specification's bounds are shown"
+    )

@@ -1,0 +1,400 @@
+"""Finite-horizon fitted-Q iteration (learning a regime) and fitted-Q evaluation (valuing a given regime).
+
+Both run the same backward induction over decision steps. At the last step the reward is regressed on state
+and action; at each earlier step the regression target is the reward plus the discounted value of the next
+state, where that value is either the best permitted action's Q (learning) or the evaluated regime's average
+of Q over actions (evaluation). Rows whose episode ends at a step get no next-stage value.
+
+Data layout (shared with :mod:`regimewise.evaluation.ope`): long-format numpy arrays, one row per decision, rows
+sorted by episode then step; ``X`` (n, p) numeric state features, ``step`` (n,) codes 0..H-1 consecutive
+within an episode (an episode may end before the horizon H), ``action`` (n,) codes 0..K-1, ``reward`` (n,)
+observed after the action, ``episode`` (n,) codes 0..E-1 in contiguous blocks, and a probability matrix
+(n, K) per decision (usual care's, or the evaluated regime's).
+
+Research use only: a learned regime is not medical advice; treatment decisions stay with licensed
+clinicians, under local law and with ethics approval.
+
+References
+----------
+Ernst, D., Geurts, P. & Wehenkel, L. (2005). Tree-based batch mode reinforcement learning. JMLR 6, 503-556.
+Murphy, S. A. (2005). A generalization error for Q-learning. JMLR 6, 1073-1097.
+Chakraborty, B. & Moodie, E. E. M. (2013). Statistical Methods for Dynamic Treatment Regimes. Springer.
+Fujimoto, S., Meger, D. & Precup, D. (2019). Off-policy deep reinforcement learning without exploration.
+ICML (batch-constrained action filtering).
+Le, H., Voloshin, C. & Yue, Y. (2019). Batch policy learning under constraints. ICML (fitted-Q evaluation).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from regimewise.core.arrays import check_proba, next_row_index
+from regimewise.core.folds import patient_folds
+from regimewise.errors import StatisticalWarning, UserInputError
+from regimewise.regime.permitted import constrained_choice
+from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
+from regimewise.regime.qmodels import (
+    BackwardQModel,
+    BoostedActionModel,
+    LinearActionModel,
+    choose_ridge_alpha,
+    out_of_fold_errors,
+)
+
+
+@dataclass(frozen=True)
+class QLearningSettings:
+    """How :class:`FittedQIteration` learns: every setting but the problem's size and the random state.
+
+    Parameters
+    ----------
+    gamma : float, default 1.0
+    support_threshold : float, default 0.05
+    alpha : float or "cv", default 0.0
+    q_model : {"linear", "gradient_boosting"}, default "linear"
+    mode : {"backward", "pooled"}, default "backward"
+    alpha_grid : tuple of float, default (0, 0.1, 1, 10, 100)
+    cv_folds : int, default 5
+        Folds by patient for ``alpha="cv"`` and for the out-of-fold error.
+    tolerance : float, default 1e-6
+    max_iterations : int, default 200
+    boosting_params : dict or None
+        Keyword arguments of ``HistGradientBoostingRegressor``.
+    pessimism : float or None, default None
+        k of the pessimistic score; None fits no ensemble (0 fits one and changes nothing).
+    ensemble_size : int, default 20
+    oof_error : bool, default False
+        Compute the out-of-fold error of the final Q-models per step (extra fits).
+    """
+
+    gamma: float = 1.0
+    support_threshold: float = 0.05
+    alpha: float | str = 0.0
+    q_model: str = "linear"
+    mode: str = "backward"
+    alpha_grid: tuple = (0.0, 0.1, 1.0, 10.0, 100.0)
+    cv_folds: int = 5
+    tolerance: float = 1e-6
+    max_iterations: int = 200
+    boosting_params: dict | None = None
+    pessimism: float | None = None
+    ensemble_size: int = 20
+    oof_error: bool = False
+
+
+class FittedQIteration(BackwardQModel):
+    """Learn a regime by fitted-Q iteration with clinical rules, a support constraint and optional pessimism.
+
+    Two learning modes: ``"backward"`` fits one Q-model per decision step by finite-horizon backward
+    induction (Murphy 2005; Chakraborty & Moodie 2013); ``"pooled"`` fits one Q-model for all steps with the
+    decision index (step / (H - 1)) as an extra feature, iterating the Bellman targets (Ernst, Geurts &
+    Wehenkel 2005) until no target moves by more than ``tolerance``. In both, a row whose episode ends gets
+    no next-stage value, so episodes may stop early.
+
+    Q-models: ``"linear"`` (one coefficient vector per action in [1, X]; ridge penalty ``alpha``, or chosen
+    from ``alpha_grid`` by cross-validation with folds by patient when ``alpha="cv"``) or
+    ``"gradient_boosting"`` (:class:`BoostedActionModel`). With ``pessimism`` set, every Q-model is a
+    :class:`regimewise.regime.pessimism.PessimisticEnsemble` and actions are ranked by Q − k·sd.
+
+    The regime takes the permitted action with the best score: permitted = Q defined, allowed by the clinical
+    rules (the ``rule_permitted`` mask passed to :meth:`fit` and :meth:`recommend`) and usual-care
+    probability >= ``support_threshold``; with none permitted, usual care's most likely rule-permitted action.
+    ``support_threshold=0`` without rules is plain Q-learning; a threshold above 1 reproduces usual care's most
+    likely action. The same rule gives the next-state value during learning.
+
+    Research use only: recommendations are not medical advice; decisions stay with licensed clinicians.
+
+    Parameters
+    ----------
+    n_actions, horizon : int
+    settings : QLearningSettings, optional
+        Discount, support threshold, Q-model, learning mode, penalties and pessimism (defaults if None).
+    random_state : int or None
+
+    Attributes
+    ----------
+    models_ : list
+        The fitted Q-model of each step (backward) or a one-element list (pooled).
+    coef_ : ndarray
+        Linear Q-models only: (H, K, p + 1) in backward mode, (K, p + 2) in pooled mode; NaN for actions
+        without rows.
+    fitted_actions_ : ndarray of bool, shape (H, K)
+    alpha_ : list of float
+        Ridge penalty used by each model (linear only).
+    n_iterations_, converged_ : int, bool
+        Pooled mode: iterations run and whether the tolerance was met (backward: H, True).
+    oof_mse_ : dict {step: mean squared error} or None
+    n_changed_by_support_ : int
+        Observed decisions where the best rule-permitted action differs from the regime's choice.
+    n_without_permitted_action_ : int
+        Observed decisions where nothing was permitted and the fallback was taken.
+
+    References
+    ----------
+    Ernst, Geurts & Wehenkel (2005); Murphy (2005); Chakraborty & Moodie (2013); Fujimoto, Meger & Precup
+    (2019); Jin, Yang & Wang (2021), see the module docstring and :mod:`regimewise.regime.pessimism`.
+
+    Examples
+    --------
+    >>> X = np.array([[0.0], [1.0], [0.0], [1.0]])
+    >>> model = FittedQIteration(2, 1, QLearningSettings(support_threshold=0.0)).fit(
+    ...     X, step=[0, 0, 0, 0], action=[0, 0, 1, 1], reward=[1.0, 0.0, 0.0, 2.0], episode=[0, 1, 2, 3],
+    ...     behaviour_proba=np.full((4, 2), 0.5))
+    >>> model.recommend(X, [0, 0, 0, 0], np.full((4, 2), 0.5)).tolist()
+    [0, 1, 0, 1]
+    """
+
+    _proba_name = "behaviour_proba"
+    _fitted_attribute = "models_"
+
+    def __init__(self, n_actions, horizon, settings=None, random_state=None):
+        self.n_actions = n_actions
+        self.horizon = horizon
+        self.settings = QLearningSettings() if settings is None else settings
+        self.random_state = random_state
+
+    # the shared backward-induction base class reads these three by name
+    gamma = property(lambda self: self.settings.gamma)
+    alpha = property(lambda self: self.settings.alpha)
+    alpha_grid = property(lambda self: self.settings.alpha_grid)
+
+    def _check_params(self):
+        super()._check_params()
+        if self.settings.alpha == "cv" and self.settings.q_model != "linear":
+            raise UserInputError("alpha='cv' applies to the linear Q-model only; set a number or q_model='linear'.")
+        if not self.settings.support_threshold >= 0:
+            raise UserInputError(f"support_threshold must be >= 0, got {self.settings.support_threshold!r}.")
+        if self.settings.q_model not in ("linear", "gradient_boosting"):
+            raise UserInputError(f"q_model must be 'linear' or 'gradient_boosting', got {self.settings.q_model!r}.")
+        if self.settings.mode not in ("backward", "pooled"):
+            raise UserInputError(f"mode must be 'backward' or 'pooled', got {self.settings.mode!r}.")
+        if self.settings.pessimism is not None and not self.settings.pessimism >= 0:
+            raise UserInputError(f"pessimism must be None or >= 0, got {self.settings.pessimism!r}.")
+
+    # ------------------------------------------------------------------------------------------- models
+    def _make_model(self, alpha, seed):
+        if self.settings.q_model == "linear":
+            return lambda: LinearActionModel(self.n_actions, alpha)
+        return lambda: BoostedActionModel(self.n_actions, self.settings.boosting_params, seed)
+
+    def _fit_model(self, X, action, y, rows):
+        """One Q-model on the table rows ``rows`` (CV for the ridge penalty, ensemble if pessimistic)."""
+        alpha = self.settings.alpha
+        if alpha == "cv":
+            alpha = choose_ridge_alpha(self.n_actions, list(self.settings.alpha_grid), X, action, y, self._folds[rows])
+        self.alpha_.append(alpha)
+        make = self._make_model(alpha, self._model_seed)
+        if self._ensemble_weights is not None:
+            return PessimisticEnsemble(make, self._ensemble_weights, self.settings.pessimism).fit(
+                X, action, y, rows
+            ), make
+        return make().fit(X, action, y, None), make
+
+    def _scores(self, model, X):
+        return model.score(X) if hasattr(model, "score") else model.predict(X)
+
+    def _pooled_X(self, X, step):
+        return np.column_stack([X, np.asarray(step, dtype=float) / max(self.horizon - 1, 1)])
+
+    def _mask_unfitted(self, q, step):
+        return np.where(self.fitted_actions_[step], q, np.nan)
+
+    def _raw(self, X, step, scores):
+        """Q-values (or pessimistic scores) (n, K) of the fitted models at the given steps."""
+        pick = self._scores if scores else (lambda model, Z: model.predict(Z))
+        if self.settings.mode == "pooled":
+            return self._mask_unfitted(pick(self.models_[0], self._pooled_X(X, step)), step)
+        q = np.full((X.shape[0], self.n_actions), np.nan)
+        for t in np.unique(step):
+            rows = step == t
+            q[rows] = pick(self.models_[t], X[rows])
+        return self._mask_unfitted(q, step)
+
+    def _next_values(self, X, step, proba, rules):
+        score = self._raw(X, step, scores=True)
+        choice = constrained_choice(score, proba, self.settings.support_threshold, rules)[0]
+        return score[np.arange(choice.size), choice]
+
+    # ------------------------------------------------------------------------------------------- learning
+    def _fit_backward(self, X, step, action, reward, next_row, proba, rules):
+        target = reward.copy()
+        self.models_ = [None] * self.horizon
+        makers = [None] * self.horizon
+        for t in range(self.horizon - 1, -1, -1):
+            rows = np.flatnonzero(step == t)
+            if not rows.size:
+                continue
+            later = next_row[rows]
+            cont, later = rows[later >= 0], later[later >= 0]
+            if cont.size:
+                target[cont] = reward[cont] + self.settings.gamma * self._next_values(
+                    X[later], step[later], proba[later], None if rules is None else rules[later]
+                )
+            self.models_[t], makers[t] = self._fit_model(X[rows], action[rows], target[rows], rows)
+        self.n_iterations_, self.converged_ = self.horizon, True
+        return target, makers
+
+    def _fit_pooled(self, X, step, action, reward, next_row, proba, rules):
+        Xp = self._pooled_X(X, step)
+        cont = np.flatnonzero(next_row >= 0)
+        later = next_row[cont]
+        target = reward.copy()
+        self.converged_ = False
+        for iteration in range(1, self.settings.max_iterations + 1):  # noqa: B007 - read after the loop
+            self.alpha_ = []
+            model, make = self._fit_model(Xp, action, target, np.arange(step.size))
+            self.models_ = [model]
+            updated = reward.copy()
+            if cont.size:
+                updated[cont] += self.settings.gamma * self._next_values(
+                    X[later], step[later], proba[later], None if rules is None else rules[later]
+                )
+            change = float(np.max(np.abs(updated - target)))
+            target = updated
+            if change <= self.settings.tolerance:
+                self.converged_ = True
+                break
+        self.n_iterations_ = iteration
+        if not self.converged_:
+            warnings.warn(
+                f"pooled fitted-Q iteration stopped after {iteration} iterations with targets still moving by "
+                f"{change:.3g} > tolerance {self.settings.tolerance:g}; raise max_iterations or the tolerance.",
+                StatisticalWarning,
+                stacklevel=3,
+            )
+        return target, [make]
+
+    def _out_of_fold(self, X, step, action, target, makers):
+        folds = self._folds
+        if self.settings.mode == "pooled":
+            error = out_of_fold_errors(makers[0], self._pooled_X(X, step), action, target, folds)
+        else:
+            error = np.full(step.size, np.nan)
+            for t in np.unique(step):
+                rows = step == t
+                error[rows] = out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows])
+        return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+
+    def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None):
+        """Fit the Q-models; return ``self``.
+
+        Parameters
+        ----------
+        X : ndarray, shape (n, p)
+            State features at each decision.
+        step, action, reward, episode : ndarray, shape (n,)
+            Decision table in the layout described in the module docstring.
+        behaviour_proba : ndarray, shape (n, K)
+            Estimated usual-care probability of every action at each decision.
+        rule_permitted : ndarray of bool, shape (n, K), optional
+            Actions the clinical rules allow at each decision (all, if None).
+        groups : ndarray, shape (n,), optional
+            Patient of each decision: the unit of cross-validation folds and bootstrap resamples (episode
+            if None).
+        """
+        step, action, episode, X, reward, proba = self._checked_table(X, step, action, reward, episode, behaviour_proba)
+        rules = self._check_rules(rule_permitted, step.shape[0])
+        groups = episode if groups is None else np.asarray(groups)
+        fold_seed, model_seed, boot_seed = np.random.SeedSequence(self.random_state).spawn(3)
+        self._folds = patient_folds(groups, self.settings.cv_folds, fold_seed)
+        self._model_seed = int(model_seed.generate_state(1)[0])
+        self._ensemble_weights = None
+        if self.settings.pessimism is not None:
+            self._ensemble_weights = patient_bootstrap_weights(groups, self.settings.ensemble_size, boot_seed)
+        counts = np.zeros((self.horizon, self.n_actions), dtype=np.int64)
+        np.add.at(counts, (step, action), 1)
+        self.fitted_actions_ = counts > 0
+        self.n_features_in_ = X.shape[1]
+        self.alpha_ = []
+        learn = self._fit_pooled if self.settings.mode == "pooled" else self._fit_backward
+        with threadpool_limits(limits=1):  # many small tall-skinny solves: BLAS threads only contend
+            target, makers = learn(X, step, action, reward, next_row_index(episode), proba, rules)
+            self._set_coef()
+            self.oof_mse_ = self._out_of_fold(X, step, action, target, makers) if self.settings.oof_error else None
+        self._warn_unfitted(step)
+        choice, unconstrained, none_permitted = constrained_choice(
+            self._raw(X, step, scores=True), proba, self.settings.support_threshold, rules
+        )
+        self.n_changed_by_support_ = int(np.sum(choice != unconstrained))
+        self.n_without_permitted_action_ = int(np.sum(none_permitted))
+        return self
+
+    def _check_rules(self, rule_permitted, n_rows):
+        if rule_permitted is None:
+            return None
+        rules = np.asarray(rule_permitted)
+        if rules.shape != (n_rows, self.n_actions) or rules.dtype != bool:
+            raise UserInputError(
+                f"rule_permitted must be a boolean array of shape ({n_rows}, {self.n_actions}), got {rules.dtype} "
+                f"{rules.shape}; pass one column per action."
+            )
+        return rules
+
+    def _set_coef(self):
+        linear = [getattr(m, "full_", m) for m in self.models_ if m is not None]
+        if self.settings.q_model != "linear":
+            return
+        if self.settings.mode == "pooled":
+            self.coef_ = linear[0].coef_
+            return
+        p1 = self.n_features_in_ + 1
+        self.coef_ = np.stack(
+            [np.full((self.n_actions, p1), np.nan) if m is None else getattr(m, "full_", m).coef_ for m in self.models_]
+        )
+
+    # ------------------------------------------------------------------------------------------- using
+    def q_values(self, X, step):
+        """Fitted Q-values (n, K) of every action (full-sample models); NaN where an action is unseen at a step."""
+        return self._raw(*self._checked_rows(X, step), scores=False)
+
+    def scores(self, X, step):
+        """The scores actions are ranked by: Q, or Q − k·sd with pessimism."""
+        return self._raw(*self._checked_rows(X, step), scores=True)
+
+    def recommend(self, X, step, behaviour_proba, rule_permitted=None):
+        """The regime's action at each decision.
+
+        Research use only: not medical advice; decisions stay with licensed clinicians, under local law and
+        with ethics approval.
+
+        Parameters
+        ----------
+        X : ndarray, shape (n, p)
+        step : ndarray of int, shape (n,)
+        behaviour_proba : ndarray, shape (n, K)
+            Usual care's probabilities at these decisions (they decide which actions are supported).
+        rule_permitted : ndarray of bool, shape (n, K), optional
+            Actions the clinical rules allow at these decisions.
+
+        Returns
+        -------
+        ndarray of int, shape (n,)
+        """
+        score = self.scores(X, step)
+        behaviour_proba = check_proba(behaviour_proba, score.shape[0], self.n_actions, "behaviour_proba")
+        empty = np.flatnonzero(np.isnan(score).all(axis=1))
+        if empty.size:
+            raise UserInputError(
+                f"row {empty[0]} is at step {np.asarray(step)[empty[0]]}, which has no decisions in the training "
+                "data; the regime is undefined there."
+            )
+        rules = self._check_rules(rule_permitted, score.shape[0])
+        return constrained_choice(score, behaviour_proba, self.settings.support_threshold, rules)[0]
+
+    def recommend_proba(self, X, step, behaviour_proba, rule_permitted=None):
+        """One-hot (n, K) probabilities of the regime, e.g. as ``target_proba`` for off-policy evaluation."""
+        return np.eye(self.n_actions)[self.recommend(X, step, behaviour_proba, rule_permitted)]
+
+    def predicted_value(self, X0, behaviour_proba0, rule_permitted0=None):
+        """Mean fitted Q of the regime's choice over first decisions (in-sample; optimistic).
+
+        The maximisation makes this an upward-biased estimate of the learned regime's value; use the
+        off-policy estimators of :mod:`regimewise.evaluation.ope` or fitted-Q evaluation on fresh data to report a value.
+        """
+        step0 = np.zeros(np.shape(X0)[0], dtype=int)
+        choice = self.recommend(X0, step0, behaviour_proba0, rule_permitted0)
+        return float(np.mean(self.q_values(X0, step0)[np.arange(choice.size), choice]))

@@ -1,0 +1,204 @@
+"""Learning a support-constrained regime from validated decisions.
+
+:func:`fit_usual_care` fits the usual-care (behaviour) model of the protocol; :func:`learn_regime` fits it
+and then the fitted-Q iteration (Murphy 2005; Ernst, Geurts & Wehenkel 2005) with the support constraint
+(Fujimoto, Meger & Precup 2019). The resulting :class:`LearnedRegime` maps any table of states (with a
+``step`` column) to recommended action codes, so the same object is applied to the records, to new
+patients in the simulator, and in tests.
+
+Research use only: a learned regime is a hypothesis for study, not a treatment recommendation.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from regimewise.core.features import (
+    QFeatures,
+    action_codes,
+    episode_codes,
+    patient_clusters,
+)
+from regimewise.core.folds import patient_folds
+from regimewise.core.seeds import stream_ints
+from regimewise.errors import UserInputError
+from regimewise.protocol.model import Protocol
+from regimewise.regime.clinical_rules import ClinicalRuleSet
+from regimewise.regime.fqi import FittedQIteration, QLearningSettings
+from regimewise.usual_care.fitting import UsualCareModel, fit_usual_care
+
+# Side-by-side regimes, each adding one safeguard to the previous one.
+SAFEGUARDS = ("unconstrained", "support", "rules", "pessimistic")
+
+
+@dataclass(frozen=True)
+class LearnedRegime:
+    """A deterministic regime: the permitted action with the largest fitted Q-value."""
+
+    usual_care: UsualCareModel
+    q_features: QFeatures
+    fqi: FittedQIteration
+    action_labels: tuple[str, ...]
+    rules: ClinicalRuleSet | None = None
+
+    def q_values(self, frame: pd.DataFrame) -> np.ndarray:
+        return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
+
+    def recommend(self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None) -> np.ndarray:
+        """Recommended action codes; usual-care probabilities are estimated unless given."""
+        if behaviour_proba is None:
+            behaviour_proba = self.usual_care.predict_proba(frame)
+        steps = frame["step"].to_numpy(dtype=np.int64)
+        permitted = None if self.rules is None else self.rules.permitted(frame)
+        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba, permitted)
+
+    def __call__(self, frame: pd.DataFrame) -> np.ndarray:
+        return self.recommend(frame)
+
+
+def fit_q_learning(
+    decisions: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    protocol: Protocol,
+    features: QFeatures,
+    *,
+    safeguards: str = "pessimistic",
+    oof_error: bool = False,
+) -> FittedQIteration:
+    """Fitted-Q iteration on the decisions with the protocol's Q-model, learning mode and safeguards.
+
+    ``safeguards`` is one of :data:`SAFEGUARDS`: each level adds one safeguard to the previous one
+    (``"pessimistic"``, the default, applies every safeguard the protocol sets).
+    """
+    level = SAFEGUARDS.index(safeguards)
+    c, q = protocol.constraints, protocol.q_model
+    rules = ClinicalRuleSet.from_protocol(protocol) if level >= 2 else None
+    settings = QLearningSettings(
+        gamma=protocol.discount,
+        support_threshold=c.support_threshold if level >= 1 else 0.0,
+        alpha=q.ridge_alpha,
+        q_model=q.kind,
+        mode=q.learning_mode,
+        alpha_grid=tuple(q.ridge_grid),
+        cv_folds=q.cv_folds,
+        tolerance=q.tolerance,
+        max_iterations=q.max_iterations,
+        boosting_params=boosting_params(protocol),
+        pessimism=c.pessimism if level >= 3 and c.pessimism > 0 else None,
+        ensemble_size=c.ensemble_size,
+        oof_error=oof_error,
+    )
+    return FittedQIteration(
+        len(protocol.actions), protocol.horizon, settings, random_state=stream_ints(protocol.seed, "regime")[0]
+    ).fit(
+        features.transform(decisions),
+        decisions["step"].to_numpy(dtype=np.int64),
+        action_codes(decisions, protocol.action_labels),
+        decisions["reward"].to_numpy(dtype=float),
+        episode_codes(decisions),
+        behaviour_proba,
+        rule_permitted=None if rules is None else rules.permitted(decisions),
+        groups=pd.factorize(patient_clusters(decisions), sort=False)[0] if "patient_id" in decisions else None,
+    )
+
+
+def boosting_params(protocol: Protocol) -> dict:
+    """Keyword arguments of the gradient boosting Q-model from the protocol."""
+    q = protocol.q_model
+    return {
+        "max_iter": q.boosting_max_iter,
+        "max_leaf_nodes": q.boosting_max_leaf_nodes,
+        "learning_rate": q.boosting_learning_rate,
+        "min_samples_leaf": q.boosting_min_samples_leaf,
+    }
+
+
+def regime_variants(
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures
+) -> dict[str, FittedQIteration]:
+    """The side-by-side regimes: unconstrained, support-, rule-constrained and (if k > 0) pessimistic.
+
+    Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
+    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models.
+    """
+    names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
+    return {
+        name: fit_q_learning(
+            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1]
+        )
+        for name in names
+    }
+
+
+def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
+    """Fit usual care, then the constrained regime, on validated decisions sorted by episode and step."""
+    usual_care = fit_usual_care(decisions, protocol)
+    proba = usual_care.record_proba
+    features = QFeatures.from_protocol(usual_care.scaler, protocol)
+    fqi = fit_q_learning(decisions, proba, protocol, features)
+    return LearnedRegime(usual_care, features, fqi, protocol.action_labels, ClinicalRuleSet.from_protocol(protocol))
+
+
+def crossfit_folds(decisions: pd.DataFrame, protocol: Protocol) -> np.ndarray | None:
+    """Fold of every row for the cross-fitted evaluation (patients kept whole), or None with one fold.
+
+    Seeded by stream ``cross_fit`` of :mod:`regimewise.core.seeds`, so the evaluate stage and every bootstrap
+    replicate find the folds again from the records and the protocol alone.
+    """
+    k = protocol.evaluation.cross_fit_folds
+    if k == 1:
+        return None
+    patients = patient_clusters(decisions)
+    if pd.unique(patients).size < 2 * k:
+        raise UserInputError(
+            f"evaluation.cross_fit_folds is {k} but the records hold {pd.unique(patients).size} patients; "
+            f"lower it (at least 2 patients per fold are needed)"
+        )
+    seed = stream_ints(protocol.seed, "cross_fit")[0]
+    return patient_folds(patients, k, seed)
+
+
+def cross_fitted_recommendations(
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol
+) -> np.ndarray:
+    """Action codes of the learned regime as evaluated: each patient's records scored by a regime learned without them.
+
+    Patients are dealt into ``evaluation.cross_fit_folds`` folds (:func:`regimewise.core.folds.patient_folds`,
+    seeded by stream ``cross_fit`` of :mod:`regimewise.core.seeds`); the rows of fold k get the recommendations
+    of :func:`learn_regime` fitted on the other folds, with that regime's own usual-care model for the support
+    constraint, as for a new patient. Evaluating a regime on the records it was learned from is optimistic: it
+    was chosen because it looks good on them. The cross-fitted estimate targets the mean true value of the fold
+    regimes, a data-adaptive parameter (Hubbard, Kherad-Pajouh & van der Laan 2016, Int J Biostat 12(1):3-19;
+    cross-validated value of a learned rule: van der Laan & Luedtke 2015, J Causal Inference 3(1):61-95); each
+    fold regime learns from (K-1)/K of the patients, so the estimate leans conservative for the regime learned
+    from all of them. With one fold, the full-data regime's in-sample recommendations are returned. The
+    evaluation must fit its own outcome models within each fold too (``evaluate.evaluate_all(learned_folds=...)``):
+    a model fitted across folds has seen the records that chose the other folds' regimes.
+    (Both references recalled from memory; neither is in the project's METHODS.md.)
+    """
+    folds = crossfit_folds(decisions, protocol)
+    if folds is None:
+        return learn_regime(decisions, protocol).recommend(decisions, behaviour_proba)
+    recommended = np.empty(len(decisions), dtype=np.int64)
+    for held_out, learned in fold_regimes(decisions, protocol, folds):
+        recommended[held_out] = learned.recommend(decisions.loc[held_out].reset_index(drop=True))
+    return recommended
+
+
+def fold_regimes(
+    decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray
+) -> list[tuple[np.ndarray, LearnedRegime]]:
+    """For each fold of :func:`crossfit_folds`: its rows (boolean mask) and the regime learned from the other folds."""
+    return [
+        (folds == fold, learn_regime(decisions.loc[folds != fold].reset_index(drop=True), protocol))
+        for fold in np.unique(folds)
+    ]
+
+
+def record_proba(learned, decisions: pd.DataFrame) -> np.ndarray:
+    """Usual care's probabilities at the training records, as the regime stage uses them (cross-fitted if so)."""
+    fitted = getattr(learned.usual_care, "record_proba", None)
+    return learned.usual_care.predict_proba(decisions) if fitted is None else fitted

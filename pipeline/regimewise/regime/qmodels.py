@@ -1,0 +1,262 @@
+"""Per-action Q-models and the backward induction they share: least squares with a ridge penalty (optionally
+chosen by cross-validation with folds by patient) or gradient boosting, one model per decision step.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import scipy.linalg
+from sklearn.ensemble import HistGradientBoostingRegressor
+from sklearn.exceptions import NotFittedError
+
+from regimewise.core.arrays import (
+    check_codes,
+    check_finite,
+    check_layout,
+    check_proba,
+    next_row_index,
+)
+from regimewise.errors import StatisticalWarning, UserInputError
+
+
+def _design(X):
+    """Design matrix [1, X] of the linear Q-model."""
+    return np.hstack([np.ones((X.shape[0], 1)), X])
+
+
+WELL_CONDITIONED = 1e8  # condition number of the Gram matrix below which the normal equations are used
+
+
+def _least_squares(design, y, alpha):
+    """Least squares with a ridge penalty ``alpha`` on every coefficient but the intercept.
+
+    A well-conditioned problem is solved by the normal equations (Cholesky; fast, and equal to the SVD
+    solution to rounding); a rank-deficient or ill-conditioned one, such as a saturated design with an
+    intercept, by the minimum-norm SVD solution (``numpy.linalg.lstsq``).
+    """
+    gram = design.T @ design
+    if alpha > 0:
+        gram[1:, 1:] += alpha * np.eye(design.shape[1] - 1)
+    rhs = design.T @ y
+    if np.linalg.cond(gram) < WELL_CONDITIONED:
+        return scipy.linalg.solve(gram, rhs, assume_a="pos")
+    if alpha > 0:
+        penalty = np.sqrt(alpha) * np.eye(design.shape[1])[1:]
+        design = np.vstack([design, penalty])
+        y = np.concatenate([y, np.zeros(penalty.shape[0])])
+    return np.linalg.lstsq(design, y, rcond=None)[0]
+
+
+def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value):
+    """Coefficients (H, K, p + 1) of the per-step, per-action linear Q-models; NaN where an action has no rows.
+
+    ``next_value(q_next, rows)`` returns the value of the next state for the next-step rows ``rows``, given
+    their Q-values ``q_next`` (NaN for actions without a fitted model).
+    """
+    design = _design(X)
+    coef = np.full((horizon, n_actions, design.shape[1]), np.nan)
+    target = reward.copy()
+    for t in range(horizon - 1, -1, -1):
+        rows = np.flatnonzero(step == t)
+        later = next_row[rows]
+        cont, later = rows[later >= 0], later[later >= 0]
+        if cont.size:
+            q_next = design[later] @ coef[t + 1].T
+            target[cont] = reward[cont] + gamma * next_value(q_next, later)
+        for a in range(n_actions):
+            cell = rows[action[rows] == a]
+            if cell.size:
+                coef[t, a] = _least_squares(design[cell], target[cell], alpha)
+    return coef
+
+
+def policy_average(q, proba):
+    """Σ_a π(a|s) Q(s, a) per row; actions the policy never takes are skipped even where Q is undefined."""
+    undefined = (proba > 0) & np.isnan(q)
+    if undefined.any():
+        row, a = np.argwhere(undefined)[0]
+        raise UserInputError(
+            f"the evaluated regime gives action {a} probability {proba[row, a]:.3g} at a decision where that "
+            "action never occurs in the data at that step, so its value cannot be fitted; restrict the regime "
+            "to actions seen at every step."
+        )
+    return np.where(proba > 0, proba * np.nan_to_num(q), 0.0).sum(axis=1)
+
+
+class BackwardQModel:
+    """Parameter checks, fitting and prediction shared by fitted-Q iteration and fitted-Q evaluation."""
+
+    _proba_name = "proba"
+
+    def _check_params(self):
+        if not (isinstance(self.n_actions, (int, np.integer)) and self.n_actions >= 1):
+            raise UserInputError(f"n_actions must be a positive integer, got {self.n_actions!r}.")
+        if not (isinstance(self.horizon, (int, np.integer)) and self.horizon >= 1):
+            raise UserInputError(f"horizon must be a positive integer, got {self.horizon!r}.")
+        if not 0.0 <= self.gamma <= 1.0:
+            raise UserInputError(f"gamma must lie in [0, 1], got {self.gamma!r}.")
+        if isinstance(self.alpha, str) and self.alpha == "cv" and hasattr(self, "alpha_grid"):
+            return
+        if isinstance(self.alpha, str) or not (np.isfinite(self.alpha) and self.alpha >= 0):
+            raise UserInputError(f"alpha (ridge penalty) must be >= 0 (or 'cv' when learning), got {self.alpha!r}.")
+
+    def _next_value(self, q_next, proba_next):
+        raise NotImplementedError
+
+    def _checked_table(self, X, step, action, reward, episode, proba):
+        """Check the parameters and the decision table; return step, action, episode, X, reward, proba."""
+        self._check_params()
+        step, action, episode = check_layout(step, action, episode, self.horizon, self.n_actions)
+        X = check_finite(X, "X", 2)
+        reward = check_finite(reward, "reward", 1)
+        if not X.shape[0] == reward.shape[0] == step.shape[0]:
+            raise UserInputError(
+                f"X has {X.shape[0]} rows and reward {reward.shape[0]} but there are {step.shape[0]} decisions; "
+                "pass one row per decision."
+            )
+        return step, action, episode, X, reward, check_proba(proba, step.shape[0], self.n_actions, self._proba_name)
+
+    def _fit(self, X, step, action, reward, episode, proba):
+        step, action, episode, X, reward, proba = self._checked_table(X, step, action, reward, episode, proba)
+        coef = _backward_induction(
+            X,
+            step,
+            action,
+            reward,
+            next_row_index(episode),
+            horizon=self.horizon,
+            n_actions=self.n_actions,
+            gamma=self.gamma,
+            alpha=self.alpha,
+            next_value=lambda q_next, rows: self._next_value(q_next, proba[rows]),
+        )
+        self.coef_ = coef
+        self.fitted_actions_ = ~np.isnan(coef[..., 0])
+        self.n_features_in_ = X.shape[1]
+        self._warn_unfitted(step)
+        return step, X, proba
+
+    def _warn_unfitted(self, step):
+        seen = np.bincount(step, minlength=self.horizon) > 0
+        missing = np.argwhere(seen[:, None] & ~self.fitted_actions_)
+        if missing.size:
+            cells = ", ".join(f"step {t} action {a}" for t, a in missing)
+            warnings.warn(
+                f"no decisions with {cells}: their Q is undefined there and they are never recommended.",
+                StatisticalWarning,
+                stacklevel=4,
+            )
+
+    _fitted_attribute = "coef_"
+
+    def _checked_rows(self, X, step):
+        """Check that the model is fitted and that X and step describe decisions it can score."""
+        if not hasattr(self, self._fitted_attribute):
+            raise NotFittedError(f"this {type(self).__name__} is not fitted yet; call fit(...) first.")
+        X = check_finite(X, "X", 2)
+        step = check_codes(step, "step", self.horizon)
+        if X.shape != (step.shape[0], self.n_features_in_):
+            raise UserInputError(
+                f"X has shape {X.shape} but {step.shape[0]} decisions with the {self.n_features_in_} features "
+                f"used in fit need ({step.shape[0]}, {self.n_features_in_})."
+            )
+        return X, step
+
+    def q_values(self, X, step):
+        """Fitted Q-values of every action at each decision.
+
+        Parameters
+        ----------
+        X : ndarray, shape (n, p)
+        step : ndarray of int, shape (n,)
+
+        Returns
+        -------
+        ndarray, shape (n, K)
+            NaN for an action that never occurs at that step in the training data.
+        """
+        X, step = self._checked_rows(X, step)
+        return np.einsum("nkp,np->nk", self.coef_[step], _design(X))
+
+
+class LinearActionModel:
+    """Linear Q-model in [1, X] with one coefficient vector per action (action-by-state interactions).
+
+    Fitted by (weighted) minimum-norm least squares with a ridge penalty ``alpha`` on every coefficient but
+    the intercept. Actions without rows (or with zero total weight) get NaN coefficients and Q.
+    """
+
+    def __init__(self, n_actions, alpha=0.0):
+        self.n_actions = n_actions
+        self.alpha = alpha
+
+    def fit(self, X, action, y, weight=None):
+        design = _design(X)
+        if weight is not None:
+            root = np.sqrt(weight)
+            design, y = design * root[:, None], y * root
+        self.coef_ = np.full((self.n_actions, design.shape[1]), np.nan)
+        for a in range(self.n_actions):
+            cell = (action == a) if weight is None else (action == a) & (weight > 0)
+            if cell.any():
+                self.coef_[a] = _least_squares(design[cell], y[cell], self.alpha)
+        return self
+
+    def predict(self, X):
+        return _design(X) @ self.coef_.T
+
+
+class BoostedActionModel:
+    """Histogram gradient boosting regression of the target on the state and the one-hot action.
+
+    scikit-learn's ``HistGradientBoostingRegressor`` (Ke et al. 2017, LightGBM-style binning; Friedman 2001)
+    with early stopping off, so a fit depends only on its inputs and ``random_state``. Q(s, a) is the
+    prediction at the state with action a switched on; NaN for actions without rows.
+    """
+
+    def __init__(self, n_actions, params=None, random_state=None):
+        self.n_actions = n_actions
+        self.params = params
+        self.random_state = random_state
+
+    def fit(self, X, action, y, weight=None):
+        present = action if weight is None else action[weight > 0]
+        self.seen_ = np.bincount(present, minlength=self.n_actions) > 0
+        self.model_ = HistGradientBoostingRegressor(
+            early_stopping=False, random_state=self.random_state, **(self.params or {})
+        ).fit(np.hstack([X, np.eye(self.n_actions)[action]]), y, sample_weight=weight)
+        return self
+
+    def predict(self, X):
+        n = X.shape[0]
+        q = np.column_stack(
+            [
+                self.model_.predict(np.hstack([X, np.tile(np.eye(self.n_actions)[a], (n, 1))]))
+                for a in range(self.n_actions)
+            ]
+        )
+        return np.where(self.seen_, q, np.nan)
+
+
+def out_of_fold_errors(make_model, X, action, y, folds):
+    """Squared error of each row's taken-action Q predicted by a model fitted without the row's fold."""
+    error = np.full(y.shape[0], np.nan)
+    for f in np.unique(folds):
+        test = folds == f
+        if test.all():
+            continue
+        model = make_model().fit(X[~test], action[~test], y[~test], None)
+        q = model.predict(X[test])[np.arange(test.sum()), action[test]]
+        error[test] = (q - y[test]) ** 2
+    return error
+
+
+def choose_ridge_alpha(n_actions, grid, X, action, y, folds):
+    """Ridge penalty from ``grid`` with the smallest out-of-fold mean squared error (first on ties)."""
+    scores = [
+        np.nanmean(out_of_fold_errors(lambda a=alpha: LinearActionModel(n_actions, a), X, action, y, folds))
+        for alpha in grid
+    ]
+    return float(grid[int(np.nanargmin(scores))])

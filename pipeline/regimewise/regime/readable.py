@@ -1,0 +1,186 @@
+"""A readable summary of a learned regime: a shallow decision tree distilled from its recommendations.
+
+A classification tree of depth at most 3 (Breiman et al. 1984; scikit-learn's ``DecisionTreeClassifier``) is
+fitted to the learned regime's recommended actions at the observed decisions, on the raw state values, so its
+splits read in clinical units. Its fidelity is the share of decisions where the tree's action equals the
+regime's (in-sample, and out-of-fold with folds by patient). Each leaf becomes one rule in plain words. A table
+gives the most common recommendation across bins of the two states the tree relies on most (impurity
+importance). Distilling a policy into a tree for interpretation follows the model-extraction idea of Bastani,
+Kim & Bastani (2017).
+
+The tree is a summary only: the learned regime (not the tree) is what was evaluated. Research use only, not
+medical advice; decisions stay with licensed clinicians under local law and ethics approval.
+
+References
+----------
+Breiman, L., Friedman, J., Olshen, R. & Stone, C. (1984). Classification and Regression Trees. Wadsworth.
+Bastani, O., Kim, C. & Bastani, H. (2017). Interpreting blackbox models via model extraction. arXiv:1705.08504.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import numpy as np
+from sklearn.tree import DecisionTreeClassifier
+
+from regimewise.cautions import READABLE_TREE_NOTE
+from regimewise.errors import UserInputError
+
+
+@dataclass(frozen=True)
+class TreeRule:
+    """One leaf of the distilled tree: its conditions in words, its action, how many decisions, agreement."""
+
+    conditions: tuple[str, ...]
+    action: str
+    decisions: int
+    agreement: float
+
+    @property
+    def text(self) -> str:
+        when = " and ".join(self.conditions) if self.conditions else "always"
+        return f"if {when}: {self.action}"
+
+
+@dataclass(frozen=True)
+class ReadableRegime:
+    """The distilled tree's rules, fidelity, state importances and the two-state table."""
+
+    max_depth: int
+    fidelity: float
+    fidelity_out_of_fold: float | None
+    rules: tuple[TreeRule, ...]
+    importance: dict
+    table: dict
+    note: str = READABLE_TREE_NOTE
+
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["rules"] = [dict(asdict(r), text=r.text) for r in self.rules]
+        return out
+
+
+def _condition(name, threshold, left, binary):
+    if binary:
+        return f"{name} = {0 if left else 1}"
+    return f"{name} {'≤' if left else '>'} {threshold:.6g}"
+
+
+def tree_rules(tree, state_names, binary, action_labels, X, target) -> tuple[TreeRule, ...]:
+    """Every leaf of a fitted tree as a :class:`TreeRule` (depth-first, left branch first)."""
+    t = tree.tree_
+    leaf_of = tree.apply(X)
+    predicted = tree.predict(X)
+    rules = []
+
+    def walk(node, conditions):
+        if t.children_left[node] == -1:
+            rows = leaf_of == node
+            action = int(tree.classes_[np.argmax(t.value[node][0])])
+            agreement = float(np.mean(target[rows] == predicted[rows])) if rows.any() else float("nan")
+            rules.append(TreeRule(tuple(conditions), action_labels[action], int(rows.sum()), agreement))
+            return
+        f, thr = t.feature[node], t.threshold[node]
+        walk(t.children_left[node], [*conditions, _condition(state_names[f], thr, True, binary[f])])
+        walk(t.children_right[node], [*conditions, _condition(state_names[f], thr, False, binary[f])])
+
+    walk(0, [])
+    return tuple(rules)
+
+
+def _bins(values, n_bins):
+    """Bin edges: the distinct values if there are few, else quantile edges (distinct)."""
+    distinct = np.unique(values)
+    if distinct.size <= n_bins + 2:
+        return distinct, True
+    edges = np.unique(np.quantile(values, np.linspace(0, 1, n_bins + 1)))
+    return edges, False
+
+
+def _bin_labels(name, edges, discrete):
+    if discrete:
+        return [f"{name} = {v:g}" for v in edges]
+    return [
+        f"{name} {'≤' if i == 0 else '>'} {edges[1] if i == 0 else edges[i]:.4g}"
+        + (f" and ≤ {edges[i + 1]:.4g}" if 0 < i < len(edges) - 2 else "")
+        for i in range(len(edges) - 1)
+    ]
+
+
+def _bin_index(values, edges, discrete):
+    if discrete:
+        return np.searchsorted(edges, values)
+    return np.clip(np.searchsorted(edges[1:-1], values, side="left"), 0, len(edges) - 2)
+
+
+def two_state_table(frame, recommended, first, second, action_labels, n_bins=4) -> dict:
+    """Most common recommended action (with its share and count) across bins of two states."""
+    axes = []
+    for name in (first, second):
+        values = frame[name].to_numpy(dtype=float)
+        edges, discrete = _bins(values, n_bins)
+        axes.append((name, _bin_labels(name, edges, discrete), _bin_index(values, edges, discrete)))
+    (n1, labels1, idx1), (n2, labels2, idx2) = axes
+    cells = []
+    for i in range(len(labels1)):
+        row = []
+        for j in range(len(labels2)):
+            rows = (idx1 == i) & (idx2 == j)
+            counts = np.bincount(recommended[rows], minlength=len(action_labels))
+            top = int(counts.argmax())
+            row.append(
+                {
+                    "decisions": int(rows.sum()),
+                    "action": action_labels[top] if rows.any() else None,
+                    "share": float(counts[top] / rows.sum()) if rows.any() else None,
+                }
+            )
+        cells.append(row)
+    return {"rows_state": n1, "columns_state": n2, "row_bins": labels1, "column_bins": labels2, "cells": cells}
+
+
+def distill_regime(
+    frame, recommended, states, action_labels, *, max_depth=3, groups=None, n_folds=5, random_state=0
+) -> ReadableRegime:
+    """Distil a regime's recommendations into a shallow tree and a two-state table.
+
+    Parameters
+    ----------
+    frame : DataFrame with the state columns, one row per decision
+    recommended : ndarray of int, shape (n,)
+        The learned regime's action codes at those decisions.
+    states : sequence of protocol StateVariable (name and kind)
+    action_labels : tuple of str
+    max_depth : int, default 3
+    groups : ndarray, optional
+        Patient of each decision, for the out-of-fold fidelity (skipped if None).
+    n_folds : int, default 5
+    random_state : int
+    """
+    if not 1 <= max_depth <= 3:
+        raise UserInputError(f"max_depth must be 1, 2 or 3 for a readable tree, got {max_depth!r}.")
+    names = [s.name for s in states]
+    binary = [s.kind == "binary" for s in states]
+    X = frame[names].to_numpy(dtype=float)
+    recommended = np.asarray(recommended, dtype=np.int64)
+    make = lambda: DecisionTreeClassifier(max_depth=max_depth, random_state=random_state)  # noqa: E731
+    tree = make().fit(X, recommended)
+    fidelity = float(np.mean(tree.predict(X) == recommended))
+    oof = None
+    if groups is not None:
+        codes = np.unique(np.asarray(groups), return_inverse=True)[1]
+        fold = np.random.default_rng(random_state).permutation(int(codes.max()) + 1)[codes] % n_folds
+        agree = np.zeros(len(recommended), dtype=bool)
+        for f in range(n_folds):
+            test = fold == f
+            if test.any() and not test.all():
+                agree[test] = make().fit(X[~test], recommended[~test]).predict(X[test]) == recommended[test]
+        oof = float(agree.mean())
+    importance = {n: float(v) for n, v in zip(names, tree.feature_importances_)}
+    order = sorted(range(len(names)), key=lambda i: (-tree.feature_importances_[i], i))
+    table = (
+        two_state_table(frame, recommended, names[order[0]], names[order[1]], action_labels) if len(names) > 1 else {}
+    )
+    rules = tree_rules(tree, names, binary, action_labels, X, recommended)
+    return ReadableRegime(max_depth, fidelity, oof, rules, importance, table)

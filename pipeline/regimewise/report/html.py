@@ -1,0 +1,71 @@
+"""report.html: one self-contained page rendered from the stage outputs with the templates in ``templates/``.
+
+The report opens with the cautions, then the protocol, the validation counts, the usual-care model, the
+learned regime in words, the value table and the provenance. Figures are inline SVG (no external assets).
+Counts from 1 to ``report.min_cell_count - 1`` are shown as ``<min_cell_count``.
+"""
+
+from __future__ import annotations
+
+from importlib import resources
+
+import jinja2
+
+from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.report.figures import (
+    actions_by_step_figure,
+    section_figures,
+    sensitivity_figure,
+    sweep_figure,
+    value_figure,
+    weight_histogram_figure,
+)
+
+
+# ---------------------------------------------------------------------------------------------- html
+def cell_count(n, threshold):
+    """Small-cell rule: counts 1..threshold-1 are shown as '<threshold' (common practice, no source)."""
+    if n is None:
+        return "—"
+    n = int(n)
+    return f"<{threshold}" if 0 < n < threshold else f"{n:,}"
+
+
+def _number(x, digits=3):
+    return "—" if x is None else f"{x:,.{digits}f}"
+
+
+def render_html(p, parts, prov, headline) -> str:
+    environment = jinja2.Environment(
+        loader=jinja2.FunctionLoader(
+            lambda name: resources.files("regimewise.report").joinpath("templates", name).read_text()
+        ),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    environment.filters["cell"] = lambda n: cell_count(n, p.report.min_cell_count)
+    environment.filters["num"] = _number
+    environment.filters["pct"] = lambda x: "—" if x is None else f"{100 * x:.1f}%"
+    template = environment.get_template("report.html")
+    regime = parts["regime"]
+    return template.render(
+        p=p,
+        cautions=REPORT_CAUTIONS,
+        validation=parts["validation"],
+        behaviour=parts["behaviour"],
+        regime=regime,
+        values=parts["values"],
+        prov=prov,
+        summary=headline,
+        actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
+        value_figure=value_figure(parts["values"]["regimes"], p.evaluation.estimators),
+        weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
+        cohort=parts.get("cohort"),
+        usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
+        sensitivity=parts.get("sensitivity"),
+        sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
+        sweep=parts.get("sweep"),
+        sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
+    )

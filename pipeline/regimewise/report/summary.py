@@ -1,0 +1,191 @@
+"""summary.json: every headline number of a run, keyed as the README documents, and the headline sentences."""
+
+from __future__ import annotations
+
+from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.evaluation.values import headline_estimator
+
+
+# ---------------------------------------------------------------------------------------------- report helpers
+def usual_care_summary(behaviour, cohort) -> dict:
+    """The usual-care, overlap and balance numbers that summary.json carries (documented in the README)."""
+    out = {
+        "kind": behaviour["model"]["kind"],
+        "brier": behaviour["brier"],
+        "folds": behaviour["cross_fitting"]["folds"],
+        "probability_floor": behaviour["probability_floor"],
+        "inverse_probability_weights_truncated": behaviour["inverse_probability_weights_truncated"],
+        "by_step": {
+            step: {
+                "auc": d["auc"],
+                "brier": d["brier"],
+                "ess": d["weights"]["before_truncation"]["ess"],
+                "ess_truncated": d["weights"]["after_truncation"]["ess"],
+                "share_taken_below_support": d["share_taken_below_support"],
+            }
+            for step, d in behaviour["by_step"].items()
+        },
+    }
+    if cohort is not None:
+        for step, d in cohort["overlap_by_step"].items():
+            balance = cohort["balance_by_step"][step]
+            out["by_step"][step].update(
+                overlap=d["verdict"],
+                share_recommended_below_support=d["share_recommended_below_support"],
+                states_imbalanced_unweighted=balance["n_flagged_unweighted"],
+                states_imbalanced_weighted=balance["n_flagged_weighted"],
+            )
+        out["overlap_rule"] = next(iter(cohort["overlap_by_step"].values()))["rule"]
+        out["baseline_states_imbalanced"] = cohort["baseline"]["n_flagged"]
+    return out
+
+
+SUMMARY_SCHEMA_VERSION = "1"
+
+
+# ---------------------------------------------------------------------------------------------- summary.json
+def build_summary(p, parts, prov) -> dict:
+    """Every headline number, keyed as documented in the README (section 'summary.json')."""
+    values = parts["values"]
+    return {
+        "schema_version": SUMMARY_SCHEMA_VERSION,
+        "study": {"title": p.study.title, "version": p.study.version, "run_name": p.study.run_name},
+        "caution": REPORT_CAUTIONS[0],
+        "cohort": {
+            "episodes": parts["validation"]["episodes"],
+            "patients": parts["validation"]["patients"],
+            "decisions": parts["validation"]["rows_kept"],
+        },
+        "validation": {
+            "rows_read": parts["validation"]["rows_read"],
+            "decisions_dropped_missing": parts["validation"].get("rows_dropped_missing", 0),
+            "episodes_dropped_missing": parts["validation"].get("episodes_dropped_missing", 0),
+            "values_filled_missing": sum(
+                m.get("filled", 0) for m in parts["validation"].get("missing_data", {}).values()
+            ),
+            "acknowledged_columns": [a["column"] for a in parts["validation"].get("acknowledged_columns", [])],
+        },
+        "usual_care_model": {
+            "auc": parts["behaviour"]["auc"],
+            "converged": parts["behaviour"]["model"]["converged"],
+            "inverse_probability_weights": parts["behaviour"]["inverse_probability_weights"],
+            **usual_care_summary(parts["behaviour"], parts.get("cohort")),
+        },
+        "regime": {
+            "support_threshold": parts["regime"]["constraints"]["support_threshold"],
+            "decisions_changed_by_support": parts["regime"]["decisions_changed_by_support"],
+            "share_differs_from_taken": parts["regime"]["share_differs_from_taken"],
+            "cross_fit": parts["regime"]["cross_fit"],
+            **safeguard_headlines(parts["regime"], values),
+        },
+        "values": {r["name"]: r["estimates"] for r in values["regimes"]},
+        "usual_care_observed": values["usual_care_observed"],
+        "contrasts": values["contrasts"],
+        "minimum_reliable_ess": values["minimum_reliable_ess"],
+        "bootstrap": values["bootstrap"],
+        "headline": headline_sentence(p, values),
+        "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
+        "sweep": sweep_headlines(parts.get("sweep")),
+        "protocol_sha256": prov["protocol"]["sha256"],
+        "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
+        "root_seed": prov["root_seed"],
+    }
+
+
+def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
+    """Γ*, the bounds table, E-values and the plain sentence (the full Γ curve stays in sensitivity.json)."""
+    if sensitivity is None:
+        return None
+    keys = (
+        "estimator",
+        "ess",
+        "low_ess",
+        "confounded_decisions",
+        "tipping_point",
+        "gamma_max",
+        "precision",
+        "table",
+        "e_values",
+        "sentence",
+    )
+    return {key: sensitivity[key] for key in keys}
+
+
+def sweep_headlines(sweep: dict | None) -> dict | None:
+    """The specification sweep's sorted table (without the per-Γ bounds, which stay in sweep.json)."""
+    if sweep is None:
+        return None
+    keys = (
+        "estimator",
+        "level",
+        "replicates",
+        "gammas",
+        "gamma_max",
+        "axes",
+        "prespecified",
+        "prespecified_in_grid",
+        "n_specifications",
+        "intervals_above_zero",
+        "intervals_above_zero_low_ess",
+        "sentence",
+    )
+    row_keys = ("id", "prespecified", "settings", "difference", "low", "high", "ess", "low_ess", "tipping_point")
+    return {
+        **{key: sweep[key] for key in keys},
+        "specifications": [{key: row[key] for key in row_keys} for row in sweep["specifications"]],
+    }
+
+
+def safeguard_headlines(regime: dict, values: dict) -> dict:
+    """Side-by-side regimes (what each safeguard changed, rule violations, values) and the readable tree's fidelity."""
+    if "side_by_side" not in regime:
+        return {}
+    estimates = {r["name"]: r["estimates"] for r in values.get("side_by_side", [])}
+    return {
+        "decisions_without_permitted_action": regime["decisions_without_permitted_action"],
+        "pessimism": regime["constraints"]["pessimism"],
+        "side_by_side": {
+            r["name"]: {
+                "share_differs_from_taken": r["share_differs_from_taken"],
+                "decisions_changed_by_this_safeguard": r["decisions_changed_by_this_safeguard"],
+                "rule_violations": r["rule_violations"],
+                "values": {est: e["value"] for est, e in estimates.get(r["name"], {}).items()},
+            }
+            for r in regime["side_by_side"]
+        },
+        "readable_tree_fidelity": regime["readable"]["fidelity"],
+    }
+
+
+def headline_sentence(p, values) -> str:
+    """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
+    contrasts = {c["estimator"]: c for c in values["contrasts"]}
+    name = headline_estimator(p)
+    contrast = contrasts[name]
+    ess = values["regimes"][0]["estimates"][name]["ess"]
+    if contrast["difference"] is None:
+        return (
+            f"The {name} estimate of the learned regime's value is undefined: no episode in the records follows it "
+            "far enough for the weights to say anything."
+        )
+    direction = "higher" if contrast["difference"] > 0 else "lower"
+    sentence = (
+        f"By {name}, the learned regime's expected total reward per episode is {abs(contrast['difference']):.2f} "
+        f"{direction} than usual care's{_interval_clause(contrast, values.get('bootstrap'))}, resting on an "
+        f"effective sample of {ess:.1f} episodes"
+    )
+    if contrast["low_ess"]:
+        return sentence + (
+            f", below the {values['minimum_reliable_ess']:.0f} needed to trust it: the data cannot confirm this "
+            "difference; a higher support threshold keeps the regime closer to usual care and better supported."
+        )
+    return sentence + "."
+
+
+def _interval_clause(contrast, bootstrap) -> str:
+    """' (95% interval −1.20 to 3.40 for learned minus usual care; it includes no difference)' or ''."""
+    if contrast.get("low") is None or not bootstrap:
+        return ""
+    low, high = contrast["low"], contrast["high"]
+    covers = " — it includes no difference" if low <= 0 <= high else ""
+    return f" ({100 * bootstrap['level']:.0f}% bootstrap interval for the difference {low:.2f} to {high:.2f}{covers})"

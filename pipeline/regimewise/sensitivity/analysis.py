@@ -1,0 +1,197 @@
+"""Sensitivity of a regime's value to unmeasured confounding.
+
+Marginal sensitivity model (Tan 2006): a hidden factor may change the odds that usual care took the action it
+took by at most a factor Γ ≥ 1. With estimated probability e of the action taken, the true inverse probability
+lies in ``[1 + (1/e − 1)/Γ, 1 + Γ(1/e − 1)]``. For a regime's trajectory weight the per-decision bounds multiply
+over the decisions allowed to be confounded; decisions outside that set keep their estimated weight.
+
+The self-normalised (weighted) importance-sampling value Σ W_i G_i / Σ W_i is then bounded by a linear-fractional
+program over the box W_i ∈ [A_i, B_i]. Its optimum puts the upper weight on the episodes with the largest
+returns and the lower weight on the rest, for one threshold found by sorting (Zhao, Small & Bhattacharya 2019,
+JRSS-B 81:735, Proposition 2 and its algorithm). Dorn & Guo (2022, JASA) give sharper bounds that also use the
+outcome model; they are not implemented here.
+
+E-values follow VanderWeele & Ding (2017, Ann Intern Med 167:268).
+
+References
+----------
+Tan, Z. (2006). A distributional approach for causal inference using propensity scores. JASA 101:1619.
+Zhao, Q., Small, D. S. & Bhattacharya, B. B. (2019). Sensitivity analysis for inverse probability weighting
+estimators via the percentile bootstrap. JRSS-B 81:735-761.
+Namkoong, H., Keramati, R., Yadlowsky, S. & Brunskill, E. (2020). Off-policy policy evaluation for sequential
+decisions under unobserved confounding. NeurIPS.
+VanderWeele, T. J. & Ding, P. (2017). Sensitivity analysis in observational research: introducing the E-value.
+Ann Intern Med 167:268-274.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from regimewise.core.arrays import finite_or_none
+from regimewise.core.features import action_codes, episode_codes
+from regimewise.core.quantiles import bootstrap_quantile
+from regimewise.core.weighting import kish_ess
+from regimewise.sensitivity.bounds import analysis_gammas, bounds_curve, tipping_point
+from regimewise.sensitivity.evalues import (
+    e_value,
+    e_value_interval,
+    mean_difference_to_risk_ratio,
+)
+
+
+# ---------------------------------------------------------------------------------------------- on the records
+def confounded_mask(step: np.ndarray, spec) -> np.ndarray:
+    """Decisions at which the protocol lets a hidden confounder act (all, the first, or listed steps)."""
+    if spec.confounded_decisions == "all":
+        return np.ones(step.shape, dtype=bool)
+    if spec.confounded_decisions == "first":
+        return step == 0
+    return np.isin(step, spec.confounded_decisions)
+
+
+def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None) -> dict:
+    """Bounds of the learned regime's weighted-IS value over the Γ grid, and usual care's observed mean return.
+
+    Usual care's value is the observed mean return, which hidden confounding of the choices cannot change;
+    so the contrast's bounds are the regime's bounds minus that mean. ``gammas`` defaults to the protocol's
+    analysis grid (:func:`analysis_gammas`).
+    """
+
+    spec = protocol.sensitivity
+    codes = action_codes(decisions, protocol.action_labels)
+    episode = episode_codes(decisions)
+    step = decisions["step"].to_numpy(dtype=np.int64)
+    reward = decisions["reward"].to_numpy(dtype=float) * protocol.discount**step
+    returns = np.bincount(episode, weights=reward, minlength=int(episode.max()) + 1)
+    curve = bounds_curve(
+        returns,
+        behaviour_proba[np.arange(len(codes)), codes],
+        np.asarray(recommended) == codes,
+        episode,
+        analysis_gammas(spec) if gammas is None else np.asarray(gammas, dtype=float),
+        confounded_mask(step, spec),
+    )
+    follows_all = np.bincount(episode, weights=np.asarray(recommended) != codes, minlength=returns.size) == 0
+    weights = np.where(
+        follows_all,
+        np.exp(
+            np.bincount(episode, weights=-np.log(behaviour_proba[np.arange(len(codes)), codes]), minlength=returns.size)
+        ),
+        0.0,
+    )
+    ess = kish_ess(weights) if weights.any() else 0.0
+    return {
+        "learned": curve,
+        "usual_care": float(returns.mean()),
+        "returns_sd": float(returns.std(ddof=1)),
+        "ess": ess,
+        "n_episodes": int(returns.size),
+    }
+
+
+def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headline: dict | None) -> dict:
+    """Point bounds, percentile-bootstrap intervals of the bounds, tipping point and E-values.
+
+    The interval at Γ is [α/2 quantile of the replicates' lower bounds, 1 − α/2 quantile of their upper bounds]
+    (Zhao, Small & Bhattacharya 2019, percentile bootstrap). The tipping point Γ* is the smallest Γ whose interval
+    for the contrast includes zero.
+    """
+    spec, level = protocol.sensitivity, protocol.evaluation.interval_level
+    gammas = analysis_gammas(spec)
+    contrast = point["learned"] - point["usual_care"]
+    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
+    if replicates:
+        reps = np.stack([np.asarray(r["learned"], dtype=float) - r["usual_care"] for r in replicates])
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            limits = np.column_stack(
+                [bootstrap_quantile(reps[:, :, 0], low_q, axis=0), bootstrap_quantile(reps[:, :, 1], high_q, axis=0)]
+            )
+    else:
+        limits = np.full_like(contrast, np.nan)
+    benefit = contrast[0, 0]
+    sign = 1.0 if not np.isfinite(benefit) or benefit >= 0 else -1.0
+    edge = limits[:, 0] if sign > 0 else -limits[:, 1]
+
+    def edge_at(gamma):
+        return edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
+
+    star = None if not np.all(np.isfinite(edge)) else tipping_point(edge_at, spec.gamma_max, spec.precision)
+    shown = [int(np.searchsorted(gammas, g)) for g in spec.gammas]
+    floor = max(protocol.evaluation.minimum_ess, protocol.evaluation.minimum_ess_fraction * point["n_episodes"])
+    return {
+        "estimator": "wis (trajectory-weighted importance sampling)",
+        "ess": point["ess"],
+        "low_ess": bool(point["ess"] < floor),
+        "confounded_decisions": spec.confounded_decisions,
+        "level": level,
+        "replicates_used": len(replicates),
+        "usual_care_mean_return": point["usual_care"],
+        "table": [
+            {
+                "gamma": float(gammas[i]),
+                "learned_lower": finite_or_none(point["learned"][i, 0]),
+                "learned_upper": finite_or_none(point["learned"][i, 1]),
+                "contrast_lower": finite_or_none(contrast[i, 0]),
+                "contrast_upper": finite_or_none(contrast[i, 1]),
+                "interval_low": finite_or_none(limits[i, 0]),
+                "interval_high": finite_or_none(limits[i, 1]),
+            }
+            for i in shown
+        ],
+        "curve": {
+            "gamma": gammas.tolist(),
+            "interval_low": limits[:, 0].tolist(),
+            "interval_high": limits[:, 1].tolist(),
+            "contrast_lower": contrast[:, 0].tolist(),
+            "contrast_upper": contrast[:, 1].tolist(),
+        },
+        "tipping_point": star,
+        "gamma_max": spec.gamma_max,
+        "precision": spec.precision,
+        "e_values": headline_e_values(headline, point["returns_sd"]),
+        "sentence": tipping_sentence(star, spec.gamma_max, benefit)
+        if replicates
+        else ("Without bootstrap replicates the bounds have no interval, so no tipping point is computed."),
+    }
+
+
+def headline_e_values(headline: dict | None, returns_sd: float) -> dict | None:
+    """E-values of the headline contrast and of its interval limit nearest zero (mean difference -> RR)."""
+    if headline is None or headline.get("difference") is None or headline.get("low") is None:
+        return None
+    convert = lambda d: mean_difference_to_risk_ratio(d, returns_sd)  # noqa: E731
+    low, high = headline["low"], headline["high"]
+    return {
+        "estimator": headline["estimator"],
+        "difference": headline["difference"],
+        "risk_ratio": convert(headline["difference"]),
+        "e_value": e_value(convert(headline["difference"])),
+        "e_value_interval": e_value_interval(convert(low), convert(high)),
+        "conversion": "risk ratio ≈ exp(0.91 × difference / SD of returns) (VanderWeele & Ding 2017, after Chinn "
+        "2000; factor from memory)",
+    }
+
+
+def tipping_sentence(star, gamma_max, benefit) -> str:
+    """One plain sentence saying what the tipping point means."""
+    if not np.isfinite(benefit):
+        return "No episode follows the learned regime throughout, so its weighted value and its bounds are undefined."
+    if star == 1.0:
+        return (
+            "Even without hidden confounding (Γ = 1) the interval for the learned-minus-usual-care difference "
+            "includes zero, so there is no benefit for a hidden confounder to erase."
+        )
+    if star is None:
+        return (
+            f"Up to Γ = {gamma_max:g} the interval for the difference excludes zero: a hidden factor would have to "
+            f"change the odds of clinicians' choices by more than {gamma_max:g}-fold to erase it."
+        )
+    return (
+        f"A hidden factor that changed the odds of the action clinicians took by a factor of {star:.2f} "
+        "(in either direction, at every confounded decision) would be enough to make the interval for the "
+        "learned-minus-usual-care difference include zero."
+    )

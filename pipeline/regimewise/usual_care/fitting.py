@@ -1,0 +1,74 @@
+"""Fitting the protocol's usual-care (behaviour) model, with K-fold cross-fitting by patient when the protocol asks,
+and the probability floor.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from regimewise.core.features import StateScaler, action_codes, patient_clusters
+from regimewise.core.folds import patient_folds
+from regimewise.core.seeds import stream_ints
+from regimewise.protocol.model import Protocol
+from regimewise.usual_care.boosting import GradientBoostingBehaviour
+from regimewise.usual_care.crossfit import apply_probability_floor, cross_fit_proba
+from regimewise.usual_care.design import BehaviourDesign
+from regimewise.usual_care.logit import MultinomialLogitBehaviour
+
+
+@dataclass(frozen=True, eq=False)
+class UsualCareModel:
+    """The fitted usual-care model, its design, and the cross-fitted probabilities of the training records.
+
+    ``model`` is fitted on all decisions and predicts new states (e.g. new patients in the simulator);
+    ``record_proba`` holds each training decision's out-of-fold probabilities (the model of the other folds'
+    patients), both raised to the protocol's probability floor.
+    """
+
+    design: BehaviourDesign
+    model: MultinomialLogitBehaviour | GradientBoostingBehaviour
+    floor: float
+    record_proba: np.ndarray
+    folds: np.ndarray
+
+    @property
+    def scaler(self) -> StateScaler:
+        return self.design.scaler
+
+    def predict_proba(self, frame: pd.DataFrame) -> np.ndarray:
+        """Estimated probability of each action (protocol order) at each row's state and step."""
+        return apply_probability_floor(self.model.predict_proba(self.design.transform(frame)), self.floor)
+
+
+def _behaviour_model_factory(protocol: Protocol, seed: int):
+    spec = protocol.behaviour_model
+    if spec.kind == "gradient_boosting":
+        return lambda: GradientBoostingBehaviour(max_iter=spec.max_iterations, random_state=seed)
+    return lambda: MultinomialLogitBehaviour(maxiter=spec.max_iterations)
+
+
+def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareModel:
+    """Fit the protocol's usual-care model with K-fold cross-fitting by patient (none when ``folds`` is 1).
+
+    The model (multinomial logit or gradient boosting, optionally with spline terms) is fitted once per fold
+    for the records' out-of-fold probabilities and once on all decisions for new states. Seeds come from the
+    protocol's root seed (stream ``usual_care`` of :mod:`regimewise.core.seeds`).
+    """
+    spec = protocol.behaviour_model
+    fold_seed, model_seed = stream_ints(protocol.seed, "usual_care", 2)
+    design = BehaviourDesign.fit(decisions, protocol)
+    X = design.transform(decisions)
+    codes = action_codes(decisions, protocol.action_labels)
+    make_model = _behaviour_model_factory(protocol, int(model_seed))
+    model = make_model().fit(X, codes, len(protocol.actions))
+    if spec.folds == 1:  # parametric model, no cross-fitting: in-sample probabilities for the records
+        folds = np.zeros(len(decisions), dtype=np.int64)
+        out_of_fold = model.predict_proba(X)
+    else:
+        folds = patient_folds(patient_clusters(decisions), spec.folds, int(fold_seed))
+        out_of_fold = cross_fit_proba(make_model, X, codes, len(protocol.actions), folds)
+    floor = spec.probability_floor
+    return UsualCareModel(design, model, floor, apply_probability_floor(out_of_fold, floor), folds)

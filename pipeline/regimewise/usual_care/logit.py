@@ -1,0 +1,270 @@
+"""Usual-care (behaviour) models: the probability of every action given the state.
+
+The usual-care model estimates how clinicians chose among the actions in the records. Its probabilities give the
+propensity scores of inverse-probability weighting (Rosenbaum & Rubin 1983, Biometrika 70:41) and the behaviour
+policy of off-policy evaluation (Precup, Sutton & Singh 2000).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import statsmodels.api as sm
+from scipy.special import log_softmax
+from sklearn.exceptions import NotFittedError
+
+from regimewise.core.arrays import as_actions
+from regimewise.errors import ConvergenceWarning, StatisticalWarning, UserInputError
+
+# A log-likelihood this close to 0 means the covariates predict every action taken with certainty: complete
+# separation, where the maximum-likelihood estimate does not exist (Albert & Anderson 1984, Biometrika 71:1).
+_SEPARATION_LLF = -1e-6
+
+
+def as_design(X, what="X"):
+    """Return ``X`` as a finite 2-D float array, and its column names (``None`` for an array)."""
+    names = [str(c) for c in X.columns] if isinstance(X, pd.DataFrame) else None
+    try:
+        values = np.asarray(X, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise UserInputError(f"{what} must be numeric; encode categories as indicator columns first ({exc})") from exc
+    if values.ndim != 2 or values.shape[0] == 0:
+        raise UserInputError(f"{what} must be a non-empty 2-D array (rows = decisions); got shape {values.shape}")
+    if not np.all(np.isfinite(values)):
+        bad = sorted({names[j] if names else str(j) for j in np.where(~np.isfinite(values))[1]})
+        raise UserInputError(f"{what} has missing or infinite values in column(s) {', '.join(bad)}; impute or drop")
+    return values, names
+
+
+def _standardise(values):
+    """Column means and scales for a numerically stable fit; constant columns get scale 0."""
+    mean = values.mean(axis=0)
+    scale = values.std(axis=0)
+    constant = np.ptp(values, axis=0) == 0
+    scale[constant] = 0.0
+    return mean, scale
+
+
+def prediction_design(model, X, fitted_attribute):
+    """Check that ``model`` is fitted and ``X`` has its number of columns; return ``as_design(X)``."""
+    if not hasattr(model, fitted_attribute):
+        raise NotFittedError(f"this {type(model).__name__} is not fitted yet; call fit(X, action, n_actions)")
+    values, names = as_design(X)
+    if values.shape[1] != model.n_features_in_:
+        raise UserInputError(f"X has {values.shape[1]} columns but the model was fitted on {model.n_features_in_}")
+    return values, names
+
+
+def _run_mnlogit(design, endog, method, maxiter):
+    """statsmodels MNLogit fit, or ``None`` when it breaks down (singular Hessian, non-finite estimates).
+
+    statsmodels' own warnings are silenced here; the caller reports convergence problems in its own words.
+    """
+    with warnings.catch_warnings(), np.errstate(all="ignore"):
+        warnings.simplefilter("ignore")
+        try:
+            result = sm.MNLogit(endog, design).fit(method=method, maxiter=maxiter, disp=0, skip_hessian=True)
+        except np.linalg.LinAlgError:
+            return None
+    return result if np.all(np.isfinite(result.params)) else None
+
+
+def _log_proba(design, params):
+    """Log-probabilities of the reference class and the others, computed stably in log space.
+
+    ``design`` includes the constant column; ``params`` has one column per non-reference class.
+    """
+    linear = np.column_stack([np.zeros(design.shape[0]), design @ params])
+    return log_softmax(linear, axis=1)
+
+
+def _breakdown_message(reason):
+    return (
+        f"the usual-care model cannot be fitted ({reason}); most often some action is perfectly predicted "
+        "by the covariates (separation): merge rare actions or categories, or drop the covariate that "
+        "separates them"
+    )
+
+
+class MultinomialLogitBehaviour:
+    r"""Multinomial logistic regression of the action taken on the state (usual-care model).
+
+    .. math:: P(A = k \mid x) = \frac{\exp(\beta_{0k} + x^\top \beta_k)}{\sum_j \exp(\beta_{0j} + x^\top \beta_j)},
+              \quad \beta_{0c} = 0,\ \beta_c = 0 \text{ for the reference action } c = \text{classes\_}[0].
+
+    Fitted by maximum likelihood with statsmodels ``MNLogit`` (McFadden 1974, in *Frontiers in Econometrics*;
+    Agresti 2013, *Categorical Data Analysis*, 3rd ed., ch. 8). With two actions it is ordinary logistic
+    regression. The class adds the intercept; the caller builds the design matrix (indicator columns for
+    categories, squares, ...) and must not include a constant column of its own.
+
+    Covariates are centred and scaled inside ``fit`` for a stable Newton iteration; ``params_`` are transformed
+    back to the caller's scale. A column that is constant in the training data carries no information: it is
+    left out of the fit with a :class:`StatisticalWarning` and its coefficients are 0.
+
+    Actions that never occur in the training data get probability exactly 0 in :meth:`predict_proba` (their
+    maximum-likelihood estimate); the other columns are the multinomial-logit probabilities over the actions
+    that occur and sum to 1. An inverse weight ``1 / p`` for such an action is infinite, which is the honest
+    answer: usual care gives no support to it (positivity fails).
+
+    When the data do not identify the model, ``fit`` reacts as follows. Complete separation (the covariates
+    predict every action taken with certainty; Albert & Anderson 1984) raises :class:`UserInputError`, since no
+    maximum-likelihood estimate exists. If Newton's method breaks down (singular Hessian or overflow, typically
+    quasi-separation), the model is refitted once with BFGS and a :class:`ConvergenceWarning` says so;
+    ``method_`` records the optimiser used. If that fails too, :class:`UserInputError` is raised.
+
+    Parameters
+    ----------
+    maxiter : int, default 100
+        Maximum number of optimiser iterations.
+    method : str, default "newton"
+        statsmodels optimiser (``"newton"``, ``"bfgs"``, ``"lbfgs"``, ``"nm"``, ...).
+
+    Attributes
+    ----------
+    classes_ : ndarray of int
+        Action codes that occur in the training data, sorted; ``classes_[0]`` is the reference action.
+    n_actions_ : int
+        Number of actions ``K``; ``predict_proba`` returns ``K`` columns.
+    n_features_in_ : int
+        Number of covariate columns.
+    feature_names_in_ : list of str or None
+        Column names when ``X`` was a DataFrame.
+    params_ : ndarray, shape (n_features_in_ + 1, len(classes_) - 1)
+        Row 0 the intercepts, then one row per covariate; column ``j`` holds the log-odds coefficients of action
+        ``classes_[j + 1]`` against ``classes_[0]``, on the scale of the caller's covariates.
+    method_ : str or None
+        Optimiser that produced ``params_`` (``"bfgs"`` after a Newton breakdown; ``None`` with one action).
+    converged_ : bool
+        Whether the optimiser reported convergence (``True`` when only one action occurs).
+    n_iter_ : int or None
+        Iterations used, when the optimiser reports them.
+    llf_ : float
+        Maximised log-likelihood (0 when only one action occurs).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(200, 2))
+    >>> action = rng.integers(0, 3, size=200)
+    >>> model = MultinomialLogitBehaviour().fit(X, action, n_actions=4)
+    >>> model.predict_proba(X).shape
+    (200, 4)
+    >>> float(model.predict_proba(X)[:, 3].max())  # action 3 never occurred
+    0.0
+    """
+
+    def __init__(self, maxiter=100, method="newton"):
+        self.maxiter = maxiter
+        self.method = method
+
+    def fit(self, X, action, n_actions):
+        """Fit the model on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``.
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        UserInputError
+            Malformed input, a rank-deficient design, complete separation, or a fit that breaks down even
+            after the BFGS fallback. Quasi-separation (only some decisions predicted with certainty) is not an
+            error: it shows as a :class:`ConvergenceWarning` and probabilities near 0 and 1.
+        """
+        values, names = as_design(X)
+        codes = as_actions(action, n_actions, n_rows=values.shape[0])
+        self.n_actions_ = int(n_actions)
+        self.n_features_in_ = values.shape[1]
+        self.feature_names_in_ = names
+        self.classes_ = np.unique(codes)
+        mean, scale = _standardise(values)
+        self._warn_constant_columns(scale == 0)
+        if self.classes_.size == 1:
+            self.params_ = np.zeros((self.n_features_in_ + 1, 0))
+            self.converged_, self.n_iter_, self.llf_, self.method_ = True, 0, 0.0, None
+            return self
+        varying = scale > 0
+        design = sm.add_constant((values[:, varying] - mean[varying]) / scale[varying], has_constant="add")
+        self._check_rank(design)
+        endog = np.searchsorted(self.classes_, codes)
+        result = self._fit_mnlogit(design, endog)
+        params = np.asarray(result.params)
+        # statsmodels' llf overflows to nan when probabilities saturate; compute it in log space instead.
+        llf = float(_log_proba(design, params)[np.arange(endog.size), endog].sum())
+        if llf > _SEPARATION_LLF:
+            raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
+        self.params_ = self._unscale(params, mean, scale)
+        self.converged_ = bool(result.mle_retvals.get("converged", True))
+        self.n_iter_ = result.mle_retvals.get("iterations")
+        self.llf_ = llf
+        self._warn_fit_problems()
+        return self
+
+    def predict_proba(self, X):
+        """Probability of every action, shape (n, n_actions_), columns in action-code order."""
+        values, names = prediction_design(self, X, "params_")
+        if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
+            raise UserInputError("X has different column names or order than at fit; pass the same design columns")
+        proba = np.zeros((values.shape[0], self.n_actions_))
+        proba[:, self.classes_] = np.exp(_log_proba(np.column_stack([np.ones(len(values)), values]), self.params_))
+        return proba
+
+    def _fit_mnlogit(self, design, endog):
+        """Fit MNLogit; if Newton's method breaks down, refit once with BFGS; if that fails too, raise."""
+        self.method_ = self.method
+        result = _run_mnlogit(design, endog, self.method, self.maxiter)
+        if result is None and self.method == "newton":
+            self.method_ = "bfgs"
+            result = _run_mnlogit(design, endog, "bfgs", self.maxiter)
+        if result is None:
+            raise UserInputError(_breakdown_message("singular Hessian or non-finite estimates"))
+        return result
+
+    def _warn_fit_problems(self):
+        if self.method_ != self.method:
+            warnings.warn(
+                "Newton's method broke down in the usual-care model (probabilities reached 0 or 1, usually "
+                "quasi-separation: an action almost perfectly predicted by a covariate); it was refitted with "
+                "BFGS and some coefficients are unstable: merge rare categories or drop that covariate",
+                ConvergenceWarning,
+                stacklevel=3,
+            )
+        if not self.converged_:
+            warnings.warn(
+                f"the usual-care model (MNLogit, method={self.method_!r}) did not converge in {self.maxiter} "
+                "iterations; raise maxiter, try method='bfgs', or look for an action that a covariate almost "
+                "perfectly predicts (quasi-separation) and merge categories or drop that covariate",
+                ConvergenceWarning,
+                stacklevel=3,
+            )
+
+    def _check_rank(self, design):
+        rank = np.linalg.matrix_rank(design)
+        if rank < design.shape[1]:
+            raise UserInputError(
+                f"the usual-care design matrix (with the intercept this model adds) has rank {rank} < "
+                f"{design.shape[1]} columns: some covariates are linear combinations of others (e.g. a full set "
+                "of indicator columns); drop one column per set"
+            )
+
+    def _warn_constant_columns(self, constant):
+        if constant.any():
+            labels = [self.feature_names_in_[j] if self.feature_names_in_ else str(j) for j in np.where(constant)[0]]
+            warnings.warn(
+                f"covariate column(s) {', '.join(labels)} are constant in the training data; they are left out "
+                "of the usual-care model (coefficient 0)",
+                StatisticalWarning,
+                stacklevel=3,
+            )
+
+    @staticmethod
+    def _unscale(params_scaled, mean, scale):
+        """Map coefficients on centred and scaled covariates back to the original covariates."""
+        varying = scale > 0
+        slopes = np.zeros((scale.size, params_scaled.shape[1]))
+        slopes[varying] = params_scaled[1:] / scale[varying, None]
+        intercept = params_scaled[0] - mean @ slopes
+        return np.vstack([intercept, slopes])

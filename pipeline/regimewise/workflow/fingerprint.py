@@ -1,0 +1,184 @@
+"""Code fingerprints of the workflow's rules, derived from the package's own imports.
+
+Snakemake reruns a job when its ``params`` change but does not see the modules a script imports, so every rule
+carries ``params: code=stage_code_hash("<rule>")``. The fingerprint is derived, never listed by hand: it hashes
+the source of the rule's stage function in :mod:`regimewise.workflow.stages` (and of the module-level helpers it
+uses there), every package module that function's names come from, the transitive closure of their imports read
+from the source with :mod:`ast`, and the data files (templates) beside those modules. Editing any module a stage
+needs, directly or not, changes that stage's fingerprint; editing a module it does not need changes nothing.
+"""
+
+from __future__ import annotations
+
+import ast
+import hashlib
+from functools import cache
+from pathlib import Path
+
+from regimewise import __version__
+
+PACKAGE_DIR = Path(__file__).resolve().parent.parent
+PACKAGE = "regimewise"
+STAGES_MODULE = "regimewise.workflow.stages"
+DATA_SUFFIXES = (".html", ".json", ".yaml", ".css")
+
+
+def package_modules(root: Path = PACKAGE_DIR) -> dict[str, Path]:
+    """Dotted name -> source path of every module of the package under ``root``."""
+    modules = {}
+    for path in sorted(root.rglob("*.py")):
+        parts = path.relative_to(root).with_suffix("").parts
+        if parts[-1] == "__init__":
+            parts = parts[:-1]
+        modules[".".join((PACKAGE, *parts))] = path
+    return modules
+
+
+def _absolute(node: ast.ImportFrom, importer: str, is_package: bool) -> str:
+    if not node.level:
+        return node.module or ""
+    base = importer.split(".")
+    base = base if is_package else base[:-1]
+    base = base[: len(base) - (node.level - 1)]
+    return ".".join([*base, node.module] if node.module else base)
+
+
+def module_imports(path: Path, importer: str, modules: dict) -> list[tuple[str, tuple[str, ...]]]:
+    """(imported package module, names taken from it) for every package import of one module, anywhere in it.
+
+    ``from regimewise.x import y`` where ``y`` is itself a module counts as an import of ``regimewise.x.y``.
+    """
+    found = []
+    tree = ast.parse(Path(path).read_text(encoding="utf-8"))
+    is_package = Path(path).name == "__init__.py"
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            found += [(a.name, ()) for a in node.names if a.name in modules]
+        elif isinstance(node, ast.ImportFrom):
+            source = _absolute(node, importer, is_package)
+            if source.split(".")[0] != PACKAGE:
+                continue
+            names = tuple(a.name for a in node.names)
+            found += [(f"{source}.{n}", ()) for n in names if f"{source}.{n}" in modules]
+            plain = tuple(n for n in names if f"{source}.{n}" not in modules)
+            if plain and source in modules:
+                found.append((source, plain))
+    return found
+
+
+def import_graph(root: Path = PACKAGE_DIR) -> tuple[dict[str, Path], dict[str, set[str]]]:
+    """The package's modules and, for each, the package modules it imports (parents of submodules included)."""
+    modules = package_modules(root)
+    graph = {}
+    for name, path in modules.items():
+        imported = {module for module, _ in module_imports(path, name, modules)}
+        graph[name] = imported | {m.rpartition(".")[0] for m in imported if m.rpartition(".")[0] in modules}
+    return modules, graph
+
+
+def import_closure(start: set[str], graph: dict[str, set[str]]) -> set[str]:
+    """Every package module reachable from ``start`` through imports (``start`` included)."""
+    seen, todo = set(), list(start)
+    while todo:
+        name = todo.pop()
+        if name in seen or name not in graph:
+            continue
+        seen.add(name)
+        todo += graph[name]
+        parent = name.rpartition(".")[0]
+        if parent in graph:  # importing a submodule runs its package's __init__
+            todo.append(parent)
+    return seen
+
+
+def stage_rules(modules: dict) -> tuple[str, ...]:
+    """Rule names: every ``<rule>_stage`` function of the stages module."""
+    tree = ast.parse(modules[STAGES_MODULE].read_text(encoding="utf-8"))
+    return tuple(
+        n.name.removesuffix("_stage") for n in tree.body if isinstance(n, ast.FunctionDef) and n.name.endswith("_stage")
+    )
+
+
+def _stage_sources(rule: str, modules: dict) -> tuple[list[str], set[str]]:
+    """Source segments of ``<rule>_stage`` and the stages module's helpers it uses; the modules its names need."""
+    path = modules[STAGES_MODULE]
+    source = path.read_text(encoding="utf-8")
+    tree = ast.parse(source)
+    top = {}
+    for node in tree.body:
+        for name in _defined_names(node):
+            top[name] = node
+    origin = {name: imported for imported, names in module_imports(path, STAGES_MODULE, modules) for name in names}
+    function = f"{rule}_stage"
+    if function not in top:
+        raise KeyError(f"{STAGES_MODULE} has no function {function}() for rule {rule!r}")
+    segments, needed, seen, todo = [], set(), set(), [function]
+    while todo:
+        name = todo.pop()
+        if name in seen:
+            continue
+        seen.add(name)
+        if name in origin:
+            needed.add(origin[name])
+        elif name in top:
+            segments.append(ast.get_source_segment(source, top[name]))
+            todo += [n.id for n in ast.walk(top[name]) if isinstance(n, ast.Name)]
+    return segments, needed
+
+
+def _defined_names(node: ast.stmt) -> list[str]:
+    if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)):
+        return [node.name]
+    if isinstance(node, ast.Assign):
+        return [t.id for t in node.targets if isinstance(t, ast.Name)]
+    if isinstance(node, ast.AnnAssign) and isinstance(node.target, ast.Name):
+        return [node.target.id]
+    return []
+
+
+def stage_modules(rule: str, root: Path = PACKAGE_DIR, graph=None) -> tuple[str, ...]:
+    """Package modules whose source determines the outputs of ``rule`` (sorted dotted names)."""
+    modules, graph = import_graph(root) if graph is None else graph
+    _, needed = _stage_sources(rule, modules)
+    return tuple(sorted(import_closure(needed | {PACKAGE}, graph)))
+
+
+def stage_files(rule: str, root: Path = PACKAGE_DIR, graph=None) -> tuple[Path, ...]:
+    """Source files and data files (templates) of :func:`stage_modules`, sorted by path."""
+    graph = import_graph(root) if graph is None else graph
+    modules = graph[0]
+    files = {modules[name] for name in stage_modules(rule, root, graph)}
+    folders = {path.parent for path in files if path.parent != root}
+    data = {p for folder in folders for p in folder.rglob("*") if p.is_file() and p.suffix in DATA_SUFFIXES}
+    return tuple(sorted(files | data))
+
+
+def stage_code_hashes(root: Path = PACKAGE_DIR) -> dict[str, str]:
+    """Fingerprint of every rule: SHA-256 (16 hex digits) of the package version, the stage function's source
+    and every file :func:`stage_files` lists, read afresh."""
+    root = Path(root)
+    graph = import_graph(root)
+    out = {}
+    for rule in stage_rules(graph[0]):
+        segments, _ = _stage_sources(rule, graph[0])
+        digest = hashlib.sha256(__version__.encode())
+        for segment in segments:
+            digest.update(segment.encode())
+        for path in stage_files(rule, root, graph):
+            digest.update(path.relative_to(root).as_posix().encode())
+            digest.update(path.read_bytes())
+        out[rule] = digest.hexdigest()[:16]
+    return out
+
+
+@cache
+def _hashes_once(root: Path) -> dict[str, str]:
+    return stage_code_hashes(root)
+
+
+def stage_code_hash(rule: str, root: Path = PACKAGE_DIR) -> str:
+    """The fingerprint of ``rule`` for a rule's ``params`` (computed once per process, when the Snakefile is read)."""
+    hashes = _hashes_once(Path(root))
+    if rule not in hashes:
+        raise KeyError(f"no stage function for rule {rule!r}; add {rule}_stage to {STAGES_MODULE}")
+    return hashes[rule]

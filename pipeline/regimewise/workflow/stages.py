@@ -1,0 +1,336 @@
+"""Stage functions: one per workflow rule, taking and writing plain file paths.
+
+Each stage reads its inputs, calls the statistics in the package and writes its outputs atomically
+(:mod:`regimewise.io`). Rules reach them through :func:`run_snakemake_job`; tests and the command line call
+them directly. A stage never holds statistics of its own beyond arranging inputs and outputs.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from threadpoolctl import threadpool_limits
+
+from regimewise.bootstrap.intervals import combine, merge_intervals
+from regimewise.bootstrap.replicates import run_shard
+from regimewise.bootstrap.sweep import combine_sweep, run_specification
+from regimewise.cautions import RECOMMENDATION_CAUTION
+from regimewise.core.features import QFeatures, StateScaler, action_codes
+from regimewise.data.validate import validate_records, write_error_report
+from regimewise.describe.balance import balance_by_step
+from regimewise.describe.cohort import cohort_table
+from regimewise.errors import DataValidationError, UserInputError
+from regimewise.evaluation.values import evaluate_all, headline_estimator
+from regimewise.io import read_json, read_parquet, write_json, write_parquet, write_text
+from regimewise.protocol.loading import load_protocol
+from regimewise.regime.clinical_rules import ClinicalRuleSet
+from regimewise.regime.learning import (
+    cross_fitted_recommendations,
+    crossfit_folds,
+    regime_variants,
+)
+from regimewise.regime.permitted import permitted_actions
+from regimewise.regime.readable import distill_regime
+from regimewise.regime.summary import regime_summary, safeguard_summary
+from regimewise.report.html import render_html
+from regimewise.report.provenance import build_provenance
+from regimewise.report.summary import build_summary
+from regimewise.sensitivity.analysis import regime_curve, summarise_sensitivity
+from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
+from regimewise.usual_care.fitting import fit_usual_care
+
+
+def report_stage(
+    protocol,
+    validation,
+    behaviour,
+    regime,
+    values,
+    html,
+    summary,
+    provenance,
+    intervals=None,
+    cohort=None,
+    sensitivity=None,
+    sweep=None,
+):
+    """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
+    pf = load_protocol(protocol)
+    p = pf.protocol
+    parts = {
+        "validation": read_json(validation),
+        "behaviour": read_json(behaviour),
+        "regime": read_json(regime),
+        "values": merge_intervals(read_json(values), None if intervals is None else read_json(intervals)),
+        "cohort": None if cohort is None else read_json(cohort),
+        "sensitivity": None if sensitivity is None else read_json(sensitivity),
+        "sweep": None if sweep is None else read_json(sweep),
+    }
+    prov = build_provenance(pf)
+    headline = build_summary(p, parts, prov)
+    write_json(provenance, prov)
+    write_json(summary, headline)
+    write_text(html, render_html(p, parts, prov, headline))
+
+
+log = logging.getLogger("regimewise")
+
+
+ERROR_PREFIX = "regimewise error: "
+
+
+# ---------------------------------------------------------------------------------------------- validate
+def validate_stage(protocol, decisions, episodes, summary, errors=None):
+    """Check the records and write clean Parquet tables and validation.json.
+
+    ``errors`` (the rule's log ``errors``, in the logs folder, never a stage output) receives
+    validation_errors.csv: every finding when validation fails, only the header when it passes.
+    """
+    pf = load_protocol(protocol)
+    try:
+        result = validate_records(pf)
+    except DataValidationError as err:
+        if errors is not None:
+            write_error_report(errors, err.errors)
+        raise
+    if errors is not None:
+        write_error_report(errors, ())
+    write_parquet(decisions, result.decisions)
+    write_parquet(episodes, result.episodes)
+    write_json(summary, result.summary)
+    log.info("validated %d decisions in %d episodes", len(result.decisions), result.summary["episodes"])
+
+
+# ---------------------------------------------------------------------------------------------- behaviour
+def proba_columns(labels) -> list[str]:
+    return [f"p_{label}" for label in labels]
+
+
+def behaviour_stage(protocol, decisions, proba, diagnostics):
+    """Fit the usual-care model with cross-fitting; write the records' out-of-fold probabilities and diagnostics."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    model = fit_usual_care(frame, p)
+    table = frame[["episode_id", "step"]].copy()
+    table[proba_columns(p.action_labels)] = model.record_proba
+    write_parquet(proba, table)
+    write_json(diagnostics, usual_care_diagnostics(p, frame, model))
+
+
+def read_probabilities(path, labels) -> np.ndarray:
+    return read_parquet(path)[proba_columns(labels)].to_numpy(dtype=float)
+
+
+# ---------------------------------------------------------------------------------------------- regime
+def regime_stage(protocol, decisions, proba, table, regime):
+    """Learn the side-by-side regimes; write recommendations with Q-values and the fitted models' summary.
+
+    The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
+    ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.learning.SAFEGUARDS`); the
+    ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
+    that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one fold).
+    """
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    probabilities = read_probabilities(proba, p.action_labels)
+    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p)
+    variants = regime_variants(frame, probabilities, p, features)
+    rules = ClinicalRuleSet.from_protocol(p)
+    permitted = rules.permitted(frame)
+    steps = frame["step"].to_numpy(dtype=np.int64)
+    X = features.transform(frame)
+    chosen = {
+        name: fqi.recommend(X, steps, probabilities, permitted if name in ("rules", "pessimistic") else None)
+        for name, fqi in variants.items()
+    }
+    fqi = variants[list(variants)[-1]]
+    recommended = chosen[list(chosen)[-1]]
+    labels = np.asarray(p.action_labels)
+    out = frame[["episode_id", "step", "action"]].copy()
+    out["recommended"] = labels[recommended]
+    folds = p.evaluation.cross_fit_folds
+    evaluated = recommended if folds == 1 else cross_fitted_recommendations(frame, probabilities, p)
+    out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
+    for name, codes in chosen.items():
+        out[f"recommended_{name}"] = labels[codes]
+    out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
+    out[[f"permitted_{a}" for a in p.action_labels]] = permitted_actions(
+        probabilities, p.constraints.support_threshold, permitted
+    )
+    write_parquet(table, out, caution=RECOMMENDATION_CAUTION)
+    summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
+    summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
+    summary["cross_fit"] = {"folds": folds, "agreement": float(np.mean(evaluated == recommended))}
+    summary["readable"] = distill_regime(
+        frame,
+        recommended,
+        features.scaler.covariate_states(p),
+        p.action_labels,
+        groups=frame["patient_id"].to_numpy(),
+        random_state=0,
+    ).to_dict()  # the states, then the missing indicators the models use
+    write_json(regime, summary)
+
+
+# ---------------------------------------------------------------------------------------------- evaluate
+def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarray:
+    """Action codes of one action-label column of the regime stage's recommendations table."""
+    return action_codes(recommendations.drop(columns="action").rename(columns={column: "action"}), labels)
+
+
+def evaluate_stage(protocol, decisions, proba, table, values):
+    """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    recommendations = read_parquet(table)
+    recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
+    variants = {
+        c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
+        for c in recommendations.columns
+        if c.startswith("recommended_")
+    }  # side-by-side regimes of the regime stage
+    write_json(
+        values,
+        evaluate_all(
+            frame,
+            read_probabilities(proba, p.action_labels),
+            recommended,
+            p,
+            variants or None,
+            learned_folds=crossfit_folds(frame, p),
+        ),
+    )
+
+
+# ---------------------------------------------------------------------------------------------- describe
+def describe_stage(protocol, decisions, proba, table, cohort):
+    """Cohort table, balance before and after weighting, and overlap of taken and recommended actions by step."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    probabilities = read_probabilities(proba, p.action_labels)
+    recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
+    write_json(
+        cohort,
+        {
+            "caution": RECOMMENDATION_CAUTION,
+            "baseline": cohort_table(frame, p),
+            "balance_by_step": balance_by_step(frame, probabilities, p),
+            "overlap_by_step": overlap_by_step(
+                frame["step"].to_numpy(),
+                action_codes(frame, p.action_labels),
+                recommended,
+                probabilities,
+                p.constraints.support_threshold,
+            ),
+        },
+    )
+
+
+# ---------------------------------------------------------------------------------------------- bootstrap
+def bootstrap_shard_stage(protocol, decisions, shard, replicates):
+    """Run one shard's bootstrap replicates (wildcard ``shard``), one BLAS thread per job."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    with threadpool_limits(limits=1):
+        out = run_shard(frame, p, int(shard))
+    write_json(replicates, out)
+    log.info("bootstrap shard %s: %d replicates", shard, len(out["replicates"]))
+
+
+def bootstrap_stage(protocol, values, shards, intervals):
+    """Combine the shards into percentile intervals for every value and contrast; flag disagreeing estimators."""
+    p = load_protocol(protocol).protocol
+    write_json(intervals, combine(read_json(values), [read_json(path) for path in shards], p))
+
+
+# ---------------------------------------------------------------------------------------------- sensitivity
+def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sensitivity):
+    """Bounds of the learned regime's value and contrast over Γ, their bootstrap intervals, Γ* and E-values."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
+    point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p)
+    replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
+    headline = headline_contrast(read_json(intervals), p)
+    write_json(sensitivity, summarise_sensitivity(point, replicates, p, headline))
+
+
+def headline_contrast(intervals: dict, p) -> dict | None:
+    """The learned-minus-usual-care contrast of the headline estimator (wdr if run) with its interval."""
+    name = headline_estimator(p)
+    for contrast in intervals.get("contrasts", []):
+        if (contrast["regime"], contrast["versus"], contrast["estimator"]) == ("learned", "usual_care", name):
+            return contrast
+    return None
+
+
+# ---------------------------------------------------------------------------------------------- sweep
+def sweep_spec_stage(protocol, decisions, spec, result):
+    """One specification of the sweep (wildcard ``spec``): refit, evaluate and bootstrap; one BLAS thread."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    with threadpool_limits(limits=1):
+        out = run_specification(frame, p, spec)
+    write_json(result, out)
+    log.info("sweep %s: %d of %d replicates used", spec, out["replicates_used"], out["replicates"])
+
+
+def sweep_stage(protocol, specs, sweep):
+    """Combine the specifications into the table sorted by the learned-minus-usual-care contrast."""
+    p = load_protocol(protocol).protocol
+    write_json(sweep, combine_sweep([read_json(path) for path in specs], p))
+
+
+# ---------------------------------------------------------------------------------------------- dispatch
+STAGES = {
+    "validate": validate_stage,
+    "behaviour": behaviour_stage,
+    "regime": regime_stage,
+    "evaluate": evaluate_stage,
+    "describe": describe_stage,
+    "bootstrap_shard": bootstrap_shard_stage,
+    "bootstrap": bootstrap_stage,
+    "sensitivity": sensitivity_stage,
+    "sweep_spec": sweep_spec_stage,
+    "sweep": sweep_stage,
+    "report": report_stage,
+}
+
+
+def run_snakemake_job(smk) -> None:
+    """Run the stage named like the Snakemake rule, logging to the rule's log file.
+
+    A :class:`UserInputError` is written to the log and to standard error as one line starting with
+    ``regimewise error:`` and the job exits with status 1 (Snakemake then removes its partial outputs).
+    """
+    log_path = Path(smk.log[0])
+    log_path.parent.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(levelname)s %(message)s"))
+    log.addHandler(handler)
+    log.setLevel(logging.INFO)
+    inputs = {k: v for k, v in smk.input.items()}
+    outputs = {k: v for k, v in smk.output.items()}
+    named_logs = {k: v for k, v in smk.log.items()}
+    wildcards = {k: v for k, v in smk.wildcards.items()}
+    kwargs = {
+        k: v for k, v in {**wildcards, **named_logs, **inputs, **outputs}.items() if k in STAGE_ARGUMENTS[smk.rule]
+    }
+    try:
+        STAGES[smk.rule](**kwargs)
+    except UserInputError as err:
+        log.error("%s", err)
+        print(ERROR_PREFIX + str(err), file=sys.stderr)
+        sys.exit(1)
+    finally:
+        handler.close()
+        log.removeHandler(handler)
+
+
+STAGE_ARGUMENTS = {
+    name: set(function.__code__.co_varnames[: function.__code__.co_argcount]) for name, function in STAGES.items()
+}

@@ -1,0 +1,92 @@
+"""The readable summary of a regime: a shallow tree, its fidelity, its rules in words, the two-state table.
+
+Source: scikit-learn's DecisionTreeClassifier and accuracy_score (an independent fit with the same settings),
+and the plain-words rules re-applied to the data by a small parser written here.
+"""
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import accuracy_score
+from sklearn.tree import DecisionTreeClassifier
+
+from regimewise.errors import UserInputError
+from regimewise.protocol import StateVariable
+from regimewise.regime.readable import distill_regime
+
+STATES = [
+    StateVariable(name="sbp", label="SBP", kind="continuous", plausible_range=(70, 250)),
+    StateVariable(name="level", label="Level", kind="integer", plausible_range=(0, 4)),
+    StateVariable(name="female", label="Female", kind="binary", plausible_range=(0, 1)),
+]
+LABELS = ("hold", "down", "up")
+
+
+@pytest.fixture(scope="module")
+def data():
+    rng = np.random.default_rng(3)
+    n = 2000
+    frame = pd.DataFrame(
+        {
+            "sbp": np.round(rng.normal(145, 18, n), 1),
+            "level": rng.integers(0, 5, n),
+            "female": rng.integers(0, 2, n),
+        }
+    )
+    regime = np.where(frame.sbp > 150, 2, np.where((frame.sbp < 120) & (frame.level > 0), 1, 0))
+    noisy = np.where(rng.random(n) < 0.1, rng.integers(0, 3, n), regime)  # a regime a depth-3 tree cannot copy
+    return frame, noisy, rng.integers(0, 400, n)
+
+
+def rows_of(conditions, frame):
+    """Rows selected by a rule's plain-words conditions ('name op value', op in ≤ > =)."""
+    mask = np.ones(len(frame), dtype=bool)
+    for cond in conditions:
+        name, op, value = cond.split(" ")
+        col = frame[name].to_numpy(dtype=float)
+        mask &= {"≤": col <= float(value), ">": col > float(value), "=": col == float(value)}[op]
+    return mask
+
+
+def test_fidelity_matches_sklearn_tree(data):
+    # source: scikit-learn DecisionTreeClassifier(max_depth=3) fitted independently, accuracy_score
+    frame, recommended, groups = data
+    readable = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0)
+    tree = DecisionTreeClassifier(max_depth=3, random_state=0).fit(frame[["sbp", "level", "female"]], recommended)
+    assert readable.fidelity == pytest.approx(
+        accuracy_score(recommended, tree.predict(frame[["sbp", "level", "female"]]))
+    )
+    assert 0.5 < readable.fidelity_out_of_fold <= 1.0
+    assert max(readable.importance, key=readable.importance.get) == "sbp"
+
+
+def test_rules_in_words_partition_the_decisions_and_reproduce_the_tree(data):
+    frame, recommended, _ = data
+    readable = distill_regime(frame, recommended, STATES, LABELS)
+    tree = DecisionTreeClassifier(max_depth=3, random_state=0).fit(frame[["sbp", "level", "female"]], recommended)
+    predicted = np.asarray(LABELS)[tree.predict(frame[["sbp", "level", "female"]])]
+    covered = np.zeros(len(frame), dtype=int)
+    for rule in readable.rules:
+        rows = rows_of(rule.conditions, frame)
+        covered += rows
+        assert rows.sum() == rule.decisions
+        assert np.all(predicted[rows] == rule.action)
+        assert len(rule.conditions) <= 3 and rule.text.startswith("if ")
+    assert np.all(covered == 1)  # every decision falls under exactly one rule
+
+
+def test_two_state_table_counts_every_decision(data):
+    frame, recommended, _ = data
+    table = distill_regime(frame, recommended, STATES, LABELS).table
+    assert table["rows_state"] == "sbp"
+    total = sum(cell["decisions"] for row in table["cells"] for cell in row)
+    assert total == len(frame)
+    assert len(table["cells"]) == len(table["row_bins"]) and len(table["cells"][0]) == len(table["column_bins"])
+
+
+def test_summary_says_it_is_a_summary(data):
+    frame, recommended, _ = data
+    out = distill_regime(frame, recommended, STATES, LABELS).to_dict()
+    assert "not the tree, is what was evaluated" in out["note"]
+    with pytest.raises(UserInputError, match="max_depth"):
+        distill_regime(frame, recommended, STATES, LABELS, max_depth=5)
