@@ -126,7 +126,7 @@ def test_row_model_agrees_with_vectorised_check(tmp_path_factory, bp, flag, acti
 
 # ---------------------------------------------------------------------------------------------- episodes table
 def test_episodes_table_checked_and_joined(tmp_path):
-    from tiny import tiny_episodes
+    from support.tiny import tiny_episodes
 
     decisions = tiny_decisions()
     episodes = tiny_episodes(decisions)
@@ -142,7 +142,7 @@ def test_episodes_table_checked_and_joined(tmp_path):
 
 # ---------------------------------------------------------------------------------------------- missing data
 def _with_missing(tmp_path, policy):
-    from tiny import tiny_protocol_dict
+    from support.tiny import tiny_protocol_dict
 
     frame = tiny_decisions()
     frame["bp"] = frame["bp"].astype(object)
@@ -186,7 +186,7 @@ def test_missing_indicator_fills_with_the_median_and_flags(tmp_path):
 # ---------------------------------------------------------------------------------------------- reading
 @pytest.mark.parametrize(("delimiter", "bom"), [(",", False), (",", True), (";", True), ("\t", False)])
 def test_csv_delimiters_and_byte_order_mark(tmp_path, delimiter, bom):
-    from tiny import tiny_protocol_dict
+    from support.tiny import tiny_protocol_dict
 
     protocol = tiny_protocol_dict()
     protocol["data"]["delimiter"] = delimiter
@@ -197,7 +197,7 @@ def test_csv_delimiters_and_byte_order_mark(tmp_path, delimiter, bom):
 
 
 def test_parquet_records_read_like_csv(tmp_path):
-    from tiny import tiny_protocol_dict
+    from support.tiny import tiny_protocol_dict
 
     tiny_decisions().to_parquet(tmp_path / "decisions.parquet", index=False)
     protocol = tiny_protocol_dict(decisions="decisions.parquet")

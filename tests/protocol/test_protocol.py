@@ -104,7 +104,7 @@ def test_paths_resolve_relative_to_the_protocol(tiny):
 
 
 def test_acknowledged_columns_are_recorded_in_the_provenance_appendix(tmp_path):
-    from tiny import write_tiny
+    from support.tiny import write_tiny
 
     from regimewise.report.provenance import build_provenance as provenance
 

@@ -123,7 +123,7 @@ def test_tipping_point_is_where_the_lower_limit_crosses_zero():
 def test_tipping_point_of_the_summary_is_where_the_interval_reaches_zero():
     # Replicate curves built by hand: lower bounds falling linearly in Γ, so the 2.5% quantile of the replicates'
     # lower bounds crosses zero at a known Γ; the summary's Γ* must sit at the first grid point past it.
-    from tiny import REPOSITORY
+    from support.tiny import REPOSITORY
 
     from regimewise.protocol import load_protocol
     from regimewise.sensitivity.analysis import summarise_sensitivity

@@ -67,7 +67,7 @@ def test_defect_fails_with_one_line_and_no_output(tmp_path, capsys, name):
 
 
 def test_error_list_is_capped_per_rule_with_totals(tmp_path):
-    from tiny import tiny_decisions
+    from support.tiny import tiny_decisions
 
     from regimewise.data.findings import MAX_FINDINGS_PER_RULE
     from regimewise.data.validate import collect_findings, write_error_report
