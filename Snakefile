@@ -16,6 +16,7 @@ include: "rules/evaluate.smk"
 include: "rules/describe.smk"
 include: "rules/bootstrap.smk"
 include: "rules/sensitivity.smk"
+include: "rules/survival.smk"
 include: "rules/sweep.smk"
 include: "rules/report.smk"
 

@@ -3,7 +3,8 @@
 For each of ``--cohorts`` cohorts of ``--episodes`` episodes without hidden confounding (strength 0), the demo
 protocol's regime is learned, every regime is evaluated by every estimator (the learned regime cross-fitted by
 patient, as the workflow does: ``evaluation.cross_fit_folds``), and ``--replicates`` patient
-bootstrap replicates (each refitting usual care, the Q-models and the regime; :mod:`regimewise.bootstrap.replicates`) give
+bootstrap replicates (each refitting usual care, the Q-models and the regime; :mod:`regimewise.bootstrap.replicates`)
+give
 percentile intervals. The truths come from the simulator by Monte Carlo: the value of the regime learned from
 that cohort (``--truth-episodes`` simulated patients), the episode-weighted mean value of the fold regimes
 the cross-fitted evaluation actually scores, and the value of usual care (once, 200,000 episodes).

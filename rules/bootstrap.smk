@@ -3,6 +3,7 @@ rule bootstrap_shard:
     input:
         protocol=SETTINGS.protocol,
         decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
     output:
         replicates=results("bootstrap/shards/shard_{shard}.json"),
     log:

@@ -33,5 +33,9 @@ def sweep_inputs(wildcards):
     return {"sweep": results("sweep/sweep.json")} if SETTINGS.sweep_specs else {}
 
 
+def survival_inputs(wildcards):
+    return {"survival": results("survival/survival.json")} if SETTINGS.survival else {}
+
+
 def final_outputs():
     return [results("report/report.html"), results("report/summary.json")]

@@ -3,6 +3,7 @@ rule describe:
     input:
         protocol=SETTINGS.protocol,
         decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),
     output:

@@ -1,7 +1,8 @@
 """Bootstrap intervals for every regime's value and for the contrasts between regimes.
 
 Each replicate resamples patients (the ``patient_id`` clusters, all of a patient's episodes together) with
-replacement, refits usual care, the Q-models and the regime on the resample (:func:`regimewise.regime.learning.learn_regime`)
+replacement, refits usual care, the Q-models and the regime on the resample
+(:func:`regimewise.regime.learning.learn_regime`)
 and evaluates every regime by every estimator of the protocol (:func:`regimewise.evaluation.values.evaluate_all`). The
 contrasts are differences of values *within* a replicate, so every contrast uses the same resamples.
 Intervals are percentile intervals (Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 13).
@@ -41,6 +42,7 @@ from regimewise.regime.learning import (
     record_proba,
 )
 from regimewise.sensitivity.analysis import regime_curve
+from regimewise.survival.analysis import survival_values
 from regimewise.usual_care.fitting import fit_usual_care
 
 
@@ -82,13 +84,10 @@ def resample_patients(decisions: pd.DataFrame, groups: list[np.ndarray], rng, si
     return out
 
 
-def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool = False) -> tuple[dict, dict]:
-    """Refit usual care, the Q-models and the regime on ``decisions`` and evaluate it as the workflow does.
-
-    Returns the output of :func:`regimewise.evaluation.values.evaluate_all` and the confounding-sensitivity curve of the
-    refitted regime (:func:`regimewise.sensitivity.analysis.regime_curve`). With ``evaluation.cross_fit_folds`` > 1, usual
-    care is fitted on all of ``decisions`` and the regime is cross-fitted by patient, as in the evaluate stage.
-    """
+def fit_replicate(decisions: pd.DataFrame, protocol: Protocol) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Refit usual care and the regime on ``decisions`` as the workflow does: usual care's probabilities at the
+    records, the learned regime's actions as evaluated (cross-fitted by patient when
+    ``evaluation.cross_fit_folds`` > 1) and the folds of that cross-fitting (None with one fold)."""
     if protocol.evaluation.cross_fit_folds == 1:
         learned = learn_regime(decisions, protocol)
         proba = record_proba(learned, decisions)
@@ -96,36 +95,63 @@ def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool
     else:
         proba = fit_usual_care(decisions, protocol).record_proba
         recommended = cross_fitted_recommendations(decisions, proba, protocol)
-    folds = crossfit_folds(decisions, protocol)
+    return proba, recommended, crossfit_folds(decisions, protocol)
+
+
+def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool = False) -> tuple[dict, dict]:
+    """Refit (:func:`fit_replicate`) and evaluate as the workflow does.
+
+    Returns the output of :func:`regimewise.evaluation.values.evaluate_all` and the confounding-sensitivity curve
+    of the refitted regime (:func:`regimewise.sensitivity.analysis.regime_curve`).
+    """
+    proba, recommended, folds = fit_replicate(decisions, protocol)
     values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds)
     return values, regime_curve(decisions, proba, recommended, protocol)
 
 
-def replicate_values(decisions: pd.DataFrame, protocol: Protocol) -> tuple[dict, dict]:
-    """{regime: {estimator: value}} and the bounds curve of one replicate (:func:`learn_and_evaluate`), so the
-    sensitivity stage reuses these replicates."""
-    values, curve = learn_and_evaluate(decisions, protocol)
-    return point_values(values), {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]}
+def replicate_values(decisions: pd.DataFrame, protocol: Protocol, episodes: pd.DataFrame | None = None) -> dict:
+    """One replicate's {regime: {estimator: value}}, its bounds curve (so the sensitivity stage reuses the
+    replicates) and, with a survival section and episodes, every strategy's survival (the survival stage's
+    intervals)."""
+    proba, recommended, folds = fit_replicate(decisions, protocol)
+    values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds)
+    curve = regime_curve(decisions, proba, recommended, protocol)
+    out = {
+        "values": point_values(values),
+        "sensitivity": {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]},
+    }
+    if protocol.survival is not None and episodes is not None:
+        out["survival"] = survival_values(decisions, episodes, proba, recommended, protocol)
+    return out
 
 
-def run_replicate(decisions, groups, protocol: Protocol, replicate: int, size: int, rng=None) -> dict:
+def resample_episodes(episodes: pd.DataFrame, resample: pd.DataFrame) -> pd.DataFrame:
+    """The episodes table of a resample: one row per resampled episode (``copy/original id``), in its order."""
+    ids = resample["episode_id"].drop_duplicates().to_numpy()
+    original = pd.Series(ids).str.split("/", n=1).str[1].to_numpy()
+    out = episodes.set_index(episodes["episode_id"].astype(str)).loc[original].reset_index(drop=True)
+    out["episode_id"] = ids
+    return out
+
+
+def run_replicate(decisions, groups, protocol: Protocol, replicate: int, size: int, rng=None, episodes=None) -> dict:
     """One replicate's values, or the reason it failed (a resample the models cannot be fitted to).
 
     ``rng`` defaults to the evaluation's stream for ``replicate`` (:func:`replicate_rng`).
     """
     rng = replicate_rng(protocol.seed, replicate) if rng is None else rng
     resample = resample_patients(decisions, groups, rng, size)
+    resampled_episodes = None if episodes is None else resample_episodes(episodes, resample)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            values, curve = replicate_values(resample, protocol)
-            return {"replicate": replicate, "values": values, "sensitivity": curve}
+            return {"replicate": replicate, **replicate_values(resample, protocol, resampled_episodes)}
         except (UserInputError, np.linalg.LinAlgError) as err:
             return {"replicate": replicate, "error": str(err).splitlines()[0]}
 
 
-def run_shard(decisions: pd.DataFrame, protocol: Protocol, shard: int) -> dict:
-    """Every replicate of one shard, with the resample size used."""
+def run_shard(decisions: pd.DataFrame, protocol: Protocol, shard: int, episodes: pd.DataFrame | None = None) -> dict:
+    """Every replicate of one shard, with the resample size used (episodes: for the survival stage's intervals)."""
     spec = protocol.evaluation
     groups = patient_groups(decisions)
     size = resample_size(decisions, protocol)
@@ -134,5 +160,5 @@ def run_shard(decisions: pd.DataFrame, protocol: Protocol, shard: int) -> dict:
         "shard": shard,
         "shards": spec.shards,
         "resample": size,
-        "replicates": [run_replicate(decisions, groups, protocol, r, size["m"]) for r in replicates],
+        "replicates": [run_replicate(decisions, groups, protocol, r, size["m"], episodes=episodes) for r in replicates],
     }

@@ -118,7 +118,8 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
 
 
 def _replicate(decisions, groups, protocol: Protocol, spec_index: int, replicate: int) -> dict:
-    """One patient-bootstrap replicate of a specification (:func:`regimewise.bootstrap.replicates.run_replicate` with the
+    """One patient-bootstrap replicate of a specification (:func:`regimewise.bootstrap.replicates.run_replicate` with
+    the
     specification's own seed stream): its contrasts and bounds curve, or why it failed."""
     rng = sweep_rng(protocol.seed, spec_index, replicate)
     out = run_replicate(decisions, groups, protocol, replicate, len(groups), rng=rng)

@@ -148,7 +148,8 @@ class QFeatures:
         return list(self.scaler.names) + powers
 
 
-# Column a bootstrap resample adds (:func:`regimewise.bootstrap.replicates.resample_patients`): the patient a copy was drawn from.
+# Column a bootstrap resample adds (:func:`regimewise.bootstrap.replicates.resample_patients`): the patient a copy was
+# drawn from.
 RESAMPLED_FROM = "resampled_from"
 
 

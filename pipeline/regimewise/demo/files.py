@@ -12,7 +12,7 @@ import numpy as np
 
 from regimewise.demo.scenario import ACTIONS, DECIMALS, ScenarioParams
 from regimewise.demo.simulate import check_arguments, simulate_cohort
-from regimewise.demo.truth import always, induced_gamma, true_value
+from regimewise.demo.truth import always, induced_gamma, true_outcomes
 from regimewise.io import write_text
 
 
@@ -25,14 +25,20 @@ def _format_table(frame):
     return out.to_csv(index=False, lineterminator="\n")
 
 
+# Survival truths of the demo: every half-year of its two-year horizon (days from the index date).
+SURVIVAL_TIMES = (182.0, 365.0, 547.0, 730.0)
+SURVIVAL_HORIZON = 730.0
+
+
 def _truth(seed, strength, n_truth, gamma, p):
-    """True values (6 decimals) of usual care and of each always-<action> regime, with their SEs."""
+    """True values (6 decimals) and survival of usual care and of each always-<action> regime, with their SEs."""
     regimes = {"usual_care": "usual_care", **{f"always_{a}": always(a) for a in ACTIONS}}
-    values = {}
+    values, survival = {}, {}
     for name, regime in regimes.items():
-        v = true_value(regime, n=n_truth, seed=seed, confounding_strength=strength, gamma=gamma, params=p)
+        v, s = true_outcomes(regime, SURVIVAL_TIMES, SURVIVAL_HORIZON, n_truth, seed, strength, gamma, p)
         values[name] = {"value": round(v.value, 6), "se": round(v.se, 6)}
-    return values
+        survival[name] = s.to_dict()
+    return values, survival
 
 
 def write_cohort(out_dir, n_episodes=3000, seed=20261201, confounding_strength=1.0, n_truth=100_000):
@@ -54,6 +60,7 @@ def write_cohort(out_dir, n_episodes=3000, seed=20261201, confounding_strength=1
     cohort = simulate_cohort(n_episodes, seed, confounding_strength, p)
     check_arguments(n_truth, confounding_strength)
     truth_seed, gamma = seed + 1, 1.0
+    values, survival = _truth(truth_seed, confounding_strength, n_truth, gamma, p)
     truth = {
         "scenario": "Harbourline demo (invented data, for the demo only; research use only, not medical advice)",
         "seed": int(seed),
@@ -64,7 +71,8 @@ def write_cohort(out_dir, n_episodes=3000, seed=20261201, confounding_strength=1
         "truth_seed": int(truth_seed),
         "truth_n": int(n_truth),
         "gamma": gamma,
-        "true_values": _truth(truth_seed, confounding_strength, n_truth, gamma, p),
+        "true_values": values,
+        "true_survival": survival,
         "induced_gamma": {k: round(v, 6) for k, v in asdict(induced_gamma(cohort)).items()},
         "params": asdict(p),
     }

@@ -346,6 +346,25 @@ def _event_days(hazard, days, exp_draws, p):
     return np.maximum(1, np.ceil(time)).astype(np.int64)
 
 
+def event_days(trajectory, population, days, exp_draws, strength, p):
+    """Day of each episode's first event, uncensored: the potential event time under the rollout's regime."""
+    hazard = _yearly_hazard(trajectory.states, population.frailty, strength, p)
+    return _event_days(hazard, days, exp_draws, p)
+
+
+def potential_event_days(regime, n, seed, strength, p):
+    """Event days of ``n`` episodes had every decision followed ``regime`` (no loss to follow-up, no cut-off).
+
+    Common random numbers: the population, the noise, the visit days and the Exp(1) draw that sets each event
+    are those of :func:`simulate_cohort` with the same seed, whatever the regime. Also returns each episode's
+    patient index (for clustered standard errors) and its discounted-return-ready rewards.
+    """
+    population, trajectory, rngs = simulate(regime, n, seed, strength, p)
+    days = _visit_days(n, rngs["visits"], p)
+    exp_draws = rngs["followup"].standard_exponential(n)
+    return event_days(trajectory, population, days, exp_draws, strength, p), population.patient, trajectory.rewards
+
+
 def _follow_up(trajectory, population, days, rng, strength, p):
     """Follow-up days and event indicator: first event versus cut-off or loss to follow-up after day_7."""
     n = days.shape[0]
@@ -353,8 +372,7 @@ def _follow_up(trajectory, population, days, rng, strength, p):
     cutoff = days[:, -1] + rng.integers(p.cutoff_min_days, p.cutoff_max_days + 1, size=n)
     dropout = days[:, -1] + np.ceil(rng.exponential(p.dropout_mean_years * DAYS_PER_YEAR, n)).astype(np.int64)
     censor = np.minimum(cutoff, dropout)
-    hazard = _yearly_hazard(trajectory.states, population.frailty, strength, p)
-    event_day = _event_days(hazard, days, exp_draws, p)
+    event_day = event_days(trajectory, population, days, exp_draws, strength, p)
     event = event_day <= censor
     return np.where(event, event_day, censor), event.astype(np.int64)
 

@@ -29,13 +29,14 @@ def _count_text(n, suppressed, total=None):
     return f"{int(n):,} ({100.0 * n / total:.1f}%)" if total > 0 else f"{int(n):,}"
 
 
-def cohort_table(decisions, protocol):
+def cohort_table(decisions, protocol, episodes=None):
     """Baseline (step-0) characteristics overall and by first action, with SMDs and small-cell suppression.
 
     Every non-reference action is compared with the reference action (the protocol's first). Group sizes and
     binary counts go through :func:`suppress_cells` (threshold ``report.min_cell_count``); a primary
     suppressed cell shows as ``<threshold``, a complementary one as ``suppressed``. Means and SMDs of a group
-    whose size is suppressed are not shown.
+    whose size is suppressed are not shown. With an episodes table holding follow-up and events, two more rows
+    give the follow-up in days (median and interquartile range) and the events (count and %).
     """
     threshold = protocol.report.min_cell_count
     labels = list(protocol.action_labels)
@@ -48,6 +49,7 @@ def cohort_table(decisions, protocol):
     shown = {labels[k]: not size_mask[k] and sizes[k] >= 2 for k in range(len(labels))}
     reference = labels[0]
     rows = [_state_row(baseline, s, codes, labels, sizes, size_mask, shown, threshold) for s in protocol.states]
+    rows += outcome_rows(baseline, episodes, codes, labels, sizes, size_mask, shown, threshold)
     size_text = [_primary_or(sizes[k], size_mask[k], threshold) for k in range(len(labels))]
     return {
         "groups": groups,
@@ -58,6 +60,51 @@ def cohort_table(decisions, protocol):
         "smd_flag": SMD_FLAG,
         "n_flagged": int(sum(row["flag"] for row in rows)),
     }
+
+
+def outcome_rows(baseline, episodes, codes, labels, sizes, size_mask, shown, threshold) -> list[dict]:
+    """Follow-up (median and IQR, days) and events (count and %) by first action, when the episodes have them."""
+    if episodes is None or not {"followup_days", "event"} <= set(episodes.columns):
+        return []
+    joined = baseline[["episode_id"]].merge(episodes, on="episode_id", how="left", validate="one_to_one")
+    follow = joined["followup_days"].to_numpy(dtype=float)
+    groups = [np.ones(len(follow), dtype=bool), *[codes == k for k in range(len(labels))]]
+    names = ["overall", *labels]
+    cells = {
+        name: _median_iqr(follow[rows]) if name == "overall" or shown[name] else "—"
+        for name, rows in zip(names, groups, strict=True)
+    }
+    events = _binary_cells(joined["event"].to_numpy(dtype=float), codes, sizes, size_mask, threshold)
+    no_smd = {a: None for a in labels[1:]}
+    return [
+        {
+            "state": "followup_days",
+            "label": "Follow-up, median (IQR)",
+            "kind": "outcome",
+            "unit": "days",
+            "cells": cells,
+            "smd": no_smd,
+            "max_abs_smd": None,
+            "flag": False,
+        },
+        {
+            "state": "event",
+            "label": "Events during follow-up",
+            "kind": "outcome",
+            "unit": None,
+            "cells": dict(zip(names, events, strict=True)),
+            "smd": no_smd,
+            "max_abs_smd": None,
+            "flag": False,
+        },
+    ]
+
+
+def _median_iqr(values) -> str:
+    if values.size == 0:
+        return "—"
+    q1, median, q3 = np.percentile(values, [25, 50, 75])
+    return f"{median:,.0f} ({q1:,.0f}–{q3:,.0f})"
 
 
 def _primary_or(n, suppressed, threshold):

@@ -64,12 +64,13 @@ def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
     return out
 
 
-def regime_targets(logged: LoggedDecisions, recommended: np.ndarray, labels: tuple[str, ...], fixed: bool):
-    """(name, label, target probabilities) of every regime to evaluate, learned first."""
+def regime_targets(behaviour_proba: np.ndarray, recommended: np.ndarray, labels: tuple[str, ...], fixed: bool):
+    """(name, label, target probabilities) of every regime to evaluate, learned first (also the survival stage's
+    strategies, so both stages name and define the regimes alike)."""
     k = len(labels)
     targets = [
         ("learned", "Learned regime", one_hot(recommended, k)),
-        ("usual_care", "Usual care", logged.behaviour_proba),
+        ("usual_care", "Usual care", behaviour_proba),
     ]
     if fixed:
         targets += [
@@ -92,7 +93,8 @@ def evaluate_regime(
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
     a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
     leaves the model-based estimators (dr, wdr, fqe) null instead of raising. ``folds`` fits the fitted-Q
-    evaluation within each fold (a cross-fitted regime, :func:`regimewise.regime.learning.cross_fitted_recommendations`).
+    evaluation within each fold (a cross-fitted regime,
+    :func:`regimewise.regime.learning.cross_fitted_recommendations`).
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if any(
@@ -237,11 +239,14 @@ def evaluate_all(
     ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
     under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
 
-    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted: the learned
+    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted: the
+    learned
     regime's outcome models are then fitted within each fold.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
-    targets = regime_targets(logged, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
+    targets = regime_targets(
+        logged.behaviour_proba, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies
+    )
     regimes = [
         {
             "name": name,

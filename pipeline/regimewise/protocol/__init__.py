@@ -22,6 +22,7 @@ from regimewise.protocol.sections import (
     SensitivitySpec,
     StateCondition,
     StateVariable,
+    SurvivalSpec,
     SweepSpec,
 )
 
@@ -38,6 +39,7 @@ __all__ = [
     "Specification",
     "StateCondition",
     "StateVariable",
+    "SurvivalSpec",
     "SweepSpec",
     "export_schema",
     "load_protocol",

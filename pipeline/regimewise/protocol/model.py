@@ -29,6 +29,7 @@ from regimewise.protocol.sections import (
     StateVariable,
     Strict,
     Study,
+    SurvivalSpec,
     SweepSpec,
 )
 
@@ -51,6 +52,9 @@ class Protocol(Strict):
     seed: Seed
     report: ReportSpec = ReportSpec()
     sweeps: SweepSpec | None = Field(None, description="optional specification sweep (none: no sweep jobs)")
+    survival: SurvivalSpec | None = Field(
+        None, description="optional survival under each strategy (needs data.episodes)"
+    )
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:
@@ -87,6 +91,15 @@ class Protocol(Strict):
             missing = [a.label for a in self.actions if a.intensity is None]
             if missing:
                 raise ValueError(f"max_intensity_change needs an intensity on every action; {missing[0]!r} has none")
+        return self
+
+    @model_validator(mode="after")
+    def _survival_needs_episodes(self) -> Protocol:
+        if self.survival is not None and self.data.episodes is None:
+            raise ValueError(
+                "survival needs the episodes table with follow-up and event columns; set data.episodes or remove "
+                "survival"
+            )
         return self
 
     @model_validator(mode="after")

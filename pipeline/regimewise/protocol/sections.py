@@ -359,6 +359,47 @@ class ReportSpec(Strict):
     )
 
 
+class SurvivalSpec(Strict):
+    """Survival under each strategy by clone–censor–weight (Cain et al. 2010; Hernán 2018; Maringe et al. 2020)."""
+
+    horizon_days: Annotated[float, Field(gt=0.0, le=36525.0)] = Field(
+        description="end of follow-up in days from time zero (the index date, day 0)"
+    )
+    time_points: Annotated[list[Annotated[float, Field(gt=0.0)]], Field(max_length=20)] = Field(
+        [], description="days at which the table shows survival, risk and contrasts (the horizon is always shown)"
+    )
+    grid_days: Annotated[float, Field(gt=0.0, le=36525.0)] | None = Field(
+        None, description="spacing of the curves' time grid in days; default: the median gap between decisions"
+    )
+    grace: Annotated[int, Field(ge=0, le=100)] = Field(
+        0, description="decision points during which a clone follows usual care before the strategy binds"
+    )
+    dropout_model: bool = Field(
+        True,
+        description="weight by the inverse probability of remaining in follow-up (pooled logistic on the "
+        "states); false assumes loss to follow-up is unrelated to the outcome",
+    )
+    weight_truncation: (
+        Annotated[list[Annotated[float, Field(ge=0.0, le=100.0)]], Field(min_length=2, max_length=2)] | None
+    ) = Field(None, description="percentiles [low, high] at which clone weights are truncated (a sensitivity check)")
+    cox: bool = Field(
+        False,
+        description="also fit a weighted Cox model of each strategy against usual care (a hazard ratio is not a "
+        "causal contrast over time; the risk difference stays the headline)",
+    )
+
+    @model_validator(mode="after")
+    def _points_inside(self) -> SurvivalSpec:
+        outside = [t for t in self.time_points if t > self.horizon_days]
+        if outside:
+            raise ValueError(f"survival.time_points: {outside[0]:g} lies beyond horizon_days ({self.horizon_days:g})")
+        if len(set(self.time_points)) != len(self.time_points):
+            raise ValueError("survival.time_points lists a day twice")
+        if self.weight_truncation is not None and not self.weight_truncation[0] < self.weight_truncation[1]:
+            raise ValueError("survival.weight_truncation must be [low, high] with low < high")
+        return self
+
+
 # Settings a specification sweep may vary (axis name = the setting's place in the protocol), in grid order.
 # Weight truncation is swept through behaviour_model.probability_floor, which caps every inverse probability at
 # 1/floor; behaviour_model.truncation_percentiles only changes diagnostics, never an estimate.

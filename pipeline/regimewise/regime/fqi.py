@@ -393,7 +393,8 @@ class FittedQIteration(BackwardQModel):
         """Mean fitted Q of the regime's choice over first decisions (in-sample; optimistic).
 
         The maximisation makes this an upward-biased estimate of the learned regime's value; use the
-        off-policy estimators of :mod:`regimewise.evaluation.ope` or fitted-Q evaluation on fresh data to report a value.
+        off-policy estimators of :mod:`regimewise.evaluation.ope` or fitted-Q evaluation on fresh data to report a
+        value.
         """
         step0 = np.zeros(np.shape(X0)[0], dtype=int)
         choice = self.recommend(X0, step0, behaviour_proba0, rule_permitted0)

@@ -260,3 +260,68 @@ def weight_histogram_figure(histograms) -> str:
     for ax in axes[-1]:
         ax.set_xlabel("log10 weight")
     return svg_text(fig)
+
+
+# Okabe & Ito (2008), "Color universal design": distinguishable under the common colour-vision deficiencies.
+OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
+LINE_STYLES = ("-", "--", "-.", ":")
+
+
+def survival_figure(survival: dict, min_cell_count: int) -> str:
+    """Survival curve of every strategy (step functions), dotted from the time its effective sample becomes too
+    small; under the plot, the clones still following each strategy at a few times (counts from 1 to
+    ``min_cell_count - 1`` shown as ``<min_cell_count``)."""
+    apply_style()
+    rows = survival["strategies"]
+    fig, (ax, table_ax) = plt.subplots(
+        2,
+        1,
+        figsize=(7.0, 3.4 + 0.2 * len(rows)),
+        gridspec_kw={"height_ratios": [3.0, 0.2 * len(rows) + 0.3]},
+        sharex=False,
+    )
+    fig.subplots_adjust(hspace=0.45)
+    for k, row in enumerate(rows):
+        times = [0.0, *row["curve"]["times"]]
+        values = [1.0, *row["curve"]["survival"]]
+        cut = row["diagnostics"]["unreliable_from"]
+        colour, marker = OKABE_ITO[k % len(OKABE_ITO)], "osD^v<>p"[k % 8]
+        solid = [(t, v) for t, v in zip(times, values) if v is not None and (cut is None or t <= cut)]
+        faint = [(t, v) for t, v in zip(times, values) if v is not None and cut is not None and t >= cut]
+        if solid:
+            ax.step(*zip(*solid), where="post", color=colour, label=row["label"], marker=marker, markersize=3)
+        if faint:
+            ax.step(
+                *zip(*faint),
+                where="post",
+                color=colour,
+                linestyle=":",
+                alpha=0.7,
+                label=None if solid else row["label"],
+            )
+    ax.set_xlabel("days since the index date")
+    ax.set_ylabel("share without the event")
+    ax.legend(frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
+    _following_table(table_ax, rows, min_cell_count, ax.get_xlim())
+    return svg_text(fig)
+
+
+def _count(n, threshold) -> str:
+    n = int(n or 0)
+    return f"<{threshold}" if 0 < n < threshold else f"{n:,}"
+
+
+def _following_table(ax, rows, threshold, xlim):
+    """Clones still following each strategy (unweighted) at up to six grid times, aligned under the time axis."""
+    grid = rows[0]["diagnostics"]["times"]
+    shown = sorted({grid[int(i)] for i in np.linspace(0, len(grid) - 1, min(6, len(grid)))})
+    ax.set_xlim(xlim)
+    ax.set_ylim(len(rows) + 0.5, -0.5)
+    ax.axis("off")
+    ax.text(xlim[0], -0.5, "copies still following (unweighted)", fontsize=8, va="bottom", ha="left", style="italic")
+    for k, row in enumerate(rows):
+        counts = dict(zip(row["diagnostics"]["times"], row["diagnostics"]["n_following"]))
+        colour = OKABE_ITO[k % len(OKABE_ITO)]
+        ax.text(xlim[0], k + 0.5, row["label"] + "  ", fontsize=8, ha="right", va="center", color=colour)
+        for t in shown:
+            ax.text(t, k + 0.5, _count(counts.get(t), threshold), fontsize=8, ha="center", va="center", color=colour)

@@ -16,6 +16,7 @@ from regimewise.report.figures import (
     actions_by_step_figure,
     section_figures,
     sensitivity_figure,
+    survival_figure,
     sweep_figure,
     value_figure,
     weight_histogram_figure,
@@ -68,4 +69,8 @@ def render_html(p, parts, prov, headline) -> str:
         sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
         sweep=parts.get("sweep"),
         sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
+        survival=parts.get("survival"),
+        survival_figure=None
+        if parts.get("survival") is None
+        else survival_figure(parts["survival"], p.report.min_cell_count),
     )

@@ -86,6 +86,7 @@ def build_summary(p, parts, prov) -> dict:
         "headline": headline_sentence(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "sweep": sweep_headlines(parts.get("sweep")),
+        "survival": survival_headlines(parts.get("survival")),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
@@ -189,3 +190,63 @@ def _interval_clause(contrast, bootstrap) -> str:
     low, high = contrast["low"], contrast["high"]
     covers = " — it includes no difference" if low <= 0 <= high else ""
     return f" ({100 * bootstrap['level']:.0f}% bootstrap interval for the difference {low:.2f} to {high:.2f}{covers})"
+
+
+def survival_headlines(survival: dict | None) -> dict | None:
+    """Per strategy at the table times: survival, risk difference against usual care and restricted mean
+    survival time, each with its bootstrap interval and whether the effective sample stays adequate; the sentence."""
+    if survival is None:
+        return None
+    intervals = survival["intervals"]["strategies"]
+    strategies = {}
+    for row in survival["strategies"]:
+        point, limits, cut = row["at_times"], intervals.get(row["name"], {}), row["diagnostics"]["unreliable_from"]
+        strategies[row["name"]] = {
+            "label": row["label"],
+            "survival": point["survival"],
+            "survival_interval": limits.get("survival"),
+            "risk_difference": point["risk_difference"],
+            "risk_difference_interval": limits.get("risk_difference"),
+            "rmst": point["rmst"],
+            "rmst_interval": limits.get("rmst"),
+            "rmst_difference": point["rmst_difference"],
+            "rmst_difference_interval": limits.get("rmst_difference"),
+            "unreliable_from": cut,
+            "reliable_at": [cut is None or t < cut for t in survival["times"]],
+        }
+    return {
+        "horizon_days": survival["horizon_days"],
+        "times": survival["times"],
+        "level": survival["intervals"]["level"],
+        "replicates": survival["intervals"]["replicates"],
+        "dropout_model": survival["dropout_model"]["used"],
+        "grace": survival["grace"],
+        "strategies": strategies,
+        "sentence": survival_sentence(survival, strategies),
+    }
+
+
+def survival_sentence(survival: dict, strategies: dict) -> str:
+    """One plain sentence on the learned regime against usual care at the horizon."""
+    learned, horizon = strategies.get("learned"), survival["horizon_days"]
+    if learned is None or learned["risk_difference"][-1] is None:
+        return f"The learned regime's survival to day {horizon:g} is undefined: no episode follows it from the start."
+    difference = 100 * learned["risk_difference"][-1]
+    limits = learned["risk_difference_interval"] or {}
+    low, high = (limits.get("low") or [None])[-1], (limits.get("high") or [None])[-1]
+    interval = (
+        ""
+        if low is None
+        else f" ({100 * survival['intervals']['level']:.0f}% bootstrap interval {100 * low:.1f} to {100 * high:.1f})"
+    )
+    direction = "lower" if difference < 0 else "higher"
+    sentence = (
+        f"By day {horizon:g}, the estimated risk of the event under the learned regime is {abs(difference):.1f} "
+        f"percentage points {direction} than under usual care{interval}"
+    )
+    if learned["unreliable_from"] is not None and learned["unreliable_from"] <= horizon:
+        return sentence + (
+            f"; but from day {learned['unreliable_from']:g} too few episodes still follow the learned regime for the "
+            "weights to be trusted, so the records cannot confirm this difference."
+        )
+    return sentence + "."

@@ -25,6 +25,7 @@ class Settings:
     episodes_file: str | None
     bootstrap_shards: int = 1
     sweep_specs: tuple[str, ...] = ()
+    survival: bool = False
 
     @property
     def record_inputs(self) -> dict:
@@ -50,4 +51,5 @@ def load_settings(config: dict) -> Settings:
         episodes_file=None if episodes is None else str(episodes),
         bootstrap_shards=pf.protocol.evaluation.shards,
         sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
+        survival=pf.protocol.survival is not None,
     )

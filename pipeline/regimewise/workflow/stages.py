@@ -40,6 +40,7 @@ from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
 from regimewise.sensitivity.analysis import regime_curve, summarise_sensitivity
+from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -57,6 +58,7 @@ def report_stage(
     cohort=None,
     sensitivity=None,
     sweep=None,
+    survival=None,
 ):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
     pf = load_protocol(protocol)
@@ -69,6 +71,7 @@ def report_stage(
         "cohort": None if cohort is None else read_json(cohort),
         "sensitivity": None if sensitivity is None else read_json(sensitivity),
         "sweep": None if sweep is None else read_json(sweep),
+        "survival": None if survival is None else read_json(survival),
     }
     prov = build_provenance(pf)
     headline = build_summary(p, parts, prov)
@@ -132,7 +135,8 @@ def regime_stage(protocol, decisions, proba, table, regime):
     The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
     ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.learning.SAFEGUARDS`); the
     ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
-    that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one fold).
+    that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one
+    fold).
     """
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
@@ -207,17 +211,19 @@ def evaluate_stage(protocol, decisions, proba, table, values):
 
 
 # ---------------------------------------------------------------------------------------------- describe
-def describe_stage(protocol, decisions, proba, table, cohort):
-    """Cohort table, balance before and after weighting, and overlap of taken and recommended actions by step."""
+def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
+    """Cohort table (with follow-up and events when the episodes have them), balance before and after weighting,
+    and overlap of taken and recommended actions by step."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    outcomes = None if episodes is None else read_parquet(episodes)
     probabilities = read_probabilities(proba, p.action_labels)
     recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
     write_json(
         cohort,
         {
             "caution": RECOMMENDATION_CAUTION,
-            "baseline": cohort_table(frame, p),
+            "baseline": cohort_table(frame, p, outcomes),
             "balance_by_step": balance_by_step(frame, probabilities, p),
             "overlap_by_step": overlap_by_step(
                 frame["step"].to_numpy(),
@@ -231,12 +237,14 @@ def describe_stage(protocol, decisions, proba, table, cohort):
 
 
 # ---------------------------------------------------------------------------------------------- bootstrap
-def bootstrap_shard_stage(protocol, decisions, shard, replicates):
-    """Run one shard's bootstrap replicates (wildcard ``shard``), one BLAS thread per job."""
+def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None):
+    """Run one shard's bootstrap replicates (wildcard ``shard``), one BLAS thread per job; with a survival
+    section, each replicate also estimates every strategy's survival."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
     with threadpool_limits(limits=1):
-        out = run_shard(frame, p, int(shard))
+        out = run_shard(frame, p, int(shard), episodes=outcomes)
     write_json(replicates, out)
     log.info("bootstrap shard %s: %d replicates", shard, len(out["replicates"]))
 
@@ -268,6 +276,21 @@ def headline_contrast(intervals: dict, p) -> dict | None:
     return None
 
 
+# ---------------------------------------------------------------------------------------------- survival
+def survival_stage(protocol, decisions, episodes, proba, table, shards, survival):
+    """Survival of every strategy by clone–censor–weight, with diagnostics and bootstrap intervals from the
+    shards (whose replicates refit usual care, the dropout model and the regime)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    probabilities = read_probabilities(proba, p.action_labels)
+    recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
+    out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p)
+    replicates = [r["survival"] for path in shards for r in read_json(path)["replicates"] if "survival" in r]
+    out["intervals"] = survival_intervals(out, replicates, p)
+    out["caution"] = RECOMMENDATION_CAUTION
+    write_json(survival, out)
+
+
 # ---------------------------------------------------------------------------------------------- sweep
 def sweep_spec_stage(protocol, decisions, spec, result):
     """One specification of the sweep (wildcard ``spec``): refit, evaluate and bootstrap; one BLAS thread."""
@@ -295,6 +318,7 @@ STAGES = {
     "bootstrap_shard": bootstrap_shard_stage,
     "bootstrap": bootstrap_stage,
     "sensitivity": sensitivity_stage,
+    "survival": survival_stage,
     "sweep_spec": sweep_spec_stage,
     "sweep": sweep_stage,
     "report": report_stage,

@@ -1,0 +1,207 @@
+"""The survival stage's analysis: every compared strategy cloned, censored at deviation, weighted, and read.
+
+Strategies are those of the evaluation (:func:`regimewise.evaluation.values.regime_targets`: the learned regime as
+evaluated, i.e. cross-fitted, usual care and the fixed strategies), so both stages name and define them alike.
+Usual care is the natural course (every weight 1 but the dropout weights). The curves are weighted Kaplan–Meier
+estimates on a grid of days from time zero (the index date); each strategy is compared with usual care at the
+protocol's time points and the horizon (risk difference and ratio, restricted mean survival time). A strategy
+whose effective sample at a time is below the rule the values use
+(:func:`regimewise.evaluation.values.minimum_reliable_ess`) is flagged unreliable from that time on.
+
+Research use only: survival under a strategy estimated from records is a hypothesis for study, not medical
+advice; decisions stay with licensed clinicians, under local law and ethics approval.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+
+from regimewise.core.features import action_codes
+from regimewise.core.quantiles import bootstrap_quantile
+from regimewise.errors import UserInputError
+from regimewise.evaluation.values import minimum_reliable_ess, regime_targets
+from regimewise.protocol import Protocol
+from regimewise.survival.clones import clone_censor_weight
+from regimewise.survival.cox import weighted_cox
+from regimewise.survival.curves import contrast, survival_curve
+from regimewise.survival.diagnostics import follow_diagnostics
+from regimewise.survival.dropout import DropoutModel
+from regimewise.survival.timeline import make_timeline
+
+USUAL_CARE = "usual_care"
+
+
+def survival_inputs(decisions: pd.DataFrame, episodes: pd.DataFrame, protocol: Protocol):
+    """The decisions as the survival code reads them (action codes) and the episodes' outcome columns."""
+    spec = protocol.survival
+    longest = float(episodes["followup_days"].max())
+    if spec.horizon_days > longest:
+        raise UserInputError(
+            f"survival.horizon_days is {spec.horizon_days:g} but the longest follow-up in the episodes table is "
+            f"{longest:g} days; lower the horizon to at most the longest follow-up"
+        )
+    frame = decisions[["episode_id", "patient_id", "step", "day"]].copy()
+    frame["action"] = action_codes(decisions, protocol.action_labels)
+    return frame, episodes[["episode_id", "followup_days", "event"]]
+
+
+def time_grid(decisions: pd.DataFrame, protocol: Protocol) -> np.ndarray:
+    """Curve grid: every ``grid_days`` (default: the median gap between an episode's decisions) up to the horizon,
+    with the protocol's time points and the horizon added."""
+    spec = protocol.survival
+    step = spec.grid_days
+    if step is None:
+        gaps = decisions.groupby("episode_id", sort=False)["day"].diff().dropna()
+        step = float(gaps.median()) if len(gaps) else spec.horizon_days
+    grid = np.arange(step, spec.horizon_days, step)
+    return np.union1d(np.union1d(grid, spec.time_points), [spec.horizon_days])
+
+
+def table_times(protocol: Protocol) -> list[float]:
+    """Times of the survival table and contrasts: the protocol's time points and the horizon."""
+    spec = protocol.survival
+    return sorted({*map(float, spec.time_points), float(spec.horizon_days)})
+
+
+def _censoring_weights(timeline, decisions, protocol):
+    if not protocol.survival.dropout_model:
+        return None, {"used": False}
+    states = decisions[list(protocol.state_names)].to_numpy(dtype=float)
+    model = DropoutModel().fit(timeline, states)
+    info = {
+        "used": True,
+        "dropouts": model.n_dropouts_,
+        "before_first_decision": model.n_dropouts_before_first_decision_,
+    }
+    return model.weights(timeline, states), info
+
+
+def clone_tables(decisions, episodes, proba, recommended, protocol):
+    """(strategies [(name, label)], {name: CloneTable}, dropout summary) for every compared strategy."""
+    frame, outcomes = survival_inputs(decisions, episodes, protocol)
+    spec = protocol.survival
+    timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
+    ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
+    targets = regime_targets(proba, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
+    tables, strategies = {}, []
+    for name, label, target in targets:
+        tables[name] = clone_censor_weight(
+            timeline,
+            None if name == USUAL_CARE else target,
+            name=name,
+            grace=spec.grace,
+            censoring_weights=ipcw,
+            truncate=None if spec.weight_truncation is None else tuple(spec.weight_truncation),
+        )
+        strategies.append((name, label))
+    return strategies, tables, dropout
+
+
+def strategy_curves(tables, grid, protocol) -> dict:
+    """{name: SurvivalCurve} on the grid; a strategy no clone follows gets an undefined (NaN) curve."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return {name: survival_curve(table, grid, protocol.survival.horizon_days) for name, table in tables.items()}
+
+
+def survival_values(decisions, episodes, proba, recommended, protocol) -> dict:
+    """Survival and RMST of every strategy and their contrasts with usual care at the table times.
+
+    The compact form a bootstrap replicate records: {name: {"survival": [...], "rmst": x,
+    "risk_difference": [...], "rmst_difference": y}}.
+    """
+    _, tables, _ = clone_tables(decisions, episodes, proba, recommended, protocol)
+    times = table_times(protocol)
+    curves = strategy_curves(tables, times, protocol)
+    return {name: _point(curve, curves[USUAL_CARE], times) for name, curve in curves.items()}
+
+
+def _point(curve, usual, times) -> dict:
+    versus = contrast(curve, usual, times).to_dict()
+    return {
+        "survival": [None if np.isnan(v) else float(v) for v in curve.at(times)],
+        "rmst": None if np.isnan(curve.rmst) else float(curve.rmst),
+        "risk_difference": versus["risk_difference"],
+        "rmst_difference": versus["rmst_difference"],
+    }
+
+
+def survival_analysis(decisions, episodes, proba, recommended, protocol) -> dict:
+    """Everything survival.json holds except the bootstrap intervals (added by the stage)."""
+    strategies, tables, dropout = clone_tables(decisions, episodes, proba, recommended, protocol)
+    grid = time_grid(decisions, protocol)
+    times = table_times(protocol)
+    curves = strategy_curves(tables, grid, protocol)
+    floor = minimum_reliable_ess(int(decisions["episode_id"].nunique()), protocol.evaluation)
+    rows = []
+    for name, label in strategies:
+        diagnostics = follow_diagnostics(tables[name], grid, floor, protocol.survival.horizon_days)
+        rows.append(
+            {
+                "name": name,
+                "label": label,
+                "clones": tables[name].to_dict(),
+                "curve": curves[name].to_dict(),
+                "at_times": _point(curves[name], curves[USUAL_CARE], times),
+                "diagnostics": diagnostics.to_dict(),
+            }
+        )
+    out = {
+        "horizon_days": float(protocol.survival.horizon_days),
+        "grid": [float(t) for t in grid],
+        "times": times,
+        "grace": protocol.survival.grace,
+        "dropout_model": dropout,
+        "weight_truncation": protocol.survival.weight_truncation,
+        "minimum_reliable_ess": floor,
+        "strategies": rows,
+        "cox": _cox(tables, protocol),
+    }
+    return out
+
+
+def _cox(tables, protocol) -> dict | None:
+    if not protocol.survival.cox:
+        return None
+    return weighted_cox(tables, USUAL_CARE).to_dict()
+
+
+def survival_intervals(point: dict, replicates: list[dict], protocol: Protocol) -> dict:
+    """Percentile-bootstrap limits (the project's quantile rule) of each strategy's survival, risk difference,
+    RMST and RMST difference at the table times, from the replicates' :func:`survival_values`.
+
+    lifelines' own interval assumes integer weights, so the patient bootstrap (every model refitted, a patient's
+    clones kept together) gives the intervals.
+    """
+    level = protocol.evaluation.interval_level
+    probabilities = [(1 - level) / 2, (1 + level) / 2]
+    out = {}
+    for row in point["strategies"]:
+        name = row["name"]
+        draws = [r[name] for r in replicates if name in r]
+        out[name] = {
+            key: _limits([d[key] for d in draws], probabilities)
+            for key in ("survival", "risk_difference", "rmst", "rmst_difference")
+        }
+    return {"level": level, "replicates": len(replicates), "strategies": out}
+
+
+def _limits(draws: list, probabilities) -> dict:
+    """{"low": ..., "high": ...} per position (lists) or for a scalar; None where fewer than 2 draws are defined."""
+    if draws and isinstance(draws[0], list):
+        columns = list(zip(*draws, strict=True))
+        pairs = [_scalar_limits(column, probabilities) for column in columns]
+        return {"low": [p[0] for p in pairs], "high": [p[1] for p in pairs]}
+    low, high = _scalar_limits(draws, probabilities)
+    return {"low": low, "high": high}
+
+
+def _scalar_limits(values, probabilities):
+    defined = np.asarray([v for v in values if v is not None], dtype=float)
+    if defined.size < 2:
+        return None, None
+    low, high = bootstrap_quantile(defined, probabilities)
+    return float(low), float(high)

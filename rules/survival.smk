@@ -1,0 +1,21 @@
+# ---- survival: clone, censor at deviation, weight; curves, contrasts and bootstrap intervals ------------
+rule survival:
+    input:
+        protocol=SETTINGS.protocol,
+        decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+        table=results("regime/recommendations.parquet"),
+        shards=bootstrap_shard_files(),
+    output:
+        survival=results("survival/survival.json"),
+    log:
+        logs("survival"),
+    benchmark:
+        benchmarks("survival")
+    params:
+        code=stage_code_hash("survival"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
