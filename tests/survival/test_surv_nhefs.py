@@ -13,16 +13,12 @@ Data: ``causaldata.nhefs`` (1629 cigarette smokers, 318 deaths).
 
 import causaldata  # in the test extra: a missing install must fail, not skip
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
+from support.nhefs import propensity_design
 from surv_helpers import one_hot, point_treatment
 
 from regimewise.survival import clone_censor_weight, contrast, make_timeline, survival_curve
-
-
-def _indicators(column, prefix):
-    return pd.get_dummies(column, prefix=prefix, drop_first=True, dtype=float)
 
 
 @pytest.fixture(scope="module")
@@ -35,26 +31,7 @@ def nhefs():
 @pytest.fixture(scope="module")
 def quit_probability(nhefs):
     """P(qsmk = 1 | L) from the logistic model of What If section 12.2 / 17.4, fitted with statsmodels."""
-    design = pd.concat(
-        [
-            pd.DataFrame(
-                {
-                    "sex": nhefs["sex"],
-                    "race": nhefs["race"],
-                    "age": nhefs["age"],
-                    "age2": nhefs["age"] ** 2,
-                    "intensity": nhefs["smokeintensity"],
-                    "intensity2": nhefs["smokeintensity"] ** 2,
-                    "years": nhefs["smokeyrs"],
-                    "years2": nhefs["smokeyrs"] ** 2,
-                    "wt71": nhefs["wt71"],
-                    "wt71_2": nhefs["wt71"] ** 2,
-                }
-            ),
-            *(_indicators(nhefs[name], name) for name in ("education", "exercise", "active")),
-        ],
-        axis=1,
-    ).astype(float)
+    design = propensity_design(nhefs)
     design = sm.add_constant(design)
     fit = sm.GLM(nhefs["qsmk"].astype(float), design, family=sm.families.Binomial()).fit()
     return fit.predict(design).to_numpy()

@@ -7,8 +7,8 @@ balance"); the book's text prints 3.4 (95% CI 2.4 to 4.5).
 
 import causaldata  # in the test extra: a missing install must fail, not skip
 import numpy as np
-import pandas as pd
 import pytest
+from support.nhefs import propensity_design
 
 from regimewise.core.weighting import (
     inverse_probability_weights,
@@ -23,31 +23,6 @@ from regimewise.usual_care.logit import MultinomialLogitBehaviour
 from regimewise.usual_care.metrics import probability_of_taken
 
 
-def _indicators(column, prefix):
-    """Indicator columns for a categorical variable, first level as reference (as R's factor() does)."""
-    return pd.get_dummies(column, prefix=prefix, drop_first=True, dtype=float)
-
-
-def _propensity_design(nhefs):
-    """The covariates of What If Program 12.2: squares for age, intensity, years, weight; three categoricals."""
-    numeric = pd.DataFrame(
-        {
-            "sex": nhefs["sex"].astype(int),
-            "race": nhefs["race"].astype(int),
-            "age": nhefs["age"],
-            "age_sq": nhefs["age"] ** 2,
-            "smokeintensity": nhefs["smokeintensity"],
-            "smokeintensity_sq": nhefs["smokeintensity"] ** 2,
-            "smokeyrs": nhefs["smokeyrs"],
-            "smokeyrs_sq": nhefs["smokeyrs"] ** 2,
-            "wt71": nhefs["wt71"],
-            "wt71_sq": nhefs["wt71"] ** 2,
-        }
-    )
-    categorical = [_indicators(nhefs[name], name) for name in ("education", "exercise", "active")]
-    return pd.concat([numeric, *categorical], axis=1).astype(float)
-
-
 @pytest.fixture(scope="module")
 def nhefs():
     data = causaldata.nhefs.load_pandas().data
@@ -57,7 +32,7 @@ def nhefs():
 @pytest.fixture(scope="module")
 def propensity(nhefs):
     """Our usual-care model (K = 2) fitted to qsmk; returns (action, probability of the action taken)."""
-    design = _propensity_design(nhefs)
+    design = propensity_design(nhefs)
     action = nhefs["qsmk"].to_numpy().astype(int)
     model = MultinomialLogitBehaviour().fit(design, action, n_actions=2)
     assert model.converged_
@@ -103,7 +78,7 @@ def test_ip_weighted_effect_matches_what_if_program_12_3(nhefs, propensity):
 
 
 def test_default_probability_floor_leaves_the_what_if_weights_unchanged(nhefs):
-    design = _propensity_design(nhefs)
+    design = propensity_design(nhefs)
     action = nhefs["qsmk"].to_numpy().astype(int)
     proba = MultinomialLogitBehaviour().fit(design, action, n_actions=2).predict_proba(design)
     floored = apply_probability_floor(proba, BehaviourModelSpec().probability_floor)
