@@ -23,6 +23,13 @@ import pyarrow.parquet as pq
 from regimewise.errors import UserInputError
 
 
+def current_umask() -> int:
+    """The process's file-creation mask (read by setting and restoring it; no other way exists in Python)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @contextmanager
 def atomic_path(path: str | Path):
     """Yield a temporary path beside ``path``; rename it onto ``path`` only if the block succeeds."""
@@ -33,6 +40,7 @@ def atomic_path(path: str | Path):
     tmp = Path(tmp)
     try:
         yield tmp
+        os.chmod(tmp, 0o666 & ~current_umask())  # mkstemp creates 0600; outputs follow the user's umask
         os.replace(tmp, path)
     finally:
         if tmp.exists():

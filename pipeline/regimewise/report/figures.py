@@ -5,10 +5,12 @@ The figures read the stage outputs (JSON-ready dicts) only; no statistics are co
 
 from __future__ import annotations
 
+import html
 import io
 
 import matplotlib
 import numpy as np
+from cycler import cycler
 
 from regimewise.estimators import ESTIMATORS
 
@@ -18,6 +20,11 @@ import matplotlib.pyplot as plt  # noqa: E402
 from regimewise.describe.balance import SMD_FLAG
 from regimewise.usual_care.diagnostics import CRUMP_CUT
 
+# Okabe & Ito (2008), "Color universal design": distinguishable under the common colour-vision deficiencies.
+OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
+# A reliability bin with fewer decisions than this is drawn hollow: its observed share is too noisy to read.
+SPARSE_BIN = 20
+
 
 # ---------------------------------------------------------------------------------------------- figures
 def panel_grid(n_panels):
@@ -25,7 +32,7 @@ def panel_grid(n_panels):
     cols = min(4, n_panels)
     rows = int(np.ceil(n_panels / cols))
     fig, axes = plt.subplots(
-        rows, cols, figsize=(2.2 * cols + 0.8, 2.0 * rows + 0.4), sharex=True, sharey=True, squeeze=False
+        rows, cols, figsize=(1.6 * cols + 0.6, 1.6 * rows + 0.5), sharex=True, sharey=True, squeeze=False
     )
     for ax in axes.flat[n_panels:]:
         ax.set_visible(False)
@@ -41,12 +48,25 @@ def reliability_figure(by_step, labels) -> str:
         ax.plot([0, 1], [0, 1], color="0.7", linewidth=0.8)
         for k, label in enumerate(labels):
             curve = by_step[step]["reliability"][label]
-            ax.plot(curve["mean_predicted"], curve["observed"], "-o", markersize=2.5, color=f"C{k}", label=label)
+            x, y, n = (
+                curve["mean_predicted"],
+                curve["observed"],
+                curve.get("count", [SPARSE_BIN] * len(curve["observed"])),
+            )
+            ax.plot(x, y, "-", color=f"C{k}", linewidth=0.9, label=label)
+            full = [i for i in range(len(x)) if n[i] >= SPARSE_BIN]
+            sparse = [i for i in range(len(x)) if n[i] < SPARSE_BIN]
+            ax.plot([x[i] for i in full], [y[i] for i in full], "o", markersize=3, color=f"C{k}")
+            ax.plot([x[i] for i in sparse], [y[i] for i in sparse], "o", markersize=3, color=f"C{k}", fillstyle="none")
         ax.set_title(f"decision point {step}")
     fig.supxlabel("mean predicted probability")
     fig.supylabel("observed share")
-    fig.axes[0].legend(frameon=False, fontsize=7)
-    return svg_text(fig)
+    fig.axes[0].legend(frameon=False)
+    return svg_text(
+        fig,
+        "Reliability curves of the usual-care model by decision point: observed share of each action "
+        f"against its mean predicted probability; hollow points are bins with fewer than {SPARSE_BIN} decisions.",
+    )
 
 
 def overlap_figure(overlap) -> str:
@@ -57,17 +77,22 @@ def overlap_figure(overlap) -> str:
     for ax, step in zip(axes, steps):
         for key, colour, label in (
             ("taken_probability", "C0", "taken"),
-            ("recommended_probability", "C3", "recommended"),
+            ("recommended_probability", "C5", "recommended"),
         ):
             counts = np.asarray(overlap[step][key]["histogram"], dtype=float)
             edges = np.linspace(0.0, 1.0, counts.size + 1)
-            ax.stairs(counts / max(counts.sum(), 1.0), edges, color=colour, label=label)
+            style = "-" if label == "taken" else "--"
+            ax.stairs(counts / max(counts.sum(), 1.0), edges, color=colour, linestyle=style, label=label)
         ax.axvline(CRUMP_CUT, color="0.6", linestyle=":", linewidth=0.8)
         ax.set_title(f"decision point {step}: {overlap[step]['verdict']}")
     fig.supxlabel("usual care's estimated probability of the action")
     fig.supylabel("share of decisions")
-    fig.axes[0].legend(frameon=False, fontsize=7)
-    return svg_text(fig)
+    fig.axes[0].legend(frameon=False)
+    return svg_text(
+        fig,
+        "Overlap by decision point: distribution of usual care's estimated probability of the action "
+        "taken (solid) and of the action the learned regime recommends (dashed).",
+    )
 
 
 def balance_figure(balance, state_labels) -> str:
@@ -92,11 +117,15 @@ def balance_figure(balance, state_labels) -> str:
         )
         ax.plot([np.nan if v is None else v for v in after], ys, "o", color="C1", markersize=3, label="weighted")
         ax.axvline(SMD_FLAG, color="0.6", linestyle=":", linewidth=0.8)
-        ax.set_yticks(ys, [state_labels[n] for n in names], fontsize=7)
+        ax.set_yticks(ys, [state_labels[n] for n in names], fontsize=9)
         ax.set_title(f"decision point {step}")
     fig.supxlabel("largest |standardised mean difference| against the reference action")
-    fig.axes[0].legend(frameon=False, fontsize=7)
-    return svg_text(fig)
+    fig.axes[0].legend(frameon=False, fontsize=9)
+    return svg_text(
+        fig,
+        "Balance plot: for each state, the largest absolute standardised mean difference against the "
+        "reference action before and after weighting.",
+    )
 
 
 def section_figures(protocol, behaviour, cohort) -> dict:
@@ -131,8 +160,12 @@ def sensitivity_figure(sensitivity: dict) -> str:
         ax.axvline(sensitivity["tipping_point"], color="C3", linestyle="--", label="tipping point Γ*")
     ax.set_xlabel("confounding strength Γ (odds-ratio bound)")
     ax.set_ylabel("learned − usual care")
-    ax.legend(frameon=False, fontsize=8, loc="upper left", bbox_to_anchor=(1.0, 1.0))
-    return svg_text(fig)
+    ax.legend(frameon=False, fontsize=9, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    return svg_text(
+        fig,
+        "Bounds of the learned-minus-usual-care difference and their bootstrap interval as the assumed "
+        "confounding strength grows.",
+    )
 
 
 def sweep_figure(sweep: dict) -> str:
@@ -160,16 +193,25 @@ def sweep_figure(sweep: dict) -> str:
     ax.axvline(0.0, color="black", linewidth=0.8)
     ax.set_yticks(range(len(rows)), [r["id"] + (" (pre-specified)" if r["prespecified"] else "") for r in rows])
     ax.set_xlabel(f"learned − usual care ({sweep['estimator']}) with {100 * sweep['level']:.0f}% bootstrap interval")
-    return svg_text(fig)
+    return svg_text(
+        fig,
+        "Each specification's learned-minus-usual-care difference with its bootstrap interval, sorted "
+        "by estimate; the pre-specified analysis is marked.",
+    )
 
 
 # ---------------------------------------------------------------------------------------------- figures
-def svg_text(fig) -> str:
+def svg_text(fig, summary: str) -> str:
+    """Inline SVG of ``fig`` (no timestamp), marked as an image with ``summary`` as its accessible name and title."""
     buffer = io.StringIO()
     fig.savefig(buffer, format="svg", metadata={"Date": None}, bbox_inches="tight")
     plt.close(fig)
     text = buffer.getvalue()
-    return text[text.index("<svg") :]
+    text = text[text.index("<svg") :]
+    label = html.escape(summary, quote=True)
+    head = text.index(">") + 1
+    opening = text[:head].replace("<svg ", f'<svg role="img" aria-label="{label}" ', 1)
+    return opening + f"<title>{label}</title>" + text[head:]
 
 
 def apply_style():
@@ -177,7 +219,10 @@ def apply_style():
         {
             "svg.hashsalt": "regimewise",
             "svg.fonttype": "none",
-            "font.size": 9,
+            "font.size": 10,
+            "legend.fontsize": 9,
+            "axes.titlesize": 10,
+            "axes.prop_cycle": cycler(color=OKABE_ITO),
             "axes.spines.top": False,
             "axes.spines.right": False,
         }
@@ -188,7 +233,7 @@ def actions_by_step_figure(labels, by_step) -> str:
     """Share of each action recommended (learned regime) and taken (usual care) at each decision point."""
     apply_style()
     steps = sorted(by_step, key=int)
-    fig, axes = plt.subplots(1, 2, figsize=(8.5, 3.0), sharey=True)
+    fig, axes = plt.subplots(1, 2, figsize=(6.8, 3.0), sharey=True)
     for ax, key, title in zip(axes, ("taken", "recommended"), ("Usual care (taken)", "Learned regime (recommended)")):
         bottom = [0.0] * len(steps)
         for label in labels:
@@ -199,7 +244,9 @@ def actions_by_step_figure(labels, by_step) -> str:
         ax.set_xlabel("decision point")
     axes[0].set_ylabel("share of decisions")
     axes[1].legend(loc="center left", bbox_to_anchor=(1.0, 0.5), frameon=False)
-    return svg_text(fig)
+    return svg_text(
+        fig, "Share of each action taken by usual care and recommended by the learned regime at each decision point."
+    )
 
 
 def value_figure(regimes, estimators) -> str:
@@ -233,7 +280,11 @@ def value_figure(regimes, estimators) -> str:
     ax.set_yticks(range(len(regimes)), [r["label"] for r in reversed(regimes)])
     ax.set_xlabel("estimated value (expected total reward per episode)")
     ax.legend(frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
-    return svg_text(fig)
+    return svg_text(
+        fig,
+        "Each regime's estimated value by each estimator with its bootstrap interval; hollow markers "
+        "rest on too small an effective sample.",
+    )
 
 
 def weight_histogram_figure(histograms) -> str:
@@ -243,7 +294,7 @@ def weight_histogram_figure(histograms) -> str:
     edges = histograms["log10_edges"]
     columns = min(4, len(by_step))
     rows = -(-len(by_step) // columns)
-    fig, axes = plt.subplots(rows, columns, figsize=(2.2 * columns, 1.7 * rows), sharex=True, squeeze=False)
+    fig, axes = plt.subplots(rows, columns, figsize=(1.7 * columns, 1.6 * rows), sharex=True, squeeze=False)
     for ax in axes.flat[len(by_step) :]:
         ax.set_visible(False)
     for ax, h in zip(axes.flat, by_step):
@@ -256,14 +307,18 @@ def weight_histogram_figure(histograms) -> str:
             edgecolor="white",
             linewidth=0.4,
         )
-        ax.set_title(f"decision {h['step']}: {h['zero']:,} at 0", fontsize=8)
+        ax.set_title(f"decision {h['step']}: {h['zero']:,} at 0")
     for ax in axes[-1]:
         ax.set_xlabel("log10 weight")
-    return svg_text(fig)
+    for ax in axes[:, 0]:
+        ax.set_ylabel("episodes")
+    return svg_text(
+        fig,
+        "Histograms of the learned regime's cumulative importance weights (log10) at each decision "
+        "point; the title gives the episodes whose weight is 0.",
+    )
 
 
-# Okabe & Ito (2008), "Color universal design": distinguishable under the common colour-vision deficiencies.
-OKABE_ITO = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442", "#000000")
 LINE_STYLES = ("-", "--", "-.", ":")
 
 
@@ -303,7 +358,11 @@ def survival_figure(survival: dict, min_cell_count: int) -> str:
     ax.set_ylabel("share without the event")
     ax.legend(frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
     _following_table(table_ax, rows, min_cell_count, ax.get_xlim())
-    return svg_text(fig)
+    return svg_text(
+        fig,
+        "Survival without the event under each strategy by days since the index date, dotted where too "
+        "few copies follow the strategy.",
+    )
 
 
 def _count(n, threshold) -> str:
@@ -318,10 +377,10 @@ def _following_table(ax, rows, threshold, xlim):
     ax.set_xlim(xlim)
     ax.set_ylim(len(rows) + 0.5, -0.5)
     ax.axis("off")
-    ax.text(xlim[0], -0.5, "copies still following (unweighted)", fontsize=8, va="bottom", ha="left", style="italic")
+    ax.text(xlim[0], -0.5, "copies still following (unweighted)", fontsize=9, va="bottom", ha="left", style="italic")
     for k, row in enumerate(rows):
         counts = dict(zip(row["diagnostics"]["times"], row["diagnostics"]["n_following"]))
         colour = OKABE_ITO[k % len(OKABE_ITO)]
-        ax.text(xlim[0], k + 0.5, row["label"] + "  ", fontsize=8, ha="right", va="center", color=colour)
+        ax.text(xlim[0], k + 0.5, row["label"] + "  ", fontsize=9, ha="right", va="center", color=colour)
         for t in shown:
-            ax.text(t, k + 0.5, _count(counts.get(t), threshold), fontsize=8, ha="center", va="center", color=colour)
+            ax.text(t, k + 0.5, _count(counts.get(t), threshold), fontsize=9, ha="center", va="center", color=colour)

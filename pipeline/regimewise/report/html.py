@@ -13,6 +13,7 @@ import jinja2
 
 from regimewise.cautions import REPORT_CAUTIONS
 from regimewise.report.figures import (
+    SPARSE_BIN,
     actions_by_step_figure,
     section_figures,
     sensitivity_figure,
@@ -70,6 +71,7 @@ def render_html(p, parts, prov, headline) -> str:
         sweep=parts.get("sweep"),
         sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
         survival=parts.get("survival"),
+        sparse_bin=SPARSE_BIN,
         survival_figure=None
         if parts.get("survival") is None
         else survival_figure(parts["survival"], p.report.min_cell_count),

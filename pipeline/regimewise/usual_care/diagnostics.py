@@ -223,7 +223,8 @@ def usual_care_diagnostics(protocol, frame, usual_care) -> dict:
         "model": _model_block(protocol, usual_care),
         "decisions": int(len(frame)),
         "auc": overall["auc"],
-        "auc_method": "one-vs-rest macro average, out-of-fold probabilities",
+        "auc_method": "one-vs-rest macro average, "
+        + ("out-of-fold probabilities" if spec.folds >= 2 else "in-sample probabilities"),
         "brier": overall["brier"],
         "cross_fitting": {
             "folds": spec.folds,
