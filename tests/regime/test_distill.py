@@ -38,14 +38,31 @@ def data():
     return frame, noisy, rng.integers(0, 400, n)
 
 
+OPS = {"≤": np.less_equal, "<": np.less, ">": np.greater, "≥": np.greater_equal, "=": np.equal}
+
+
 def rows_of(conditions, frame):
-    """Rows selected by a rule's plain-words conditions ('name op value', op in ≤ > =)."""
+    """Rows selected by a rule's plain-words conditions: 'name op value' or 'low op name op high'."""
     mask = np.ones(len(frame), dtype=bool)
     for cond in conditions:
-        name, op, value = cond.split(" ")
-        col = frame[name].to_numpy(dtype=float)
-        mask &= {"≤": col <= float(value), ">": col > float(value), "=": col == float(value)}[op]
+        parts = cond.split(" ")
+        if len(parts) == 3:
+            name, op, value = parts
+            mask &= OPS[op](frame[name].to_numpy(dtype=float), float(value))
+        else:
+            low, op_low, name, op_high, high = parts
+            col = frame[name].to_numpy(dtype=float)
+            mask &= OPS[op_low](float(low), col) & OPS[op_high](col, float(high))
     return mask
+
+
+def test_rules_merge_thresholds_and_show_integers_as_integers(data):
+    frame, recommended, groups = data
+    readable = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0)
+    for rule in readable.rules:
+        names = [c.split(" ")[0] if c.split(" ")[1] in OPS else c.split(" ")[2] for c in rule.conditions]
+        assert len(names) == len(set(names)), rule.conditions  # one condition per state
+        assert ".5" not in " ".join(c for c in rule.conditions if "level" in c)  # whole numbers for an integer state
 
 
 def test_fidelity_matches_sklearn_tree(data):

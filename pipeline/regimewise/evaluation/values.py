@@ -74,7 +74,8 @@ def regime_targets(behaviour_proba: np.ndarray, recommended: np.ndarray, labels:
     ]
     if fixed:
         targets += [
-            (f"always_{a}", f"Always {a}", one_hot(np.full(len(recommended), j), k)) for j, a in enumerate(labels)
+            (f"always_{a}", f"Always {a.replace('_', ' ')}", one_hot(np.full(len(recommended), j), k))
+            for j, a in enumerate(labels)
         ]
     return targets
 

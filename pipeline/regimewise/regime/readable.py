@@ -61,31 +61,61 @@ class ReadableRegime:
         return out
 
 
-def _condition(name, threshold, left, binary):
-    if binary:
-        return f"{name} = {0 if left else 1}"
-    return f"{name} {'≤' if left else '>'} {threshold:.6g}"
+def _conditions(names, bounds, binary, integer) -> tuple[str, ...]:
+    """One condition per state on the path, its thresholds merged: ``a < x ≤ b``; an integer state as whole
+    numbers (``x ≤ 3``, ``x ≥ 4``, ``2 ≤ x ≤ 3``); a binary state as ``x = 0`` or ``x = 1``."""
+    out = []
+    for f in sorted(bounds):
+        low, high = bounds[f]
+        name = names[f]
+        if binary[f]:
+            out.append(f"{name} = {1 if low is not None else 0}")
+        elif integer[f]:
+            lo = None if low is None else int(np.floor(low)) + 1
+            hi = None if high is None else int(np.floor(high))
+            out.append(_range_text(name, lo, hi, "≥", "≤", whole=True))
+        else:
+            out.append(_range_text(name, low, high, ">", "≤", whole=False))
+    return tuple(out)
+
+
+def _range_text(name, low, high, above, below, whole) -> str:
+    show = (lambda v: f"{v:d}") if whole else (lambda v: f"{v:.6g}")
+    if low is not None and high is not None:
+        return (
+            f"{show(low)} {'≤' if whole else '<'} {name} ≤ {show(high)}"
+            if low != high or not whole
+            else f"{name} = {low}"
+        )
+    if low is not None:
+        return f"{name} {above} {show(low)}"
+    return f"{name} {below} {show(high)}"
 
 
 def tree_rules(tree, state_names, binary, action_labels, X, target) -> tuple[TreeRule, ...]:
-    """Every leaf of a fitted tree as a :class:`TreeRule` (depth-first, left branch first)."""
+    """Every leaf of a fitted tree as a :class:`TreeRule` (depth-first, left branch first), each path's
+    thresholds merged into one condition per state (:func:`_conditions`)."""
     t = tree.tree_
     leaf_of = tree.apply(X)
     predicted = tree.predict(X)
+    values = np.asarray(X, dtype=float)
+    integer = [bool(np.all(values[:, j] == np.round(values[:, j]))) for j in range(values.shape[1])]
     rules = []
 
-    def walk(node, conditions):
+    def walk(node, bounds):
         if t.children_left[node] == -1:
             rows = leaf_of == node
             action = int(tree.classes_[np.argmax(t.value[node][0])])
             agreement = float(np.mean(target[rows] == predicted[rows])) if rows.any() else float("nan")
-            rules.append(TreeRule(tuple(conditions), action_labels[action], int(rows.sum()), agreement))
+            conditions = _conditions(state_names, bounds, binary, integer)
+            rules.append(TreeRule(conditions, action_labels[action], int(rows.sum()), agreement))
             return
-        f, thr = t.feature[node], t.threshold[node]
-        walk(t.children_left[node], [*conditions, _condition(state_names[f], thr, True, binary[f])])
-        walk(t.children_right[node], [*conditions, _condition(state_names[f], thr, False, binary[f])])
+        f, thr = int(t.feature[node]), float(t.threshold[node])
+        low, high = bounds.get(f, (None, None))
+        walk(t.children_left[node], {**bounds, f: (low, thr if high is None else min(high, thr))})
+        walk(t.children_right[node], {**bounds, f: (thr if low is None else max(low, thr), high)})
 
-    walk(0, [])
+    walk(0, {})
     return tuple(rules)
 
 

@@ -16,7 +16,7 @@ SAFEGUARD_LABELS = {
     "unconstrained": "Unconstrained",
     "support": "Support-constrained",
     "rules": "Rule- and support-constrained",
-    "pessimistic": "Pessimistic (rules, support, mean − k·sd)",
+    "pessimistic": "Pessimistic (rules, support, Q minus k bootstrap standard deviations)",
 }
 
 
@@ -67,7 +67,9 @@ def regime_summary(p, frame, fqi, features, recommended, probabilities) -> dict:
     q = p.q_model
     return {
         "caution": RECOMMENDATION_CAUTION,
-        "method": f"fitted-Q iteration ({q.learning_mode} mode), {q.kind.replace('_', ' ')} Q-model, "
+        "method": "fitted-Q iteration ("
+        + ("one Q-model per decision point, fitted backward" if q.learning_mode == "backward" else "one pooled Q-model")
+        + f"), {q.kind.replace('_', ' ')} Q-model, "
         "clinical rules and support constraint" + (", pessimistic" if p.constraints.pessimism > 0 else ""),
         "constraints": {
             "support_threshold": p.constraints.support_threshold,

@@ -48,6 +48,7 @@ def render_html(p, parts, prov, headline) -> str:
         lstrip_blocks=True,
     )
     environment.filters["cell"] = lambda n: cell_count(n, p.report.min_cell_count)
+    environment.filters["words"] = lambda identifier: str(identifier).replace("_", " ")
     environment.filters["num"] = _number
     environment.filters["pct"] = lambda x: "—" if x is None else f"{100 * x:.1f}%"
     template = environment.get_template("report.html")

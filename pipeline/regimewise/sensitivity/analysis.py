@@ -171,8 +171,9 @@ def headline_e_values(headline: dict | None, returns_sd: float) -> dict | None:
         "risk_ratio": convert(headline["difference"]),
         "e_value": e_value(convert(headline["difference"])),
         "e_value_interval": e_value_interval(convert(low), convert(high)),
-        "conversion": "risk ratio ≈ exp(0.91 × difference / SD of returns) (VanderWeele & Ding 2017, after Chinn "
-        "2000; factor from memory)",
+        "conversion": "risk ratio ≈ exp(0.91 × difference / SD of returns): Chinn's (2000) log odds ratio of 1.81 per "
+        "standard deviation, halved by the square-root conversion of an odds ratio for a common outcome "
+        "(VanderWeele & Ding 2017)",
     }
 
 
