@@ -157,7 +157,9 @@ def sensitivity_figure(sensitivity: dict) -> str:
     ax.plot(curve["gamma"], curve["contrast_upper"], color="C0")
     ax.axhline(0.0, color="black", linewidth=0.8)
     if sensitivity["tipping_point"] is not None:
-        ax.axvline(sensitivity["tipping_point"], color="C3", linestyle="--", label="tipping point Γ*")
+        ax.axvline(sensitivity["tipping_point"], color="C5", linestyle="--", label="tipping point Γ* (interval)")
+    if sensitivity.get("tipping_point_bounds") not in (None, sensitivity["tipping_point"]):
+        ax.axvline(sensitivity["tipping_point_bounds"], color="C5", linestyle=":", label="bounds reach zero")
     ax.set_xlabel("confounding strength Γ (odds-ratio bound)")
     ax.set_ylabel("learned − usual care")
     ax.legend(frameon=False, fontsize=9, loc="upper left", bbox_to_anchor=(1.0, 1.0))

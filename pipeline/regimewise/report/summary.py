@@ -103,6 +103,7 @@ def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
         "low_ess",
         "confounded_decisions",
         "tipping_point",
+        "tipping_point_bounds",
         "gamma_max",
         "precision",
         "table",

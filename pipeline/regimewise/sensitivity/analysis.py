@@ -34,6 +34,7 @@ from regimewise.core.arrays import finite_or_none
 from regimewise.core.features import action_codes, episode_codes
 from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.core.weighting import kish_ess
+from regimewise.estimators import ESTIMATORS
 from regimewise.sensitivity.bounds import analysis_gammas, bounds_curve, tipping_point
 from regimewise.sensitivity.evalues import (
     e_value,
@@ -120,10 +121,18 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
         return edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
 
     star = None if not np.all(np.isfinite(edge)) else tipping_point(edge_at, spec.gamma_max, spec.precision)
+    bounds_edge = contrast[:, 0] if sign > 0 else -contrast[:, 1]
+
+    def bounds_at(gamma):
+        return bounds_edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
+
+    finite_bounds = np.all(np.isfinite(bounds_edge))
+    bounds_star = tipping_point(bounds_at, spec.gamma_max, spec.precision) if finite_bounds else None
     shown = [int(np.searchsorted(gammas, g)) for g in spec.gammas]
     floor = max(protocol.evaluation.minimum_ess, protocol.evaluation.minimum_ess_fraction * point["n_episodes"])
     return {
-        "estimator": "wis (trajectory-weighted importance sampling)",
+        "estimator": "wis",
+        "estimator_words": ESTIMATORS["wis"].words,
         "ess": point["ess"],
         "low_ess": bool(point["ess"] < floor),
         "confounded_decisions": spec.confounded_decisions,
@@ -150,10 +159,11 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
             "contrast_upper": contrast[:, 1].tolist(),
         },
         "tipping_point": star,
+        "tipping_point_bounds": bounds_star,
         "gamma_max": spec.gamma_max,
         "precision": spec.precision,
         "e_values": headline_e_values(headline, point["returns_sd"]),
-        "sentence": tipping_sentence(star, spec.gamma_max, benefit)
+        "sentence": tipping_sentence(star, spec.gamma_max, benefit) + bounds_sentence(star, bounds_star, spec.gamma_max)
         if replicates
         else ("Without bootstrap replicates the bounds have no interval, so no tipping point is computed."),
     }
@@ -195,4 +205,15 @@ def tipping_sentence(star, gamma_max, benefit) -> str:
         f"A hidden factor that changed the odds of the action clinicians took by a factor of {star:.2f} "
         "(in either direction, at every confounded decision) would be enough to make the interval for the "
         "learned-minus-usual-care difference include zero."
+    )
+
+
+def bounds_sentence(star, bounds_star, gamma_max) -> str:
+    """Where the bounds themselves (no sampling error) reach zero, when that differs from the interval's Γ*."""
+    if bounds_star == star:
+        return ""
+    where = f"Γ = {bounds_star:.2f}" if bounds_star is not None else f"no Γ up to {gamma_max:g}"
+    return (
+        f" The bounds themselves, ignoring sampling error, reach zero at {where}; Γ* uses the interval, which also "
+        "counts the uncertainty of the estimate."
     )
