@@ -133,6 +133,7 @@ def study(tmp_path_factory):
     folder = tmp_path_factory.mktemp("sweep")
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     raw["data"] = {"decisions": str(REPOSITORY / "synthetic_cohort" / "decisions.csv")}
+    raw.pop("survival", None)  # no episodes table here
     raw["constraints"].update(pessimism=0.0, support_threshold=0.1)
     raw["evaluation"].update({"replicates": 2, "shards": 1})
     raw["sweeps"] = {"axes": {"constraints.support_threshold": [0.1, 0.2]}, "replicates": 4}

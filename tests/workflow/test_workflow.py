@@ -138,6 +138,7 @@ def _records_with(study: Path, tmp_path: Path, change) -> Path:
     protocol = yaml.safe_load(study.read_text(encoding="utf-8"))
     protocol["data"]["decisions"] = "decisions.csv"
     protocol["data"]["episodes"] = None
+    protocol.pop("survival", None)  # no episodes table here
     path = tmp_path / "protocol.yaml"
     path.write_text(yaml.safe_dump(protocol, sort_keys=False), encoding="utf-8")
     return path

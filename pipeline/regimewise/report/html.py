@@ -12,6 +12,7 @@ from importlib import resources
 import jinja2
 
 from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.estimators import ESTIMATORS
 from regimewise.report.figures import (
     SPARSE_BIN,
     actions_by_step_figure,
@@ -73,6 +74,7 @@ def render_html(p, parts, prov, headline) -> str:
         sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
         survival=parts.get("survival"),
         sparse_bin=SPARSE_BIN,
+        estimators=ESTIMATORS,
         survival_figure=None
         if parts.get("survival") is None
         else survival_figure(parts["survival"], p.report.min_cell_count),

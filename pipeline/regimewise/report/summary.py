@@ -235,16 +235,15 @@ def survival_sentence(survival: dict, strategies: dict) -> str:
     difference = 100 * learned["risk_difference"][-1]
     limits = learned["risk_difference_interval"] or {}
     low, high = (limits.get("low") or [None])[-1], (limits.get("high") or [None])[-1]
-    interval = (
-        ""
-        if low is None
-        else f" ({100 * survival['intervals']['level']:.0f}% bootstrap interval {100 * low:.1f} to {100 * high:.1f})"
-    )
     direction = "lower" if difference < 0 else "higher"
     sentence = (
         f"By day {horizon:g}, the estimated risk of the event under the learned regime is {abs(difference):.1f} "
-        f"percentage points {direction} than under usual care{interval}"
+        f"percentage points {direction} than under usual care (risk difference {difference:+.1f}"
     )
+    if low is not None:
+        level = 100 * survival["intervals"]["level"]
+        sentence += f"; {level:.0f}% bootstrap interval {100 * low:+.1f} to {100 * high:+.1f}"
+    sentence += ")"
     if learned["unreliable_from"] is not None and learned["unreliable_from"] <= horizon:
         return sentence + (
             f"; but from day {learned['unreliable_from']:g} too few episodes still follow the learned regime for the "
