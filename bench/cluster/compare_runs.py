@@ -28,9 +28,7 @@ from pathlib import Path
 
 # The stage folders of a results folder (README, "Outputs"); logs/, benchmarks/ and .snakemake/ hold timings,
 # host-dependent paths and Snakemake metadata, not results.
-STAGE_FOLDERS = (
-    "validate", "behaviour", "regime", "evaluate", "describe", "bootstrap", "sensitivity", "survival", "sweep", "report",
-)  # fmt: skip
+STAGE_FOLDERS = tuple("validate behaviour regime evaluate describe bootstrap sensitivity survival sweep report".split())
 SHARD_RULE = "bootstrap_shard"
 JOBCOMP_FIELD = re.compile(r"(\w+)=(\S*)")
 
@@ -118,7 +116,9 @@ def check_jobs(local: Path, slurm: Path, jobcomp: Path, squeue_log: Path) -> tup
         problems.append(f"the run's jobs should share one name (the workflow run id), found {sorted(names)}")
     run_jobs = [i for i, r in completed.items() if r.get("Name") in names]
     if sorted(run_jobs, key=int) != sorted(ids, key=int):
-        problems.append(f"controller finished jobs {sorted(run_jobs, key=int)}, plugin logs name {sorted(ids, key=int)}")
+        problems.append(
+            f"controller finished jobs {sorted(run_jobs, key=int)}, plugin logs name {sorted(ids, key=int)}"
+        )
     for rule, wildcards, job_id in jobs:
         record = completed.get(job_id, {})
         if record.get("JobState") != "COMPLETED" or record.get("ExitCode") != "0:0":

@@ -38,7 +38,8 @@ def _number(x, digits=3):
     return "—" if x is None else f"{x:,.{digits}f}"
 
 
-def render_html(p, parts, prov, headline) -> str:
+def template_environment(p) -> jinja2.Environment:
+    """The report's templates with their filters (cell counts, numbers, percentages, identifiers as words)."""
     environment = jinja2.Environment(
         loader=jinja2.FunctionLoader(
             lambda name: resources.files("regimewise.report").joinpath("templates", name).read_text()
@@ -52,6 +53,11 @@ def render_html(p, parts, prov, headline) -> str:
     environment.filters["words"] = lambda identifier: str(identifier).replace("_", " ")
     environment.filters["num"] = _number
     environment.filters["pct"] = lambda x: "—" if x is None else f"{100 * x:.1f}%"
+    return environment
+
+
+def render_html(p, parts, prov, headline) -> str:
+    environment = template_environment(p)
     template = environment.get_template("report.html")
     regime = parts["regime"]
     return template.render(
