@@ -106,3 +106,9 @@ def test_a_horizon_beyond_the_longest_follow_up_is_refused(cohort):
     protocol = demo_protocol(horizon_days=5000)
     with pytest.raises(UserInputError, match="longest follow-up"):
         survival_analysis(decisions, episodes, proba, proba.argmax(axis=1), protocol)
+
+
+def test_episodes_without_outcome_columns_are_refused(cohort):
+    decisions, episodes, proba, protocol = cohort
+    with pytest.raises(UserInputError, match="'event' is absent"):
+        survival_analysis(decisions, episodes.drop(columns="event"), proba, proba.argmax(axis=1), protocol)

@@ -37,6 +37,12 @@ USUAL_CARE = "usual_care"
 def survival_inputs(decisions: pd.DataFrame, episodes: pd.DataFrame, protocol: Protocol):
     """The decisions as the survival code reads them (action codes) and the episodes' outcome columns."""
     spec = protocol.survival
+    missing = [c for c in ("followup_days", "event") if c not in episodes.columns]
+    if missing:
+        raise UserInputError(
+            f"survival needs follow-up and event columns in the episodes table, and {missing[0]!r} is absent; map "
+            "them in data.columns (followup, event) or remove the survival section"
+        )
     longest = float(episodes["followup_days"].max())
     if spec.horizon_days > longest:
         raise UserInputError(
