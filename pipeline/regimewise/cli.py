@@ -24,12 +24,14 @@ import traceback
 from contextlib import contextmanager
 from pathlib import Path
 
+import yaml
+
 from regimewise import __version__
 from regimewise.cautions import TERMINAL_CAUTION
 from regimewise.data.validate import report_lines, validate_records, write_error_report
 from regimewise.demo.files import write_cohort
-from regimewise.errors import DataValidationError, UserInputError
-from regimewise.io import require_file
+from regimewise.errors import OS_REASONS, DataValidationError, UserInputError, os_reason
+from regimewise.io import require_file, write_text
 from regimewise.protocol.loading import export_schema, load_protocol
 from regimewise.workflow.stages import ERROR_PREFIX
 
@@ -115,7 +117,10 @@ def cmd_check(args) -> int:
     try:
         summary = validate_records(pf).summary
     except DataValidationError as err:
-        write_error_report(args.errors, err.errors)
+        try:
+            write_error_report(args.errors, err.errors)
+        except UserInputError as unwritten:
+            raise UserInputError(f"{err}; the error list was not written ({unwritten}); fix --errors") from None
         _print_error_report(Path(args.errors))
         raise
     print(
@@ -129,7 +134,8 @@ def cmd_simulate(args) -> int:
 
     if args.episodes < 1:
         raise UserInputError("--episodes must be at least 1")
-    write_cohort(args.out, n_episodes=args.episodes, seed=args.seed, confounding_strength=args.strength)
+    out = output_folder(args.out, "simulate --out")
+    write_cohort(out, n_episodes=args.episodes, seed=args.seed, confounding_strength=args.strength)
     print(f"wrote an invented cohort of {args.episodes} episodes to {args.out} (demo use only)")
     return 0
 
@@ -156,10 +162,10 @@ def _run_workflow(protocol: Path, args) -> int:
     require_file(pf.decisions_path, "decisions")
     if pf.episodes_path is not None:
         require_file(pf.episodes_path, "episodes")
-    out = Path(args.out or f"results/{pf.protocol.study.run_name}").resolve()
-    out.mkdir(parents=True, exist_ok=True)
+    _refuse_braces(pf)
+    out = output_folder(args.out or f"results/{pf.protocol.study.run_name}", "--out")
     workflow_log = out / "logs" / "workflow.log"
-    workflow_log.parent.mkdir(parents=True, exist_ok=True)
+    output_folder(workflow_log.parent, "the logs folder")
     snakemake = [
         sys.executable,
         "-m",
@@ -169,22 +175,14 @@ def _run_workflow(protocol: Path, args) -> int:
         "--directory",
         str(out),
     ]
-    config = ["--config", f"protocol={pf.path}", "results=.", "logs=logs", "benchmarks=benchmarks"]
+    config = ["--configfile", str(_write_workflow_config(out, pf.path))]
     command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *config]
     with _exclusive_run(out) as lock:
         print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
         print(TERMINAL_CAUTION)
         if lock is not None and _left_locked(out):
             _remove_stale_lock([*snakemake, "--unlock", *config], out)
-        with open(workflow_log, "w", encoding="utf-8") as handle:
-            finished = subprocess.run(
-                command,
-                stdout=handle,
-                stderr=subprocess.STDOUT,
-                env=_workflow_env(),
-                pass_fds=() if lock is None else (lock.fileno(),),
-                check=False,
-            )
+        finished = _run_logged(command, workflow_log, lock)
     if finished.returncode != 0:
         _print_error_report(out / "logs" / "validation_errors.csv")
         if args.debug:
@@ -192,11 +190,86 @@ def _run_workflow(protocol: Path, args) -> int:
         raise UserInputError(
             _first_stage_error(workflow_log)
             or _lock_refusal(workflow_log, out)
+            or _system_cause(workflow_log)
             or f"the workflow failed; see {workflow_log}"
         )
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
+
+
+def _refuse_braces(pf) -> None:
+    """Snakemake reads ``{name}`` in an input path as a wildcard (doubled braces are not an escape there), so the
+    protocol and the records it names must live in folders without braces (the results folder may have them)."""
+    for what, path in (("protocol", pf.path), ("decisions", pf.decisions_path), ("episodes", pf.episodes_path)):
+        if path is not None and ("{" in str(path) or "}" in str(path)):
+            raise UserInputError(
+                f"the {what} file's path contains {{ or }}, which the workflow engine reads as a wildcard; move "
+                "the protocol and records to a folder whose name has no braces"
+            )
+
+
+def output_folder(path, option: str) -> Path:
+    """The folder (created if needed), or one line naming what is in the way: a file, or the system's cause."""
+    folder = Path(path).resolve()
+    if folder.exists() and not folder.is_dir():
+        raise UserInputError(f"{option} {folder} is an existing file, not a folder; give a folder")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise UserInputError(f"{option} {folder} cannot be created: {os_reason(err)}") from None
+    if not os.access(folder, os.W_OK | os.X_OK):
+        raise UserInputError(f"{option} {folder} cannot be written: {OS_REASONS['EACCES']}")
+    return folder
+
+
+WORKFLOW_CONFIG = Path(".snakemake") / "regimewise" / "config.yaml"
+
+
+def _write_workflow_config(out: Path, protocol: Path) -> Path:
+    """The run's workflow config as a YAML file in the results folder, read with ``--configfile``.
+
+    Paths given on Snakemake's ``--config`` are parsed as YAML values, so a folder named ``a: b`` or ``{x}``
+    would be misread; a file written by a YAML writer keeps every path as the string it is.
+    """
+    path = out / WORKFLOW_CONFIG
+    settings = {"protocol": str(protocol), "results": ".", "logs": "logs", "benchmarks": "benchmarks"}
+    write_text(path, yaml.safe_dump(settings, sort_keys=True, allow_unicode=True))
+    return path
+
+
+def _run_logged(command: list[str], workflow_log: Path, lock) -> subprocess.CompletedProcess:
+    """Run Snakemake with its output in the workflow log (a log that cannot be opened is one line, with the cause)."""
+    try:
+        handle = open(workflow_log, "w", encoding="utf-8")
+    except OSError as err:
+        raise UserInputError(f"cannot write the workflow log {workflow_log}: {os_reason(err)}") from None
+    with handle:
+        return subprocess.run(
+            command,
+            stdout=handle,
+            stderr=subprocess.STDOUT,
+            env=_workflow_env(),
+            pass_fds=() if lock is None else (lock.fileno(),),
+            check=False,
+        )
+
+
+SYSTEM_CAUSES = {
+    "No space left on device": "ENOSPC",
+    "Disk quota exceeded": "EDQUOT",
+    "Permission denied": "EACCES",
+    "Read-only file system": "EROFS",
+}
+
+
+def _system_cause(workflow_log: Path) -> str | None:
+    """One line naming the operating system's cause (disk full, permission denied) found in the workflow log."""
+    text = workflow_log.read_text(encoding="utf-8", errors="replace")
+    for marker, name in SYSTEM_CAUSES.items():
+        if marker in text:
+            return f"the workflow stopped: {OS_REASONS[name]} (details in {workflow_log})"
+    return None
 
 
 @contextmanager

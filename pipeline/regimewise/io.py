@@ -20,7 +20,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from regimewise.errors import UserInputError
+from regimewise.errors import OS_REASONS, UserInputError, os_reason
 
 
 def current_umask() -> int:
@@ -34,14 +34,21 @@ def current_umask() -> int:
 def atomic_path(path: str | Path):
     """Yield a temporary path beside ``path``; rename it onto ``path`` only if the block succeeds."""
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    os.close(fd)
+    if path.is_dir():
+        raise UserInputError(f"cannot write {path}: it is a directory; give a file name")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+        os.close(fd)
+    except OSError as err:
+        raise UserInputError(f"cannot write {path}: {os_reason(err)}") from None
     tmp = Path(tmp)
     try:
         yield tmp
         os.chmod(tmp, 0o666 & ~current_umask())  # mkstemp creates 0600; outputs follow the user's umask
         os.replace(tmp, path)
+    except OSError as err:
+        raise UserInputError(f"cannot write {path}: {os_reason(err)}") from None
     finally:
         if tmp.exists():
             tmp.unlink()
@@ -108,10 +115,19 @@ def read_parquet(path: str | Path) -> pd.DataFrame:
 
 
 def require_file(path: str | Path, what: str) -> Path:
-    """The path, or a one-line error naming the protocol setting to fix."""
+    """The path, or a one-line error naming what is wrong (missing, a directory, not a regular file, unreadable)
+    and the protocol setting to fix."""
     path = Path(path)
-    if not path.is_file():
+    if path.is_dir():
+        raise UserInputError(f"{what} file {path} is a directory; point data.{what} in the protocol to a file")
+    if not path.exists():
         raise UserInputError(f"{what} file {path} not found; check data.{what} in the protocol")
+    if not path.is_file():
+        raise UserInputError(
+            f"{what} file {path} is not a regular file (a FIFO, socket or device); point data.{what} to a file"
+        )
+    if not os.access(path, os.R_OK):
+        raise UserInputError(f"{what} file {path} cannot be read: {OS_REASONS['EACCES']}")
     return path
 
 

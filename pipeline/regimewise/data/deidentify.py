@@ -44,7 +44,33 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-AGE_LIMIT = 89
+from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
+from regimewise.protocol.identifiers import (
+    ANY_EXACT,
+    ANY_VALUE,
+    EIGHT_DIGITS,
+    ID_PATTERNS,
+    PERSON_NAME,
+    identifier_category,
+    looks_like_identifier,
+    mask,
+    scrub,
+    shown_value,
+)
+
+__all__ = [
+    "IdentifierHit",
+    "column_name_category",
+    "find_identifiers",
+    "header_category",
+    "looks_like_identifier",
+    "mask",
+    "scrub",
+    "shown_value",
+    "value_hits",
+]
+
+ID, DECLARED, OTHER = "id", "declared", "other"  # how a column is read (see value_hits)
 
 
 AGE_GROUP_LABEL = "90+"
@@ -94,62 +120,11 @@ NAME_SUBSTRINGS = {
 }
 
 
-# Value patterns, searched anywhere in text cells (numbers cannot hold an '@', a dash or a dot-separated address).
-ZIP_PLUS_4 = r"\b\d{5}-\d{4}\b"
-
-
-UK_POSTCODE = r"\b(?:[A-Z]{1,2}\d{1,2}|[A-Z]{1,2}\d[A-Z]) ?\d[ABD-HJLNP-UW-Z]{2}\b"
-
-
-CANADIAN_POSTCODE = r"\b[ABCEGHJ-NPRSTVXY]\d[ABCEGHJ-NPRSTV-Z][ -]?\d[ABCEGHJ-NPRSTV-Z]\d\b"
-
-
-VALUE_PATTERNS = {
-    "e-mail": r"[A-Za-z0-9._%+-]+@[A-Za-z0-9-]+(?:\.[A-Za-z0-9-]+)*\.[A-Za-z]{2,}",
-    "URL or IP address": r"(?i:\bhttps?://|\bwww\.)\S+|\b(?:\d{1,3}\.){3}\d{1,3}\b",
-    "social-security or record number": r"\b\d{3}-\d{2}-\d{4}\b|(?i:\b(?:mrn|nhs|ssn)\b)[\s:#-]*\d{4,}|\b\d{9,}\b",
-    "telephone or fax": r"(?:\+\d{1,3}[\s.-]?)?\(?\b\d{2,4}\)?[\s.-]\d{3,4}[\s.-]\d{3,4}\b",
-    "full date": r"\b\d{4}[-/.]\d{1,2}[-/.]\d{1,2}\b|\b\d{1,2}[-/.]\d{1,2}[-/.]\d{4}\b",
-    "postcode": f"{ZIP_PLUS_4}|{UK_POSTCODE}|{CANADIAN_POSTCODE}",
-}
-
-
-# Patterns that must fill the whole cell: five digits alone are a postcode, five digits inside text need not be.
-EXACT_PATTERNS = {"postcode": r"^\s*\d{5}(?:-\d{4})?\s*$"}
-
-
-_COMPILED = [(c, re.compile(p)) for c, p in [*VALUE_PATTERNS.items(), *EXACT_PATTERNS.items()]]
-
-
-_ANY = re.compile("|".join(f"(?:{p})" for p in VALUE_PATTERNS.values()))
-
-
-_EXACT = re.compile("|".join(f"(?:{p})" for p in EXACT_PATTERNS.values()))
-
-
 # Column names that suggest a postcode (substrings of the name without separators); see the module docstring.
 POSTCODE_NAME_HINTS = ("zip", "postal", "postcode", "plz")
 
 
 POSTCODE_MIN_NUMBER = 1000
-
-
-# A cell that looks like a personal name: two to four capitalised words (Latin letters incl. accented ones; a
-# word may carry an O'/D' prefix, one inner capital as in McDonald, one hyphenated part), middle ones may be
-# initials; or "Surname, Given". Written for both Python's re and pyarrow's RE2.
-_UP, _LO = "A-ZÀ-ÖØ-Þ", "a-zß-öø-ÿ"
-
-
-_WORD = f"(?:[{_UP}]['’])?[{_UP}][{_LO}]+(?:[{_UP}][{_LO}]+)?(?:-[{_UP}][{_LO}]+)?"
-
-
-_MIDDLE = f"(?:{_WORD}|[{_UP}]\\.)"
-
-
-PERSON_NAME = f"^\\s*(?:{_WORD}(?:\\s+{_MIDDLE}){{0,2}}\\s+{_WORD}|{_WORD},\\s*{_WORD}(?:\\s+{_MIDDLE})?)\\s*$"
-
-
-_PERSON_NAME = re.compile(PERSON_NAME)
 
 
 # A text column is refused as holding names when at least this share of its filled cells look like names ...
@@ -171,32 +146,6 @@ class IdentifierHit:
     row: int | None
     category: str
     length: int = 0
-
-
-# ---------------------------------------------------------------------------------------------- masking
-def mask(value) -> str:
-    """A stand-in that shows only how long the value was."""
-    return f"[masked, {len(str(value))} characters]"
-
-
-def looks_like_identifier(value) -> bool:
-    """True when a single value matches any identifier pattern, or looks like a personal name on its own."""
-    text = str(value)
-    return bool(_ANY.search(text) or _EXACT.match(text) or _PERSON_NAME.match(text))
-
-
-def scrub(text: str) -> str:
-    """Free text with every identifier-like fragment replaced by ``[masked]`` (for parser messages).
-
-    Fragments are found by :data:`VALUE_PATTERNS`; names inside running text cannot be told from ordinary
-    capitalised words and are not scrubbed (parser messages quote at most a short piece of a record).
-    """
-    return " ".join(_ANY.sub("[masked]", str(text)).split())
-
-
-def shown_value(value) -> str:
-    """How a value may appear in a message: masked if it looks like an identifier."""
-    return mask(value) if looks_like_identifier(value) else str(value)
 
 
 # ---------------------------------------------------------------------------------------------- column names
@@ -229,37 +178,62 @@ def suggests_postcode(name: str) -> bool:
 
 
 # ---------------------------------------------------------------------------------------------- values
-def value_hits(column: str, values: pd.Series) -> list[IdentifierHit]:
-    """Identifier-like cells of one column (vectorised per pattern; text cells only)."""
+def value_hits(column: str, values: pd.Series, role: str = OTHER) -> list[IdentifierHit]:
+    """Identifier-like cells of one column, by content whatever its type (one hit per row, sorted by row).
+
+    ``role`` is :data:`ID` for the episode and patient id columns, :data:`DECLARED` for the other columns the
+    protocol declares (states and contract columns, read by their declared meaning) and :data:`OTHER` for the
+    rest, which are also read by the content rules of :mod:`regimewise.data.numbers`.
+    """
     if pd.api.types.is_datetime64_any_dtype(values):
         rows = np.flatnonzero(values.notna().to_numpy())
         return [IdentifierHit(column, int(r), "full date", 10) for r in rows]
-    if is_age_column(column):
-        return _age_hits(column, values)
-    hits = _number_postcode_hits(column, values) if suggests_postcode(column) else []
-    if not (pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values)):
-        return hits
-    codes, uniques = pd.factorize(values, use_na_sentinel=True)
-    text = pa.array([str(u) for u in uniques], type=pa.string())
-    suspicious = np.asarray(pc.match_substring_regex(text, _ANY.pattern)) | np.asarray(
-        pc.match_substring_regex(text, _EXACT.pattern)
-    )
-    seen = {h.row for h in hits}
+    found: dict[int, str] = {}
+    for mask_, category in _number_rules(column, values, role):
+        for r in np.flatnonzero(mask_):
+            found.setdefault(int(r), category)
+    if pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values):
+        codes, uniques = pd.factorize(values.astype(object).map(_hashable), use_na_sentinel=True)
+        text = pa.array([str(u) for u in uniques], type=pa.string())
+        for code, category in _text_categories(uniques, text, role == ID):
+            for r in np.flatnonzero(codes == code):
+                found.setdefault(int(r), category)
+        if not found and role == OTHER:
+            return name_column_hits(column, codes, uniques, text)
+    return [IdentifierHit(column, r, c, len(str(values.iat[r]))) for r, c in sorted(found.items())]
+
+
+def _hashable(value):
+    return value if isinstance(value, (str, int, float, bool)) or value is None else repr(value)
+
+
+def _number_rules(column: str, values: pd.Series, role: str) -> list[tuple[np.ndarray, str]]:
+    numbers, whole = whole_numbers(values)
+    rules = universal_hits(numbers, whole)
+    if role != ID and is_age_column(column):
+        grouped = values.astype("string").str.strip().eq(AGE_GROUP_LABEL).fillna(False).to_numpy(dtype=bool)
+        rules.append((named_age_hits(numbers) & ~grouped, "age over 89"))
+    elif role == OTHER:
+        rules += content_hits(numbers, whole)
+    if role == OTHER and suggests_postcode(column):
+        rules.append((whole & (np.abs(numbers) >= POSTCODE_MIN_NUMBER), "postcode"))
+    return rules
+
+
+def _text_categories(uniques, text: pa.Array, id_column: bool) -> list[tuple[int, str]]:
+    """(code, category) of the distinct text values that look like identifiers (RE2 prefilter, then Python)."""
+    patterns = [ANY_VALUE.pattern, ANY_EXACT.pattern, EIGHT_DIGITS.pattern]
+    if id_column:
+        patterns += [PERSON_NAME, *ID_PATTERNS.values()]
+    suspicious = np.zeros(len(uniques), dtype=bool)
+    for pattern in patterns:
+        suspicious |= np.asarray(pc.match_substring_regex(text, pattern), dtype=bool)
+    out = []
     for code in np.flatnonzero(suspicious):
-        category = next(c for c, rx in _COMPILED if rx.search(str(uniques[code])))
-        rows = np.flatnonzero(codes == code)
-        hits += [IdentifierHit(column, int(r), category, len(str(uniques[code]))) for r in rows if r not in seen]
-    if not hits:
-        hits = name_column_hits(column, codes, uniques, text)
-    return sorted(hits, key=lambda h: h.row)
-
-
-def _number_postcode_hits(column: str, values: pd.Series) -> list[IdentifierHit]:
-    """Whole numbers from :data:`POSTCODE_MIN_NUMBER` up in a column whose name suggests a postcode."""
-    numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float)
-    finite = np.nan_to_num(numbers, nan=0.0, posinf=0.0, neginf=0.0)
-    rows = np.flatnonzero((finite >= POSTCODE_MIN_NUMBER) & (finite == np.round(finite)))
-    return [IdentifierHit(column, int(r), "postcode", len(str(values.iat[r]))) for r in rows]
+        category = identifier_category(uniques[code], id_column=id_column, names=id_column)
+        if category is not None:
+            out.append((int(code), category))
+    return out
 
 
 def name_column_hits(column: str, codes: np.ndarray, uniques, text: pa.Array) -> list[IdentifierHit]:
@@ -297,28 +271,29 @@ def name_column_hits(column: str, codes: np.ndarray, uniques, text: pa.Array) ->
     ]
 
 
-def _age_hits(column: str, values: pd.Series) -> list[IdentifierHit]:
-    """Ages above 89 are refused; the single grouped label '90+' is accepted (Safe Harbor)."""
-    grouped = values.astype("string").str.strip().eq(AGE_GROUP_LABEL).fillna(False).to_numpy(dtype=bool)
-    numbers = pd.to_numeric(values.where(~grouped), errors="coerce").to_numpy(dtype=float)
-    over = np.flatnonzero(np.nan_to_num(numbers, nan=0.0, posinf=AGE_LIMIT + 1) > AGE_LIMIT)
-    return [IdentifierHit(column, int(r), "age over 89", len(str(values.iat[r]))) for r in over]
+def header_category(name: str) -> str | None:
+    """The category a column header suggests by its words (:func:`column_name_category`) or by its shape (an
+    e-mail, a number, a date written as the header), or None."""
+    return column_name_category(name) or identifier_category(name, names=False)
 
 
-def find_identifiers(frame: pd.DataFrame, acknowledged=()) -> list[IdentifierHit]:
-    """Every identifier-like column name and value in a table, skipping acknowledged columns.
+def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=()) -> list[IdentifierHit]:
+    """Every identifier-like column header and value in a table, skipping acknowledged columns.
 
-    Column-name hits come first (one per column, ``row`` None); a refused column's values are not scanned.
+    Header hits come first (one per column, ``row`` None); a refused column's values are not scanned. Columns in
+    ``id_columns`` are read as id columns, those in ``declared`` by their declared meaning, the rest also by the
+    content rules (see :func:`value_hits`).
     """
-    acknowledged = set(acknowledged)
+    acknowledged, id_columns, declared = set(acknowledged), set(id_columns), set(declared)
     hits = []
     for column in frame.columns:
         name = str(column)
         if name in acknowledged:
             continue
-        category = column_name_category(name)
+        category = header_category(name)
         if category is not None:
             hits.append(IdentifierHit(name, None, category))
             continue
-        hits += value_hits(name, frame[column])
+        role = ID if name in id_columns else DECLARED if name in declared else OTHER
+        hits += value_hits(name, frame[column], role)
     return hits

@@ -150,34 +150,53 @@ def source_rows(frame: pd.DataFrame) -> np.ndarray:
     return frame.index.to_numpy(dtype=np.int64) + 1
 
 
-def _row_findings(file: str, frame: pd.DataFrame, rules: list[FieldRule], rows: np.ndarray) -> list[Finding]:
-    """Run the pydantic row model on the failing rows and turn its errors into findings."""
+def _row_findings(
+    file: str, frame: pd.DataFrame, rules: list[FieldRule], rows: np.ndarray, bad: list[np.ndarray]
+) -> list[Finding]:
+    """Run the pydantic row model on the failing rows and turn its errors into findings.
+
+    ``bad`` holds each rule's vectorised failures; a value the vectorised check refuses but the row model would
+    take (``1_000``, which Python's number parser reads) is still a finding, so the two can never disagree.
+    """
     model = row_model(rules)
     source = source_rows(frame)
     findings = []
     for row in rows:
         record = {f"c{i}": _python_value(frame[rule.column].iat[row]) for i, rule in enumerate(rules)}
+        explained = set()
         try:
             model.model_validate(record)
         except ValidationError as err:
             for problem in err.errors(include_url=False):
                 index = int(str(problem["loc"][0])[1:])
-                rule = rules[index]
+                explained.add(index)
                 missing = record[f"c{index}"] is None
-                findings.append(
-                    Finding(
-                        file=file,
-                        row=int(source[row]),
-                        column=rule.column,
-                        value=clip_text(record[f"c{index}"]),
-                        rule="missing_value" if missing else _rule_name(rule),
-                        message="value is missing"
-                        if missing
-                        else plain(problem["msg"]),  # pydantic's msg never echoes the value
-                        fix=rule.fix,
-                    )
-                )
+                message = "value is missing" if missing else plain(problem["msg"])  # msg never echoes the value
+                findings.append(_finding(file, source[row], rules[index], record[f"c{index}"], message, missing))
+        for index, rule in enumerate(rules):
+            if bad[index][row] and index not in explained:
+                findings.append(_finding(file, source[row], rule, record[f"c{index}"], NOT_PLAIN[rule.kind], False))
     return findings
+
+
+NOT_PLAIN = {
+    "number": "not a plain number: write digits with an optional sign, decimal point and exponent (no _ or spaces)",
+    "integer": "not a plain whole number: write digits with an optional sign (no _, spaces or decimals)",
+    "label": "not one of the action labels",
+    "text": "value is missing or blank",
+}
+
+
+def _finding(file: str, row, rule: FieldRule, value, message: str, missing: bool) -> Finding:
+    return Finding(
+        file=file,
+        row=int(row),
+        column=rule.column,
+        value=clip_text(value),
+        rule="missing_value" if missing else _rule_name(rule),
+        message=message,
+        fix=rule.fix,
+    )
 
 
 def _python_value(value):
@@ -199,58 +218,79 @@ def plain(msg: str) -> str:
 def field_findings(file: str, frame: pd.DataFrame, rules: list[FieldRule]) -> list[Finding]:
     """Vectorised check of every field rule; the pydantic model explains at most a capped number of rows per rule."""
     chosen = np.zeros(len(frame), dtype=bool)
-    for rule in rules:
-        bad = np.flatnonzero(_failing_rows(frame, rule))
-        chosen[bad[:MAX_FINDINGS_PER_RULE]] = True
-    return _row_findings(file, frame, rules, np.flatnonzero(chosen))
+    bad = [_failing_rows(frame, rule) for rule in rules]
+    for failing in bad:
+        chosen[np.flatnonzero(failing)[:MAX_FINDINGS_PER_RULE]] = True
+    return _row_findings(file, frame, rules, np.flatnonzero(chosen), bad)
 
 
 # ---------------------------------------------------------------------------------------------- table-wide checks
+def guard_roles(pf: ProtocolFile) -> tuple[list[str], list[str]]:
+    """The id columns and the other declared columns (states and contract columns) of the protocol."""
+    cols = pf.protocol.data.columns
+    ids = [c for c in (cols.episode_id, cols.patient_id) if c is not None]
+    declared = [cols.step, cols.day, cols.action, cols.reward, cols.followup, cols.event]
+    declared += [s.source_column for s in pf.protocol.states]
+    declared += [f"{s.name}_missing" for s in pf.protocol.states]
+    return ids, declared
+
+
+ID_FIX = (
+    "replace the ids with study pseudonyms (codes such as P000123 assigned from a key kept outside the extract); "
+    "never use names, dates, record, phone or social-security numbers as ids"
+)
+
+
 def identifier_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list[Finding]:
-    """Identifier-like column names and values (Safe Harbor categories); values are always masked."""
+    """Identifier-like column headers and values (Safe Harbor categories); values and headers are never shown."""
     acknowledged = [a.column for a in pf.protocol.data.acknowledged_columns]
+    ids, declared = guard_roles(pf)
     source = source_rows(frame)
+    position = {str(c): i + 1 for i, c in enumerate(frame.columns)}
     findings = []
-    for hit in find_identifiers(frame, acknowledged):
+    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared):
         if hit.row is None:
             findings.append(
                 Finding(
                     file=file,
                     row=None,
-                    column=hit.column,
+                    column=None,
                     value=None,
                     rule="identifier_column",
-                    message=f"column name looks like a direct identifier ({hit.category})",
-                    fix="remove the column from the extract, or list it in data.acknowledged_columns with a "
-                    "justification",
+                    message=f"the header of column {position[hit.column]} looks like a direct identifier "
+                    f"({hit.category}); the header is not shown",
+                    fix="remove the column from the extract or rename it; if it is not an identifier, list it in "
+                    "data.acknowledged_columns with a justification",
                 )
             )
-        elif hit.category == "age over 89":
-            findings.append(
-                Finding(
-                    file=file,
-                    row=int(source[hit.row]),
-                    column=hit.column,
-                    value=mask("x" * hit.length),
-                    rule="age_over_89",
-                    message="age above 89 is an identifier under Safe Harbor",
-                    fix="group every age above 89 into the single category '90+' (or cap at 89 with the study's "
-                    "approval)",
-                )
+            continue
+        age = hit.category == "age over 89"
+        findings.append(
+            Finding(
+                file=file,
+                row=int(source[hit.row]),
+                column=hit.column,
+                value=mask("x" * hit.length),
+                rule="age_over_89" if age else "identifier_value",
+                message="age above 89 is an identifier under Safe Harbor"
+                if age
+                else f"value looks like a direct identifier ({hit.category})",
+                fix=_identifier_fix(hit, ids, declared),
             )
-        else:
-            findings.append(
-                Finding(
-                    file=file,
-                    row=int(source[hit.row]),
-                    column=hit.column,
-                    value=mask("x" * hit.length),
-                    rule="identifier_value",
-                    message=f"value looks like a direct identifier ({hit.category})",
-                    fix="remove or replace identifiers in the extract before analysis",
-                )
-            )
+        )
     return findings
+
+
+def _identifier_fix(hit, ids, declared) -> str:
+    if hit.column in ids:
+        return ID_FIX
+    if hit.category == "age over 89":
+        fix = "group every age above 89 into the single category '90+' (or cap at 89 with the study's approval)"
+    else:
+        fix = "remove or replace identifiers in the extract before analysis"
+    if hit.column not in declared:
+        fix += "; if the column is not an identifier, list it in data.acknowledged_columns with a justification"
+    return fix
 
 
 def long_text_findings(file: str, frame: pd.DataFrame) -> list[Finding]:

@@ -10,9 +10,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from regimewise.data.deidentify import scrub
-from regimewise.errors import UserInputError
+from regimewise.data.deidentify import scrub, shown_value
+from regimewise.errors import UserInputError, os_reason
 from regimewise.io import require_file
+
+NEWLINE = b"\n"
+
 
 DELIMITER_NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
 
@@ -29,10 +32,12 @@ def read_table(path: str | Path, what: str, delimiter: str = ",") -> pd.DataFram
     suffix = path.suffix.lower()
     try:
         if suffix in {".parquet", ".pq"}:
-            names = pq.read_schema(path).names
-            _refuse_repeated_names(names, path, what)
+            schema = pq.read_schema(path)
+            _refuse_repeated_names(schema.names, path, what)
+            _refuse_nested_types(schema, path, what)
             frame = pd.read_parquet(path, engine="pyarrow")
         elif suffix in {".csv", ".txt", ".tsv"}:
+            _refuse_nul_bytes(path, what)
             _refuse_repeated_names(_csv_header(path, delimiter), path, what)
             frame = pd.read_csv(path, encoding="utf-8-sig", sep=delimiter, low_memory=False)
             if not isinstance(frame.index, pd.RangeIndex):  # pandas moved surplus fields into the index
@@ -52,7 +57,13 @@ def read_table(path: str | Path, what: str, delimiter: str = ",") -> pd.DataFram
         raise UserInputError(
             f"{what} file {path.name} is not UTF-8 text (byte {err.start}); save it as UTF-8 (with or without BOM)"
         ) from None
-    except (ValueError, OSError, pa.ArrowException) as err:
+    except OSError as err:
+        if err.errno is None:  # pyarrow's own read errors carry no operating-system cause
+            raise UserInputError(
+                f"{what} file {path.name} cannot be read ({scrub(str(err))[:200]}); check its format"
+            ) from None
+        raise UserInputError(f"{what} file {path.name} cannot be read: {os_reason(err)}") from None
+    except (ValueError, pa.ArrowException) as err:
         raise UserInputError(
             f"{what} file {path.name} cannot be read ({scrub(str(err))[:200]}); check its format"
         ) from None
@@ -69,12 +80,40 @@ def _csv_header(path: Path, delimiter: str) -> list[str]:
         return next(csv.reader(handle, delimiter=delimiter), [])
 
 
+def _refuse_nul_bytes(path: Path, what: str) -> None:
+    """A NUL byte ends a cell early in the CSV parser (the value would be cut short): refuse it, naming the line."""
+    line = 1
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            at = block.find(b"\x00")
+            if at >= 0:
+                line += block.count(NEWLINE, 0, at)
+                raise UserInputError(
+                    f"{what} file {path.name}: line {line} holds a NUL byte (a control "
+                    "character, or a UTF-16 file); save it as UTF-8 text without control characters"
+                )
+            line += block.count(NEWLINE)
+
+
+def _refuse_nested_types(schema: pa.Schema, path: Path, what: str) -> None:
+    """Lists, structs, maps and raw bytes are not cells of an analysis extract (named by position only)."""
+    for position, field in enumerate(schema, start=1):
+        kind = field.type
+        if pa.types.is_nested(kind) or pa.types.is_binary(kind) or pa.types.is_large_binary(kind):
+            shown = "lists, structs or maps" if pa.types.is_nested(kind) else "raw bytes"
+            raise UserInputError(
+                f"{what} file {path.name}: column {position} holds {shown}; flatten it to one number or code per "
+                "cell (or drop it) before analysis"
+            )
+
+
 def _refuse_repeated_names(names, path: Path, what: str) -> None:
     seen = set()
-    for name in names:
+    for position, name in enumerate(names, start=1):
         if name in seen:
             raise UserInputError(
-                f"{what} file {path.name}: column {name!r} appears twice in the header; rename or drop one"
+                f"{what} file {path.name}: column {shown_value(name)!r} appears twice in the header (column "
+                f"{position}); rename or drop one"
             )
         seen.add(name)
 

@@ -16,6 +16,7 @@ by :func:`write_error_report`; the exception message is one line naming the firs
 
 from __future__ import annotations
 
+import re
 from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
@@ -68,7 +69,7 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     if findings:
         return findings, None
     frame, missing_actions = apply_missing_policy(pf, raw)
-    findings = check_decisions(pf, frame, name)
+    findings = policy_findings(pf, name, frame, missing_actions, len(raw)) or check_decisions(pf, frame, name)
     if findings:
         return findings, None
     decisions = clean_decisions(pf, frame)
@@ -84,6 +85,38 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
     summary = summarise(pf, decisions, raw, missing_actions, len(dropped))
     return [], ValidationResult(decisions=decisions, episodes=episodes, summary=summary)
+
+
+def policy_findings(pf: ProtocolFile, file: str, frame: pd.DataFrame, actions: dict, rows_read: int) -> list[Finding]:
+    """Refusals of the missing-data policy's result: no decision left, or a state with no observed value."""
+    if frame.empty:
+        dropped = ", ".join(sorted(k for k, v in actions.items() if v.get("decisions_dropped")))
+        return [
+            Finding(
+                file=file,
+                row=None,
+                column=None,
+                value=None,
+                rule="missing_value",
+                message=f"the drop policy of data.missing ({dropped}) leaves no decision to analyse",
+                fix="fill the missing values in the extract, or choose carry_forward or indicator for these states",
+            )
+        ]
+    by_name = {s.name: s.source_column for s in pf.protocol.states}
+    return [
+        Finding(
+            file=file,
+            row=None,
+            column=by_name[state],
+            value=None,
+            rule="missing_value",
+            message=f"state {state!r} is missing in every decision, so the indicator policy has no observed "
+            "value to fill with",
+            fix=f"add the values of {state!r} to the extract, or drop the state from the protocol",
+        )
+        for state, entry in actions.items()
+        if entry["policy"] == "indicator" and entry["missing"] == rows_read
+    ]
 
 
 def validate_records(pf: ProtocolFile) -> ValidationResult:
@@ -139,9 +172,27 @@ def error_rows(findings) -> list[dict]:
     return rows
 
 
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+PLAIN_NUMBER = re.compile(r"^[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?$")
+
+
+def neutralise(cell):
+    """A text cell that a spreadsheet would run as a formula, prefixed with ``'`` (OWASP, "CSV Injection").
+
+    A plain number such as ``-2.5`` is left as it is: a spreadsheet reads it as a number, not a formula.
+    """
+    if not isinstance(cell, str) or not cell.startswith(FORMULA_STARTS) or PLAIN_NUMBER.match(cell):
+        return cell
+    return "'" + cell
+
+
 def write_error_report(path, findings) -> None:
-    """Write validation_errors.csv (header only when there are no findings)."""
-    buffer = pd.DataFrame(error_rows(findings), columns=list(ERROR_COLUMNS)).to_csv(index=False, lineterminator="\n")
+    """Write validation_errors.csv (header only when there are no findings), text cells neutralised against
+    spreadsheet formula injection (row numbers are written as numbers and never start with a sign)."""
+    rows = [{k: neutralise(v) for k, v in row.items()} for row in error_rows(findings)]
+    buffer = pd.DataFrame(rows, columns=list(ERROR_COLUMNS)).to_csv(index=False, lineterminator="\n")
     write_text(path, buffer)
 
 
@@ -151,6 +202,8 @@ def report_lines(path, n: int = 10) -> list[str]:
     if not path.is_file():
         return []
     table = pd.read_csv(path, dtype=str, keep_default_na=False)
+    if table.empty:
+        return []
     listed = table[table["problem"].str.startswith("total: ") == False]  # noqa: E712
     lines = []
     for row in listed.head(n).itertuples(index=False):

@@ -12,8 +12,9 @@ from pathlib import Path
 import yaml
 from pydantic import ValidationError
 
-from regimewise.errors import ProtocolError
-from regimewise.protocol.model import Protocol, describe_validation_error, one_line
+from regimewise.errors import ProtocolError, os_reason
+from regimewise.protocol.identifiers import identifier_category, mask, scrub
+from regimewise.protocol.model import Protocol, describe_validation_error
 
 
 # ---------------------------------------------------------------------------------------------- loading
@@ -58,17 +59,54 @@ class ProtocolFile:
         return None if episodes is None else self.resolve(episodes)
 
     def check_record_paths(self) -> None:
-        """Refuse a relative record path that climbs out of ``data.root`` (absolute paths are taken as written)."""
+        """Refuse a record path that leads outside ``data.root`` (relative or absolute), and a record file whose
+        name looks like a direct identifier (the name reaches validation.json, the provenance and the report)."""
         root = self.resolve(self.protocol.data.root)
         for key in ("decisions", "episodes"):
             written = getattr(self.protocol.data, key)
-            if written is None or Path(written).is_absolute():
+            if written is None:
                 continue
+            refuse_identifier_name(Path(written).name, f"protocol {self.path.name}: data.{key}")
             if not self.resolve(written).is_relative_to(root):
                 raise ProtocolError(
-                    f"protocol {self.path}: data.{key} {written!r} leads outside data.root {self.protocol.data.root!r};"
-                    " move the file inside that folder or widen data.root"
+                    f"protocol {self.path}: data.{key} {scrub(written)!r} leads outside data.root "
+                    f"{self.protocol.data.root!r}; move the file inside that folder or widen data.root"
                 )
+
+
+def refuse_identifier_name(name: str, where: str) -> None:
+    """A one-line refusal, without the name, when a file name looks like a direct identifier."""
+    category = identifier_category(name, names=False) or identifier_category(Path(name).stem, names=False)
+    if category is not None:
+        raise ProtocolError(
+            f"{where}: the file name looks like a direct identifier ({category}; {mask(name)}); rename the "
+            "file to a study code (e.g. decisions.csv) and point the protocol to it"
+        )
+
+
+def _read_protocol_bytes(path: Path) -> bytes:
+    """The protocol file's bytes, or one line naming what is wrong with the path (kind or operating-system cause)."""
+    refuse_identifier_name(path.name, "protocol")
+    if path.is_dir():
+        raise ProtocolError(f"protocol {path} is a directory; give the path to a protocol YAML file")
+    if not path.exists():
+        raise ProtocolError(f"protocol file {path} not found; give the path to a protocol YAML file")
+    if not path.is_file():
+        raise ProtocolError(f"protocol {path} is not a regular file (a FIFO, socket or device); give a YAML file")
+    try:
+        return path.read_bytes()
+    except OSError as err:
+        raise ProtocolError(f"protocol {path} cannot be read: {os_reason(err)}") from None
+
+
+def yaml_problem(err: Exception) -> str:
+    """What the YAML parser found and where, without the source line it would quote (it may hold an identifier)."""
+    problem = getattr(err, "problem", None) or getattr(err, "context", None) or type(err).__name__
+    mark = getattr(err, "problem_mark", None) or getattr(err, "context_mark", None)
+    where = "" if mark is None else f"line {mark.line + 1}, column {mark.column + 1}: "
+    if isinstance(err, UnicodeDecodeError):
+        return f"not UTF-8 text (byte {err.start})"
+    return where + scrub(problem)
 
 
 def load_protocol(path: str | Path) -> ProtocolFile:
@@ -80,15 +118,13 @@ def load_protocol(path: str | Path) -> ProtocolFile:
         One line naming the file, the setting and what to change.
     """
     path = Path(path).resolve()
-    if not path.is_file():
-        raise ProtocolError(f"protocol file {path} not found; give the path to a protocol YAML file")
-    raw = path.read_bytes()
+    raw = _read_protocol_bytes(path)
     try:
         data = yaml.load(raw.decode("utf-8"), Loader=_UniqueKeyLoader)  # noqa: S506 - safe loader subclass
     except ProtocolError as err:
         raise ProtocolError(f"protocol {path}: {err}") from None
-    except (yaml.YAMLError, UnicodeDecodeError) as err:
-        raise ProtocolError(f"protocol {path}: not valid YAML ({one_line(err)}); fix the syntax") from None
+    except (yaml.YAMLError, UnicodeDecodeError, ValueError) as err:
+        raise ProtocolError(f"protocol {path}: not valid YAML ({yaml_problem(err)}); fix the syntax") from None
     if not isinstance(data, dict):
         raise ProtocolError(f"protocol {path}: expected a mapping of sections (study, data, states, ...)")
     try:

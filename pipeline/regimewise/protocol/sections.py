@@ -12,11 +12,46 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import AfterValidator, AllowInfNan, BaseModel, BeforeValidator, ConfigDict, Field, model_validator
+from pydantic import Strict as StrictType
 
 from regimewise.estimators import ESTIMATOR_NAMES
+from regimewise.protocol.identifiers import free_text_category, mask
+
 
 # ---------------------------------------------------------------------------------------------- reusable types
+def _no_identifier(text: str) -> str:
+    """Free text of the protocol passes the guard's value checks (it reaches the report and the summary)."""
+    category = free_text_category(text)
+    if category is not None:
+        raise ValueError(
+            f"the text looks like it holds a direct identifier ({category}; {mask(text)}); remove it from the protocol"
+        )
+    return text
+
+
+def _not_boolean(value):
+    """YAML reads yes/no/true/false/on/off as booleans: they are not numbers."""
+    if isinstance(value, bool):
+        raise ValueError("a number is needed here, not a boolean (yes/no/true/false/on/off)")
+    return value
+
+
+FINITE, NOT_BOOLEAN = AllowInfNan(False), BeforeValidator(_not_boolean)
+
+
+Number = Annotated[float, FINITE, NOT_BOOLEAN]
+
+
+WholeNumber = Annotated[int, StrictType()]
+
+
+Flag = Annotated[bool, StrictType()]
+
+
+FreeText = Annotated[str, AfterValidator(_no_identifier)]
+
+
 Identifier = Annotated[
     str,
     Field(pattern=r"^[a-z][a-z0-9_]{0,39}$", description="lower-case letters, digits and _, starting with a letter"),
@@ -26,19 +61,19 @@ Identifier = Annotated[
 ColumnName = Annotated[str, Field(min_length=1, max_length=128)]
 
 
-ShortText = Annotated[str, Field(min_length=1, max_length=300)]
+ShortText = Annotated[FreeText, Field(min_length=1, max_length=300)]
 
 
-LongText = Annotated[str, Field(min_length=1, max_length=4000)]
+LongText = Annotated[FreeText, Field(min_length=1, max_length=4000)]
 
 
-Probability = Annotated[float, Field(ge=0.0, le=1.0)]
+Probability = Annotated[float, Field(ge=0.0, le=1.0), FINITE, NOT_BOOLEAN]
 
 
-Discount = Annotated[float, Field(gt=0.0, le=1.0)]
+Discount = Annotated[float, Field(gt=0.0, le=1.0), FINITE, NOT_BOOLEAN]
 
 
-Seed = Annotated[int, Field(ge=0, lt=2**63)]
+Seed = Annotated[WholeNumber, Field(ge=0, lt=2**63)]
 EstimatorName = Literal[ESTIMATOR_NAMES]  # the registry's names, in its order
 
 
@@ -52,7 +87,7 @@ class Study(Strict):
 
     title: ShortText
     question: LongText
-    version: Annotated[str, Field(min_length=1, max_length=40)]
+    version: Annotated[FreeText, Field(min_length=1, max_length=40)]
     run_name: Identifier = Field(description="results go under <results>/<run_name>/ unless --out is given")
 
 
@@ -75,7 +110,7 @@ class AcknowledgedColumn(Strict):
     """A column whose name or values look like an identifier, kept on purpose with a written justification."""
 
     column: ColumnName
-    justification: Annotated[str, Field(min_length=20, max_length=1000)] = Field(
+    justification: Annotated[FreeText, Field(min_length=20, max_length=1000)] = Field(
         description="why this column is not a direct identifier (recorded in the report)"
     )
 
@@ -109,8 +144,8 @@ class StateVariable(Strict):
     column: ColumnName | None = Field(None, description="column in the decisions file; defaults to name")
     label: ShortText
     kind: Literal["continuous", "integer", "binary"]
-    unit: Annotated[str, Field(max_length=40)] = ""
-    plausible_range: tuple[float, float] = Field(description="[low, high]; values outside are refused")
+    unit: Annotated[FreeText, Field(max_length=40)] = ""
+    plausible_range: tuple[Number, Number] = Field(description="[low, high]; values outside are refused")
 
     @model_validator(mode="after")
     def _range_ordered(self) -> StateVariable:
@@ -131,7 +166,7 @@ class Action(Strict):
 
     label: Identifier
     description: ShortText
-    intensity: Annotated[int, Field(ge=-10, le=10)] | None = Field(
+    intensity: Annotated[WholeNumber, Field(ge=-10, le=10)] | None = Field(
         None,
         description="ordinal change in therapy intensity this action makes (e.g. -1 step down, 0 hold, +1 "
         "step up); needed only for constraints.max_intensity_change",
@@ -151,23 +186,23 @@ class BehaviourModelSpec(Strict):
         "multinomial_logit",
         description="multinomial_logit (statsmodels MNLogit) or gradient_boosting (histogram gradient boosting)",
     )
-    include_step: bool = Field(True, description="add the decision index as a covariate")
-    max_iterations: Annotated[int, Field(ge=10, le=1000)] = Field(
+    include_step: Flag = Field(True, description="add the decision index as a covariate")
+    max_iterations: Annotated[WholeNumber, Field(ge=10, le=1000)] = Field(
         100, description="optimiser iterations (multinomial_logit) or boosting rounds (gradient_boosting)"
     )
     spline_states: Annotated[list[Identifier], Field(max_length=50)] = Field(
         [], description="non-binary states entered as natural cubic splines (multinomial_logit only)"
     )
-    spline_df: Annotated[int, Field(ge=3, le=10)] = Field(4, description="degrees of freedom of each spline")
-    folds: Annotated[int, Field(ge=1, le=20)] = Field(
+    spline_df: Annotated[WholeNumber, Field(ge=3, le=10)] = Field(4, description="degrees of freedom of each spline")
+    folds: Annotated[WholeNumber, Field(ge=1, le=20)] = Field(
         5,
         description="cross-fitting folds, split by patient; records get out-of-fold probabilities. 1 = no "
         "cross-fitting (in-sample probabilities), allowed only for the parametric multinomial_logit",
     )
-    probability_floor: Annotated[float, Field(ge=0.0, le=0.05)] = Field(
+    probability_floor: Annotated[float, Field(ge=0.0, le=0.05), FINITE, NOT_BOOLEAN] = Field(
         0.001, description="every action's estimated probability is raised to at least this (rows still sum to 1)"
     )
-    truncation_percentiles: tuple[float, float] = Field(
+    truncation_percentiles: tuple[Number, Number] = Field(
         (1.0, 99.0), description="[low, high] percentiles at which weights are truncated in the diagnostics"
     )
 
@@ -194,19 +229,21 @@ class QModelSpec(Strict):
         description="quadratic adds the square of every non-binary state to the covariates; cubic "
         "adds the square and the cube",
     )
-    ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] | Literal["cv"] = Field(
+    ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6), FINITE, NOT_BOOLEAN] | Literal["cv"] = Field(
         0.0,
         description="ridge penalty of the linear Q-model, or 'cv' to choose it from ridge_grid by "
         "cross-validation with folds by patient",
     )
-    ridge_grid: Annotated[list[Annotated[float, Field(ge=0.0, le=1e6)]], Field(min_length=1, max_length=30)] = [
+    ridge_grid: Annotated[
+        list[Annotated[float, Field(ge=0.0, le=1e6), FINITE, NOT_BOOLEAN]], Field(min_length=1, max_length=30)
+    ] = [
         0.0,
         0.1,
         1.0,
         10.0,
         100.0,
     ]
-    cv_folds: Annotated[int, Field(ge=2, le=20)] = Field(
+    cv_folds: Annotated[WholeNumber, Field(ge=2, le=20)] = Field(
         5, description="folds by patient for choosing the ridge penalty and for the out-of-fold error"
     )
     learning_mode: Literal["backward", "pooled"] = Field(
@@ -214,16 +251,16 @@ class QModelSpec(Strict):
         description="backward: one Q-model per decision point, by backward induction; pooled: one "
         "Q-model with the decision index as a feature, iterated to the tolerance (episodes of unequal length)",
     )
-    tolerance: Annotated[float, Field(gt=0.0, le=1.0)] = Field(
+    tolerance: Annotated[float, Field(gt=0.0, le=1.0), FINITE, NOT_BOOLEAN] = Field(
         1e-6, description="pooled mode stops when no regression target moves by more than this"
     )
-    max_iterations: Annotated[int, Field(ge=1, le=1000)] = Field(200, description="pooled mode iteration cap")
-    boosting_max_iter: Annotated[int, Field(ge=10, le=2000)] = Field(
+    max_iterations: Annotated[WholeNumber, Field(ge=1, le=1000)] = Field(200, description="pooled mode iteration cap")
+    boosting_max_iter: Annotated[WholeNumber, Field(ge=10, le=2000)] = Field(
         100, description="boosting rounds of each gradient boosting Q-model"
     )
-    boosting_max_leaf_nodes: Annotated[int, Field(ge=2, le=255)] = 15
-    boosting_learning_rate: Annotated[float, Field(gt=0.0, le=1.0)] = 0.1
-    boosting_min_samples_leaf: Annotated[int, Field(ge=1, le=10_000)] = 50
+    boosting_max_leaf_nodes: Annotated[WholeNumber, Field(ge=2, le=255)] = 15
+    boosting_learning_rate: Annotated[float, Field(gt=0.0, le=1.0), FINITE, NOT_BOOLEAN] = 0.1
+    boosting_min_samples_leaf: Annotated[WholeNumber, Field(ge=1, le=10_000)] = 50
 
 
 class StateCondition(Strict):
@@ -231,8 +268,8 @@ class StateCondition(Strict):
 
     state: Identifier
     comparison: Literal["below", "at_most", "above", "at_least", "in", "not_in"]
-    value: float | None = Field(None, description="threshold for below / at_most / above / at_least")
-    values: Annotated[list[float], Field(min_length=1, max_length=50)] | None = Field(
+    value: Number | None = Field(None, description="threshold for below / at_most / above / at_least")
+    values: Annotated[list[Number], Field(min_length=1, max_length=50)] | None = Field(
         None, description="set of values for in / not_in"
     )
 
@@ -254,7 +291,7 @@ class ClinicalRule(Strict):
     when: Annotated[list[StateCondition], Field(min_length=1, max_length=10)] = Field(
         description="conditions that must all hold for the rule to apply"
     )
-    reason: Annotated[str, Field(max_length=300)] = ""
+    reason: Annotated[FreeText, Field(max_length=300)] = ""
 
 
 class Constraints(Strict):
@@ -264,13 +301,13 @@ class Constraints(Strict):
         0.05, description="an action may be recommended only if usual care's estimated probability is at least this"
     )
     clinical_rules: Annotated[list[ClinicalRule], Field(max_length=100)] = []
-    max_intensity_change: Annotated[int, Field(ge=0, le=10)] | None = Field(
+    max_intensity_change: Annotated[WholeNumber, Field(ge=0, le=10)] | None = Field(
         None, description="forbid actions whose |intensity| exceeds this (every action then needs an intensity)"
     )
-    pessimism: Annotated[float, Field(ge=0.0, le=10.0)] = Field(
+    pessimism: Annotated[float, Field(ge=0.0, le=10.0), FINITE, NOT_BOOLEAN] = Field(
         0.0, description="k: rank actions by mean minus k standard deviations of bootstrap Q-models (0 = off)"
     )
-    ensemble_size: Annotated[int, Field(ge=2, le=200)] = Field(
+    ensemble_size: Annotated[WholeNumber, Field(ge=2, le=200)] = Field(
         20, description="bootstrap Q-models (resampling patients) used when pessimism > 0"
     )
 
@@ -279,26 +316,28 @@ class EvaluationSpec(Strict):
     """Off-policy evaluation settings."""
 
     estimators: Annotated[list[EstimatorName], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
-    fixed_strategies: bool = Field(True, description="also evaluate 'always <action>' for every action")
-    cross_fit_folds: Annotated[int, Field(ge=1, le=10)] = Field(
+    fixed_strategies: Flag = Field(True, description="also evaluate 'always <action>' for every action")
+    cross_fit_folds: Annotated[WholeNumber, Field(ge=1, le=10)] = Field(
         2,
         description="the learned regime is evaluated by K-fold cross-fitting by patient: each patient's records "
         "are scored with the regime learned from the other folds; 1 = evaluate on the records the regime was "
         "learned from (optimistic)",
     )
-    fqe_ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6)] = Field(
+    fqe_ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6), FINITE, NOT_BOOLEAN] = Field(
         1.0,
         description="ridge penalty of the fitted-Q evaluation models (fqe, and the Q̂ of dr and wdr) on the "
         "standardised state features; a small penalty keeps an evaluation model from extrapolating wildly where the "
         "regime's action is rare in the records; 0 = plain least squares",
     )
-    replicates: Annotated[int, Field(ge=0, le=100_000)] = Field(
+    replicates: Annotated[WholeNumber, Field(ge=0, le=100_000)] = Field(
         200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
     )
-    shards: Annotated[int, Field(ge=1, le=1000)] = Field(
+    shards: Annotated[WholeNumber, Field(ge=1, le=1000)] = Field(
         4, description="bootstrap replicates are split into this many separate workflow jobs"
     )
-    interval_level: Annotated[float, Field(ge=0.5, le=0.999)] = Field(0.95, description="bootstrap interval level")
+    interval_level: Annotated[float, Field(ge=0.5, le=0.999), FINITE, NOT_BOOLEAN] = Field(
+        0.95, description="bootstrap interval level"
+    )
     interval_method: Literal["percentile", "basic"] = Field(
         "percentile",
         description="percentile, or basic (2·estimate − quantiles: corrects the bootstrap's estimated "
@@ -307,13 +346,13 @@ class EvaluationSpec(Strict):
     minimum_ess_fraction: Probability = Field(
         0.05, description="an estimate whose effective sample size is below this share of episodes is unreliable"
     )
-    minimum_ess: Annotated[float, Field(ge=30.0)] = Field(
+    minimum_ess: Annotated[float, Field(ge=30.0), FINITE, NOT_BOOLEAN] = Field(
         30.0, description="absolute floor of the reliable effective sample size (never below 30)"
     )
-    m_out_of_n: bool = Field(
+    m_out_of_n: Flag = Field(
         False, description="adaptive m-out-of-n bootstrap (Chakraborty, Laber & Zhao 2013) for near-tied actions"
     )
-    m_out_of_n_alpha: Annotated[float, Field(gt=0.0, le=10.0)] = Field(
+    m_out_of_n_alpha: Annotated[float, Field(gt=0.0, le=10.0), FINITE, NOT_BOOLEAN] = Field(
         0.1, description="alpha of the adaptive m-out-of-n resample size m = n^((1 + alpha (1 - p)) / (1 + alpha))"
     )
 
@@ -329,17 +368,17 @@ class EvaluationSpec(Strict):
 class SensitivitySpec(Strict):
     """Sensitivity of the learned-minus-usual-care contrast to unmeasured confounding (marginal sensitivity model)."""
 
-    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=30)] = Field(
-        [1.0, 1.25, 1.5, 2.0, 3.0], description="confounding strengths Γ shown in the report's table"
-    )
-    gamma_max: Annotated[float, Field(gt=1.0, le=50.0)] = Field(
+    gammas: Annotated[
+        list[Annotated[float, Field(ge=1.0, le=50.0), FINITE, NOT_BOOLEAN]], Field(min_length=1, max_length=30)
+    ] = Field([1.0, 1.25, 1.5, 2.0, 3.0], description="confounding strengths Γ shown in the report's table")
+    gamma_max: Annotated[float, Field(gt=1.0, le=50.0), FINITE, NOT_BOOLEAN] = Field(
         5.0, description="largest Γ searched for the tipping point"
     )
-    precision: Annotated[float, Field(gt=0.0, le=0.5)] = Field(
+    precision: Annotated[float, Field(gt=0.0, le=0.5), FINITE, NOT_BOOLEAN] = Field(
         0.02, description="the tipping point is found to this precision in Γ"
     )
     confounded_decisions: (
-        Literal["all", "first"] | Annotated[list[Annotated[int, Field(ge=0)]], Field(min_length=1)]
+        Literal["all", "first"] | Annotated[list[Annotated[WholeNumber, Field(ge=0)]], Field(min_length=1)]
     ) = Field("all", description="decisions a hidden confounder may affect: all, the first, or a list of steps")
 
     @model_validator(mode="after")
@@ -354,7 +393,7 @@ class SensitivitySpec(Strict):
 class ReportSpec(Strict):
     """Report settings."""
 
-    min_cell_count: Annotated[int, Field(ge=1, le=1000)] = Field(
+    min_cell_count: Annotated[WholeNumber, Field(ge=1, le=1000)] = Field(
         11, description="counts from 1 to min_cell_count - 1 are shown as '<min_cell_count'"
     )
 
@@ -421,12 +460,12 @@ class SweepSpec(Strict):
     """Specification sweep: the learned-minus-usual-care contrast recomputed under alternative analysis choices."""
 
     axes: Annotated[
-        dict[Literal[SWEEP_AXES], Annotated[list[int | float | str], Field(min_length=1, max_length=20)]],
+        dict[Literal[SWEEP_AXES], Annotated[list[WholeNumber | Number | str], Field(min_length=1, max_length=20)]],
         Field(min_length=1),
     ] = Field(description="setting -> values to try; every combination is one specification (one workflow job)")
-    replicates: Annotated[int, Field(ge=2, le=10_000)] = Field(
+    replicates: Annotated[WholeNumber, Field(ge=2, le=10_000)] = Field(
         50, description="patient-bootstrap replicates per specification (every model refitted in each)"
     )
-    gammas: Annotated[list[Annotated[float, Field(ge=1.0, le=50.0)]], Field(min_length=1, max_length=10)] = Field(
-        [1.0, 1.25, 1.5, 2.0, 3.0], description="Γ values at which each specification's bounds are shown"
-    )
+    gammas: Annotated[
+        list[Annotated[float, Field(ge=1.0, le=50.0), FINITE, NOT_BOOLEAN]], Field(min_length=1, max_length=10)
+    ] = Field([1.0, 1.25, 1.5, 2.0, 3.0], description="Γ values at which each specification's bounds are shown")

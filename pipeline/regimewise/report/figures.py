@@ -221,6 +221,8 @@ def apply_style():
         {
             "svg.hashsalt": "regimewise",
             "svg.fonttype": "none",
+            "text.parse_math": False,  # labels are plain text: "$5 to $10" is never a formula
+            "text.usetex": False,
             "font.size": 10,
             "legend.fontsize": 9,
             "axes.titlesize": 10,

@@ -36,7 +36,7 @@ class BehaviourDesign:
         scaler = StateScaler.fit(frame, protocol)
         use_splines = spec.kind == "multinomial_logit"
         splines = tuple(
-            (name, _spline_basis(frame[name].to_numpy(dtype=float), spec.spline_df).design_info)
+            (name, _spline_basis(frame[name].to_numpy(dtype=float), spec.spline_df, name).design_info)
             for name in (spec.spline_states if use_splines else [])
         )
         return cls(scaler, splines, protocol.horizon, spec.include_step)
@@ -61,10 +61,11 @@ class BehaviourDesign:
         return names + (["step_fraction"] if self.include_step else [])
 
 
-def _spline_basis(values, df):
+def _spline_basis(values, df, name):
     if np.unique(values).size <= df:
         raise UserInputError(
-            f"a spline with {df} degrees of freedom needs more than {df} distinct values of its state; "
+            f"state {name!r}: a spline with {df} degrees of freedom needs more than {df} distinct values, the "
+            f"records have {np.unique(values).size}; "
             "lower behaviour_model.spline_df or remove the state from behaviour_model.spline_states"
         )
     return patsy.dmatrix(f"cr(x, df={df}, constraints='center') - 1", {"x": values})

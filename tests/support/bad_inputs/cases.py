@@ -287,19 +287,19 @@ DEFECTS = [
     Defect(
         "e-mail column",
         "decisions",
-        ("column 'email'", "[rule identifier_column]"),
+        ("the header of column 9 looks like a direct identifier (e-mail)", "[rule identifier_column]"),
         decisions(add_column("email", "none")),
     ),
     Defect(
         "full-date column",
         "decisions",
-        ("column 'visit_date'", "[rule identifier_column]"),
+        ("the header of column 9 looks like a direct identifier (full date)", "[rule identifier_column]"),
         decisions(add_column("visit_date", 1)),
     ),
     Defect(
         "postcode column",
         "decisions",
-        ("column 'ZipCode'", "[rule identifier_column]"),
+        ("the header of column 9 looks like a direct identifier (street address or place)", "[rule identifier_column]"),
         decisions(add_column("ZipCode", 1)),
     ),
     Defect(
@@ -408,7 +408,7 @@ DEFECTS = [
     Defect(
         "address column in episodes",
         "episodes",
-        ("column 'home_address'", "[rule identifier_column]"),
+        ("the header of column 5 looks like a direct identifier (street address or place)", "[rule identifier_column]"),
         episodes(lambda e: e.assign(home_address="x")),
     ),
 ]
