@@ -29,6 +29,11 @@ a column is refused when most of its cells look like a personal name (two to fou
 ``Jane Roe``, ``Mary-Ann O'Neil``, ``Jane A. Roe`` or ``Roe, Jane``) and those cells take many different values
 (see :func:`name_column_hits` for the thresholds and what the heuristic misses).
 
+Beyond these: value shapes (e-mail, phone, social-security and MRN-prefixed numbers, dates in digits or words,
+postcodes; the id-column rules) live in :mod:`regimewise.protocol.identifiers`, shared with the protocol's free
+text; identifier-shaped whole numbers and the content rules of undeclared columns (ages, postcodes, record or
+chart numbers) in :mod:`regimewise.data.numbers`. README "Your own records" lists every rule and its limits.
+
 Values found here are never shown: messages give the row, the column, the category and a masked value; a single
 value that looks like a personal name is masked in messages too (:func:`shown_value`).
 Integer day offsets (``day``) and ages up to 89 pass.
