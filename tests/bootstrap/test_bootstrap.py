@@ -61,7 +61,7 @@ def study(tmp_path_factory):
     decisions = clean_decisions(pf, simulate_cohort(200, seed=11, confounding_strength=0.0).decisions)
     write_parquet(folder / "decisions.parquet", decisions)
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
-    raw["data"] = {"decisions": str(REPOSITORY / "synthetic_cohort" / "decisions.csv")}
+    raw["data"] = {"decisions": str(REPOSITORY / "synthetic_cohort" / "decisions.csv"), "root": str(REPOSITORY)}
     raw.pop("survival", None)  # no episodes table here
     raw["evaluation"].update({"replicates": N_REPLICATES, "shards": 3})
     (folder / "protocol.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")

@@ -132,7 +132,7 @@ def study(tmp_path_factory):
     150 simulated episodes, with a 2-specification sweep."""
     folder = tmp_path_factory.mktemp("sweep")
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
-    raw["data"] = {"decisions": str(REPOSITORY / "synthetic_cohort" / "decisions.csv")}
+    raw["data"] = {"decisions": str(REPOSITORY / "synthetic_cohort" / "decisions.csv"), "root": str(REPOSITORY)}
     raw.pop("survival", None)  # no episodes table here
     raw["constraints"].update(pessimism=0.0, support_threshold=0.1)
     raw["evaluation"].update({"replicates": 2, "shards": 1})
