@@ -181,7 +181,7 @@ def test_labels_reach_the_figures_as_plain_text(label):
     ax = next(iter(axes))
     ax.set_title(label)
     ax.set_yticks([0], [label])
-    svg = figures.svg_text(fig)
+    svg = figures.svg_text(fig, "a figure with plain-text labels")
     escaped = label.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
     assert escaped in svg  # the text itself, never rendered as a formula
 

@@ -401,27 +401,30 @@ class ReportSpec(Strict):
 class SurvivalSpec(Strict):
     """Survival under each strategy by clone–censor–weight (Cain et al. 2010; Hernán 2018; Maringe et al. 2020)."""
 
-    horizon_days: Annotated[float, Field(gt=0.0, le=36525.0)] = Field(
+    horizon_days: Annotated[float, Field(gt=0.0, le=36525.0), FINITE, NOT_BOOLEAN] = Field(
         description="end of follow-up in days from time zero (the index date, day 0)"
     )
-    time_points: Annotated[list[Annotated[float, Field(gt=0.0)]], Field(max_length=20)] = Field(
+    time_points: Annotated[list[Annotated[float, Field(gt=0.0), FINITE, NOT_BOOLEAN]], Field(max_length=20)] = Field(
         [], description="days at which the table shows survival, risk and contrasts (the horizon is always shown)"
     )
-    grid_days: Annotated[float, Field(gt=0.0, le=36525.0)] | None = Field(
+    grid_days: Annotated[float, Field(gt=0.0, le=36525.0), FINITE, NOT_BOOLEAN] | None = Field(
         None, description="spacing of the curves' time grid in days; default: the median gap between decisions"
     )
-    grace: Annotated[int, Field(ge=0, le=100)] = Field(
+    grace: Annotated[WholeNumber, Field(ge=0, le=100)] = Field(
         0, description="decision points during which a clone follows usual care before the strategy binds"
     )
-    dropout_model: bool = Field(
+    dropout_model: Flag = Field(
         True,
         description="weight by the inverse probability of remaining in follow-up (pooled logistic on the "
         "states); false assumes loss to follow-up is unrelated to the outcome",
     )
     weight_truncation: (
-        Annotated[list[Annotated[float, Field(ge=0.0, le=100.0)]], Field(min_length=2, max_length=2)] | None
+        Annotated[
+            list[Annotated[float, Field(ge=0.0, le=100.0), FINITE, NOT_BOOLEAN]], Field(min_length=2, max_length=2)
+        ]
+        | None
     ) = Field(None, description="percentiles [low, high] at which clone weights are truncated (a sensitivity check)")
-    cox: bool = Field(
+    cox: Flag = Field(
         False,
         description="also fit a weighted Cox model of each strategy against usual care (a hazard ratio is not a "
         "causal contrast over time; the risk difference stays the headline)",
