@@ -108,11 +108,19 @@ def test_absolute_record_path_inside_data_root_is_accepted(tmp_path):
     assert load_protocol(_write(folder, change)).decisions_path == folder / "decisions.csv"
 
 
-@pytest.mark.parametrize("name", ["jane.roe@example.org.csv", "078-05-1120.csv", "19540314.csv"])
+@pytest.mark.parametrize("name", ["jane.roe@example.org.csv", "078-05-1120.csv", "MRN4471203.csv"])
 def test_records_file_named_like_an_identifier_is_refused_without_its_name(tmp_path, name):
     with pytest.raises(ProtocolError, match="the file name looks like a direct identifier") as err:
         load_protocol(_write(tmp_path, lambda p: p["data"].update(decisions=name)))
     assert name not in str(err.value) and name.split(".")[0] not in str(err.value)
+
+
+def test_records_file_named_with_an_extract_date_is_accepted(tmp_path):
+    folder = tmp_path / "study"
+    folder.mkdir()
+    tiny_decisions().to_csv(folder / "decisions_2024-06-30.csv", index=False)
+    path = _write(folder, lambda p: p["data"].update(decisions="decisions_2024-06-30.csv"))
+    assert load_protocol(path).decisions_path.name == "decisions_2024-06-30.csv"
 
 
 def test_protocol_file_that_is_a_directory_or_unreadable(tmp_path, monkeypatch):

@@ -329,7 +329,7 @@ def test_cross_fitted_boosting_equals_sklearn_cross_val_predict(anes):
 def test_natural_spline_design_is_linear_beyond_the_boundary_knots():
     rng = np.random.default_rng(5)
     frame = pd.DataFrame({"potassium": rng.uniform(3.5, 6.0, 400), "step": 0})
-    basis = _spline_basis(frame["potassium"].to_numpy(), 4)
+    basis = _spline_basis(frame["potassium"].to_numpy(), 4, "potassium")
     beyond = np.linspace(6.5, 8.0, 7)
     values = np.asarray(patsy.build_design_matrices([basis.design_info], {"x": beyond})[0])
     # Natural cubic splines are linear beyond their outer knots (Hastie, Tibshirani & Friedman 2009, ESL 5.2.1):

@@ -75,9 +75,13 @@ class ProtocolFile:
 
 
 def refuse_identifier_name(name: str, where: str) -> None:
-    """A one-line refusal, without the name, when a file name looks like a direct identifier."""
+    """A one-line refusal, without the name, when a file name looks like a direct identifier.
+
+    Dates are let through: an extract's date in its file name (``decisions_2024-06-30.csv``) is common and
+    belongs to no one.
+    """
     category = identifier_category(name, names=False) or identifier_category(Path(name).stem, names=False)
-    if category is not None:
+    if category is not None and category != "full date":
         raise ProtocolError(
             f"{where}: the file name looks like a direct identifier ({category}; {mask(name)}); rename the "
             "file to a study code (e.g. decisions.csv) and point the protocol to it"
