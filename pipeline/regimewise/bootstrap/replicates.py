@@ -35,7 +35,7 @@ from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.io import to_jsonable
 from regimewise.protocol.model import Protocol
 from regimewise.regime.learning import (
-    cross_fitted_recommendations,
+    cross_fitted_regime,
     crossfit_folds,
     learn_regime,
     record_proba,
@@ -92,12 +92,12 @@ def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool
     if protocol.evaluation.cross_fit_folds == 1:
         learned = learn_regime(decisions, protocol)
         proba = record_proba(learned, decisions)
-        recommended = learned.recommend(decisions, proba)
+        recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
     else:
         proba = fit_usual_care(decisions, protocol).record_proba
-        recommended = cross_fitted_recommendations(decisions, proba, protocol)
+        recommended, q = cross_fitted_regime(decisions, proba, protocol)
     folds = crossfit_folds(decisions, protocol)
-    values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds)
+    values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds, learned_q=q)
     return values, regime_curve(decisions, proba, recommended, protocol)
 
 

@@ -31,6 +31,7 @@ from regimewise.protocol.sections import (
     Study,
     SweepSpec,
 )
+from regimewise.protocol.strategies import StrategiesSpec
 
 
 class Protocol(Strict):
@@ -51,6 +52,9 @@ class Protocol(Strict):
     seed: Seed
     report: ReportSpec = ReportSpec()
     sweeps: SweepSpec | None = Field(None, description="optional specification sweep (none: no sweep jobs)")
+    strategies: StrategiesSpec | None = Field(
+        None, description="strategies derived from the learned regime (none: only the regime and fixed strategies)"
+    )
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:

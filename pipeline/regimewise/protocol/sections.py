@@ -310,6 +310,11 @@ class EvaluationSpec(Strict):
     minimum_ess: Annotated[float, Field(ge=30.0)] = Field(
         30.0, description="absolute floor of the reliable effective sample size (never below 30)"
     )
+    unidentified_share: Annotated[float, Field(ge=0.0, le=1.0)] = Field(
+        0.5,
+        description="a regime whose actions lie below the support threshold at more than this share of decisions "
+        "is 'not identified': its value gets no interval, no plot point and no headline",
+    )
     m_out_of_n: bool = Field(
         False, description="adaptive m-out-of-n bootstrap (Chakraborty, Laber & Zhao 2013) for near-tied actions"
     )

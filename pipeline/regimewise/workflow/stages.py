@@ -29,7 +29,7 @@ from regimewise.io import read_json, read_parquet, write_json, write_parquet, wr
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.learning import (
-    cross_fitted_recommendations,
+    cross_fitted_regime,
     crossfit_folds,
     regime_variants,
 )
@@ -153,8 +153,12 @@ def regime_stage(protocol, decisions, proba, table, regime):
     out = frame[["episode_id", "step", "action"]].copy()
     out["recommended"] = labels[recommended]
     folds = p.evaluation.cross_fit_folds
-    evaluated = recommended if folds == 1 else cross_fitted_recommendations(frame, probabilities, p)
+    if folds == 1:
+        evaluated, evaluated_q = recommended, fqi.q_values(X, steps)
+    else:
+        evaluated, evaluated_q = cross_fitted_regime(frame, probabilities, p)
     out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
+    out[evaluated_q_columns(p.action_labels)] = evaluated_q  # the gains of the override strategies
     for name, codes in chosen.items():
         out[f"recommended_{name}"] = labels[codes]
     out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
@@ -182,12 +186,18 @@ def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarr
     return action_codes(recommendations.drop(columns="action").rename(columns={column: "action"}), labels)
 
 
+def evaluated_q_columns(labels) -> list[str]:
+    """Columns of the regime stage's table holding the cross-fitted Q-values the evaluation uses."""
+    return [f"evaluated_q_{label}" for label in labels]
+
+
 def evaluate_stage(protocol, decisions, proba, table, values):
-    """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
+    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     recommendations = read_parquet(table)
     recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
+    learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
     variants = {
         c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
         for c in recommendations.columns
@@ -202,6 +212,7 @@ def evaluate_stage(protocol, decisions, proba, table, values):
             p,
             variants or None,
             learned_folds=crossfit_folds(frame, p),
+            learned_q=learned_q,
         ),
     )
 
