@@ -21,6 +21,7 @@ from regimewise.evaluation.strategies import (
     partial_adoption_proba,
     share_changed,
 )
+from regimewise.regime.qmodels import evaluate_policies
 
 MDP = sm.make_mdp()
 REGIME = np.array([[0, 1, 2], [1, 2, 2], [0, 1, 1]])  # a fixed deterministic regime (H, S)
@@ -163,3 +164,20 @@ def test_saturated_fqe_is_exact_for_each_strategy():
         )
         first = log["step"] == 0
         assert fqe.value_estimate(log["X"][first], target[first]) == pytest.approx(initial @ v_exact[0], abs=1e-9)
+
+
+def test_batched_evaluation_equals_one_fitted_q_evaluation_per_regime():
+    # source: FittedQEvaluation (itself checked against exact evaluation above and scikit-learn Ridge in test_fqi.py)
+    log = sm.sample_episodes(MDP, 600, seed=12)
+    X = np.hstack([log["X"], np.random.default_rng(0).standard_normal((log["X"].shape[0], 2))])
+    tables = list(strategy_tables().values()) + [sm.deterministic_proba(REGIME)]
+    targets = [sm.rows_proba(t, log) for t in tables]
+    batched = evaluate_policies(
+        X, log["step"], log["action"], log["reward"], log["episode"], targets,
+        horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5,
+    )  # fmt: skip
+    for q, target in zip(batched, targets):
+        single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(
+            X, log["step"], log["action"], log["reward"], log["episode"], target
+        )
+        np.testing.assert_allclose(q, single.q_values(X, log["step"]), rtol=0, atol=1e-10)

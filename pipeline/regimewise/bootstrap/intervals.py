@@ -54,6 +54,14 @@ def regime_pairs(names: list[str]) -> list[tuple[str, str]]:
     return [(b, a) if a == "usual_care" else (a, b) for a, b in pairs]
 
 
+def compared_pairs(point: dict) -> list[tuple[str, str]]:
+    """The contrasts to bootstrap: every pair of the learned regime, usual care and the fixed strategies, and each
+    strategy of the protocol's ``strategies`` section against usual care only (the trade-off table)."""
+    strategies = {r["name"] for r in point["regimes"] if "family" in r}
+    pairs = regime_pairs([r["name"] for r in point["regimes"]])
+    return [(a, b) for a, b in pairs if not ({a, b} & strategies) or b == "usual_care"]
+
+
 def _difference(values, a, b, est):
     x, y = values[a][est], values[b][est]
     return None if x is None or y is None else x - y
@@ -88,7 +96,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
             },
             worst(judged.get((a, est), SUPPORTED), judged.get((b, est), SUPPORTED)),
         )
-        for a, b in regime_pairs(list(values))
+        for a, b in compared_pairs(point)
         for est in spec.estimators
     ]
     method = "m-out-of-n (Chakraborty, Laber & Zhao 2013)" if scale != 1.0 else ("basic" if basic else "percentile")
@@ -113,10 +121,11 @@ def verdicts_of(point: dict) -> dict:
 
 
 def withheld(entry: dict, verdict: str | None) -> dict:
-    """``entry`` with its verdict; a value that is not identified keeps its raw number but gets no interval."""
+    """``entry`` with its verdict; a value that is not identified keeps its raw number but gets no interval (the
+    percentile limits the bootstrap would have given stay under ``unreported_interval``, for audit only)."""
     out = {**entry, "verdict": verdict or SUPPORTED}
     if out["verdict"] == NOT_IDENTIFIED:
-        out.update(low=None, high=None, bootstrap_se=None)
+        out.update(unreported_interval=[out["low"], out["high"]], low=None, high=None, bootstrap_se=None)
     return out
 
 
@@ -216,4 +225,5 @@ def publishable(entry: dict) -> dict:
     if entry.get("verdict") != NOT_IDENTIFIED:
         return {**entry, "withheld": False}
     hidden = ("value", "difference", "se", "low", "high", "bootstrap_se")
-    return {**entry, **{k: None for k in hidden if k in entry}, "withheld": True}
+    out = {k: v for k, v in entry.items() if k != "unreported_interval"}
+    return {**out, **{k: None for k in hidden if k in entry}, "withheld": True}

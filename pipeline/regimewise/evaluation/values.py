@@ -23,6 +23,7 @@ from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.ope import evaluate_off_policy, importance_weights
+from regimewise.evaluation.outcome_models import needs_outcome_model, outcome_models
 from regimewise.evaluation.strategies import protocol_strategies, share_changed, strategy_proba
 from regimewise.evaluation.verdicts import outcome_model_share, unsupported_share, verdict, worst
 from regimewise.protocol.model import Protocol
@@ -101,24 +102,29 @@ def evaluate_regime(
     deterministic: bool,
     strict: bool = True,
     folds: np.ndarray | None = None,
+    fitted=None,
 ) -> dict:
-    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict.
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
     a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
     leaves the model-based estimators (dr, wdr, fqe) null instead of raising. ``folds`` fits the fitted-Q
-    evaluation within each fold (a cross-fitted regime, :func:`regimewise.regime.learning.cross_fitted_recommendations`).
+    evaluation within each fold (a cross-fitted regime,
+    :func:`regimewise.regime.learning.cross_fitted_recommendations`). ``fitted`` passes the outcome model's
+    (Q̂ taken, V̂, fqe value) or the error that stopped it (:func:`regimewise.evaluation.outcome_models.outcome_models`).
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
-    if any(
-        ESTIMATORS[name].needs_q_model for name in protocol.evaluation.estimators
-    ):  # the Q-models are fitted only when an estimator uses them
+    if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
         try:
-            q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol, folds)
-        except UserInputError:
-            if strict:
-                raise
+            fitted = _fitted_q_evaluation(logged, target, protocol, folds)
+        except UserInputError as err:
+            fitted = err
+    if isinstance(fitted, UserInputError):
+        if strict:
+            raise fitted
+    elif fitted is not None:
+        q_taken, v_target, fqe_value = fitted
     results = evaluate_off_policy(
         logged.step,
         logged.action,
@@ -158,7 +164,9 @@ def evaluate_regime(
     return out
 
 
-def evaluate_target(logged: LoggedDecisions, t: dict, protocol: Protocol, strict: bool, learned_folds=None) -> dict:
+def evaluate_target(
+    logged: LoggedDecisions, t: dict, protocol: Protocol, strict: bool, learned_folds=None, fitted=None
+) -> dict:
     """One entry of values.json's ``regimes``: name, label, estimates with verdicts, and for a strategy of the
     protocol's ``strategies`` section its family, parameter, words and share of decisions changed.
 
@@ -172,7 +180,7 @@ def evaluate_target(logged: LoggedDecisions, t: dict, protocol: Protocol, strict
     out = {
         "name": name,
         "label": t["label"],
-        "estimates": evaluate_regime(logged, t["target"], protocol, deterministic, strict, folds),
+        "estimates": evaluate_regime(logged, t["target"], protocol, deterministic, strict, folds, fitted),
     }
     if strategy is not None:
         out.update(strategy.to_dict(), share_changed=share_changed(t["target"], logged.behaviour_proba))
@@ -306,12 +314,14 @@ def evaluate_all(
     ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
     under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
 
-    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted: the learned
-    regime's outcome models are then fitted within each fold.
+    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted:
+    the outcome models of the learned regime and of the strategies built from it are then fitted within each fold.
+    ``learned_q`` (n, K): the cross-fitted Q-values the override strategies need.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
     targets = regime_targets(logged, recommended, protocol, learned_q)
-    regimes = [evaluate_target(logged, t, protocol, strict, learned_folds) for t in targets]
+    models = outcome_models(logged, targets, protocol, learned_folds)
+    regimes = [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(targets, models)]
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
     episode_patient[logged.episode] = logged.patient
