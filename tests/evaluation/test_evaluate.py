@@ -144,7 +144,7 @@ def test_strategies_are_evaluated_with_verdicts(setting):
     values = evaluate_all(decisions, proba, recommended, protocol, learned_q=q)
     by_name = {r["name"]: r for r in values["regimes"]}
     floor = values["minimum_reliable_ess"]
-    for name in ("partial_adoption_0.1", "override_gain_1", "incremental_odds_2"):
+    for name in ("partial_adoption_0.2", "override_gain_3", "incremental_odds_4"):
         r = by_name[name]
         assert 0.0 <= r["share_changed"] <= 1.0 and r["family"] in name
         for est, e in r["estimates"].items():
@@ -153,6 +153,6 @@ def test_strategies_are_evaluated_with_verdicts(setting):
                 expected = "not identified"
             assert e["verdict"] == expected, (name, est)
     # partial adoption moves away from usual care as its share grows: the effective sample shrinks
-    ess = [by_name[f"partial_adoption_{e:g}"]["estimates"]["pdwis"]["ess"] for e in (0.1, 0.3, 0.5)]
+    ess = [by_name[f"partial_adoption_{e:g}"]["estimates"]["pdwis"]["ess"] for e in (0.2, 0.4, 0.6)]
     assert ess[0] > ess[1] > ess[2]
-    assert {c["regime"] for c in values["contrasts"]} >= {"learned", "partial_adoption_0.3", "override_gain_2"}
+    assert {c["regime"] for c in values["contrasts"]} >= {"learned", "partial_adoption_0.4", "override_gain_2"}
