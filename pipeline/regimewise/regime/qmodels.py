@@ -49,6 +49,20 @@ def _least_squares(design, y, alpha):
     return np.linalg.lstsq(design, y, rcond=None)[0]
 
 
+def _least_squares_columns(design, y, alpha):
+    """:func:`_least_squares` of each column of ``y`` (n, R) on the same design, (p + 1, R).
+
+    The Gram matrix and its condition number are computed once; each column is then solved exactly as
+    :func:`_least_squares` solves a single response, so a column's coefficients do not depend on the others.
+    """
+    gram = design.T @ design
+    if alpha > 0:
+        gram[1:, 1:] += alpha * np.eye(design.shape[1] - 1)
+    if np.linalg.cond(gram) >= WELL_CONDITIONED:
+        return np.column_stack([_least_squares(design, y[:, j], alpha) for j in range(y.shape[1])])
+    return np.column_stack([scipy.linalg.solve(gram, design.T @ y[:, j], assume_a="pos") for j in range(y.shape[1])])
+
+
 def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value):
     """Coefficients (H, K, p + 1) of the per-step, per-action linear Q-models; NaN where an action has no rows.
 
@@ -107,8 +121,8 @@ def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_a
         for a in range(n_actions):
             cell = rows[action[rows] == a]
             if cell.size:
-                coef = _least_squares(design[cell], target[cell], alpha)
-                q[:, rows, a] = (design[rows] @ coef).T
+                coef = _least_squares_columns(design[cell], target[cell], alpha)
+                q[:, rows, a] = np.einsum("np,pr->rn", design[rows], coef)  # no BLAS: same bits on any thread count
     return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
