@@ -176,7 +176,8 @@ def point_values_file(decisions, protocol, path):
     """Point estimates on the full records, written like the evaluate stage writes them."""
     learned = learn_regime(decisions, protocol)
     proba = record_proba(learned, decisions)
-    values = evaluate_all(decisions, proba, learned.recommend(decisions, proba), protocol)
+    recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
+    values = evaluate_all(decisions, proba, recommended, protocol, learned_q=q)
     write_json(path, values)
     return point_values(values)
 

@@ -152,7 +152,8 @@ def test_prespecified_specification_reproduces_the_main_analysis(study):
     behaviour_stage(protocol, decisions, folder / "proba.parquet", folder / "behaviour.json")
     regime_stage(protocol, decisions, folder / "proba.parquet", folder / "table.parquet", folder / "regime.json")
     evaluate_stage(protocol, decisions, folder / "proba.parquet", folder / "table.parquet", folder / "values.json")
-    main = {c["estimator"]: c["difference"] for c in read_json(folder / "values.json")["contrasts"]}
+    contrasts = read_json(folder / "values.json")["contrasts"]
+    main = {c["estimator"]: c["difference"] for c in contrasts if c["regime"] == "learned"}
     spec = read_json(folder / "spec_00.json")
     assert spec["prespecified"]
     assert all(v is not None for v in main.values())
@@ -257,7 +258,7 @@ def test_workflow_runs_a_two_specification_sweep_into_the_report(tmp_path):
     summary = json.loads((out / "report" / "summary.json").read_text(encoding="utf-8"))
     assert summary["sweep"]["n_specifications"] == 2
     rows = {row["id"]: row for row in summary["sweep"]["specifications"]}
-    headline = {c["estimator"]: c["difference"] for c in summary["contrasts"]}["wdr"]
+    headline = {c["estimator"]: c["difference"] for c in summary["contrasts"] if c["regime"] == "learned"}["wdr"]
     assert rows["spec_00"]["prespecified"] and rows["spec_00"]["difference"] == headline
     html = (out / "report" / "report.html").read_text(encoding="utf-8")
     assert "Specification sweep" in html and summary["sweep"]["sentence"] in html

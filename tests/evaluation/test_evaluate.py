@@ -16,6 +16,7 @@ from support.tiny import REPOSITORY
 
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
+from regimewise.errors import UserInputError
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.values import (
     LoggedDecisions,
@@ -32,8 +33,8 @@ ALL = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
 def setting():
     pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
     protocol = pf.protocol.model_copy(
-        update={"evaluation": pf.protocol.evaluation.model_copy(update={"estimators": ALL})}
-    )
+        update={"evaluation": pf.protocol.evaluation.model_copy(update={"estimators": ALL}), "strategies": None}
+    )  # the strategies: test_strategies_are_evaluated_with_verdicts
     decisions = clean_decisions(pf, simulate_cohort(400, seed=3, confounding_strength=0.0).decisions)
     learned = learn_regime(decisions, protocol)
     proba = learned.usual_care.predict_proba(decisions)
@@ -129,3 +130,29 @@ def test_the_evaluation_models_take_their_own_ridge_penalty_even_when_learning_c
         assert value == pytest.approx(direct.value_estimate(logged.X[first], target[first]), abs=1e-9)
         values.append(value)
     assert len(set(values)) == 3  # the penalty reaches the estimate
+
+
+def test_strategies_are_evaluated_with_verdicts(setting):
+    # source: the definitions of the verdicts (evaluation/verdicts.py) applied to the reported ESS and shares
+    decisions, proba, protocol, _ = setting
+    demo = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
+    protocol = protocol.model_copy(update={"strategies": demo.strategies})
+    learned = learn_regime(decisions, protocol)
+    recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
+    with pytest.raises(UserInputError, match="cross-fitted Q-values"):
+        evaluate_all(decisions, proba, recommended, protocol)
+    values = evaluate_all(decisions, proba, recommended, protocol, learned_q=q)
+    by_name = {r["name"]: r for r in values["regimes"]}
+    floor = values["minimum_reliable_ess"]
+    for name in ("partial_adoption_0.2", "override_gain_3", "incremental_odds_4"):
+        r = by_name[name]
+        assert 0.0 <= r["share_changed"] <= 1.0 and r["family"] in name
+        for est, e in r["estimates"].items():
+            expected = "supported" if e["ess"] >= floor else "model projection"
+            if e["unsupported_share"] > protocol.evaluation.unidentified_share or e["ess"] < 1:
+                expected = "not identified"
+            assert e["verdict"] == expected, (name, est)
+    # partial adoption moves away from usual care as its share grows: the effective sample shrinks
+    ess = [by_name[f"partial_adoption_{e:g}"]["estimates"]["pdwis"]["ess"] for e in (0.2, 0.4, 0.6)]
+    assert ess[0] > ess[1] > ess[2]
+    assert {c["regime"] for c in values["contrasts"]} >= {"learned", "partial_adoption_0.4", "override_gain_2"}

@@ -100,7 +100,8 @@ def test_fqe_equals_exact_evaluation_on_empirical_mdp(log):
     # source: exact policy evaluation on the empirical MDP, for a deterministic and a stochastic regime
     initial, transition, reward_mean, _ = sm.empirical_mdp(log)
     fixed = sm.deterministic_proba(np.array([[1, 0, 2], [2, 1, 0], [0, 0, 1]]))
-    for policy_proba in (fixed, MDP.behaviour):
+    mixture = 0.3 * fixed + 0.7 * MDP.behaviour  # a stochastic regime: partial adoption of ``fixed``
+    for policy_proba in (fixed, MDP.behaviour, mixture):
         for gamma in (1.0, 0.9):
             q_exact, v_exact = sm.evaluate_policy(transition, reward_mean, policy_proba, gamma=gamma)
             model = fit_fqe(log, policy_proba, gamma=gamma)

@@ -16,6 +16,8 @@ import yaml
 from support.tiny import REPOSITORY, set_cell
 
 from regimewise.demo.files import write_cohort
+from regimewise.evaluation.strategies import protocol_strategies
+from regimewise.protocol import load_protocol
 
 CLI = [sys.executable, "-m", "regimewise.cli"]
 
@@ -44,7 +46,7 @@ def two_runs(study, tmp_path_factory):
     return outs, results
 
 
-def test_run_writes_report_and_summary(two_runs):
+def test_run_writes_report_and_summary(two_runs, study):
     (out, _), (result, _) = two_runs
     assert result.returncode == 0, result.stderr
     assert "Research use only" in result.stdout
@@ -57,7 +59,11 @@ def test_run_writes_report_and_summary(two_runs):
         "always_step_down",
         "always_step_up",
         "always_add_agent",
+        *(s.name for s in protocol_strategies(load_protocol(study).protocol.strategies)),
     }
+    # the headline names the protocol's pre-specified strategy, with its verdict (issue 13)
+    assert summary["strategies"]["headline"]["verdict"] in summary["headline"]
+    assert summary["strategies"]["prespecified"] is True
     # Usual care evaluated against itself: every weight is 1, so PDWIS is the observed mean return and ESS = n
     # (identity of self-normalised importance sampling; METHODS.md).
     usual = summary["values"]["usual_care"]["pdwis"]

@@ -12,6 +12,7 @@ from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.values import point_values
+from regimewise.evaluation.verdicts import NOT_IDENTIFIED, SUPPORTED, worst
 from regimewise.protocol.model import Protocol
 
 
@@ -53,6 +54,14 @@ def regime_pairs(names: list[str]) -> list[tuple[str, str]]:
     return [(b, a) if a == "usual_care" else (a, b) for a, b in pairs]
 
 
+def compared_pairs(point: dict) -> list[tuple[str, str]]:
+    """The contrasts to bootstrap: every pair of the learned regime, usual care and the fixed strategies, and each
+    strategy of the protocol's ``strategies`` section against usual care only (the trade-off table)."""
+    strategies = {r["name"] for r in point["regimes"] if "family" in r}
+    pairs = regime_pairs([r["name"] for r in point["regimes"]])
+    return [(a, b) for a, b in pairs if not ({a, b} & strategies) or b == "usual_care"]
+
+
 def _difference(values, a, b, est):
     x, y = values[a][est], values[b][est]
     return None if x is None or y is None else x - y
@@ -68,19 +77,26 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     reps = [r["values"] for r in good]
     basic = getattr(spec, "interval_method", "percentile") == "basic"
     settings = (spec.interval_level, scale, basic)
+    judged = verdicts_of(point)
     value_intervals = {
-        name: {est: {"value": v, **interval(v, [r[name][est] for r in reps], *settings)} for est, v in by_est.items()}
+        name: {
+            est: withheld({"value": v, **interval(v, [r[name][est] for r in reps], *settings)}, judged.get((name, est)))
+            for est, v in by_est.items()
+        }
         for name, by_est in values.items()
     }
     contrasts = [
-        {
-            "regime": a,
-            "versus": b,
-            "estimator": est,
-            "difference": _difference(values, a, b, est),
-            **interval(_difference(values, a, b, est), [_difference(r, a, b, est) for r in reps], *settings),
-        }
-        for a, b in regime_pairs(list(values))
+        withheld(
+            {
+                "regime": a,
+                "versus": b,
+                "estimator": est,
+                "difference": _difference(values, a, b, est),
+                **interval(_difference(values, a, b, est), [_difference(r, a, b, est) for r in reps], *settings),
+            },
+            worst(judged.get((a, est), SUPPORTED), judged.get((b, est), SUPPORTED)),
+        )
+        for a, b in compared_pairs(point)
         for est in spec.estimators
     ]
     method = "m-out-of-n (Chakraborty, Laber & Zhao 2013)" if scale != 1.0 else ("basic" if basic else "percentile")
@@ -97,6 +113,22 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     }
 
 
+def verdicts_of(point: dict) -> dict:
+    """{(regime, estimator): verdict} of values.json (:mod:`regimewise.evaluation.verdicts`)."""
+    return {
+        (r["name"], est): e.get("verdict", SUPPORTED) for r in point["regimes"] for est, e in r["estimates"].items()
+    }
+
+
+def withheld(entry: dict, verdict: str | None) -> dict:
+    """``entry`` with its verdict; a value that is not identified keeps its raw number but gets no interval (the
+    percentile limits the bootstrap would have given stay under ``unreported_interval``, for audit only)."""
+    out = {**entry, "verdict": verdict or SUPPORTED}
+    if out["verdict"] == NOT_IDENTIFIED:
+        out.update(unreported_interval=[out["low"], out["high"]], low=None, high=None, bootstrap_se=None)
+    return out
+
+
 def shared_resample_size(shards: list[dict]) -> dict:
     """The resample size the shards recorded (all shards must agree)."""
     sizes = {tuple(sorted(s["resample"].items())) for s in shards}
@@ -109,7 +141,7 @@ def disagreements(value_intervals: dict) -> list[dict]:
     """Pairs of estimators of one regime whose intervals do not overlap, with a short explanation."""
     out = []
     for name, by_est in value_intervals.items():
-        names = [e for e, v in by_est.items() if v["low"] is not None]
+        names = [e for e, v in by_est.items() if v["low"] is not None and v.get("verdict") != NOT_IDENTIFIED]
         for i, a in enumerate(names):
             for b in names[i + 1 :]:
                 x, y = by_est[a], by_est[b]
@@ -137,10 +169,12 @@ def _explain(a: str, b: str) -> str:
 
 
 def merge_intervals(values: dict, intervals: dict | None) -> dict:
-    """values.json with each estimate and learned-versus-usual-care contrast given its interval.
+    """values.json with each estimate and learned-versus-usual-care contrast given its interval, for the report.
 
     Adds ``low``, ``high`` and ``bootstrap_se`` (null without a bootstrap) and, under ``bootstrap``, the
-    interval settings, every pairwise contrast and the estimators that disagree.
+    interval settings, every pairwise contrast and the estimators that disagree. A value or contrast whose
+    verdict is ``not identified`` (:mod:`regimewise.evaluation.verdicts`) loses its number and its interval here
+    (``withheld`` is true): values.json keeps the raw number with the verdict, for audit only.
     """
     empty = {"low": None, "high": None, "bootstrap_se": None}
     found = (intervals or {}).get("values", {})
@@ -150,14 +184,14 @@ def merge_intervals(values: dict, intervals: dict | None) -> dict:
         {
             **r,
             "estimates": {
-                est: {**e, **{k: found.get(r["name"], {}).get(est, empty)[k] for k in keep}}
+                est: publishable({**e, **{k: found.get(r["name"], {}).get(est, empty)[k] for k in keep}})
                 for est, e in r["estimates"].items()
             },
         }
         for r in values["regimes"]
     ]
     contrasts = [
-        {**c, **{k: pairs.get((c["regime"], c["versus"], c["estimator"]), empty)[k] for k in keep}}
+        publishable({**c, **{k: pairs.get((c["regime"], c["versus"], c["estimator"]), empty)[k] for k in keep}})
         for c in values["contrasts"]
     ]
     summary = None
@@ -167,8 +201,29 @@ def merge_intervals(values: dict, intervals: dict | None) -> dict:
         }
         low = {(r["name"], est): e["low_ess"] for r in values["regimes"] for est, e in r["estimates"].items()}
         summary["contrasts"] = [
-            {**c, "low_ess": bool(low[(c["regime"], c["estimator"])] or low[(c["versus"], c["estimator"])])}
+            publishable(
+                {**c, "low_ess": bool(low[(c["regime"], c["estimator"])] or low[(c["versus"], c["estimator"])])}
+            )
             for c in intervals["contrasts"]
         ]
         summary["replicates_failed"] = len(intervals["replicates_failed"])
-    return {**values, "regimes": regimes, "contrasts": contrasts, "bootstrap": summary}
+    side = [
+        {**r, "estimates": {est: publishable(e) for est, e in r["estimates"].items()}}
+        for r in values.get("side_by_side", [])
+    ]
+    return {
+        **values,
+        "regimes": regimes,
+        "contrasts": contrasts,
+        "bootstrap": summary,
+        **({"side_by_side": side} if "side_by_side" in values else {}),
+    }
+
+
+def publishable(entry: dict) -> dict:
+    """A value or contrast as the report may show it: without number or interval when not identified."""
+    if entry.get("verdict") != NOT_IDENTIFIED:
+        return {**entry, "withheld": False}
+    hidden = ("value", "difference", "se", "low", "high", "bootstrap_se")
+    out = {k: v for k, v in entry.items() if k != "unreported_interval"}
+    return {**out, **{k: None for k in hidden if k in entry}, "withheld": True}

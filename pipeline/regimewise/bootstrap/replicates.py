@@ -36,7 +36,7 @@ from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.io import to_jsonable
 from regimewise.protocol.model import Protocol
 from regimewise.regime.learning import (
-    cross_fitted_recommendations,
+    cross_fitted_regime,
     crossfit_folds,
     learn_regime,
     record_proba,
@@ -84,18 +84,18 @@ def resample_patients(decisions: pd.DataFrame, groups: list[np.ndarray], rng, si
     return out
 
 
-def fit_replicate(decisions: pd.DataFrame, protocol: Protocol) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+def fit_replicate(decisions: pd.DataFrame, protocol: Protocol):
     """Refit usual care and the regime on ``decisions`` as the workflow does: usual care's probabilities at the
-    records, the learned regime's actions as evaluated (cross-fitted by patient when
+    records, the learned regime's actions and Q-values as evaluated (cross-fitted by patient when
     ``evaluation.cross_fit_folds`` > 1) and the folds of that cross-fitting (None with one fold)."""
     if protocol.evaluation.cross_fit_folds == 1:
         learned = learn_regime(decisions, protocol)
         proba = record_proba(learned, decisions)
-        recommended = learned.recommend(decisions, proba)
+        recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
     else:
         proba = fit_usual_care(decisions, protocol).record_proba
-        recommended = cross_fitted_recommendations(decisions, proba, protocol)
-    return proba, recommended, crossfit_folds(decisions, protocol)
+        recommended, q = cross_fitted_regime(decisions, proba, protocol)
+    return proba, recommended, q, crossfit_folds(decisions, protocol)
 
 
 def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool = False) -> tuple[dict, dict]:
@@ -104,8 +104,8 @@ def learn_and_evaluate(decisions: pd.DataFrame, protocol: Protocol, strict: bool
     Returns the output of :func:`regimewise.evaluation.values.evaluate_all` and the confounding-sensitivity curve
     of the refitted regime (:func:`regimewise.sensitivity.analysis.regime_curve`).
     """
-    proba, recommended, folds = fit_replicate(decisions, protocol)
-    values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds)
+    proba, recommended, q, folds = fit_replicate(decisions, protocol)
+    values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds, learned_q=q)
     return values, regime_curve(decisions, proba, recommended, protocol)
 
 
@@ -113,15 +113,15 @@ def replicate_values(decisions: pd.DataFrame, protocol: Protocol, episodes: pd.D
     """One replicate's {regime: {estimator: value}}, its bounds curve (so the sensitivity stage reuses the
     replicates) and, with a survival section and episodes, every strategy's survival (the survival stage's
     intervals)."""
-    proba, recommended, folds = fit_replicate(decisions, protocol)
-    values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds)
+    proba, recommended, q, folds = fit_replicate(decisions, protocol)
+    values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds, learned_q=q)
     curve = regime_curve(decisions, proba, recommended, protocol)
     out = {
         "values": point_values(values),
         "sensitivity": {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]},
     }
     if protocol.survival is not None and episodes is not None:
-        out["survival"] = survival_values(decisions, episodes, proba, recommended, protocol)
+        out["survival"] = survival_values(decisions, episodes, proba, recommended, protocol, learned_q=q)
     return out
 
 

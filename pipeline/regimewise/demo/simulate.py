@@ -264,6 +264,25 @@ def _regime_chooser(regime):
     return choose
 
 
+def _natural_action_chooser(strategy, frailty, noise, strength, p, coins):
+    """Choose actions by a strategy that sees the action usual care would take (its natural value).
+
+    The natural action is usual care's draw with usual care's own uniforms (so it equals the action taken under
+    usual care for as long as the states agree); ``strategy.modify(frame, natural, proba, coins)`` returns the
+    action taken, with ``coins`` one uniform per episode from a stream of its own (spawn key 5, which leaves the
+    five streams of :func:`_streams` unchanged).
+    """
+
+    def choose(t, state):
+        proba = usual_care_probabilities(state, frailty, strength, p)
+        natural = _draw_actions(proba, noise.behaviour[:, t])
+        frame = pd.DataFrame({name: state[name] for name in STATES})
+        frame["step"] = t
+        return _regime_codes(strategy.modify(frame, natural, proba, coins[:, t]), len(frame), t), None
+
+    return choose
+
+
 def _rollout(population, noise, choose, strength, p):
     """Run all episodes through the N_STEPS decisions (vectorised over episodes)."""
     n = population.frailty.size
@@ -302,6 +321,9 @@ def simulate(regime, n, seed, strength, p):
     noise = _draw_noise(n, rngs["transition"], rngs["behaviour"])
     if isinstance(regime, str) and regime == "usual_care":
         choose = _usual_care_chooser(population.frailty, noise, strength, p)
+    elif hasattr(regime, "modify"):  # a strategy acting on the clinician's natural action
+        coins = np.random.default_rng(np.random.SeedSequence(seed).spawn(6)[5]).random((n, N_STEPS))
+        choose = _natural_action_chooser(regime, population.frailty, noise, strength, p, coins)
     elif callable(regime):
         choose = _regime_chooser(regime)
     else:

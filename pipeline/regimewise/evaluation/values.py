@@ -23,6 +23,9 @@ from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.ope import evaluate_off_policy, importance_weights
+from regimewise.evaluation.outcome_models import needs_outcome_model, outcome_models
+from regimewise.evaluation.strategies import protocol_strategies, share_changed, strategy_proba
+from regimewise.evaluation.verdicts import outcome_model_share, unsupported_share, verdict, worst
 from regimewise.protocol.model import Protocol
 from regimewise.protocol.sections import EvaluationSpec
 
@@ -64,19 +67,36 @@ def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
     return out
 
 
-def regime_targets(behaviour_proba: np.ndarray, recommended: np.ndarray, labels: tuple[str, ...], fixed: bool):
-    """(name, label, target probabilities) of every regime to evaluate, learned first (also the survival stage's
-    strategies, so both stages name and define the regimes alike)."""
+def regime_targets(
+    behaviour_proba: np.ndarray,
+    recommended: np.ndarray,
+    protocol: Protocol,
+    learned_q: np.ndarray | None = None,
+) -> list[dict]:
+    """Every regime to evaluate, learned first: name, label, target probabilities, and for the strategies of the
+    protocol's ``strategies`` section their family, parameter and clinical words (also the survival
+    stage's strategies, so both stages name and define the regimes alike).
+
+    ``learned_q`` (n, K) holds the learned regime's cross-fitted Q-values, needed by the override strategies.
+    """
+    labels = protocol.action_labels
     k = len(labels)
     targets = [
-        ("learned", "Learned regime", one_hot(recommended, k)),
-        ("usual_care", "Usual care", behaviour_proba),
+        {"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)},
+        {"name": "usual_care", "label": "Usual care", "target": behaviour_proba},
     ]
-    if fixed:
+    if protocol.evaluation.fixed_strategies:
         targets += [
-            (f"always_{a}", f"Always {a.replace('_', ' ')}", one_hot(np.full(len(recommended), j), k))
+            {
+                "name": f"always_{a}",
+                "label": f"Always {a.replace('_', ' ')}",
+                "target": one_hot(np.full(len(recommended), j), k),
+            }
             for j, a in enumerate(labels)
         ]
+    for s in protocol_strategies(protocol.strategies):
+        proba = strategy_proba(s, recommended, behaviour_proba, learned_q)
+        targets.append({"name": s.name, "label": s.label, "target": proba, "strategy": s})
     return targets
 
 
@@ -87,25 +107,29 @@ def evaluate_regime(
     deterministic: bool,
     strict: bool = True,
     folds: np.ndarray | None = None,
+    fitted=None,
 ) -> dict:
-    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag.
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict.
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
     a fitted-Q evaluation that cannot be fitted (an action the regime may take never occurs at some step)
     leaves the model-based estimators (dr, wdr, fqe) null instead of raising. ``folds`` fits the fitted-Q
     evaluation within each fold (a cross-fitted regime,
-    :func:`regimewise.regime.learning.cross_fitted_recommendations`).
+    :func:`regimewise.regime.learning.cross_fitted_recommendations`). ``fitted`` passes the outcome model's
+    (Q̂ taken, V̂, fqe value) or the error that stopped it (:func:`regimewise.evaluation.outcome_models.outcome_models`).
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
-    if any(
-        ESTIMATORS[name].needs_q_model for name in protocol.evaluation.estimators
-    ):  # the Q-models are fitted only when an estimator uses them
+    if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
         try:
-            q_taken, v_target, fqe_value = _fitted_q_evaluation(logged, target, protocol, folds)
-        except UserInputError:
-            if strict:
-                raise
+            fitted = _fitted_q_evaluation(logged, target, protocol, folds)
+        except UserInputError as err:
+            fitted = err
+    if isinstance(fitted, UserInputError):
+        if strict:
+            raise fitted
+    elif fitted is not None:
+        q_taken, v_target, fqe_value = fitted
     results = evaluate_off_policy(
         logged.step,
         logged.action,
@@ -127,13 +151,67 @@ def evaluate_regime(
         results["PDWIS"], estimator=ESTIMATORS["fqe"].label, value=fqe_value, se=float("nan")
     )
     floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
+    share = unsupported_share(target, logged.behaviour_proba, protocol.constraints.support_threshold)
     out = {}
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATORS[name].label].to_dict()
         estimate["low_ess"] = bool(estimate["ess"] is None or estimate["ess"] < floor)
         if not deterministic:
             estimate["n_following"] = None
+        judged = verdict(name, estimate["ess"], floor, share, protocol.evaluation.unidentified_share)
+        estimate.update(
+            verdict=judged["verdict"],
+            verdict_reason=judged["reason"],
+            unsupported_share=share,
+            outcome_model_share=outcome_model_share(estimate["ess"], floor) if ESTIMATORS[name].needs_q_model else None,
+        )
         out[name] = estimate
+    return out
+
+
+def evaluate_target(
+    logged: LoggedDecisions, t: dict, protocol: Protocol, strict: bool, learned_folds=None, fitted=None
+) -> dict:
+    """One entry of values.json's ``regimes``: name, label, estimates with verdicts, and for a strategy of the
+    protocol's ``strategies`` section its family, parameter, words and share of decisions changed.
+
+    The learned regime and the strategies built from its cross-fitted recommendations get their outcome models
+    fitted within the cross-fitting folds (``learned_folds``); usual care and the fixed strategies do not depend
+    on the records' regime and are fitted on all records.
+    """
+    name, strategy = t["name"], t.get("strategy")
+    folds = learned_folds if name == "learned" or strategy is not None else None
+    deterministic = name != "usual_care" and strategy is None
+    out = {
+        "name": name,
+        "label": t["label"],
+        "estimates": evaluate_regime(logged, t["target"], protocol, deterministic, strict, folds, fitted),
+    }
+    if strategy is not None:
+        out.update(strategy.to_dict(), share_changed=share_changed(t["target"], logged.behaviour_proba))
+    return out
+
+
+def usual_care_contrasts(regimes: list[dict], estimators) -> list[dict]:
+    """Learned regime and every strategy minus usual care, by each estimator, with the weaker regime's verdict."""
+    usual = next(r["estimates"] for r in regimes if r["name"] == "usual_care")
+    out = []
+    for r in regimes:
+        if r["name"] != "learned" and "family" not in r:
+            continue
+        for name in estimators:
+            mine, theirs = r["estimates"][name], usual[name]
+            missing = mine["value"] is None or theirs["value"] is None
+            out.append(
+                {
+                    "regime": r["name"],
+                    "versus": "usual_care",
+                    "estimator": name,
+                    "difference": None if missing else mine["value"] - theirs["value"],
+                    "low_ess": mine["low_ess"],
+                    "verdict": worst(mine["verdict"], theirs["verdict"]),
+                }
+            )
     return out
 
 
@@ -230,6 +308,7 @@ def evaluate_all(
     *,
     strict: bool = True,
     learned_folds: np.ndarray | None = None,
+    learned_q: np.ndarray | None = None,
 ) -> dict:
     """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts.
 
@@ -240,41 +319,19 @@ def evaluate_all(
     ``side_by_side`` ({variant name: action codes}) adds the safeguard comparison regimes of the regime stage
     under the key ``side_by_side`` (kept apart from ``regimes``, which the bootstrap and contrasts use).
 
-    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted: the
-    learned
-    regime's outcome models are then fitted within each fold.
+    ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted:
+    the outcome models of the learned regime and of the strategies built from it are then fitted within each fold.
+    ``learned_q`` (n, K): the cross-fitted Q-values the override strategies need.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
-    targets = regime_targets(
-        logged.behaviour_proba, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies
-    )
-    regimes = [
-        {
-            "name": name,
-            "label": label,
-            "estimates": evaluate_regime(
-                logged, target, protocol, name != "usual_care", strict, learned_folds if name == "learned" else None
-            ),
-        }
-        for name, label, target in targets
-    ]
+    targets = regime_targets(logged.behaviour_proba, recommended, protocol, learned_q)
+    models = outcome_models(logged, targets, protocol, learned_folds)
+    regimes = [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(targets, models)]
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
     episode_patient[logged.episode] = logged.patient
     mean, se = clustered_mean(returns, episode_patient)
-    learned, usual = regimes[0]["estimates"], regimes[1]["estimates"]
-    contrasts = [
-        {
-            "regime": "learned",
-            "versus": "usual_care",
-            "estimator": name,
-            "difference": None
-            if learned[name]["value"] is None or usual[name]["value"] is None
-            else learned[name]["value"] - usual[name]["value"],
-            "low_ess": learned[name]["low_ess"],
-        }
-        for name in protocol.evaluation.estimators
-    ]
+    contrasts = usual_care_contrasts(regimes, protocol.evaluation.estimators)
     return {
         "discount": protocol.discount,
         "episodes": logged.n_episodes,
@@ -282,7 +339,7 @@ def evaluate_all(
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
         "regimes": regimes,
         "contrasts": contrasts,
-        "learned_weight_histograms": weight_histograms(logged, targets[0][2], protocol.horizon),
+        "learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol.horizon),
         **(
             {}
             if side_by_side is None

@@ -35,6 +35,7 @@ from regimewise.protocol.sections import (
     SweepSpec,
     WholeNumber,
 )
+from regimewise.protocol.strategies import StrategiesSpec
 
 
 class Protocol(Strict):
@@ -57,6 +58,9 @@ class Protocol(Strict):
     sweeps: SweepSpec | None = Field(None, description="optional specification sweep (none: no sweep jobs)")
     survival: SurvivalSpec | None = Field(
         None, description="optional survival under each strategy (needs data.episodes)"
+    )
+    strategies: StrategiesSpec | None = Field(
+        None, description="strategies derived from the learned regime (none: only the regime and fixed strategies)"
     )
 
     @model_validator(mode="after")

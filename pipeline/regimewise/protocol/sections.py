@@ -349,6 +349,11 @@ class EvaluationSpec(Strict):
     minimum_ess: Annotated[float, Field(ge=30.0), FINITE, NOT_BOOLEAN] = Field(
         30.0, description="absolute floor of the reliable effective sample size (never below 30)"
     )
+    unidentified_share: Probability = Field(
+        0.5,
+        description="a regime whose actions lie below the support threshold at more than this share of decisions "
+        "is 'not identified': its value gets no interval, no plot point and no headline",
+    )
     m_out_of_n: Flag = Field(
         False, description="adaptive m-out-of-n bootstrap (Chakraborty, Laber & Zhao 2013) for near-tied actions"
     )

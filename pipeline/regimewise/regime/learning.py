@@ -179,13 +179,30 @@ def cross_fitted_recommendations(
     a model fitted across folds has seen the records that chose the other folds' regimes.
     (Both references recalled from memory; neither is in the project's METHODS.md.)
     """
+    return cross_fitted_regime(decisions, behaviour_proba, protocol)[0]
+
+
+def cross_fitted_regime(
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol
+) -> tuple[np.ndarray, np.ndarray]:
+    """The cross-fitted recommendations of :func:`cross_fitted_recommendations` and, from the same fold regimes,
+    the Q-values (n, K) of every action: each patient's Q-values from the Q-models learned without that patient.
+
+    The strategies that switch only when the learned regime's estimated gain is large enough
+    (:mod:`regimewise.evaluation.strategies`) read their gains from these Q-values, so a patient's gain is never
+    estimated by a model that learned from that patient.
+    """
     folds = crossfit_folds(decisions, protocol)
     if folds is None:
-        return learn_regime(decisions, protocol).recommend(decisions, behaviour_proba)
+        learned = learn_regime(decisions, protocol)
+        return learned.recommend(decisions, behaviour_proba), learned.q_values(decisions)
     recommended = np.empty(len(decisions), dtype=np.int64)
+    q = np.empty((len(decisions), len(protocol.actions)))
     for held_out, learned in fold_regimes(decisions, protocol, folds):
-        recommended[held_out] = learned.recommend(decisions.loc[held_out].reset_index(drop=True))
-    return recommended
+        rows = decisions.loc[held_out].reset_index(drop=True)
+        recommended[held_out] = learned.recommend(rows)
+        q[held_out] = learned.q_values(rows)
+    return recommended, q
 
 
 def fold_regimes(

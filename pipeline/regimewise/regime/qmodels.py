@@ -45,8 +45,22 @@ def _least_squares(design, y, alpha):
     if alpha > 0:
         penalty = np.sqrt(alpha) * np.eye(design.shape[1])[1:]
         design = np.vstack([design, penalty])
-        y = np.concatenate([y, np.zeros(penalty.shape[0])])
+        y = np.concatenate([y, np.zeros((penalty.shape[0],) + np.shape(y)[1:])])
     return np.linalg.lstsq(design, y, rcond=None)[0]
+
+
+def _least_squares_columns(design, y, alpha):
+    """:func:`_least_squares` of each column of ``y`` (n, R) on the same design, (p + 1, R).
+
+    The Gram matrix and its condition number are computed once; each column is then solved exactly as
+    :func:`_least_squares` solves a single response, so a column's coefficients do not depend on the others.
+    """
+    gram = design.T @ design
+    if alpha > 0:
+        gram[1:, 1:] += alpha * np.eye(design.shape[1] - 1)
+    if np.linalg.cond(gram) >= WELL_CONDITIONED:
+        return np.column_stack([_least_squares(design, y[:, j], alpha) for j in range(y.shape[1])])
+    return np.column_stack([scipy.linalg.solve(gram, design.T @ y[:, j], assume_a="pos") for j in range(y.shape[1])])
 
 
 def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value):
@@ -70,6 +84,46 @@ def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions
             if cell.size:
                 coef[t, a] = _least_squares(design[cell], target[cell], alpha)
     return coef
+
+
+def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha):
+    """Fitted-Q evaluation of several regimes on the same decisions at once (Le, Voloshin & Yue 2019).
+
+    The backward induction of :class:`regimewise.evaluation.fqe.FittedQEvaluation` run for every regime of
+    ``targets`` (a list of (n, K) probabilities) together: each step's and action's least-squares problem has the
+    same design for every regime, so it is solved once with one right-hand side per regime. Rows sorted by
+    episode then step, as everywhere.
+
+    Returns
+    -------
+    list
+        Per regime, the fitted Q-values (n, K) of every action at every decision (NaN for an action without rows
+        at that step), or the :class:`UserInputError` that stopped its backup (the regime gives probability to an
+        action never seen at some step).
+    """
+    design = _design(np.asarray(X, dtype=float))
+    step, action = np.asarray(step), np.asarray(action)
+    next_row = next_row_index(np.asarray(episode))
+    n, n_regimes = step.shape[0], len(targets)
+    q = np.full((n_regimes, n, n_actions), np.nan)
+    failed: list = [None] * n_regimes
+    target = np.repeat(np.asarray(reward, dtype=float)[:, None], n_regimes, axis=1)
+    for t in range(horizon - 1, -1, -1):
+        rows = np.flatnonzero(step == t)
+        later = next_row[rows]
+        cont, later = rows[later >= 0], later[later >= 0]
+        for r in range(n_regimes):
+            if cont.size and failed[r] is None:
+                try:
+                    target[cont, r] = target[cont, r] + gamma * policy_average(q[r, later], targets[r][later])
+                except UserInputError as err:
+                    failed[r] = err
+        for a in range(n_actions):
+            cell = rows[action[rows] == a]
+            if cell.size:
+                coef = _least_squares_columns(design[cell], target[cell], alpha)
+                q[:, rows, a] = np.einsum("np,pr->rn", design[rows], coef)  # no BLAS: same bits on any thread count
+    return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
 def policy_average(q, proba):

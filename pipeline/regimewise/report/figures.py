@@ -256,7 +256,8 @@ def actions_by_step_figure(labels, by_step) -> str:
 def value_figure(regimes, estimators) -> str:
     """Forest plot: each regime's value by each estimator with its bootstrap interval.
 
-    Hollow markers and dashed grey intervals: effective sample too small to be trusted.
+    Hollow markers and dashed grey intervals: effective sample too small to be trusted. A value whose verdict is
+    ``not identified`` gets no point and no interval, so the axis spans only the values plotted.
     """
     apply_style()
     fig, ax = plt.subplots(figsize=(7.0, 0.32 * len(regimes) * len(estimators) + 1.2))
@@ -264,7 +265,7 @@ def value_figure(regimes, estimators) -> str:
         labelled = False
         for i, r in enumerate(regimes):
             e = r["estimates"].get(est)
-            if e is None or e["value"] is None:
+            if e is None or e["value"] is None or e.get("verdict") == "not identified":
                 continue
             y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * (0.8 / len(estimators))
             color = "0.6" if e["low_ess"] else f"C{j}"

@@ -83,7 +83,9 @@ def build_summary(p, parts, prov) -> dict:
         "contrasts": values["contrasts"],
         "minimum_reliable_ess": values["minimum_reliable_ess"],
         "bootstrap": values["bootstrap"],
-        "headline": headline_sentence(p, values),
+        "headline": strategy_sentence(p, values) if p.strategies is not None else headline_sentence(p, values),
+        "learned_regime_sentence": headline_sentence(p, values),
+        "strategies": strategy_headlines(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "sweep": sweep_headlines(parts.get("sweep")),
         "survival": survival_headlines(parts.get("survival")),
@@ -161,10 +163,12 @@ def safeguard_headlines(regime: dict, values: dict) -> dict:
 
 def headline_sentence(p, values) -> str:
     """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
-    contrasts = {c["estimator"]: c for c in values["contrasts"]}
+    contrasts = {c["estimator"]: c for c in values["contrasts"] if c["regime"] == "learned"}
     name = headline_estimator(p)
     contrast = contrasts[name]
     ess = values["regimes"][0]["estimates"][name]["ess"]
+    if contrast.get("withheld"):
+        return f"By {name}, the learned regime's value is not identified: {contrast_reason(values, 'learned', name)}."
     if contrast["difference"] is None:
         return (
             f"The {name} estimate of the learned regime's value is undefined: no episode in the records follows it "
@@ -250,3 +254,68 @@ def survival_sentence(survival: dict, strategies: dict) -> str:
             "weights to be trusted, so the records cannot confirm this difference."
         )
     return sentence + "."
+
+
+# ---------------------------------------------------------------------------------------------- strategies
+def contrast_reason(values: dict, regime: str, estimator: str) -> str:
+    """The verdict's plain reason of ``regime``'s estimate by ``estimator`` (values.json)."""
+    estimates = next(r["estimates"] for r in values["regimes"] if r["name"] == regime)
+    return estimates[estimator].get("verdict_reason") or "the records cannot identify it"
+
+
+def strategy_rows(p, values: dict) -> list[dict]:
+    """The trade-off table: every strategy of the protocol's grid by the headline estimator, with its contrast
+    against usual care, interval, ESS, share of decisions changed and verdict (numbers withheld when not
+    identified)."""
+    name = headline_estimator(p)
+    contrasts = {c["regime"]: c for c in values["contrasts"] if c["estimator"] == name}
+    rows = []
+    for r in values["regimes"]:
+        if "family" not in r:
+            continue
+        e, c = r["estimates"][name], contrasts[r["name"]]
+        rows.append(
+            {
+                "name": r["name"],
+                "family": r["family"],
+                "parameter": r["parameter"],
+                "words": r["words"],
+                "estimator": name,
+                "value": e["value"],
+                "difference": c["difference"],
+                "low": c.get("low"),
+                "high": c.get("high"),
+                "ess": e["ess"],
+                "share_changed": r["share_changed"],
+                "verdict": c["verdict"],
+                "reason": e.get("verdict_reason"),
+            }
+        )
+    return rows
+
+
+def strategy_headlines(p, values: dict) -> dict | None:
+    """summary.json's ``strategies`` block: the trade-off table and the protocol's pre-specified headline strategy."""
+    if p.strategies is None:
+        return None
+    rows = strategy_rows(p, values)
+    wanted = p.strategies.headline
+    headline = next(r for r in rows if r["family"] == wanted.family and r["parameter"] == wanted.value)
+    return {"headline": headline, "prespecified": True, "table": rows}
+
+
+def strategy_sentence(p, values: dict) -> str:
+    """One plain sentence on the pre-specified headline strategy: what it is, its contrast, ESS and verdict."""
+    h = strategy_headlines(p, values)["headline"]
+    start = f"Pre-specified headline strategy: {h['words']}"
+    if h["verdict"] == "not identified" or h["difference"] is None:
+        return f"{start}, the records cannot identify its value ({h['reason'] or 'no estimate'})."
+    direction = "higher" if h["difference"] > 0 else "lower"
+    sentence = (
+        f"{start}, the expected total reward per episode would have been {abs(h['difference']):.2f} {direction} "
+        f"than under usual care by {h['estimator']}{_interval_clause(h, values.get('bootstrap'))}, resting on an "
+        f"effective sample of {h['ess']:.1f} episodes; verdict: {h['verdict']}"
+    )
+    if h["verdict"] == "model projection":
+        return sentence + " — the data cannot confirm this difference; it rests mostly on the outcome model."
+    return sentence + " (the effective sample reaches the protocol's minimum)."

@@ -85,15 +85,19 @@ def _censoring_weights(timeline, decisions, protocol):
     return model.weights(timeline, states), info
 
 
-def clone_tables(decisions, episodes, proba, recommended, protocol):
-    """(strategies [(name, label)], {name: CloneTable}, dropout summary) for every compared strategy."""
+def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=None):
+    """(strategies [(name, label)], {name: CloneTable}, dropout summary) for every compared strategy.
+
+    ``learned_q``: the learned regime's cross-fitted Q-values, which strategies that override usual care only
+    when the expected gain is large need."""
     frame, outcomes = survival_inputs(decisions, episodes, protocol)
     spec = protocol.survival
     timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
-    targets = regime_targets(proba, recommended, protocol.action_labels, protocol.evaluation.fixed_strategies)
+    targets = regime_targets(proba, recommended, protocol, learned_q)
     tables, strategies = {}, []
-    for name, label, target in targets:
+    for entry in targets:
+        name, label, target = entry["name"], entry["label"], entry["target"]
         tables[name] = clone_censor_weight(
             timeline,
             None if name == USUAL_CARE else target,
@@ -113,13 +117,13 @@ def strategy_curves(tables, grid, protocol) -> dict:
         return {name: survival_curve(table, grid, protocol.survival.horizon_days) for name, table in tables.items()}
 
 
-def survival_values(decisions, episodes, proba, recommended, protocol) -> dict:
+def survival_values(decisions, episodes, proba, recommended, protocol, learned_q=None) -> dict:
     """Survival and RMST of every strategy and their contrasts with usual care at the table times.
 
     The compact form a bootstrap replicate records: {name: {"survival": [...], "rmst": x,
     "risk_difference": [...], "rmst_difference": y}}.
     """
-    _, tables, _ = clone_tables(decisions, episodes, proba, recommended, protocol)
+    _, tables, _ = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
     times = table_times(protocol)
     curves = strategy_curves(tables, times, protocol)
     return {name: _point(curve, curves[USUAL_CARE], times) for name, curve in curves.items()}
@@ -135,9 +139,9 @@ def _point(curve, usual, times) -> dict:
     }
 
 
-def survival_analysis(decisions, episodes, proba, recommended, protocol) -> dict:
+def survival_analysis(decisions, episodes, proba, recommended, protocol, learned_q=None) -> dict:
     """Everything survival.json holds except the bootstrap intervals (added by the stage)."""
-    strategies, tables, dropout = clone_tables(decisions, episodes, proba, recommended, protocol)
+    strategies, tables, dropout = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
     grid = time_grid(decisions, protocol)
     times = table_times(protocol)
     curves = strategy_curves(tables, grid, protocol)

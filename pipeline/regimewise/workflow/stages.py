@@ -29,7 +29,7 @@ from regimewise.io import read_json, read_parquet, write_json, write_parquet, wr
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.learning import (
-    cross_fitted_recommendations,
+    cross_fitted_regime,
     crossfit_folds,
     regime_variants,
 )
@@ -157,8 +157,12 @@ def regime_stage(protocol, decisions, proba, table, regime):
     out = frame[["episode_id", "step", "action"]].copy()
     out["recommended"] = labels[recommended]
     folds = p.evaluation.cross_fit_folds
-    evaluated = recommended if folds == 1 else cross_fitted_recommendations(frame, probabilities, p)
+    if folds == 1:
+        evaluated, evaluated_q = recommended, fqi.q_values(X, steps)
+    else:
+        evaluated, evaluated_q = cross_fitted_regime(frame, probabilities, p)
     out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
+    out[evaluated_q_columns(p.action_labels)] = evaluated_q  # the gains of the override strategies
     for name, codes in chosen.items():
         out[f"recommended_{name}"] = labels[codes]
     out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
@@ -186,12 +190,18 @@ def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarr
     return action_codes(recommendations.drop(columns="action").rename(columns={column: "action"}), labels)
 
 
+def evaluated_q_columns(labels) -> list[str]:
+    """Columns of the regime stage's table holding the cross-fitted Q-values the evaluation uses."""
+    return [f"evaluated_q_{label}" for label in labels]
+
+
 def evaluate_stage(protocol, decisions, proba, table, values):
-    """Values of the learned regime, usual care and fixed strategies by each of the protocol's estimators."""
+    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     recommendations = read_parquet(table)
     recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
+    learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
     variants = {
         c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
         for c in recommendations.columns
@@ -206,6 +216,7 @@ def evaluate_stage(protocol, decisions, proba, table, values):
             p,
             variants or None,
             learned_folds=crossfit_folds(frame, p),
+            learned_q=learned_q,
         ),
     )
 
@@ -283,8 +294,10 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
-    recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
-    out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p)
+    recommendations = read_parquet(table)
+    recommended = column_codes(recommendations, "evaluated", p.action_labels)  # as the evaluation scores it
+    learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
+    out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p, learned_q)
     replicates = [r["survival"] for path in shards for r in read_json(path)["replicates"] if "survival" in r]
     out["intervals"] = survival_intervals(out, replicates, p)
     out["caution"] = RECOMMENDATION_CAUTION

@@ -1,0 +1,183 @@
+"""Stochastic regimes and the strategies derived from a learned regime, against exact answers.
+
+Sources: exact policy evaluation by backward induction on the small Markov decision process of
+``tests/support/small_mdp.py`` (Puterman 1994, ch. 4), and direct enumeration of a modified treatment policy's
+post-intervention action (Díaz, Williams, Hoffman & Schenck 2023, JASA 118:846: the density of d(A, s) is the
+sum of usual care's probabilities over the natural actions d maps to a).
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+from support import small_mdp as sm
+
+from regimewise.errors import StatisticalWarning
+from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.evaluation.ope import evaluate_off_policy
+from regimewise.evaluation.strategies import (
+    incremental_proba,
+    override_proba,
+    partial_adoption_proba,
+    share_changed,
+)
+from regimewise.regime.qmodels import evaluate_policies
+
+MDP = sm.make_mdp()
+REGIME = np.array([[0, 1, 2], [1, 2, 2], [0, 1, 1]])  # a fixed deterministic regime (H, S)
+# an invented Q-table (H, S, K) whose gaps decide where the override strategy switches
+Q_TABLE = sm.backward_induction(MDP.transition, MDP.reward_mean)[0]
+
+
+def grid_rows(values_hsk):
+    """(H·S, K) rows of a table given per step and state, with the matching recommended action."""
+    return values_hsk.reshape(-1, sm.N_ACTIONS), REGIME.reshape(-1)
+
+
+def as_table(rows):
+    return rows.reshape(sm.HORIZON, sm.N_STATES, sm.N_ACTIONS)
+
+
+def strategy_tables():
+    """Exact (H, S, K) probabilities of each strategy built from REGIME, usual care and Q_TABLE."""
+    behaviour, rec = grid_rows(MDP.behaviour)
+    q, _ = grid_rows(Q_TABLE)
+    return {
+        "partial_adoption_0.4": as_table(partial_adoption_proba(rec, behaviour, 0.4)),
+        "override_gain_0.5": as_table(override_proba(rec, q, behaviour, 0.5)),
+        "incremental_odds_3": as_table(incremental_proba(rec, behaviour, 3.0)),
+    }
+
+
+def test_override_density_is_the_law_of_the_modified_action():
+    # source: enumeration over natural actions a' of d(a', s) = rec if Q(rec) − Q(a') > c else a'
+    behaviour, rec = grid_rows(MDP.behaviour)
+    q, _ = grid_rows(Q_TABLE)
+    got = override_proba(rec, q, behaviour, 0.5)
+    expected = np.zeros_like(behaviour)
+    for i in range(behaviour.shape[0]):
+        for natural in range(sm.N_ACTIONS):
+            d = rec[i] if q[i, rec[i]] - q[i, natural] > 0.5 else natural
+            expected[i, d] += behaviour[i, natural]
+    np.testing.assert_allclose(got, expected, atol=1e-15)
+    # the importance weight is 1 where the clinician's action is kept and 0 where it is overridden
+    ratio = got / behaviour
+    kept = (q[np.arange(len(rec)), rec][:, None] - q <= 0.5) & (np.arange(sm.N_ACTIONS) != rec[:, None])
+    np.testing.assert_allclose(ratio[kept], 1.0)
+    assert np.all(ratio[~kept & (np.arange(sm.N_ACTIONS) != rec[:, None])] == 0.0)
+
+
+def test_partial_adoption_and_incremental_weights_are_bounded():
+    # source: the definitions; π_e/p_b ≤ 1 − ε + ε/p_b and ≤ max(δ, 1) (Kennedy 2019, JASA 114:645)
+    behaviour, rec = grid_rows(MDP.behaviour)
+    rows = np.arange(len(rec))
+    ratio = partial_adoption_proba(rec, behaviour, 0.4) / behaviour
+    assert np.all(ratio <= 1 - 0.4 + 0.4 / behaviour[rows, rec][:, None] + 1e-12)
+    odds = incremental_proba(rec, behaviour, 3.0)
+    p, q = behaviour[rows, rec], odds[rows, rec]
+    np.testing.assert_allclose(q / (1 - q), 3.0 * p / (1 - p))
+    assert np.all(odds / behaviour <= 3.0 + 1e-12)
+    # share changed: ε·(1 − p_b(rec)) for partial adoption (total variation of the mixture)
+    assert share_changed(partial_adoption_proba(rec, behaviour, 0.4), behaviour) == pytest.approx(
+        np.mean(0.4 * (1 - p))
+    )
+
+
+def simulate_override_value(n, seed, c):
+    """Monte Carlo value of the override strategy, rolled out directly: draw the clinician's natural action from
+    usual care, switch it when the gain exceeds c (independent of the density formula)."""
+    rng = np.random.default_rng(seed)
+    state = rng.choice(sm.N_STATES, size=n, p=MDP.initial)
+    alive = np.ones(n, dtype=bool)
+    total = np.zeros(n)
+    for t in range(sm.HORIZON):
+        cum = MDP.behaviour[t, state].cumsum(axis=1)
+        natural = np.minimum((rng.random(n)[:, None] > cum).sum(axis=1), sm.N_ACTIONS - 1)
+        rec = REGIME[t, state]
+        gain = Q_TABLE[t, state, rec] - Q_TABLE[t, state, natural]
+        action = np.where(gain > c, rec, natural)
+        total += alive * MDP.reward_mean[t, state, action]
+        cum = MDP.transition[t, state, action].cumsum(axis=1)
+        outcome = np.minimum((rng.random(n)[:, None] > cum).sum(axis=1), sm.END)
+        alive &= outcome != sm.END
+        state = np.where(outcome == sm.END, 0, outcome)
+    return total.mean(), total.std(ddof=1) / np.sqrt(n)
+
+
+def test_override_value_by_density_equals_direct_rollout():
+    # source: exact evaluation of the induced density against a direct rollout of d(natural action, state)
+    _, v = sm.evaluate_policy(MDP.transition, MDP.reward_mean, strategy_tables()["override_gain_0.5"])
+    mean, se = simulate_override_value(400_000, seed=7, c=0.5)
+    assert abs(mean - MDP.initial @ v[0]) < 3 * se
+
+
+def estimates_for(sample, proba):
+    target = sm.rows_proba(proba, sample)
+    fqe = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
+        sample["X"], sample["step"], sample["action"], sample["reward"], sample["episode"], target
+    )
+    q_taken, v_target = fqe.taken_and_target_values(sample["X"], sample["step"], sample["action"], target)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", StatisticalWarning)
+        out = evaluate_off_policy(
+            sample["step"],
+            sample["action"],
+            sample["reward"],
+            sample["episode"],
+            sample["behaviour_proba"],
+            target,
+            horizon=sm.HORIZON,
+            q_taken=q_taken,
+            v_target=v_target,
+        )
+    first = sample["step"] == 0
+    values = {name: est.value for name, est in out.items()}
+    values["FQE"] = fqe.value_estimate(sample["X"][first], target[first])
+    return values
+
+
+@pytest.mark.parametrize("name", ["partial_adoption_0.4", "override_gain_0.5", "incremental_odds_3"])
+def test_estimators_recover_the_exact_value_of_a_stochastic_strategy(name):
+    """100 samples of 800 episodes: each estimator's mean lies within 3 Monte Carlo standard errors of the exact
+    value of the stochastic strategy (backward evaluation on the true MDP)."""
+    proba = strategy_tables()[name]
+    _, v_exact = sm.evaluate_policy(MDP.transition, MDP.reward_mean, proba)
+    exact = MDP.initial @ v_exact[0]
+    big = sm.sample_episodes(MDP, 100 * 800, seed=2025)
+    values = [estimates_for(sample, proba) for sample in sm.split_samples(big, 800)]
+    assert len(values) == 100
+    for estimator in ("IS", "WIS", "PDIS", "PDWIS", "DR", "WDR", "FQE"):
+        vals = np.array([v[estimator] for v in values])
+        se = vals.std(ddof=1) / np.sqrt(vals.size)
+        assert abs(vals.mean() - exact) < 3 * se, (estimator, vals.mean(), exact, se)
+
+
+def test_saturated_fqe_is_exact_for_each_strategy():
+    # source: exact policy evaluation on the empirical MDP of the sample (saturated one-hot states)
+    log = sm.sample_episodes(MDP, 2000, seed=11)
+    initial, transition, reward_mean, _ = sm.empirical_mdp(log)
+    for proba in strategy_tables().values():
+        _, v_exact = sm.evaluate_policy(transition, reward_mean, proba)
+        target = sm.rows_proba(proba, log)
+        fqe = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
+            log["X"], log["step"], log["action"], log["reward"], log["episode"], target
+        )
+        first = log["step"] == 0
+        assert fqe.value_estimate(log["X"][first], target[first]) == pytest.approx(initial @ v_exact[0], abs=1e-9)
+
+
+def test_batched_evaluation_equals_one_fitted_q_evaluation_per_regime():
+    # source: FittedQEvaluation (itself checked against exact evaluation above and scikit-learn Ridge in test_fqi.py)
+    log = sm.sample_episodes(MDP, 600, seed=12)
+    X = np.hstack([log["X"], np.random.default_rng(0).standard_normal((log["X"].shape[0], 2))])
+    tables = list(strategy_tables().values()) + [sm.deterministic_proba(REGIME)]
+    targets = [sm.rows_proba(t, log) for t in tables]
+    batched = evaluate_policies(
+        X, log["step"], log["action"], log["reward"], log["episode"], targets,
+        horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5,
+    )  # fmt: skip
+    for q, target in zip(batched, targets):
+        single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(
+            X, log["step"], log["action"], log["reward"], log["episode"], target
+        )
+        np.testing.assert_allclose(q, single.q_values(X, log["step"]), rtol=0, atol=1e-10)
