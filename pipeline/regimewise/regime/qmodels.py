@@ -58,9 +58,12 @@ def _least_squares_columns(design, y, alpha):
     gram = design.T @ design
     if alpha > 0:
         gram[1:, 1:] += alpha * np.eye(design.shape[1] - 1)
+    # each response as its own contiguous vector: a strided column can take another summation path in BLAS,
+    # which would make a regime's coefficients depend (at rounding level) on how many regimes share the pass
+    columns = [np.ascontiguousarray(y[:, j]) for j in range(y.shape[1])]
     if np.linalg.cond(gram) >= WELL_CONDITIONED:
-        return np.column_stack([_least_squares(design, y[:, j], alpha) for j in range(y.shape[1])])
-    return np.column_stack([scipy.linalg.solve(gram, design.T @ y[:, j], assume_a="pos") for j in range(y.shape[1])])
+        return np.column_stack([_least_squares(design, column, alpha) for column in columns])
+    return np.column_stack([scipy.linalg.solve(gram, design.T @ column, assume_a="pos") for column in columns])
 
 
 def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value):
@@ -122,7 +125,8 @@ def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_a
             cell = rows[action[rows] == a]
             if cell.size:
                 coef = _least_squares_columns(design[cell], target[cell], alpha)
-                q[:, rows, a] = np.einsum("np,pr->rn", design[rows], coef)  # no BLAS: same bits on any thread count
+                for r in range(n_regimes):  # one regime at a time, no BLAS: the same bits whatever shares the pass
+                    q[r, rows, a] = np.einsum("np,p->n", design[rows], np.ascontiguousarray(coef[:, r]))
     return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
