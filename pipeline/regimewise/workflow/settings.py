@@ -25,6 +25,13 @@ class Settings:
     episodes_file: str | None
     bootstrap_shards: int = 1
     sweep_specs: tuple[str, ...] = ()
+    bootstrap_replicates: int = 0
+    sweep_replicates: int = 0
+
+    @property
+    def replicates_per_shard(self) -> int:
+        """Most bootstrap replicates any one shard job runs (for its resource request)."""
+        return -(-self.bootstrap_replicates // self.bootstrap_shards)
 
     @property
     def record_inputs(self) -> dict:
@@ -50,4 +57,6 @@ def load_settings(config: dict) -> Settings:
         episodes_file=None if episodes is None else str(episodes),
         bootstrap_shards=pf.protocol.evaluation.shards,
         sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
+        bootstrap_replicates=pf.protocol.evaluation.replicates,
+        sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
     )
