@@ -26,6 +26,8 @@ def _design(X):
     return np.hstack([np.ones((X.shape[0], 1)), X])
 
 
+Q_BLOCK_ROWS = 100_000  # rows per block of q_values: 100k x 4 actions x 21 coefficients = 67 MB of copies
+
 WELL_CONDITIONED = 1e8  # condition number of the Gram matrix below which the normal equations are used
 
 
@@ -178,7 +180,14 @@ class BackwardQModel:
             NaN for an action that never occurs at that step in the training data.
         """
         X, step = self._checked_rows(X, step)
-        return np.einsum("nkp,np->nk", self.coef_[step], _design(X))
+        if X.shape[0] <= Q_BLOCK_ROWS:
+            return np.einsum("nkp,np->nk", self.coef_[step], _design(X))
+        return np.concatenate(  # row blocks: coef_[step] copies (K, p + 1) coefficients per row
+            [
+                np.einsum("nkp,np->nk", self.coef_[step[s : s + Q_BLOCK_ROWS]], _design(X[s : s + Q_BLOCK_ROWS]))
+                for s in range(0, X.shape[0], Q_BLOCK_ROWS)
+            ]
+        )
 
 
 class LinearActionModel:
