@@ -17,7 +17,8 @@ from support import small_mdp as sm
 
 from regimewise.core.folds import patient_folds
 from regimewise.errors import StatisticalWarning, UserInputError
-from regimewise.regime import pessimism
+from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.regime import pessimism, qmodels
 from regimewise.regime.fqi import FittedQIteration, QLearningSettings
 from regimewise.regime.permitted import constrained_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
@@ -289,3 +290,19 @@ def test_spread_in_blocks_equals_one_pass(monkeypatch):
     monkeypatch.setattr(pessimism, "SPREAD_BLOCK_ROWS", 64)
     np.testing.assert_array_equal(ens.spread(X), expected)
     np.testing.assert_array_equal(ens.spread(X[:, :]), ens.spread(X[::-1])[::-1])
+
+
+def test_q_values_in_row_blocks_equal_one_pass(monkeypatch):
+    # exact computation: the per-row einsum over coef_[step] on all rows at once, against the blocked q_values
+    rng = np.random.default_rng(8)
+    n_episodes, horizon = 60, 3
+    X = rng.normal(size=(n_episodes * horizon, 2))
+    step = np.tile(np.arange(horizon), n_episodes)
+    episode = np.repeat(np.arange(n_episodes), horizon)
+    action = rng.integers(0, 2, step.size)
+    reward = X[:, 0] * action + rng.normal(size=step.size)
+    fqe = FittedQEvaluation(2, horizon, alpha=1.0).fit(X, step, action, reward, episode, np.full((step.size, 2), 0.5))
+    design = np.hstack([np.ones((step.size, 1)), X])
+    expected = np.einsum("nkp,np->nk", fqe.coef_[step], design)
+    monkeypatch.setattr(qmodels, "Q_BLOCK_ROWS", 7)
+    np.testing.assert_array_equal(fqe.q_values(X, step), expected)
