@@ -39,16 +39,19 @@ class StageCost:
 # Interpreter and libraries: about 300 MB before any data (measured: the bootstrap combine stage peaks there).
 BASE_MB = 400.0
 
-# Slopes from bench/bench_scale.py (peak RSS and CPU time per million decisions; see bench/RESULTS.md).
+# Slopes from bench/bench_scale.py at 100,000 episodes x 12 decisions (1.2M decisions): peak RSS above the
+# interpreter's 300 MB, and CPU time, per million decisions, rounded up (bench/RESULTS.md, 2026-12-02). The
+# validate slope was confirmed at 12M decisions (3.8 GB peak). A shard's per-replicate time is that of the
+# behaviour, regime and evaluate stages together (about 2 CPU minutes per million decisions).
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.3),
-    "behaviour": StageCost(BASE_MB, 600.0, 0.5),
-    "regime": StageCost(BASE_MB, 1200.0, 1.5),
+    "behaviour": StageCost(BASE_MB, 800.0, 0.5),
+    "regime": StageCost(BASE_MB, 1600.0, 1.5),
     "evaluate": StageCost(BASE_MB, 1100.0, 0.8),
-    "describe": StageCost(BASE_MB, 300.0, 0.2),
+    "describe": StageCost(BASE_MB, 700.0, 0.2),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
-    "sensitivity": StageCost(BASE_MB, 500.0, 0.3),
+    "sensitivity": StageCost(BASE_MB, 600.0, 0.4),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     "report": StageCost(BASE_MB, 0.0, 0.0),
@@ -94,7 +97,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime", 12_000_000)
-    {'mem_mb': 22200, 'runtime': 27}
+    {'mem_mb': 29400, 'runtime': 27}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
