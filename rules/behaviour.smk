@@ -12,6 +12,10 @@ rule behaviour:
         benchmarks("behaviour")
     params:
         code=stage_code_hash("behaviour"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("behaviour"),
+        runtime=runtime("behaviour"),
     conda:
         "envs/regimewise.yaml"
     script:

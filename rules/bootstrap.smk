@@ -12,9 +12,12 @@ rule bootstrap_shard:
         benchmarks("bootstrap_shard_{shard}")
     wildcard_constraints:
         shard=r"\d+",
-    threads: 1
     params:
         code=stage_code_hash("bootstrap_shard"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("bootstrap_shard"),
+        runtime=runtime("bootstrap_shard"),
     conda:
         "envs/regimewise.yaml"
     script:
@@ -34,6 +37,10 @@ rule bootstrap:
         benchmarks("bootstrap")
     params:
         code=stage_code_hash("bootstrap"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("bootstrap"),
+        runtime=runtime("bootstrap"),
     conda:
         "envs/regimewise.yaml"
     script:

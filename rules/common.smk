@@ -1,5 +1,6 @@
 # ---- settings shared by every stage: validated once, at parse time -------------------------------------
 from regimewise.workflow.fingerprint import stage_code_hash
+from regimewise.workflow.resources import recorded_decisions, stage_resources
 from regimewise.workflow.settings import load_settings
 
 SETTINGS = load_settings(config)
@@ -39,3 +40,26 @@ def survival_inputs(wildcards):
 
 def final_outputs():
     return [results("report/report.html"), results("report/summary.json")]
+
+
+# ---- resource requests, scaled by the decisions validation kept (estimated from the records before it runs) ----
+
+
+def decisions_recorded():
+    return recorded_decisions(results("validate/validation.json"), SETTINGS.decisions_file)
+
+
+def replicates_in_job(rule):
+    return {"bootstrap_shard": SETTINGS.replicates_per_shard, "sweep_spec": SETTINGS.sweep_replicates}.get(rule, 0)
+
+
+def mem_mb(rule):
+    return lambda wildcards, attempt: stage_resources(rule, decisions_recorded(), replicates_in_job(rule), attempt)[
+        "mem_mb"
+    ]
+
+
+def runtime(rule):
+    return lambda wildcards, attempt: stage_resources(rule, decisions_recorded(), replicates_in_job(rule), attempt)[
+        "runtime"
+    ]

@@ -14,6 +14,10 @@ rule describe:
         benchmarks("describe")
     params:
         code=stage_code_hash("describe"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("describe"),
+        runtime=runtime("describe"),
     conda:
         "envs/regimewise.yaml"
     script:

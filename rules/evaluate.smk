@@ -13,6 +13,10 @@ rule evaluate:
         benchmarks("evaluate")
     params:
         code=stage_code_hash("evaluate"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("evaluate"),
+        runtime=runtime("evaluate"),
     conda:
         "envs/regimewise.yaml"
     script:

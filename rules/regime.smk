@@ -13,6 +13,10 @@ rule regime:
         benchmarks("regime")
     params:
         code=stage_code_hash("regime"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("regime"),
+        runtime=runtime("regime"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -23,6 +23,10 @@ rule report:
         benchmarks("report")
     params:
         code=stage_code_hash("report"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("report"),
+        runtime=runtime("report"),
     conda:
         "envs/regimewise.yaml"
     script:

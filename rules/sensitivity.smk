@@ -15,6 +15,10 @@ rule sensitivity:
         benchmarks("sensitivity")
     params:
         code=stage_code_hash("sensitivity"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("sensitivity"),
+        runtime=runtime("sensitivity"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -15,6 +15,10 @@ rule survival:
         benchmarks("survival")
     params:
         code=stage_code_hash("survival"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("survival"),
+        runtime=runtime("survival"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -11,9 +11,12 @@ rule sweep_spec:
         benchmarks("sweep_spec_{spec}")
     wildcard_constraints:
         spec=r"spec_\d+",
-    threads: 1
     params:
         code=stage_code_hash("sweep_spec"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("sweep_spec"),
+        runtime=runtime("sweep_spec"),
     conda:
         "envs/regimewise.yaml"
     script:
@@ -32,6 +35,10 @@ rule sweep:
         benchmarks("sweep")
     params:
         code=stage_code_hash("sweep"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("sweep"),
+        runtime=runtime("sweep"),
     conda:
         "envs/regimewise.yaml"
     script:

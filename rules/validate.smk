@@ -13,6 +13,10 @@ rule validate:
         benchmarks("validate")
     params:
         code=stage_code_hash("validate"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("validate"),
+        runtime=runtime("validate"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -371,3 +371,26 @@ def test_user_errors_are_refused_with_a_clear_message(call):
 def test_command_line_reports_a_bad_argument(tmp_path, capsys):
     assert cli.main(["simulate", "--out", str(tmp_path), "--episodes", "0"]) == 1
     assert capsys.readouterr().err.startswith("regimewise error: --episodes must be at least 1")
+
+
+def test_horizon_option_keeps_the_demo_draws_and_extends_episodes():
+    # exact computation: the default horizon must reproduce the demo's 8-step draws; 12 steps keep the same
+    # population (the population stream is drawn before the per-step noise) and give 12 consecutive steps
+    demo = simulate_cohort(50, seed=3)
+    pd.testing.assert_frame_equal(demo.decisions, simulate_cohort(50, seed=3, n_steps=8).decisions)
+    longer = simulate_cohort(50, seed=3, n_steps=12)
+    assert len(longer.decisions) == 50 * 12
+    assert longer.decisions.groupby("episode_id")["step"].apply(list).map(lambda s: s == list(range(12))).all()
+    first = ["episode_id", "patient_id", *STATES]
+    pd.testing.assert_frame_equal(
+        demo.decisions.loc[demo.decisions["step"] == 0, first].reset_index(drop=True),
+        longer.decisions.loc[longer.decisions["step"] == 0, first].reset_index(drop=True),
+    )
+    assert longer.behaviour_proba.shape == (600, len(ACTIONS))
+    assert (longer.decisions.groupby("episode_id")["day"].diff().dropna() > 0).all()
+
+
+@pytest.mark.parametrize("bad", [0, -1, 1.5, True, 201])
+def test_a_bad_horizon_is_refused_in_one_line(bad):
+    with pytest.raises(UserInputError, match="number of decision points"):
+        simulate_cohort(10, seed=1, n_steps=bad)

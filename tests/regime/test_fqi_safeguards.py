@@ -17,6 +17,8 @@ from support import small_mdp as sm
 
 from regimewise.core.folds import patient_folds
 from regimewise.errors import StatisticalWarning, UserInputError
+from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.regime import pessimism, qmodels
 from regimewise.regime.fqi import FittedQIteration, QLearningSettings
 from regimewise.regime.permitted import constrained_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
@@ -268,3 +270,39 @@ def test_new_learner_is_silent_on_complete_data(log):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         fit(log, X="X", mode="pooled", rules=True)
+
+
+def test_spread_in_blocks_equals_one_pass(monkeypatch):
+    # exact computation: numpy.nanstd over every replicate's predictions at once, against the blocked spread,
+    # also with an action missing from some resamples (NaN draws)
+    rng = np.random.default_rng(6)
+    X = rng.normal(size=(500, 3))
+    action = rng.integers(0, 3, 500)
+    action[:2] = 2  # action 2 only on the first patient's rows: absent from most resamples
+    action[2:][action[2:] == 2] = 1
+    y = X[:, 0] + action + rng.normal(size=500)
+    weights = patient_bootstrap_weights(np.repeat(np.arange(250), 2), 10, seed=3)
+    ens = PessimisticEnsemble(lambda: LinearActionModel(3), weights, k=1.0).fit(X, action, y, np.arange(500))
+    draws = np.stack([m.predict(X) for m in ens.replicates_])
+    defined = (~np.isnan(draws)).sum(axis=0)
+    with np.errstate(invalid="ignore"):
+        expected = np.where(defined >= 2, np.nanstd(np.where(defined >= 2, draws, 0.0), axis=0, ddof=1), 0.0)
+    monkeypatch.setattr(pessimism, "SPREAD_BLOCK_ROWS", 64)
+    np.testing.assert_array_equal(ens.spread(X), expected)
+    np.testing.assert_array_equal(ens.spread(X[:, :]), ens.spread(X[::-1])[::-1])
+
+
+def test_q_values_in_row_blocks_equal_one_pass(monkeypatch):
+    # exact computation: the per-row einsum over coef_[step] on all rows at once, against the blocked q_values
+    rng = np.random.default_rng(8)
+    n_episodes, horizon = 60, 3
+    X = rng.normal(size=(n_episodes * horizon, 2))
+    step = np.tile(np.arange(horizon), n_episodes)
+    episode = np.repeat(np.arange(n_episodes), horizon)
+    action = rng.integers(0, 2, step.size)
+    reward = X[:, 0] * action + rng.normal(size=step.size)
+    fqe = FittedQEvaluation(2, horizon, alpha=1.0).fit(X, step, action, reward, episode, np.full((step.size, 2), 0.5))
+    design = np.hstack([np.ones((step.size, 1)), X])
+    expected = np.einsum("nkp,np->nk", fqe.coef_[step], design)
+    monkeypatch.setattr(qmodels, "Q_BLOCK_ROWS", 7)
+    np.testing.assert_array_equal(fqe.q_values(X, step), expected)

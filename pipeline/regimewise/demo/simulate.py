@@ -75,7 +75,7 @@ class _Population:
 
 @dataclass(frozen=True, eq=False)
 class _Noise:
-    """Action-independent draws, each (n, N_STEPS): standard normals and uniforms."""
+    """Action-independent draws, each (n, n_steps): standard normals and uniforms."""
 
     sbp: np.ndarray
     egfr: np.ndarray
@@ -87,7 +87,7 @@ class _Noise:
 
 @dataclass(frozen=True, eq=False)
 class _Trajectory:
-    """States at steps 0..N_STEPS (the last is the end state), actions, rewards, usual-care probabilities."""
+    """States at steps 0..n_steps (the last is the end state), actions, rewards, usual-care probabilities."""
 
     states: dict
     actions: np.ndarray
@@ -149,9 +149,9 @@ def _draw_population(n, rng, p):
     return _Population(patient=patient, frailty=frailty, state=state)
 
 
-def _draw_noise(n, transition_rng, behaviour_rng):
+def _draw_noise(n, n_steps, transition_rng, behaviour_rng):
     """Draw every quarter's noise up front, so it does not depend on the actions taken."""
-    shape = (n, N_STEPS)
+    shape = (n, n_steps)
     normals = {name: transition_rng.standard_normal(shape) for name in ("sbp", "egfr", "potassium", "adherence")}
     return _Noise(fall=transition_rng.random(shape), behaviour=behaviour_rng.random(shape), **normals)
 
@@ -284,14 +284,14 @@ def _natural_action_chooser(strategy, frailty, noise, strength, p, coins):
 
 
 def _rollout(population, noise, choose, strength, p):
-    """Run all episodes through the N_STEPS decisions (vectorised over episodes)."""
-    n = population.frailty.size
-    states = {name: np.empty((n, N_STEPS + 1), dtype=values.dtype) for name, values in population.state.items()}
-    actions = np.empty((n, N_STEPS), dtype=np.int64)
-    rewards = np.empty((n, N_STEPS))
+    """Run all episodes through the decisions (as many as the noise has columns; vectorised over episodes)."""
+    n, n_steps = noise.sbp.shape
+    states = {name: np.empty((n, n_steps + 1), dtype=values.dtype) for name, values in population.state.items()}
+    actions = np.empty((n, n_steps), dtype=np.int64)
+    rewards = np.empty((n, n_steps))
     proba = []
     state = population.state
-    for t in range(N_STEPS):
+    for t in range(n_steps):
         for name in STATES:
             states[name][:, t] = state[name]
         actions[:, t], step_proba = choose(t, state)
@@ -299,26 +299,32 @@ def _rollout(population, noise, choose, strength, p):
         state, events = _transition(state, actions[:, t], noise, t, population.frailty, strength, p)
         rewards[:, t] = _reward(state, events, p)
     for name in STATES:
-        states[name][:, N_STEPS] = state[name]
+        states[name][:, n_steps] = state[name]
     stacked = None if proba[0] is None else np.stack(proba, axis=1)
     return _Trajectory(states=states, actions=actions, rewards=rewards, proba=stacked)
 
 
-def check_arguments(n, strength, gamma=1.0):
+def check_arguments(n, strength, gamma=1.0, n_steps=N_STEPS):
     """Refuse arguments a user could get wrong, with a one-line message."""
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
         raise UserInputError(f"number of episodes: got {n!r}; give a positive integer")
+    if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or not 1 <= n_steps <= 200:
+        raise UserInputError(f"number of decision points: got {n_steps!r}; give an integer from 1 to 200")
     if not np.isfinite(strength) or strength < 0:
         raise UserInputError(f"confounding_strength: got {strength!r}; give a finite number >= 0")
     if not 0.0 < gamma <= 1.0:
         raise UserInputError(f"gamma: got {gamma!r}; give a discount in (0, 1]")
 
 
-def simulate(regime, n, seed, strength, p):
-    """Population, noise and trajectory of ``n`` episodes under ``regime`` (CRN: same seed, same draws)."""
+def simulate(regime, n, seed, strength, p, n_steps=N_STEPS):
+    """Population, noise and trajectory of ``n`` episodes of ``n_steps`` decisions under ``regime``.
+
+    Common random numbers: the same seed gives the same draws; with ``n_steps`` = :data:`N_STEPS` (the demo's
+    horizon) the draws are exactly those of the demo.
+    """
     rngs = _streams(seed)
     population = _draw_population(n, rngs["population"], p)
-    noise = _draw_noise(n, rngs["transition"], rngs["behaviour"])
+    noise = _draw_noise(n, n_steps, rngs["transition"], rngs["behaviour"])
     if isinstance(regime, str) and regime == "usual_care":
         choose = _usual_care_chooser(population.frailty, noise, strength, p)
     elif hasattr(regime, "modify"):  # a strategy acting on the clinician's natural action
@@ -331,17 +337,17 @@ def simulate(regime, n, seed, strength, p):
     return population, _rollout(population, noise, choose, strength, p), rngs
 
 
-def _visit_days(n, rng, p):
+def _visit_days(n, n_steps, rng, p):
     """Integer day of each review since the index date: a short first delay, then gaps near 91 days."""
     first = rng.integers(0, p.first_visit_max_delay + 1, size=(n, 1))
     gaps = np.clip(
-        np.round(rng.normal(p.visit_gap_mean, p.visit_gap_sd, (n, N_STEPS - 1))), p.visit_gap_min, p.visit_gap_max
+        np.round(rng.normal(p.visit_gap_mean, p.visit_gap_sd, (n, n_steps - 1))), p.visit_gap_min, p.visit_gap_max
     )
     return np.cumsum(np.hstack([first, gaps]), axis=1).astype(np.int64)
 
 
 def _yearly_hazard(states, frailty, strength, p):
-    """Event hazard per year at each of the N_STEPS + 1 recorded states, (n, N_STEPS + 1)."""
+    """Event hazard per year at each of the n_steps + 1 recorded states, (n, n_steps + 1)."""
     log_hr = (
         p.hazard_sbp * (states["sbp"] - 130.0) / 10.0
         + p.hazard_age * (states["age"] - 65.0) / 10.0
@@ -355,8 +361,8 @@ def _yearly_hazard(states, frailty, strength, p):
 def _event_days(hazard, days, exp_draws, p):
     """First event day by inverting the piecewise-constant cumulative hazard at an Exp(1) draw.
 
-    Quarter t runs from day_t (day 0 for t = 0) to day_{t+1}, with day_8 = day_7 + visit_gap_mean; it uses
-    the hazard of state t. After day_8 the hazard of the end state applies.
+    Quarter t runs from day_t (day 0 for t = 0) to day_{t+1}, with day_T = day_{T-1} + visit_gap_mean (T
+    decisions); it uses the hazard of state t. After day_T the hazard of the end state applies.
     """
     n = days.shape[0]
     starts = np.hstack([np.zeros((n, 1)), days[:, 1:], days[:, -1:] + p.visit_gap_mean])
@@ -388,7 +394,7 @@ def potential_event_days(regime, n, seed, strength, p):
 
 
 def _follow_up(trajectory, population, days, rng, strength, p):
-    """Follow-up days and event indicator: first event versus cut-off or loss to follow-up after day_7."""
+    """Follow-up days and event indicator: first event versus cut-off or loss to follow-up after the last review."""
     n = days.shape[0]
     exp_draws = rng.standard_exponential(n)
     cutoff = days[:, -1] + rng.integers(p.cutoff_min_days, p.cutoff_max_days + 1, size=n)
@@ -407,20 +413,20 @@ def _identifiers(prefix, index, n_total):
 
 def _decisions_frame(trajectory, days, episode_ids, patient_ids):
     """The decisions table, one row per decision, episode-major."""
-    n = days.shape[0]
+    n, n_steps = days.shape
     columns = {
-        "episode_id": np.repeat(episode_ids, N_STEPS),
-        "patient_id": np.repeat(patient_ids, N_STEPS),
-        "step": np.tile(np.arange(N_STEPS), n),
+        "episode_id": np.repeat(episode_ids, n_steps),
+        "patient_id": np.repeat(patient_ids, n_steps),
+        "step": np.tile(np.arange(n_steps), n),
         "day": days.ravel(),
     }
-    columns.update({name: trajectory.states[name][:, :N_STEPS].ravel() for name in STATES})
+    columns.update({name: trajectory.states[name][:, :n_steps].ravel() for name in STATES})
     columns["action"] = np.asarray(ACTIONS, dtype=object)[trajectory.actions.ravel()]
     columns["reward"] = trajectory.rewards.ravel()
     return pd.DataFrame(columns, columns=list(DECISION_COLUMNS))
 
 
-def simulate_cohort(n_episodes, seed, confounding_strength=1.0, params=None):
+def simulate_cohort(n_episodes, seed, confounding_strength=1.0, params=None, n_steps=N_STEPS):
     """Simulate a demo cohort of ``n_episodes`` episodes under usual care.
 
     Parameters
@@ -429,6 +435,8 @@ def simulate_cohort(n_episodes, seed, confounding_strength=1.0, params=None):
     seed : int, root seed of ``numpy.random.SeedSequence``.
     confounding_strength : float >= 0, multiplies every hidden-frailty coefficient.
     params : ScenarioParams or None for the defaults.
+    n_steps : int, decision points per episode (default :data:`N_STEPS` = 8, the demo's two years of quarterly
+        reviews; the scale benchmark uses 12). The demo's draws are unchanged at 8.
 
     Returns
     -------
@@ -440,10 +448,10 @@ def simulate_cohort(n_episodes, seed, confounding_strength=1.0, params=None):
     >>> cohort.decisions.shape
     (160, 14)
     """
-    check_arguments(n_episodes, confounding_strength)
+    check_arguments(n_episodes, confounding_strength, n_steps=n_steps)
     p = params or ScenarioParams()
-    population, trajectory, rngs = simulate("usual_care", n_episodes, seed, confounding_strength, p)
-    days = _visit_days(n_episodes, rngs["visits"], p)
+    population, trajectory, rngs = simulate("usual_care", n_episodes, seed, confounding_strength, p, n_steps)
+    days = _visit_days(n_episodes, n_steps, rngs["visits"], p)
     followup, event = _follow_up(trajectory, population, days, rngs["followup"], confounding_strength, p)
     episode_ids = _identifiers("E", np.arange(n_episodes), n_episodes)
     patient_ids = _identifiers("P", population.patient, n_episodes)

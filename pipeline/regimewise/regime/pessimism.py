@@ -20,6 +20,8 @@ from __future__ import annotations
 
 import numpy as np
 
+SPREAD_BLOCK_ROWS = 100_000  # rows per block of the ensemble's spread: 20 replicates x 4 actions = 64 MB of draws
+
 
 def patient_bootstrap_weights(groups, n_replicates, seed):
     """Multiplicity of every row in each bootstrap resample of patients (rows of a patient move together).
@@ -62,19 +64,49 @@ class PessimisticEnsemble:
         self.k = k
 
     def fit(self, X, action, y, rows):
-        """Fit the full-sample model and the bootstrap models on the table rows ``rows``; return ``self``."""
+        """Fit the full-sample model and the bootstrap models on the table rows ``rows``; return ``self``.
+
+        Linear models (``fit_design``) share one design matrix instead of building it once per resample.
+        """
         self.full_ = self.make_model().fit(X, action, y, None)
-        self.replicates_ = [self.make_model().fit(X, action, y, w[rows]) for w in self.weights]
+        if hasattr(self.full_, "fit_design"):
+            design = np.hstack([np.ones((X.shape[0], 1)), X])
+            self.replicates_ = [self.make_model().fit_design(design, action, y, w[rows]) for w in self.weights]
+        else:
+            self.replicates_ = [self.make_model().fit(X, action, y, w[rows]) for w in self.weights]
         return self
 
     def predict(self, X):
         """Full-sample Q-values (n, K)."""
         return self.full_.predict(X)
 
+    def _draws(self, X):
+        """Every replicate's Q-values (B, n, K); linear replicates in one matrix product on one design matrix."""
+        if not all(hasattr(m, "coef_") for m in self.replicates_):
+            return np.stack([m.predict(X) for m in self.replicates_])
+        design = np.hstack([np.ones((X.shape[0], 1)), X])
+        coef = np.concatenate([m.coef_.T for m in self.replicates_], axis=1)  # (p + 1, B * K)
+        q = design @ coef
+        return q.reshape(X.shape[0], len(self.replicates_), -1).transpose(1, 0, 2)
+
     def spread(self, X):
-        """Bootstrap standard deviation (n, K) of each action's Q; 0 where fewer than two replicates define it."""
-        draws = np.stack([m.predict(X) for m in self.replicates_])
-        defined = (~np.isnan(draws)).sum(axis=0)
+        """Bootstrap standard deviation (n, K) of each action's Q; 0 where fewer than two replicates define it.
+
+        Computed in blocks of :data:`SPREAD_BLOCK_ROWS` rows, so the (B, rows, K) draws never exceed a few hundred
+        MB whatever the number of decisions (each row's spread depends on that row only).
+        """
+        X = np.asarray(X)
+        if X.shape[0] <= SPREAD_BLOCK_ROWS:
+            return self._block_spread(X)
+        starts = range(0, X.shape[0], SPREAD_BLOCK_ROWS)
+        return np.concatenate([self._block_spread(X[start : start + SPREAD_BLOCK_ROWS]) for start in starts])
+
+    def _block_spread(self, X):
+        draws = self._draws(X)
+        missing = np.isnan(draws)
+        if not missing.any():  # numpy's nanstd without NaN is std, operation for operation
+            return np.std(draws, axis=0, ddof=1) if len(draws) >= 2 else np.zeros(draws.shape[1:])
+        defined = (~missing).sum(axis=0)
         with np.errstate(invalid="ignore"):
             sd = np.nanstd(np.where(defined >= 2, draws, 0.0), axis=0, ddof=1)
         return np.where(defined >= 2, sd, 0.0)

@@ -26,6 +26,8 @@ def _design(X):
     return np.hstack([np.ones((X.shape[0], 1)), X])
 
 
+Q_BLOCK_ROWS = 100_000  # rows per block of q_values: 100k x 4 actions x 21 coefficients = 67 MB of copies
+
 WELL_CONDITIONED = 1e8  # condition number of the Gram matrix below which the normal equations are used
 
 
@@ -236,7 +238,14 @@ class BackwardQModel:
             NaN for an action that never occurs at that step in the training data.
         """
         X, step = self._checked_rows(X, step)
-        return np.einsum("nkp,np->nk", self.coef_[step], _design(X))
+        if X.shape[0] <= Q_BLOCK_ROWS:
+            return np.einsum("nkp,np->nk", self.coef_[step], _design(X))
+        return np.concatenate(  # row blocks: coef_[step] copies (K, p + 1) coefficients per row
+            [
+                np.einsum("nkp,np->nk", self.coef_[step[s : s + Q_BLOCK_ROWS]], _design(X[s : s + Q_BLOCK_ROWS]))
+                for s in range(0, X.shape[0], Q_BLOCK_ROWS)
+            ]
+        )
 
 
 class LinearActionModel:
@@ -251,15 +260,23 @@ class LinearActionModel:
         self.alpha = alpha
 
     def fit(self, X, action, y, weight=None):
-        design = _design(X)
-        if weight is not None:
-            root = np.sqrt(weight)
-            design, y = design * root[:, None], y * root
+        return self.fit_design(_design(X), action, y, weight)
+
+    def fit_design(self, design, action, y, weight=None):
+        """:meth:`fit` on a design matrix [1, X] built once by the caller (e.g. for a bootstrap ensemble).
+
+        Rows of zero weight are dropped before the square-root weights are applied, so a resample's fit touches
+        only its own rows (the same numbers, row by row, as weighting every row first).
+        """
         self.coef_ = np.full((self.n_actions, design.shape[1]), np.nan)
         for a in range(self.n_actions):
-            cell = (action == a) if weight is None else (action == a) & (weight > 0)
-            if cell.any():
-                self.coef_[a] = _least_squares(design[cell], y[cell], self.alpha)
+            cell = np.flatnonzero((action == a) if weight is None else (action == a) & (weight > 0))
+            if cell.size:
+                if weight is None:
+                    self.coef_[a] = _least_squares(design[cell], y[cell], self.alpha)
+                else:
+                    root = np.sqrt(weight[cell])
+                    self.coef_[a] = _least_squares(design[cell] * root[:, None], y[cell] * root, self.alpha)
         return self
 
     def predict(self, X):

@@ -26,6 +26,13 @@ class Settings:
     bootstrap_shards: int = 1
     sweep_specs: tuple[str, ...] = ()
     survival: bool = False
+    bootstrap_replicates: int = 0
+    sweep_replicates: int = 0
+
+    @property
+    def replicates_per_shard(self) -> int:
+        """Most bootstrap replicates any one shard job runs (for its resource request)."""
+        return -(-self.bootstrap_replicates // self.bootstrap_shards)
 
     @property
     def record_inputs(self) -> dict:
@@ -52,4 +59,6 @@ def load_settings(config: dict) -> Settings:
         bootstrap_shards=pf.protocol.evaluation.shards,
         sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
         survival=pf.protocol.survival is not None,
+        bootstrap_replicates=pf.protocol.evaluation.replicates,
+        sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
     )

@@ -8,7 +8,9 @@ them directly. A stage never holds statistics of its own beyond arranging inputs
 from __future__ import annotations
 
 import logging
+import resource
 import sys
+import time
 from pathlib import Path
 
 import numpy as np
@@ -357,8 +359,10 @@ def run_snakemake_job(smk) -> None:
     kwargs = {
         k: v for k, v in {**wildcards, **named_logs, **inputs, **outputs}.items() if k in STAGE_ARGUMENTS[smk.rule]
     }
+    started = time.perf_counter()
     try:
         STAGES[smk.rule](**kwargs)
+        log_resource_use(time.perf_counter() - started)
     except UserInputError as err:
         log.error("%s", err)
         print(ERROR_PREFIX + str(err), file=sys.stderr)
@@ -366,6 +370,20 @@ def run_snakemake_job(smk) -> None:
     finally:
         handler.close()
         log.removeHandler(handler)
+
+
+def log_resource_use(wall_seconds: float) -> None:
+    """Log the job's wall time, CPU time and peak resident memory (one line, read by bench/bench_scale.py).
+
+    Only the log gets these machine-dependent figures; no artifact does.
+    """
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    log.info(
+        "resource use: wall %.2f s, cpu %.2f s, peak rss %.1f MB",
+        wall_seconds,
+        usage.ru_utime + usage.ru_stime,
+        usage.ru_maxrss / 1024,  # kilobytes on Linux
+    )
 
 
 STAGE_ARGUMENTS = {

@@ -1,0 +1,109 @@
+"""Resource requests of each workflow rule (memory, run time, threads), scaled by the number of decisions.
+
+A scheduler (SLURM through Snakemake's executor, or ``--resources mem_mb=...`` locally) needs honest requests:
+too little memory kills a job, too much keeps it queued. Each rule's peak resident memory and run time grow
+about linearly with the decisions in the records (measured by ``bench/bench_scale.py`` at 10k, 100k and 1M
+episodes of 12 decisions; figures in ``bench/RESULTS.md``), so a request is ``base + slope × millions of
+decisions``, with a safety factor, doubled on each retry (Snakemake's ``attempt``).
+
+The number of decisions is the ``rows_kept`` of ``validate/validation.json`` once validation has run (Snakemake
+re-evaluates resource functions just before it schedules a job); before that (the validate rule itself, or a
+dry run), it is estimated from the records file's size, erring high.
+
+Threads: every rule runs one process whose heavy loops are single-threaded (the Q-model fits hold BLAS to one
+thread; bootstrap shards are separate jobs), so each rule asks for one thread.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+
+@dataclass(frozen=True)
+class StageCost:
+    """Peak memory (MB) and run time (minutes) of a rule: ``base + per_million × decisions / 10**6``.
+
+    ``per_replicate_minutes`` and ``per_replicate_mb`` apply per bootstrap replicate run in the job
+    (bootstrap and sweep shards), per million decisions.
+    """
+
+    base_mb: float
+    mb_per_million: float
+    minutes_per_million: float
+    per_replicate_minutes: float = 0.0
+
+
+# Interpreter and libraries: about 300 MB before any data (measured: the bootstrap combine stage peaks there).
+BASE_MB = 400.0
+
+# Slopes from bench/bench_scale.py at 100,000 episodes x 12 decisions (1.2M decisions): peak RSS above the
+# interpreter's 300 MB, and CPU time, per million decisions, rounded up (bench/RESULTS.md, 2026-12-02). The
+# validate slope was confirmed at 12M decisions (3.8 GB peak). A shard's per-replicate time is that of the
+# behaviour, regime and evaluate stages together (about 2 CPU minutes per million decisions).
+STAGE_COSTS = {
+    "validate": StageCost(BASE_MB, 400.0, 0.3),
+    "behaviour": StageCost(BASE_MB, 800.0, 0.5),
+    "regime": StageCost(BASE_MB, 1600.0, 1.5),
+    "evaluate": StageCost(BASE_MB, 1100.0, 0.8),
+    "describe": StageCost(BASE_MB, 700.0, 0.2),
+    "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
+    "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
+    "sensitivity": StageCost(BASE_MB, 600.0, 0.4),
+    # not measured at scale yet: an estimate from the clone tables, about one row per decision per strategy
+    "survival": StageCost(BASE_MB, 2000.0, 1.0),
+    "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
+    "sweep": StageCost(BASE_MB, 0.0, 0.0),
+    "report": StageCost(BASE_MB, 0.0, 0.0),
+}
+
+SAFETY = 1.5  # margin over the measured peak and time (machines and data differ)
+MIN_RUNTIME_MINUTES = 5  # schedulers round short requests up anyway; keeps start-up time covered
+
+# Bytes per decision in a records file, low ends (so the estimate errs high): Parquet compresses the repeated
+# identifiers; CSV spends about 60 bytes per row on the demo's 14 columns.
+BYTES_PER_DECISION = {".parquet": 6.0, ".pq": 6.0}
+CSV_BYTES_PER_DECISION = 40.0
+
+
+def recorded_decisions(validation: str | Path, records: str | Path) -> int:
+    """Decisions kept by validation (``rows_kept`` of validation.json), or estimated from the records file size.
+
+    Returns 0 when neither file exists yet (a dry run before the records are in place).
+    """
+    validation = Path(validation)
+    if validation.is_file():
+        try:
+            return int(json.loads(validation.read_text(encoding="utf-8"))["rows_kept"])
+        except (ValueError, KeyError, TypeError):
+            pass  # an unreadable summary: fall back to the records' size
+    records = Path(records)
+    if not records.is_file():
+        return 0
+    per_decision = BYTES_PER_DECISION.get(records.suffix.lower(), CSV_BYTES_PER_DECISION)
+    return int(records.stat().st_size / per_decision)
+
+
+def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int = 1) -> dict:
+    """``mem_mb`` and ``runtime`` (minutes) to request for ``rule`` on ``decisions`` decisions.
+
+    Parameters
+    ----------
+    rule : str, a key of :data:`STAGE_COSTS`.
+    decisions : int, decisions in the records (:func:`recorded_decisions`).
+    replicates : int, bootstrap replicates run in this job (shards only).
+    attempt : int, Snakemake's attempt number; each retry doubles both requests.
+
+    Examples
+    --------
+    >>> stage_resources("regime", 12_000_000)
+    {'mem_mb': 29400, 'runtime': 27}
+    """
+    cost = STAGE_COSTS[rule]
+    millions = decisions / 1e6
+    scale = SAFETY * 2 ** (max(attempt, 1) - 1)
+    memory = (cost.base_mb + cost.mb_per_million * millions) * scale
+    minutes = (cost.minutes_per_million + cost.per_replicate_minutes * replicates) * millions * scale
+    return {"mem_mb": int(math.ceil(memory / 100) * 100), "runtime": max(MIN_RUNTIME_MINUTES, int(math.ceil(minutes)))}
