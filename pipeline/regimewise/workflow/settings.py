@@ -25,9 +25,9 @@ class Settings:
     episodes_file: str | None
     bootstrap_shards: int = 1
     sweep_specs: tuple[str, ...] = ()
-    survival: bool = False
     bootstrap_replicates: int = 0
     sweep_replicates: int = 0
+    survival: bool = False
 
     @property
     def replicates_per_shard(self) -> int:
