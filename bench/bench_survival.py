@@ -61,15 +61,15 @@ def truths(n: int, seed: int) -> dict:
 def one_cohort(seed: int, args, p: Protocol) -> dict:
     sim = simulate_cohort(args.episodes, seed=seed, confounding_strength=0.0)
     decisions, episodes = sim.decisions, sim.episodes
-    proba, recommended, _ = fit_replicate(decisions, p)
-    point = survival_analysis(decisions, episodes, proba, recommended, p)
+    proba, recommended, q, _ = fit_replicate(decisions, p)
+    point = survival_analysis(decisions, episodes, proba, recommended, p, q)
     groups, replicates = patient_groups(decisions), []
     for r in range(args.replicates):
         resample = resample_patients(decisions, groups, stream_rng(seed, "bootstrap", r), len(groups))
         sub = resample_episodes(episodes, resample)
         try:
-            rp, rr, _ = fit_replicate(resample, p)
-            replicates.append(survival_values(resample, sub, rp, rr, p))
+            rp, rr, rq, _ = fit_replicate(resample, p)
+            replicates.append(survival_values(resample, sub, rp, rr, p, rq))
         except Exception as err:  # a resample the models cannot fit: counted, as the workflow does
             print(f"  cohort {seed} replicate {r} failed: {str(err).splitlines()[0]}", file=sys.stderr)
     limits = survival_intervals(point, replicates, p)["strategies"]

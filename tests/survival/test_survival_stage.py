@@ -19,6 +19,7 @@ from regimewise.usual_care.fitting import fit_usual_care
 def demo_protocol(**survival) -> Protocol:
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     raw["survival"] = {"horizon_days": 730, "time_points": [365], **survival}
+    raw.pop("strategies", None)  # derived strategies need the cross-fitted Q-values; tested with the workflow
     return Protocol.model_validate(raw)
 
 

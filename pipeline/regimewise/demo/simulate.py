@@ -388,7 +388,7 @@ def potential_event_days(regime, n, seed, strength, p):
     patient index (for clustered standard errors) and its discounted-return-ready rewards.
     """
     population, trajectory, rngs = simulate(regime, n, seed, strength, p)
-    days = _visit_days(n, rngs["visits"], p)
+    days = _visit_days(n, N_STEPS, rngs["visits"], p)
     exp_draws = rngs["followup"].standard_exponential(n)
     return event_days(trajectory, population, days, exp_draws, strength, p), population.patient, trajectory.rewards
 
