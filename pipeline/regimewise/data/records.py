@@ -193,24 +193,43 @@ def check_episodes(
     findings = field_findings(file, frame, episode_rules(pf, frame))
     if findings:
         return findings
+    last = decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
+    findings = _episode_links(file, frame, cols, last, dropped_episodes)
+    return findings or _episode_consistency(file, frame, cols, last)
+
+
+def _rows_found(file, source, rows, column, values, rule, message, fix) -> list[Finding]:
+    """One finding per row of ``rows`` (capped per rule); ``values`` gives each row's shown value, or None."""
+    return [
+        Finding(
+            file=file,
+            row=int(source[row]),
+            column=column,
+            value=None if values is None else clip_text(values[row]),
+            rule=rule,
+            message=message(row) if callable(message) else message,
+            fix=fix,
+        )
+        for row in rows[:MAX_FINDINGS_PER_RULE]
+    ]
+
+
+def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
+    """Duplicated episodes, decisions whose episode is missing here, and episodes without decisions."""
     source = source_rows(frame)
     ids = frame[cols.episode_id].astype(str)
-    for row in np.flatnonzero(ids.duplicated().to_numpy())[:MAX_FINDINGS_PER_RULE]:
-        findings.append(
-            Finding(
-                file=file,
-                row=int(source[row]),
-                column=cols.episode_id,
-                value=clip_text(ids.iat[row]),
-                rule="duplicate_episode",
-                message="episode appears twice",
-                fix="one row per episode",
-            )
-        )
-    known = set(ids)
-    last = decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
-    orphans = sorted(set(last.index) - known)
-    for episode in orphans[:MAX_FINDINGS_PER_RULE]:
+    shown = ids.to_numpy()
+    findings = _rows_found(
+        file,
+        source,
+        np.flatnonzero(ids.duplicated().to_numpy()),
+        cols.episode_id,
+        shown,
+        "duplicate_episode",
+        "episode appears twice",
+        "one row per episode",
+    )
+    for episode in sorted(set(last.index) - set(ids))[:MAX_FINDINGS_PER_RULE]:
         findings.append(
             Finding(
                 file=file,
@@ -223,53 +242,52 @@ def check_episodes(
             )
         )
     childless = ~ids.isin(last.index).to_numpy() & ~ids.isin(dropped_episodes).to_numpy()
-    for row in np.flatnonzero(childless)[:MAX_FINDINGS_PER_RULE]:
-        findings.append(
-            Finding(
-                file=file,
-                row=int(source[row]),
-                column=cols.episode_id,
-                value=clip_text(ids.iat[row]),
-                rule="episode_without_decisions",
-                message="episode has no decision in the decisions table",
-                fix="remove the episode or add its decisions",
-            )
-        )
-    if findings:
-        return findings
-    joined = frame.assign(_id=ids).join(last, on="_id")
+    findings += _rows_found(
+        file,
+        source,
+        np.flatnonzero(childless),
+        cols.episode_id,
+        shown,
+        "episode_without_decisions",
+        "episode has no decision in the decisions table",
+        "remove the episode or add its decisions",
+    )
+    return findings
+
+
+def _episode_consistency(file, frame, cols, last) -> list[Finding]:
+    """The same patient in both tables, and censored follow-up reaching the last decision."""
+    source = source_rows(frame)
+    joined = frame.assign(_id=frame[cols.episode_id].astype(str)).join(last, on="_id")
     present = joined["last_day"].notna().to_numpy()
+    findings = []
     if cols.patient_id is not None and cols.patient_id in frame.columns:
         differs = present & (joined[cols.patient_id].astype(str) != joined["_patient"]).to_numpy()
-        for row in np.flatnonzero(differs)[:MAX_FINDINGS_PER_RULE]:
-            findings.append(
-                Finding(
-                    file=file,
-                    row=int(source[row]),
-                    column=cols.patient_id,
-                    value=None,
-                    rule="patient_mismatch",
-                    message="patient id differs from the decisions table's",
-                    fix="give the episode the same patient id in both tables",
-                )
-            )
+        findings += _rows_found(
+            file,
+            source,
+            np.flatnonzero(differs),
+            cols.patient_id,
+            None,
+            "patient_mismatch",
+            "patient id differs from the decisions table's",
+            "give the episode the same patient id in both tables",
+        )
     if cols.followup in frame.columns and cols.event in frame.columns:
         follow = pd.to_numeric(joined[cols.followup]).to_numpy(dtype=float)
         censored = pd.to_numeric(joined[cols.event]).to_numpy(dtype=float) == 0
-        short = present & censored & (follow < joined["last_day"].to_numpy(dtype=float))
-        for row in np.flatnonzero(short)[:MAX_FINDINGS_PER_RULE]:
-            findings.append(
-                Finding(
-                    file=file,
-                    row=int(source[row]),
-                    column=cols.followup,
-                    value=clip_text(follow[row]),
-                    rule="followup_before_last_decision",
-                    message=f"censored episode ends before its last decision (day {int(joined['last_day'].iat[row])})",
-                    fix="a censored episode is followed up at least until its last decision; correct follow-up or "
-                    "event",
-                )
-            )
+        last_day = joined["last_day"].to_numpy(dtype=float)
+        short = np.flatnonzero(present & censored & (follow < last_day))
+        findings += _rows_found(
+            file,
+            source,
+            short,
+            cols.followup,
+            follow,
+            "followup_before_last_decision",
+            lambda row: f"censored episode ends before its last decision (day {int(last_day[row])})",
+            "a censored episode is followed up at least until its last decision; correct follow-up or event",
+        )
     return findings
 
 

@@ -21,21 +21,18 @@ from regimewise.protocol.sections import (
     BehaviourModelSpec,
     Constraints,
     DataSpec,
-    Discount,
     EvaluationSpec,
     QModelSpec,
     ReportSpec,
     RewardSpec,
-    Seed,
     SensitivitySpec,
     StateVariable,
-    Strict,
     Study,
     SurvivalSpec,
     SweepSpec,
-    WholeNumber,
 )
 from regimewise.protocol.strategies import StrategiesSpec
+from regimewise.protocol.types import Discount, Seed, Strict, WholeNumber
 
 
 class Protocol(Strict):

@@ -12,76 +12,25 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, AllowInfNan, BaseModel, BeforeValidator, ConfigDict, Field, model_validator
-from pydantic import Strict as StrictType
+from pydantic import Field, model_validator
 
-from regimewise.estimators import ESTIMATOR_NAMES
-from regimewise.protocol.identifiers import free_text_category, mask
-
-
-# ---------------------------------------------------------------------------------------------- reusable types
-def _no_identifier(text: str) -> str:
-    """Free text of the protocol passes the guard's value checks (it reaches the report and the summary)."""
-    category = free_text_category(text)
-    if category is not None:
-        raise ValueError(
-            f"the text looks like it holds a direct identifier ({category}; {mask(text)}); remove it from the protocol"
-        )
-    return text
-
-
-def _not_boolean(value):
-    """YAML reads yes/no/true/false/on/off as booleans: they are not numbers."""
-    if isinstance(value, bool):
-        raise ValueError("a number is needed here, not a boolean (yes/no/true/false/on/off)")
-    return value
+from regimewise.protocol.types import (
+    FINITE,
+    NOT_BOOLEAN,
+    ColumnName,
+    EstimatorName,
+    Flag,
+    FreeText,
+    Identifier,
+    LongText,
+    Number,
+    Probability,
+    ShortText,
+    Strict,
+    WholeNumber,
+)
 
 
-FINITE, NOT_BOOLEAN = AllowInfNan(False), BeforeValidator(_not_boolean)
-
-
-Number = Annotated[float, FINITE, NOT_BOOLEAN]
-
-
-WholeNumber = Annotated[int, StrictType()]
-
-
-Flag = Annotated[bool, StrictType()]
-
-
-FreeText = Annotated[str, AfterValidator(_no_identifier)]
-
-
-Identifier = Annotated[
-    str,
-    Field(pattern=r"^[a-z][a-z0-9_]{0,39}$", description="lower-case letters, digits and _, starting with a letter"),
-]
-
-
-ColumnName = Annotated[str, Field(min_length=1, max_length=128)]
-
-
-ShortText = Annotated[FreeText, Field(min_length=1, max_length=300)]
-
-
-LongText = Annotated[FreeText, Field(min_length=1, max_length=4000)]
-
-
-Probability = Annotated[float, Field(ge=0.0, le=1.0), FINITE, NOT_BOOLEAN]
-
-
-Discount = Annotated[float, Field(gt=0.0, le=1.0), FINITE, NOT_BOOLEAN]
-
-
-Seed = Annotated[WholeNumber, Field(ge=0, lt=2**63)]
-EstimatorName = Literal[ESTIMATOR_NAMES]  # the registry's names, in its order
-
-
-class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-# ---------------------------------------------------------------------------------------------- sections
 class Study(Strict):
     """Study metadata shown at the top of the report."""
 

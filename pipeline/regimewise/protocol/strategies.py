@@ -12,7 +12,7 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from regimewise.protocol.sections import FINITE, NOT_BOOLEAN
+from regimewise.protocol.types import FINITE, NOT_BOOLEAN
 
 # finite numbers, never booleans (as every numeric setting of the protocol)
 Share = Annotated[float, Field(gt=0.0, lt=1.0), FINITE, NOT_BOOLEAN]

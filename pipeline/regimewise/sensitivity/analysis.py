@@ -93,6 +93,29 @@ def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None)
     }
 
 
+def _interval_limits(contrast, replicates, level) -> np.ndarray:
+    """Per Γ: the α/2 quantile of the replicates' lower bounds and the 1 − α/2 quantile of their upper bounds."""
+    if not replicates:
+        return np.full_like(contrast, np.nan)
+    reps = np.stack([np.asarray(r["learned"], dtype=float) - r["usual_care"] for r in replicates])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        low = bootstrap_quantile(reps[:, :, 0], (1 - level) / 2, axis=0)
+        high = bootstrap_quantile(reps[:, :, 1], 1 - (1 - level) / 2, axis=0)
+    return np.column_stack([low, high])
+
+
+def _grid_tipping(edge, gammas, spec):
+    """The tipping point of a curve given on the Γ grid (None when any point is undefined)."""
+    if not np.all(np.isfinite(edge)):
+        return None
+
+    def edge_at(gamma):
+        return edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
+
+    return tipping_point(edge_at, spec.gamma_max, spec.precision)
+
+
 def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headline: dict | None) -> dict:
     """Point bounds, percentile-bootstrap intervals of the bounds, tipping point and E-values.
 
@@ -103,31 +126,11 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
     spec, level = protocol.sensitivity, protocol.evaluation.interval_level
     gammas = analysis_gammas(spec)
     contrast = point["learned"] - point["usual_care"]
-    low_q, high_q = (1 - level) / 2, 1 - (1 - level) / 2
-    if replicates:
-        reps = np.stack([np.asarray(r["learned"], dtype=float) - r["usual_care"] for r in replicates])
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            limits = np.column_stack(
-                [bootstrap_quantile(reps[:, :, 0], low_q, axis=0), bootstrap_quantile(reps[:, :, 1], high_q, axis=0)]
-            )
-    else:
-        limits = np.full_like(contrast, np.nan)
+    limits = _interval_limits(contrast, replicates, level)
     benefit = contrast[0, 0]
     sign = 1.0 if not np.isfinite(benefit) or benefit >= 0 else -1.0
-    edge = limits[:, 0] if sign > 0 else -limits[:, 1]
-
-    def edge_at(gamma):
-        return edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
-
-    star = None if not np.all(np.isfinite(edge)) else tipping_point(edge_at, spec.gamma_max, spec.precision)
-    bounds_edge = contrast[:, 0] if sign > 0 else -contrast[:, 1]
-
-    def bounds_at(gamma):
-        return bounds_edge[min(int(np.searchsorted(gammas, gamma - 1e-12)), len(gammas) - 1)]
-
-    finite_bounds = np.all(np.isfinite(bounds_edge))
-    bounds_star = tipping_point(bounds_at, spec.gamma_max, spec.precision) if finite_bounds else None
+    star = _grid_tipping(limits[:, 0] if sign > 0 else -limits[:, 1], gammas, spec)
+    bounds_star = _grid_tipping(contrast[:, 0] if sign > 0 else -contrast[:, 1], gammas, spec)
     shown = [int(np.searchsorted(gammas, g)) for g in spec.gammas]
     floor = max(protocol.evaluation.minimum_ess, protocol.evaluation.minimum_ess_fraction * point["n_episodes"])
     return {
