@@ -14,7 +14,6 @@ from scipy import stats
 from support import small_mdp as sm
 
 from regimewise.errors import StatisticalWarning, UserInputError
-from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.ope import (
     evaluate_off_policy,
     importance_weights,
@@ -227,24 +226,8 @@ def test_estimators_recover_the_exact_value_of_a_fixed_regime():
     values = {name: [] for name in ("IS", "WIS", "PDIS", "PDWIS", "DR", "WDR", "FQE")}
     ses = {name: [] for name in ("IS", "WIS", "PDIS", "DR")}
     for sample in sm.split_samples(big, 800):
-        target = sm.rows_proba(proba, sample)
-        fqe = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
-            sample["X"], sample["step"], sample["action"], sample["reward"], sample["episode"], target
-        )
-        q_taken, v_target = fqe.taken_and_target_values(sample["X"], sample["step"], sample["action"], target)
-        out = evaluate_off_policy(
-            sample["step"],
-            sample["action"],
-            sample["reward"],
-            sample["episode"],
-            sample["behaviour_proba"],
-            target,
-            horizon=sm.HORIZON,
-            q_taken=q_taken,
-            v_target=v_target,
-        )
-        first = sample["step"] == 0
-        values["FQE"].append(fqe.value_estimate(sample["X"][first], target[first]))
+        out, fqe_value = sm.off_policy_estimates(sample, proba)
+        values["FQE"].append(fqe_value)
         for name, est in out.items():
             values[name].append(est.value)
             if name in ses:

@@ -14,7 +14,6 @@ from support import small_mdp as sm
 
 from regimewise.errors import StatisticalWarning
 from regimewise.evaluation.fqe import FittedQEvaluation
-from regimewise.evaluation.ope import evaluate_off_policy
 from regimewise.evaluation.strategies import (
     incremental_proba,
     override_proba,
@@ -112,28 +111,10 @@ def test_override_value_by_density_equals_direct_rollout():
 
 
 def estimates_for(sample, proba):
-    target = sm.rows_proba(proba, sample)
-    fqe = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
-        sample["X"], sample["step"], sample["action"], sample["reward"], sample["episode"], target
-    )
-    q_taken, v_target = fqe.taken_and_target_values(sample["X"], sample["step"], sample["action"], target)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", StatisticalWarning)
-        out = evaluate_off_policy(
-            sample["step"],
-            sample["action"],
-            sample["reward"],
-            sample["episode"],
-            sample["behaviour_proba"],
-            target,
-            horizon=sm.HORIZON,
-            q_taken=q_taken,
-            v_target=v_target,
-        )
-    first = sample["step"] == 0
-    values = {name: est.value for name, est in out.items()}
-    values["FQE"] = fqe.value_estimate(sample["X"][first], target[first])
-    return values
+        out, fqe_value = sm.off_policy_estimates(sample, proba)
+    return {**{name: est.value for name, est in out.items()}, "FQE": fqe_value}
 
 
 @pytest.mark.parametrize("name", ["partial_adoption_0.4", "override_gain_0.5", "incremental_odds_3"])

@@ -18,6 +18,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.evaluation.ope import evaluate_off_policy
+
 N_STATES = 3
 N_ACTIONS = 3
 HORIZON = 3
@@ -193,3 +196,25 @@ def empirical_mdp(log):
 def rows_proba(policy_proba, log):
     """Probabilities (n, K) a policy given as (H, S, K) assigns at each logged decision."""
     return policy_proba[log["step"], log["state"]]
+
+
+def off_policy_estimates(sample, proba):
+    """Every off-policy estimate (IS … WDR, with fitted-Q evaluation as DR's outcome model) of the policy ``proba``
+    on one logged sample, and the fitted-Q evaluation's value."""
+    target = rows_proba(proba, sample)
+    X, step, action = sample["X"], sample["step"], sample["action"]
+    fqe = FittedQEvaluation(N_ACTIONS, HORIZON).fit(X, step, action, sample["reward"], sample["episode"], target)
+    q_taken, v_target = fqe.taken_and_target_values(X, step, action, target)
+    out = evaluate_off_policy(
+        step,
+        action,
+        sample["reward"],
+        sample["episode"],
+        sample["behaviour_proba"],
+        target,
+        horizon=HORIZON,
+        q_taken=q_taken,
+        v_target=v_target,
+    )
+    first = step == 0
+    return out, fqe.value_estimate(X[first], target[first])

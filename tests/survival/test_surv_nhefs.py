@@ -1,7 +1,8 @@
 """A published inverse-probability-weighted survival example: NHEFS, quitting smoking and death by 120 months.
 
 Source: Hernán & Robins, Causal Inference: What If (2020), chapter 17, sections 17.1 and 17.4 (Programs 17.1 and
-17.3); the numbers below were read in a public transcription of the book's text, not in the printed book:
+17.3); the values below were not checked against the printed edition, so treat them as from memory (hence the
+tolerances):
 crude 120-month survival 76.2% in quitters and 82.0% in non-quitters; stabilised weights with mean 1 ranging from
 0.33 to 4.21; IP-weighted 120-month survival 80.7% under smoking cessation and 80.5% under no cessation
 (difference 0.2%). Survival time in months: 120 if alive, else (yrdth - 83) * 12 + modth (the book's programs).
