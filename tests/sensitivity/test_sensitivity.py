@@ -146,7 +146,7 @@ def test_tipping_point_of_the_summary_is_where_the_interval_reaches_zero():
         "n_episodes": 1000,
     }
     out = summarise_sensitivity(point, replicates, protocol, None)
-    low = np.asarray(out["curve"]["interval_low"])
+    low = np.asarray(out["curve"]["low"])
     star, precision = out["tipping_point"], protocol.sensitivity.precision
     index = int(np.searchsorted(gammas, star - 1e-12))
     assert low[index] <= 0 < low[index - 1]  # first grid point whose interval includes zero
@@ -154,3 +154,55 @@ def test_tipping_point_of_the_summary_is_where_the_interval_reaches_zero():
     crossing = 1.0 + (3.0 + np.quantile(np.linspace(-0.5, 0.5, 41), 0.025, method="weibull")) / 2.0
     assert abs(star - crossing) <= precision + 1e-9  # bisection on the Γ grid: within one grid step
     assert f"{star:.2f}" in out["sentence"]
+
+
+# ---------------------------------------------------------------------------------------------- partial adoption
+def test_partial_adoption_at_gamma_one_is_its_weighted_importance_sampling_estimate():
+    # At Γ = 1 the box collapses to the estimated weights Π (1 − ε + ε·1[follows]/e) (the mixture's density ratio,
+    # evaluation/strategies.py), so both bounds equal the strategy's WIS, here computed by the evaluation room's
+    # estimator from the strategy's action probabilities: an independent code path.
+    from regimewise.evaluation.ope import evaluate_off_policy
+    from regimewise.evaluation.strategies import partial_adoption_proba
+
+    rng = np.random.default_rng(11)
+    n_episodes, horizon, epsilon = 50, 3, 0.3
+    episode = np.repeat(np.arange(n_episodes), horizon)
+    step = np.tile(np.arange(horizon), n_episodes)
+    behaviour = rng.dirichlet(np.ones(3) * 2.0, size=episode.size)
+    action = np.array([rng.choice(3, p=p) for p in behaviour])
+    recommended = rng.integers(0, 3, size=episode.size)
+    reward = np.zeros(episode.size)
+    reward[step == horizon - 1] = rng.normal(size=n_episodes)
+    target = partial_adoption_proba(recommended, behaviour, epsilon)
+    wis = evaluate_off_policy(step, action, reward, episode, behaviour, target, horizon=horizon, gamma=1.0)["WIS"]
+    taken = behaviour[np.arange(episode.size), action]
+    bounds = regime_value_bounds(
+        reward[step == horizon - 1], taken, recommended == action, episode, gamma=1.0, adoption=epsilon
+    )
+    assert bounds.lower == pytest.approx(wis.value, abs=1e-10)
+    assert bounds.upper == pytest.approx(wis.value, abs=1e-10)
+
+
+@pytest.mark.parametrize("epsilon", [0.2, 0.6, 1.0])
+def test_partial_adoption_weight_bounds_are_attained_on_the_odds_ratio_boundary(epsilon):
+    # Derivation check: each decision's true probability p' has odds within a factor Γ of those of e (Tan 2006);
+    # the weight 1 − ε + ε·1[follows]/p' is monotone in p', so an episode's extreme weights come from every p' at
+    # one end. Random admissible p' never leave the box, and the two ends reproduce its corners.
+    rng = np.random.default_rng(5)
+    e = rng.uniform(0.1, 0.9, size=6)
+    follows = np.array([True, True, False, True, False, True])
+    episode = np.array([0, 0, 0, 1, 1, 1])
+    gamma = 2.0
+    lower, upper = trajectory_weight_bounds(e, follows, episode, 2, gamma, adoption=epsilon)
+    odds = e / (1 - e)
+
+    def weights(factor):
+        p_true = factor * odds / (1 + factor * odds)
+        per_decision = 1 - epsilon + epsilon * follows / p_true
+        return np.array([per_decision[:3].prod(), per_decision[3:].prod()])
+
+    np.testing.assert_allclose(weights(1 / gamma), upper, rtol=1e-12)  # smaller odds: larger inverse probability
+    np.testing.assert_allclose(weights(gamma), lower, rtol=1e-12)
+    for _ in range(200):
+        w = weights(np.exp(rng.uniform(-np.log(gamma), np.log(gamma), size=6)))
+        assert np.all(w >= lower - 1e-12) and np.all(w <= upper + 1e-12)

@@ -41,7 +41,7 @@ from regimewise.regime.learning import (
     learn_regime,
     record_proba,
 )
-from regimewise.sensitivity.analysis import regime_curve
+from regimewise.sensitivity.analysis import regime_curve, sensitivity_target
 from regimewise.survival.analysis import survival_values
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -115,7 +115,7 @@ def replicate_values(decisions: pd.DataFrame, protocol: Protocol, episodes: pd.D
     intervals)."""
     proba, recommended, q, folds = fit_replicate(decisions, protocol)
     values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds, learned_q=q)
-    curve = regime_curve(decisions, proba, recommended, protocol)
+    curve = regime_curve(decisions, proba, recommended, protocol, adoption=sensitivity_target(protocol)["adoption"])
     out = {
         "values": point_values(values),
         "sensitivity": {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]},

@@ -161,3 +161,11 @@ def protocol_strategies(spec) -> list[Strategy]:
     if spec is None:
         return []
     return [strategy(family, float(v)) for family in FAMILIES for v in getattr(spec, family)]
+
+
+def headline_strategy(spec) -> Strategy | None:
+    """The protocol's pre-specified headline strategy (``strategies.headline``), or None without a section."""
+    if spec is None:
+        return None
+    wanted = (spec.headline.family, float(spec.headline.value))
+    return next(s for s in protocol_strategies(spec) if (s.family, s.parameter) == wanted)

@@ -35,6 +35,7 @@ from regimewise.core.features import action_codes, episode_codes
 from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.core.weighting import kish_ess
 from regimewise.estimators import ESTIMATORS
+from regimewise.evaluation.strategies import headline_strategy
 from regimewise.sensitivity.bounds import analysis_gammas, bounds_curve, tipping_point
 from regimewise.sensitivity.evalues import (
     e_value,
@@ -53,8 +54,31 @@ def confounded_mask(step: np.ndarray, spec) -> np.ndarray:
     return np.isin(step, spec.confounded_decisions)
 
 
-def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None) -> dict:
-    """Bounds of the learned regime's weighted-IS value over the Γ grid, and usual care's observed mean return.
+def sensitivity_target(protocol) -> dict:
+    """The regime the confounding bounds are about: the pre-specified headline strategy when it is a partial
+    adoption of the learned regime (its weight at a decision, 1 − ε + ε·1[follows]/e, rises with 1/e, so the
+    marginal sensitivity model bounds it decision by decision), else the learned regime (ε = 1).
+
+    The override and incremental strategies' weights also depend on the probabilities of actions not taken,
+    which the model does not bound; with one of them as headline the bounds stay on the learned regime, and
+    ``note`` says so."""
+    chosen = headline_strategy(protocol.strategies)
+    if chosen is not None and chosen.family == "partial_adoption":
+        words = f"the learned regime followed at {100 * chosen.parameter:g}% of reviews (usual care at the others)"
+        return {"name": chosen.name, "words": words, "adoption": chosen.parameter, "note": None}
+    note = None
+    if chosen is not None:
+        note = (
+            f"The bounds are for the learned regime, not the headline strategy ({chosen.label}): that strategy's "
+            "weights also depend on usual care's probabilities of actions not taken, which the sensitivity model "
+            "does not bound."
+        )
+    return {"name": "learned", "words": "the learned regime", "adoption": 1.0, "note": note}
+
+
+def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None, adoption=1.0) -> dict:
+    """Bounds of the learned regime's (or, with ``adoption`` ε < 1, its partial adoption's) weighted-IS value
+    over the Γ grid, and usual care's observed mean return.
 
     Usual care's value is the observed mean return, which hidden confounding of the choices cannot change;
     so the contrast's bounds are the regime's bounds minus that mean. ``gammas`` defaults to the protocol's
@@ -74,15 +98,12 @@ def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None)
         episode,
         analysis_gammas(spec) if gammas is None else np.asarray(gammas, dtype=float),
         confounded_mask(step, spec),
+        adoption,
     )
-    follows_all = np.bincount(episode, weights=np.asarray(recommended) != codes, minlength=returns.size) == 0
-    weights = np.where(
-        follows_all,
-        np.exp(
-            np.bincount(episode, weights=-np.log(behaviour_proba[np.arange(len(codes)), codes]), minlength=returns.size)
-        ),
-        0.0,
-    )
+    follows = np.asarray(recommended) == codes
+    factor = 1.0 - adoption + adoption * follows / behaviour_proba[np.arange(len(codes)), codes]
+    with np.errstate(divide="ignore"):
+        weights = np.exp(np.bincount(episode, weights=np.log(factor), minlength=returns.size))
     ess = kish_ess(weights) if weights.any() else 0.0
     return {
         "learned": curve,
@@ -116,7 +137,9 @@ def _grid_tipping(edge, gammas, spec):
     return tipping_point(edge_at, spec.gamma_max, spec.precision)
 
 
-def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headline: dict | None) -> dict:
+def summarise_sensitivity(
+    point: dict, replicates: list[dict], protocol, headline: dict | None, target: dict | None = None
+) -> dict:
     """Point bounds, percentile-bootstrap intervals of the bounds, tipping point and E-values.
 
     The interval at Γ is [α/2 quantile of the replicates' lower bounds, 1 − α/2 quantile of their upper bounds]
@@ -133,7 +156,12 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
     bounds_star = _grid_tipping(contrast[:, 0] if sign > 0 else -contrast[:, 1], gammas, spec)
     shown = [int(np.searchsorted(gammas, g)) for g in spec.gammas]
     floor = max(protocol.evaluation.minimum_ess, protocol.evaluation.minimum_ess_fraction * point["n_episodes"])
+    target = target or {"name": "learned", "words": "the learned regime", "adoption": 1.0, "note": None}
     return {
+        "strategy": target["name"],
+        "strategy_words": target["words"],
+        "adoption": target["adoption"],
+        "note": target["note"],
         "estimator": "wis",
         "estimator_words": ESTIMATORS["wis"].words,
         "ess": point["ess"],
@@ -145,19 +173,19 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
         "table": [
             {
                 "gamma": float(gammas[i]),
-                "learned_lower": finite_or_none(point["learned"][i, 0]),
-                "learned_upper": finite_or_none(point["learned"][i, 1]),
+                "value_lower": finite_or_none(point["learned"][i, 0]),
+                "value_upper": finite_or_none(point["learned"][i, 1]),
                 "contrast_lower": finite_or_none(contrast[i, 0]),
                 "contrast_upper": finite_or_none(contrast[i, 1]),
-                "interval_low": finite_or_none(limits[i, 0]),
-                "interval_high": finite_or_none(limits[i, 1]),
+                "low": finite_or_none(limits[i, 0]),
+                "high": finite_or_none(limits[i, 1]),
             }
             for i in shown
         ],
         "curve": {
             "gamma": gammas.tolist(),
-            "interval_low": limits[:, 0].tolist(),
-            "interval_high": limits[:, 1].tolist(),
+            "low": limits[:, 0].tolist(),
+            "high": limits[:, 1].tolist(),
             "contrast_lower": contrast[:, 0].tolist(),
             "contrast_upper": contrast[:, 1].tolist(),
         },
@@ -166,7 +194,8 @@ def summarise_sensitivity(point: dict, replicates: list[dict], protocol, headlin
         "gamma_max": spec.gamma_max,
         "precision": spec.precision,
         "e_values": headline_e_values(headline, point["returns_sd"]),
-        "sentence": tipping_sentence(star, spec.gamma_max, benefit) + bounds_sentence(star, bounds_star, spec.gamma_max)
+        "sentence": tipping_sentence(star, spec.gamma_max, benefit, target["words"])
+        + bounds_sentence(star, bounds_star, spec.gamma_max)
         if replicates
         else ("Without bootstrap replicates the bounds have no interval, so no tipping point is computed."),
     }
@@ -190,14 +219,15 @@ def headline_e_values(headline: dict | None, returns_sd: float) -> dict | None:
     }
 
 
-def tipping_sentence(star, gamma_max, benefit) -> str:
-    """One plain sentence saying what the tipping point means."""
+def tipping_sentence(star, gamma_max, benefit, words: str = "the learned regime") -> str:
+    """One plain sentence saying what the tipping point means for the strategy described by ``words``."""
     if not np.isfinite(benefit):
-        return "No episode follows the learned regime throughout, so its weighted value and its bounds are undefined."
+        return f"No episode follows {words} throughout, so its weighted value and its bounds are undefined."
+    difference = f"the difference between {words} and usual care"
     if star == 1.0:
         return (
-            "Even without hidden confounding (Γ = 1) the interval for the learned-minus-usual-care difference "
-            "includes zero, so there is no benefit for a hidden confounder to erase."
+            f"Even without hidden confounding (Γ = 1) the interval for {difference} includes zero, so there is no "
+            "benefit for a hidden confounder to erase."
         )
     if star is None:
         return (
@@ -206,8 +236,8 @@ def tipping_sentence(star, gamma_max, benefit) -> str:
         )
     return (
         f"A hidden factor that changed the odds of the action clinicians took by a factor of {star:.2f} "
-        "(in either direction, at every confounded decision) would be enough to make the interval for the "
-        "learned-minus-usual-care difference include zero."
+        f"(in either direction, at every confounded decision) would be enough to make the interval for {difference} "
+        "include zero."
     )
 
 

@@ -43,8 +43,13 @@ def inverse_probability_bounds(proba_taken, gamma: float) -> tuple[np.ndarray, n
     return 1.0 + odds / gamma, 1.0 + gamma * odds
 
 
-def trajectory_weight_bounds(proba_taken, follows, episode, n_episodes, gamma, confounded=None):
-    """Bounds [A_i, B_i] on each episode's trajectory weight for a deterministic regime.
+def trajectory_weight_bounds(proba_taken, follows, episode, n_episodes, gamma, confounded=None, adoption=1.0):
+    """Bounds [A_i, B_i] on each episode's trajectory weight for a deterministic regime, or for its partial
+    adoption.
+
+    With adoption ε < 1 the regime is followed at each decision with probability ε and usual care otherwise; its
+    weight at a decision is 1 − ε + ε·1[follows]/e, increasing in 1/e, so the bounds of 1/e give the bounds of
+    each factor and, all factors being positive, of their product. ε = 1 is the deterministic regime.
 
     Parameters
     ----------
@@ -58,6 +63,8 @@ def trajectory_weight_bounds(proba_taken, follows, episode, n_episodes, gamma, c
     gamma : float
     confounded : ndarray of bool, shape (n,), optional
         Decisions at which hidden confounding is allowed (default: all). Elsewhere the estimated weight 1/e is kept.
+    adoption : float
+        ε in (0, 1]: the share of decisions at which the regime is followed (1: always).
 
     Returns
     -------
@@ -72,6 +79,11 @@ def trajectory_weight_bounds(proba_taken, follows, episode, n_episodes, gamma, c
     point = 1.0 / proba_taken
     low = np.where(confounded, low, point)
     high = np.where(confounded, high, point)
+    if adoption < 1.0:
+        if not 0.0 < adoption:
+            raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
+        low, high = (1.0 - adoption + adoption * follows * bound for bound in (low, high))
+        follows = np.ones_like(follows)  # a decision that departs keeps weight 1 − ε: nobody drops out
     log_low = np.bincount(episode, weights=np.log(low), minlength=n_episodes)
     log_high = np.bincount(episode, weights=np.log(high), minlength=n_episodes)
     departs = np.bincount(episode, weights=~follows, minlength=n_episodes) > 0
@@ -124,10 +136,11 @@ def weighted_mean_bounds(values, lower, upper, gamma: float = math.nan) -> Value
     )
 
 
-def regime_value_bounds(returns, proba_taken, follows, episode, gamma, confounded=None) -> ValueBounds:
-    """Bounds on a deterministic regime's weighted importance-sampling value under confounding strength Γ."""
+def regime_value_bounds(returns, proba_taken, follows, episode, gamma, confounded=None, adoption=1.0) -> ValueBounds:
+    """Bounds on a deterministic regime's (or its partial adoption's) weighted importance-sampling value under
+    confounding strength Γ."""
     returns = np.asarray(returns, dtype=float)
-    lower, upper = trajectory_weight_bounds(proba_taken, follows, episode, returns.size, gamma, confounded)
+    lower, upper = trajectory_weight_bounds(proba_taken, follows, episode, returns.size, gamma, confounded, adoption)
     return weighted_mean_bounds(returns, lower, upper, gamma)
 
 
@@ -142,8 +155,9 @@ def analysis_gammas(spec) -> np.ndarray:
     return np.unique(np.concatenate([gamma_grid(spec.gamma_max, spec.precision), np.asarray(spec.gammas, float)]))
 
 
-def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None) -> np.ndarray:
-    """Sharp bounds of the regime's weighted importance-sampling value at every Γ: array (len(gammas), 2).
+def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None, adoption=1.0) -> np.ndarray:
+    """Sharp bounds of the regime's (or its partial adoption's) weighted importance-sampling value at every Γ:
+    array (len(gammas), 2).
 
     The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019).
     """
@@ -151,7 +165,9 @@ def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None
     order = np.argsort(-returns, kind="mergesort")
     out = np.empty((len(gammas), 2))
     for i, gamma in enumerate(gammas):
-        lower, upper = trajectory_weight_bounds(proba_taken, follows, episode, returns.size, gamma, confounded)
+        lower, upper = trajectory_weight_bounds(
+            proba_taken, follows, episode, returns.size, gamma, confounded, adoption
+        )
         out[i, 1] = _sorted_upper_bound(returns[order], lower[order], upper[order])
         out[i, 0] = -_sorted_upper_bound(-returns[order][::-1], lower[order][::-1], upper[order][::-1])
     return out

@@ -41,7 +41,7 @@ from regimewise.regime.summary import regime_summary, safeguard_summary
 from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
-from regimewise.sensitivity.analysis import regime_curve, summarise_sensitivity
+from regimewise.sensitivity.analysis import regime_curve, sensitivity_target, summarise_sensitivity
 from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
 from regimewise.usual_care.fitting import fit_usual_care
@@ -274,17 +274,18 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
-    point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p)
+    target = sensitivity_target(p)
+    point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p, adoption=target["adoption"])
     replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
-    headline = headline_contrast(read_json(intervals), p)
-    write_json(sensitivity, summarise_sensitivity(point, replicates, p, headline))
+    headline = headline_contrast(read_json(intervals), p, target["name"])
+    write_json(sensitivity, summarise_sensitivity(point, replicates, p, headline, target))
 
 
-def headline_contrast(intervals: dict, p) -> dict | None:
-    """The learned-minus-usual-care contrast of the headline estimator (wdr if run) with its interval."""
+def headline_contrast(intervals: dict, p, regime: str = "learned") -> dict | None:
+    """``regime``-minus-usual-care contrast of the headline estimator (wdr if run) with its interval."""
     name = headline_estimator(p)
     for contrast in intervals.get("contrasts", []):
-        if (contrast["regime"], contrast["versus"], contrast["estimator"]) == ("learned", "usual_care", name):
+        if (contrast["regime"], contrast["versus"], contrast["estimator"]) == (regime, "usual_care", name):
             return contrast
     return None
 
