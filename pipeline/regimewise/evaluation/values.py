@@ -154,7 +154,7 @@ def evaluate_regime(
     share = unsupported_share(target, logged.behaviour_proba, protocol.constraints.support_threshold)
     out = {}
     for name in protocol.evaluation.estimators:
-        estimate = results[ESTIMATORS[name].label].to_dict()
+        estimate = results[ESTIMATORS[name].label].to_dict() | {"estimator": name}  # one spelling: the protocol's
         estimate["low_ess"] = bool(estimate["ess"] is None or estimate["ess"] < floor)
         if not deterministic:
             estimate["n_following"] = None

@@ -140,15 +140,15 @@ def section_figures(protocol, behaviour, cohort) -> dict:
 
 
 def sensitivity_figure(sensitivity: dict) -> str:
-    """Bounds of the learned-minus-usual-care difference and their bootstrap interval against Γ."""
+    """Bounds of the analysed strategy's difference from usual care and their bootstrap interval against Γ."""
     apply_style()
     # undefined limits (null in JSON) become gaps in the plot
     curve = {key: [float("nan") if v is None else v for v in values] for key, values in sensitivity["curve"].items()}
     fig, ax = plt.subplots(figsize=(6.5, 3.2))
     ax.fill_between(
         curve["gamma"],
-        curve["interval_low"],
-        curve["interval_high"],
+        curve["low"],
+        curve["high"],
         color="C0",
         alpha=0.2,
         label=f"{100 * sensitivity['level']:.0f}% bootstrap interval of the bounds",
@@ -161,12 +161,12 @@ def sensitivity_figure(sensitivity: dict) -> str:
     if sensitivity.get("tipping_point_bounds") not in (None, sensitivity["tipping_point"]):
         ax.axvline(sensitivity["tipping_point_bounds"], color="C5", linestyle=":", label="bounds reach zero")
     ax.set_xlabel("confounding strength Γ (odds-ratio bound)")
-    ax.set_ylabel("learned − usual care")
+    ax.set_ylabel("difference from usual care")
     ax.legend(frameon=False, fontsize=9, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return svg_text(
         fig,
-        "Bounds of the learned-minus-usual-care difference and their bootstrap interval as the assumed "
-        "confounding strength grows.",
+        f"Bounds of the difference between {sensitivity.get('strategy_words', 'the learned regime')} and usual care, "
+        "and their bootstrap interval, as the assumed confounding strength grows.",
     )
 
 
@@ -203,8 +203,28 @@ def sweep_figure(sweep: dict) -> str:
 
 
 # ---------------------------------------------------------------------------------------------- figures
+# The widest a figure may be, legends included: A4 at the print style's 12 mm side margins holds 7.32 in (Letter
+# 7.56 in), so a figure no wider than this prints at its own size and its text stays at 9 pt or more.
+PRINT_WIDTH_INCHES = 7.2
+
+
+def fit_print_width(fig, limit: float = PRINT_WIDTH_INCHES) -> None:
+    """Narrow ``fig`` until its tight bounding box (what is saved) is at most ``limit`` inches wide.
+
+    Text keeps its size in points; the axes give up the width instead, so a browser or printer never has to scale
+    the figure (and its text) down to fit the page."""
+    for _ in range(5):
+        width = fig.get_tightbbox(fig.canvas.get_renderer()).width
+        if width <= limit:
+            return
+        w, h = fig.get_size_inches()
+        fig.set_size_inches(max(w - (width - limit) - 0.02, 1.0), h)
+
+
 def svg_text(fig, summary: str) -> str:
-    """Inline SVG of ``fig`` (no timestamp), marked as an image with ``summary`` as its accessible name and title."""
+    """Inline SVG of ``fig`` (no timestamp, at most :data:`PRINT_WIDTH_INCHES` wide), marked as an image with
+    ``summary`` as its accessible name and title."""
+    fit_print_width(fig)
     buffer = io.StringIO()
     fig.savefig(buffer, format="svg", metadata={"Date": None}, bbox_inches="tight")
     plt.close(fig)
@@ -253,42 +273,66 @@ def actions_by_step_figure(labels, by_step) -> str:
     )
 
 
-def value_figure(regimes, estimators) -> str:
-    """Forest plot: each regime's value by each estimator with its bootstrap interval.
+def usual_care_contrasts(values: dict) -> list[dict]:
+    """Every regime minus usual care by every estimator: the evaluation's contrasts (learned regime, strategies)
+    and, from the bootstrap, the fixed strategies' (with their intervals where replicates exist)."""
+    contrasts = [c for c in values["contrasts"] if c["versus"] == "usual_care"]
+    seen = {(c["regime"], c["estimator"]) for c in contrasts}
+    boot = values.get("bootstrap") or {}
+    extra = [
+        c
+        for c in boot.get("contrasts", [])
+        if c["versus"] == "usual_care" and (c["regime"], c["estimator"]) not in seen
+    ]
+    return contrasts + extra
 
-    Hollow markers and dashed grey intervals: effective sample too small to be trusted. A value whose verdict is
-    ``not identified`` gets no point and no interval, so the axis spans only the values plotted.
+
+def contrast_figure(values: dict, estimators) -> str:
+    """Contrast forest plot: each regime minus usual care, by estimator, with its bootstrap interval.
+
+    Filled markers and solid intervals: supported (the effective sample reaches the minimum); hollow markers and
+    dashed intervals: model projections. A contrast that is not identified is not drawn (the report lists it under
+    the plot), so the axis spans only what is drawn.
     """
     apply_style()
-    fig, ax = plt.subplots(figsize=(7.0, 0.32 * len(regimes) * len(estimators) + 1.2))
+    labels = {r["name"]: r["label"] for r in values["regimes"]}
+    drawn = [
+        c
+        for c in usual_care_contrasts(values)
+        if c["estimator"] in estimators
+        and c["difference"] is not None
+        and not c.get("withheld")
+        and c.get("verdict") != "not identified"
+    ]
+    rows = [name for name in labels if name != "usual_care" and any(c["regime"] == name for c in drawn)]
+    fig, ax = plt.subplots(figsize=(7.0, 0.42 * max(len(rows), 1) + 1.1))
     for j, est in enumerate(estimators):
         labelled = False
-        for i, r in enumerate(regimes):
-            e = r["estimates"].get(est)
-            if e is None or e["value"] is None or e.get("verdict") == "not identified":
-                continue
-            y = len(regimes) - 1 - i + (j - (len(estimators) - 1) / 2) * (0.8 / len(estimators))
-            color = "0.6" if e["low_ess"] else f"C{j}"
-            if e.get("low") is not None:
+        for c in (c for c in drawn if c["estimator"] == est):
+            y = len(rows) - 1 - rows.index(c["regime"]) + (j - (len(estimators) - 1) / 2) * (0.7 / len(estimators))
+            weak = bool(c["low_ess"])
+            if c.get("low") is not None:
                 ax.hlines(
-                    y, e["low"], e["high"], color=color, linewidth=1.2, linestyles="dashed" if e["low_ess"] else "solid"
+                    y, c["low"], c["high"], color=f"C{j}", linewidth=1.2, linestyles="dashed" if weak else "solid"
                 )
             ax.plot(
-                [e["value"]],
+                [c["difference"]],
                 [y],
                 ESTIMATORS[est].marker,
                 color=f"C{j}",
-                markerfacecolor="none" if e["low_ess"] else f"C{j}",
+                markerfacecolor="white" if weak else f"C{j}",
                 label=None if labelled else est,
             )
             labelled = True
-    ax.set_yticks(range(len(regimes)), [r["label"] for r in reversed(regimes)])
-    ax.set_xlabel("estimated value (expected total reward per episode)")
-    ax.legend(frameon=False, loc="center left", bbox_to_anchor=(1.0, 0.5))
+    ax.axvline(0.0, color="0.3", linewidth=0.8)
+    ax.set_yticks(range(len(rows)), [labels[name] for name in reversed(rows)])
+    ax.set_ylim(-0.6, len(rows) - 0.4)
+    ax.set_xlabel("difference from usual care (expected total reward per episode)")
+    ax.legend(frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return svg_text(
         fig,
-        "Each regime's estimated value by each estimator with its bootstrap interval; hollow markers "
-        "rest on too small an effective sample.",
+        "Each strategy minus usual care by each estimator with its bootstrap interval; hollow markers and dashed "
+        "intervals rest on too small an effective sample; contrasts that are not identified are not drawn.",
     )
 
 

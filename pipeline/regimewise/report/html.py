@@ -7,6 +7,7 @@ Counts from 1 to ``report.min_cell_count - 1`` are shown as ``<min_cell_count``.
 
 from __future__ import annotations
 
+import re
 from importlib import resources
 
 import jinja2
@@ -16,11 +17,12 @@ from regimewise.estimators import ESTIMATORS
 from regimewise.report.figures import (
     SPARSE_BIN,
     actions_by_step_figure,
+    contrast_figure,
     section_figures,
     sensitivity_figure,
     survival_figure,
     sweep_figure,
-    value_figure,
+    usual_care_contrasts,
     weight_histogram_figure,
 )
 
@@ -30,6 +32,8 @@ def cell_count(n, threshold):
     """Small-cell rule: counts 1..threshold-1 are shown as '<threshold' (common practice, no source)."""
     if n is None:
         return "—"
+    if isinstance(n, str):  # already suppressed in summary.json
+        return n
     n = int(n)
     return f"<{threshold}" if 0 < n < threshold else f"{n:,}"
 
@@ -53,6 +57,8 @@ def template_environment(p) -> jinja2.Environment:
     environment.filters["words"] = lambda identifier: str(identifier).replace("_", " ")
     environment.filters["num"] = _number
     environment.filters["pct"] = lambda x: "—" if x is None else f"{100 * x:.1f}%"
+    environment.filters["uncited"] = lambda words: re.sub(r" \([^()]*\d{4}\)$", "", words)  # drop "(Author 2016)"
+    environment.filters["points"] = lambda x: "—" if x is None else f"{100 * x:,.1f}"  # percentage points
     return environment
 
 
@@ -70,7 +76,8 @@ def render_html(p, parts, prov, headline) -> str:
         prov=prov,
         summary=headline,
         actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
-        value_figure=value_figure(parts["values"]["regimes"], p.evaluation.estimators),
+        value_figure=contrast_figure(parts["values"], p.evaluation.estimators),
+        unplotted=unplotted(parts["values"], p.evaluation.estimators),
         weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
         cohort=parts.get("cohort"),
         usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
@@ -85,3 +92,14 @@ def render_html(p, parts, prov, headline) -> str:
         if parts.get("survival") is None
         else survival_figure(parts["survival"], p.report.min_cell_count),
     )
+
+
+def unplotted(values: dict, estimators) -> list[str]:
+    """Labels of the regimes whose contrast with usual care is not identified by any estimator (not drawn)."""
+    labels = {r["name"]: r["label"] for r in values["regimes"]}
+    kept = {
+        c["regime"]
+        for c in usual_care_contrasts(values)
+        if c["estimator"] in estimators and c["difference"] is not None and c.get("verdict") != "not identified"
+    }
+    return [label for name, label in labels.items() if name != "usual_care" and name not in kept]

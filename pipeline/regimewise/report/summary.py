@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.evaluation.strategies import headline_strategy
 from regimewise.evaluation.values import headline_estimator
 
 
@@ -40,12 +41,55 @@ def usual_care_summary(behaviour, cohort) -> dict:
     return out
 
 
-SUMMARY_SCHEMA_VERSION = "1"
+SUMMARY_SCHEMA_VERSION = "2"
 
 
 # ---------------------------------------------------------------------------------------------- summary.json
+# Counts of episodes, patients or decisions: 1 to min_cell_count − 1 are written "<min_cell_count", as in the report.
+SMALL_COUNT_KEYS = frozenset(
+    {
+        "episodes",
+        "patients",
+        "decisions",
+        "rows_read",
+        "decisions_dropped_missing",
+        "episodes_dropped_missing",
+        "values_filled_missing",
+        "decisions_changed_by_support",
+        "decisions_without_permitted_action",
+        "decisions_changed_by_this_safeguard",
+        "rule_violations",
+        "n_following",
+        "n_episodes",
+        "entries_raised",
+        "decisions_with_taken_action_raised",
+    }
+)
+
+
+def suppress_small_counts(node, threshold: int):
+    """A copy of ``node`` with every count under :data:`SMALL_COUNT_KEYS` from 1 to threshold − 1 replaced by
+    the string ``"<threshold"`` (the report's small-cell rule, common practice with no source)."""
+    if isinstance(node, dict):
+        return {
+            key: f"<{threshold}" if _small(key, value, threshold) else suppress_small_counts(value, threshold)
+            for key, value in node.items()
+        }
+    if isinstance(node, list):
+        return [suppress_small_counts(value, threshold) for value in node]
+    return node
+
+
+def _small(key, value, threshold: int) -> bool:
+    return key in SMALL_COUNT_KEYS and isinstance(value, int) and not isinstance(value, bool) and 0 < value < threshold
+
+
 def build_summary(p, parts, prov) -> dict:
-    """Every headline number, keyed as documented in the README (section 'summary.json')."""
+    """Every headline number, keyed as documented in the README (section 'summary.json'); small counts suppressed."""
+    return suppress_small_counts(_summary(p, parts, prov), p.report.min_cell_count)
+
+
+def _summary(p, parts, prov) -> dict:
     values = parts["values"]
     return {
         "schema_version": SUMMARY_SCHEMA_VERSION,
@@ -83,12 +127,12 @@ def build_summary(p, parts, prov) -> dict:
         "contrasts": values["contrasts"],
         "minimum_reliable_ess": values["minimum_reliable_ess"],
         "bootstrap": values["bootstrap"],
-        "headline": strategy_sentence(p, values) if p.strategies is not None else headline_sentence(p, values),
+        "headline": headline_block(p, values),
         "learned_regime_sentence": headline_sentence(p, values),
         "strategies": strategy_headlines(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "sweep": sweep_headlines(parts.get("sweep")),
-        "survival": survival_headlines(parts.get("survival")),
+        "survival": survival_headlines(parts.get("survival"), headline_name(p)),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
         "root_seed": prov["root_seed"],
@@ -100,9 +144,14 @@ def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
     if sensitivity is None:
         return None
     keys = (
+        "strategy",
+        "strategy_words",
+        "adoption",
+        "note",
         "estimator",
         "ess",
         "low_ess",
+        "level",
         "confounded_decisions",
         "tipping_point",
         "tipping_point_bounds",
@@ -161,6 +210,38 @@ def safeguard_headlines(regime: dict, values: dict) -> dict:
     }
 
 
+def headline_name(p) -> str:
+    """The regime the headline is about: the protocol's pre-specified strategy, else the learned regime."""
+    chosen = headline_strategy(p.strategies)
+    return "learned" if chosen is None else chosen.name
+
+
+def headline_block(p, values) -> dict:
+    """summary.json's ``headline``: the one contrast the report leads with, by the headline estimator.
+
+    Strategy (the pre-specified one of the ``strategies`` section, else the learned regime), estimator,
+    difference from usual care with its bootstrap interval, ESS, verdict and the plain sentence. A value that is
+    not identified has no number here (values.json keeps it for audit)."""
+    name, estimator = headline_name(p), headline_estimator(p)
+    contrast = next(c for c in values["contrasts"] if c["regime"] == name and c["estimator"] == estimator)
+    regime = next(r for r in values["regimes"] if r["name"] == name)
+    withheld = contrast.get("withheld") or contrast["verdict"] == "not identified"
+    return {
+        "strategy": name,
+        "label": regime["label"],
+        "words": regime.get("words"),
+        "prespecified": p.strategies is not None,
+        "estimator": estimator,
+        "difference": None if withheld else contrast["difference"],
+        "low": None if withheld else contrast.get("low"),
+        "high": None if withheld else contrast.get("high"),
+        "level": values["bootstrap"]["level"] if values.get("bootstrap") else None,
+        "ess": regime["estimates"][estimator]["ess"],
+        "verdict": contrast["verdict"],
+        "sentence": strategy_sentence(p, values) if p.strategies is not None else headline_sentence(p, values),
+    }
+
+
 def headline_sentence(p, values) -> str:
     """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
     contrasts = {c["estimator"]: c for c in values["contrasts"] if c["regime"] == "learned"}
@@ -197,9 +278,10 @@ def _interval_clause(contrast, bootstrap) -> str:
     return f" ({100 * bootstrap['level']:.0f}% bootstrap interval for the difference {low:.2f} to {high:.2f}{covers})"
 
 
-def survival_headlines(survival: dict | None) -> dict | None:
+def survival_headlines(survival: dict | None, headline: str = "learned") -> dict | None:
     """Per strategy at the table times: survival, risk difference against usual care and restricted mean
-    survival time, each with its bootstrap interval and whether the effective sample stays adequate; the sentence."""
+    survival time, each with its bootstrap interval and whether the effective sample stays adequate; the sentence
+    on the ``headline`` regime (the pre-specified strategy, else the learned regime)."""
     if survival is None:
         return None
     intervals = survival["intervals"]["strategies"]
@@ -227,21 +309,25 @@ def survival_headlines(survival: dict | None) -> dict | None:
         "dropout_model": survival["dropout_model"]["used"],
         "grace": survival["grace"],
         "strategies": strategies,
-        "sentence": survival_sentence(survival, strategies),
+        "headline_strategy": headline,
+        "sentence": survival_sentence(survival, strategies, headline),
     }
 
 
-def survival_sentence(survival: dict, strategies: dict) -> str:
-    """One plain sentence on the learned regime against usual care at the horizon."""
-    learned, horizon = strategies.get("learned"), survival["horizon_days"]
+def survival_sentence(survival: dict, strategies: dict, name: str = "learned") -> str:
+    """One plain sentence on regime ``name`` against usual care at the horizon."""
+    learned, horizon = strategies.get(name), survival["horizon_days"]
+    what = "the learned regime"
+    if name != "learned":
+        what = f"the headline strategy ({_lower(learned['label']) if learned else name})"
     if learned is None or learned["risk_difference"][-1] is None:
-        return f"The learned regime's survival to day {horizon:g} is undefined: no episode follows it from the start."
+        return f"Survival to day {horizon:g} under {what} is undefined: no episode follows it from the start."
     difference = 100 * learned["risk_difference"][-1]
     limits = learned["risk_difference_interval"] or {}
     low, high = (limits.get("low") or [None])[-1], (limits.get("high") or [None])[-1]
     direction = "lower" if difference < 0 else "higher"
     sentence = (
-        f"By day {horizon:g}, the estimated risk of the event under the learned regime is {abs(difference):.1f} "
+        f"By day {horizon:g}, the estimated risk of the event under {what} is {abs(difference):.1f} "
         f"percentage points {direction} than under usual care (risk difference {difference:+.1f}"
     )
     if low is not None:
@@ -250,7 +336,7 @@ def survival_sentence(survival: dict, strategies: dict) -> str:
     sentence += ")"
     if learned["unreliable_from"] is not None and learned["unreliable_from"] <= horizon:
         return sentence + (
-            f"; but from day {learned['unreliable_from']:g} too few episodes still follow the learned regime for the "
+            f"; but from day {learned['unreliable_from']:g} too few episodes still follow {what} for the "
             "weights to be trusted, so the records cannot confirm this difference."
         )
     return sentence + "."
@@ -277,6 +363,7 @@ def strategy_rows(p, values: dict) -> list[dict]:
         rows.append(
             {
                 "name": r["name"],
+                "label": r["label"],
                 "family": r["family"],
                 "parameter": r["parameter"],
                 "words": r["words"],
@@ -319,3 +406,8 @@ def strategy_sentence(p, values: dict) -> str:
     if h["verdict"] == "model projection":
         return sentence + " — the data cannot confirm this difference; it rests mostly on the outcome model."
     return sentence + " (the effective sample reaches the protocol's minimum)."
+
+
+def _lower(label: str) -> str:
+    """A label inside a sentence: its first letter in lower case ("Learned regime at 40%…" → "learned regime…")."""
+    return label[:1].lower() + label[1:]
