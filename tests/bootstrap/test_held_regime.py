@@ -17,6 +17,7 @@ import pytest
 import yaml
 from support.tiny import REPOSITORY
 
+from regimewise.bootstrap.intervals import shared_regime
 from regimewise.bootstrap.replicates import (
     draw_patients,
     fit_replicate,
@@ -29,7 +30,7 @@ from regimewise.bootstrap.replicates import (
 )
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
-from regimewise.errors import ProtocolError
+from regimewise.errors import ProtocolError, UserInputError
 from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.io import write_parquet
 from regimewise.protocol import load_protocol
@@ -130,3 +131,12 @@ def test_m_out_of_n_with_a_held_regime_is_refused_in_one_line(tmp_path):
     with pytest.raises(ProtocolError, match="bootstrap_regime: refit") as caught:
         load_protocol(tmp_path / "protocol.yaml")
     assert "\n" not in str(caught.value)
+
+
+def test_shards_computed_for_the_other_estimand_are_refused():
+    # a shard left from a run with bootstrap_regime: refit must not be combined into fixed-regime intervals
+    assert shared_regime([{"regime": "fixed"}, {"regime": "fixed"}], "fixed") == "fixed"
+    with pytest.raises(UserInputError, match="rerun every bootstrap shard"):
+        shared_regime([{"regime": "fixed"}, {"regime": "refit"}], "fixed")
+    with pytest.raises(UserInputError, match="rerun every bootstrap shard"):
+        shared_regime([{"shard": 0}], "fixed")  # written before the setting existed
