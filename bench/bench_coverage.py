@@ -3,11 +3,11 @@
 For each of ``--cohorts`` cohorts of ``--episodes`` episodes without hidden confounding (strength 0), the demo
 protocol's regime is learned, every regime is evaluated by every estimator (the learned regime cross-fitted by
 patient, as the workflow does: ``evaluation.cross_fit_folds``), and ``--replicates`` patient
-bootstrap replicates (each refitting usual care, the Q-models and the regime; :mod:`regimewise.bootstrap.replicates`)
-give
-percentile intervals. The truths come from the simulator by Monte Carlo: the value of the regime learned from
-that cohort (``--truth-episodes`` simulated patients), the episode-weighted mean value of the fold regimes
-the cross-fitted evaluation actually scores, and the value of usual care (once, 200,000 episodes).
+bootstrap replicates (each refitting usual care and the outcome models, and the regime only with
+``evaluation.bootstrap_regime: refit``; :mod:`regimewise.bootstrap.replicates`) give percentile intervals. The
+truths come from the simulator by Monte Carlo: the value of the regime learned from that cohort
+(``--truth-episodes`` simulated patients), the episode-weighted mean value of the fold regimes the cross-fitted
+evaluation actually scores, and the value of usual care (once, 200,000 episodes).
 Printed per estimator: coverage of the nominal 95% interval, bias, RMSE and mean width, for the learned regime
 and for usual care. Targets of issue 6: coverage >= 90% for wdr and fqe on the learned regime, >= 93% for usual
 care. With C cohorts a coverage near 95% is known to about ±sqrt(0.05·0.95/C) (±1.5 points at C = 200).

@@ -3,7 +3,9 @@
 For each of ``--cohorts`` cohorts of ``--episodes`` episodes (the demo's hidden confounding, strength 1, unless
 ``--strength``), the demo protocol is run as the workflow runs it (usual care, the cross-fitted regime, every
 regime and strategy by every estimator) and ``--replicates`` patient-bootstrap replicates give percentile
-intervals (:mod:`regimewise.bootstrap.replicates`, the same code as the bootstrap shards). The truth of the
+intervals (:mod:`regimewise.bootstrap.replicates`, the same code as the bootstrap shards; ``--bootstrap-regime``
+``fixed``, the protocol's default, holds the learned fold regimes fixed in the replicates, ``refit`` learns them
+again in each replicate). The truth of the
 protocol's headline strategy is the cross-fitted, data-adaptive target: the episode-weighted mean over folds of
 the true value of the strategy built from each fold's regime (``--truth-episodes`` simulated episodes, common
 random numbers with usual care; bench_strategies.py). Printed per estimator, for the value and the contrast with
@@ -52,6 +54,7 @@ def parse(argv=None):
     parser.add_argument("--strength", type=float, default=1.0)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--results", type=Path, default=None)
+    parser.add_argument("--bootstrap-regime", choices=("fixed", "refit"), default="fixed")
     return parser.parse_args(argv)
 
 
@@ -64,7 +67,9 @@ def one_cohort(task):
     seed, args = task
     warnings.simplefilter("ignore")
     pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
-    raw = pf.protocol.evaluation.model_copy(update={"replicates": args.replicates, "shards": 1})
+    raw = pf.protocol.evaluation.model_copy(
+        update={"replicates": args.replicates, "shards": 1, "bootstrap_regime": args.bootstrap_regime}
+    )
     p = pf.protocol.model_copy(update={"evaluation": raw, "seed": seed})
     s = headline(p)
     with threadpool_limits(limits=1):
@@ -85,7 +90,13 @@ def one_cohort(task):
             truth_value += share * returns.mean()
             truth_contrast += share * (returns - usual).mean()
     regime = next(r for r in values["regimes"] if r["name"] == s.name)
-    out = {"seed": seed, "truth_value": truth_value, "truth_contrast": truth_contrast, "estimators": {}}
+    out = {
+        "seed": seed,
+        "bootstrap_regime": args.bootstrap_regime,
+        "truth_value": truth_value,
+        "truth_contrast": truth_contrast,
+        "estimators": {},
+    }
     for est, e in regime["estimates"].items():
         v = intervals["values"][s.name][est]
         c = next(
@@ -106,10 +117,14 @@ def one_cohort(task):
 
 def summarise(results):
     estimators = list(results[0]["estimators"])
-    print(f"{'estimator':9s} {'target':8s} {'coverage':>8s} {'bias':>7s} {'RMSE':>7s} {'width':>7s} {'supported':>9s}")
+    print(
+        f"{'estimator':9s} {'target':8s} {'coverage':>8s} {'bias':>7s} {'RMSE':>7s} {'width':>7s} {'supported':>9s} "
+        f"{'coverage where supported':>24s}"
+    )
     for est in estimators:
         rows = [r["estimators"][est] for r in results]
-        supported = np.mean([row["verdict"] == "supported" for row in rows])
+        is_supported = np.array([row["verdict"] == "supported" for row in rows])
+        supported = np.mean(is_supported)
         for target, key, interval in (
             ("value", "value", "value_interval"),
             ("contrast", "difference", "contrast_interval"),
@@ -118,11 +133,14 @@ def summarise(results):
             est_values = np.array([np.nan if row[key] is None else row[key] for row in rows])
             low = np.array([np.nan if row[interval][0] is None else row[interval][0] for row in rows])
             high = np.array([np.nan if row[interval][1] is None else row[interval][1] for row in rows])
-            covered = np.mean((low <= truth) & (truth <= high))
+            hits = (low <= truth) & (truth <= high)
+            covered = np.mean(hits)
+            where = f"{100 * np.mean(hits[is_supported]):.1f}% of {is_supported.sum()}" if is_supported.any() else "-"
             error = est_values - truth
             print(
                 f"{est:9s} {target:8s} {100 * covered:7.1f}% {np.nanmean(error):7.3f} "
-                f"{np.sqrt(np.nanmean(error**2)):7.3f} {np.nanmean(high - low):7.3f} {100 * supported:8.0f}%"
+                f"{np.sqrt(np.nanmean(error**2)):7.3f} {np.nanmean(high - low):7.3f} {100 * supported:8.0f}% "
+                f"{where:>24s}"
             )
 
 
@@ -132,6 +150,8 @@ def main(argv=None) -> None:
     done = []
     if args.results is not None and args.results.exists():
         done = [json.loads(line) for line in args.results.read_text().splitlines() if line.strip()]
+        if any(r.get("bootstrap_regime", args.bootstrap_regime) != args.bootstrap_regime for r in done):
+            raise SystemExit(f"{args.results} holds cohorts run with another --bootstrap-regime; use another file")
     seeds = [1000 + c for c in range(args.cohorts) if 1000 + c not in {r["seed"] for r in done}]
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=args.workers) as pool:
@@ -143,7 +163,8 @@ def main(argv=None) -> None:
     p = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
     print(
         f"headline strategy {headline(p).name}: {len(done)} cohorts x {args.episodes} episodes, {args.replicates} "
-        f"replicates, strength {args.strength}, truths on {args.truth_episodes} episodes; "
+        f"replicates ({args.bootstrap_regime} regime), strength {args.strength}, truths on {args.truth_episodes} "
+        "episodes; "
         f"{time.perf_counter() - start:.0f} s this run"
     )
     summarise(sorted(done, key=lambda r: r["seed"]))

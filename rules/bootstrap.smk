@@ -4,6 +4,7 @@ rule bootstrap_shard:
         protocol=SETTINGS.protocol,
         decisions=results("validate/decisions.parquet"),
         episodes=results("validate/episodes.parquet"),
+        table=results("regime/recommendations.parquet"),
     output:
         replicates=results("bootstrap/shards/shard_{shard}.json"),
     log:

@@ -31,8 +31,10 @@ from regimewise.bootstrap.m_out_of_n import (
     resample_size,
 )
 from regimewise.bootstrap.replicates import (
+    draw_patients,
     patient_groups,
     replicate_rng,
+    resample_frame,
     resample_patients,
     run_shard,
     shard_replicates,
@@ -43,7 +45,7 @@ from regimewise.errors import UserInputError
 from regimewise.evaluation.values import clustered_mean, evaluate_all, point_values
 from regimewise.io import write_json, write_parquet
 from regimewise.protocol import Protocol, load_protocol
-from regimewise.regime.learning import learn_regime, record_proba
+from regimewise.regime.learning import crossfit_folds, learn_regime, record_proba
 from regimewise.workflow.stages import bootstrap_shard_stage, bootstrap_stage
 
 N_REPLICATES = 12
@@ -146,12 +148,10 @@ def test_combined_intervals_use_the_replicates(study, shards, tmp_path):
     assert out["replicates_used"] == N_REPLICATES and out["replicates_failed"] == []
     replicates = [r for p in shards for r in json.loads(p.read_text())["replicates"]]
     # usual care against itself has unit weights: its pdwis value in a replicate is the resample's mean return
-    first = resample_patients(
-        decisions,
-        patient_groups(decisions),
-        replicate_rng(protocol.seed, 0),
-        decisions["patient_id"].nunique(),
-    )
+    groups = patient_groups(decisions)  # the default fixed regime resamples patients within their folds
+    folds = crossfit_folds(decisions, protocol)
+    strata = np.array([folds[g[0]] for g in groups])
+    first = resample_frame(decisions, draw_patients(groups, replicate_rng(protocol.seed, 0), len(groups), strata))
     mean_return = first.groupby("episode_id", sort=False)["reward"].sum().mean()
     assert replicates[0]["values"]["usual_care"]["pdwis"] == pytest.approx(mean_return, abs=1e-9)
     draws = [r["values"]["usual_care"]["pdwis"] for r in replicates]
@@ -220,7 +220,8 @@ def separated_or_tied(gap: float, n_episodes=300) -> tuple[pd.DataFrame, Protoco
     frame = tiny_decisions(n_episodes, seed=4)
     rng = np.random.default_rng(9)
     frame["reward"] = gap * (frame["action"] == "hold") + rng.normal(size=len(frame))
-    protocol = Protocol.model_validate({**tiny_protocol_dict(), "evaluation": {"m_out_of_n": True}})
+    evaluation = {"m_out_of_n": True, "bootstrap_regime": "refit"}
+    protocol = Protocol.model_validate({**tiny_protocol_dict(), "evaluation": evaluation})
     return frame, protocol
 
 

@@ -72,6 +72,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     spec = protocol.evaluation
     good, failed = collect_replicates(shards, spec.replicates)
     size = shared_resample_size(shards)
+    regime = shared_regime(shards, spec.bootstrap_regime)
     scale = math.sqrt(size["m"] / size["n"]) if size["n"] else 1.0
     values = point_values(point)
     reps = [r["values"] for r in good]
@@ -103,6 +104,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     return {
         "level": spec.interval_level,
         "method": method,
+        "regime": regime,
         "replicates": spec.replicates,
         "replicates_used": len(good),
         "replicates_failed": [{"replicate": r["replicate"], "error": r["error"]} for r in failed],
@@ -135,6 +137,17 @@ def shared_resample_size(shards: list[dict]) -> dict:
     if len(sizes) != 1:
         raise UserInputError("bootstrap shards used different resample sizes; rerun every bootstrap shard.")
     return dict(sizes.pop())
+
+
+def shared_regime(shards: list[dict], expected: str) -> str:
+    """What the shards' replicates did with the learned regime (``fixed`` or ``refit``); all must match the protocol."""
+    found = {s.get("regime") for s in shards}
+    if found != {expected}:
+        raise UserInputError(
+            f"bootstrap shards were computed with bootstrap_regime {sorted(map(str, found))}, the protocol says "
+            f"{expected!r}; rerun every bootstrap shard."
+        )
+    return expected
 
 
 def disagreements(value_intervals: dict) -> list[dict]:
@@ -197,7 +210,8 @@ def merge_intervals(values: dict, intervals: dict | None) -> dict:
     summary = None
     if intervals is not None:
         summary = {
-            k: intervals[k] for k in ("level", "method", "replicates", "replicates_used", "resample", "disagreements")
+            k: intervals[k]
+            for k in ("level", "method", "regime", "replicates", "replicates_used", "resample", "disagreements")
         }
         low = {(r["name"], est): e["low_ess"] for r in values["regimes"] for est, e in r["estimates"].items()}
         summary["contrasts"] = [

@@ -4,7 +4,8 @@ The protocol's ``sweeps.axes`` list alternative values of a fixed set of setting
 (:data:`regimewise.protocol.SWEEP_AXES`); every combination is one specification
 (:func:`regimewise.protocol.sweep_specifications`, ``spec_00`` being the pre-specified analysis). For one
 specification :func:`run_specification` refits usual care and the regime on the records, evaluates the learned
-regime and usual care, and bootstraps patients (``sweeps.replicates`` resamples, every model refitted) for a
+regime and usual care, and bootstraps patients (``sweeps.replicates`` resamples, refitted as
+``evaluation.bootstrap_regime`` says: the specification's regime held fixed, or learned again) for a
 percentile interval of the learned-minus-usual-care contrast and for percentile-bootstrap intervals of its
 confounding-sensitivity bounds at the sweep's Γ values (:mod:`regimewise.sensitivity.analysis`). :func:`combine_sweep`
 sorts the specifications by their point contrast, the display of a specification curve (Simonsohn, Simmons &
@@ -28,6 +29,7 @@ import pandas as pd
 
 from regimewise.bootstrap.intervals import interval
 from regimewise.bootstrap.replicates import (
+    held_regime,
     learn_and_evaluate,
     patient_groups,
     run_replicate,
@@ -79,9 +81,10 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
     """Point contrast, bootstrap intervals and confounding bounds of one specification of the protocol's sweep."""
     spec = find_specification(protocol, spec_id)
     p = analysis_protocol(spec, protocol)
-    values, curve = learn_and_evaluate(decisions, p)
+    held = held_regime(decisions, p)  # None when the replicates learn the regime again
+    values, curve = learn_and_evaluate(decisions, p, held=held)
     groups = patient_groups(decisions)
-    replicates = [_replicate(decisions, groups, p, spec.index, r) for r in range(protocol.sweeps.replicates)]
+    replicates = [_replicate(decisions, groups, p, spec.index, r, held) for r in range(protocol.sweeps.replicates)]
     good = [r for r in replicates if "contrast" in r]
     level = p.evaluation.interval_level
     point = contrasts(point_values(values))
@@ -117,12 +120,12 @@ def run_specification(decisions: pd.DataFrame, protocol: Protocol, spec_id: str)
     }
 
 
-def _replicate(decisions, groups, protocol: Protocol, spec_index: int, replicate: int) -> dict:
+def _replicate(decisions, groups, protocol: Protocol, spec_index: int, replicate: int, held=None) -> dict:
     """One patient-bootstrap replicate of a specification (:func:`regimewise.bootstrap.replicates.run_replicate` with
-    the
-    specification's own seed stream): its contrasts and bounds curve, or why it failed."""
+    the specification's own seed stream and, with ``bootstrap_regime: fixed``, its regime ``held`` fixed): its
+    contrasts and bounds curve, or why it failed."""
     rng = sweep_rng(protocol.seed, spec_index, replicate)
-    out = run_replicate(decisions, groups, protocol, replicate, len(groups), rng=rng)
+    out = run_replicate(decisions, groups, protocol, replicate, len(groups), rng=rng, held=held)
     if "error" in out:
         return out
     return {"replicate": replicate, "contrast": contrasts(out["values"]), "sensitivity": out["sensitivity"]}

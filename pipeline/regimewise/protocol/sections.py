@@ -279,7 +279,16 @@ class EvaluationSpec(Strict):
         "regime's action is rare in the records; 0 = plain least squares",
     )
     replicates: Annotated[WholeNumber, Field(ge=0, le=100_000)] = Field(
-        200, description="bootstrap replicates (patients resampled, all models refitted); 0 = no intervals"
+        200, description="bootstrap replicates (patients resampled, the evaluation's models refitted); 0 = no intervals"
+    )
+    bootstrap_regime: Literal["fixed", "refit"] = Field(
+        "fixed",
+        description="fixed: every replicate keeps the regime learned from the records (each patient copy scored "
+        "by its original fold's regime, patients resampled within their cross-fitting folds) and refits usual care "
+        "and the outcome models: intervals for the value of the regime actually learned, the target the report "
+        "states; refit: every replicate learns the regime again, so its intervals mix in the variability of "
+        "learning, and a regime learned from a resample (duplicated patients) is typically worse than the one "
+        "learned from the records, which pulls the replicates below the estimate",
     )
     shards: Annotated[WholeNumber, Field(ge=1, le=1000)] = Field(
         4, description="bootstrap replicates are split into this many separate workflow jobs"
@@ -316,6 +325,12 @@ class EvaluationSpec(Strict):
             raise ValueError("evaluation.estimators lists an estimator twice")
         if self.replicates and self.shards > self.replicates:
             raise ValueError(f"evaluation.shards ({self.shards}) exceeds evaluation.replicates ({self.replicates})")
+        if self.m_out_of_n and self.bootstrap_regime == "fixed":
+            raise ValueError(
+                "evaluation.m_out_of_n resamples for the non-smooth learning of the regime; with "
+                "bootstrap_regime: fixed nothing is learned in the replicates: set bootstrap_regime: refit or "
+                "m_out_of_n: false"
+            )
         return self
 
 
@@ -421,7 +436,7 @@ class SweepSpec(Strict):
         Field(min_length=1),
     ] = Field(description="setting -> values to try; every combination is one specification (one workflow job)")
     replicates: Annotated[WholeNumber, Field(ge=2, le=10_000)] = Field(
-        50, description="patient-bootstrap replicates per specification (every model refitted in each)"
+        50, description="patient-bootstrap replicates per specification (refitted as evaluation.bootstrap_regime says)"
     )
     gammas: Annotated[
         list[Annotated[float, Field(ge=1.0, le=50.0), FINITE, NOT_BOOLEAN]], Field(min_length=1, max_length=10)

@@ -183,8 +183,8 @@ def survival_intervals(point: dict, replicates: list[dict], protocol: Protocol) 
     """Percentile-bootstrap limits (the project's quantile rule) of each strategy's survival, risk difference,
     RMST and RMST difference at the table times, from the replicates' :func:`survival_values`.
 
-    lifelines' own interval assumes integer weights, so the patient bootstrap (every model refitted, a patient's
-    clones kept together) gives the intervals.
+    lifelines' own interval assumes integer weights, so the patient bootstrap (models refitted as the evaluation's
+    replicates are, a patient's clones kept together) gives the intervals.
     """
     level = protocol.evaluation.interval_level
     probabilities = [(1 - level) / 2, (1 + level) / 2]

@@ -18,7 +18,7 @@ import pandas as pd
 from threadpoolctl import threadpool_limits
 
 from regimewise.bootstrap.intervals import combine, merge_intervals
-from regimewise.bootstrap.replicates import run_shard
+from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
 from regimewise.cautions import RECOMMENDATION_CAUTION
 from regimewise.core.features import QFeatures, StateScaler, action_codes
@@ -250,14 +250,24 @@ def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
 
 
 # ---------------------------------------------------------------------------------------------- bootstrap
-def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None):
+def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None, table=None):
     """Run one shard's bootstrap replicates (wildcard ``shard``), one BLAS thread per job; with a survival
-    section, each replicate also estimates every strategy's survival."""
+    section, each replicate also estimates every strategy's survival. With ``evaluation.bootstrap_regime: fixed``
+    the replicates hold the regime stage's cross-fitted regime (``table``) fixed; without ``table`` it is learned
+    again here from the records (the same numbers, at the cost of one more learning)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
+    held = None
+    if table is not None and p.evaluation.bootstrap_regime == "fixed":
+        recommendations = read_parquet(table)
+        held = HeldRegime(
+            column_codes(recommendations, "evaluated", p.action_labels),
+            recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float),
+            crossfit_folds(frame, p),
+        )
     with threadpool_limits(limits=1):
-        out = run_shard(frame, p, int(shard), episodes=outcomes)
+        out = run_shard(frame, p, int(shard), episodes=outcomes, held=held)
     write_json(replicates, out)
     log.info("bootstrap shard %s: %d replicates", shard, len(out["replicates"]))
 
@@ -293,7 +303,8 @@ def headline_contrast(intervals: dict, p, regime: str = "learned") -> dict | Non
 # ---------------------------------------------------------------------------------------------- survival
 def survival_stage(protocol, decisions, episodes, proba, table, shards, survival):
     """Survival of every strategy by clone–censor–weight, with diagnostics and bootstrap intervals from the
-    shards (whose replicates refit usual care, the dropout model and the regime)."""
+    shards (whose replicates refit usual care and the dropout model, and hold the regime fixed or learn it again as
+    ``evaluation.bootstrap_regime`` says)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
