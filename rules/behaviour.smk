@@ -1,7 +1,7 @@
 # ---- behaviour: the usual-care model, its probabilities and diagnostics ---------------------------------
 rule behaviour:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
     output:
         proba=results("behaviour/behaviour_proba.parquet"),

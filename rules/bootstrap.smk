@@ -1,7 +1,7 @@
 # ---- bootstrap: replicates in shards (separate jobs, one thread each), then combined into intervals ------
 rule bootstrap_shard:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         episodes=results("validate/episodes.parquet"),
         table=results("regime/recommendations.parquet"),
@@ -27,7 +27,7 @@ rule bootstrap_shard:
 
 rule bootstrap:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         values=results("evaluate/values.json"),
         shards=bootstrap_shard_files(),
     output:

@@ -1,7 +1,7 @@
 # ---- describe: cohort table, balance before and after weighting, overlap by decision point ---------------
 rule describe:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         episodes=results("validate/episodes.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),

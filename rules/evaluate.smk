@@ -1,7 +1,7 @@
 # ---- evaluate: off-policy values of the learned regime, usual care and fixed strategies -----------------
 rule evaluate:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),

@@ -1,7 +1,7 @@
 # ---- regime: constrained fitted-Q iteration --------------------------------------------------------------
 rule regime:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:

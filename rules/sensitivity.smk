@@ -1,7 +1,7 @@
 # ---- sensitivity: bounds under unmeasured confounding, tipping point, E-values ---------------------------
 rule sensitivity:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),

@@ -1,7 +1,7 @@
 # ---- survival: clone, censor at deviation, weight; curves, contrasts and bootstrap intervals ------------
 rule survival:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         episodes=results("validate/episodes.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),

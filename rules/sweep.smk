@@ -1,7 +1,7 @@
 # ---- sweep: the contrast under alternative analysis choices, one job per specification, then sorted ------
 rule sweep_spec:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
     output:
         result=results("sweep/specs/{spec}.json"),
@@ -25,7 +25,7 @@ rule sweep_spec:
 
 rule sweep:
     input:
-        protocol=SETTINGS.protocol,
+        protocol=SETTINGS.protocol_input,
         specs=sweep_spec_files(),
     output:
         sweep=results("sweep/sweep.json"),

@@ -162,7 +162,6 @@ def _run_workflow(protocol: Path, args) -> int:
     require_file(pf.decisions_path, "decisions")
     if pf.episodes_path is not None:
         require_file(pf.episodes_path, "episodes")
-    _refuse_braces(pf)
     out = output_folder(args.out or f"results/{pf.protocol.study.run_name}", "--out")
     workflow_log = out / "logs" / "workflow.log"
     output_folder(workflow_log.parent, "the logs folder")
@@ -196,17 +195,6 @@ def _run_workflow(protocol: Path, args) -> int:
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
-
-
-def _refuse_braces(pf) -> None:
-    """Snakemake reads ``{name}`` in an input path as a wildcard (doubled braces are not an escape there), so the
-    protocol and the records it names must live in folders without braces (the results folder may have them)."""
-    for what, path in (("protocol", pf.path), ("decisions", pf.decisions_path), ("episodes", pf.episodes_path)):
-        if path is not None and ("{" in str(path) or "}" in str(path)):
-            raise UserInputError(
-                f"the {what} file's path contains {{ or }}, which the workflow engine reads as a wildcard; move "
-                "the protocol and records to a folder whose name has no braces"
-            )
 
 
 def output_folder(path, option: str) -> Path:

@@ -9,6 +9,8 @@ closed-form standard error of a mean, and the issue's reliability floor max(30, 
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -16,7 +18,7 @@ from support.tiny import REPOSITORY
 
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
-from regimewise.errors import UserInputError
+from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.values import (
     LoggedDecisions,
@@ -98,14 +100,39 @@ def test_an_unfittable_model_based_estimate_is_null_only_when_not_strict(setting
     thin = decisions[~decisions["episode_id"].isin(episodes_kept)].reset_index(drop=True)
     thin_proba = proba[~decisions["episode_id"].isin(episodes_kept).to_numpy()]
     recommended = np.zeros(len(thin), dtype=np.int64)
-    with pytest.raises(Exception, match="never occurs"):
+    with pytest.raises(UserInputError, match="never occurs") as err:
         evaluate_all(thin, thin_proba, recommended, protocol)
+    # the message names the action by the protocol's label, not by its code (1)
+    assert "action 'step_down'" in str(err.value) and not re.search(r"action (code )?1\b", str(err.value))
     out = evaluate_all(thin, thin_proba, recommended, protocol, strict=False)
     usual = next(r for r in out["regimes"] if r["name"] == "usual_care")["estimates"]
     assert usual["fqe"]["value"] is None and usual["wdr"]["value"] is None and usual["dr"]["value"] is None
     assert usual["pdwis"]["value"] == pytest.approx(
         thin.groupby("episode_id", sort=False)["reward"].sum().mean(), abs=1e-9
     )
+
+
+def test_the_regime_stage_names_an_action_missing_at_a_step_by_its_label(setting):
+    decisions, _, protocol, _ = setting
+    missing = (decisions["step"] == 2) & (decisions["action"] == "step_down")
+    thin = decisions[~decisions["episode_id"].isin(decisions.loc[missing, "episode_id"])].reset_index(drop=True)
+    with pytest.warns(StatisticalWarning, match="no decisions with") as caught:
+        learn_regime(thin, protocol)
+    message = " ".join(str(w.message) for w in caught if "no decisions with" in str(w.message))
+    assert "step 2 action 'step_down'" in message and not re.search(r"action (code )?1\b", message), message
+
+
+def test_a_zero_usual_care_probability_of_the_taken_action_is_named_by_its_label(setting):
+    decisions, proba, protocol, _ = setting
+    row = int(np.flatnonzero(decisions["action"].to_numpy() == "add_agent")[0])
+    broken = proba.copy()
+    broken[row, 3] = 0.0
+    broken[row] /= broken[row].sum()
+    recommended = np.zeros(len(decisions), dtype=np.int64)
+    with pytest.raises(UserInputError, match="is 0") as err:
+        evaluate_all(decisions, broken, recommended, protocol)
+    message = str(err.value)
+    assert "taken action 'add_agent'" in message and not re.search(r"action (code )?3\b", message), message
 
 
 def test_the_evaluation_models_take_their_own_ridge_penalty_even_when_learning_chooses_it_by_cv(setting):

@@ -6,6 +6,7 @@ follow from those definitions, and exact policy evaluation by backward induction
 """
 
 import json
+import re
 import warnings
 
 import numpy as np
@@ -278,6 +279,18 @@ def test_no_positive_weight_gives_nan_with_a_warning():
 def test_bad_input_is_refused_with_a_clear_message(change, message):
     with pytest.raises(UserInputError, match=message):
         evaluate_off_policy(**{**HAND, **change}, horizon=2)
+
+
+def test_a_taken_action_usual_care_cannot_take_is_named_by_its_label():
+    # row 3 takes action code 1, which usual care gives probability 0 there
+    behaviour = HAND["behaviour_proba"].copy()
+    behaviour[3] = [1.0, 0.0]
+    with pytest.raises(UserInputError, match="is 0") as err:
+        evaluate_off_policy(**{**HAND, "behaviour_proba": behaviour}, horizon=2, action_labels=("hold", "step_up"))
+    message = str(err.value)
+    assert "taken action 'step_up'" in message and not re.search(r"action (code )?1\b", message), message
+    with pytest.raises(UserInputError, match="taken action code 1 is 0"):  # without labels: the code, said so
+        importance_weights(**{**HAND, "behaviour_proba": behaviour}, horizon=2)
 
 
 def test_regime_outside_usual_care_support_is_flagged():

@@ -6,6 +6,7 @@ Sources of truth: exact backward induction on a small Markov decision process wr
 LinearRegression / Ridge for the regression step with continuous features.
 """
 
+import re
 import warnings
 
 import numpy as np
@@ -18,6 +19,7 @@ from regimewise.core.arrays import next_row_index
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.regime.fqi import FittedQIteration, QLearningSettings
+from regimewise.regime.qmodels import evaluate_policies, policy_average
 
 MDP = sm.make_mdp()
 GRID_STATE = np.tile(np.arange(sm.N_STATES), sm.HORIZON)  # every (step, state) pair once
@@ -210,14 +212,20 @@ def test_fitted_q_evaluation_matches_sklearn_ridge_for_a_fixed_regime(alpha):
     assert model.value_estimate(x0, np.eye(2)[pi0]) == pytest.approx(q0[np.arange(len(x0)), pi0].mean(), abs=1e-8)
 
 
-def test_action_missing_at_a_step_is_never_recommended(log):
-    # an action without rows at a step has no Q there: marked, warned about, never chosen
+@pytest.fixture(scope="module")
+def without_action(log):
+    """The log without the episodes that take action 2 at step 1."""
     drop = (log["step"] == 1) & (log["action"] == 2)
     keep_episodes = np.unique(log["episode"][~np.isin(log["episode"], log["episode"][drop])])
-    rows = np.isin(log["episode"], keep_episodes)
-    sub = {k: v[rows] for k, v in log.items()}
+    sub = {k: v[np.isin(log["episode"], keep_episodes)] for k, v in log.items()}
     sub["episode"] = np.searchsorted(keep_episodes, sub["episode"])
-    with pytest.warns(StatisticalWarning, match="step 1 action 2"):
+    return sub
+
+
+def test_action_missing_at_a_step_is_never_recommended(without_action):
+    # an action without rows at a step has no Q there: marked, warned about, never chosen
+    sub = without_action
+    with pytest.warns(StatisticalWarning, match="step 1 action code 2"):
         model = fit_fqi(sub, support_threshold=0.0)
     assert not model.fitted_actions_[1, 2] and model.fitted_actions_.sum() == sm.HORIZON * sm.N_ACTIONS - 1
     q = model.q_values(GRID_X, GRID_STEP)
@@ -226,7 +234,50 @@ def test_action_missing_at_a_step_is_never_recommended(log):
     assert not np.any(model.recommend(GRID_X, GRID_STEP, favour_missing)[GRID_STEP == 1] == 2)
     with pytest.raises(UserInputError, match="never occurs"):
         FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON).fit(
-            sub["X"], sub["step"], sub["action"], sub["reward"], sub["episode"], np.full((rows.sum(), 3), 1 / 3)
+            sub["X"], sub["step"], sub["action"], sub["reward"], sub["episode"], np.full((len(sub["step"]), 3), 1 / 3)
+        )
+
+
+LABELS = ("hold", "step_up", "add_agent")  # made-up labels of the small MDP's three action codes
+
+
+def _names_the_label_only(message):
+    """The message names action code 2 by its label 'add_agent', never by the bare code."""
+    assert "action 'add_agent'" in message, message
+    assert not re.search(r"action (code )?2\b", message), message
+
+
+def test_messages_name_the_missing_action_by_its_label(without_action):
+    sub = without_action
+    table = (sub["X"], sub["step"], sub["action"], sub["reward"], sub["episode"])
+    uniform = np.full((len(sub["step"]), 3), 1 / 3)
+    settings = QLearningSettings(support_threshold=0.0)
+    with pytest.warns(StatisticalWarning, match="no decisions with") as caught:
+        FittedQIteration(sm.N_ACTIONS, sm.HORIZON, settings, action_labels=LABELS).fit(*table, uniform)
+    _names_the_label_only(" ".join(str(w.message) for w in caught))
+    avoid = np.tile([0.5, 0.5, 0.0], (len(sub["step"]), 1))  # a regime that never takes the missing action
+    with pytest.warns(StatisticalWarning, match="no decisions with") as caught:
+        FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, action_labels=LABELS).fit(*table, avoid)
+    _names_the_label_only(" ".join(str(w.message) for w in caught))
+    with pytest.raises(UserInputError, match="never occurs") as err:
+        FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, action_labels=LABELS).fit(*table, uniform)
+    _names_the_label_only(str(err.value))
+    (batched,) = evaluate_policies(
+        *table, [uniform], horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=1.0, alpha=0.0, action_labels=LABELS
+    )
+    assert isinstance(batched, UserInputError)
+    _names_the_label_only(str(batched))
+    q = np.array([[1.0, 2.0, np.nan]])
+    with pytest.raises(UserInputError, match="never occurs") as err:
+        policy_average(q, np.array([[0.5, 0.0, 0.5]]), LABELS)
+    _names_the_label_only(str(err.value))
+    assert policy_average(q, np.array([[0.5, 0.5, 0.0]]), LABELS)[0] == 1.5  # by hand: .5·1 + .5·2
+
+
+def test_action_labels_must_match_the_actions(log):
+    with pytest.raises(UserInputError, match="action_labels has 2 labels for 3 actions"):
+        FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, action_labels=LABELS[:2]).fit(
+            log["X"], log["step"], log["action"], log["reward"], log["episode"], log["behaviour_proba"]
         )
 
 

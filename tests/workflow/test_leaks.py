@@ -4,11 +4,13 @@ A small invented cohort (the demo simulator, 200 episodes) gets one identifier a
 an extra numeric or text column, in a header, in a file name, in the protocol's free text and in a line YAML
 cannot parse. Each is refused by ``regimewise check`` (in-process, fast); one goes through the real workflow.
 Then every file under the results folder and everything printed are searched for the planted text. One full run
-of the clean cohort into a folder named with ``: ``, braces and ``=`` shows that any folder name works.
+of the clean cohort, with the protocol and records in folders and files named with ``: ``, braces and ``=``, into a
+results folder named so, shows that any such name works.
 """
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
 from pathlib import Path
@@ -136,8 +138,19 @@ def test_planted_identifier_through_the_workflow_and_a_clean_run_into_an_odd_fol
     assert refused.returncode == 1 and "full date" in refused.stderr, refused.stderr
     assert _hits("19540314", tmp_path / "refused", refused.stdout, refused.stderr) == []
     assert not (tmp_path / "refused" / "validate").exists() or not any((tmp_path / "refused" / "validate").iterdir())
-    # The clean cohort runs to the end into a folder whose name Snakemake's --config parsing would misread.
+    # The clean cohort runs to the end from, and into, folders whose names Snakemake's --config parsing or its
+    # wildcards would misread: the protocol, the records' folder and the records' names hold ": ", braces and "=".
+    study = cohort / "study: {s} a=b"
+    (study / "data {d}: e").mkdir(parents=True)
+    for table in ("decisions", "episodes"):
+        (study / "data {d}: e" / f"{table} {{v}}.csv").write_bytes((cohort / "data" / f"{table}.csv").read_bytes())
+    protocol = _protocol(study, "data {d}: e/decisions {v}.csv", "data {d}: e/episodes {v}.csv")
+    protocol = protocol.rename(study / "protocol {p}: q.yaml")
     out = tmp_path / "out: {x} a=b"
-    done = subprocess.run([*CLI, "run", _protocol(cohort), "--out", out], capture_output=True, text=True, check=False)
+    done = subprocess.run([*CLI, "run", protocol, "--out", out], capture_output=True, text=True, check=False)
     assert done.returncode == 0, done.stderr
     assert (out / "report" / "report.html").is_file() and (out / "report" / "summary.json").is_file()
+    validation = json.loads((out / "validate" / "validation.json").read_text(encoding="utf-8"))
+    assert (validation["decisions_file"], validation["episodes_file"]) == ("decisions {v}.csv", "episodes {v}.csv")
+    provenance = json.loads((out / "report" / "appendix" / "provenance.json").read_text(encoding="utf-8"))
+    assert provenance["protocol"]["file"] == "protocol {p}: q.yaml"

@@ -29,6 +29,17 @@ def as_actions(action, n_actions, n_rows=None):
     return codes
 
 
+def action_name(code, labels=None):
+    """An action as a message names it: ``action 'label'`` with the protocol's labels, else its code.
+
+    Examples
+    --------
+    >>> action_name(1, ("hold", "step_up")), action_name(1)
+    ("action 'step_up'", 'action code 1')
+    """
+    return f"action {str(labels[int(code)])!r}" if labels is not None else f"action code {int(code)}"
+
+
 def as_proba(proba):
     values = np.asarray(proba, dtype=float)
     if values.ndim != 2:

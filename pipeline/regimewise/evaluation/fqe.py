@@ -25,6 +25,8 @@ class FittedQEvaluation(BackwardQModel):
     gamma : float, default 1.0
     alpha : float, default 0.0
         Ridge penalty on the non-intercept coefficients.
+    action_labels : sequence of str, optional
+        The protocol's label of each action code, used to name actions in warnings and errors.
 
     Attributes
     ----------
@@ -48,14 +50,15 @@ class FittedQEvaluation(BackwardQModel):
 
     _proba_name = "target_proba"
 
-    def __init__(self, n_actions, horizon, gamma=1.0, alpha=0.0):
+    def __init__(self, n_actions, horizon, gamma=1.0, alpha=0.0, action_labels=None):
         self.n_actions = n_actions
         self.horizon = horizon
         self.gamma = gamma
         self.alpha = alpha
+        self.action_labels = action_labels
 
     def _next_value(self, q_next, proba_next):
-        return policy_average(q_next, proba_next)
+        return policy_average(q_next, proba_next, self.action_labels)
 
     def fit(self, X, step, action, reward, episode, target_proba):
         """Fit the Q-models of the evaluated regime backwards from the last step; return ``self``.
@@ -73,7 +76,9 @@ class FittedQEvaluation(BackwardQModel):
     def state_values(self, X, step, target_proba):
         """V̂_t(s) = Σ_a π(a|s) Q̂_t(s, a) at each decision."""
         q = self.q_values(X, step)
-        return policy_average(q, check_proba(target_proba, q.shape[0], self.n_actions, "target_proba"))
+        return policy_average(
+            q, check_proba(target_proba, q.shape[0], self.n_actions, "target_proba"), self.action_labels
+        )
 
     def taken_and_target_values(self, X, step, action, target_proba):
         """Q̂ of the taken action and V̂ of the evaluated regime at each decision (doubly robust inputs)."""
@@ -83,7 +88,7 @@ class FittedQEvaluation(BackwardQModel):
             raise UserInputError(
                 f"action has {action.shape[0]} values for {q.shape[0]} decisions; pass one per decision."
             )
-        v = policy_average(q, check_proba(target_proba, q.shape[0], self.n_actions, "target_proba"))
+        v = policy_average(q, check_proba(target_proba, q.shape[0], self.n_actions, "target_proba"), self.action_labels)
         return q[np.arange(q.shape[0]), action], v
 
     def value_estimate(self, X0, target_proba0):

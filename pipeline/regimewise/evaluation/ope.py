@@ -29,6 +29,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from regimewise.core.arrays import (
+    action_name,
     check_finite,
     check_layout,
     check_proba,
@@ -134,7 +135,7 @@ class ImportanceWeights:
         return grid
 
 
-def importance_weights(step, action, reward, episode, behaviour_proba, target_proba, *, horizon):
+def importance_weights(step, action, reward, episode, behaviour_proba, target_proba, *, horizon, action_labels=None):
     """Compute the importance weights every estimator of this module shares.
 
     Parameters
@@ -147,6 +148,8 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
         The evaluated regime's probability of every action at each decision (one-hot if deterministic).
     horizon : int
         Number of decision steps H.
+    action_labels : sequence of str, optional
+        The protocol's label of each action code, used to name actions in errors.
 
     Returns
     -------
@@ -172,7 +175,7 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     target_proba = check_proba(target_proba, n, n_actions, "target_proba")
     rows = np.arange(n)
     taken_b, taken_e = behaviour_proba[rows, action], target_proba[rows, action]
-    _check_positivity(taken_b, action, behaviour_proba, target_proba)
+    _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels)
     shape = (episode[-1] + 1, horizon)
     ratio = np.ones(shape)
     ratio[episode, step] = taken_e / taken_b
@@ -189,13 +192,14 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     )
 
 
-def _check_positivity(taken_b, action, behaviour_proba, target_proba):
+def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels):
     """Refuse a taken action usual care could not take; warn where the regime leaves usual care's support."""
     bad = np.flatnonzero(taken_b <= 0)
     if bad.size:
         raise UserInputError(
-            f"row {bad[0]}: usual care's probability of the taken action {action[bad[0]]} is 0, so its "
-            "importance weight is undefined; fix the usual-care model (e.g. bound probabilities away from 0)."
+            f"row {bad[0]}: usual care's probability of the taken {action_name(action[bad[0]], action_labels)} is "
+            "0, so its importance weight is undefined; fix the usual-care model (e.g. bound probabilities away "
+            "from 0)."
         )
     unseen = int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
     if unseen:
@@ -353,9 +357,22 @@ def weighted_doubly_robust(weights, q_taken, v_target, gamma=1.0):
 
 
 def evaluate_off_policy(
-    step, action, reward, episode, behaviour_proba, target_proba, *, horizon, gamma=1.0, q_taken=None, v_target=None
+    step,
+    action,
+    reward,
+    episode,
+    behaviour_proba,
+    target_proba,
+    *,
+    horizon,
+    gamma=1.0,
+    q_taken=None,
+    v_target=None,
+    action_labels=None,
 ):
     """Every estimator of this module on one decision table, sharing one weight computation.
+
+    ``action_labels`` (one per action code) name the actions in errors.
 
     Returns
     -------
@@ -369,7 +386,9 @@ def evaluate_off_policy(
     >>> out["WIS"].value, out["WIS"].ess
     (2.0, 2.0)
     """
-    weights = importance_weights(step, action, reward, episode, behaviour_proba, target_proba, horizon=horizon)
+    weights = importance_weights(
+        step, action, reward, episode, behaviour_proba, target_proba, horizon=horizon, action_labels=action_labels
+    )
     results = []
     for name, estimate in COMPUTE.items():
         if ESTIMATORS[name].family == "weights":

@@ -66,6 +66,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray) ->
         n_actions=len(protocol.actions),
         gamma=protocol.discount,
         alpha=protocol.evaluation.fqe_ridge_alpha,
+        action_labels=protocol.action_labels,
     )
     out = []
     taken = logged.action[rows]
@@ -74,7 +75,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray) ->
             out.append(q)
             continue
         try:
-            out.append((q[np.arange(len(taken)), taken], policy_average(q, t[rows])))
+            out.append((q[np.arange(len(taken)), taken], policy_average(q, t[rows], protocol.action_labels)))
         except UserInputError as err:
             out.append(err)
     return out

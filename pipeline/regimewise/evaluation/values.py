@@ -56,6 +56,10 @@ class LoggedDecisions:
             behaviour_proba=behaviour_proba,
         )
 
+    def weighting_table(self) -> tuple:
+        """step, action, reward, episode and usual care's probabilities: the table every weighting starts from."""
+        return self.step, self.action, self.reward, self.episode, self.behaviour_proba
+
     @property
     def n_episodes(self) -> int:
         return int(self.episode.max()) + 1
@@ -131,16 +135,13 @@ def evaluate_regime(
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
     results = evaluate_off_policy(
-        logged.step,
-        logged.action,
-        logged.reward,
-        logged.episode,
-        logged.behaviour_proba,
+        *logged.weighting_table(),
         target,
         horizon=protocol.horizon,
         gamma=protocol.discount,
         q_taken=q_taken,
         v_target=v_target,
+        action_labels=protocol.action_labels,
     )
     for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
         if e.needs_q_model:
@@ -248,6 +249,7 @@ def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: 
         horizon=protocol.horizon,
         gamma=protocol.discount,
         alpha=protocol.evaluation.fqe_ridge_alpha,
+        action_labels=protocol.action_labels,
     ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)
     q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
     first = logged.step == 0
@@ -265,13 +267,13 @@ def minimum_reliable_ess(n_episodes: int, spec: EvaluationSpec | None = None) ->
     return float(max(spec.minimum_ess, spec.minimum_ess_fraction * n_episodes))
 
 
-def weight_histograms(logged: LoggedDecisions, target: np.ndarray, horizon: int) -> dict:
+def weight_histograms(logged: LoggedDecisions, target: np.ndarray, protocol: Protocol) -> dict:
     """Per decision point, how many episodes carry a zero cumulative weight and a histogram of log10 of the rest.
 
     Weights below or above the fixed edges are counted in the first or last bin.
     """
     weights = importance_weights(
-        logged.step, logged.action, logged.reward, logged.episode, logged.behaviour_proba, target, horizon=horizon
+        *logged.weighting_table(), target, horizon=protocol.horizon, action_labels=protocol.action_labels
     )
     edges = np.asarray(WEIGHT_HISTOGRAM_EDGES)
     by_step = []
@@ -339,7 +341,7 @@ def evaluate_all(
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
         "regimes": regimes,
         "contrasts": contrasts,
-        "learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol.horizon),
+        "learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol),
         **(
             {}
             if side_by_side is None

@@ -114,6 +114,8 @@ class FittedQIteration(BackwardQModel):
     settings : QLearningSettings, optional
         Discount, support threshold, Q-model, learning mode, penalties and pessimism (defaults if None).
     random_state : int or None
+    action_labels : sequence of str, optional
+        The protocol's label of each action code, used to name actions in warnings and errors.
 
     Attributes
     ----------
@@ -151,11 +153,12 @@ class FittedQIteration(BackwardQModel):
     _proba_name = "behaviour_proba"
     _fitted_attribute = "models_"
 
-    def __init__(self, n_actions, horizon, settings=None, random_state=None):
+    def __init__(self, n_actions, horizon, settings=None, random_state=None, action_labels=None):
         self.n_actions = n_actions
         self.horizon = horizon
         self.settings = QLearningSettings() if settings is None else settings
         self.random_state = random_state
+        self.action_labels = action_labels
 
     # the shared backward-induction base class reads these three by name
     gamma = property(lambda self: self.settings.gamma)

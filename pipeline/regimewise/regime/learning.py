@@ -92,7 +92,11 @@ def fit_q_learning(
         oof_error=oof_error,
     )
     return FittedQIteration(
-        len(protocol.actions), protocol.horizon, settings, random_state=stream_ints(protocol.seed, "regime")[0]
+        len(protocol.actions),
+        protocol.horizon,
+        settings,
+        random_state=stream_ints(protocol.seed, "regime")[0],
+        action_labels=protocol.action_labels,
     ).fit(
         features.transform(decisions),
         decisions["step"].to_numpy(dtype=np.int64),

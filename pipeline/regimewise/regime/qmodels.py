@@ -12,6 +12,7 @@ from sklearn.ensemble import HistGradientBoostingRegressor
 from sklearn.exceptions import NotFittedError
 
 from regimewise.core.arrays import (
+    action_name,
     check_codes,
     check_finite,
     check_layout,
@@ -91,13 +92,15 @@ def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions
     return coef
 
 
-def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha):
+def evaluate_policies(
+    X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha, action_labels=None
+):
     """Fitted-Q evaluation of several regimes on the same decisions at once (Le, Voloshin & Yue 2019).
 
     The backward induction of :class:`regimewise.evaluation.fqe.FittedQEvaluation` run for every regime of
     ``targets`` (a list of (n, K) probabilities) together: each step's and action's least-squares problem has the
     same design for every regime, so it is solved once with one right-hand side per regime. Rows sorted by
-    episode then step, as everywhere.
+    episode then step, as everywhere. ``action_labels`` name the actions in the errors.
 
     Returns
     -------
@@ -120,7 +123,9 @@ def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_a
         for r in range(n_regimes):
             if cont.size and failed[r] is None:
                 try:
-                    target[cont, r] = target[cont, r] + gamma * policy_average(q[r, later], targets[r][later])
+                    target[cont, r] = target[cont, r] + gamma * policy_average(
+                        q[r, later], targets[r][later], action_labels
+                    )
                 except UserInputError as err:
                     failed[r] = err
         for a in range(n_actions):
@@ -132,15 +137,18 @@ def evaluate_policies(X, step, action, reward, episode, targets, *, horizon, n_a
     return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
-def policy_average(q, proba):
-    """Σ_a π(a|s) Q(s, a) per row; actions the policy never takes are skipped even where Q is undefined."""
+def policy_average(q, proba, action_labels=None):
+    """Σ_a π(a|s) Q(s, a) per row; actions the policy never takes are skipped even where Q is undefined.
+
+    ``action_labels`` (one per column) name the action in the error; without them it is named by its code.
+    """
     undefined = (proba > 0) & np.isnan(q)
     if undefined.any():
         row, a = np.argwhere(undefined)[0]
         raise UserInputError(
-            f"the evaluated regime gives action {a} probability {proba[row, a]:.3g} at a decision where that "
-            "action never occurs in the data at that step, so its value cannot be fitted; restrict the regime "
-            "to actions seen at every step."
+            f"the evaluated regime gives {action_name(a, action_labels)} probability {proba[row, a]:.3g} at a "
+            "decision where that action never occurs in the data at that step, so its value cannot be fitted; "
+            "restrict the regime to actions seen at every step."
         )
     return np.where(proba > 0, proba * np.nan_to_num(q), 0.0).sum(axis=1)
 
@@ -153,6 +161,10 @@ class BackwardQModel:
     def _check_params(self):
         if not (isinstance(self.n_actions, (int, np.integer)) and self.n_actions >= 1):
             raise UserInputError(f"n_actions must be a positive integer, got {self.n_actions!r}.")
+        if self.action_labels is not None and len(self.action_labels) != self.n_actions:
+            raise UserInputError(
+                f"action_labels has {len(self.action_labels)} labels for {self.n_actions} actions; give one per action."
+            )
         if not (isinstance(self.horizon, (int, np.integer)) and self.horizon >= 1):
             raise UserInputError(f"horizon must be a positive integer, got {self.horizon!r}.")
         if not 0.0 <= self.gamma <= 1.0:
@@ -202,7 +214,7 @@ class BackwardQModel:
         seen = np.bincount(step, minlength=self.horizon) > 0
         missing = np.argwhere(seen[:, None] & ~self.fitted_actions_)
         if missing.size:
-            cells = ", ".join(f"step {t} action {a}" for t, a in missing)
+            cells = ", ".join(f"step {t} {action_name(a, self.action_labels)}" for t, a in missing)
             warnings.warn(
                 f"no decisions with {cells}: their Q is undefined there and they are never recommended.",
                 StatisticalWarning,

@@ -45,6 +45,7 @@ from regimewise.sensitivity.analysis import regime_curve, sensitivity_target, su
 from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
 from regimewise.usual_care.fitting import fit_usual_care
+from regimewise.workflow.settings import real_input
 
 
 def report_stage(
@@ -355,7 +356,8 @@ STAGES = {
 def run_snakemake_job(smk) -> None:
     """Run the stage named like the Snakemake rule, logging to the rule's log file.
 
-    A :class:`UserInputError` is written to the log and to standard error as one line starting with
+    Inputs named by a stand-in (a path with braces, :mod:`regimewise.workflow.settings`) reach the stage as the real
+    path. A :class:`UserInputError` is written to the log and to standard error as one line starting with
     ``regimewise error:`` and the job exits with status 1 (Snakemake then removes its partial outputs).
     """
     log_path = Path(smk.log[0])
@@ -364,7 +366,7 @@ def run_snakemake_job(smk) -> None:
     handler.setFormatter(logging.Formatter("%(levelname)s %(message)s"))
     log.addHandler(handler)
     log.setLevel(logging.INFO)
-    inputs = {k: v for k, v in smk.input.items()}
+    inputs = {k: real_input(v) for k, v in smk.input.items()}
     outputs = {k: v for k, v in smk.output.items()}
     named_logs = {k: v for k, v in smk.log.items()}
     wildcards = {k: v for k, v in smk.wildcards.items()}
