@@ -213,6 +213,7 @@ def fit_print_width(fig, limit: float = PRINT_WIDTH_INCHES) -> None:
 
     Text keeps its size in points; the axes give up the width instead, so a browser or printer never has to scale
     the figure (and its text) down to fit the page."""
+    limit -= 2 * plt.rcParams["savefig.pad_inches"]  # bbox_inches="tight" pads both sides when saving
     for _ in range(5):
         width = fig.get_tightbbox(fig.canvas.get_renderer()).width
         if width <= limit:
@@ -273,6 +274,18 @@ def actions_by_step_figure(labels, by_step) -> str:
     )
 
 
+def interval_point(ax, at, estimate, mark, vertical, label=None):
+    """One estimate with its interval at position ``at``: ``estimate`` = (value, low, high), ``mark`` = (marker,
+    colour, weak). Weak (not supported) estimates get a hollow marker and a dashed interval."""
+    value, low, high = estimate
+    marker, colour, weak = mark
+    if low is not None:
+        lines = ax.vlines if vertical else ax.hlines
+        lines(at, low, high, color=colour, linewidth=1.2, linestyles="dashed" if weak else "solid")
+    xy = ([at], [value]) if vertical else ([value], [at])
+    ax.plot(*xy, marker, color=colour, markerfacecolor="white" if weak else colour, label=label)
+
+
 def usual_care_contrasts(values: dict) -> list[dict]:
     """Every regime minus usual care by every estimator: the evaluation's contrasts (learned regime, strategies)
     and, from the bootstrap, the fixed strategies' (with their intervals where replicates exist)."""
@@ -310,19 +323,9 @@ def contrast_figure(values: dict, estimators) -> str:
         labelled = False
         for c in (c for c in drawn if c["estimator"] == est):
             y = len(rows) - 1 - rows.index(c["regime"]) + (j - (len(estimators) - 1) / 2) * (0.7 / len(estimators))
-            weak = bool(c["low_ess"])
-            if c.get("low") is not None:
-                ax.hlines(
-                    y, c["low"], c["high"], color=f"C{j}", linewidth=1.2, linestyles="dashed" if weak else "solid"
-                )
-            ax.plot(
-                [c["difference"]],
-                [y],
-                ESTIMATORS[est].marker,
-                color=f"C{j}",
-                markerfacecolor="white" if weak else f"C{j}",
-                label=None if labelled else est,
-            )
+            estimate = (c["difference"], c.get("low"), c.get("high"))
+            mark = (ESTIMATORS[est].marker, f"C{j}", bool(c["low_ess"]))
+            interval_point(ax, y, estimate, mark, vertical=False, label=None if labelled else est)
             labelled = True
     ax.axvline(0.0, color="0.3", linewidth=0.8)
     ax.set_yticks(range(len(rows)), [labels[name] for name in reversed(rows)])
@@ -333,6 +336,46 @@ def contrast_figure(values: dict, estimators) -> str:
         fig,
         "Each strategy minus usual care by each estimator with its bootstrap interval; hollow markers and dashed "
         "intervals rest on too small an effective sample; contrasts that are not identified are not drawn.",
+    )
+
+
+FAMILY_WORDS = {
+    "partial_adoption": "partial adoption",
+    "override_gain": "switch only when it matters",
+    "incremental_odds": "raised odds",
+}
+
+
+def tradeoff_figure(rows: list[dict]) -> str | None:
+    """Trade-off of the protocol's strategies: difference from usual care (with its interval) against the share of
+    reviews whose action changes, one line per family in grid order.
+
+    ``rows`` is summary.json's ``strategies.table``. Supported strategies are filled, model projections hollow;
+    strategies that are not identified are not drawn (the table says why). None when nothing can be drawn.
+    """
+    drawn = [r for r in rows if r["difference"] is not None and r["verdict"] != "not identified"]
+    if not drawn:
+        return None
+    apply_style()
+    fig, ax = plt.subplots(figsize=(6.2, 3.4))
+    markers = {"partial_adoption": "o", "override_gain": "s", "incremental_odds": "D"}
+    for k, family in enumerate(FAMILY_WORDS):
+        points = sorted((r for r in drawn if r["family"] == family), key=lambda r: r["share_changed"])
+        if not points:
+            continue
+        x = [100 * r["share_changed"] for r in points]
+        ax.plot(x, [r["difference"] for r in points], color=f"C{k}", linewidth=1.0, label=FAMILY_WORDS[family])
+        for xi, r in zip(x, points):
+            mark = (markers[family], f"C{k}", r["verdict"] != "supported")
+            interval_point(ax, xi, (r["difference"], r["low"], r["high"]), mark, vertical=True)
+    ax.axhline(0.0, color="0.3", linewidth=0.8)
+    ax.set_xlabel("reviews whose action changes (%)")
+    ax.set_ylabel("difference from usual care")
+    ax.legend(frameon=False, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    return svg_text(
+        fig,
+        "Each strategy of the protocol's grid: its difference from usual care with its bootstrap interval against "
+        "the share of reviews whose action it changes; hollow markers rest on too small an effective sample.",
     )
 
 

@@ -22,6 +22,7 @@ from regimewise.report.figures import (
     sensitivity_figure,
     survival_figure,
     sweep_figure,
+    tradeoff_figure,
     usual_care_contrasts,
     weight_histogram_figure,
 )
@@ -78,6 +79,7 @@ def render_html(p, parts, prov, headline) -> str:
         actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
         value_figure=contrast_figure(parts["values"], p.evaluation.estimators),
         unplotted=unplotted(parts["values"], p.evaluation.estimators),
+        tradeoff_figure=None if headline["strategies"] is None else tradeoff_figure(headline["strategies"]["table"]),
         weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
         cohort=parts.get("cohort"),
         usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
