@@ -68,6 +68,7 @@ __all__ = [
     "column_name_category",
     "find_identifiers",
     "header_category",
+    "is_age_column",
     "looks_like_identifier",
     "mask",
     "scrub",
@@ -172,8 +173,21 @@ def column_name_category(name: str) -> str | None:
     return None
 
 
+# Words that, beside "age" in a column name, say the column is derived from an age rather than an age itself
+# (age_sq, age_squared, age_log, age_x_bp, age_centred, age_z): such a column is not read as an age by its name.
+DERIVED_AGE_WORDS = {
+    "sq", "sqr", "squared", "cube", "cubed", "pow", "power", "poly", "spline", "log", "ln", "sqrt", "exp", "inv",
+    "z", "zscore", "std", "standardised", "standardized", "scaled", "centred", "centered", "ctr", "x", "by",
+    "times", "product", "interaction", "ratio", "rank", "diff", "delta",
+}  # fmt: skip
+
+
 def is_age_column(name: str) -> bool:
-    return "age" in _tokens(name)
+    """Whether a column name says it holds ages: the word ``age`` (``age``, ``age_at_index``, ``AgeYears``) and no
+    word of :data:`DERIVED_AGE_WORDS` (``age_sq``, ``age_x_bp`` are derived terms, read by content or by their
+    declaration instead). ``stage`` and ``usage_days`` do not say age (the word, not the letters)."""
+    tokens = set(_tokens(name))
+    return "age" in tokens and not tokens & DERIVED_AGE_WORDS
 
 
 def suggests_postcode(name: str) -> bool:
@@ -183,18 +197,20 @@ def suggests_postcode(name: str) -> bool:
 
 
 # ---------------------------------------------------------------------------------------------- values
-def value_hits(column: str, values: pd.Series, role: str = OTHER) -> list[IdentifierHit]:
+def value_hits(column: str, values: pd.Series, role: str = OTHER, age: bool | None = None) -> list[IdentifierHit]:
     """Identifier-like cells of one column, by content whatever its type (one hit per row, sorted by row).
 
     ``role`` is :data:`ID` for the episode and patient id columns, :data:`DECLARED` for the other columns the
     protocol declares (states and contract columns, read by their declared meaning) and :data:`OTHER` for the
-    rest, which are also read by the content rules of :mod:`regimewise.data.numbers`.
+    rest, which are also read by the content rules of :mod:`regimewise.data.numbers`. ``age`` says whether the
+    column holds ages (a state declared as an age); None reads it from the column's name (:func:`is_age_column`).
     """
     if pd.api.types.is_datetime64_any_dtype(values):
         rows = np.flatnonzero(values.notna().to_numpy())
         return [IdentifierHit(column, int(r), "full date", 10) for r in rows]
     found: dict[int, str] = {}
-    for mask_, category in _number_rules(column, values, role):
+    age = is_age_column(column) if age is None else age
+    for mask_, category in _number_rules(column, values, role, age):
         for r in np.flatnonzero(mask_):
             found.setdefault(int(r), category)
     if pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values):
@@ -212,10 +228,10 @@ def _hashable(value):
     return value if isinstance(value, (str, int, float, bool)) or value is None else repr(value)
 
 
-def _number_rules(column: str, values: pd.Series, role: str) -> list[tuple[np.ndarray, str]]:
+def _number_rules(column: str, values: pd.Series, role: str, age: bool) -> list[tuple[np.ndarray, str]]:
     numbers, whole = whole_numbers(values)
     rules = universal_hits(numbers, whole)
-    if role != ID and is_age_column(column):
+    if role != ID and age:
         grouped = values.astype("string").str.strip().eq(AGE_GROUP_LABEL).fillna(False).to_numpy(dtype=bool)
         rules.append((named_age_hits(numbers) & ~grouped, "age over 89"))
     elif role == OTHER:
@@ -282,14 +298,15 @@ def header_category(name: str) -> str | None:
     return column_name_category(name) or identifier_category(name, names=False)
 
 
-def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=()) -> list[IdentifierHit]:
+def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=(), ages=()) -> list[IdentifierHit]:
     """Every identifier-like column header and value in a table, skipping acknowledged columns.
 
     Header hits come first (one per column, ``row`` None); a refused column's values are not scanned. Columns in
     ``id_columns`` are read as id columns, those in ``declared`` by their declared meaning, the rest also by the
-    content rules (see :func:`value_hits`).
+    content rules (see :func:`value_hits`). Columns in ``ages`` (states declared as ages, whatever the column's
+    name) hold ages; any other column holds ages when its name says so (:func:`is_age_column`).
     """
-    acknowledged, id_columns, declared = set(acknowledged), set(id_columns), set(declared)
+    acknowledged, id_columns, declared, ages = set(acknowledged), set(id_columns), set(declared), set(ages)
     hits = []
     for column in frame.columns:
         name = str(column)
@@ -300,5 +317,5 @@ def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declar
             hits.append(IdentifierHit(name, None, category))
             continue
         role = ID if name in id_columns else DECLARED if name in declared else OTHER
-        hits += value_hits(name, frame[column], role)
+        hits += value_hits(name, frame[column], role, age=True if name in ages else None)
     return hits

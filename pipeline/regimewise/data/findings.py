@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, create_model
 
-from regimewise.data.deidentify import find_identifiers, mask, shown_value
+from regimewise.data.deidentify import find_identifiers, is_age_column, mask, shown_value
 from regimewise.data.missing import blank_mask
 from regimewise.protocol.loading import ProtocolFile
 
@@ -83,16 +83,19 @@ def decision_rules(pf: ProtocolFile) -> list[FieldRule]:
     rules = [FieldRule(cols.episode_id, "text", fix="every decision needs its episode identifier")]
     if cols.patient_id is not None:
         rules.append(FieldRule(cols.patient_id, "text", fix="every decision needs its patient identifier"))
-    rules += [
-        FieldRule(cols.step, "integer", 0, p.horizon - 1, fix=f"steps are 0, 1, 2, ... below the horizon {p.horizon}"),
-        FieldRule(
-            cols.day,
-            "integer",
-            0,
-            MAX_DAY,
-            fix="day is whole days since the episode's index date, from 0 to 36525 (100 years)",
-        ),
-    ]
+    rules.append(
+        FieldRule(cols.step, "integer", 0, p.horizon - 1, fix=f"steps are 0, 1, 2, ... below the horizon {p.horizon}")
+    )
+    if cols.day is not None:
+        rules.append(
+            FieldRule(
+                cols.day,
+                "integer",
+                0,
+                MAX_DAY,
+                fix="day is whole days since the episode's index date, from 0 to 36525 (100 years)",
+            )
+        )
     for s in p.states:
         low, high = s.plausible_range
         kind = "number" if s.kind == "continuous" else "integer"
@@ -229,7 +232,7 @@ def guard_roles(pf: ProtocolFile) -> tuple[list[str], list[str]]:
     """The id columns and the other declared columns (states and contract columns) of the protocol."""
     cols = pf.protocol.data.columns
     ids = [c for c in (cols.episode_id, cols.patient_id) if c is not None]
-    declared = [cols.step, cols.day, cols.action, cols.reward, cols.followup, cols.event]
+    declared = [c for c in (cols.step, cols.day, cols.action, cols.reward, cols.followup, cols.event) if c]
     declared += [s.source_column for s in pf.protocol.states]
     declared += [f"{s.name}_missing" for s in pf.protocol.states]
     return ids, declared
@@ -245,10 +248,11 @@ def identifier_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> lis
     """Identifier-like column headers and values (Safe Harbor categories); values and headers are never shown."""
     acknowledged = [a.column for a in pf.protocol.data.acknowledged_columns]
     ids, declared = guard_roles(pf)
+    ages = [s.source_column for s in pf.protocol.states if is_age_column(s.name)]  # declared as ages
     source = source_rows(frame)
     position = {str(c): i + 1 for i, c in enumerate(frame.columns)}
     findings = []
-    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared):
+    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared, ages=ages):
         if hit.row is None:
             findings.append(
                 Finding(
@@ -286,8 +290,13 @@ def _identifier_fix(hit, ids, declared) -> str:
         return ID_FIX
     if hit.category == "age over 89":
         fix = "group every age above 89 into the single category '90+' (or cap at 89 with the study's approval)"
-    else:
-        fix = "remove or replace identifiers in the extract before analysis"
+        if hit.column in declared:
+            return fix + "; if the state holds no ages, name it for what it holds (e.g. age_sq for a square)"
+        return fix + (
+            "; if the column holds no ages (a derived term such as a square), declare it as a state, drop it, or "
+            "list it in data.acknowledged_columns with a justification"
+        )
+    fix = "remove or replace identifiers in the extract before analysis"
     if hit.column not in declared:
         fix += "; if the column is not an identifier, list it in data.acknowledged_columns with a justification"
     return fix

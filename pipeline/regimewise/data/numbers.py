@@ -7,8 +7,9 @@ practice for a guard, no source):
   account number; a ten-digit phone number is one of them; an international number has at most 15 digits), and
   a whole number of eight digits that reads as a date (YYYYMMDD, DDMMYYYY or MMDDYYYY, year 1900-2099, month
   1-12, day 1-31; seven digits for DDMMYYYY and MMDDYYYY, whose leading zero a number loses);
-- a column whose name says age (``age``, ``age_at_index``): when at least :data:`AGE_LIKE_SHARE` of its values
-  lie in 0-130 (it holds ages, not a derived ``age_sq``), every value above 89;
+- a column whose name says age (``age``, ``age_at_index``; not a derived ``age_sq``, see
+  :func:`regimewise.data.deidentify.is_age_column`) or that a state declared as an age reads: when at least
+  :data:`AGE_LIKE_SHARE` of its values lie in 0-130 (it holds ages, not a derived term), every value above 89;
 - an undeclared column (not a state, not a data-contract column), by content only:
   - **ages**: all values whole numbers from 0 to :data:`AGE_CONTENT_MAX`: every value above 89;
   - **postcodes**: at least half of the values five-digit whole numbers, at least half of those not multiples of

@@ -27,7 +27,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
     cols = pf.protocol.data.columns
     findings = []
     source = source_rows(frame)
-    ep, step, day = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64), frame[cols.day]
+    ep, step = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64)
+    day = step if cols.day is None else frame[cols.day]  # the decision index never goes backwards
     in_order = _in_episode_step_order(ep.to_numpy(), step.to_numpy())  # the usual case: no sort needed
     order = np.arange(len(frame)) if in_order else np.lexsort((step.to_numpy(), ep.to_numpy()))
     ep_s, step_s, day_s = ep.to_numpy()[order], step.to_numpy()[order], day.to_numpy(dtype=float)[order]
@@ -131,7 +132,7 @@ def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
         "episode_id": frame[cols.episode_id].astype(str),
         "patient_id": (frame[cols.patient_id] if cols.patient_id else frame[cols.episode_id]).astype(str),
         "step": pd.to_numeric(frame[cols.step]).astype(np.int64),
-        "day": pd.to_numeric(frame[cols.day]).astype(np.int64),
+        "day": pd.to_numeric(frame[cols.step if cols.day is None else cols.day]).astype(np.int64),
     }
     for s in p.states:
         columns[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
@@ -256,7 +257,8 @@ def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
 
 
 def _episode_consistency(file, frame, cols, last) -> list[Finding]:
-    """The same patient in both tables, and censored follow-up reaching the last decision."""
+    """The same patient in both tables, and censored follow-up reaching the last decision (when the records have
+    real days; the decision index standing in for the day says nothing about follow-up)."""
     source = source_rows(frame)
     joined = frame.assign(_id=frame[cols.episode_id].astype(str)).join(last, on="_id")
     present = joined["last_day"].notna().to_numpy()
@@ -273,7 +275,7 @@ def _episode_consistency(file, frame, cols, last) -> list[Finding]:
             "patient id differs from the decisions table's",
             "give the episode the same patient id in both tables",
         )
-    if cols.followup in frame.columns and cols.event in frame.columns:
+    if cols.day is not None and cols.followup in frame.columns and cols.event in frame.columns:
         follow = pd.to_numeric(joined[cols.followup]).to_numpy(dtype=float)
         censored = pd.to_numeric(joined[cols.event]).to_numpy(dtype=float) == 0
         last_day = joined["last_day"].to_numpy(dtype=float)

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import re
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import pandas as pd
@@ -62,6 +62,8 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     raw = read_table(path, "decisions", p.data.delimiter)
     episodes_raw = None if pf.episodes_path is None else read_table(pf.episodes_path, "episodes", p.data.delimiter)
     name = Path(path).name
+    pf, defaulted = default_columns(pf, raw)
+    p = pf.protocol
     findings = identifier_findings(name, raw, pf) + long_text_findings(name, raw)
     if episodes_raw is not None:
         ep_name = pf.episodes_path.name
@@ -69,7 +71,11 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     if findings:
         return findings, None
     frame, missing_actions = apply_missing_policy(pf, raw)
-    findings = policy_findings(pf, name, frame, missing_actions, len(raw)) or check_decisions(pf, frame, name)
+    findings = (
+        survival_day_findings(pf, name, defaulted)
+        or policy_findings(pf, name, frame, missing_actions, len(raw))
+        or check_decisions(pf, frame, name)
+    )
     if findings:
         return findings, None
     decisions = clean_decisions(pf, frame)
@@ -84,7 +90,51 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
             return findings, None
     episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
     summary = summarise(pf, decisions, raw, missing_actions, len(dropped))
+    summary["defaulted_columns"] = defaulted
     return [], ValidationResult(decisions=decisions, episodes=episodes, summary=summary)
+
+
+DEFAULTED = {
+    "patient_id": "no patient_id column: each episode is its own patient (resampled and cross-fitted alone)",
+    "day": "no day column: the decision index (step 0, 1, 2, ...) is used as the day",
+}
+
+
+def default_columns(pf: ProtocolFile, raw: pd.DataFrame) -> tuple[ProtocolFile, dict[str, str]]:
+    """The protocol with ``patient_id`` and ``day`` set to null when the records have no such column and the
+    protocol did not name one (or wrote null), and what each default means (for validation.json and the report).
+
+    A column the protocol names explicitly stays required: a misspelt mapping is a missing column, not a default.
+    """
+    cols = pf.protocol.data.columns
+    present = set(map(str, raw.columns))
+    defaulted = {
+        key: DEFAULTED[key]
+        for key in DEFAULTED
+        if getattr(cols, key) is None or (key not in cols.model_fields_set and getattr(cols, key) not in present)
+    }
+    if not defaulted:
+        return pf, {}
+    columns = cols.model_copy(update=dict.fromkeys(defaulted))
+    data = pf.protocol.data.model_copy(update={"columns": columns})
+    return replace(pf, protocol=pf.protocol.model_copy(update={"data": data})), defaulted
+
+
+def survival_day_findings(pf: ProtocolFile, file: str, defaulted: dict) -> list[Finding]:
+    """A survival section needs real days: refuse it when the decision index stands in for the day."""
+    if pf.protocol.survival is None or "day" not in defaulted:
+        return []
+    return [
+        Finding(
+            file=file,
+            row=None,
+            column="day",
+            value=None,
+            rule="missing_column",
+            message="the survival section needs real days since the index date, but the file has no day column",
+            fix="add the day column (or name it in data.columns.day), or remove the survival section",
+        )
+    ]
 
 
 def policy_findings(pf: ProtocolFile, file: str, frame: pd.DataFrame, actions: dict, rows_read: int) -> list[Finding]:

@@ -104,6 +104,11 @@ class Protocol(Strict):
                 "survival needs the episodes table with follow-up and event columns; set data.episodes or remove "
                 "survival"
             )
+        if self.survival is not None and self.data.columns.day is None:
+            raise ValueError(
+                "survival needs real days since the index date, but data.columns.day is null; name the day column "
+                "or remove survival"
+            )
         return self
 
     @model_validator(mode="after")

@@ -10,6 +10,7 @@ ever evaluated as code.
 
 from __future__ import annotations
 
+import re
 from typing import Annotated, Literal
 
 from pydantic import Field, model_validator
@@ -45,10 +46,16 @@ class ColumnMap(Strict):
 
     episode_id: ColumnName = "episode_id"
     patient_id: ColumnName | None = Field(
-        "patient_id", description="resampling cluster; null if the file has none (each episode is its own patient)"
+        "patient_id",
+        description="resampling cluster; null, or left out when the file has no patient_id column: each episode is "
+        "its own patient (validation.json and the report say so)",
     )
     step: ColumnName = "step"
-    day: ColumnName = "day"
+    day: ColumnName | None = Field(
+        "day",
+        description="whole days since the episode's index date; null, or left out when the file has no day column: "
+        "the decision index (step) stands in (validation.json and the report say so; survival needs real days)",
+    )
     action: ColumnName = "action"
     reward: ColumnName = "reward"
     followup: ColumnName = Field("followup_days", description="episodes table: days from index to event or censoring")
@@ -86,11 +93,41 @@ class DataSpec(Strict):
     )
 
 
+STATE_NAME = re.compile(r"^[a-z][a-z0-9_]{0,39}$")
+
+
+def state_name_for(column: str) -> str:
+    """The state name a column name maps to: lower case, every run of other characters one ``_`` (``L`` ->
+    ``l``, ``SBP (mmHg)`` -> ``sbp_mmhg``, ``2nd_line`` -> ``s_2nd_line``)."""
+    name = re.sub(r"[^a-z0-9]+", "_", column.lower()).strip("_")
+    return name if not name or name[:1].isalpha() else f"s_{name}"
+
+
 class StateVariable(Strict):
-    """One state variable observed at every decision point."""
+    """One state variable observed at every decision point.
+
+    A ``name`` that is not lower-case snake case (``L``, ``SBP_mmHg``) is taken as the column's name when no
+    ``column`` is given: the state reads that column and is called :func:`state_name_for` of it everywhere else
+    in the protocol (clinical rules, data.missing, the report).
+    """
 
     name: Identifier
-    column: ColumnName | None = Field(None, description="column in the decisions file; defaults to name")
+    column: ColumnName | None = Field(
+        None,
+        description="column in the decisions file; defaults to name (a name such as L or SBP_mmHg maps to l, sbp_mmhg)",
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _map_column_name(cls, data):
+        if isinstance(data, dict) and data.get("column") is None:
+            name = data.get("name")
+            if isinstance(name, str) and 0 < len(name) <= 128 and not STATE_NAME.match(name):
+                mapped = state_name_for(name)
+                if STATE_NAME.match(mapped):
+                    return {**data, "name": mapped, "column": name}
+        return data
+
     label: ShortText
     kind: Literal["continuous", "integer", "binary"]
     unit: Annotated[FreeText, Field(max_length=40)] = ""
