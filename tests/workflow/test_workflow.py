@@ -67,7 +67,7 @@ def test_snakemake_lint_passes():
     assert result.returncode == 0, result.stdout + result.stderr
 
 
-def test_dry_run_lists_every_stage(study, tmp_path):
+def _dry_run(protocol, folder):
     result = subprocess.run(
         [
             sys.executable,
@@ -77,9 +77,9 @@ def test_dry_run_lists_every_stage(study, tmp_path):
             "--snakefile",
             REPOSITORY / "Snakefile",
             "--directory",
-            tmp_path,
+            folder,
             "--config",
-            f"protocol={study}",
+            f"protocol={protocol}",
             "results=.",
             "logs=logs",
             "benchmarks=benchmarks",
@@ -89,8 +89,24 @@ def test_dry_run_lists_every_stage(study, tmp_path):
         check=False,
     )
     assert result.returncode == 0, result.stdout + result.stderr
-    for rule in ("validate", "behaviour", "regime", "evaluate", "report"):
-        assert rule in result.stdout
+    return result.stdout
+
+
+def test_dry_run_lists_every_stage(study, tmp_path):
+    stdout = _dry_run(study, tmp_path)
+    for rule in ("validate", "behaviour", "regime", "evaluate", "bootstrap_shard", "report"):
+        assert rule in stdout
+
+
+def test_no_shard_jobs_without_replicates(study, tmp_path):
+    raw = yaml.safe_load(study.read_text(encoding="utf-8"))
+    raw["evaluation"]["replicates"] = 0
+    protocol = study.parent / "no_replicates.yaml"
+    protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    stdout = _dry_run(protocol, tmp_path)
+    assert "bootstrap_shard" not in stdout
+    for rule in ("bootstrap", "sensitivity", "survival", "report"):
+        assert f"rule {rule}:" in stdout or f"localrule {rule}:" in stdout, stdout
 
 
 def test_check_command_on_the_demo():
