@@ -142,7 +142,7 @@ def _records_with(study: Path, tmp_path: Path, change) -> Path:
 
 
 BAD_PROTOCOLS = {
-    "unknown key": (lambda p: p.update(sneaky=True), "sneaky: unknown setting"),
+    "unknown key": (lambda p: p.update(sneaky=True), "sneaky: unknown key 'sneaky'"),
     "threshold out of range": (lambda p: p["constraints"].update(support_threshold=2), "support_threshold"),
     "duplicate action": (lambda p: p["actions"].append(dict(p["actions"][0])), "declared twice"),
     "state declared twice": (lambda p: p["states"].append(dict(p["states"][0])), "declared twice"),
