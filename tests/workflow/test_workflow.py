@@ -7,6 +7,7 @@ simulator) and take about a minute on 2 cores.
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -24,6 +25,17 @@ def test_run_writes_report_and_summary(two_runs, study):
     (out, _), (result, _) = two_runs
     assert result.returncode == 0, result.stderr
     assert "Research use only" in result.stdout
+    # progress: one line per job Snakemake reports finished, counted in order, then the warning count (issue 15)
+    steps = [re.match(r"^\[(\d+)/(\d+)\] (.+) done \(\d+ s\)$", line) for line in result.stdout.splitlines()]
+    steps = [m for m in steps if m]
+    assert [int(m[1]) for m in steps] == list(range(1, len(steps) + 1)) and len(steps) == int(steps[0][2])
+    assert [m[3] for m in steps if "shard" in m[3]] != [] and all(
+        m[3].endswith(" of 2") for m in steps if "shard" in m[3]
+    )
+    assert re.search(
+        r"^(no statistical warnings|\d+ statistical warnings? .* listed in .*workflow\.log)$", result.stdout, re.M
+    )
+    assert result.stdout.index("] report done") < result.stdout.index("report:  ")
     summary = json.loads((out / "report" / "summary.json").read_text(encoding="utf-8"))
     assert summary["cohort"]["episodes"] == 400
     assert set(summary["values"]) == {
