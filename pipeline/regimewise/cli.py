@@ -1,8 +1,10 @@
 """Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema``.
 
 ``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
-folder as its working directory; ``check`` validates a protocol and its records and writes only the error list
-(``--errors``, default logs/validation_errors.csv) when they fail.
+folder as its working directory, printing one line per finished job from Snakemake's own log stream
+(:mod:`regimewise.workflow.progress`); ``check`` validates a protocol and its records and writes only the error
+list (``validation_errors.csv`` in ``--errors``, default the protocol's folder) when they fail, removing an old
+one when they pass; ``schema`` prints the protocol's JSON Schema (or writes ``--out``).
 
 A run recovers by itself from a hard kill: it holds an operating-system lock on ``.snakemake/regimewise.lock``
 in the results folder (inherited by its Snakemake process, so it stays held while any part of the run lives);
@@ -17,9 +19,11 @@ the traceback or the full workflow log.
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import subprocess
 import sys
+import time
 import traceback
 from contextlib import contextmanager
 from pathlib import Path
@@ -32,7 +36,8 @@ from regimewise.data.validate import report_lines, validate_records, write_error
 from regimewise.demo.files import write_cohort
 from regimewise.errors import OS_REASONS, DataValidationError, UserInputError, os_reason
 from regimewise.io import require_file, write_text
-from regimewise.protocol.loading import export_schema, load_protocol
+from regimewise.protocol.loading import load_protocol, schema_text
+from regimewise.workflow.progress import Progress, warning_line
 from regimewise.workflow.stages import ERROR_PREFIX
 
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
@@ -58,41 +63,74 @@ RUN_LOCK = Path(".snakemake") / "regimewise.lock"
 SNAKEMAKE_LOCKS = Path(".snakemake") / "locks"
 
 
+PURPOSE = (
+    "regimewise: learn an adaptive treatment strategy (a dynamic treatment regime) from routine-care records "
+    "under a written research protocol, evaluate it off-policy against usual care, test its sensitivity to "
+    "hidden confounding and write an audit-ready report."
+)
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="regimewise", description=__doc__.splitlines()[0])
+    """The command line; every help has a purpose line, the research-use caution and each option's default."""
+    debug = argparse.ArgumentParser(add_help=False)
+    debug.add_argument(
+        "--debug",
+        action="store_true",
+        default=argparse.SUPPRESS,
+        help="show tracebacks and the full workflow log (before or after the command; default: off)",
+    )
+    parser = argparse.ArgumentParser(prog="regimewise", description=PURPOSE, epilog=TERMINAL_CAUTION)
     parser.add_argument("--version", action="version", version=f"regimewise {__version__}")
-    parser.add_argument("--debug", action="store_true", help="show tracebacks and the full workflow log")
-    commands = parser.add_subparsers(dest="command", required=True)
+    parser.add_argument("--debug", action="store_true", help="show tracebacks and the full workflow log (default: off)")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    demo = commands.add_parser("demo", help="run the whole analysis on the invented demo cohort")
-    _add_run_options(demo, default_out="results/demo")
+    def command(name, purpose):
+        return commands.add_parser(name, help=purpose, description=purpose, epilog=TERMINAL_CAUTION, parents=[debug])
 
-    run = commands.add_parser("run", help="run the whole analysis for a protocol")
-    run.add_argument("protocol", help="protocol YAML file")
-    _add_run_options(run, default_out=None)
-
-    check = commands.add_parser("check", help="validate a protocol and its records; on failure write the error list")
-    check.add_argument("protocol", help="protocol YAML file")
-    check.add_argument("--errors", default="logs/validation_errors.csv", help="where the error list goes on failure")
-
-    simulate = commands.add_parser("simulate", help="write an invented cohort from the demo scenario's simulator")
-    simulate.add_argument("--out", required=True, help="folder for decisions.csv, episodes.csv, truth.json")
-    simulate.add_argument("--episodes", type=int, default=3000)
-    simulate.add_argument("--seed", type=int, default=20261201)
-    simulate.add_argument("--strength", type=float, default=1.0, help="hidden-confounding strength (0 = none)")
-
-    schema = commands.add_parser("schema", help="write the protocol's JSON Schema")
-    schema.add_argument("--out", default="config/protocol.schema.json")
+    demo = command("demo", "Run the whole analysis of the demo protocol on the invented Harbourline cohort.")
+    _add_run_options(demo, "results/demo")
+    run = command("run", "Run the whole analysis for your protocol: validation, models, evaluation, report.")
+    run.add_argument("protocol", help="protocol YAML file (required)")
+    _add_run_options(run, "results/<run_name of the protocol>")
+    check = command(
+        "check", "Validate a protocol and its records without running the analysis; on failure write the error list."
+    )
+    check.add_argument("protocol", help="protocol YAML file (required)")
+    check.add_argument(
+        "--errors",
+        metavar="FOLDER",
+        help=f"folder for the error list {ERROR_LIST} (default: the protocol's folder); a passing check removes an "
+        "old list there",
+    )
+    simulate = command("simulate", "Write an invented cohort from the demo scenario's simulator (demo use only).")
+    simulate.add_argument("--out", required=True, help="folder for decisions.csv, episodes.csv, truth.json (required)")
+    simulate.add_argument("--episodes", type=int, default=3000, help="episodes to simulate (default: %(default)s)")
+    simulate.add_argument("--seed", type=int, default=20261201, help="random seed (default: %(default)s)")
+    simulate.add_argument(
+        "--strength", type=float, default=1.0, help="hidden-confounding strength, 0 = none (default: %(default)s)"
+    )
+    simulate.add_argument(
+        "--force", action="store_true", help="write into a folder that is not empty (default: refuse)"
+    )
+    schema = command("schema", "Print the protocol's JSON Schema, or write it to a file.")
+    schema.add_argument("--out", metavar="FILE", help="file to write (default: standard output)")
     return parser
 
 
 def _add_run_options(parser, default_out):
-    parser.add_argument("--out", default=default_out, help="results folder (default: results/<run_name>)")
-    parser.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default 2)")
+    parser.add_argument("--out", help=f"results folder (default: {default_out})")
+    parser.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default: %(default)s)")
+    parser.add_argument(
+        "--quiet",
+        action="store_true",
+        help="print no line per finished stage (the caution, the warning count and the report paths stay; "
+        "default: off)",
+    )
 
 
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
+    args.debug = getattr(args, "debug", False)
     try:
         return COMMANDS[args.command](args)
     except UserInputError as err:
@@ -104,6 +142,7 @@ def main(argv=None) -> int:
 
 # ---------------------------------------------------------------------------------------------- commands
 def cmd_demo(args) -> int:
+    args.out = args.out or "results/demo"
     return _run_workflow(DEMO_PROTOCOL, args)
 
 
@@ -112,17 +151,19 @@ def cmd_run(args) -> int:
 
 
 def cmd_check(args) -> int:
-
     pf = load_protocol(args.protocol)
+    errors = Path(args.errors) if args.errors else pf.path.parent
+    report = errors / ERROR_LIST
     try:
         summary = validate_records(pf).summary
     except DataValidationError as err:
         try:
-            write_error_report(args.errors, err.errors)
+            write_error_report(report, err.errors)
         except UserInputError as unwritten:
             raise UserInputError(f"{err}; the error list was not written ({unwritten}); fix --errors") from None
-        _print_error_report(Path(args.errors))
+        _print_error_report(report)
         raise
+    _remove_stale(report)
     print(
         f"{pf.path.name}: protocol valid; {summary['rows_kept']} decisions in {summary['episodes']} episodes "
         f"({summary['patients']} patients) pass validation."
@@ -130,10 +171,29 @@ def cmd_check(args) -> int:
     return 0
 
 
-def cmd_simulate(args) -> int:
+ERROR_LIST = "validation_errors.csv"
 
+
+def _remove_stale(report: Path) -> None:
+    """Remove an error list an earlier failing check left (a passing check must not leave one behind)."""
+    if report.is_file():
+        try:
+            report.unlink()
+        except OSError as err:
+            raise UserInputError(f"the old error list {report} cannot be removed: {os_reason(err)}") from None
+        print(f"removed the old error list {report}")
+
+
+def cmd_simulate(args) -> int:
     if args.episodes < 1:
-        raise UserInputError("--episodes must be at least 1")
+        raise UserInputError(f"--episodes must be at least 1 (got {args.episodes})")
+    if not math.isfinite(args.strength) or args.strength < 0:
+        raise UserInputError(f"--strength must be a finite number of at least 0 (got {args.strength:g}); 0 = none")
+    folder = Path(args.out)
+    if folder.is_dir() and any(folder.iterdir()) and not args.force:
+        raise UserInputError(
+            f"simulate --out {folder} is not empty; choose an empty or new folder, or add --force to overwrite"
+        )
     out = output_folder(args.out, "simulate --out")
     write_cohort(out, n_episodes=args.episodes, seed=args.seed, confounding_strength=args.strength)
     print(f"wrote an invented cohort of {args.episodes} episodes to {args.out} (demo use only)")
@@ -141,8 +201,14 @@ def cmd_simulate(args) -> int:
 
 
 def cmd_schema(args) -> int:
-    export_schema(args.out)
-    print(f"wrote {args.out}")
+    if args.out is None:
+        sys.stdout.write(schema_text())
+        return 0
+    target = Path(args.out)
+    if target.is_dir():
+        raise UserInputError(f"schema --out {target} is a directory; give a file name")
+    write_text(target, schema_text())
+    print(f"wrote {target}", file=sys.stderr)
     return 0
 
 
@@ -181,8 +247,9 @@ def _run_workflow(protocol: Path, args) -> int:
         print(TERMINAL_CAUTION)
         if lock is not None and _left_locked(out):
             _remove_stale_lock([*snakemake, "--unlock", *config], out)
-        finished = _run_logged(command, workflow_log, lock)
-    if finished.returncode != 0:
+        progress = None if args.quiet else Progress(shards=_planned_shards(pf))
+        returncode = _run_logged(command, workflow_log, lock, progress)
+    if returncode != 0:
         _print_error_report(out / "logs" / "validation_errors.csv")
         if args.debug:
             print(workflow_log.read_text(encoding="utf-8"), file=sys.stderr)
@@ -192,9 +259,16 @@ def _run_workflow(protocol: Path, args) -> int:
             or _system_cause(workflow_log)
             or f"the workflow failed; see {workflow_log}"
         )
+    print(warning_line(workflow_log))
     print(f"report:  {out / 'report' / 'report.html'}")
     print(f"summary: {out / 'report' / 'summary.json'}")
     return 0
+
+
+def _planned_shards(pf) -> int:
+    """Bootstrap shard jobs of a whole run (none without replicates)."""
+    evaluation = pf.protocol.evaluation
+    return evaluation.shards if evaluation.replicates else 0
 
 
 def output_folder(path, option: str) -> Path:
@@ -226,21 +300,37 @@ def _write_workflow_config(out: Path, protocol: Path) -> Path:
     return path
 
 
-def _run_logged(command: list[str], workflow_log: Path, lock) -> subprocess.CompletedProcess:
-    """Run Snakemake with its output in the workflow log (a log that cannot be opened is one line, with the cause)."""
+def _run_logged(command: list[str], workflow_log: Path, lock, progress: Progress | None) -> int:
+    """Run Snakemake with its output in the workflow log, printing a line per finished job unless ``progress`` is
+    None (a log that cannot be opened is one line, with the cause); its exit status.
+
+    Snakemake writes the log file itself, as it would without regimewise, so a workflow whose command line was
+    killed still logs in full; this process reads the log as it grows, line by line, for the job events.
+    """
     try:
         handle = open(workflow_log, "w", encoding="utf-8")
     except OSError as err:
         raise UserInputError(f"cannot write the workflow log {workflow_log}: {os_reason(err)}") from None
-    with handle:
-        return subprocess.run(
+    with handle, open(workflow_log, encoding="utf-8", errors="replace") as stream:
+        process = subprocess.Popen(
             command,
             stdout=handle,
             stderr=subprocess.STDOUT,
             env=_workflow_env(),
             pass_fds=() if lock is None else (lock.fileno(),),
-            check=False,
         )
+        partial = ""
+        while True:
+            running = process.poll() is None
+            partial += stream.read()
+            *lines, partial = partial.split("\n")
+            for line in lines if progress is not None else ():
+                shown = progress.feed(line)
+                if shown:
+                    print(shown, flush=True)
+            if not running:
+                return process.returncode
+            time.sleep(0.2)
 
 
 SYSTEM_CAUSES = {

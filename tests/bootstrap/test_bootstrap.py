@@ -172,6 +172,22 @@ def test_combined_intervals_use_the_replicates(study, shards, tmp_path):
     assert contrast["difference"] == pytest.approx(point["learned"]["pdwis"] - point["usual_care"]["pdwis"])
 
 
+def test_without_replicates_the_bootstrap_combines_no_shards(study, tmp_path):
+    """evaluation.replicates: 0 runs no shard job; the combining stage then reports every value without an
+    interval (the point estimates are kept) instead of refusing the empty shard list."""
+    folder, decisions, protocol = study
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    raw["evaluation"]["replicates"] = 0
+    (tmp_path / "protocol.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    values = tmp_path / "values.json"
+    point = point_values_file(decisions, with_evaluation(protocol, replicates=0), values)
+    bootstrap_stage(tmp_path / "protocol.yaml", values, [], tmp_path / "intervals.json")
+    out = json.loads((tmp_path / "intervals.json").read_text())
+    assert (out["replicates"], out["replicates_used"], out["resample"]["n"]) == (0, 0, 0)
+    usual = out["values"]["usual_care"]["pdwis"]
+    assert usual["value"] == pytest.approx(point["usual_care"]["pdwis"]) and usual["low"] is None
+
+
 def point_values_file(decisions, protocol, path):
     """Point estimates on the full records, written like the evaluate stage writes them."""
     learned = learn_regime(decisions, protocol)

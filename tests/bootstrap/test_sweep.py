@@ -44,7 +44,7 @@ def _write(tmp_path, sweeps, **changes):
 
 # ---------------------------------------------------------------------------------------------- protocol
 BAD_SWEEPS = {
-    "unknown axis": ({"axes": {"q_model.colour": ["red"]}}, {}, "sweeps.axes.q_model.colour"),
+    "unknown axis": ({"axes": {"q_model.colour": ["red"]}}, {}, "sweeps.axes: key 'q_model.colour' is not one of"),
     "diagnostics-only setting": (
         {"axes": {"behaviour_model.truncation_percentiles": [[1, 99]]}},
         {},
@@ -56,8 +56,8 @@ BAD_SWEEPS = {
         "sweeps.axes.constraints.support_threshold: value 2 is not allowed",
     ),
     "value of the wrong kind": ({"axes": {"q_model.kind": ["forest"]}}, {}, "sweeps.axes.q_model.kind: value 'forest'"),
-    "empty list": ({"axes": {"constraints.pessimism": []}}, {}, "sweeps.axes.constraints.pessimism: List should have"),
-    "no axes": ({"axes": {}}, {}, "sweeps.axes: Dictionary should have at least 1 item"),
+    "empty list": ({"axes": {"constraints.pessimism": []}}, {}, "pessimism: must have at least 1 item"),
+    "no axes": ({"axes": {}}, {}, "sweeps.axes: must have at least 1 item"),
     "value repeated": ({"axes": {"constraints.support_threshold": [0.1, 0.10]}}, {}, "lists a value twice"),
     "value invalid with the protocol's other settings": (
         {"axes": {"behaviour_model.kind": ["gradient_boosting"]}},

@@ -272,7 +272,7 @@ CELLS = [("decisions", c) for c in tiny_decisions().columns] + [("episodes", c) 
 def test_planted_identifier_never_reaches_results_or_terminal(tmp_path, capsys, table, column):
     protocol = _planted_study(tmp_path / "study", table, column)
     results = tmp_path / "results"
-    assert cli.main(["check", str(protocol), "--errors", str(results / "logs" / "validation_errors.csv")]) == 1
+    assert cli.main(["check", str(protocol), "--errors", str(results / "logs")]) == 1
     outputs = [results / "validate" / n for n in ("decisions.parquet", "episodes.parquet", "validation.json")]
     with pytest.raises(DataValidationError, match=r"\[rule identifier_value\]"):
         validate_stage(str(protocol), *map(str, outputs), errors=str(results / "logs" / "stage_errors.csv"))

@@ -36,12 +36,12 @@ EXTRA_NUMBERS = {
 
 def _check_fails(tmp_path, capsys, decisions=None, episodes=None) -> str:
     protocol = write_tiny(tmp_path / "study", decisions=decisions, episodes=episodes)
-    errors = tmp_path / "logs" / "errors.csv"
+    errors = tmp_path / "logs"
     assert cli.main(["check", str(protocol), "--errors", str(errors)]) == 1
     captured = capsys.readouterr()
     lines = [line for line in captured.err.splitlines() if line.strip()]
     assert len(lines) == 1 and "Traceback" not in captured.err + captured.out, captured.err
-    return lines[0] + "\n" + captured.out + errors.read_text(encoding="utf-8")
+    return lines[0] + "\n" + captured.out + (errors / "validation_errors.csv").read_text(encoding="utf-8")
 
 
 @pytest.mark.parametrize("kind", sorted(EXTRA_NUMBERS))

@@ -35,8 +35,8 @@ def _edit(change):
 
 
 BAD_PROTOCOLS = {
-    "unknown top-level key": (_edit(lambda d: d.update(horizn=3)), "horizn: unknown setting"),
-    "unknown nested key": (_edit(lambda d: d["study"].update(colour="red")), "study.colour: unknown setting"),
+    "unknown top-level key": (_edit(lambda d: d.update(horizn=3)), "horizn: unknown key 'horizn'"),
+    "unknown nested key": (_edit(lambda d: d["study"].update(colour="red")), "study.colour: unknown key 'colour'"),
     "threshold above one": (
         _edit(lambda d: d.update(constraints={"support_threshold": 1.5})),
         "constraints.support_threshold",
@@ -56,7 +56,7 @@ BAD_PROTOCOLS = {
         "low < high",
     ),
     "one action only": (_edit(lambda d: d.update(actions=d["actions"][:1])), "actions"),
-    "missing seed": (_edit(lambda d: d.pop("seed")), "seed: required setting is missing"),
+    "missing seed": (_edit(lambda d: d.pop("seed")), "seed: required key is missing"),
     "bad run name": (_edit(lambda d: d["study"].update(run_name="My Run!")), "study.run_name"),
     "unknown estimator": (_edit(lambda d: d.update(evaluation={"estimators": ["magic"]})), "evaluation.estimators"),
     "state column is a contract column": (

@@ -34,37 +34,37 @@ CASES = {
     "include_step 1": (lambda p: p.update(behaviour_model={"include_step": 1}), ("include_step", "true or false")),
     "rule value nan": (
         lambda p: p.update(constraints={"clinical_rules": [_rule(float("nan"))]}),
-        ("clinical_rules.0.when.0.value", "finite number"),
+        ("clinical_rules[0].when[0].value", "finite number"),
     ),
-    "rule value true": (lambda p: p.update(constraints={"clinical_rules": [_rule(True)]}), ("when.0.value",)),
+    "rule value true": (lambda p: p.update(constraints={"clinical_rules": [_rule(True)]}), ("when[0].value",)),
     "plausible range infinite": (
         lambda p: p["states"][0].update(plausible_range=[float("-inf"), float("inf")]),
-        ("states.0.plausible_range.0", "finite number"),
+        ("states[0].plausible_range[0]", "finite number"),
     ),
     "support threshold nan": (
         lambda p: p.update(constraints={"support_threshold": float("nan")}),
         ("support_threshold", "finite number"),
     ),
     "minimum ess infinite": (lambda p: p.update(evaluation={"minimum_ess": float("inf")}), ("minimum_ess",)),
-    "action label no": (lambda p: p["actions"][0].update(label=False), ("actions.0.label", "put the text in quotes")),
-    "action label 1": (lambda p: p["actions"][1].update(label=1), ("actions.1.label", "quotes")),
+    "action label no": (lambda p: p["actions"][0].update(label=False), ("actions[0].label", "put the text in quotes")),
+    "action label 1": (lambda p: p["actions"][1].update(label=1), ("actions[1].label", "quotes")),
     "misspelt lable": (
         lambda p: p["actions"][0].update(lable=p["actions"][0].pop("label")),
-        ("actions.0.lable", "did you mean 'label'?"),
+        ("actions[0].lable", "did you mean 'label'?"),
     ),
     "e-mail in the title": (
         lambda p: p["study"].update(title="Asked by jane.roe@example.org"),
         ("study.title", "e-mail"),
     ),
     "phone in the question": (lambda p: p["study"].update(question="Call (555) 201-9876"), ("study.question",)),
-    "date in a state label": (lambda p: p["states"][0].update(label="BP on 14 March 1950"), ("states.0.label",)),
+    "date in a state label": (lambda p: p["states"][0].update(label="BP on 14 March 1950"), ("states[0].label",)),
     "ssn in a rule reason": (
         lambda p: p.update(constraints={"clinical_rules": [{**_rule(5.0), "reason": "see 078-05-1120"}]}),
         ("reason", "direct identifier"),
     ),
     "record number in an action description": (
         lambda p: p["actions"][0].update(description="as MRN 4471203 had"),
-        ("actions.0.description",),
+        ("actions[0].description",),
     ),
 }
 

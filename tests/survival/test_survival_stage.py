@@ -87,6 +87,16 @@ def test_intervals_are_the_quantile_rule_of_the_replicates(cohort):
     assert limits == {"low": pytest.approx(low), "high": pytest.approx(high)}
 
 
+def test_without_replicates_no_strategy_gets_an_interval(cohort):
+    """evaluation.replicates: 0 runs no bootstrap shard: every interval is absent (null), never a list of nulls
+    that the report would index."""
+    decisions, episodes, proba, protocol = cohort
+    point = survival_analysis(decisions, episodes, proba, proba.argmax(axis=1), protocol)
+    out = survival_intervals(point, [], protocol)
+    assert out["replicates"] == 0
+    assert all(limits is None for row in out["strategies"].values() for limits in row.values())
+
+
 def test_time_points_beyond_the_horizon_are_refused():
     with pytest.raises(ValueError, match="lies beyond horizon_days"):
         demo_protocol(time_points=[900])

@@ -46,7 +46,7 @@ def test_defect_fails_with_one_line_and_no_output(tmp_path, capsys, name):
     defect = CASES[name]
     protocol = defect.build(tmp_path / "study")
     errors = tmp_path / "logs" / "validation_errors.csv"
-    assert cli.main(["check", str(protocol), "--errors", str(errors)]) == 1
+    assert cli.main(["check", str(protocol), "--errors", str(errors.parent)]) == 1
     captured = capsys.readouterr()
     lines = [line for line in captured.err.splitlines() if line.strip()]
     assert len(lines) == 1, captured.err

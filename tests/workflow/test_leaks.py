@@ -108,7 +108,7 @@ def _hits(planted: str, folder: Path, *printed: str) -> list[str]:
 def test_planted_identifier_is_refused_and_never_written_or_printed(cohort, tmp_path, capsys, planted):
     protocol = _study(cohort, cohort / f"study_{tmp_path.name}", planted)
     results = tmp_path / "results"
-    assert cli.main(["check", str(protocol), "--errors", str(results / "logs" / "validation_errors.csv")]) == 1
+    assert cli.main(["check", str(protocol), "--errors", str(results / "logs")]) == 1
     captured = capsys.readouterr()
     assert "Traceback" not in captured.err + captured.out
     lines = [line for line in captured.err.splitlines() if line.strip()]

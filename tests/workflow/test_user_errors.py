@@ -36,16 +36,15 @@ def _failing_study(tmp_path):
 
 
 # ---------------------------------------------------------------------------------------------- paths
-def test_errors_option_pointing_at_a_directory(tmp_path, capsys):
-    (tmp_path / "errs").mkdir()
+def test_error_list_in_the_way_as_a_directory(tmp_path, capsys):
+    (tmp_path / "errs" / "validation_errors.csv").mkdir(parents=True)
     line = _one_line_failure(capsys, ["check", str(_failing_study(tmp_path)), "--errors", str(tmp_path / "errs")])
     assert "is a directory" in line and "fix --errors" in line
 
 
-def test_errors_option_under_an_existing_file(tmp_path, capsys):
+def test_errors_option_naming_an_existing_file(tmp_path, capsys):
     (tmp_path / "plain").write_text("x", encoding="utf-8")
-    errors = tmp_path / "plain" / "errors.csv"
-    line = _one_line_failure(capsys, ["check", str(_failing_study(tmp_path)), "--errors", str(errors)])
+    line = _one_line_failure(capsys, ["check", str(_failing_study(tmp_path)), "--errors", str(tmp_path / "plain")])
     assert "a part of the path is a file" in line and "fix --errors" in line
 
 
@@ -142,9 +141,9 @@ def test_formula_cells_are_neutralised_in_the_error_list(tmp_path, capsys):
     decisions.loc[1, "action"] = "=HYPERLINK(1)"
     decisions.loc[3, "bp"] = -5.0
     protocol = write_tiny(tmp_path / "study", decisions=decisions)
-    errors = tmp_path / "e.csv"
+    errors = tmp_path / "errors"
     _one_line_failure(capsys, ["check", str(protocol), "--errors", str(errors)])
-    listed = pd.read_csv(errors, dtype=str, keep_default_na=False)
+    listed = pd.read_csv(errors / "validation_errors.csv", dtype=str, keep_default_na=False)
     values = set(listed["value"])
     assert "'=HYPERLINK(1)" in values and "=HYPERLINK(1)" not in values
     assert "-5.0" in values  # a number stays a number

@@ -7,6 +7,7 @@ simulator) and take about a minute on 2 cores.
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -24,6 +25,17 @@ def test_run_writes_report_and_summary(two_runs, study):
     (out, _), (result, _) = two_runs
     assert result.returncode == 0, result.stderr
     assert "Research use only" in result.stdout
+    # progress: one line per job Snakemake reports finished, counted in order, then the warning count (issue 15)
+    steps = [re.match(r"^\[(\d+)/(\d+)\] (.+) done \(\d+ s\)$", line) for line in result.stdout.splitlines()]
+    steps = [m for m in steps if m]
+    assert [int(m[1]) for m in steps] == list(range(1, len(steps) + 1)) and len(steps) == int(steps[0][2])
+    assert [m[3] for m in steps if "shard" in m[3]] != [] and all(
+        m[3].endswith(" of 2") for m in steps if "shard" in m[3]
+    )
+    assert re.search(
+        r"^(no statistical warnings|\d+ statistical warnings? .* listed in .*workflow\.log)$", result.stdout, re.M
+    )
+    assert result.stdout.index("] report done") < result.stdout.index("report:  ")
     summary = json.loads((out / "report" / "summary.json").read_text(encoding="utf-8"))
     assert summary["cohort"]["episodes"] == 400
     assert set(summary["values"]) == {
@@ -67,7 +79,7 @@ def test_snakemake_lint_passes():
     assert result.returncode == 0, result.stdout + result.stderr
 
 
-def test_dry_run_lists_every_stage(study, tmp_path):
+def _dry_run(protocol, folder):
     result = subprocess.run(
         [
             sys.executable,
@@ -77,9 +89,9 @@ def test_dry_run_lists_every_stage(study, tmp_path):
             "--snakefile",
             REPOSITORY / "Snakefile",
             "--directory",
-            tmp_path,
+            folder,
             "--config",
-            f"protocol={study}",
+            f"protocol={protocol}",
             "results=.",
             "logs=logs",
             "benchmarks=benchmarks",
@@ -89,8 +101,24 @@ def test_dry_run_lists_every_stage(study, tmp_path):
         check=False,
     )
     assert result.returncode == 0, result.stdout + result.stderr
-    for rule in ("validate", "behaviour", "regime", "evaluate", "report"):
-        assert rule in result.stdout
+    return result.stdout
+
+
+def test_dry_run_lists_every_stage(study, tmp_path):
+    stdout = _dry_run(study, tmp_path)
+    for rule in ("validate", "behaviour", "regime", "evaluate", "bootstrap_shard", "report"):
+        assert rule in stdout
+
+
+def test_no_shard_jobs_without_replicates(study, tmp_path):
+    raw = yaml.safe_load(study.read_text(encoding="utf-8"))
+    raw["evaluation"]["replicates"] = 0
+    protocol = study.parent / "no_replicates.yaml"
+    protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    stdout = _dry_run(protocol, tmp_path)
+    assert "bootstrap_shard" not in stdout
+    for rule in ("bootstrap", "sensitivity", "survival", "report"):
+        assert f"rule {rule}:" in stdout or f"localrule {rule}:" in stdout, stdout
 
 
 def test_check_command_on_the_demo():
@@ -126,7 +154,7 @@ def _records_with(study: Path, tmp_path: Path, change) -> Path:
 
 
 BAD_PROTOCOLS = {
-    "unknown key": (lambda p: p.update(sneaky=True), "sneaky: unknown setting"),
+    "unknown key": (lambda p: p.update(sneaky=True), "sneaky: unknown key 'sneaky'"),
     "threshold out of range": (lambda p: p["constraints"].update(support_threshold=2), "support_threshold"),
     "duplicate action": (lambda p: p["actions"].append(dict(p["actions"][0])), "declared twice"),
     "state declared twice": (lambda p: p["states"].append(dict(p["states"][0])), "declared twice"),

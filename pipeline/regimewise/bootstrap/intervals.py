@@ -67,12 +67,15 @@ def _difference(values, a, b, est):
     return None if x is None or y is None else x - y
 
 
+NO_RESAMPLE = {"method": "none (evaluation.replicates is 0)", "n": 0, "m": 0, "p_hat": None, "alpha": None}
+
+
 def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     """Intervals for every regime × estimator and every contrast, and the estimators that disagree."""
     spec = protocol.evaluation
     good, failed = collect_replicates(shards, spec.replicates)
-    size = shared_resample_size(shards)
-    regime = shared_regime(shards, spec.bootstrap_regime)
+    size = shared_resample_size(shards) if shards else NO_RESAMPLE  # no shard jobs run without replicates
+    regime = shared_regime(shards, spec.bootstrap_regime) if shards else spec.bootstrap_regime
     scale = math.sqrt(size["m"] / size["n"]) if size["n"] else 1.0
     values = point_values(point)
     reps = [r["values"] for r in good]

@@ -4,6 +4,7 @@ whole table, with a pydantic row model turning each failing row into a precise, 
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from typing import Annotated, Any, Literal
 
@@ -222,9 +223,52 @@ def field_findings(file: str, frame: pd.DataFrame, rules: list[FieldRule]) -> li
     """Vectorised check of every field rule; the pydantic model explains at most a capped number of rows per rule."""
     chosen = np.zeros(len(frame), dtype=bool)
     bad = [_failing_rows(frame, rule) for rule in rules]
-    for failing in bad:
-        chosen[np.flatnonzero(failing)[:MAX_FINDINGS_PER_RULE]] = True
-    return _row_findings(file, frame, rules, np.flatnonzero(chosen), bad)
+    shown = [_listed_rows(failing) for failing in bad]  # a capped rule keeps one place for its count
+    for rows in shown:
+        chosen[rows] = True
+    findings = _row_findings(file, frame, rules, np.flatnonzero(chosen), bad)
+    for rule, failing, rows in zip(rules, bad, shown):
+        unlisted = int(np.count_nonzero(failing)) - len(rows)
+        if unlisted > 0:
+            findings.append(
+                Finding(
+                    file=file,
+                    row=None,
+                    column=rule.column,
+                    value=None,
+                    rule=_rule_name(rule),
+                    message=UNLISTED.format(count=unlisted, cap=len(rows)),
+                    fix=rule.fix,
+                )
+            )
+    return findings
+
+
+def _listed_rows(failing: np.ndarray) -> np.ndarray:
+    rows = np.flatnonzero(failing)
+    return rows if len(rows) <= MAX_FINDINGS_PER_RULE else rows[: MAX_FINDINGS_PER_RULE - 1]
+
+
+# A finding standing for the rows of one rule beyond the listed ones: it counts as that many problems.
+UNLISTED = "{count} more row(s) fail this rule beyond the first {cap} listed"
+
+
+_UNLISTED = re.compile(r"^(\d+) more row\(s\) fail this rule beyond the first \d+ listed$")
+
+
+def problem_count(finding: Finding) -> int:
+    """How many problems a finding stands for (one, or the unlisted rows of a capped rule)."""
+    match = _UNLISTED.match(finding.message) if finding.row is None else None
+    return int(match.group(1)) if match else 1
+
+
+def findings_line(findings: list[Finding]) -> str:
+    """The one line naming the first problem and the true total of the others (unlisted rows included)."""
+    listed = [f for f in findings if f.row is not None or not _UNLISTED.match(f.message)] or findings
+    first = min(listed, key=lambda f: (f.row or 0, f.rule))
+    total = sum(problem_count(f) for f in findings)
+    rules = sorted({f.rule for f in findings})
+    return first.one_line() + (f" ({total} problems in all, of rules {rules})" if total > 1 else "")
 
 
 # ---------------------------------------------------------------------------------------------- table-wide checks

@@ -15,6 +15,7 @@ from regimewise.data.findings import (
     clip_text,
     decision_rules,
     field_findings,
+    findings_line,
     source_rows,
 )
 from regimewise.data.reading import read_table
@@ -337,7 +338,4 @@ def episodes_table(pf: ProtocolFile, decisions: pd.DataFrame) -> pd.DataFrame:
 # ---------------------------------------------------------------------------------------------- whole run
 def raise_if(findings: list[Finding]) -> None:
     if findings:
-        first = min(findings, key=lambda f: (f.row or 0, f.rule))
-        rules = sorted({f.rule for f in findings})
-        more = f" ({len(findings) - 1} more problem(s) of rules {rules})" if len(findings) > 1 else ""
-        raise DataValidationError(first.one_line() + more, findings)
+        raise DataValidationError(findings_line(findings), findings)

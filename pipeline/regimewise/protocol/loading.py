@@ -14,7 +14,8 @@ from pydantic import ValidationError
 
 from regimewise.errors import ProtocolError, os_reason
 from regimewise.protocol.identifiers import identifier_category, mask, scrub
-from regimewise.protocol.model import Protocol, describe_validation_error
+from regimewise.protocol.messages import describe_validation_error
+from regimewise.protocol.model import Protocol
 
 
 # ---------------------------------------------------------------------------------------------- loading
@@ -134,7 +135,7 @@ def load_protocol(path: str | Path) -> ProtocolFile:
     try:
         protocol = Protocol.model_validate(data)
     except ValidationError as err:
-        raise ProtocolError(f"protocol {path}: {describe_validation_error(err)}") from None
+        raise ProtocolError(f"protocol {path}: {describe_validation_error(err, data, Protocol)}") from None
     pf = ProtocolFile(protocol=protocol, path=path, sha256=hashlib.sha256(raw).hexdigest())
     pf.check_record_paths()
     return pf
@@ -146,6 +147,11 @@ def protocol_schema() -> dict:
     return {"$schema": "https://json-schema.org/draft/2020-12/schema", **schema}
 
 
+def schema_text() -> str:
+    """The protocol's JSON Schema as written to a file: sorted keys, two-space indent, trailing newline."""
+    return json.dumps(protocol_schema(), indent=2, sort_keys=True) + "\n"
+
+
 def export_schema(path: str | Path) -> None:
-    """Write the protocol's JSON Schema (sorted keys, two-space indent, trailing newline)."""
-    Path(path).write_text(json.dumps(protocol_schema(), indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    """Write the protocol's JSON Schema (:func:`schema_text`) to ``path``."""
+    Path(path).write_text(schema_text(), encoding="utf-8")

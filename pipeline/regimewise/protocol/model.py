@@ -6,14 +6,13 @@ an invalid combination before any job runs.
 
 from __future__ import annotations
 
-import difflib
 import itertools
 from dataclasses import dataclass
 from typing import Annotated
 
 from pydantic import Field, ValidationError, model_validator
 
-from regimewise.protocol.identifiers import free_text_category, looks_like_identifier, mask
+from regimewise.protocol.messages import describe_validation_error
 from regimewise.protocol.sections import (
     MAX_SPECIFICATIONS,
     SWEEP_AXES,
@@ -182,7 +181,7 @@ def sweep_specifications(protocol: Protocol) -> tuple[Specification, ...]:
             shown = ", ".join(f"{axis}={value!r}" for axis, value in settings.items())
             raise ValueError(
                 f"sweeps: combination {spec_id} ({shown}) is not a valid protocol: "
-                f"{describe_validation_error(err)}; remove one of its values"
+                f"{describe_validation_error(err, _with_settings(base, settings), Protocol)}; remove one of its values"
             ) from None
         out.append(Specification(spec_id, index, settings, index == 0, index > 0 or own in grid, spec_protocol))
     return tuple(out)
@@ -202,61 +201,9 @@ def _swept_value(base: dict, axis: str, value):
         changed = Protocol.model_validate(_with_settings(base, {axis: value}))
     except ValidationError as err:
         raise ValueError(
-            f"sweeps.axes.{axis}: value {value!r} is not allowed ({describe_validation_error(err)}); "
+            f"sweeps.axes.{axis}: value {value!r} is not allowed "
+            f"({describe_validation_error(err, _with_settings(base, {axis: value}), Protocol)}); "
             "change or remove it"
         ) from None
     section, field = axis.split(".")
     return getattr(getattr(changed, section), field)
-
-
-def describe_validation_error(err: ValidationError) -> str:
-    """One line for the first problem: an unknown (misspelt) setting before the missing one it stands for."""
-    problems = sorted(err.errors(include_url=False), key=lambda p: p["type"] != "extra_forbidden")
-    first = problems[0]
-    where = ".".join(str(p) for p in first["loc"]) or "(top level)"
-    if first["type"] == "extra_forbidden":
-        what = (
-            "unknown setting"
-            + _did_you_mean(first, problems)
-            + "; check the spelling against config/protocol.schema.json"
-        )
-    elif first["type"] == "missing":
-        what = "required setting is missing"
-    else:
-        what = first["msg"]
-        if "input" in first and not isinstance(first["input"], (dict, list)) and "[masked" not in what:
-            what += f" (got {_shown_input(first['input'])})"
-        what += _quote_hint(first)
-    more = f" (and {len(problems) - 1} more problem{'s' if len(problems) > 2 else ''})" if len(problems) > 1 else ""
-    return f"{where}: {one_line(what)}{more}"
-
-
-def _did_you_mean(extra: dict, problems: list[dict]) -> str:
-    """' (did you mean 'label'?)' when a required setting beside the unknown one is missing and close to it."""
-    parent, name = extra["loc"][:-1], str(extra["loc"][-1])
-    missing = [str(p["loc"][-1]) for p in problems if p["type"] == "missing" and p["loc"][:-1] == parent]
-    close = difflib.get_close_matches(name, missing, n=1, cutoff=0.6)
-    return f" {name!r} (did you mean {close[0]!r}?)" if close else f" {name!r}"
-
-
-def _shown_input(value) -> str:
-    """The offending value as a message may show it: masked when it looks like an identifier."""
-    hidden = looks_like_identifier(value) or free_text_category(str(value)) is not None
-    return mask(value) if hidden else repr(value)
-
-
-def _quote_hint(problem: dict) -> str:
-    """YAML reads no, yes, on, off, true, false and bare numbers as non-text: say to quote a label."""
-    value, kind = problem.get("input"), problem["type"]
-    if kind == "string_type" and isinstance(value, (bool, int, float)):
-        read = "a boolean" if isinstance(value, bool) else "a number"
-        return f"; YAML read this as {read}: put the text in quotes, e.g. label: 'no'"
-    if kind in ("int_type", "float_type", "value_error") and isinstance(value, bool):
-        return "; write a number (YAML reads yes, no, true, false, on and off as booleans, not numbers)"
-    if kind == "bool_type" and not isinstance(value, bool):
-        return "; write true or false (numbers are not booleans)"
-    return ""
-
-
-def one_line(text) -> str:
-    return " ".join(str(text).split())

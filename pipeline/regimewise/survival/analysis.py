@@ -199,9 +199,12 @@ def survival_intervals(point: dict, replicates: list[dict], protocol: Protocol) 
     return {"level": level, "replicates": len(replicates), "strategies": out}
 
 
-def _limits(draws: list, probabilities) -> dict:
-    """{"low": ..., "high": ...} per position (lists) or for a scalar; None where fewer than 2 draws are defined."""
-    if draws and isinstance(draws[0], list):
+def _limits(draws: list, probabilities) -> dict | None:
+    """{"low": ..., "high": ...} per position (lists) or for a scalar; None where fewer than 2 draws are defined,
+    and no interval at all without replicates (evaluation.replicates: 0 runs no bootstrap shard)."""
+    if not draws:
+        return None
+    if isinstance(draws[0], list):
         columns = list(zip(*draws, strict=True))
         pairs = [_scalar_limits(column, probabilities) for column in columns]
         return {"low": [p[0] for p in pairs], "high": [p[1] for p in pairs]}

@@ -55,7 +55,7 @@ class Settings:
     @property
     def replicates_per_shard(self) -> int:
         """Most bootstrap replicates any one shard job runs (for its resource request)."""
-        return -(-self.bootstrap_replicates // self.bootstrap_shards)
+        return -(-self.bootstrap_replicates // max(self.bootstrap_shards, 1))
 
     @property
     def record_inputs(self) -> dict:
@@ -81,7 +81,7 @@ def load_settings(config: dict) -> Settings:
         benchmarks=str(config["benchmarks"]).rstrip("/"),
         decisions_file=str(pf.decisions_path),
         episodes_file=None if episodes is None else str(episodes),
-        bootstrap_shards=pf.protocol.evaluation.shards,
+        bootstrap_shards=pf.protocol.evaluation.shards if pf.protocol.evaluation.replicates else 0,
         sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
         survival=pf.protocol.survival is not None,
         bootstrap_replicates=pf.protocol.evaluation.replicates,

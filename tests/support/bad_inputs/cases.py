@@ -120,7 +120,7 @@ EP = "episodes.csv, row {}, column '{}'"
 
 DEFECTS = [
     # ---- protocol
-    Defect("unknown key", "protocol", ("sneaky: unknown setting",), protocol(lambda p: p.update(sneaky=1))),
+    Defect("unknown key", "protocol", ("sneaky: unknown key 'sneaky'",), protocol(lambda p: p.update(sneaky=1))),
     Defect("horizon of wrong type", "protocol", ("horizon",), protocol(lambda p: p.update(horizon="three"))),
     Defect(
         "threshold out of range",
@@ -175,7 +175,7 @@ DEFECTS = [
     Defect(
         "acknowledgement without justification",
         "protocol",
-        ("data.acknowledged_columns.0.justification",),
+        ("data.acknowledged_columns[0].justification: must have at least 20 characters",),
         protocol(lambda p: p["data"].update(acknowledged_columns=[{"column": "zip", "justification": "ok"}])),
     ),
     Defect(
@@ -190,7 +190,7 @@ DEFECTS = [
     Defect(
         "required section missing",
         "protocol",
-        ("reward: required setting is missing",),
+        ("reward: required key is missing",),
         protocol(lambda p: p.pop("reward")),
     ),
     Defect("invalid YAML", "protocol", ("not valid YAML",), protocol_text("study: [unclosed\n")),

@@ -1,0 +1,100 @@
+"""Progress on the terminal while the workflow runs, read from Snakemake's own log stream of job events.
+
+Snakemake announces each job (``rule <name>:`` or ``localrule <name>:`` with its ``jobid`` and ``wildcards``)
+and each finished one (``Finished jobid: <id> (Rule: <name>)``, followed by ``<k> of <n> steps (<p>%) done``).
+:class:`Progress` turns those events into one line per finished stage, e.g. ``[5/14] bootstrap shard 2 of 4
+done (38 s)``. The command line feeds it the workflow log as Snakemake writes it; no output file is polled, and
+a job's time runs from its announcement to its finish. Statistical warnings the stages raise reach the same
+stream; their count is read back from the workflow log at the end (:func:`warning_count`).
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from pathlib import Path
+
+# What each rule does, in words (a rule not listed is named as it is).
+STAGE_WORDS = {
+    "validate": "validation of the records",
+    "behaviour": "usual-care model",
+    "regime": "regime learning",
+    "evaluate": "off-policy evaluation",
+    "describe": "cohort description",
+    "bootstrap": "bootstrap intervals",
+    "sensitivity": "sensitivity analysis",
+    "survival": "survival analysis",
+    "sweep": "specification sweep",
+    "report": "report",
+    "all": "all outputs checked",
+}
+
+
+_JOB = re.compile(r"^(?:local)?rule (\w+):\s*$")
+_JOBID = re.compile(r"^\s+jobid: (\d+)\s*$")
+_WILDCARDS = re.compile(r"^\s+wildcards: (.*)$")
+_FINISHED = re.compile(r"^Finished job(?:id)?:?\s+(\d+)")
+_STEPS = re.compile(r"^(\d+) of (\d+) steps \(")
+
+
+class Progress:
+    """Reads Snakemake's log lines one at a time; :meth:`feed` returns a progress line when a job has finished.
+
+    ``shards`` is the protocol's number of bootstrap shards (a resumed run reruns only some of them, so the
+    count Snakemake plans is not the total); ``clock`` gives seconds (a test passes a fake one).
+    """
+
+    def __init__(self, shards: int = 0, clock=time.monotonic):
+        self.shards, self.clock = shards, clock
+        self.jobs: dict[str, dict] = {}
+        self.announced: dict | None = None
+        self.finished: str | None = None
+
+    def feed(self, line: str) -> str | None:
+        line = line.rstrip("\n")
+        if match := _JOB.match(line):
+            self.announced = {"rule": match[1], "wildcards": {}, "started": self.clock()}
+        elif self.announced is not None and (match := _JOBID.match(line)):
+            self.jobs[match[1]] = self.announced
+        elif self.announced is not None and (match := _WILDCARDS.match(line)):
+            pairs = (item.split("=", 1) for item in match[1].split(", ") if "=" in item)
+            self.announced["wildcards"] = {key.strip(): value.strip() for key, value in pairs}
+        elif match := _FINISHED.match(line):
+            self.announced, self.finished = None, match[1]
+        elif (match := _STEPS.match(line)) and self.finished is not None:
+            job = self.jobs.pop(self.finished, None)
+            self.finished = None
+            if job is not None:
+                seconds = self.clock() - job["started"]
+                return f"[{match[1]}/{match[2]}] {self.describe(job)} done ({seconds:.0f} s)"
+        return None
+
+    def describe(self, job: dict) -> str:
+        rule, wildcards = job["rule"], job["wildcards"]
+        if rule == "bootstrap_shard" and wildcards.get("shard", "").isdigit():
+            of = f" of {self.shards}" if self.shards else ""
+            return f"bootstrap shard {int(wildcards['shard']) + 1}{of}"
+        if rule == "sweep_spec":
+            return f"sweep specification {wildcards.get('spec', '')}".rstrip()
+        return STAGE_WORDS.get(rule, rule)
+
+
+WARNING_MARK = "StatisticalWarning: "
+
+
+def warning_count(log: Path) -> int:
+    """How many statistical warnings the stages raised, as listed in the workflow log."""
+    try:
+        text = log.read_text(encoding="utf-8", errors="replace")
+    except OSError:
+        return 0
+    return sum(WARNING_MARK in line for line in text.splitlines())
+
+
+def warning_line(log: Path) -> str:
+    """The closing line about statistical warnings: how many, and which log lists them."""
+    count = warning_count(log)
+    if count == 0:
+        return "no statistical warnings"
+    noun = "warning" if count == 1 else "warnings"
+    return f"{count} statistical {noun} (read them before the estimates); they are listed in {log}"
