@@ -26,7 +26,7 @@ STAGE_WORDS = {
     "survival": "survival analysis",
     "sweep": "specification sweep",
     "report": "report",
-    "all": "all outputs checked",
+    "all": "final check of all outputs",
 }
 
 
