@@ -187,3 +187,15 @@ def test_methods_sentences_follow_the_protocol(two_runs, study, setting, cross_f
         rendered[k] = _render(study, parts)
     assert cross_fitted in rendered[5] and in_sample not in rendered[5]
     assert in_sample in rendered[1] and cross_fitted not in rendered[1]
+
+
+def test_panel_gives_no_survival_number_where_too_few_follow(two_runs, study):
+    """As in the survival table: past the day the effective sample falls below the minimum, no number."""
+    (out, _), _ = two_runs
+    parts = _parts(out)
+    pf = load_protocol(study)
+    name = build_summary(pf.protocol, parts, build_provenance(pf))["headline"]["strategy"]
+    row = next(r for r in parts["survival"]["strategies"] if r["name"] == name)
+    row["diagnostics"]["unreliable_from"] = 1.0
+    panel = panel_of(_render(study, parts))
+    assert "no number is given" in panel and "/risk_difference/" not in panel
