@@ -8,6 +8,7 @@ import re
 import matplotlib.pyplot as plt
 
 from regimewise.report.figures import PRINT_WIDTH_INCHES, contrast_figure, svg_text, tradeoff_figure
+from regimewise.report.html import unplotted
 
 
 def tick_numbers(svg: str) -> list[float]:
@@ -82,6 +83,9 @@ def test_contrast_forest_plot_spans_only_the_drawn_contrasts():
     svg = contrast_figure(values, ["wdr"])
     assert max(abs(n) for n in tick_numbers(svg)) < 10
     assert "Always x" not in svg and "Learned regime" in svg
+    assert unplotted(values, ["wdr"]) == ["Always x"]  # the caption lists exactly what the plot leaves out
+    values["bootstrap"]["contrasts"][0]["verdict"] = "model projection"  # withheld alone also keeps it out
+    assert "Always x" not in contrast_figure(values, ["wdr"]) and unplotted(values, ["wdr"]) == ["Always x"]
 
 
 def test_a_wide_figure_is_narrowed_to_the_printable_width():

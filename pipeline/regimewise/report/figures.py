@@ -300,6 +300,18 @@ def usual_care_contrasts(values: dict) -> list[dict]:
     return contrasts + extra
 
 
+def drawn_contrasts(values: dict, estimators) -> list[dict]:
+    """The contrasts with usual care that the forest plot draws: the protocol's estimators, a number, identified."""
+    return [
+        c
+        for c in usual_care_contrasts(values)
+        if c["estimator"] in estimators
+        and c["difference"] is not None
+        and not c.get("withheld")
+        and c.get("verdict") != "not identified"
+    ]
+
+
 def contrast_figure(values: dict, estimators) -> str:
     """Contrast forest plot: each regime minus usual care, by estimator, with its bootstrap interval.
 
@@ -309,14 +321,7 @@ def contrast_figure(values: dict, estimators) -> str:
     """
     apply_style()
     labels = {r["name"]: r["label"] for r in values["regimes"]}
-    drawn = [
-        c
-        for c in usual_care_contrasts(values)
-        if c["estimator"] in estimators
-        and c["difference"] is not None
-        and not c.get("withheld")
-        and c.get("verdict") != "not identified"
-    ]
+    drawn = drawn_contrasts(values, estimators)
     rows = [name for name in labels if name != "usual_care" and any(c["regime"] == name for c in drawn)]
     fig, ax = plt.subplots(figsize=(7.0, 0.42 * max(len(rows), 1) + 1.1))
     for j, est in enumerate(estimators):

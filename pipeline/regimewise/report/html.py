@@ -18,12 +18,12 @@ from regimewise.report.figures import (
     SPARSE_BIN,
     actions_by_step_figure,
     contrast_figure,
+    drawn_contrasts,
     section_figures,
     sensitivity_figure,
     survival_figure,
     sweep_figure,
     tradeoff_figure,
-    usual_care_contrasts,
     weight_histogram_figure,
 )
 
@@ -97,11 +97,7 @@ def render_html(p, parts, prov, headline) -> str:
 
 
 def unplotted(values: dict, estimators) -> list[str]:
-    """Labels of the regimes whose contrast with usual care is not identified by any estimator (not drawn)."""
+    """Labels of the regimes the forest plot does not draw (no identified contrast with usual care by any estimator)."""
     labels = {r["name"]: r["label"] for r in values["regimes"]}
-    kept = {
-        c["regime"]
-        for c in usual_care_contrasts(values)
-        if c["estimator"] in estimators and c["difference"] is not None and c.get("verdict") != "not identified"
-    }
+    kept = {c["regime"] for c in drawn_contrasts(values, estimators)}
     return [label for name, label in labels.items() if name != "usual_care" and name not in kept]
