@@ -55,12 +55,30 @@ def parse(argv=None):
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--results", type=Path, default=None)
     parser.add_argument("--bootstrap-regime", choices=("fixed", "refit"), default="fixed")
+    parser.add_argument(
+        "--headline-only",
+        action="store_true",
+        help="evaluate only usual care, the learned regime and the headline strategy (no other strategy of the "
+        "grids, no fixed strategies): the headline's estimates and replicates are unchanged, the cost is lower",
+    )
     return parser.parse_args(argv)
 
 
 def headline(p):
     h = p.strategies.headline
     return next(s for s in protocol_strategies(p.strategies) if (s.family, s.parameter) == (h.family, h.value))
+
+
+def headline_only(p):
+    """The protocol with usual care, the learned regime and the headline strategy only."""
+    h = p.strategies.headline
+    grids = {f: ([h.value] if f == h.family else []) for f in ("partial_adoption", "override_gain", "incremental_odds")}
+    return p.model_copy(
+        update={
+            "strategies": p.strategies.model_copy(update=grids),
+            "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False}),
+        }
+    )
 
 
 def one_cohort(task):
@@ -71,6 +89,8 @@ def one_cohort(task):
         update={"replicates": args.replicates, "shards": 1, "bootstrap_regime": args.bootstrap_regime}
     )
     p = pf.protocol.model_copy(update={"evaluation": raw, "seed": seed})
+    if args.headline_only:
+        p = headline_only(p)
     s = headline(p)
     with threadpool_limits(limits=1):
         decisions = clean_decisions(
@@ -164,7 +184,7 @@ def main(argv=None) -> None:
     print(
         f"headline strategy {headline(p).name}: {len(done)} cohorts x {args.episodes} episodes, {args.replicates} "
         f"replicates ({args.bootstrap_regime} regime), strength {args.strength}, truths on {args.truth_episodes} "
-        "episodes; "
+        f"episodes{', headline strategy only' if args.headline_only else ''}; "
         f"{time.perf_counter() - start:.0f} s this run"
     )
     summarise(sorted(done, key=lambda r: r["seed"]))

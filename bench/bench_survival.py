@@ -28,12 +28,22 @@ from pathlib import Path
 
 import numpy as np
 import yaml
+from bench_strategies import simulator_strategy
+from bench_strategy_coverage import headline
 
-from regimewise.bootstrap.replicates import fit_replicate, patient_groups, resample_episodes, resample_patients
+from regimewise.bootstrap.replicates import (
+    HeldRegime,
+    draw_patients,
+    fit_replicate,
+    patient_groups,
+    resample_episodes,
+    resample_frame,
+)
 from regimewise.core.seeds import stream_rng
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.demo.truth import always, true_survival
 from regimewise.protocol import Protocol
+from regimewise.regime.learning import crossfit_folds, fold_regimes
 from regimewise.survival.analysis import survival_analysis, survival_intervals, survival_values
 
 REPOSITORY = Path(__file__).resolve().parents[1]
@@ -43,7 +53,6 @@ HORIZON = 730.0
 def protocol() -> Protocol:
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     raw["survival"] = {"horizon_days": HORIZON, "time_points": [365], "dropout_model": True}
-    raw["constraints"]["pessimism"] = 0.0  # the learned regime only needs to exist here; keep replicates cheap
     return Protocol.model_validate(raw)
 
 
@@ -58,22 +67,68 @@ def truths(n: int, seed: int) -> dict:
     }
 
 
+def learned_truths(decisions, p: Protocol, pairs, n: int, seed: int) -> dict:
+    """True S(horizon) and RMST of the learned regime and the headline strategy as the cohort's analysis defines
+    them: the episode-weighted mean over cross-fitting folds of the rule learned without each fold (``pairs``,
+    :func:`regimewise.regime.learning.fold_regimes`; the data-adaptive target of the cross-fitted estimate;
+    common random numbers across folds)."""
+    first = decisions["step"].to_numpy() == 0
+    shares = [float(np.sum(rows & first) / np.sum(first)) for rows, _ in pairs]
+    s = headline(p)
+    makers = {"learned": lambda learned: learned, s.name: lambda learned: simulator_strategy(s, learned)}
+    out = {}
+    for name, make in makers.items():
+        parts = [
+            true_survival(make(learned), [HORIZON], HORIZON, n=n, seed=seed, confounding_strength=0.0)
+            for _, learned in pairs
+        ]
+        out[name] = {
+            "survival": sum(w * t.survival[0] for w, t in zip(shares, parts)),
+            "rmst": sum(w * t.rmst for w, t in zip(shares, parts)),
+        }
+    return out
+
+
+def held_from(decisions, p: Protocol, folds, pairs) -> HeldRegime:
+    """The cross-fitted regime as :func:`regimewise.bootstrap.replicates.held_regime` holds it, built from the fold
+    regimes already learned (the same computation as :func:`regimewise.regime.learning.cross_fitted_regime`)."""
+    recommended = np.empty(len(decisions), dtype=np.int64)
+    q = np.empty((len(decisions), len(p.actions)))
+    for rows, learned in pairs:
+        part = decisions.loc[rows].reset_index(drop=True)
+        recommended[rows] = learned.recommend(part)
+        q[rows] = learned.q_values(part)
+    return HeldRegime(recommended, q, folds)
+
+
 def one_cohort(seed: int, args, p: Protocol) -> dict:
+    """The survival stage's point estimates and bootstrap limits on one simulated cohort.
+
+    The replicates are the bootstrap shards' (``bootstrap_regime: fixed``, the protocol's default): patients
+    resampled within their cross-fitting folds, usual care and the dropout model refitted, the learned fold
+    regimes held fixed (:func:`regimewise.bootstrap.replicates.run_replicate` without the value estimators, to
+    keep the benchmark's cost to the survival part).
+    """
     sim = simulate_cohort(args.episodes, seed=seed, confounding_strength=0.0)
     decisions, episodes = sim.decisions, sim.episodes
-    proba, recommended, q, _ = fit_replicate(decisions, p)
+    folds = crossfit_folds(decisions, p)
+    pairs = fold_regimes(decisions, p, folds)
+    held = held_from(decisions, p, folds, pairs)
+    proba, recommended, q, _ = fit_replicate(decisions, p, held)
     point = survival_analysis(decisions, episodes, proba, recommended, p, q)
     groups, replicates = patient_groups(decisions), []
+    strata = np.array([held.folds[g[0]] for g in groups])
     for r in range(args.replicates):
-        resample = resample_patients(decisions, groups, stream_rng(seed, "bootstrap", r), len(groups))
+        draws = draw_patients(groups, stream_rng(seed, "bootstrap", r), len(groups), strata)
+        resample = resample_frame(decisions, draws)
         sub = resample_episodes(episodes, resample)
         try:
-            rp, rr, rq, _ = fit_replicate(resample, p)
+            rp, rr, rq, _ = fit_replicate(resample, p, held.at(np.concatenate(draws)))
             replicates.append(survival_values(resample, sub, rp, rr, p, rq))
         except Exception as err:  # a resample the models cannot fit: counted, as the workflow does
             print(f"  cohort {seed} replicate {r} failed: {str(err).splitlines()[0]}", file=sys.stderr)
     limits = survival_intervals(point, replicates, p)["strategies"]
-    out = {}
+    out = {"truth": learned_truths(decisions, p, pairs, args.learned_truth_episodes, seed + 1)}
     for row in point["strategies"]:
         name = row["name"]
         out[name] = {
@@ -87,28 +142,45 @@ def one_cohort(seed: int, args, p: Protocol) -> dict:
 
 
 def summarise(results: list[dict], truth: dict) -> None:
+    """Per strategy: cohorts with an adequate ESS to the horizon, bias, RMSE and coverage among them.
+
+    Fixed strategies and usual care have one truth; the learned regime and the headline strategy have their
+    cohort's own (:func:`learned_truths`).
+    """
     print(
-        f"{'strategy':18s} {'adequate':>8s} {'flagged':>7s} {'S(h) bias':>9s} {'RMSE':>7s} {'cover':>6s} "
+        f"{'strategy':22s} {'adequate':>8s} {'flagged':>7s} {'S(h) bias':>9s} {'RMSE':>7s} {'cover':>6s} "
         f"{'RMST bias':>9s} {'RMSE':>6s} {'cover':>6s}"
     )
-    for name in results[0]:
-        rows = [r[name] for r in results]
-        good = [r for r in rows if r["reliable"] and r["survival"] is not None]
-        flagged = len(rows) - len(good)
-        if name not in truth or not good:
-            print(f"{name:18s} {len(good):8d} {flagged:7d}   (no truth or no cohort with an adequate ESS)")
+    for name in [k for k in results[0] if k != "truth"]:
+        pairs = [(r[name], truth.get(name) or r["truth"].get(name)) for r in results]
+        good = [(row, t) for row, t in pairs if row["reliable"] and row["survival"] is not None]
+        flagged = len(pairs) - len(good)
+        if not good or good[0][1] is None:
+            print(f"{name:22s} {len(good):8d} {flagged:7d}   (no truth or no cohort with an adequate ESS)")
             continue
-        t = truth[name]
-        s = np.array([r["survival"] for r in good]) - t.survival[0]
-        m = np.array([r["rmst"] for r in good]) - t.rmst
-        cs = np.mean(
-            [lo is not None and lo <= t.survival[0] <= hi for lo, hi in (r["survival_interval"] for r in good)]
-        )
-        cm = np.mean([lo is not None and lo <= t.rmst <= hi for lo, hi in (r["rmst_interval"] for r in good)])
+        s_true = np.array([_at(t, "survival") for _, t in good])
+        m_true = np.array([_at(t, "rmst") for _, t in good])
+        s = np.array([row["survival"] for row, _ in good]) - s_true
+        m = np.array([row["rmst"] for row, _ in good]) - m_true
+        cs = np.mean([_covers(row["survival_interval"], v) for (row, _), v in zip(good, s_true)])
+        cm = np.mean([_covers(row["rmst_interval"], v) for (row, _), v in zip(good, m_true)])
+        se = np.sqrt(cs * (1 - cs) / len(good))
         print(
-            f"{name:18s} {len(good):8d} {flagged:7d} {s.mean():9.4f} {np.sqrt(np.mean(s**2)):7.4f} {cs:6.1%} "
-            f"{m.mean():9.2f} {np.sqrt(np.mean(m**2)):6.2f} {cm:6.1%}"
+            f"{name:22s} {len(good):8d} {flagged:7d} {s.mean():9.4f} {np.sqrt(np.mean(s**2)):7.4f} {cs:6.1%} "
+            f"{m.mean():9.2f} {np.sqrt(np.mean(m**2)):6.2f} {cm:6.1%}   (MCSE of S(h) coverage {se:.1%})"
         )
+
+
+def _at(t, key: str) -> float:
+    """A truth's value: a TrueSurvival (fixed strategies) or a dict (cohort-specific truths)."""
+    if isinstance(t, dict):
+        return float(t[key])
+    return float(t.survival[0]) if key == "survival" else float(t.rmst)
+
+
+def _covers(interval, value) -> bool:
+    low, high = interval
+    return low is not None and low <= value <= high
 
 
 def main(argv=None) -> int:
@@ -117,6 +189,12 @@ def main(argv=None) -> int:
     parser.add_argument("--episodes", type=int, default=3000)
     parser.add_argument("--replicates", type=int, default=50)
     parser.add_argument("--truth-episodes", type=int, default=200_000)
+    parser.add_argument(
+        "--learned-truth-episodes",
+        type=int,
+        default=20_000,
+        help="simulated episodes per fold regime for the learned regime's and the headline strategy's truths",
+    )
     parser.add_argument("--results", type=Path, help="append each cohort's result (JSON lines); resume from it")
     args = parser.parse_args(argv)
     p = protocol()

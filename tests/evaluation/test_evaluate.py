@@ -175,10 +175,15 @@ def test_strategies_are_evaluated_with_verdicts(setting):
         r = by_name[name]
         assert 0.0 <= r["share_changed"] <= 1.0 and r["family"] in name
         for est, e in r["estimates"].items():
-            expected = "supported" if e["ess"] >= floor else "model projection"
+            expected = "supported" if e["ess"] >= floor and est != "fqe" else "model projection"
             if e["unsupported_share"] > protocol.evaluation.unidentified_share or e["ess"] < 1:
                 expected = "not identified"
             assert e["verdict"] == expected, (name, est)
+            if est == "fqe" and expected == "model projection":
+                assert e["outcome_model_share"] == 1.0 and "rests entirely on the outcome model" in e["verdict_reason"]
+    # usual care is the regime the records follow: there its fitted-Q value is supported like the others
+    usual = by_name["usual_care"]["estimates"]
+    assert {est: e["verdict"] for est, e in usual.items()} == dict.fromkeys(usual, "supported")
     # partial adoption moves away from usual care as its share grows: the effective sample shrinks
     ess = [by_name[f"partial_adoption_{e:g}"]["estimates"]["pdwis"]["ess"] for e in (0.2, 0.4, 0.6)]
     assert ess[0] > ess[1] > ess[2]

@@ -112,6 +112,7 @@ def evaluate_regime(
     strict: bool = True,
     folds: np.ndarray | None = None,
     fitted=None,
+    records_regime: bool = False,
 ) -> dict:
     """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict.
 
@@ -122,6 +123,8 @@ def evaluate_regime(
     evaluation within each fold (a cross-fitted regime,
     :func:`regimewise.regime.learning.cross_fitted_recommendations`). ``fitted`` passes the outcome model's
     (Q̂ taken, V̂, fqe value) or the error that stopped it (:func:`regimewise.evaluation.outcome_models.outcome_models`).
+    ``records_regime``: the regime is usual care, the one the records follow
+    (:func:`regimewise.evaluation.verdicts.verdict`).
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
@@ -159,12 +162,15 @@ def evaluate_regime(
         estimate["low_ess"] = bool(estimate["ess"] is None or estimate["ess"] < floor)
         if not deterministic:
             estimate["n_following"] = None
-        judged = verdict(name, estimate["ess"], floor, share, protocol.evaluation.unidentified_share)
+        judged = verdict(name, estimate["ess"], floor, share, protocol.evaluation.unidentified_share, records_regime)
+        model_only = ESTIMATORS[name].family == "model" and not records_regime
         estimate.update(
             verdict=judged["verdict"],
             verdict_reason=judged["reason"],
             unsupported_share=share,
-            outcome_model_share=outcome_model_share(estimate["ess"], floor) if ESTIMATORS[name].needs_q_model else None,
+            outcome_model_share=outcome_model_share(estimate["ess"], floor, model_only)
+            if ESTIMATORS[name].needs_q_model
+            else None,
         )
         out[name] = estimate
     return out
@@ -186,7 +192,9 @@ def evaluate_target(
     out = {
         "name": name,
         "label": t["label"],
-        "estimates": evaluate_regime(logged, t["target"], protocol, deterministic, strict, folds, fitted),
+        "estimates": evaluate_regime(
+            logged, t["target"], protocol, deterministic, strict, folds, fitted, records_regime=name == "usual_care"
+        ),
     }
     if strategy is not None:
         out.update(strategy.to_dict(), share_changed=share_changed(t["target"], logged.behaviour_proba))
