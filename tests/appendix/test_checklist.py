@@ -322,6 +322,17 @@ def test_answers_are_drawn_from_the_summary():
     assert files == ["behaviour/behaviour.json"]
 
 
+def test_a_sweep_and_a_regime_evaluated_without_cross_fitting_are_reported():
+    summary = _summary()
+    summary["sweep"] = {"axes": ["support_threshold"], "sentence": "Sweep sentence of the test."}
+    summary["regime"]["cross_fit"] = {"folds": 1}
+    target = _items(build_checklist(summary, PROTOCOL, FILES), "target")
+    assert next(i for i in target if i["number"] == "14")["answer"].endswith("Sweep sentence of the test.")
+    assert "support threshold" in next(i for i in target if i["number"] == "7h(ii)")["answer"]
+    assert "optimistic" in next(i for i in target if i["number"] == "X6")["answer"]
+    assert "on the records it was learned from" in next(i for i in target if i["number"] == "7h(i)")["answer"]
+
+
 def test_only_files_of_the_run_are_named(summary):
     few = {"report/summary.json"}
     checklist = build_checklist(summary, PROTOCOL, few)

@@ -129,7 +129,7 @@ def _provenance(run, authors_add: str) -> Answer:
         f"The protocol and the {len(s['inputs_sha256'])} input files are identified by SHA-256, with the package "
         f"versions and the root seed {s['root_seed']}, so the analysis can be repeated{listed}"
     )
-    return Answer(text, "section-provenance", ("provenance.json",), authors_add=authors_add)
+    return Answer(text, "section-provenance", authors_add=authors_add)
 
 
 @answers("target", "5")
@@ -292,11 +292,9 @@ def _variables(run):
 @answers("target", "7h(i)")
 def _analysis_done(run):
     s, p = run.summary, run.protocol
-    m, boot, fit = s["usual_care_model"], s["bootstrap"], s["regime"]["cross_fit"]
-    text = (
-        f"Usual-care model {words(m['kind'])} over {m['folds']} fold(s); the learned regime evaluated cross-fitted "
-        f"({fit.get('folds', 'not available')} folds: each patient's actions from the regime learned on the others)"
-    )
+    m, boot, folds = s["usual_care_model"], s["bootstrap"], (s["regime"]["cross_fit"] or {}).get("folds") or 1
+    fitted = f"cross-fitted over {folds} folds" if folds > 1 else "on the records it was learned from"
+    text = f"Usual-care model {words(m['kind'])} over {m['folds']} fold(s); the learned regime evaluated {fitted}"
     if boot is None:
         text += "; no bootstrap replicates (estimates without intervals)"
     else:

@@ -173,14 +173,19 @@ def _identified(run):
 
 @answers("target", "X6")
 def _cross_fit(run):
-    fit = run.summary["regime"]["cross_fit"]
-    regime = run.protocol.evaluation.bootstrap_regime
+    fit = run.summary["regime"]["cross_fit"] or {}
+    held = (
+        "holds the learned regime fixed" if run.protocol.evaluation.bootstrap_regime == "fixed" else "learns it again"
+    )
+    if (fit.get("folds") or 1) < 2:
+        text = "Evaluated on the same records it was learned from (no cross-fitting): its values are optimistic"
+    else:
+        text = (
+            f"Cross-fitted over {fit['folds']} folds: each patient is scored with the regime learned on the other "
+            f"folds, which agree with the full-data regime at {share(fit.get('agreement'))} of decisions"
+        )
     return Answer(
-        f"Cross-fitted over {fit.get('folds', 'not available')} folds: each patient is scored with the regime learned "
-        f"on the other folds (agreement with the full-data regime {share(fit.get('agreement'))}); the bootstrap "
-        f"{'holds that regime fixed' if regime == 'fixed' else 'learns the regime again'} in each replicate",
-        "section-values",
-        ("regime/recommendations.parquet",),
+        f"{text}; the bootstrap {held} in each replicate", "section-values", ("regime/recommendations.parquet",)
     )
 
 
