@@ -10,6 +10,7 @@ import copy
 import json
 import re
 from importlib import resources
+from pathlib import Path
 
 import jsonschema
 import pytest
@@ -26,6 +27,7 @@ from regimewise.appendix.checklist import (
 )
 from regimewise.appendix.guidelines import GOTTESMAN, GUIDELINES, RECORD, TARGET
 from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.io import dumps_json
 from regimewise.protocol.loading import load_protocol
 
 PROTOCOL = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
@@ -349,9 +351,11 @@ def test_absolute_run_files_are_refused(summary):
 def test_two_builds_give_identical_bytes(summary):
     first = build_checklist(summary, PROTOCOL, FILES)
     second = build_checklist(copy.deepcopy(summary), PROTOCOL, sorted(FILES, reverse=True))
-    dump = lambda c: json.dumps(c, sort_keys=True, ensure_ascii=False).encode()  # noqa: E731
-    assert dump(first) == dump(second)
+    assert dumps_json(first).encode() == dumps_json(second).encode()  # the bytes regimewise.io.write_json writes
     assert render_checklist_html(first) == render_checklist_html(second)
+    # Nothing of the machine: the protocol was read from the repository, whose absolute path must not appear.
+    for text in (dumps_json(first), render_checklist_html(first)):
+        assert str(REPOSITORY) not in text and str(Path.home()) not in text
 
 
 def test_the_page_is_self_contained_in_the_report_style(summary):

@@ -11,6 +11,8 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from regimewise.estimators import ESTIMATORS
+
 
 @dataclass(frozen=True)
 class Run:
@@ -194,9 +196,9 @@ def _assumptions(run):
     s, p = run.summary, run.protocol
     text = (
         f"At every decision, no unmeasured confounding given the {len(p.states)} recorded states (cannot be checked "
-        "from the records); positivity: a recommended action must have been taken by usual care with probability "
-        f"at least {s['regime']['support_threshold']:g} in that state; consistency; the declared states carry what "
-        "the next decision needs"
+        "from the records); positivity: the learned regime recommends only actions usual care took with probability "
+        f"at least {s['regime']['support_threshold']:g} in that state, and a strategy the records cannot support is "
+        "reported as not identified; consistency; the declared states carry what the next decision needs"
     )
     if s["sensitivity"] is not None:
         return Answer(text + "; hidden confounding is explored in the sensitivity analysis", "section-sensitivity")
@@ -241,9 +243,15 @@ def _strategies_emulated(run):
 @answers("target", "7c")
 def _assignment_emulated(run):
     s, m = run.summary, run.summary["usual_care_model"]
+    families = {ESTIMATORS[name].family for name in run.protocol.evaluation.estimators}
+    means = []
+    if families & {"weights", "both"}:
+        means.append("inverse-probability weights of the actions taken, from the usual-care model")
+    if families & {"model", "both"}:
+        means.append("outcome models of the recorded states")
     text = (
-        "Assignment is emulated by weighting each decision by the inverse probability of the action taken, from "
-        f"the usual-care model ({words(m['kind'])}, AUC {fmt(m['auc'])})"
+        f"No randomisation: confounding by the recorded states is adjusted for by {' and by '.join(means)} "
+        f"(usual-care model {words(m['kind'])}, AUC {fmt(m['auc'])})"
     )
     if s["survival"] is not None:
         text += "; for survival, every episode is cloned into every strategy at time zero (clone-censor-weight)"

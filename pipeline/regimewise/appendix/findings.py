@@ -224,7 +224,10 @@ def _all_variables(run):
     )
     sens = s["sensitivity"]
     if sens is not None and sens.get("tipping_point") is not None:
-        text += f"; a hidden factor would need Γ = {fmt(sens['tipping_point'])} to bring the interval to zero"
+        text += (
+            f"; a hidden factor would have to change the odds of the action taken by Γ = {fmt(sens['tipping_point'])} "
+            "for the interval of the bounded difference to include zero"
+        )
     return Answer(
         text,
         "section-usual-care",
