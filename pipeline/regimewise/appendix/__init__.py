@@ -1,0 +1,1 @@
+"""The run's appendix: manifest, environment, reporting checklist, verification."""
