@@ -81,7 +81,12 @@ def test_error_list_is_capped_per_rule_with_totals(tmp_path):
     listed = pd.read_csv(tmp_path / "errors.csv", dtype=str, keep_default_na=False)
     rows = listed[listed["rule"] == "number"]
     assert len(rows) == MAX_FINDINGS_PER_RULE + 1  # the capped list plus its total line
-    assert rows["problem"].iat[-1].startswith(f"total: {MAX_FINDINGS_PER_RULE} finding(s) listed (list capped")
+    # exact by construction: 180 rows fail; all but the last listed entry are rows, that one counts the rest
+    assert (
+        rows["problem"].iat[-1]
+        == f"total: 180 problem(s) of this rule ({MAX_FINDINGS_PER_RULE - 1} listed above row by row)"
+    )
+    assert rows["problem"].iat[-2].startswith(f"{180 - (MAX_FINDINGS_PER_RULE - 1)} more row(s) fail this rule")
 
 
 # ---------------------------------------------------------------------------------------------- real workflow

@@ -29,6 +29,7 @@ from regimewise.data.findings import (
     decision_rules,
     identifier_findings,
     long_text_findings,
+    problem_count,
 )
 from regimewise.data.missing import apply_missing_policy
 from regimewise.data.reading import read_table
@@ -190,7 +191,8 @@ def error_rows(findings) -> list[dict]:
         by_rule.setdefault(f.rule, []).append(f)
     rows = []
     for rule in sorted(by_rule):
-        group = sorted(by_rule[rule], key=lambda f: (f.file, f.row or 0, f.column or ""))
+        # a finding that counts a rule's unlisted rows (row None) goes after the rows it follows
+        group = sorted(by_rule[rule], key=lambda f: (f.file, f.row is None, f.row or 0, f.column or ""))
         for f in group[:MAX_FINDINGS_PER_RULE]:
             rows.append(
                 {
@@ -203,11 +205,8 @@ def error_rows(findings) -> list[dict]:
                     "how_to_fix": f.fix,
                 }
             )
-        capped = (
-            " (list capped; the vectorised check may have found more rows)"
-            if len(group) >= MAX_FINDINGS_PER_RULE
-            else ""
-        )
+        by_row = sum(f.row is not None for f in group[:MAX_FINDINGS_PER_RULE])
+        total = sum(problem_count(f) for f in group)  # true total: unlisted rows included
         rows.append(
             {
                 "rule": rule,
@@ -215,7 +214,7 @@ def error_rows(findings) -> list[dict]:
                 "row": "",
                 "column": "",
                 "value": "",
-                "problem": f"total: {len(group)} finding(s) listed{capped}",
+                "problem": f"total: {total} problem(s) of this rule ({by_row} listed above row by row)",
                 "how_to_fix": "",
             }
         )
