@@ -60,13 +60,21 @@ def test_the_guideline_takes_the_actions_of_the_rule_written_out(demo):
     assert list(targets)[-1] == "guideline" and "always_add_agent" in targets
 
 
-def test_the_guideline_is_valued_by_every_estimator_and_its_true_value_lies_in_the_intervals(demo):
+@pytest.fixture(scope="module")
+def evaluated(demo):
+    """The demo cohort's point estimates and one shard of 30 bootstrap replicates."""
     protocol, decisions = demo
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         proba, recommended, q, folds = fit_replicate(decisions, protocol)
         point = evaluate_all(decisions, proba, recommended, protocol, learned_folds=folds, learned_q=q)
-        intervals = combine(point, [run_shard(decisions, protocol, 0)], protocol)
+        return point, run_shard(decisions, protocol, 0)
+
+
+def test_the_guideline_is_valued_by_every_estimator_and_its_true_value_lies_in_the_intervals(demo, evaluated):
+    protocol, _ = demo
+    point, shard = evaluated
+    intervals = combine(point, [shard], protocol)
     guideline = next(r for r in point["regimes"] if r["name"] == "guideline")
     assert guideline["comparator"] is True and "step up when systolic blood pressure > 140 mmHg" in guideline["words"]
     assert set(guideline["estimates"]) == set(ALL)
@@ -83,6 +91,37 @@ def test_the_guideline_is_valued_by_every_estimator_and_its_true_value_lies_in_t
         assert limits["low"] <= truth.value <= limits["high"], (est, limits, truth)
     pairs = {(c["regime"], c["versus"]) for c in intervals["contrasts"]}
     assert ("guideline", "usual_care") in pairs and ("learned", "guideline") in pairs
+
+
+def test_contrasts_are_taken_against_the_protocols_reference(demo, evaluated):
+    # source: the definition of a contrast, regime minus reference, within each replicate
+    protocol, _ = demo
+    point, shard = evaluated
+    spec = protocol.evaluation.model_copy(update={"reference": "guideline"})
+    intervals = combine(point, [shard], protocol.model_copy(update={"evaluation": spec}))
+    assert intervals["reference"] == "guideline"
+    values = {r["name"]: r["estimates"] for r in point["regimes"]}
+    against = [c for c in intervals["contrasts"] if "guideline" in (c["regime"], c["versus"])]
+    assert {c["regime"] for c in against} == set(values) - {"guideline"}  # every other regime, usual care too
+    for c in against:
+        assert c["versus"] == "guideline"
+        mine, theirs = values[c["regime"]][c["estimator"]]["value"], values["guideline"][c["estimator"]]["value"]
+        if c["difference"] is not None:
+            assert c["difference"] == pytest.approx(mine - theirs, abs=1e-12)
+    # by default usual care is the reference: it is never first
+    default = combine(point, [shard], protocol)
+    assert default["reference"] == "usual_care"
+    assert all(c["regime"] != "usual_care" for c in default["contrasts"])
+
+
+def test_a_reference_that_is_not_a_regime_is_refused(tmp_path):
+    content = copy.deepcopy(DEMO)
+    content["data"].update(root=".", decisions="decisions.csv", episodes="episodes.csv")
+    content["evaluation"]["reference"] = "guidline"
+    path = tmp_path / "protocol.yaml"
+    path.write_text(yaml.safe_dump(content), encoding="utf-8")
+    with pytest.raises(ProtocolError, match="evaluation.reference: 'guidline' is not a regime of this protocol"):
+        load_protocol(path)
 
 
 # ---------------------------------------------------------------------------------------------- small MDP

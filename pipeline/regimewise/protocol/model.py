@@ -112,6 +112,18 @@ class Protocol(Strict):
         return self
 
     @model_validator(mode="after")
+    def _reference_is_a_regime(self) -> Protocol:
+        names = ["usual_care", "learned"]
+        names += [f"always_{a}" for a in self.action_labels] if self.evaluation.fixed_strategies else []
+        names += [c.name for c in self.comparators]
+        if self.evaluation.reference not in names:
+            raise ValueError(
+                f"evaluation.reference: {self.evaluation.reference!r} is not a regime of this protocol; use one of "
+                f"{', '.join(names)}"
+            )
+        return self
+
+    @model_validator(mode="after")
     def _survival_needs_episodes(self) -> Protocol:
         if self.survival is not None and self.data.episodes is None:
             raise ValueError(

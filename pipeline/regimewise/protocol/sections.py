@@ -314,6 +314,12 @@ class EvaluationSpec(Strict):
 
     estimators: Annotated[list[EstimatorName], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
     fixed_strategies: Flag = Field(True, description="also evaluate 'always <action>' for every action")
+    reference: Identifier = Field(
+        "usual_care",
+        description="the regime every pairwise contrast is taken against (the second of each pair, as regime minus "
+        "reference): usual_care, learned, always_<action> or a comparator's name; the headline, the strategies' "
+        "table, survival and sensitivity stay against usual care",
+    )
     cross_fit_folds: Annotated[WholeNumber, Field(ge=1, le=10)] = Field(
         2,
         description="the learned regime is evaluated by K-fold cross-fitting by patient: each patient's records "
