@@ -52,7 +52,9 @@ def test_strategies_are_the_evaluated_regimes_and_a_deviation_censors(cohort):
     hold = np.zeros(len(decisions), dtype=np.int64)
     out = survival_analysis(decisions, episodes, proba, hold, protocol)
     names = [row["name"] for row in out["strategies"]]
-    assert names == ["learned", "usual_care", *(f"always_{a}" for a in protocol.action_labels)]
+    comparators = [c.name for c in protocol.comparators]  # the demo's guideline rule: one more strategy
+    assert comparators == ["guideline"]
+    assert names == ["learned", "usual_care", *(f"always_{a}" for a in protocol.action_labels), *comparators]
     learned, always_hold = out["strategies"][0], out["strategies"][2]
     # a learned regime of "hold everywhere" is the always-hold strategy: same clones, same curve
     assert learned["curve"]["survival"] == always_hold["curve"]["survival"]

@@ -46,7 +46,10 @@ def test_run_writes_report_and_summary(two_runs, study):
         "always_step_up",
         "always_add_agent",
         *(s.name for s in protocol_strategies(load_protocol(study).protocol.strategies)),
+        "guideline",  # the demo protocol's comparator
     }
+    html_text = (out / "report" / "report.html").read_text(encoding="utf-8")
+    assert "step up when systolic blood pressure &gt; 140 mmHg" in html_text  # the comparator in clinical words
     # the headline names the protocol's pre-specified strategy, with its verdict (issue 13)
     assert summary["strategies"]["headline"]["verdict"] in summary["headline"]["sentence"]
     assert summary["headline"]["strategy"] == summary["strategies"]["headline"]["name"]

@@ -48,18 +48,21 @@ def interval(estimate, draws, level, scale, basic=False):
     return {"low": low, "high": high, "bootstrap_se": se, "n_replicates": int(draws.size)}
 
 
-def regime_pairs(names: list[str]) -> list[tuple[str, str]]:
-    """Every pair once: against usual care, usual care is the reference; otherwise in listing order."""
+def regime_pairs(names: list[str], reference: str = "usual_care") -> list[tuple[str, str]]:
+    """Every pair once, as (regime, versus): the reference (default usual care) is always second; then usual care;
+    otherwise in listing order."""
     pairs = [(a, b) for i, a in enumerate(names) for b in names[i + 1 :]]
-    return [(b, a) if a == "usual_care" else (a, b) for a, b in pairs]
+    pairs = [(b, a) if a == "usual_care" else (a, b) for a, b in pairs]
+    return [(b, a) if a == reference else (a, b) for a, b in pairs]
 
 
-def compared_pairs(point: dict) -> list[tuple[str, str]]:
-    """The contrasts to bootstrap: every pair of the learned regime, usual care and the fixed strategies, and each
-    strategy of the protocol's ``strategies`` section against usual care only (the trade-off table)."""
+def compared_pairs(point: dict, reference: str = "usual_care") -> list[tuple[str, str]]:
+    """The contrasts to bootstrap: every pair of the learned regime, usual care, the fixed strategies and the
+    comparators, and each strategy of the protocol's ``strategies`` section against usual care (the trade-off
+    table) and against the protocol's reference."""
     strategies = {r["name"] for r in point["regimes"] if "family" in r}
-    pairs = regime_pairs([r["name"] for r in point["regimes"]])
-    return [(a, b) for a, b in pairs if not ({a, b} & strategies) or b == "usual_care"]
+    pairs = regime_pairs([r["name"] for r in point["regimes"]], reference)
+    return [(a, b) for a, b in pairs if not ({a, b} & strategies) or b in ("usual_care", reference)]
 
 
 def _difference(values, a, b, est):
@@ -82,6 +85,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     basic = getattr(spec, "interval_method", "percentile") == "basic"
     settings = (spec.interval_level, scale, basic)
     judged = verdicts_of(point)
+    reference = spec.reference
     value_intervals = {
         name: {
             est: withheld({"value": v, **interval(v, [r[name][est] for r in reps], *settings)}, judged.get((name, est)))
@@ -100,7 +104,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
             },
             worst(judged.get((a, est), SUPPORTED), judged.get((b, est), SUPPORTED)),
         )
-        for a, b in compared_pairs(point)
+        for a, b in compared_pairs(point, reference)
         for est in spec.estimators
     ]
     method = "m-out-of-n (Chakraborty, Laber & Zhao 2013)" if scale != 1.0 else ("basic" if basic else "percentile")
@@ -108,6 +112,7 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
         "level": spec.interval_level,
         "method": method,
         "regime": regime,
+        "reference": reference,
         "replicates": spec.replicates,
         "replicates_used": len(good),
         "replicates_failed": [{"replicate": r["replicate"], "error": r["error"]} for r in failed],
@@ -214,7 +219,16 @@ def merge_intervals(values: dict, intervals: dict | None) -> dict:
     if intervals is not None:
         summary = {
             k: intervals[k]
-            for k in ("level", "method", "regime", "replicates", "replicates_used", "resample", "disagreements")
+            for k in (
+                "level",
+                "method",
+                "regime",
+                "reference",
+                "replicates",
+                "replicates_used",
+                "resample",
+                "disagreements",
+            )
         }
         low = {(r["name"], est): e["low_ess"] for r in values["regimes"] for est, e in r["estimates"].items()}
         summary["contrasts"] = [

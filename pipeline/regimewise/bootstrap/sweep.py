@@ -56,11 +56,13 @@ def find_specification(protocol: Protocol, spec_id: str) -> Specification:
 
 
 def analysis_protocol(spec: Specification, protocol: Protocol) -> Protocol:
-    """The specification's protocol for the sweep: no fixed strategies (not compared here), the sweep's Γ values."""
+    """The specification's protocol for the sweep: no fixed strategies or comparators (not compared here), the
+    sweep's Γ values."""
     p = spec.protocol
     return p.model_copy(
         update={
-            "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False}),
+            "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False, "reference": "usual_care"}),
+            "comparators": [],
             "sensitivity": p.sensitivity.model_copy(update={"gammas": list(protocol.sweeps.gammas)}),
         }
     )

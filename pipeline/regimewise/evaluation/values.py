@@ -72,6 +72,7 @@ def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
 
 
 def regime_targets(
+    frame: pd.DataFrame,
     behaviour_proba: np.ndarray,
     recommended: np.ndarray,
     protocol: Protocol,
@@ -79,7 +80,9 @@ def regime_targets(
 ) -> list[dict]:
     """Every regime to evaluate, learned first: name, label, target probabilities, and for the strategies of the
     protocol's ``strategies`` section their family, parameter and clinical words (also the survival
-    stage's strategies, so both stages name and define the regimes alike).
+    stage's strategies, so both stages name and define the regimes alike). The protocol's comparators follow the
+    fixed strategies, each with its clinical words (``comparator``), acting on the states of ``frame`` (the clean
+    decisions, rows aligned with ``behaviour_proba``).
 
     ``learned_q`` (n, K) holds the learned regime's cross-fitted Q-values, needed by the override strategies.
     """
@@ -98,6 +101,10 @@ def regime_targets(
             }
             for j, a in enumerate(labels)
         ]
+    columns = {name: frame[name].to_numpy(dtype=float) for name in protocol.state_names}
+    for c in protocol.comparators:
+        codes = c.action_codes(columns, len(frame), labels)
+        targets.append({"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c})
     for s in protocol_strategies(protocol.strategies):
         proba = strategy_proba(s, recommended, behaviour_proba, learned_q)
         targets.append({"name": s.name, "label": s.label, "target": proba, "strategy": s})
@@ -198,6 +205,10 @@ def evaluate_target(
     }
     if strategy is not None:
         out.update(strategy.to_dict(), share_changed=share_changed(t["target"], logged.behaviour_proba))
+    if "comparator" in t:
+        c = t["comparator"]
+        out.update(comparator=True, words=c.words(protocol.states), source=c.source)
+        out.update(share_changed=share_changed(t["target"], logged.behaviour_proba))
     return out
 
 
@@ -334,7 +345,7 @@ def evaluate_all(
     ``learned_q`` (n, K): the cross-fitted Q-values the override strategies need.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
-    targets = regime_targets(logged.behaviour_proba, recommended, protocol, learned_q)
+    targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q)
     models = outcome_models(logged, targets, protocol, learned_folds)
     regimes = [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(targets, models)]
     returns = observed_returns(logged, protocol.discount)

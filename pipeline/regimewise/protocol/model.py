@@ -12,6 +12,7 @@ from typing import Annotated
 
 from pydantic import Field, ValidationError, model_validator
 
+from regimewise.protocol.comparators import Comparator, comparator_problem
 from regimewise.protocol.messages import describe_validation_error
 from regimewise.protocol.sections import (
     MAX_SPECIFICATIONS,
@@ -58,6 +59,11 @@ class Protocol(Strict):
     strategies: StrategiesSpec | None = Field(
         None, description="strategies derived from the learned regime (none: only the regime and fixed strategies)"
     )
+    comparators: Annotated[list[Comparator], Field(max_length=20)] = Field(
+        [],
+        description="strategies the protocol names, such as a guideline rule: ordered rules (conditions -> action) "
+        "and a default action, each evaluated, bootstrapped and (with survival) followed like the fixed strategies",
+    )
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:
@@ -97,6 +103,27 @@ class Protocol(Strict):
         return self
 
     @model_validator(mode="after")
+    def _comparators_fit_protocol(self) -> Protocol:
+        _refuse_repeats([c.name for c in self.comparators], "comparators", "comparator name")
+        for index, comparator in enumerate(self.comparators):
+            problem = comparator_problem(index, comparator, self.states, self.actions, self.constraints)
+            if problem:
+                raise ValueError(problem)
+        return self
+
+    @model_validator(mode="after")
+    def _reference_is_a_regime(self) -> Protocol:
+        names = ["usual_care", "learned"]
+        names += [f"always_{a}" for a in self.action_labels] if self.evaluation.fixed_strategies else []
+        names += [c.name for c in self.comparators]
+        if self.evaluation.reference not in names:
+            raise ValueError(
+                f"evaluation.reference: {self.evaluation.reference!r} is not a regime of this protocol; use one of "
+                f"{', '.join(names)}"
+            )
+        return self
+
+    @model_validator(mode="after")
     def _survival_needs_episodes(self) -> Protocol:
         if self.survival is not None and self.data.episodes is None:
             raise ValueError(
@@ -112,6 +139,11 @@ class Protocol(Strict):
 
     @model_validator(mode="after")
     def _sweep_grid_valid(self) -> Protocol:
+        if self.sweeps is not None and self.reward.better == "lower":
+            raise ValueError(
+                "sweeps: the specification sweep counts intervals above zero, which assumes reward.better: higher; "
+                "remove sweeps, or negate the reward column and set reward.better: higher"
+            )
         if self.sweeps is not None:
             if max(self.sweeps.gammas) > self.sensitivity.gamma_max:
                 raise ValueError(f"sweeps.gammas must not exceed sensitivity.gamma_max ({self.sensitivity.gamma_max})")

@@ -160,9 +160,20 @@ class Action(Strict):
 
 
 class RewardSpec(Strict):
-    """The reward is the decisions file's reward column, observed after the action; larger is better."""
+    """The reward is the decisions file's reward column, observed after the action."""
 
     description: LongText
+    better: Literal["higher", "lower"] = Field(
+        "higher",
+        description="which direction of the reward is better: higher (a score) or lower (a cost, a blood pressure); "
+        "with lower the regime is learned on the negated reward, and values and differences stay in the reward's "
+        "own units, a negative difference from usual care then being a benefit",
+    )
+
+    @property
+    def sign(self) -> float:
+        """+1 when higher is better, −1 when lower is: the reward times this is what the learning maximises."""
+        return 1.0 if self.better == "higher" else -1.0
 
 
 class BehaviourModelSpec(Strict):
@@ -303,6 +314,12 @@ class EvaluationSpec(Strict):
 
     estimators: Annotated[list[EstimatorName], Field(min_length=1)] = ["pdwis", "wdr", "fqe"]
     fixed_strategies: Flag = Field(True, description="also evaluate 'always <action>' for every action")
+    reference: Identifier = Field(
+        "usual_care",
+        description="the regime every pairwise contrast is taken against (the second of each pair, as regime minus "
+        "reference): usual_care, learned, always_<action> or a comparator's name; the headline, the strategies' "
+        "table, survival and sensitivity stay against usual care",
+    )
     cross_fit_folds: Annotated[WholeNumber, Field(ge=1, le=10)] = Field(
         2,
         description="the learned regime is evaluated by K-fold cross-fitting by patient: each patient's records "

@@ -20,27 +20,9 @@ import numpy as np
 import pandas as pd
 
 from regimewise.errors import UserInputError
+from regimewise.protocol.comparators import condition_holds, condition_words
 from regimewise.protocol.model import Protocol
-from regimewise.protocol.sections import ClinicalRule, StateCondition
-
-_COMPARE = {
-    "below": np.less,
-    "at_most": np.less_equal,
-    "above": np.greater,
-    "at_least": np.greater_equal,
-}
-
-
-_WORDS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥", "in": "in", "not_in": "not in"}
-
-
-def condition_holds(condition: StateCondition, values: np.ndarray) -> np.ndarray:
-    """Boolean array: where ``condition`` holds for the state values ``values``."""
-    values = np.asarray(values, dtype=float)
-    if condition.comparison in _COMPARE:
-        return _COMPARE[condition.comparison](values, condition.value)
-    inside = np.isin(values, np.asarray(condition.values, dtype=float))
-    return inside if condition.comparison == "in" else ~inside
+from regimewise.protocol.sections import ClinicalRule
 
 
 def rule_applies(rule: ClinicalRule, frame: pd.DataFrame) -> np.ndarray:
@@ -58,11 +40,7 @@ def rule_applies(rule: ClinicalRule, frame: pd.DataFrame) -> np.ndarray:
 
 def describe_rule(rule: ClinicalRule) -> str:
     """Plain words, e.g. 'no step_up, add_agent when potassium > 5.5'."""
-    parts = []
-    for c in rule.when:
-        operand = f"{c.value:g}" if c.values is None else "{" + ", ".join(f"{v:g}" for v in c.values) + "}"
-        parts.append(f"{c.state} {_WORDS[c.comparison]} {operand}")
-    return f"no {', '.join(rule.forbid)} when {' and '.join(parts)}"
+    return f"no {', '.join(rule.forbid)} when {' and '.join(condition_words(c) for c in rule.when)}"
 
 
 @dataclass(frozen=True)

@@ -101,7 +101,7 @@ def fit_q_learning(
         features.transform(decisions),
         decisions["step"].to_numpy(dtype=np.int64),
         action_codes(decisions, protocol.action_labels),
-        decisions["reward"].to_numpy(dtype=float),
+        protocol.reward.sign * decisions["reward"].to_numpy(dtype=float),  # lower is better: maximise −reward
         episode_codes(decisions),
         behaviour_proba,
         rule_permitted=None if rules is None else rules.permitted(decisions),

@@ -230,6 +230,7 @@ def headline_block(p, values) -> dict:
         "strategy": name,
         "label": regime["label"],
         "words": regime.get("words"),
+        "better": p.reward.better,
         "prespecified": p.strategies is not None,
         "estimator": estimator,
         "difference": None if withheld else contrast["difference"],
@@ -258,7 +259,8 @@ def headline_sentence(p, values) -> str:
     direction = "higher" if contrast["difference"] > 0 else "lower"
     sentence = (
         f"By {name}, the learned regime's expected total reward per episode is {abs(contrast['difference']):.2f} "
-        f"{direction} than usual care's{_interval_clause(contrast, values.get('bootstrap'))}, resting on an "
+        f"{direction} than usual care's{reads_as(p, contrast['difference'])}"
+        f"{_interval_clause(contrast, values.get('bootstrap'))}, resting on an "
         f"effective sample of {ess:.1f} episodes"
     )
     if contrast["low_ess"]:
@@ -267,6 +269,13 @@ def headline_sentence(p, values) -> str:
             "difference; a higher support threshold keeps the regime closer to usual care and better supported."
         )
     return sentence + "."
+
+
+def reads_as(p, difference: float) -> str:
+    """' (lower is better: a benefit)' after a difference when the protocol's reward is lower-is-better, else ''."""
+    if p.reward.better == "higher":
+        return ""
+    return f" (lower is better: {'a benefit' if difference < 0 else 'a harm' if difference > 0 else 'no difference'})"
 
 
 def _interval_clause(contrast, bootstrap) -> str:
@@ -400,7 +409,8 @@ def strategy_sentence(p, values: dict) -> str:
     direction = "higher" if h["difference"] > 0 else "lower"
     sentence = (
         f"{start}, the expected total reward per episode would have been {abs(h['difference']):.2f} {direction} "
-        f"than under usual care by {h['estimator']}{_interval_clause(h, values.get('bootstrap'))}, resting on an "
+        f"than under usual care{reads_as(p, h['difference'])} by {h['estimator']}"
+        f"{_interval_clause(h, values.get('bootstrap'))}, resting on an "
         f"effective sample of {h['ess']:.1f} episodes; verdict: {h['verdict']}"
     )
     if h["verdict"] == "model projection":

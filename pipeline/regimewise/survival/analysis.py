@@ -94,7 +94,7 @@ def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=No
     spec = protocol.survival
     timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
-    targets = regime_targets(proba, recommended, protocol, learned_q)
+    targets = regime_targets(decisions, proba, recommended, protocol, learned_q)
     tables, strategies = {}, []
     for entry in targets:
         name, label, target = entry["name"], entry["label"], entry["target"]
