@@ -59,7 +59,7 @@ def parse(argv=None):
         "--headline-only",
         action="store_true",
         help="evaluate only usual care, the learned regime and the headline strategy (no other strategy of the "
-        "grids, no fixed strategies): the headline's estimates and replicates are unchanged, the cost is lower",
+        "grids, no fixed strategies, no comparators): the headline's estimates and replicates are unchanged, the cost is lower",
     )
     return parser.parse_args(argv)
 
@@ -70,12 +70,13 @@ def headline(p):
 
 
 def headline_only(p):
-    """The protocol with usual care, the learned regime and the headline strategy only."""
+    """The protocol with usual care, the learned regime and the headline strategy only (no comparator)."""
     h = p.strategies.headline
     grids = {f: ([h.value] if f == h.family else []) for f in ("partial_adoption", "override_gain", "incremental_odds")}
     return p.model_copy(
         update={
             "strategies": p.strategies.model_copy(update=grids),
+            "comparators": [],
             "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False}),
         }
     )
