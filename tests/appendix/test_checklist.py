@@ -144,6 +144,7 @@ def _summary() -> dict:
             "ess": 45.8,
             "verdict": "supported",
             "sentence": "Headline sentence of the test.",
+            "better": "higher",
         },
         "learned_regime_sentence": "Learned regime sentence of the test.",
         "strategies": {
