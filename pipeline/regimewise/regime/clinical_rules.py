@@ -1,9 +1,10 @@
 """Clinical rules of the protocol as masks of permitted actions.
 
 A rule forbids some actions at decisions where all its structured conditions hold (a state below, at most,
-above or at least a value, or in / not in a set). The intensity limit forbids every action whose ordinal
-intensity change exceeds ``max_intensity_change`` in absolute value. Nothing here evaluates text as code: each
-comparison is one of a fixed set of numpy functions.
+above or at least a value, or in / not in a set: numbers, or the levels of a categorical state, which takes no
+other comparison). The intensity limit forbids every action whose ordinal intensity change exceeds
+``max_intensity_change`` in absolute value. Nothing here evaluates text as code: each comparison is one of a fixed
+set of numpy functions.
 
 The permitted set at a decision is the intersection of these rules with the support constraint
 (:func:`regimewise.regime.permitted.constrained_choice`); when it is empty the regime falls back to the most likely
@@ -22,6 +23,7 @@ import pandas as pd
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
 from regimewise.protocol.sections import ClinicalRule, StateCondition
+from regimewise.protocol.types import level_text
 
 _COMPARE = {
     "below": np.less,
@@ -36,10 +38,13 @@ _WORDS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥", "in":
 
 def condition_holds(condition: StateCondition, values: np.ndarray) -> np.ndarray:
     """Boolean array: where ``condition`` holds for the state values ``values``."""
-    values = np.asarray(values, dtype=float)
+    values = np.asarray(values)
     if condition.comparison in _COMPARE:
-        return _COMPARE[condition.comparison](values, condition.value)
-    inside = np.isin(values, np.asarray(condition.values, dtype=float))
+        return _COMPARE[condition.comparison](values.astype(float), condition.value)
+    if values.dtype.kind in "OUST":  # a categorical state's levels (the protocol checked the listed ones)
+        inside = np.isin(values.astype(str), [level_text(v) for v in condition.values])
+    else:
+        inside = np.isin(values.astype(float), np.asarray(condition.values, dtype=float))
     return inside if condition.comparison == "in" else ~inside
 
 
@@ -60,9 +65,13 @@ def describe_rule(rule: ClinicalRule) -> str:
     """Plain words, e.g. 'no step_up, add_agent when potassium > 5.5'."""
     parts = []
     for c in rule.when:
-        operand = f"{c.value:g}" if c.values is None else "{" + ", ".join(f"{v:g}" for v in c.values) + "}"
+        operand = f"{c.value:g}" if c.values is None else "{" + ", ".join(map(_operand, c.values)) + "}"
         parts.append(f"{c.state} {_WORDS[c.comparison]} {operand}")
     return f"no {', '.join(rule.forbid)} when {' and '.join(parts)}"
+
+
+def _operand(value) -> str:
+    return value if isinstance(value, str) else f"{value:g}"
 
 
 @dataclass(frozen=True)
