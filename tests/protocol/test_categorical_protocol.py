@@ -9,6 +9,7 @@ from support.tiny import tiny_protocol_dict
 
 from regimewise.errors import ProtocolError
 from regimewise.protocol import load_protocol
+from regimewise.protocol.model import sweep_specifications
 
 EDU = {"name": "edu", "label": "Education", "kind": "categorical", "levels": ["low", "mid", "high"]}
 
@@ -93,3 +94,12 @@ def test_indicator_policy_and_splines_refused_for_categorical(tmp_path):
         _protocol(tmp_path, data=data)
     with pytest.raises(ProtocolError, match="'edu' is not a declared continuous or integer state"):
         _protocol(tmp_path, behaviour_model={"spline_states": ["edu"]})
+
+
+def test_sweep_specifications_revalidate_a_protocol_with_categorical_and_numeric_states(tmp_path):
+    p = _protocol(tmp_path, {"rare_levels": "merge"}, sweeps={"axes": {"q_model.basis": ["linear", "cubic"]}})
+    specs = sweep_specifications(p)
+    # Exact: the protocol's own setting (linear) and the one other value; each a whole valid protocol whose states
+    # are the protocol's (a dumped numeric state holds the categorical fields' defaults, which are not refused).
+    assert [s.settings for s in specs] == [{"q_model.basis": "linear"}, {"q_model.basis": "cubic"}]
+    assert all(s.protocol.states == p.states for s in specs)

@@ -163,7 +163,9 @@ class StateVariable(Strict):
             return self._levels_valid()
         if self.plausible_range is None:
             raise ValueError(f"state {self.name!r} ({self.kind}) needs plausible_range: [low, high]")
-        extra = sorted({"levels", "reference", "rare_levels", "other_level"} & self.model_fields_set)
+        given = {"levels": self.levels, "reference": self.reference}
+        given |= {"rare_levels": self.rare_levels != "refuse", "other_level": self.other_level != "other"}
+        extra = sorted(key for key, value in given.items() if value)  # a dumped protocol holds the defaults
         if extra:
             raise ValueError(f"state {self.name!r}: {extra[0]} applies to categorical states only; remove it")
         low, high = self.plausible_range
