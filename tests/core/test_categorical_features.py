@@ -93,3 +93,11 @@ def test_numeric_codes_match_levels_written_as_text():
     X = StateScaler.fit(data, p).transform(data)
     # Reference: patsy's treatment coding of the same integer codes (first level 1 dropped).
     np.testing.assert_allclose(X[:, 2:4], np.asarray(patsy.dmatrix("C(x)", data))[:, 1:], atol=1e-12)
+
+
+def test_state_matrix_of_the_dropout_model_is_unscaled_with_dummies():
+    p, data = categorical_protocol(), frame()
+    matrix = StateScaler.fit(data, p).state_matrix(data)
+    # Reference: the recorded numeric states, then patsy's treatment coding of x (reference 'b').
+    dummies = np.asarray(patsy.dmatrix("C(x, Treatment(reference='b'))", data))[:, 1:]
+    np.testing.assert_allclose(matrix, np.column_stack([data["bp"], data["flag"], dummies]), rtol=0, atol=1e-12)

@@ -140,3 +140,20 @@ def test_levels_of_an_age_state_are_still_ages(tmp_path):
     findings, _ = collect_findings(load_protocol(write_tiny(tmp_path, raw, frame)))
     # Safe Harbor, 45 CFR 164.514(b)(2)(i)(C): ages over 89 are identifiers; every third row holds 95.
     assert {f.rule for f in findings} == {"age_over_89"} and len(findings) == 40
+
+
+def test_carry_forward_fills_a_missing_level_with_the_previous_one(tmp_path):
+    values = common_levels()
+    values[4] = None  # episode E001, step 1; step 0 (row 3) holds values[3]
+    raw = tiny_protocol_dict()
+    raw["states"].append(
+        {"name": "edu", "label": "Education", "kind": "categorical", "levels": LEVELS, "reference": "school"}
+    )
+    raw["data"]["missing"] = {"edu": "carry_forward"}
+    frame = tiny_decisions(40)
+    frame["edu"] = values
+    pf = load_protocol(write_tiny(tmp_path, raw, frame))
+    # Exact: the episode's last observed level (row 3) is carried to row 4; nothing else changes.
+    expected = values.copy()
+    expected[4] = values[3]
+    assert validate_records(pf).decisions["edu"].tolist() == expected.tolist()

@@ -7,12 +7,14 @@ import pytest
 from support.tiny import tiny_decisions, tiny_protocol_dict, write_tiny
 
 from regimewise.bootstrap.replicates import fit_replicate
+from regimewise.core.features import StateScaler
 from regimewise.data.validate import validate_records
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
 from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.protocol import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
+from regimewise.regime.readable import distill_regime
 
 LEVELS = ["low", "mid", "high"]
 ACTIONS = ["hold", "up", "down"]
@@ -85,3 +87,15 @@ def test_cohort_and_balance_show_level_shares(study):
     assert "edu" not in rows
     balance = balance_by_step(decisions, proba, protocol)
     assert set(balance["0"]["states"]) == {"bp", "flag", "edu[low]", "edu[mid]", "edu[high]"}
+
+
+def test_readable_tree_names_levels(study):
+    protocol, decisions = study
+    scaler = StateScaler.fit(decisions, protocol)
+    best = decisions["edu"].map(lambda v: BEST[v][0]).to_numpy()
+    readable = distill_regime(scaler.covariate_frame(decisions), best, scaler.covariate_states(protocol), ACTIONS)
+    # Exact: the best action is hold at low and mid and up at high, so a depth-1 split on the 'high' dummy (or
+    # deeper splits on the levels) reproduces it; the conditions name the level, never a 0/1 dummy.
+    assert readable.fidelity == 1.0
+    texts = [c for rule in readable.rules for c in rule.conditions]
+    assert texts and all(c.startswith("edu = ") or c.startswith("edu ≠ ") for c in texts), texts
