@@ -69,7 +69,11 @@ class StateScaler:
                         continue
                     if level == base or level not in present:
                         dropped.append(column)
-                        log.info("level %s is constant in the training decisions; left out of the covariates", column)
+                        log.info(
+                            "level %s is absent from the training decisions or stands in for the absent "
+                            "reference; left out of the covariates",
+                            column,
+                        )
                         continue
                     names.append(column)
                     dummies.append((column, s.name, level))
