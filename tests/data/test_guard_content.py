@@ -52,6 +52,7 @@ def test_identifier_shaped_numbers_in_an_extra_column_are_refused(tmp_path, caps
     episodes["extra_code"] = values.astype(str) if as_text else values
     shown = _check_fails(tmp_path, capsys, episodes=episodes)
     assert "column 'extra_code'" in shown
+    shown = shown.replace(str(tmp_path), "<tmp>")  # pytest's folder number (pytest-96) is not a leaked value
     for value in values[:5]:
         assert f"{value}" not in shown.replace("extra_code", "")
 

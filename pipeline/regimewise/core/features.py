@@ -1,7 +1,8 @@
 """Numeric design matrices built from the protocol's state variables.
 
 Continuous and integer states are centred and scaled by their training mean and standard deviation (kept in
-the fitted :class:`StateScaler`, so new states are transformed the same way); binary states stay 0/1.
+the fitted :class:`StateScaler`, so new states are transformed the same way); binary states stay 0/1; a
+categorical state becomes one 0/1 column per level other than its reference (treatment coding).
 Scaling changes no least-squares prediction; it keeps Newton steps of the usual-care model well conditioned.
 
 A state whose missing-data policy is ``indicator`` (:mod:`regimewise.data.missing`) adds its 0/1 column
@@ -19,18 +20,25 @@ import pandas as pd
 
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
+from regimewise.protocol.types import level_text
 
 log = logging.getLogger(__name__)
 
 
 @dataclass(frozen=True)
 class StateScaler:
-    """Centring and scaling of each state column, learned from training decisions, plus missing indicators.
+    """Centring and scaling of each state column, learned from training decisions, plus dummies and indicators.
 
-    ``names`` lists the protocol's states, then the missing-indicator columns in use (``indicators``; mean 0,
-    scale 1). An indicator column that is constant in the training decisions (no value of its state was
-    missing, or every one was) carries no information and would make the usual-care design singular: it is
-    left out (``indicators_dropped``), with a log message and an entry in :meth:`to_dict`.
+    ``names`` lists the covariate columns: the protocol's states in order, a categorical state expanded in place
+    into one 0/1 column ``<state>[<level>]`` per level other than its reference (treatment coding; levels in the
+    protocol's order, then the merged ``other_level``), then the missing-indicator columns in use
+    (``indicators``). Dummies and indicators have mean 0 and scale 1 (they are not scaled). A dummy or indicator
+    column that is constant in the training decisions (a level absent from them, e.g. in a cross-fitting fold or
+    a bootstrap resample, or merged away as rare) carries no information and would make the usual-care design
+    singular: it is left out (``dummies_dropped``, ``indicators_dropped``), with a log message and an entry in
+    :meth:`to_dict`; a decision at such a level is then coded like the reference level. When the reference level
+    itself is absent from the training decisions, the first level present takes its place (its dummy is left
+    out too), so the dummies never sum to the intercept.
 
     A frame without an indicator column (e.g. states simulated for new patients, which are complete) is read
     by this rule: when its state column has no missing value, every indicator is 0 (it records exactly that the
@@ -43,11 +51,36 @@ class StateScaler:
     scales: tuple[float, ...]
     indicators: tuple[str, ...] = ()
     indicators_dropped: tuple[str, ...] = ()
+    dummies: tuple[tuple[str, str, str], ...] = ()  # (column name, state, level) of each dummy column in use
+    dummies_dropped: tuple[str, ...] = ()
+    levels: tuple[tuple[str, tuple[str, ...]], ...] = ()  # (state, every level it may take) of each categorical
 
     @classmethod
     def fit(cls, frame: pd.DataFrame, protocol: Protocol) -> StateScaler:
-        means, scales = [], []
+        names, means, scales, dummies, dropped = [], [], [], [], []
         for s in protocol.states:
+            if s.kind == "categorical":
+                text = level_values(frame, s.name, s.coded_levels)
+                present = [level for level in s.coded_levels if (text == level).any()]
+                base = s.reference_level if s.reference_level in present or not present else present[0]
+                for level in s.coded_levels:
+                    column = dummy_name(s.name, level)
+                    if level == s.reference_level:
+                        continue
+                    if level == base or level not in present:
+                        dropped.append(column)
+                        log.info(
+                            "level %s is absent from the training decisions or stands in for the absent "
+                            "reference; left out of the covariates",
+                            column,
+                        )
+                        continue
+                    names.append(column)
+                    dummies.append((column, s.name, level))
+                    means.append(0.0)
+                    scales.append(1.0)
+                continue
+            names.append(s.name)
             values = frame[s.name].to_numpy(dtype=float)
             if s.kind == "binary":
                 means.append(0.0)
@@ -56,28 +89,89 @@ class StateScaler:
                 sd = float(values.std())
                 means.append(float(values.mean()))
                 scales.append(sd if sd > 0 else 1.0)
-        used, dropped = _split_constant_indicators(frame, indicator_columns(protocol))
+        used, dropped_indicators = _split_constant_indicators(frame, indicator_columns(protocol))
         ones = (1.0,) * len(used)
-        return cls(protocol.state_names + used, tuple(means) + (0.0,) * len(used), tuple(scales) + ones, used, dropped)
+        levels = tuple((s.name, s.coded_levels) for s in protocol.states if s.kind == "categorical")
+        return cls(
+            tuple(names) + used,
+            tuple(means) + (0.0,) * len(used),
+            tuple(scales) + ones,
+            used,
+            dropped_indicators,
+            tuple(dummies),
+            tuple(dropped),
+            levels,
+        )
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        if not self.indicators:
-            values = frame.loc[:, list(self.names)].to_numpy(dtype=float)
-        else:
-            states = frame.loc[:, list(self.names[: -len(self.indicators)])].to_numpy(dtype=float)
-            values = np.column_stack([states, *(indicator_values(frame, c) for c in self.indicators)])
-        return (values - np.asarray(self.means)) / np.asarray(self.scales)
+        return (self.unscaled(frame) - np.asarray(self.means)) / np.asarray(self.scales)
+
+    def unscaled(self, frame: pd.DataFrame) -> np.ndarray:
+        """The covariate columns before centring and scaling (states as recorded, dummies, indicators).
+
+        Raises :class:`UserInputError` if a categorical state takes a value outside its levels (validation
+        reports such values as findings)."""
+        states = list(self.names[: len(self.names) - len(self.indicators)])
+        if not self.dummies and not self.indicators:
+            return frame.loc[:, states].to_numpy(dtype=float)
+        dummies = {column: (state, level) for column, state, level in self.dummies}
+        text = {state: level_values(frame, state, levels) for state, levels in self.levels}
+        columns = [
+            (text[dummies[n][0]] == dummies[n][1]).astype(float) if n in dummies else frame[n].to_numpy(dtype=float)
+            for n in states
+        ]
+        columns += [indicator_values(frame, column) for column in self.indicators]
+        return np.column_stack(columns) if columns else np.zeros((len(frame), 0))
+
+    def covariate_frame(self, frame: pd.DataFrame) -> pd.DataFrame:
+        """The covariate columns by name, unscaled: numeric states as recorded, dummies and indicators 0/1."""
+        return pd.DataFrame(self.unscaled(frame), columns=list(self.names), index=frame.index)
+
+    def state_matrix(self, frame: pd.DataFrame) -> np.ndarray:
+        """The states' columns unscaled (numeric states as recorded, categorical states as dummies), without
+        the missing indicators."""
+        return self.unscaled(frame)[:, : len(self.names) - len(self.indicators)]
 
     def covariate_states(self, protocol: Protocol) -> tuple:
-        """The protocol's states, then each indicator in use as a binary :class:`IndicatorCovariate`."""
-        return (*protocol.states, *(IndicatorCovariate(c) for c in self.indicators))
+        """Each covariate by name and kind: the numeric states, then each dummy of a categorical state and each
+        indicator in use as a binary :class:`IndicatorCovariate`."""
+        states = {s.name: s for s in protocol.states}
+        return tuple(states.get(n) or IndicatorCovariate(n) for n in self.names)
 
     def to_dict(self) -> dict:
         out = {"names": list(self.names), "means": list(self.means), "scales": list(self.scales)}
         if self.indicators or self.indicators_dropped:
             out["missing_indicators"] = list(self.indicators)
             out["missing_indicators_dropped_constant"] = list(self.indicators_dropped)
+        if self.levels:
+            out["levels_dropped_constant"] = list(self.dummies_dropped)
         return out
+
+
+def dummy_name(state: str, level: str) -> str:
+    """Name of the 0/1 column of one level of a categorical state, e.g. ``education[college]``."""
+    return f"{state}[{level}]"
+
+
+def as_level_text(values: pd.Series) -> np.ndarray:
+    """Each value as categorical level text (:func:`regimewise.protocol.types.level_text`; a missing value reads
+    ``nan``), computed once per distinct value."""
+    if not len(values):
+        return np.zeros(0, dtype=object)
+    codes, uniques = pd.factorize(values, use_na_sentinel=False)
+    return np.asarray([level_text(u) for u in uniques], dtype=object)[codes]
+
+
+def level_values(frame: pd.DataFrame, state: str, levels: tuple[str, ...]) -> np.ndarray:
+    """A categorical state's values as level text; :class:`UserInputError` if one is not among ``levels``."""
+    text = as_level_text(frame[state])
+    unknown = ~np.isin(text, np.asarray(levels, dtype=object))
+    if unknown.any():
+        raise UserInputError(
+            f"categorical state {state!r} has {int(unknown.sum())} value(s) outside its levels {list(levels)}; "
+            "pass the records through validation"
+        )
+    return text
 
 
 @dataclass(frozen=True)
@@ -119,7 +213,8 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
 
 @dataclass(frozen=True)
 class QFeatures:
-    """Covariates of the Q-model: scaled states, plus powers of the non-binary states for a polynomial basis.
+    """Covariates of the Q-model: scaled states, plus powers of the continuous and integer states for a polynomial
+    basis (a binary state, a categorical state's dummies and a missing indicator get no powers).
 
     The Q-model stays linear in its parameters (least squares per decision point and action, i.e. full
     action-by-covariate interactions); powers let it bend, e.g. for a reward penalising distance from a target.
@@ -134,7 +229,8 @@ class QFeatures:
     @classmethod
     def from_protocol(cls, scaler: StateScaler, protocol: Protocol) -> QFeatures:
         degree = {"linear": 1, "quadratic": 2, "cubic": 3}[protocol.q_model.basis]
-        squared = tuple(i for i, s in enumerate(protocol.states) if degree > 1 and s.kind != "binary")
+        numeric = {s.name for s in protocol.states if s.kind in ("continuous", "integer")}
+        squared = tuple(i for i, n in enumerate(scaler.names) if degree > 1 and n in numeric)
         return cls(scaler, squared, max(degree, 2))
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:

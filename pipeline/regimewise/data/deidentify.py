@@ -62,6 +62,7 @@ from regimewise.protocol.identifiers import (
     scrub,
     shown_value,
 )
+from regimewise.protocol.types import level_text
 
 __all__ = [
     "IdentifierHit",
@@ -298,15 +299,23 @@ def header_category(name: str) -> str | None:
     return column_name_category(name) or identifier_category(name, names=False)
 
 
-def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=(), ages=()) -> list[IdentifierHit]:
+def find_identifiers(
+    frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=(), ages=(), levels=None
+) -> list[IdentifierHit]:
     """Every identifier-like column header and value in a table, skipping acknowledged columns.
 
     Header hits come first (one per column, ``row`` None); a refused column's values are not scanned. Columns in
     ``id_columns`` are read as id columns, those in ``declared`` by their declared meaning, the rest also by the
     content rules (see :func:`value_hits`). Columns in ``ages`` (states declared as ages, whatever the column's
-    name) hold ages; any other column holds ages when its name says so (:func:`is_age_column`).
+    name) hold ages; any other column holds ages when its name says so (:func:`is_age_column`). ``levels`` maps
+    the column of each categorical state to its declared levels: a cell holding one of them is a label the
+    protocol's author listed one by one (and the protocol's own guard checked), so it is not read by value
+    shape (a declared site code ``10001`` is not a postcode); the column's other cells are read as above
+    (validation also reports them as undeclared levels). The levels of a state declared as an age (in ``ages``)
+    are still read as ages: a level above 89 is refused.
     """
     acknowledged, id_columns, declared, ages = set(acknowledged), set(id_columns), set(declared), set(ages)
+    levels = dict(levels or {})
     hits = []
     for column in frame.columns:
         name = str(column)
@@ -317,5 +326,15 @@ def find_identifiers(frame: pd.DataFrame, acknowledged=(), id_columns=(), declar
             hits.append(IdentifierHit(name, None, category))
             continue
         role = ID if name in id_columns else DECLARED if name in declared else OTHER
-        hits += value_hits(name, frame[column], role, age=True if name in ages else None)
+        labels = name in levels and name not in ages  # an age state's levels are still ages
+        values = _undeclared_levels(frame[column], levels[name]) if labels else frame[column]
+        hits += value_hits(name, values, role, age=True if name in ages else None)
     return hits
+
+
+def _undeclared_levels(values: pd.Series, levels) -> pd.Series:
+    """The column with every cell holding a declared level blanked (missing), the others as they are."""
+    codes, uniques = pd.factorize(values, use_na_sentinel=True)
+    declared = np.isin(np.asarray([level_text(u) for u in uniques], dtype=object), np.asarray(list(levels), object))
+    blank = np.append(declared, False)[codes]
+    return values.astype(object).mask(blank) if blank.any() else values

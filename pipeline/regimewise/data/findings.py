@@ -10,11 +10,12 @@ from typing import Annotated, Any, Literal
 
 import numpy as np
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, create_model
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, create_model
 
 from regimewise.data.deidentify import find_identifiers, is_age_column, mask, shown_value
 from regimewise.data.missing import blank_mask
 from regimewise.protocol.loading import ProtocolFile
+from regimewise.protocol.types import level_text
 
 MAX_VALUE_CHARS = 40
 
@@ -60,7 +61,7 @@ class FieldRule:
     """What one column must hold: a number (optionally whole, within bounds) or one of a set of labels."""
 
     column: str
-    kind: Literal["number", "integer", "label", "text"]
+    kind: Literal["number", "integer", "label", "text", "level"]
     low: float | None = None
     high: float | None = None
     labels: tuple[str, ...] = ()
@@ -70,6 +71,8 @@ class FieldRule:
         """The pydantic type of this field."""
         if self.kind == "label":
             return Literal[self.labels]  # type: ignore[valid-type]
+        if self.kind == "level":
+            return Annotated[Literal[self.labels], BeforeValidator(level_text)]  # type: ignore[valid-type]
         if self.kind == "text":
             return Annotated[str, Field(min_length=1)]
         base = int if self.kind == "integer" else float
@@ -98,6 +101,10 @@ def decision_rules(pf: ProtocolFile) -> list[FieldRule]:
             )
         )
     for s in p.states:
+        if s.kind == "categorical":
+            fix = f"correct the record, or add the level to levels of {s.name} in the protocol"
+            rules.append(FieldRule(s.source_column, "level", labels=tuple(s.levels), fix=fix))
+            continue
         low, high = s.plausible_range
         kind = "number" if s.kind == "continuous" else "integer"
         rules.append(
@@ -130,6 +137,10 @@ def _failing_rows(frame: pd.DataFrame, rule: FieldRule) -> np.ndarray:
         return raw.isna().to_numpy() | blank_mask(raw)
     if rule.kind == "label":
         return ~raw.isin(rule.labels).to_numpy()
+    if rule.kind == "level":
+        codes, uniques = pd.factorize(raw, use_na_sentinel=True)
+        known = np.isin(np.asarray([level_text(u) for u in uniques], dtype=object), np.asarray(rule.labels, object))
+        return np.append(~known, True)[codes]  # a missing value (code -1) is a finding too
     numbers = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float)
     bad = ~np.isfinite(numbers)
     if rule.kind == "integer":
@@ -187,6 +198,7 @@ NOT_PLAIN = {
     "number": "not a plain number: write digits with an optional sign, decimal point and exponent (no _ or spaces)",
     "integer": "not a plain whole number: write digits with an optional sign (no _, spaces or decimals)",
     "label": "not one of the action labels",
+    "level": "not one of the state's declared levels",
     "text": "value is missing or blank",
 }
 
@@ -212,7 +224,8 @@ def _python_value(value):
 
 
 def _rule_name(rule: FieldRule) -> str:
-    return {"label": "action_label", "text": "identifier_text", "integer": "whole_number"}.get(rule.kind, "number")
+    names = {"label": "action_label", "text": "identifier_text", "integer": "whole_number", "level": "undeclared_level"}
+    return names.get(rule.kind, "number")
 
 
 def plain(msg: str) -> str:
@@ -296,7 +309,8 @@ def identifier_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> lis
     source = source_rows(frame)
     position = {str(c): i + 1 for i, c in enumerate(frame.columns)}
     findings = []
-    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared, ages=ages):
+    levels = {s.source_column: s.levels for s in pf.protocol.states if s.kind == "categorical"}  # labels, not values
+    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared, ages=ages, levels=levels):
         if hit.row is None:
             findings.append(
                 Finding(

@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from regimewise.core.features import as_level_text
 from regimewise.data.findings import (
     MAX_DAY,
     MAX_FINDINGS_PER_RULE,
@@ -113,8 +114,90 @@ def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Fi
         ]
     findings = field_findings(file, frame, rules)
     if not findings:
-        findings = _sequence_findings(file, frame, pf)
+        findings = _sequence_findings(file, frame, pf) + level_findings(pf, frame, file)
     return findings
+
+
+# ---------------------------------------------------------------------------------------------- categorical states
+def level_counts(frame: pd.DataFrame, state) -> dict[str, int]:
+    """Decisions at each declared level of a categorical state (raw column; every value is a declared level)."""
+    counts = pd.Series(as_level_text(frame[state.source_column])).value_counts()
+    return {level: int(counts.get(level, 0)) for level in state.levels}
+
+
+def rare_levels(counts: dict[str, int], state, threshold: int) -> list[str]:
+    """Levels other than the reference with some decisions, but fewer than ``threshold``."""
+    return [v for v, n in counts.items() if 0 < n < threshold and v != state.reference_level]
+
+
+def level_findings(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Finding]:
+    """Categorical states whose reference level, or (``rare_levels: refuse``) another level, or (``merge``) the
+    merged level, has fewer decisions than ``report.min_cell_count``: one finding each, naming level and count."""
+    threshold = pf.protocol.report.min_cell_count
+    findings = []
+    for s in pf.protocol.states:
+        if s.kind != "categorical":
+            continue
+        counts = level_counts(frame, s)
+        rare = rare_levels(counts, s, threshold)
+        problems = []
+        if counts[s.reference_level] < threshold:
+            problems.append(
+                (
+                    f"reference level {s.reference_level!r} has {counts[s.reference_level]} decision(s), fewer "
+                    f"than report.min_cell_count ({threshold})",
+                    f"choose a more common level as reference of {s.name}",
+                )
+            )
+        if s.rare_levels == "refuse":
+            problems += [
+                (
+                    f"level {v!r} has {counts[v]} decision(s), fewer than report.min_cell_count ({threshold})",
+                    f"set rare_levels: merge on {s.name} to merge it into {s.other_level!r}, or combine levels",
+                )
+                for v in rare
+            ]
+        elif rare and sum(counts[v] for v in rare) < threshold:
+            shown = ", ".join(repr(v) for v in rare)
+            problems.append(
+                (
+                    f"rare level(s) {shown} merged into {s.other_level!r} have {sum(counts[v] for v in rare)} "
+                    f"decision(s) together, fewer than report.min_cell_count ({threshold})",
+                    f"combine them with a common level of {s.name} in the records, or lower report.min_cell_count",
+                )
+            )
+        findings += [
+            Finding(file=file, row=None, column=s.source_column, value=None, rule="rare_level", message=m, fix=f)
+            for m, f in problems
+        ]
+    return findings
+
+
+def merged_levels(frame: pd.DataFrame, pf: ProtocolFile) -> dict[str, dict]:
+    """For validation.json: each categorical state's reference, counts by clean level (merged levels under
+    ``other_level``), the levels merged as rare and the declared levels absent from the records."""
+    out = {}
+    threshold = pf.protocol.report.min_cell_count
+    for s in pf.protocol.states:
+        if s.kind != "categorical":
+            continue
+        counts = level_counts(frame, s)
+        rare = rare_levels(counts, s, threshold) if s.rare_levels == "merge" else []
+        kept = {v: n for v, n in counts.items() if v not in rare and n > 0}
+        if rare:
+            kept[s.other_level] = sum(counts[v] for v in rare)
+        absent = [v for v, n in counts.items() if n == 0]
+        out[s.name] = {"reference": s.reference_level, "decisions": kept, "merged": rare, "absent": absent}
+    return out
+
+
+def _clean_levels(frame: pd.DataFrame, state, threshold: int) -> pd.Series:
+    """A categorical state's clean column: level text, rare levels replaced by ``other_level`` when merged."""
+    text = pd.Series(as_level_text(frame[state.source_column]), index=frame.index)
+    if state.rare_levels == "merge":
+        rare = rare_levels(level_counts(frame, state), state, threshold)
+        text = text.where(~text.isin(rare), state.other_level)
+    return text
 
 
 def _header_hint(frame: pd.DataFrame) -> str:
@@ -136,7 +219,10 @@ def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
         "day": pd.to_numeric(frame[cols.step if cols.day is None else cols.day]).astype(np.int64),
     }
     for s in p.states:
-        columns[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
+        if s.kind == "categorical":
+            columns[s.name] = _clean_levels(frame, s, p.report.min_cell_count)
+        else:
+            columns[s.name] = pd.to_numeric(frame[s.source_column]).astype(np.float64)
     columns["action"] = frame[cols.action].astype(str)
     columns["reward"] = pd.to_numeric(frame[cols.reward]).astype(np.float64)
     for s in p.states:

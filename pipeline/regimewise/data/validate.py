@@ -39,6 +39,7 @@ from regimewise.data.records import (
     clean_decisions,
     clean_episodes,
     episode_runs,
+    merged_levels,
     raise_if,
 )
 from regimewise.io import write_text
@@ -90,7 +91,7 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
         if findings:
             return findings, None
     episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
-    summary = summarise(pf, decisions, raw, missing_actions, len(dropped))
+    summary = summarise(pf, decisions, raw, missing_actions, len(dropped), frame)
     summary["defaulted_columns"] = defaulted
     return [], ValidationResult(decisions=decisions, episodes=episodes, summary=summary)
 
@@ -272,9 +273,11 @@ def summarise(
     raw: pd.DataFrame,
     missing_actions: dict | None = None,
     episodes_dropped: int = 0,
+    frame: pd.DataFrame | None = None,
 ) -> dict:
     """Counts for validation.json (no individual-level values)."""
     p = pf.protocol
+    levels = merged_levels(frame, pf) if frame is not None else {}
     starts, lengths = episode_runs(decisions)
     known = {r.column for r in decision_rules(pf)} | {f"{s}_missing" for s in p.state_names}
     return {
@@ -294,6 +297,7 @@ def summarise(
         "missing_data": missing_actions or {},
         "acknowledged_columns": [a.model_dump() for a in p.data.acknowledged_columns],
         "extra_columns_ignored": sorted(set(map(str, raw.columns)) - known),
+        **({"categorical_levels": levels} if levels else {}),
     }
 
 
@@ -308,6 +312,8 @@ RULES_CHECKED = (
     "whole_number",
     "number",
     "action_label",
+    "undeclared_level",
+    "rare_level",
     "duplicate_decision",
     "step_sequence",
     "day_order",

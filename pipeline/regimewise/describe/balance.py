@@ -4,9 +4,11 @@ usual care's actions, before and after inverse-probability weighting, at every d
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
-from regimewise.core.features import action_codes
+from regimewise.core.features import action_codes, dummy_name, level_values
 from regimewise.core.weighting import inverse_probability_weights
 from regimewise.usual_care.metrics import probability_of_taken
 
@@ -65,6 +67,33 @@ def smd(x1, x0, binary=False):
 
 
 # ---------------------------------------------------------------------------------------------- balance
+@dataclass(frozen=True)
+class StateColumn:
+    """One described column of a state: a numeric state itself, or one level of a categorical state (0/1)."""
+
+    state: object
+    name: str
+    label: str
+    values: np.ndarray
+    binary: bool
+
+
+def state_columns(decisions, state) -> list[StateColumn]:
+    """The columns describing a state: the state itself, or for a categorical state one 0/1 column per level
+    present in ``decisions`` (the reference included; a level merged away as rare is absent), named
+    ``<state>[<level>]``, whose mean is the level's share."""
+    if state.kind != "categorical":
+        values = decisions[state.name].to_numpy(dtype=float)
+        return [StateColumn(state, state.name, state.label, values, state.kind == "binary")]
+    text = level_values(decisions, state.name, state.coded_levels)
+    columns = []
+    for level in state.coded_levels:
+        values = (text == level).astype(float)
+        if values.any():
+            columns.append(StateColumn(state, dummy_name(state.name, level), f"{state.label}: {level}", values, True))
+    return columns
+
+
 def balance_by_step(decisions, proba, protocol):
     """Unweighted and inverse-probability-weighted SMDs of every state at every decision point.
 
@@ -80,10 +109,9 @@ def balance_by_step(decisions, proba, protocol):
     for t in np.unique(steps):
         rows = steps == t
         states = {
-            s.name: _state_balance(
-                decisions[s.name].to_numpy(dtype=float)[rows], codes[rows], weights[rows], labels, s.kind == "binary"
-            )
+            column.name: _state_balance(column.values[rows], codes[rows], weights[rows], labels, column.binary)
             for s in protocol.states
+            for column in state_columns(decisions, s)
         }
         out[str(int(t))] = {
             "decisions": int(rows.sum()),

@@ -16,7 +16,7 @@ from __future__ import annotations
 import numpy as np
 
 from regimewise.core.features import action_codes
-from regimewise.describe.balance import SMD_FLAG, smd
+from regimewise.describe.balance import SMD_FLAG, smd, state_columns
 from regimewise.describe.suppression import suppress_cells
 
 
@@ -31,6 +31,9 @@ def _count_text(n, suppressed, total=None):
 
 def cohort_table(decisions, protocol, episodes=None):
     """Baseline (step-0) characteristics overall and by first action, with SMDs and small-cell suppression.
+
+    A categorical state gives one row per level (every level, the reference included): its count and share in
+    each group, compared between groups as a binary state, never as a mean of codes.
 
     Every non-reference action is compared with the reference action (the protocol's first). Group sizes and
     binary counts go through :func:`suppress_cells` (threshold ``report.min_cell_count``); a primary
@@ -48,7 +51,11 @@ def cohort_table(decisions, protocol, episodes=None):
     groups = ["overall", *labels]
     shown = {labels[k]: not size_mask[k] and sizes[k] >= 2 for k in range(len(labels))}
     reference = labels[0]
-    rows = [_state_row(baseline, s, codes, labels, sizes, size_mask, shown, threshold) for s in protocol.states]
+    rows = [
+        _state_row(baseline, column, codes, labels, sizes, size_mask, shown, threshold)
+        for s in protocol.states
+        for column in state_columns(baseline, s)
+    ]
     rows += outcome_rows(baseline, episodes, codes, labels, sizes, size_mask, shown, threshold)
     size_text = [_primary_or(sizes[k], size_mask[k], threshold) for k in range(len(labels))]
     return {
@@ -113,9 +120,9 @@ def _primary_or(n, suppressed, threshold):
     return _count_text(n, suppressed)
 
 
-def _state_row(baseline, state, codes, labels, sizes, size_mask, shown, threshold):
-    x = baseline[state.name].to_numpy(dtype=float)
-    binary = state.kind == "binary"
+def _state_row(baseline, column, codes, labels, sizes, size_mask, shown, threshold):
+    state, x = column.state, column.values
+    binary = column.binary
     reference = labels[0]
     contrasts = {}
     for k, label in enumerate(labels[1:], start=1):
@@ -124,8 +131,8 @@ def _state_row(baseline, state, codes, labels, sizes, size_mask, shown, threshol
     cells = _binary_cells(x, codes, sizes, size_mask, threshold) if binary else _continuous_cells(x, codes, shown)
     finite = [abs(v) for v in contrasts.values() if v is not None]
     return {
-        "state": state.name,
-        "label": state.label,
+        "state": column.name,
+        "label": column.label,
         "kind": state.kind,
         "unit": state.unit,
         "cells": dict(zip(["overall", *labels], cells)),

@@ -101,7 +101,11 @@ def regime_targets(
             }
             for j, a in enumerate(labels)
         ]
-    columns = {name: frame[name].to_numpy(dtype=float) for name in protocol.state_names}
+    columns = {  # a categorical state's levels stay text; the comparators' conditions read them as such
+        s.name: frame[s.name].to_numpy(dtype=object if s.kind == "categorical" else float)
+        for s in protocol.states
+        if protocol.comparators
+    }
     for c in protocol.comparators:
         codes = c.action_codes(columns, len(frame), labels)
         targets.append({"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c})

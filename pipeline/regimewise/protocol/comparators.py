@@ -22,7 +22,7 @@ import numpy as np
 from pydantic import Field
 
 from regimewise.protocol.sections import StateCondition
-from regimewise.protocol.types import FreeText, Identifier, ShortText, Strict
+from regimewise.protocol.types import FreeText, Identifier, ShortText, Strict, level_text
 
 _COMPARE = {"below": np.less, "at_most": np.less_equal, "above": np.greater, "at_least": np.greater_equal}
 _SYMBOLS = {"below": "<", "at_most": "≤", "above": ">", "at_least": "≥", "in": "in", "not_in": "not in"}
@@ -31,11 +31,15 @@ RESERVED_NAMES = ("learned", "usual_care")
 
 
 def condition_holds(condition: StateCondition, values) -> np.ndarray:
-    """Boolean array: where ``condition`` holds for the state values ``values``."""
-    values = np.asarray(values, dtype=float)
+    """Boolean array: where ``condition`` holds for the state values ``values`` (numbers, or a categorical
+    state's levels as text)."""
+    values = np.asarray(values)
     if condition.comparison in _COMPARE:
-        return _COMPARE[condition.comparison](values, condition.value)
-    inside = np.isin(values, np.asarray(condition.values, dtype=float))
+        return _COMPARE[condition.comparison](values.astype(float), condition.value)
+    if values.dtype.kind in "OUST":  # a categorical state's levels (the protocol checked the listed ones)
+        inside = np.isin(values.astype(str), [level_text(v) for v in condition.values])
+    else:
+        inside = np.isin(values.astype(float), np.asarray(condition.values, dtype=float))
     return inside if condition.comparison == "in" else ~inside
 
 
@@ -54,7 +58,7 @@ def condition_words(condition: StateCondition, label: str | None = None, unit: s
     if condition.values is None:
         operand = f"{condition.value:g}{f' {unit}' if unit else ''}"
     else:
-        operand = "{" + ", ".join(f"{v:g}" for v in condition.values) + "}"
+        operand = "{" + ", ".join(v if isinstance(v, str) else f"{v:g}" for v in condition.values) + "}"
     return f"{name} {_SYMBOLS[condition.comparison]} {operand}"
 
 
@@ -125,6 +129,9 @@ def comparator_problem(index: int, comparator: Comparator, states, actions, cons
             if c.state not in kinds:
                 path = f"{where}.rules[{k}].when[{j}].state"
                 return f"{path}: {c.state!r} is not a declared state; use one of {', '.join(kinds)}"
+            problem = _kind_problem(f"{where}.rules[{k}].when[{j}]", c, kinds[c.state])
+            if problem:
+                return problem
     paths = [*(f"{where}.rules[{k}].action" for k in range(len(comparator.rules))), f"{where}.otherwise"]
     limit = constraints.max_intensity_change
     for path, label in zip(paths, comparator.actions):
@@ -138,17 +145,41 @@ def comparator_problem(index: int, comparator: Comparator, states, actions, cons
     return _grid_problem(where, comparator, kinds, labels, constraints.clinical_rules)
 
 
+def _shown(value) -> str:
+    return value if isinstance(value, str) else f"{value:g}"
+
+
+def _kind_problem(path: str, condition, state) -> str | None:
+    """A condition on a categorical state is ``in`` / ``not_in`` some of its levels; on a numeric state it compares
+    numbers (the same rule as for the clinical rules)."""
+    if state.kind != "categorical":
+        if condition.values is not None and any(isinstance(v, str) for v in condition.values):
+            return f"{path}.values: {state.name!r} is a {state.kind} state and compares numbers, not text"
+        return None
+    if condition.comparison not in ("in", "not_in"):
+        return (
+            f"{path}.comparison: {condition.comparison!r} needs an ordered number, but {state.name!r} is "
+            "categorical; write comparison: in (or not_in) with values: [its levels]"
+        )
+    unknown = [v for v in map(level_text, condition.values) if v not in state.coded_levels]
+    if unknown:
+        return f"{path}.values: {unknown[0]!r} is not one of the levels of {state.name!r} {list(state.coded_levels)}"
+    return None
+
+
 def _cuts(name: str, conditions) -> set[float]:
     out = set()
     for c in conditions:
-        if c.state == name:
+        if c.state == name and not (c.values is not None and any(isinstance(v, str) for v in c.values)):
             out |= {float(c.value)} if c.values is None else set(map(float, c.values))
     return out
 
 
 def _representatives(state, cuts: set[float]) -> np.ndarray:
     """One value of each cell the cut points divide the state's plausible range into (whole numbers only for an
-    integer or binary state)."""
+    integer or binary state; every level of a categorical state)."""
+    if state.kind == "categorical":
+        return np.asarray(state.coded_levels, dtype=object)
     low, high = map(float, state.plausible_range)
     points = sorted({low, high, *(x for x in cuts if low <= x <= high)})
     gaps = [(a + b) / 2 for a, b in zip(points, points[1:])]
@@ -173,9 +204,12 @@ def _grid_problem(where, comparator: Comparator, kinds, labels, clinical_rules) 
             f"{where}: its conditions and the clinical rules cut the states into more than {MAX_CHECKED_CELLS:,} "
             "cells, too many to check; use fewer thresholds"
         )
-    grid = np.asarray(list(itertools.product(*axes)), dtype=float).reshape(-1, len(names))
-    columns = {n: grid[:, i] for i, n in enumerate(names)}
-    n = len(grid)
+    cells = list(itertools.product(*axes))
+    columns = {
+        n: np.asarray([cell[i] for cell in cells], dtype=object if kinds[n].kind == "categorical" else float)
+        for i, n in enumerate(names)
+    }
+    n = len(cells)
     chosen = comparator.choose(columns, n)
     for k in range(len(comparator.rules)):
         if not np.any(chosen == k):
@@ -190,7 +224,7 @@ def _grid_problem(where, comparator: Comparator, kinds, labels, clinical_rules) 
             row = int(np.flatnonzero(clash)[0])
             k = int(chosen[row])
             path = f"{where}.otherwise" if k == len(comparator.rules) else f"{where}.rules[{k}]"
-            example = ", ".join(f"{c.state} {grid[row, names.index(c.state)]:g}" for c in rule.when)
+            example = ", ".join(f"{c.state} {_shown(columns[c.state][row])}" for c in rule.when)
             return (
                 f"{path}: prescribes {actions[row]} where clinical rule {rule.name!r} forbids it (e.g. {example}); "
                 "add a condition that excludes those states or a rule before it"

@@ -32,7 +32,7 @@ from regimewise.protocol.sections import (
     SweepSpec,
 )
 from regimewise.protocol.strategies import StrategiesSpec
-from regimewise.protocol.types import Discount, Seed, Strict, WholeNumber
+from regimewise.protocol.types import Discount, Seed, Strict, WholeNumber, level_text
 
 
 class Protocol(Strict):
@@ -77,6 +77,12 @@ class Protocol(Strict):
         unknown = sorted(set(self.data.missing) - set(self.state_names))
         if unknown:
             raise ValueError(f"data.missing names {unknown[0]!r}, which is not a declared state")
+        for s in self.states:
+            if s.kind == "categorical" and self.data.missing.get(s.name) == "indicator":
+                raise ValueError(
+                    f"data.missing: indicator fills with the median, which categorical state {s.name!r} has not; "
+                    "use refuse, drop or carry_forward"
+                )
         _refuse_repeats([a.column for a in self.data.acknowledged_columns], "data.acknowledged_columns", "column")
         return self
 
@@ -84,8 +90,10 @@ class Protocol(Strict):
     def _spline_states_numeric(self) -> Protocol:
         kinds = {s.name: s.kind for s in self.states}
         for name in self.behaviour_model.spline_states:
-            if kinds.get(name) in (None, "binary"):
-                raise ValueError(f"behaviour_model.spline_states: {name!r} is not a declared non-binary state")
+            if kinds.get(name) in (None, "binary", "categorical"):
+                raise ValueError(
+                    f"behaviour_model.spline_states: {name!r} is not a declared continuous or integer state"
+                )
         return self
 
     @model_validator(mode="after")
@@ -96,6 +104,8 @@ class Protocol(Strict):
             unknown = sorted(set(rule.forbid) - labels) or sorted({c.state for c in rule.when} - states)
             if unknown:
                 raise ValueError(f"clinical rule {rule.name!r} names {unknown[0]!r}: not a declared action or state")
+            for condition in rule.when:
+                _condition_fits_state(rule.name, condition, self.states)
         if self.constraints.max_intensity_change is not None:
             missing = [a.label for a in self.actions if a.intensity is None]
             if missing:
@@ -157,6 +167,25 @@ class Protocol(Strict):
     @property
     def state_names(self) -> tuple[str, ...]:
         return tuple(s.name for s in self.states)
+
+
+def _condition_fits_state(rule: str, condition, states) -> None:
+    """A condition on a categorical state is ``in`` / ``not_in`` a list of its levels; on a numeric state it
+    compares numbers. Raises ValueError naming the rule, the state and the fix."""
+    state = next(s for s in states if s.name == condition.state)
+    where = f"clinical rule {rule!r}, condition on {state.name!r}"
+    if state.kind != "categorical":
+        if condition.values is not None and any(isinstance(v, str) for v in condition.values):
+            raise ValueError(f"{where}: {state.kind} state compares numbers, not text; write numbers in values")
+        return
+    if condition.comparison not in ("in", "not_in"):
+        raise ValueError(
+            f"{where}: {condition.comparison!r} needs an ordered number, but the state is categorical; "
+            "write comparison: in (or not_in) with values: [its levels]"
+        )
+    unknown = [v for v in map(level_text, condition.values) if v not in state.coded_levels]
+    if unknown:
+        raise ValueError(f"{where}: {unknown[0]!r} is not one of its levels {list(state.coded_levels)}")
 
 
 def _refuse_repeats(values, section, what):

@@ -23,6 +23,7 @@ from regimewise.protocol.types import (
     Flag,
     FreeText,
     Identifier,
+    LevelLabel,
     LongText,
     Number,
     Probability,
@@ -106,6 +107,12 @@ def state_name_for(column: str) -> str:
 class StateVariable(Strict):
     """One state variable observed at every decision point.
 
+    A ``categorical`` state lists its ``levels`` (the protocol fixes them before the analysis; they are never read
+    from the records, so a stray value, possibly an identifier, can never become a level). Every model codes it by
+    treatment (dummy) coding against ``reference``: one 0/1 column per other level. A level with fewer decisions
+    than ``report.min_cell_count`` stops validation with one line naming it, or, with ``rare_levels: merge``, is
+    merged into ``other_level`` (the reference level is never merged).
+
     A ``name`` that is not lower-case snake case (``L``, ``SBP_mmHg``) is taken as the column's name when no
     ``column`` is given: the state reads that column and is called :func:`state_name_for` of it everywhere else
     in the protocol (clinical rules, data.missing, the report).
@@ -129,18 +136,70 @@ class StateVariable(Strict):
         return data
 
     label: ShortText
-    kind: Literal["continuous", "integer", "binary"]
+    kind: Literal["continuous", "integer", "binary", "categorical"]
     unit: Annotated[FreeText, Field(max_length=40)] = ""
-    plausible_range: tuple[Number, Number] = Field(description="[low, high]; values outside are refused")
+    plausible_range: tuple[Number, Number] | None = Field(
+        None,
+        description="[low, high] (continuous, integer and binary states; required there); values outside are refused",
+    )
+    levels: Annotated[list[LevelLabel], Field(min_length=2, max_length=50)] | None = Field(
+        None,
+        description="categorical states only (required there): every level as written in the records; any other "
+        "value is a validation finding",
+    )
+    reference: LevelLabel | None = Field(
+        None, description="categorical: the level the others are compared with (dummy coding); default the first level"
+    )
+    rare_levels: Literal["refuse", "merge"] = Field(
+        "refuse",
+        description="categorical: a level with fewer decisions than report.min_cell_count is refused (validation "
+        "stops), or merged into other_level",
+    )
+    other_level: LevelLabel = Field("other", description="categorical with rare_levels: merge: the merged level's name")
 
     @model_validator(mode="after")
     def _range_ordered(self) -> StateVariable:
+        if self.kind == "categorical":
+            return self._levels_valid()
+        if self.plausible_range is None:
+            raise ValueError(f"state {self.name!r} ({self.kind}) needs plausible_range: [low, high]")
+        given = {"levels": self.levels, "reference": self.reference}
+        given |= {"rare_levels": self.rare_levels != "refuse", "other_level": self.other_level != "other"}
+        extra = sorted(key for key, value in given.items() if value)  # a dumped protocol holds the defaults
+        if extra:
+            raise ValueError(f"state {self.name!r}: {extra[0]} applies to categorical states only; remove it")
         low, high = self.plausible_range
         if not low < high:
             raise ValueError(f"plausible_range of {self.name!r} must have low < high, got [{low}, {high}]")
         if self.kind == "binary" and (low, high) != (0.0, 1.0):
             raise ValueError(f"binary state {self.name!r} must have plausible_range [0, 1]")
         return self
+
+    def _levels_valid(self) -> StateVariable:
+        where = f"categorical state {self.name!r}"
+        if self.levels is None:
+            raise ValueError(f"{where} needs levels: [the levels as written in the records]")
+        if self.plausible_range is not None:
+            raise ValueError(f"{where}: plausible_range applies to numeric states; list the levels instead")
+        repeated = sorted({v for v in self.levels if self.levels.count(v) > 1})
+        if repeated:
+            raise ValueError(f"{where} lists level {repeated[0]!r} twice")
+        if self.reference is not None and self.reference not in self.levels:
+            raise ValueError(f"{where}: reference {self.reference!r} is not one of its levels {self.levels}")
+        if self.rare_levels == "merge" and self.other_level in self.levels:
+            raise ValueError(f"{where}: other_level {self.other_level!r} is already a level; name the merged level")
+        return self
+
+    @property
+    def reference_level(self) -> str:
+        """The categorical state's reference level (the first level unless ``reference`` names another)."""
+        return self.reference or self.levels[0]
+
+    @property
+    def coded_levels(self) -> tuple[str, ...]:
+        """Every level a categorical state's clean values can take: the listed levels, then ``other_level`` when
+        rare levels are merged."""
+        return (*self.levels, *((self.other_level,) if self.rare_levels == "merge" else ()))
 
     @property
     def source_column(self) -> str:
@@ -266,9 +325,13 @@ class StateCondition(Strict):
     state: Identifier
     comparison: Literal["below", "at_most", "above", "at_least", "in", "not_in"]
     value: Number | None = Field(None, description="threshold for below / at_most / above / at_least")
-    values: Annotated[list[Number], Field(min_length=1, max_length=50)] | None = Field(
-        None, description="set of values for in / not_in"
-    )
+    # numbers first (a level written as 2 is the number 2 on a numeric state and the level "2" on a categorical)
+    values: (
+        Annotated[
+            list[Annotated[Number | LevelLabel, Field(union_mode="left_to_right")]], Field(min_length=1, max_length=50)
+        ]
+        | None
+    ) = Field(None, description="set of values for in / not_in (the levels of a categorical state)")
 
     @model_validator(mode="after")
     def _operand(self) -> StateCondition:

@@ -55,6 +55,28 @@ Identifier = Annotated[
 ColumnName = Annotated[str, Field(min_length=1, max_length=128)]
 
 
+def level_text(value) -> str:
+    """A categorical level as text: a whole number without its decimals (``2``, ``2.0`` -> ``"2"``), other values
+    as written, stripped. The protocol's levels and the records' values are compared in this form."""
+    if isinstance(value, bool):
+        return str(value)
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value).strip()
+
+
+def _level_text_before(value):
+    """YAML reads a level written as 1 or 2.0 as a number: take it as its text."""
+    return level_text(value) if isinstance(value, (int, float)) and not isinstance(value, bool) else value
+
+
+LevelLabel = Annotated[
+    FreeText,
+    BeforeValidator(_level_text_before),
+    Field(min_length=1, max_length=40, pattern=r"^\S(.*\S)?$", description="a level as written in the records"),
+]
+
+
 ShortText = Annotated[FreeText, Field(min_length=1, max_length=300)]
 
 

@@ -1,9 +1,10 @@
 """Clinical rules of the protocol as masks of permitted actions.
 
 A rule forbids some actions at decisions where all its structured conditions hold (a state below, at most,
-above or at least a value, or in / not in a set). The intensity limit forbids every action whose ordinal
-intensity change exceeds ``max_intensity_change`` in absolute value. Nothing here evaluates text as code: each
-comparison is one of a fixed set of numpy functions.
+above or at least a value, or in / not in a set: numbers, or the levels of a categorical state, which takes no
+other comparison). The intensity limit forbids every action whose ordinal intensity change exceeds
+``max_intensity_change`` in absolute value. Nothing here evaluates text as code: each comparison is one of a fixed
+set of numpy functions.
 
 The permitted set at a decision is the intersection of these rules with the support constraint
 (:func:`regimewise.regime.permitted.constrained_choice`); when it is empty the regime falls back to the most likely

@@ -19,6 +19,7 @@ Bastani, O., Kim, C. & Bastani, H. (2017). Interpreting blackbox models via mode
 
 from __future__ import annotations
 
+import re
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -61,14 +62,22 @@ class ReadableRegime:
         return out
 
 
+# A categorical state's dummy column, ``<state>[<level>]`` (:func:`regimewise.core.features.dummy_name`).
+DUMMY = re.compile(r"^([a-z][a-z0-9_]*)\[(.+)\]$")
+
+
 def _conditions(names, bounds, binary, integer) -> tuple[str, ...]:
     """One condition per state on the path, its thresholds merged: ``a < x ≤ b``; an integer state as whole
-    numbers (``x ≤ 3``, ``x ≥ 4``, ``2 ≤ x ≤ 3``); a binary state as ``x = 0`` or ``x = 1``."""
+    numbers (``x ≤ 3``, ``x ≥ 4``, ``2 ≤ x ≤ 3``); a binary state as ``x = 0`` or ``x = 1``; one level of a
+    categorical state as ``x = level`` or ``x ≠ level``."""
     out = []
     for f in sorted(bounds):
         low, high = bounds[f]
         name = names[f]
-        if binary[f]:
+        level = DUMMY.match(name)
+        if binary[f] and level:  # one level of a categorical state
+            out.append(f"{level[1]} {'=' if low is not None else '≠'} {level[2]}")
+        elif binary[f]:
             out.append(f"{name} = {1 if low is not None else 0}")
         elif integer[f]:
             lo = None if low is None else int(np.floor(low)) + 1

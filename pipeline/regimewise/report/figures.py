@@ -17,6 +17,7 @@ from regimewise.estimators import ESTIMATORS
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 
+from regimewise.core.features import dummy_name
 from regimewise.describe.balance import SMD_FLAG
 from regimewise.usual_care.diagnostics import CRUMP_CUT
 
@@ -100,7 +101,7 @@ def balance_figure(balance, state_labels) -> str:
 
     steps = sorted(balance, key=int)
     fig, axes = panel_grid(len(steps))
-    names = list(state_labels)
+    names = [n for n in state_labels if n in balance[steps[0]]["states"]] if steps else []
     ys = np.arange(len(names))[::-1]
     for ax, step in zip(axes, steps):
         states = balance[step]["states"]
@@ -131,7 +132,10 @@ def balance_figure(balance, state_labels) -> str:
 def section_figures(protocol, behaviour, cohort) -> dict:
     """Inline SVG figures of the usual-care and cohort sections (empty strings where there are no data)."""
 
-    labels = {s.name: s.label for s in protocol.states}
+    labels = {}
+    for s in protocol.states:  # a categorical state is balanced level by level
+        levels = s.coded_levels if s.kind == "categorical" else ()
+        labels.update({dummy_name(s.name, v): f"{s.label}: {v}" for v in levels} or {s.name: s.label})
     return {
         "reliability": reliability_figure(behaviour["by_step"], protocol.action_labels),
         "overlap": "" if cohort is None else overlap_figure(cohort["overlap_by_step"]),

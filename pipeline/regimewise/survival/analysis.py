@@ -19,7 +19,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from regimewise.core.features import action_codes
+from regimewise.core.features import StateScaler, action_codes
 from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.errors import UserInputError
 from regimewise.evaluation.values import minimum_reliable_ess, regime_targets
@@ -75,7 +75,7 @@ def table_times(protocol: Protocol) -> list[float]:
 def _censoring_weights(timeline, decisions, protocol):
     if not protocol.survival.dropout_model:
         return None, {"used": False}
-    states = decisions[list(protocol.state_names)].to_numpy(dtype=float)
+    states = StateScaler.fit(decisions, protocol).state_matrix(decisions)  # categorical states as dummies
     model = DropoutModel().fit(timeline, states)
     info = {
         "used": True,

@@ -177,7 +177,7 @@ def regime_stage(protocol, decisions, proba, table, regime):
     summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
     summary["cross_fit"] = {"folds": folds, "agreement": float(np.mean(evaluated == recommended))}
     summary["readable"] = distill_regime(
-        frame,
+        features.scaler.covariate_frame(frame),  # categorical states as their dummies, unscaled
         recommended,
         features.scaler.covariate_states(p),
         p.action_labels,
