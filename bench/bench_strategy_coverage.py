@@ -59,7 +59,8 @@ def parse(argv=None):
         "--headline-only",
         action="store_true",
         help="evaluate only usual care, the learned regime and the headline strategy (no other strategy of the "
-        "grids, no fixed strategies, no comparators): the headline's estimates and replicates are unchanged, the cost is lower",
+        "grids, no fixed strategies, no comparators): the headline's estimates and replicates are unchanged, the "
+        "cost is lower",
     )
     return parser.parse_args(argv)
 
