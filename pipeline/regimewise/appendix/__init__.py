@@ -1,0 +1,4 @@
+"""The audit appendix of a run (``<results>/appendix/``): what was produced (manifest), with what software
+(environment), under which settings (resolved protocol, seed streams) and by which command; and the commands that
+check it: verify a run by rerunning it, compare two runs, bundle a run into one archive.
+"""
