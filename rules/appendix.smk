@@ -13,6 +13,7 @@ rule appendix:
         benchmarks("appendix")
     params:
         code=stage_code_hash("appendix"),
+        software=software_fingerprint(),  # any source file, workflow file or installed version: environment.json
         command=command_line,
         reproduce=reproduce_line,
     threads: 1

@@ -1,5 +1,6 @@
 # ---- settings shared by every stage: validated once, at parse time -------------------------------------
 from regimewise.appendix.assemble import appendix_outputs
+from regimewise.appendix.environment import software_fingerprint
 from regimewise.workflow.fingerprint import stage_code_hash
 from regimewise.workflow.resources import recorded_decisions, stage_resources
 from regimewise.workflow.settings import load_settings

@@ -335,6 +335,9 @@ def _recorded_protocol(root: Path) -> Path:
 @contextmanager
 def _rerun_folder(keep: str | None):
     if keep is not None:
+        folder = Path(keep)
+        if folder.is_dir() and any(folder.iterdir()):  # its old results would count as the rerun's
+            raise UserInputError(f"verify --rerun-into {folder} is not empty; give an empty or new folder")
         yield output_folder(keep, "verify --rerun-into")
         return
     with tempfile.TemporaryDirectory(prefix="regimewise-verify-") as tmp:

@@ -164,3 +164,15 @@ def test_report_links_every_appendix_file(two_runs):
     assert {"appendix/manifest.json", "appendix/environment.json", "appendix/commands.txt"} <= set(links)
     for link in links:
         assert (out / link).is_file(), link
+
+
+def test_software_fingerprint_follows_every_source_file(tmp_path):
+    from regimewise.appendix.environment import PACKAGE_DIR, software_fingerprint
+
+    copy = tmp_path / "pipeline" / "regimewise"
+    shutil.copytree(PACKAGE_DIR, copy, ignore=shutil.ignore_patterns("__pycache__"))
+    before = software_fingerprint(copy)
+    assert software_fingerprint(copy) == before
+    cli = copy / "cli.py"  # a module no stage imports: stage fingerprints miss it, this one must not
+    cli.write_text(cli.read_text(encoding="utf-8") + "\n# edited\n", encoding="utf-8")
+    assert software_fingerprint(copy) != before

@@ -89,3 +89,10 @@ def test_verify_refuses_a_folder_without_an_appendix(tmp_path):
     result = run_cli("verify", tmp_path)
     assert result.returncode == 1 and "appendix/manifest.json" in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1
+
+
+def test_rerun_into_a_folder_that_is_not_empty_is_refused(run_copy, study, tmp_path):
+    (tmp_path / "old").mkdir()
+    (tmp_path / "old" / "x").write_text("old", encoding="utf-8")
+    result = run_cli("verify", run_copy, "--protocol", study, "--rerun-into", tmp_path / "old")
+    assert result.returncode == 1 and "is not empty" in result.stderr

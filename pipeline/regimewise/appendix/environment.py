@@ -91,6 +91,17 @@ def _git(repository: Path, *args: str) -> str:
     ).stdout
 
 
+def software_fingerprint(package_dir: Path = PACKAGE_DIR) -> str:
+    """SHA-256 of the package's source, the workflow files and every distribution's version: the appendix rule's
+    parameter, so environment.json is rewritten whenever any of them changes (not only the code a stage uses)."""
+    repository = package_dir.parent.parent
+    parts = [tree_digest(package_dir, source_files(package_dir))]
+    workflow = workflow_files(repository)
+    parts.append(tree_digest(repository, workflow) if workflow else "")
+    parts += [f"{name}=={version}" for name, version in distributions().items()]
+    return hashlib.sha256("\n".join(parts).encode("utf-8")).hexdigest()
+
+
 def environment_record(package_dir: Path = PACKAGE_DIR) -> dict:
     """Everything environment.json holds."""
     repository = package_dir.parent.parent

@@ -22,7 +22,7 @@ from regimewise.protocol.loading import ProtocolFile, load_protocol
 VERIFICATION = "verification.json"
 
 MODES = {
-    "rerun": "the whole analysis rerun into a temporary folder",
+    "rerun": "the whole analysis rerun into a new folder",
     "report": "the report rerendered from the run's own stage outputs",
     "against": "compared with another results folder of the same protocol",
 }
