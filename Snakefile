@@ -19,6 +19,7 @@ include: "rules/sensitivity.smk"
 include: "rules/survival.smk"
 include: "rules/sweep.smk"
 include: "rules/report.smk"
+include: "rules/appendix.smk"
 
 
 rule all:

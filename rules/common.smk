@@ -1,4 +1,6 @@
 # ---- settings shared by every stage: validated once, at parse time -------------------------------------
+from regimewise.appendix.assemble import appendix_outputs
+from regimewise.appendix.environment import software_fingerprint
 from regimewise.workflow.fingerprint import stage_code_hash
 from regimewise.workflow.resources import recorded_decisions, stage_resources
 from regimewise.workflow.settings import load_settings
@@ -38,8 +40,22 @@ def survival_inputs(wildcards):
     return {"survival": results("survival/survival.json")} if SETTINGS.survival else {}
 
 
+# The command line of the run, handed to the report and appendix stages through callables: a string in `params`
+# is read as a wildcard pattern, and a command line may hold braces.
+def command_line(wildcards):
+    return SETTINGS.command
+
+
+def reproduce_line(wildcards):
+    return SETTINGS.reproduce
+
+
+def appendix_files():
+    return {name: results(path) for name, path in appendix_outputs().items()}
+
+
 def final_outputs():
-    return [results("report/report.html"), results("report/summary.json")]
+    return [results("report/report.html"), results("report/summary.json"), *appendix_files().values()]
 
 
 # ---- resource requests, scaled by the decisions validation kept (estimated from the records before it runs) ----

@@ -23,6 +23,7 @@ rule report:
         benchmarks("report")
     params:
         code=stage_code_hash("report"),
+        reproduce=reproduce_line,
     threads: 1
     resources:
         mem_mb=mem_mb("report"),

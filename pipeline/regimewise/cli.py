@@ -1,10 +1,17 @@
-"""Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema``.
+"""Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema | verify RESULTS_DIR |
+compare RUN_A RUN_B | bundle RESULTS_DIR``.
 
 ``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
 folder as its working directory, printing one line per finished job from Snakemake's own log stream
 (:mod:`regimewise.workflow.progress`); ``check`` validates a protocol and its records and writes only the error
 list (``validation_errors.csv`` in ``--errors``, default the protocol's folder) when they fail, removing an old
-one when they pass; ``schema`` prints the protocol's JSON Schema (or writes ``--out``).
+one when they pass; ``schema`` prints the protocol's JSON Schema (or writes ``--out``). ``verify``, ``compare`` and
+``bundle`` read a finished run's appendix (:mod:`regimewise.appendix`); ``verify`` reruns the workflow into a
+temporary folder (or rerenders the report only, or compares with another run) and compares every manifest entry.
+
+``demo`` and ``run`` hand Snakemake the command line as typed (absolute paths shortened,
+:func:`regimewise.appendix.records.shown_command`) and the command that reproduces the run, in the workflow config;
+the report records the second, the appendix both.
 
 A run recovers by itself from a hard kill: it holds an operating-system lock on ``.snakemake/regimewise.lock``
 in the results folder (inherited by its Snakemake process, so it stays held while any part of the run lives);
@@ -23,6 +30,7 @@ import math
 import os
 import subprocess
 import sys
+import tempfile
 import time
 import traceback
 from contextlib import contextmanager
@@ -31,14 +39,26 @@ from pathlib import Path
 import yaml
 
 from regimewise import __version__
+from regimewise.appendix.bundle import bundle_bytes
+from regimewise.appendix.compare import compare_runs, comparison_lines
+from regimewise.appendix.environment import environment_record
+from regimewise.appendix.reading import PROVENANCE, results_folder, run_json
+from regimewise.appendix.records import reproduce_command, shown_command
+from regimewise.appendix.verify import (
+    VERIFICATION,
+    changed_since_run,
+    check_recorded_inputs,
+    verdict_line,
+    verification,
+)
 from regimewise.cautions import TERMINAL_CAUTION
 from regimewise.data.validate import report_lines, validate_records, write_error_report
 from regimewise.demo.files import write_cohort
 from regimewise.errors import OS_REASONS, DataValidationError, UserInputError, os_reason
-from regimewise.io import require_file, write_text
+from regimewise.io import require_file, write_bytes, write_json, write_text
 from regimewise.protocol.loading import load_protocol, schema_text
 from regimewise.workflow.progress import Progress, warning_line
-from regimewise.workflow.stages import ERROR_PREFIX
+from regimewise.workflow.stages import ERROR_PREFIX, report_stage
 
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
     import fcntl
@@ -114,7 +134,56 @@ def build_parser() -> argparse.ArgumentParser:
     )
     schema = command("schema", "Print the protocol's JSON Schema, or write it to a file.")
     schema.add_argument("--out", metavar="FILE", help="file to write (default: standard output)")
+    _add_appendix_commands(command)
     return parser
+
+
+def _add_appendix_commands(command):
+    verify = command(
+        "verify",
+        "Check a finished run: hash its protocol and inputs, rerun it into a temporary folder and compare every file "
+        "of its manifest byte for byte; writes appendix/verification.json; exit 0 only when identical.",
+    )
+    verify.add_argument("results", metavar="RESULTS_DIR", help="results folder of a finished run (required)")
+    verify.add_argument(
+        "--protocol", help="the run's protocol file (default: the one the run was started with, if still there)"
+    )
+    how = verify.add_mutually_exclusive_group()
+    how.add_argument(
+        "--report-only",
+        action="store_true",
+        help="quick check: rerender only the report from the run's own stage outputs (default: rerun everything)",
+    )
+    how.add_argument(
+        "--against",
+        metavar="OTHER_DIR",
+        help="compare with another finished run of the same protocol instead of rerunning (default: rerun)",
+    )
+    how.add_argument(
+        "--rerun-into", metavar="FOLDER", help="keep the rerun in FOLDER (default: a temporary folder, removed)"
+    )
+    verify.add_argument("--cores", type=int, default=2, help="cores the rerun may use (default: %(default)s)")
+    verify.add_argument("--quiet", action="store_true", help="no line per finished stage of the rerun (default: off)")
+    for name, (purpose, positionals, out_help) in READING_COMMANDS.items():
+        reader = command(name, purpose)
+        for dest, metavar, words in positionals:
+            reader.add_argument(dest, metavar=metavar, help=f"{words} (required)")
+        reader.add_argument("--out", metavar="FILE", help=out_help)
+
+
+# The commands that only read finished runs: purpose, positional arguments (name, metavar, words), --out's help.
+READING_COMMANDS = {
+    "compare": (
+        "Show what differs between two finished runs: protocol settings key by key, inputs, environment, headline.",
+        [("run_a", "RUN_A", "results folder of the first run"), ("run_b", "RUN_B", "results folder of the second run")],
+        "also write every difference as JSON (default: none)",
+    ),
+    "bundle": (
+        "Write one deterministic zip of a finished run: report, summary, provenance and appendix (with the protocol).",
+        [("results", "RESULTS_DIR", "results folder of a finished run")],
+        "zip to write (default: RESULTS_DIR/<run_name>-bundle.zip)",
+    ),
+}
 
 
 def _add_run_options(parser, default_out):
@@ -131,6 +200,7 @@ def _add_run_options(parser, default_out):
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     args.debug = getattr(args, "debug", False)
+    args.argv = list(sys.argv[1:] if argv is None else argv)
     try:
         return COMMANDS[args.command](args)
     except UserInputError as err:
@@ -143,11 +213,24 @@ def main(argv=None) -> int:
 # ---------------------------------------------------------------------------------------------- commands
 def cmd_demo(args) -> int:
     args.out = args.out or "results/demo"
-    return _run_workflow(DEMO_PROTOCOL, args)
+    return _print_outputs(_run_workflow(DEMO_PROTOCOL, args, _command_record(args, demo=True)))
 
 
 def cmd_run(args) -> int:
-    return _run_workflow(Path(args.protocol), args)
+    return _print_outputs(_run_workflow(Path(args.protocol), args, _command_record(args, demo=False)))
+
+
+def _command_record(args, demo: bool) -> dict:
+    """The command line as typed and the one that reproduces the run (for the workflow config)."""
+    protocol = DEMO_PROTOCOL if demo else Path(args.protocol)
+    return {"command": shown_command(args.argv, Path.cwd()), "reproduce": reproduce_command(demo, protocol)}
+
+
+def _print_outputs(out: Path) -> int:
+    print(f"report:  {out / 'report' / 'report.html'}")
+    print(f"summary: {out / 'report' / 'summary.json'}")
+    print(f"appendix: {out / 'appendix'} (check a rerun with `regimewise verify {out}`)")
+    return 0
 
 
 def cmd_check(args) -> int:
@@ -212,11 +295,115 @@ def cmd_schema(args) -> int:
     return 0
 
 
-COMMANDS = {"demo": cmd_demo, "run": cmd_run, "check": cmd_check, "simulate": cmd_simulate, "schema": cmd_schema}
+def cmd_verify(args) -> int:
+    root = results_folder(args.results, "verify")
+    protocol = Path(args.protocol) if args.protocol else _recorded_protocol(root)
+    pf = check_recorded_inputs(root, protocol.resolve())
+    reproduce = run_json(root, PROVENANCE)["commands"][0]
+    if args.against:
+        other = results_folder(args.against, "verify --against")
+        record = verification(root, "against", other, run_json(other, "appendix/environment.json"))
+    elif args.report_only and changed_since_run(root):  # rerendering from edited stage outputs proves nothing
+        record = verification(root, "report", None, environment_record())
+    elif args.report_only:
+        with tempfile.TemporaryDirectory(prefix="regimewise-verify-") as tmp:
+            _rerender_report(root, pf, Path(tmp), reproduce)
+            record = verification(root, "report", Path(tmp), environment_record())
+    else:
+        with _rerun_folder(args.rerun_into) as out:
+            args.out = out
+            command = {"command": shown_command(args.argv, Path.cwd()), "reproduce": reproduce}
+            _run_workflow(pf.path, args, command)
+            record = verification(root, "rerun", out, run_json(out, "appendix/environment.json"))
+    write_json(root / "appendix" / VERIFICATION, record)
+    print(verdict_line(record))
+    return 0 if record["verdict"] == "identical" else 1
+
+
+def _recorded_protocol(root: Path) -> Path:
+    """The protocol a run was started with, from its workflow config, or one line asking for --protocol."""
+    config = root / WORKFLOW_CONFIG
+    try:
+        return Path(yaml.safe_load(config.read_text(encoding="utf-8"))["protocol"])
+    except (OSError, yaml.YAMLError, KeyError, TypeError):
+        raise UserInputError(
+            f"verify: cannot tell which protocol {root} was run with ({config} is missing or unreadable); "
+            "give it with --protocol"
+        ) from None
+
+
+@contextmanager
+def _rerun_folder(keep: str | None):
+    if keep is not None:
+        folder = Path(keep)
+        if folder.is_dir() and any(folder.iterdir()):  # its old results would count as the rerun's
+            raise UserInputError(f"verify --rerun-into {folder} is not empty; give an empty or new folder")
+        yield output_folder(keep, "verify --rerun-into")
+        return
+    with tempfile.TemporaryDirectory(prefix="regimewise-verify-") as tmp:
+        yield Path(tmp)
+
+
+def _rerender_report(root: Path, pf, out: Path, reproduce: str) -> None:
+    """Rerender report.html, summary.json and the provenance from the run's own stage outputs into ``out``."""
+    p = pf.protocol
+    report_stage(
+        protocol=str(pf.path),
+        validation=root / "validate" / "validation.json",
+        behaviour=root / "behaviour" / "behaviour.json",
+        regime=root / "regime" / "regime.json",
+        values=root / "evaluate" / "values.json",
+        html=out / "report" / "report.html",
+        summary=out / "report" / "summary.json",
+        provenance=out / PROVENANCE,
+        intervals=root / "bootstrap" / "intervals.json",
+        cohort=root / "describe" / "cohort.json",
+        sensitivity=root / "sensitivity" / "sensitivity.json",
+        sweep=root / "sweep" / "sweep.json" if p.sweeps is not None else None,
+        survival=root / "survival" / "survival.json" if p.survival is not None else None,
+        reproduce=reproduce,
+    )
+
+
+def cmd_compare(args) -> int:
+    a, b = results_folder(args.run_a, "compare"), results_folder(args.run_b, "compare")
+    result = compare_runs(a, b)
+    print("\n".join(comparison_lines(result)))
+    if args.out:
+        write_json(args.out, result)
+        print(f"wrote {args.out}")
+    return 0
+
+
+def cmd_bundle(args) -> int:
+    root = results_folder(args.results, "bundle")
+    data = bundle_bytes(root)
+    target = (
+        Path(args.out)
+        if args.out
+        else root / f"{run_json(root, 'report/summary.json')['study']['run_name']}-bundle.zip"
+    )
+    write_bytes(target, data)
+    print(f"wrote {target} ({len(data)} bytes)")
+    return 0
+
+
+COMMANDS = {
+    "demo": cmd_demo,
+    "run": cmd_run,
+    "check": cmd_check,
+    "simulate": cmd_simulate,
+    "schema": cmd_schema,
+    "verify": cmd_verify,
+    "compare": cmd_compare,
+    "bundle": cmd_bundle,
+}
 
 
 # ---------------------------------------------------------------------------------------------- workflow
-def _run_workflow(protocol: Path, args) -> int:
+def _run_workflow(protocol: Path, args, record: dict) -> Path:
+    """Run the workflow for ``protocol`` into ``args.out``; ``record`` holds the command line and the command
+    that reproduces the run (written to the workflow config). The results folder."""
     if not SNAKEFILE.is_file():
         raise UserInputError(
             f"workflow files not found beside the package ({SNAKEFILE}); install regimewise from a checkout "
@@ -240,7 +427,7 @@ def _run_workflow(protocol: Path, args) -> int:
         "--directory",
         str(out),
     ]
-    config = ["--configfile", str(_write_workflow_config(out, pf.path))]
+    config = ["--configfile", str(_write_workflow_config(out, pf.path, record))]
     command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *config]
     with _exclusive_run(out) as lock:
         print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
@@ -260,9 +447,7 @@ def _run_workflow(protocol: Path, args) -> int:
             or f"the workflow failed; see {workflow_log}"
         )
     print(warning_line(workflow_log))
-    print(f"report:  {out / 'report' / 'report.html'}")
-    print(f"summary: {out / 'report' / 'summary.json'}")
-    return 0
+    return out
 
 
 def _planned_shards(pf) -> int:
@@ -288,14 +473,14 @@ def output_folder(path, option: str) -> Path:
 WORKFLOW_CONFIG = Path(".snakemake") / "regimewise" / "config.yaml"
 
 
-def _write_workflow_config(out: Path, protocol: Path) -> Path:
+def _write_workflow_config(out: Path, protocol: Path, record: dict | None = None) -> Path:
     """The run's workflow config as a YAML file in the results folder, read with ``--configfile``.
 
     Paths given on Snakemake's ``--config`` are parsed as YAML values, so a folder named ``a: b`` or ``{x}``
     would be misread; a file written by a YAML writer keeps every path as the string it is.
     """
     path = out / WORKFLOW_CONFIG
-    settings = {"protocol": str(protocol), "results": ".", "logs": "logs", "benchmarks": "benchmarks"}
+    settings = {"protocol": str(protocol), "results": ".", "logs": "logs", "benchmarks": "benchmarks", **(record or {})}
     write_text(path, yaml.safe_dump(settings, sort_keys=True, allow_unicode=True))
     return path
 

@@ -150,10 +150,18 @@ def _start_run(protocol: Path, out: Path) -> subprocess.Popen:
 
 
 def _artifacts(out: Path) -> dict[str, bytes]:
-    """Every stage output (logs, timings and Snakemake's own records excluded)."""
+    """Every stage output (logs, timings and Snakemake's own records excluded; so is the appendix's record of the
+    command line, which names each run's own --out)."""
     skip = {"logs", "benchmarks", ".snakemake"}
-    files = sorted(p for p in out.rglob("*") if p.is_file() and p.relative_to(out).parts[0] not in skip)
+    files = sorted(
+        p
+        for p in out.rglob("*")
+        if p.is_file() and p.relative_to(out).parts[0] not in skip and p.relative_to(out).as_posix() != COMMANDS
+    )
     return {str(p.relative_to(out)): p.read_bytes() for p in files}
+
+
+COMMANDS = "appendix/commands.txt"
 
 
 def test_killed_run_resumes_by_itself_to_the_same_bytes(small_study, tmp_path):
@@ -180,6 +188,8 @@ def test_killed_run_resumes_by_itself_to_the_same_bytes(small_study, tmp_path):
     expected = _artifacts(whole)
     assert {"validate/decisions.parquet", "regime/regime.json", "report/summary.json"} <= set(expected)
     assert _artifacts(interrupted) == expected
+    ran = [(folder / COMMANDS).read_text(encoding="utf-8").splitlines()[1] for folder in (whole, interrupted)]
+    assert [line.replace("interrupted", "whole") for line in ran] == [ran[0], ran[0]]  # only --out differs
 
 
 def test_a_live_run_holding_the_folder_is_refused_in_one_line(small_study, tmp_path, capsys):

@@ -18,6 +18,17 @@ STREAMS = {
     "sweep": 9,  # (9, i, r): replicate r of sweep specification i
 }
 
+# What each stream draws and what its index selects (written to the appendix's seeds.json).
+STREAM_USES = {
+    "usual_care": ("folds and model seed of the usual-care model", ()),
+    "regime": ("folds, boosting seeds and bootstrap ensemble of the Q-models", ()),
+    "bootstrap": ("the resample of bootstrap replicate r", ("r",)),
+    "cross_fit": ("patient folds of the cross-fitted evaluation of the learned regime", ()),
+    "sweep": ("replicate r of sweep specification i", ("i", "r")),
+}
+
+RETIRED = (3, 4, 5, 8)  # numbers used by earlier versions; never reused
+
 
 def stream(root_seed: int, name: str, *index: int) -> np.random.SeedSequence:
     """The seed sequence of stream ``name`` (a key of :data:`STREAMS`) at ``index`` under ``root_seed``."""

@@ -39,8 +39,12 @@ def package_versions() -> dict[str, str]:
     return versions
 
 
-def build_provenance(pf: ProtocolFile) -> dict:
-    """Everything needed to check that a rerun used the same inputs, settings and software."""
+def build_provenance(pf: ProtocolFile, reproduce: str = "") -> dict:
+    """Everything needed to check that a rerun used the same inputs, settings and software.
+
+    ``reproduce`` is the command that reruns the analysis, as the command line recorded it (``regimewise demo``,
+    ``regimewise run protocol.yaml``); empty when Snakemake was started directly.
+    """
     inputs = {"decisions": _describe(pf.decisions_path)}
     if pf.episodes_path is not None:
         inputs["episodes"] = _describe(pf.episodes_path)
@@ -53,8 +57,8 @@ def build_provenance(pf: ProtocolFile) -> dict:
         ],
         "packages": package_versions(),
         "commands": [
-            f"regimewise run {pf.path.name}",
-            f"snakemake --cores 2 --config protocol={pf.path.name}",
+            reproduce or f"snakemake --cores 2 --config protocol={pf.path.name}",
+            "regimewise verify RESULTS_DIR",
         ],
     }
 

@@ -26,6 +26,7 @@ STAGE_WORDS = {
     "survival": "survival analysis",
     "sweep": "specification sweep",
     "report": "report",
+    "appendix": "audit appendix (manifest, environment, protocol, seeds, commands)",
     "all": "final check of all outputs",
 }
 

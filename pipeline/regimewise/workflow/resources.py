@@ -57,6 +57,8 @@ STAGE_COSTS = {
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     "report": StageCost(BASE_MB, 0.0, 0.0),
+    # not measured at scale: reads each artifact once to hash it (a few seconds per GB), holds none in memory
+    "appendix": StageCost(BASE_MB, 0.0, 0.1),
 }
 
 SAFETY = 1.5  # margin over the measured peak and time (machines and data differ)

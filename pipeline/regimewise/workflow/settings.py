@@ -28,6 +28,10 @@ STAND_INS = Path(".snakemake") / "regimewise" / "inputs"
 class Settings:
     """Paths the rules use: the protocol, the records it names, and where results, logs and benchmarks go.
 
+    ``command`` is the command line that started the run and ``reproduce`` the one that reruns it, as the
+    regimewise command line hands them over (config keys ``command`` and ``reproduce``; empty when Snakemake was
+    started directly). Only the report (``reproduce``) and the appendix (both) record them.
+
     ``stand_ins`` maps a protocol or records path that has a brace to the stand-in the rules name instead.
     """
 
@@ -42,6 +46,8 @@ class Settings:
     bootstrap_replicates: int = 0
     sweep_replicates: int = 0
     survival: bool = False
+    command: str = ""
+    reproduce: str = ""
     stand_ins: dict[str, str] = field(default_factory=dict)
 
     def rule_input(self, path: str) -> str:
@@ -86,6 +92,8 @@ def load_settings(config: dict) -> Settings:
         survival=pf.protocol.survival is not None,
         bootstrap_replicates=pf.protocol.evaluation.replicates,
         sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
+        command=str(config.get("command") or ""),
+        reproduce=str(config.get("reproduce") or ""),
         stand_ins={str(path): stand_in(path, what) for what, path in braced.items()},
     )
 

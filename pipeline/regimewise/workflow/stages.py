@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 from threadpoolctl import threadpool_limits
 
+from regimewise.appendix.assemble import AppendixRun, write_appendix
 from regimewise.bootstrap.intervals import combine, merge_intervals
 from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
@@ -62,8 +63,10 @@ def report_stage(
     sensitivity=None,
     sweep=None,
     survival=None,
+    reproduce="",
 ):
-    """Assemble summary.json, the provenance appendix and report.html from the stage outputs."""
+    """Assemble summary.json, the provenance appendix and report.html from the stage outputs; ``reproduce`` is the
+    command that reruns the analysis (rule parameter, from the command line that started the run)."""
     pf = load_protocol(protocol)
     p = pf.protocol
     parts = {
@@ -76,11 +79,18 @@ def report_stage(
         "sweep": None if sweep is None else read_json(sweep),
         "survival": None if survival is None else read_json(survival),
     }
-    prov = build_provenance(pf)
+    prov = build_provenance(pf, reproduce)
     headline = build_summary(p, parts, prov)
     write_json(provenance, prov)
     write_json(summary, headline)
     write_text(html, render_html(p, parts, prov, headline))
+
+
+def appendix_stage(protocol, html, summary, provenance, manifest, command="", reproduce=""):
+    """Write the audit appendix beside the stage folders (``<results>/appendix/``, the folder of ``manifest``):
+    the environment, the resolved protocol, the seed streams and the commands, then the manifest of every
+    artifact. ``html``, ``summary`` and ``provenance`` are inputs only so that it runs after the report."""
+    write_appendix(AppendixRun(load_protocol(protocol), Path(manifest).parent.parent, command, reproduce))
 
 
 log = logging.getLogger("regimewise")
@@ -350,11 +360,15 @@ STAGES = {
     "sweep_spec": sweep_spec_stage,
     "sweep": sweep_stage,
     "report": report_stage,
+    "appendix": appendix_stage,
 }
 
 
 def run_snakemake_job(smk) -> None:
     """Run the stage named like the Snakemake rule, logging to the rule's log file.
+
+    The stage receives the rule's inputs, outputs, named logs, wildcards and those of its ``params`` it names
+    (never ``code``, the fingerprint).
 
     Inputs named by a stand-in (a path with braces, :mod:`regimewise.workflow.settings`) reach the stage as the real
     path. A :class:`UserInputError` is written to the log and to standard error as one line starting with
@@ -370,8 +384,11 @@ def run_snakemake_job(smk) -> None:
     outputs = {k: v for k, v in smk.output.items()}
     named_logs = {k: v for k, v in smk.log.items()}
     wildcards = {k: v for k, v in smk.wildcards.items()}
+    params = {k: v for k, v in smk.params.items()}
     kwargs = {
-        k: v for k, v in {**wildcards, **named_logs, **inputs, **outputs}.items() if k in STAGE_ARGUMENTS[smk.rule]
+        k: v
+        for k, v in {**params, **wildcards, **named_logs, **inputs, **outputs}.items()
+        if k in STAGE_ARGUMENTS[smk.rule]
     }
     started = time.perf_counter()
     try:
