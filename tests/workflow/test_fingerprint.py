@@ -63,7 +63,7 @@ def test_the_modules_the_old_list_missed_now_count(module, rules):
         assert module in stage_modules(rule), f"{module} should feed {rule}"
 
 
-def test_a_template_edit_reruns_the_report_only(copy):
+def test_a_template_edit_reruns_the_report_and_appendix_only(copy):
     template = copy / "report" / "templates" / "report.html"
     before = stage_code_hashes(copy)
     original = template.read_bytes()
@@ -72,7 +72,9 @@ def test_a_template_edit_reruns_the_report_only(copy):
         after = stage_code_hashes(copy)
     finally:
         template.write_bytes(original)
-    assert {rule for rule in before if before[rule] != after[rule]} == {"report"}
+    # the appendix renders its checklist page with the report's stylesheet from the same templates folder (and
+    # lists the report in its manifest); no stage before the report may rerun
+    assert {rule for rule in before if before[rule] != after[rule]} == {"report", "appendix"}
 
 
 def test_closure_agrees_with_the_standard_library_module_finder(copy, tmp_path):
