@@ -95,3 +95,25 @@ def test_a_wide_figure_is_narrowed_to_the_printable_width():
     svg = svg_text(fig, "test")
     width_pt = float(re.search(r'width="([\d.]+)pt"', svg).group(1))
     assert width_pt <= PRINT_WIDTH_INCHES * 72 + 1
+
+
+def test_the_forest_plot_draws_a_model_projection_dashed_whatever_its_effective_sample():
+    # fitted-Q evaluation of a strategy is a model projection even when the effective sample is large
+    # (evaluation/verdicts.py): its interval is drawn dashed like any other weak estimate
+    contrast = {
+        "regime": "learned",
+        "versus": "usual_care",
+        "estimator": "fqe",
+        "difference": 2.0,
+        "low": 1.0,
+        "high": 3.0,
+        "low_ess": False,
+        "verdict": "supported",
+    }
+    values = {
+        "regimes": [{"name": "learned", "label": "Learned regime"}, {"name": "usual_care", "label": "Usual care"}],
+        "contrasts": [contrast],
+    }
+    assert "stroke-dasharray" not in contrast_figure(values, ["fqe"])
+    contrast["verdict"] = "model projection"
+    assert "stroke-dasharray" in contrast_figure(values, ["fqe"])

@@ -319,8 +319,9 @@ def drawn_contrasts(values: dict, estimators) -> list[dict]:
 def contrast_figure(values: dict, estimators) -> str:
     """Contrast forest plot: each regime minus usual care, by estimator, with its bootstrap interval.
 
-    Filled markers and solid intervals: supported (the effective sample reaches the minimum); hollow markers and
-    dashed intervals: model projections. A contrast that is not identified is not drawn (the report lists it under
+    Filled markers and solid intervals: supported (:mod:`regimewise.evaluation.verdicts`); hollow markers and
+    dashed intervals: model projections (too small an effective sample, or fitted-Q evaluation off usual care). A
+    contrast that is not identified is not drawn (the report lists it under
     the plot), so the axis spans only what is drawn.
     """
     apply_style()
@@ -333,7 +334,7 @@ def contrast_figure(values: dict, estimators) -> str:
         for c in (c for c in drawn if c["estimator"] == est):
             y = len(rows) - 1 - rows.index(c["regime"]) + (j - (len(estimators) - 1) / 2) * (0.7 / len(estimators))
             estimate = (c["difference"], c.get("low"), c.get("high"))
-            mark = (ESTIMATORS[est].marker, f"C{j}", bool(c["low_ess"]))
+            mark = (ESTIMATORS[est].marker, f"C{j}", c.get("verdict", "supported") != "supported")
             interval_point(ax, y, estimate, mark, vertical=False, label=None if labelled else est)
             labelled = True
     ax.axvline(0.0, color="0.3", linewidth=0.8)
@@ -344,7 +345,8 @@ def contrast_figure(values: dict, estimators) -> str:
     return svg_text(
         fig,
         "Each strategy minus usual care by each estimator with its bootstrap interval; hollow markers and dashed "
-        "intervals rest on too small an effective sample; contrasts that are not identified are not drawn.",
+        "intervals are model projections (too small an effective sample, or fitted-Q evaluation of a regime other "
+        "than usual care); contrasts that are not identified are not drawn.",
     )
 
 

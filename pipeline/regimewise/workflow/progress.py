@@ -26,7 +26,7 @@ STAGE_WORDS = {
     "survival": "survival analysis",
     "sweep": "specification sweep",
     "report": "report",
-    "appendix": "audit appendix (manifest, environment, protocol, seeds, commands)",
+    "appendix": "audit appendix (manifest, environment, protocol, seeds, commands, checklist)",
     "all": "final check of all outputs",
 }
 
