@@ -229,8 +229,8 @@ def test_target_has_its_21_items_with_the_published_sub_items():
         "Abstract", "Introduction", "Methods", "Results", "Discussion", "Other information"
     }  # fmt: skip
     # Sub-items and their order: the published checklist table as encoded by two third-party sources that say they
-    # were compared with it (Aperivue/medsci-skills TARGET.md; Black-Swan-Causal-Labs/target-mcp spec); the table
-    # itself was not read here.
+    # were compared with it (transcriptions in public code repositories, which agree); the table itself was not
+    # read here.
     assert numbers == [
         "1a", "1b", "1c", "2", "3", "4", "5",
         "6a", "6b", "6c", "6d", "6e", "6f", "6g", "6h",

@@ -8,8 +8,8 @@ tell a checked number from one taken on trust:
   copies: JAMA 334:1084, doi 10.1001/jama.2025.13350; BMJ 2025;390:e087179). The published checklist table itself
   was not available here; the item numbers, their sub-items (1a-1c, 6a-6h, 7a-7f, 7g(i)-(ii), 7h(i)-(ii): 39 in
   all) and their order were checked against two independent third-party encodings of it that each state they
-  were compared with the published table (Aperivue/medsci-skills, checklists/TARGET.md; Black-Swan-Causal-Labs/
-  target-mcp, specs/target-0.1.0.yaml). The table number within the statement is not verified.
+  were compared with the published table (two transcriptions of the checklist in public code repositories, which
+  agree with each other). The table number within the statement is not verified.
 - RECORD (Benchimol et al. 2015): 13 items, as the statement's abstract says; numbers and intent checked against
   the RECORD checklist table as reproduced in PMC articles (PMC5434499 Table 1, PMC11064235, a checklist copy
   titled "The RECORD statement - checklist of items, extended from the STROBE statement ...").
@@ -58,9 +58,8 @@ TARGET = Guideline(
     source_table="the TARGET checklist table of the statement (its table number not verified here)",
     wording="paraphrased in our own words; the published wording is the statement's",
     checked_against=(
-        "item count and sections: the statement's abstract; item numbers, sub-items and order: two third-party "
-        "encodings of the published checklist (Aperivue/medsci-skills checklists/TARGET.md; "
-        "Black-Swan-Causal-Labs/target-mcp specs/target-0.1.0.yaml)"
+        "item count and sections: the statement's abstract; item numbers, sub-items and order: two independent "
+        "third-party transcriptions of the published checklist table (public code repositories), which agree"
     ),
     counts="21 numbered items (certain: the abstract); 39 sub-items (from the two encodings, which agree)",
     scope_note=(
