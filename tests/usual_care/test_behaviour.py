@@ -19,6 +19,7 @@ from support.tiny import REPOSITORY
 from threadpoolctl import threadpool_limits
 
 from regimewise.core.folds import patient_folds
+from regimewise.core.terms import spline_basis
 from regimewise.core.weighting import (
     inverse_probability_weights,
     ipw_mean_difference,
@@ -34,7 +35,6 @@ from regimewise.protocol import load_protocol
 from regimewise.usual_care import logit
 from regimewise.usual_care.boosting import GradientBoostingBehaviour
 from regimewise.usual_care.crossfit import apply_probability_floor, cross_fit_proba
-from regimewise.usual_care.design import _spline_basis
 from regimewise.usual_care.fitting import fit_usual_care
 from regimewise.usual_care.logit import MultinomialLogitBehaviour
 from regimewise.usual_care.metrics import multiclass_auc, probability_of_taken
@@ -329,7 +329,7 @@ def test_cross_fitted_boosting_equals_sklearn_cross_val_predict(anes):
 def test_natural_spline_design_is_linear_beyond_the_boundary_knots():
     rng = np.random.default_rng(5)
     frame = pd.DataFrame({"potassium": rng.uniform(3.5, 6.0, 400), "step": 0})
-    basis = _spline_basis(frame["potassium"].to_numpy(), 4, "potassium")
+    basis = spline_basis(frame["potassium"].to_numpy(), 4, "potassium")
     beyond = np.linspace(6.5, 8.0, 7)
     values = np.asarray(patsy.build_design_matrices([basis.design_info], {"x": beyond})[0])
     # Natural cubic splines are linear beyond their outer knots (Hastie, Tibshirani & Friedman 2009, ESL 5.2.1):

@@ -186,10 +186,10 @@ def test_labels_reach_the_figures_as_plain_text(label):
 
 
 def test_state_named_in_the_spline_message(tmp_path):
-    from regimewise.usual_care.design import _spline_basis  # noqa: PLC2701 - the message is what is tested
+    from regimewise.core.terms import spline_basis
 
     with pytest.raises(UserInputError, match="state 'potassium': a spline with 4 degrees of freedom"):
-        _spline_basis(np.array([1.0, 2.0, 1.0]), 4, "potassium")
+        spline_basis(np.array([1.0, 2.0, 1.0]), 4, "potassium")
 
 
 def test_episodes_table_is_checked_with_the_same_guard(tmp_path, capsys):

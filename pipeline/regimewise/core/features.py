@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regimewise.core.terms import SEPARATE, ActionSlopes, TermColumns, uncentred
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
 from regimewise.protocol.types import level_text
@@ -214,34 +215,72 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
 @dataclass(frozen=True)
 class QFeatures:
     """Covariates of the Q-model: scaled states, plus powers of the continuous and integer states for a polynomial
-    basis (a binary state, a categorical state's dummies and a missing indicator get no powers).
+    basis (a binary state, a categorical state's dummies and a missing indicator get no powers), plus the columns
+    of ``q_model.terms`` (:class:`regimewise.core.terms.TermColumns`).
 
     The Q-model stays linear in its parameters (least squares per decision point and action, i.e. full
-    action-by-covariate interactions); powers let it bend, e.g. for a reward penalising distance from a target.
+    action-by-covariate interactions, or with ``q_model.action_slopes: shared`` one fit per decision point with
+    common slopes; :meth:`action_slopes`); powers let it bend, e.g. for a reward penalising distance from a target.
     ``basis: quadratic`` adds the square of every non-binary state, ``basis: cubic`` the square and the cube
-    (a separable polynomial of degree 3 in each scaled state; no cross-products between states).
+    (a separable polynomial of degree 3 in each centred and scaled state; no cross-products between states: those
+    are ``interaction`` terms). A state entered as a ``spline`` term loses its linear column and its basis powers
+    to the spline's columns.
     """
 
     scaler: StateScaler
     squared: tuple[int, ...]
     degree: int = 2
+    terms: TermColumns | None = None
 
     @classmethod
-    def from_protocol(cls, scaler: StateScaler, protocol: Protocol) -> QFeatures:
-        degree = {"linear": 1, "quadratic": 2, "cubic": 3}[protocol.q_model.basis]
-        numeric = {s.name for s in protocol.states if s.kind in ("continuous", "integer")}
-        squared = tuple(i for i, n in enumerate(scaler.names) if degree > 1 and n in numeric)
-        return cls(scaler, squared, max(degree, 2))
+    def from_protocol(cls, scaler: StateScaler, protocol: Protocol, frame: pd.DataFrame | None = None) -> QFeatures:
+        """The protocol's Q-model features; ``frame`` (the training decisions) is needed when ``q_model.terms``
+        holds a spline (its knots sit at the training values' quantiles)."""
+        q = protocol.q_model
+        splined = {t.spline for t in q.terms if t.spline is not None}
+        numeric = {s.name for s in protocol.states if s.kind in ("continuous", "integer")} - splined
+        squared = tuple(i for i, n in enumerate(scaler.names) if q.degree > 1 and n in numeric)
+        terms = None
+        if q.terms:
+            if splined and frame is None:
+                raise ValueError("a spline term needs the training decisions to place its knots")
+            terms = TermColumns.fit(q.terms, frame if frame is not None else pd.DataFrame(), scaler)
+        return cls(scaler, squared, max(q.degree, 2), terms)
+
+    def _linear(self) -> list[int]:
+        replaced = set(self.terms.spline_states) if self.terms is not None else set()
+        return [j for j, name in enumerate(self.scaler.names) if name not in replaced]
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
         states = self.scaler.transform(frame)
         powered = states[:, list(self.squared)]
-        return np.column_stack([states] + [powered**k for k in range(2, self.degree + 1)]) if self.squared else states
+        blocks = [states[:, self._linear()]] + [powered**k for k in range(2, self.degree + 1) if self.squared]
+        if self.terms is not None:
+            blocks.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
+        return np.column_stack(blocks) if len(blocks) > 1 else blocks[0]
 
     @property
     def names(self) -> list[str]:
         powers = [f"{self.scaler.names[i]}^{k}" for k in range(2, self.degree + 1) for i in self.squared]
-        return list(self.scaler.names) + powers
+        own = list(self.terms.names) if self.terms is not None else []
+        return [self.scaler.names[j] for j in self._linear()] + powers + own
+
+    def action_slopes(self, protocol: Protocol) -> ActionSlopes:
+        """How the linear Q-model's coefficients vary with the action (``q_model.action_slopes``), with the design
+        columns ([1, X], so X's first column is 1) of ``q_model.action_interactions``. A categorical state's
+        dummies left out of this fit (a level absent from the training decisions) have no column to interact."""
+        q = protocol.q_model
+        if q.action_slopes == "separate":
+            return SEPARATE
+        position = {name: j + 1 for j, name in enumerate(self.names)}
+        columns = []
+        for entry in q.action_interactions:
+            if isinstance(entry, str):
+                owned = [c for c, owner, _ in self.scaler.dummies if owner == entry] or [entry]
+            else:
+                owned = list(self.terms.columns_of(entry)) if self.terms is not None else []
+            columns += [position[name] for name in owned if name in position]
+        return ActionSlopes(True, tuple(columns))
 
 
 # Column a bootstrap resample adds (:func:`regimewise.bootstrap.replicates.resample_patients`): the patient a copy was

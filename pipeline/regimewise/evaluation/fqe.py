@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from regimewise.core.arrays import check_codes, check_proba
+from regimewise.core.terms import SEPARATE
 from regimewise.errors import UserInputError
 from regimewise.regime.qmodels import BackwardQModel, policy_average
 
@@ -27,6 +28,9 @@ class FittedQEvaluation(BackwardQModel):
         Ridge penalty on the non-intercept coefficients.
     action_labels : sequence of str, optional
         The protocol's label of each action code, used to name actions in warnings and errors.
+    slopes : ActionSlopes, optional
+        Each action fitted on its own (default) or slopes shared across actions
+        (:class:`regimewise.core.terms.ActionSlopes`).
 
     Attributes
     ----------
@@ -50,12 +54,13 @@ class FittedQEvaluation(BackwardQModel):
 
     _proba_name = "target_proba"
 
-    def __init__(self, n_actions, horizon, gamma=1.0, alpha=0.0, action_labels=None):
+    def __init__(self, n_actions, horizon, gamma=1.0, alpha=0.0, action_labels=None, slopes=SEPARATE):
         self.n_actions = n_actions
         self.horizon = horizon
         self.gamma = gamma
         self.alpha = alpha
         self.action_labels = action_labels
+        self.slopes = slopes
 
     def _next_value(self, q_next, proba_next):
         return policy_average(q_next, proba_next, self.action_labels)

@@ -67,6 +67,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray) ->
         gamma=protocol.discount,
         alpha=protocol.evaluation.fqe_ridge_alpha,
         action_labels=protocol.action_labels,
+        slopes=logged.slopes,
     )
     out = []
     taken = logged.action[rows]

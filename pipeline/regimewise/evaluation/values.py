@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import QFeatures, StateScaler, action_codes, episode_codes
+from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.fqe import FittedQEvaluation
@@ -43,17 +44,20 @@ class LoggedDecisions:
     episode: np.ndarray
     patient: np.ndarray
     behaviour_proba: np.ndarray
+    slopes: ActionSlopes = SEPARATE  # how the outcome models' coefficients vary with the action
 
     @classmethod
     def from_frame(cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol) -> LoggedDecisions:
+        features = QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol, frame)
         return cls(
-            X=QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol).transform(frame),
+            X=features.transform(frame),
             step=frame["step"].to_numpy(dtype=np.int64),
             action=action_codes(frame, protocol.action_labels),
             reward=frame["reward"].to_numpy(dtype=float),
             episode=episode_codes(frame),
             patient=pd.factorize(frame["patient_id"], sort=False)[0],
             behaviour_proba=behaviour_proba,
+            slopes=features.action_slopes(protocol),
         )
 
     def weighting_table(self) -> tuple:
@@ -257,6 +261,7 @@ def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: 
                 episode=np.unique(logged.episode[rows], return_inverse=True)[1],
                 patient=logged.patient[rows],
                 behaviour_proba=logged.behaviour_proba[rows],
+                slopes=logged.slopes,
             )
             try:
                 q_taken[rows], v_target[rows], _ = _fitted_q_evaluation(part, target[rows], protocol)
@@ -273,6 +278,7 @@ def _fitted_q_evaluation(logged: LoggedDecisions, target: np.ndarray, protocol: 
         gamma=protocol.discount,
         alpha=protocol.evaluation.fqe_ridge_alpha,
         action_labels=protocol.action_labels,
+        slopes=logged.slopes,
     ).fit(logged.X, logged.step, logged.action, logged.reward, logged.episode, target)
     q_taken, v_target = fqe.taken_and_target_values(logged.X, logged.step, logged.action, target)
     first = logged.step == 0

@@ -32,6 +32,7 @@ from regimewise.protocol.sections import (
     SweepSpec,
 )
 from regimewise.protocol.strategies import StrategiesSpec
+from regimewise.protocol.terms import interactions_problem, terms_problem
 from regimewise.protocol.types import Discount, Seed, Strict, WholeNumber, level_text
 
 
@@ -94,6 +95,23 @@ class Protocol(Strict):
                 raise ValueError(
                     f"behaviour_model.spline_states: {name!r} is not a declared continuous or integer state"
                 )
+        return self
+
+    @model_validator(mode="after")
+    def _terms_fit_states(self) -> Protocol:
+        b, q = self.behaviour_model, self.q_model
+        problem = terms_problem("behaviour_model.terms", b.terms, self.states, splines=b.spline_states)
+        problem = problem or terms_problem("q_model.terms", q.terms, self.states, basis_degree=q.degree)
+        problem = problem or interactions_problem(
+            "q_model.action_interactions", q.action_interactions, q.terms, self.states
+        )
+        if problem:
+            raise ValueError(problem)
+        if q.action_slopes == "shared" and self.evaluation.m_out_of_n:
+            raise ValueError(
+                "evaluation.m_out_of_n tests near-ties with the variance of separate per-action fits; it cannot be "
+                "combined with q_model.action_slopes: shared"
+            )
         return self
 
     @model_validator(mode="after")

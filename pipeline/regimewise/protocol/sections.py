@@ -15,6 +15,7 @@ from typing import Annotated, Literal
 
 from pydantic import Field, model_validator
 
+from regimewise.protocol.terms import ModelTerm, term_text
 from regimewise.protocol.types import (
     FINITE,
     NOT_BOOLEAN,
@@ -250,6 +251,11 @@ class BehaviourModelSpec(Strict):
         [], description="non-binary states entered as natural cubic splines (multinomial_logit only)"
     )
     spline_df: Annotated[WholeNumber, Field(ge=3, le=10)] = Field(4, description="degrees of freedom of each spline")
+    terms: Annotated[list[ModelTerm], Field(max_length=100)] = Field(
+        [],
+        description="extra terms beside every state's main effect (multinomial_logit only): {state: NAME, power: 2 "
+        "or 3}, {spline: NAME, df: 4}, {interaction: [NAME, NAME]}",
+    )
     folds: Annotated[WholeNumber, Field(ge=1, le=20)] = Field(
         5,
         description="cross-fitting folds, split by patient; records get out-of-fold probabilities. 1 = no "
@@ -262,6 +268,10 @@ class BehaviourModelSpec(Strict):
         (1.0, 99.0), description="[low, high] percentiles at which weights are truncated in the diagnostics"
     )
 
+    @property
+    def term_labels(self) -> list[str]:
+        return [t.label for t in self.terms]
+
     @model_validator(mode="after")
     def _percentiles_ordered(self) -> BehaviourModelSpec:
         low, high = self.truncation_percentiles
@@ -269,6 +279,11 @@ class BehaviourModelSpec(Strict):
             raise ValueError(f"truncation_percentiles must satisfy 0 <= low < high <= 100, got [{low}, {high}]")
         if self.folds == 1 and self.kind == "gradient_boosting":
             raise ValueError("gradient_boosting must be cross-fitted: set behaviour_model.folds to 2 or more")
+        if self.terms and self.kind == "gradient_boosting":
+            raise ValueError(
+                "behaviour_model.terms apply to the multinomial_logit model (boosted trees find their own "
+                "interactions); remove the terms or use kind: multinomial_logit"
+            )
         return self
 
 
@@ -284,6 +299,23 @@ class QModelSpec(Strict):
         "linear",
         description="quadratic adds the square of every non-binary state to the covariates; cubic "
         "adds the square and the cube",
+    )
+    terms: Annotated[list[ModelTerm], Field(max_length=100)] = Field(
+        [],
+        description="extra terms of the linear Q-model (and of the evaluation's outcome models) beside every state's "
+        "main effect and the basis powers: {state: NAME, power: 2 or 3}, {spline: NAME, df: 4} (in place of the "
+        "state's main effect), {interaction: [NAME, NAME]}",
+    )
+    action_slopes: Literal["separate", "shared"] = Field(
+        "separate",
+        description="separate: every action has its own coefficients on every term (one least-squares fit per "
+        "decision point and action); shared: one fit per decision point with an intercept per action and slopes "
+        "common to all actions, except on the action_interactions",
+    )
+    action_interactions: Annotated[list[Identifier | ModelTerm], Field(max_length=100)] = Field(
+        [],
+        description="with action_slopes: shared, the states (their main effects) and terms whose slopes differ by "
+        "action",
     )
     ridge_alpha: Annotated[float, Field(ge=0.0, le=1e6), FINITE, NOT_BOOLEAN] | Literal["cv"] = Field(
         0.0,
@@ -317,6 +349,33 @@ class QModelSpec(Strict):
     boosting_max_leaf_nodes: Annotated[WholeNumber, Field(ge=2, le=255)] = 15
     boosting_learning_rate: Annotated[float, Field(gt=0.0, le=1.0), FINITE, NOT_BOOLEAN] = 0.1
     boosting_min_samples_leaf: Annotated[WholeNumber, Field(ge=1, le=10_000)] = 50
+
+    @property
+    def term_labels(self) -> list[str]:
+        return [t.label for t in self.terms]
+
+    @property
+    def interaction_labels(self) -> list[str]:
+        return [term_text(t) for t in self.action_interactions]
+
+    @property
+    def degree(self) -> int:
+        """The highest power ``basis`` adds to every continuous and integer state (1: none)."""
+        return {"linear": 1, "quadratic": 2, "cubic": 3}[self.basis]
+
+    @model_validator(mode="after")
+    def _terms_need_linear(self) -> QModelSpec:
+        if self.kind == "gradient_boosting" and (self.terms or self.action_slopes == "shared"):
+            raise ValueError(
+                "q_model.terms and action_slopes: shared apply to the linear Q-model (boosted trees find their own "
+                "interactions); remove them or use kind: linear"
+            )
+        if self.action_interactions and self.action_slopes == "separate":
+            raise ValueError(
+                "q_model.action_interactions need action_slopes: shared (with separate slopes every term already "
+                "has its own slope per action)"
+            )
+        return self
 
 
 class StateCondition(Strict):

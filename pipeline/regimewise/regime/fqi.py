@@ -34,6 +34,7 @@ from threadpoolctl import threadpool_limits
 
 from regimewise.core.arrays import check_proba, next_row_index
 from regimewise.core.folds import patient_folds
+from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.regime.permitted import constrained_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
@@ -69,6 +70,9 @@ class QLearningSettings:
     ensemble_size : int, default 20
     oof_error : bool, default False
         Compute the out-of-fold error of the final Q-models per step (extra fits).
+    slopes : ActionSlopes, default separate
+        Linear Q-model only: each action fitted on its own, or slopes shared across actions
+        (:class:`regimewise.core.terms.ActionSlopes`).
     """
 
     gamma: float = 1.0
@@ -84,6 +88,7 @@ class QLearningSettings:
     pessimism: float | None = None
     ensemble_size: int = 20
     oof_error: bool = False
+    slopes: ActionSlopes = SEPARATE
 
 
 class FittedQIteration(BackwardQModel):
@@ -181,14 +186,16 @@ class FittedQIteration(BackwardQModel):
     # ------------------------------------------------------------------------------------------- models
     def _make_model(self, alpha, seed):
         if self.settings.q_model == "linear":
-            return lambda: LinearActionModel(self.n_actions, alpha)
+            return lambda: LinearActionModel(self.n_actions, alpha, self.settings.slopes)
         return lambda: BoostedActionModel(self.n_actions, self.settings.boosting_params, seed)
 
     def _fit_model(self, X, action, y, rows):
         """One Q-model on the table rows ``rows`` (CV for the ridge penalty, ensemble if pessimistic)."""
         alpha = self.settings.alpha
         if alpha == "cv":
-            alpha = choose_ridge_alpha(self.n_actions, list(self.settings.alpha_grid), X, action, y, self._folds[rows])
+            alpha = choose_ridge_alpha(
+                self.n_actions, list(self.settings.alpha_grid), X, action, y, self._folds[rows], self.settings.slopes
+            )
         self.alpha_.append(alpha)
         make = self._make_model(alpha, self._model_seed)
         if self._ensemble_weights is not None:

@@ -90,6 +90,7 @@ def fit_q_learning(
         pessimism=c.pessimism if level >= 3 and c.pessimism > 0 else None,
         ensemble_size=c.ensemble_size,
         oof_error=oof_error,
+        slopes=features.action_slopes(protocol),
     )
     return FittedQIteration(
         len(protocol.actions),
@@ -141,7 +142,7 @@ def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
     """Fit usual care, then the constrained regime, on validated decisions sorted by episode and step."""
     usual_care = fit_usual_care(decisions, protocol)
     proba = usual_care.record_proba
-    features = QFeatures.from_protocol(usual_care.scaler, protocol)
+    features = QFeatures.from_protocol(usual_care.scaler, protocol, decisions)
     fqi = fit_q_learning(decisions, proba, protocol, features)
     return LearnedRegime(usual_care, features, fqi, protocol.action_labels, ClinicalRuleSet.from_protocol(protocol))
 

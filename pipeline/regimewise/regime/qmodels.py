@@ -19,6 +19,7 @@ from regimewise.core.arrays import (
     check_proba,
     next_row_index,
 )
+from regimewise.core.terms import SEPARATE
 from regimewise.errors import StatisticalWarning, UserInputError
 
 
@@ -69,7 +70,81 @@ def _least_squares_columns(design, y, alpha):
     return np.column_stack([scipy.linalg.solve(gram, design.T @ column, assume_a="pos") for column in columns])
 
 
-def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value):
+def _shared_design(design, action, present, interactions):
+    """The design of the shared-slope fit: [the columns of ``design`` other than ``interactions`` (intercept
+    first), a 0/1 column per action present but the first, each action's own copy of the ``interactions``
+    columns (zero on the other actions' rows)]."""
+    J = list(interactions)
+    keep = [j for j in range(design.shape[1]) if j not in set(J)]
+    indicators = [(action == a).astype(float)[:, None] for a in present]
+    return np.hstack([design[:, keep], *indicators[1:], *(design[:, J] * i for i in indicators)]), keep
+
+
+def _shared_solve(Z, y, alpha, unpenalised):
+    """Least squares of ``y`` (n,) or (n, R) on the shared design ``Z`` with a ridge penalty ``alpha`` on every
+    coefficient but those at ``unpenalised`` (the intercept and the actions' intercept shifts). Every action's
+    slopes on the interaction columns are its own and penalised alike, so the fit does not depend on which action
+    comes first. Each response column is solved on its own, as :func:`_least_squares_columns`."""
+    penalty = np.full(Z.shape[1], float(alpha))
+    penalty[list(unpenalised)] = 0.0
+    gram = Z.T @ Z + np.diag(penalty)
+    columns = [y] if y.ndim == 1 else [np.ascontiguousarray(y[:, j]) for j in range(y.shape[1])]
+    if np.linalg.cond(gram) < WELL_CONDITIONED:
+        solved = [scipy.linalg.solve(gram, Z.T @ c, assume_a="pos") for c in columns]
+    else:
+        root = (np.sqrt(penalty)[:, None] * np.eye(Z.shape[1]))[penalty > 0]
+        augmented, pad = np.vstack([Z, root]), np.zeros(root.shape[0])
+        solved = [np.linalg.lstsq(augmented, np.concatenate([c, pad]), rcond=None)[0] for c in columns]
+    return solved[0] if y.ndim == 1 else np.column_stack(solved)
+
+
+def fit_actions(design, action, y, alpha, n_actions, slopes=SEPARATE, weight=None):
+    """Coefficients of every action's linear Q-model on ``design`` ([1, X]): (K, p + 1), or (K, p + 1, R) when
+    ``y`` is (n, R); NaN for an action without rows (or without positive weight).
+
+    ``slopes`` (:class:`regimewise.core.terms.ActionSlopes`) says whether each action is fitted on its own rows
+    (separate) or all actions in one fit with common slopes (shared), returned as each action's coefficient
+    vector: intercept β₀ + γ_a, the common slopes θ, and the action's own slopes on the interaction columns.
+    ``weight`` (n,) fits weighted least squares (rows of zero weight are left out).
+    """
+    keep_rows = np.ones(len(action), dtype=bool) if weight is None else weight > 0
+    coef = np.full((n_actions, design.shape[1]) + np.shape(y)[1:], np.nan)
+
+    def rooted(rows):
+        if weight is None:
+            return design[rows], y[rows]
+        root = np.sqrt(weight[rows])
+        return design[rows] * root[:, None], y[rows] * (root if y.ndim == 1 else root[:, None])
+
+    if not slopes.shared:
+        for a in range(n_actions):
+            cell = np.flatnonzero((action == a) & keep_rows)
+            if cell.size:
+                d, t = rooted(cell)
+                coef[a] = _least_squares(d, t, alpha) if y.ndim == 1 else _least_squares_columns(d, t, alpha)
+        return coef
+    rows = np.flatnonzero(keep_rows)
+    present = np.flatnonzero(np.bincount(action[rows], minlength=n_actions) > 0)
+    if not present.size:
+        return coef
+    J = list(slopes.interactions)
+    Z, keep = _shared_design(design[rows], action[rows], present, J)
+    if weight is not None:
+        Z = Z * np.sqrt(weight[rows])[:, None]
+    shifts = len(keep) + np.arange(len(present) - 1)
+    c = _shared_solve(Z, rooted(rows)[1], alpha, [0, *shifts])
+    own = len(keep) + len(present) - 1
+    for k, a in enumerate(present):
+        coef[a][keep] = c[: len(keep)]
+        if k:
+            coef[a][0] = coef[a][0] + c[shifts[k - 1]]
+        coef[a][J] = c[own + k * len(J) : own + (k + 1) * len(J)]
+    return coef
+
+
+def _backward_induction(
+    X, step, action, reward, next_row, *, horizon, n_actions, gamma, alpha, next_value, slopes=SEPARATE
+):
     """Coefficients (H, K, p + 1) of the per-step, per-action linear Q-models; NaN where an action has no rows.
 
     ``next_value(q_next, rows)`` returns the value of the next state for the next-step rows ``rows``, given
@@ -85,22 +160,20 @@ def _backward_induction(X, step, action, reward, next_row, *, horizon, n_actions
         if cont.size:
             q_next = design[later] @ coef[t + 1].T
             target[cont] = reward[cont] + gamma * next_value(q_next, later)
-        for a in range(n_actions):
-            cell = rows[action[rows] == a]
-            if cell.size:
-                coef[t, a] = _least_squares(design[cell], target[cell], alpha)
+        coef[t] = fit_actions(design[rows], action[rows], target[rows], alpha, n_actions, slopes)
     return coef
 
 
 def evaluate_policies(
-    X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha, action_labels=None
+    X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha, action_labels=None, slopes=SEPARATE
 ):
     """Fitted-Q evaluation of several regimes on the same decisions at once (Le, Voloshin & Yue 2019).
 
     The backward induction of :class:`regimewise.evaluation.fqe.FittedQEvaluation` run for every regime of
     ``targets`` (a list of (n, K) probabilities) together: each step's and action's least-squares problem has the
     same design for every regime, so it is solved once with one right-hand side per regime. Rows sorted by
-    episode then step, as everywhere. ``action_labels`` name the actions in the errors.
+    episode then step, as everywhere. ``action_labels`` name the actions in the errors; ``slopes``
+    (:class:`regimewise.core.terms.ActionSlopes`) shares the slopes across actions in one fit per step.
 
     Returns
     -------
@@ -128,12 +201,10 @@ def evaluate_policies(
                     )
                 except UserInputError as err:
                     failed[r] = err
-        for a in range(n_actions):
-            cell = rows[action[rows] == a]
-            if cell.size:
-                coef = _least_squares_columns(design[cell], target[cell], alpha)
-                for r in range(n_regimes):  # one regime at a time, no BLAS: the same bits whatever shares the pass
-                    q[r, rows, a] = np.einsum("np,p->n", design[rows], np.ascontiguousarray(coef[:, r]))
+        coef = fit_actions(design[rows], action[rows], target[rows], alpha, n_actions, slopes)
+        for a in np.flatnonzero(np.bincount(action[rows], minlength=n_actions) > 0):
+            for r in range(n_regimes):  # one regime at a time, no BLAS: the same bits whatever shares the pass
+                q[r, rows, a] = np.einsum("np,p->n", design[rows], np.ascontiguousarray(coef[a][:, r]))
     return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
@@ -203,6 +274,7 @@ class BackwardQModel:
             gamma=self.gamma,
             alpha=self.alpha,
             next_value=lambda q_next, rows: self._next_value(q_next, proba[rows]),
+            slopes=getattr(self, "slopes", None) or SEPARATE,
         )
         self.coef_ = coef
         self.fitted_actions_ = ~np.isnan(coef[..., 0])
@@ -261,15 +333,17 @@ class BackwardQModel:
 
 
 class LinearActionModel:
-    """Linear Q-model in [1, X] with one coefficient vector per action (action-by-state interactions).
+    """Linear Q-model in [1, X] with one coefficient vector per action (action-by-state interactions, or with
+    ``slopes`` shared across actions: :func:`fit_actions`).
 
     Fitted by (weighted) minimum-norm least squares with a ridge penalty ``alpha`` on every coefficient but
     the intercept. Actions without rows (or with zero total weight) get NaN coefficients and Q.
     """
 
-    def __init__(self, n_actions, alpha=0.0):
+    def __init__(self, n_actions, alpha=0.0, slopes=SEPARATE):
         self.n_actions = n_actions
         self.alpha = alpha
+        self.slopes = slopes
 
     def fit(self, X, action, y, weight=None):
         return self.fit_design(_design(X), action, y, weight)
@@ -280,15 +354,7 @@ class LinearActionModel:
         Rows of zero weight are dropped before the square-root weights are applied, so a resample's fit touches
         only its own rows (the same numbers, row by row, as weighting every row first).
         """
-        self.coef_ = np.full((self.n_actions, design.shape[1]), np.nan)
-        for a in range(self.n_actions):
-            cell = np.flatnonzero((action == a) if weight is None else (action == a) & (weight > 0))
-            if cell.size:
-                if weight is None:
-                    self.coef_[a] = _least_squares(design[cell], y[cell], self.alpha)
-                else:
-                    root = np.sqrt(weight[cell])
-                    self.coef_[a] = _least_squares(design[cell] * root[:, None], y[cell] * root, self.alpha)
+        self.coef_ = fit_actions(design, action, y, self.alpha, self.n_actions, self.slopes, weight)
         return self
 
     def predict(self, X):
@@ -340,10 +406,10 @@ def out_of_fold_errors(make_model, X, action, y, folds):
     return error
 
 
-def choose_ridge_alpha(n_actions, grid, X, action, y, folds):
+def choose_ridge_alpha(n_actions, grid, X, action, y, folds, slopes=SEPARATE):
     """Ridge penalty from ``grid`` with the smallest out-of-fold mean squared error (first on ties)."""
     scores = [
-        np.nanmean(out_of_fold_errors(lambda a=alpha: LinearActionModel(n_actions, a), X, action, y, folds))
+        np.nanmean(out_of_fold_errors(lambda a=alpha: LinearActionModel(n_actions, a, slopes), X, action, y, folds))
         for alpha in grid
     ]
     return float(grid[int(np.nanargmin(scores))])

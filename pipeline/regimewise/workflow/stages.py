@@ -154,7 +154,7 @@ def regime_stage(protocol, decisions, proba, table, regime):
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
-    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p)
+    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     variants = regime_variants(frame, probabilities, p, features)
     rules = ClinicalRuleSet.from_protocol(p)
     permitted = rules.permitted(frame)

@@ -1,0 +1,129 @@
+"""Design columns of the protocol's extra model terms (:mod:`regimewise.protocol.terms`), and how the linear
+Q-model's coefficients vary with the action (:class:`ActionSlopes`).
+
+A power or an interaction is computed from the states divided by their training standard deviation
+(:class:`regimewise.core.features.StateScaler`) but not centred, a categorical state as its treatment-coded dummies;
+a spline from the state's recorded values. Dividing by a constant changes no least-squares fit, so a term means
+exactly what the same term of a regression formula means, also when only some terms get action-specific slopes
+(centring would not be harmless there: (x − m)·z·1[a] = x·z·1[a] − m·z·1[a] brings in a term the model may not have).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import patsy
+
+from regimewise.errors import UserInputError
+
+
+@dataclass(frozen=True)
+class ActionSlopes:
+    """How the linear Q-model's coefficients vary with the action.
+
+    ``shared=False`` (the default): each action has its own intercept and slopes (one least-squares fit per
+    decision point and action). ``shared=True``: one fit per decision point of
+    Q(s, a) = β₀ + γ_a + Σ_{j ∉ J} θ_j x_j + Σ_{j ∈ J} θ_{a,j} x_j: an intercept shift γ_a per action (γ = 0 for the
+    first action present at that point), slopes θ_j common to every action, and each action's own slopes on the
+    design columns ``interactions`` (J; indices into the design [1, X], so 1 is X's first column). With a ridge
+    penalty, neither the intercept nor the shifts are penalised and every action's own slopes are penalised alike,
+    so the fit does not depend on the order of the actions.
+    """
+
+    shared: bool = False
+    interactions: tuple[int, ...] = ()
+
+
+SEPARATE = ActionSlopes()
+
+
+@dataclass(frozen=True)
+class TermColumns:
+    """The columns of a model's extra terms, fitted on training decisions and applied to any table of states.
+
+    ``names`` lists the columns: ``age^2``, ``sbp:potassium``, ``education[college]:sbp`` (one per dummy of a
+    categorical), ``ns(age)[0]``… (``df`` columns of a spline); ``groups`` gives, per term, the names of its
+    columns (empty when a categorical's dummies were all left out of this fit).
+    """
+
+    terms: tuple
+    parts: tuple  # per term: ("power", column, power) | ("interaction", columns_a, columns_b) | ("spline", state, info)
+    names: tuple[str, ...]
+    groups: tuple[tuple[str, ...], ...]
+
+    @classmethod
+    def fit(cls, terms, frame: pd.DataFrame, scaler, default_df: int = 4) -> TermColumns:
+        parts, names, groups = [], [], []
+        for term in terms:
+            if term.interaction is not None:
+                left, right = (state_columns(scaler, name) for name in term.interaction)
+                columns = [(a, b) for a in left for b in right]
+                parts.append(("interaction", tuple(columns)))
+                group = tuple(f"{scaler.names[a]}:{scaler.names[b]}" for a, b in columns)
+            elif term.spline is not None:
+                df = term.df or default_df
+                info = spline_basis(frame[term.spline].to_numpy(dtype=float), df, term.spline).design_info
+                parts.append(("spline", term.spline, info))
+                group = tuple(f"ns({term.spline})[{k}]" for k in range(len(info.column_names)))
+            else:
+                parts.append(("power", state_columns(scaler, term.state)[0], term.power))
+                group = (term.label,)
+            names += group
+            groups.append(group)
+        return cls(tuple(terms), tuple(parts), tuple(names), tuple(groups))
+
+    def transform(self, frame: pd.DataFrame, scaled: np.ndarray) -> np.ndarray:
+        """The term columns (n, len(names)); ``scaled`` holds the scaler's columns of ``frame`` divided by their
+        scale, not centred (:func:`uncentred`)."""
+        blocks = []
+        for part in self.parts:
+            if part[0] == "interaction":
+                blocks += [scaled[:, a] * scaled[:, b] for a, b in part[1]]
+            elif part[0] == "spline":
+                values = frame[part[1]].to_numpy(dtype=float)
+                basis = np.asarray(patsy.build_design_matrices([part[2]], {"x": values})[0])
+                blocks += list(basis.T)
+            else:
+                blocks.append(scaled[:, part[1]] ** part[2])
+        return np.column_stack(blocks) if blocks else np.zeros((len(frame), 0))
+
+    @property
+    def spline_states(self) -> tuple[str, ...]:
+        return tuple(part[1] for part in self.parts if part[0] == "spline")
+
+    def columns_of(self, term) -> tuple[str, ...]:
+        """Names of the columns of ``term`` (matched by its identity, so a spline's df need not be repeated)."""
+        for own, group in zip(self.terms, self.groups):
+            if own.key == term.key:
+                return group
+        return ()
+
+
+def uncentred(scaler, frame: pd.DataFrame) -> np.ndarray:
+    """The scaler's columns of ``frame`` divided by their scale, not centred (dummies and indicators as 0/1)."""
+    return scaler.unscaled(frame) / np.asarray(scaler.scales)
+
+
+def state_columns(scaler, state: str) -> list[int]:
+    """Indices in the scaler's columns of a state: its own column, or its dummies in use if categorical."""
+    dummies = [scaler.names.index(column) for column, owner, _ in scaler.dummies if owner == state]
+    if dummies or state not in scaler.names:
+        return dummies
+    return [scaler.names.index(state)]
+
+
+SPLINE_FIX = "lower the spline's df or enter the state without one"
+
+
+def spline_basis(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX):
+    """patsy's centred natural cubic regression spline basis of ``values`` (Wood 2017, *Generalized Additive
+    Models*, 2nd ed., section 5.3.1); :class:`UserInputError` when the values are too few for ``df``."""
+    distinct = np.unique(values).size
+    if distinct <= df:
+        raise UserInputError(
+            f"state {name!r}: a spline with {df} degrees of freedom needs more than {df} distinct values, the "
+            f"records have {distinct}; {fix}"
+        )
+    return patsy.dmatrix(f"cr(x, df={df}, constraints='center') - 1", {"x": values})
