@@ -46,6 +46,9 @@ def penalty_points(reward: pd.Series) -> pd.Series:
 def prepare(simulated: Path, study: Path) -> None:
     decisions = pd.read_csv(simulated / "decisions.csv", dtype={"episode_id": str, "patient_id": str})
     episodes = pd.read_csv(simulated / "episodes.csv", dtype={"episode_id": str, "patient_id": str})
+    lacking = [c for c in ("adherence", "reward") if c not in decisions.columns]
+    if lacking:
+        sys.exit(f"error: {simulated / 'decisions.csv'} has no column {lacking[0]!r}; use a folder written by simulate")
     decisions["adherence"] = adherence_band(decisions["adherence"])
     decisions["reward"] = penalty_points(decisions["reward"])
     decisions = decisions.rename(columns={"adherence": "adherence_band", "reward": "penalty_points"})
@@ -66,7 +69,10 @@ def main(argv=None) -> int:
             sys.exit(f"error: {args.simulated / name} not found; write it first with `regimewise simulate --out`")
     if (args.study / "protocol.yaml").exists() and not args.force:
         sys.exit(f"error: {args.study / 'protocol.yaml'} exists (perhaps edited); choose a new folder or add --force")
-    prepare(args.simulated, args.study)
+    try:
+        prepare(args.simulated, args.study)
+    except OSError as err:
+        sys.exit(f"error: {err.filename or args.study}: {err.strerror or err}; choose another folder")
     print(f"wrote {args.study / 'records'} and {args.study / 'protocol.yaml'} (invented records; research use only)")
     return 0
 
