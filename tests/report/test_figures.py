@@ -6,8 +6,17 @@ from __future__ import annotations
 import re
 
 import matplotlib.pyplot as plt
+import numpy as np
+import pytest
 
-from regimewise.report.figures import PRINT_WIDTH_INCHES, contrast_figure, svg_text, tradeoff_figure
+from regimewise.bootstrap.intervals import interval
+from regimewise.report.figures import (
+    PRINT_WIDTH_INCHES,
+    contrast_figure,
+    drawn_contrasts,
+    svg_text,
+    tradeoff_figure,
+)
 from regimewise.report.html import unplotted
 
 
@@ -117,3 +126,29 @@ def test_the_forest_plot_draws_a_model_projection_dashed_whatever_its_effective_
     assert "stroke-dasharray" not in contrast_figure(values, ["fqe"])
     contrast["verdict"] = "model projection"
     assert "stroke-dasharray" in contrast_figure(values, ["fqe"])
+
+
+@pytest.mark.parametrize("basic", [False, True])
+def test_a_comparator_as_reference_keeps_its_place_in_the_forest_plot(basic):
+    # With evaluation.reference naming a comparator, the bootstrap stores its pair with usual care as usual care
+    # minus the comparator (bootstrap/intervals.py, regime_pairs). The plot shows comparator minus usual care:
+    # the same replicates' differences negated, whose interval numpy's quantiles of the negated draws give
+    # (source: numpy.quantile, method "weibull", the rule of core/quantiles.py, on -draws).
+    draws = np.random.default_rng(4).normal(1.5, 0.8, size=49)
+    stored = {"regime": "usual_care", "versus": "guideline", "estimator": "wdr", "difference": 1.4}
+    stored |= interval(1.4, draws, 0.95, 1.0, basic) | {"low_ess": True, "verdict": "model projection"}
+    values = {
+        "regimes": [
+            {"name": "learned", "label": "Learned regime"},
+            {"name": "usual_care", "label": "Usual care"},
+            {"name": "guideline", "label": "Guideline rule"},
+        ],
+        "contrasts": [],
+        "bootstrap": {"contrasts": [stored]},
+    }
+    (shown,) = drawn_contrasts(values, ["wdr"])
+    assert (shown["regime"], shown["versus"], shown["difference"]) == ("guideline", "usual_care", -1.4)
+    q_low, q_high = np.quantile(-draws, [0.025, 0.975], method="weibull")
+    expected = (2 * -1.4 - q_high, 2 * -1.4 - q_low) if basic else (q_low, q_high)  # basic: Davison & Hinkley §5.2
+    assert (shown["low"], shown["high"]) == pytest.approx(expected, abs=1e-12)
+    assert "Guideline rule" in contrast_figure(values, ["wdr"]) and unplotted(values, ["wdr"]) == ["Learned regime"]

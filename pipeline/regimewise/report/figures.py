@@ -292,16 +292,31 @@ def interval_point(ax, at, estimate, mark, vertical, label=None):
 
 def usual_care_contrasts(values: dict) -> list[dict]:
     """Every regime minus usual care by every estimator: the evaluation's contrasts (learned regime, strategies)
-    and, from the bootstrap, the fixed strategies' (with their intervals where replicates exist)."""
+    and, from the bootstrap, the fixed strategies' and comparators' (with their intervals where replicates exist).
+    The bootstrap takes the protocol's ``evaluation.reference`` as the second regime of each of its pairs, so with
+    a fixed strategy or a comparator as reference its pair with usual care is stored as usual care minus it: that
+    one is turned round here (:func:`turned`)."""
     contrasts = [c for c in values["contrasts"] if c["versus"] == "usual_care"]
     seen = {(c["regime"], c["estimator"]) for c in contrasts}
     boot = values.get("bootstrap") or {}
-    extra = [
-        c
-        for c in boot.get("contrasts", [])
-        if c["versus"] == "usual_care" and (c["regime"], c["estimator"]) not in seen
-    ]
-    return contrasts + extra
+    with_usual = [c for c in boot.get("contrasts", []) if "usual_care" in (c["regime"], c["versus"])]
+    with_usual = [c if c["versus"] == "usual_care" else turned(c) for c in with_usual]
+    return contrasts + [c for c in with_usual if (c["regime"], c["estimator"]) not in seen]
+
+
+def turned(contrast: dict) -> dict:
+    """A contrast a − b as b − a: the difference negated, the interval's limits negated and swapped (the bootstrap's
+    quantile rule is symmetric, so these are the limits the replicates of b − a give: Hyndman & Fan 1996, type 6)."""
+
+    def minus(x):
+        return None if x is None else -x
+
+    out = {**contrast, "regime": contrast["versus"], "versus": contrast["regime"]}
+    out.update(difference=minus(contrast["difference"]), low=minus(contrast["high"]), high=minus(contrast["low"]))
+    if contrast.get("unreported_interval") is not None:
+        low, high = contrast["unreported_interval"]
+        out["unreported_interval"] = [minus(high), minus(low)]
+    return out
 
 
 def drawn_contrasts(values: dict, estimators) -> list[dict]:
