@@ -222,10 +222,27 @@ def test_combined_table_is_sorted_with_the_prespecified_analysis_flagged(tmp_pat
     table = combine_sweep([_result(s, *made_up[s.id]) for s in reversed(grid)], protocol)
     assert [row["id"] for row in table["specifications"]] == ["spec_02", "spec_00", "spec_01"]  # undefined last
     assert [row["prespecified"] for row in table["specifications"]] == [False, True, False]
-    assert table["intervals_above_zero"] == 1 and table["n_specifications"] == 3
-    assert table["intervals_above_zero_low_ess"] == 1 and "(1 of them on too small an effective" in table["sentence"]
+    assert table["intervals_showing_benefit"] == 1 and table["n_specifications"] == 3
+    assert table["intervals_showing_benefit_low_ess"] == 1
+    assert "(1 of them on too small an effective" in table["sentence"]
     assert table["sentence"].startswith("1 of the 3 specifications keeps the 95% bootstrap interval")
-    assert "ranks 2 of 3" in table["sentence"]
+    assert "above zero" in table["sentence"] and "ranks 2 of 3" in table["sentence"]
+
+
+def test_lower_is_better_counts_intervals_below_zero(tmp_path):
+    path = _write(
+        tmp_path,
+        {"axes": {"constraints.support_threshold": [0.02, 0.1], "q_model.kind": ["linear"]}},
+        evaluation={"estimators": ["wdr"]},
+        reward={"description": "made-up cost", "better": "lower"},
+    )
+    protocol = load_protocol(path).protocol
+    grid = sweep_specifications(protocol)
+    # the same made-up intervals: only spec_02's (-0.5 to -0.1) lies wholly on the side of a benefit
+    made_up = {"spec_00": (0.4, 0.1, 0.7), "spec_01": (None, None, None), "spec_02": (-0.3, -0.5, -0.1)}
+    table = combine_sweep([_result(s, *made_up[s.id]) for s in grid], protocol)
+    assert (table["better"], table["intervals_showing_benefit"]) == ("lower", 1)
+    assert "below zero (lower is better)" in table["sentence"]
 
 
 def test_combine_refuses_a_stale_specification(tmp_path):

@@ -148,8 +148,9 @@ def combine_sweep(results: list[dict], protocol: Protocol) -> dict:
             )
     name = headline_estimator(protocol)
     rows = sorted((_row(found[spec.id], name) for spec in grid), key=_sort_key)
-    above = [row for row in rows if row["low"] is not None and row["low"] > 0]
-    above_low_ess = sum(row["low_ess"] for row in above)
+    lower = protocol.reward.better == "lower"
+    benefit = [row for row in rows if row["low"] is not None and (row["high"] < 0 if lower else row["low"] > 0)]
+    benefit_low_ess = sum(row["low_ess"] for row in benefit)
     level = protocol.evaluation.interval_level
     rank = next(i for i, row in enumerate(rows, 1) if row["prespecified"])
     return {
@@ -163,10 +164,11 @@ def combine_sweep(results: list[dict], protocol: Protocol) -> dict:
         "prespecified": grid[0].id,
         "prespecified_in_grid": grid[0].in_grid,
         "n_specifications": len(rows),
-        "intervals_above_zero": len(above),
-        "intervals_above_zero_low_ess": above_low_ess,
+        "better": protocol.reward.better,
+        "intervals_showing_benefit": len(benefit),
+        "intervals_showing_benefit_low_ess": benefit_low_ess,
         "specifications": rows,
-        "sentence": sweep_sentence(len(above), above_low_ess, len(rows), rank, name, level),
+        "sentence": sweep_sentence(len(benefit), benefit_low_ess, len(rows), rank, name, level, lower),
     }
 
 
@@ -198,18 +200,24 @@ def _sort_key(row: dict):
     return (not defined, difference if defined else 0.0, row["id"])
 
 
-def sweep_sentence(above: int, above_low_ess: int, total: int, rank: int, estimator: str, level: float) -> str:
-    """One plain sentence: how many specifications keep the interval of the difference above zero (and how many
-    of those rest on too small an effective sample), and where the pre-specified analysis ranks."""
-    if above == 0:
+def sweep_sentence(
+    benefit: int, benefit_low_ess: int, total: int, rank: int, estimator: str, level: float, lower: bool = False
+) -> str:
+    """One plain sentence: how many specifications keep the interval of the difference on the side of a benefit
+    (above zero, or below zero when lower is better; and how many of those rest on too small an effective sample),
+    and where the pre-specified analysis ranks."""
+    if benefit == 0:
         count = f"None of the {total} specifications keeps"
-    elif above == total:
+    elif benefit == total:
         count = f"All {total} specifications keep"
     else:
-        count = f"{above} of the {total} specifications keep{'s' if above == 1 else ''}"
-    unreliable = f" ({above_low_ess} of them on too small an effective sample to be trusted)" if above_low_ess else ""
+        count = f"{benefit} of the {total} specifications keep{'s' if benefit == 1 else ''}"
+    unreliable = ""
+    if benefit_low_ess:
+        unreliable = f" ({benefit_low_ess} of them on too small an effective sample to be trusted)"
+    side = "below zero (lower is better)" if lower else "above zero"
     return (
         f"{count} the {100 * level:.0f}% bootstrap interval of the learned-minus-usual-care difference "
-        f"({estimator}) above zero{unreliable}; the pre-specified analysis ranks {rank} of {total} by its "
+        f"({estimator}) {side}{unreliable}; the pre-specified analysis ranks {rank} of {total} by its "
         "estimate (1 = lowest)."
     )

@@ -167,11 +167,6 @@ class Protocol(Strict):
 
     @model_validator(mode="after")
     def _sweep_grid_valid(self) -> Protocol:
-        if self.sweeps is not None and self.reward.better == "lower":
-            raise ValueError(
-                "sweeps: the specification sweep counts intervals above zero, which assumes reward.better: higher; "
-                "remove sweeps, or negate the reward column and set reward.better: higher"
-            )
         if self.sweeps is not None:
             if max(self.sweeps.gammas) > self.sensitivity.gamma_max:
                 raise ValueError(f"sweeps.gammas must not exceed sensitivity.gamma_max ({self.sensitivity.gamma_max})")

@@ -198,7 +198,10 @@ def sweep_figure(sweep: dict) -> str:
         )
     ax.axvline(0.0, color="black", linewidth=0.8)
     ax.set_yticks(range(len(rows)), [r["id"] + (" (pre-specified)" if r["prespecified"] else "") for r in rows])
-    ax.set_xlabel(f"learned − usual care ({sweep['estimator']}) with {100 * sweep['level']:.0f}% bootstrap interval")
+    lower = "; lower is better" if sweep.get("better") == "lower" else ""
+    ax.set_xlabel(
+        f"learned − usual care ({sweep['estimator']}) with {100 * sweep['level']:.0f}% bootstrap interval{lower}"
+    )
     return svg_text(
         fig,
         "Each specification's learned-minus-usual-care difference with its bootstrap interval, sorted "

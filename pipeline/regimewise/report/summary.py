@@ -178,8 +178,9 @@ def sweep_headlines(sweep: dict | None) -> dict | None:
         "prespecified",
         "prespecified_in_grid",
         "n_specifications",
-        "intervals_above_zero",
-        "intervals_above_zero_low_ess",
+        "better",
+        "intervals_showing_benefit",
+        "intervals_showing_benefit_low_ess",
         "sentence",
     )
     row_keys = ("id", "prespecified", "settings", "difference", "low", "high", "ess", "low_ess", "tipping_point")
