@@ -90,7 +90,7 @@ def term_text(term) -> str:
     return term if isinstance(term, str) else term.label
 
 
-def terms_problem(where: str, terms, states, *, basis_degree: int = 1, splines=(), spline_allowed=True) -> str | None:
+def terms_problem(where: str, terms, states, *, basis_degree: int = 1, splines=()) -> str | None:
     """The first problem of a model's ``terms`` as one line naming ``where`` (e.g. ``q_model.terms[1]``), or None.
 
     ``states`` are the protocol's state variables; ``basis_degree`` the highest power the Q-model's ``basis``
@@ -115,8 +115,6 @@ def terms_problem(where: str, terms, states, *, basis_degree: int = 1, splines=(
             return f"{at}: a {what} of {kinds[name]} state {name!r} adds nothing; use a continuous or integer state"
         if term.power is not None and term.power <= basis_degree:
             return f"{at}: {term.label} is already in the model (q_model.basis adds it); remove the term"
-        if term.spline is not None and not spline_allowed:
-            return f"{at}: spline terms apply to the multinomial_logit usual-care model only"
         if term.spline is not None and name in splines:
             return f"{at}: {name!r} is already in behaviour_model.spline_states; list it once"
     splined = {t.spline for t in terms if t.spline is not None} | set(splines)
