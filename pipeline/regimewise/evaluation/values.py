@@ -90,10 +90,12 @@ def regime_targets(
     """
     labels = protocol.action_labels
     k = len(labels)
-    targets = [] if recommended is None else [{"name": "learned", "label": "Learned regime"}]
+    targets = (
+        []
+        if recommended is None
+        else [{"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)}]
+    )
     targets.append({"name": "usual_care", "label": "Usual care", "target": behaviour_proba})
-    if recommended is not None:
-        targets[0]["target"] = one_hot(recommended, k)
     if protocol.evaluation.fixed_strategies:
         targets += [
             {
