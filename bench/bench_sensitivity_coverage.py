@@ -77,7 +77,7 @@ def evaluated_bounds(decisions, protocol, gammas):
     proba = fit_usual_care(decisions, protocol).record_proba
     recommended = cross_fitted_recommendations(decisions, proba, protocol)
     curve = regime_curve(decisions, proba, recommended, protocol, gammas=gammas)
-    return curve["learned"], curve["ess"]
+    return curve["bounded"], curve["ess"]
 
 
 def true_values(decisions, protocol, seed, args):

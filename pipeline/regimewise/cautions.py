@@ -34,6 +34,18 @@ RECOMMENDATION_CAUTION = (
 )
 
 
+STRATEGY_CAUTION = (
+    "Research use only: strategies compared on historical records are hypotheses for study, not medical advice; "
+    "treatment decisions stay with licensed clinicians under local law and ethics approval."
+)
+
+
+def stage_caution(protocol) -> str:
+    """The caution a stage output carries: about a learned regime's recommendations, or, when the protocol learns
+    no regime (``analysis.learn_regime: false``), about the strategies it compares."""
+    return RECOMMENDATION_CAUTION if protocol.analysis.learn_regime else STRATEGY_CAUTION
+
+
 TERMINAL_CAUTION = (
     "Research use only: not medical advice. Treatment decisions stay with licensed clinicians, "
     "under local law and with ethics approval."

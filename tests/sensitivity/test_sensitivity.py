@@ -133,13 +133,13 @@ def test_tipping_point_of_the_summary_is_where_the_interval_reaches_zero():
     gammas = analysis_gammas(protocol.sensitivity)
     replicates = [
         {
-            "learned": np.column_stack([shift + 3.0 - 2.0 * (gammas - 1.0), shift + 3.0 + gammas]).tolist(),
+            "bounded": np.column_stack([shift + 3.0 - 2.0 * (gammas - 1.0), shift + 3.0 + gammas]).tolist(),
             "usual_care": 0.0,
         }
         for shift in np.linspace(-0.5, 0.5, 41)
     ]
     point = {
-        "learned": np.column_stack([3.0 - 2.0 * (gammas - 1.0), 3.0 + gammas]),
+        "bounded": np.column_stack([3.0 - 2.0 * (gammas - 1.0), 3.0 + gammas]),
         "usual_care": 0.0,
         "returns_sd": 1.0,
         "ess": 500.0,

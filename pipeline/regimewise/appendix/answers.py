@@ -56,7 +56,8 @@ answers = registrar(METHODS)
 def report_sections(summary: dict) -> frozenset[str]:
     """Ids of the report sections rendered for this summary (the report omits the optional ones it lacks)."""
     always = {"summary-panel", "glossary", "section-reading", "section-protocol", "section-validation"}
-    always |= {"section-usual-care", "section-regime", "section-values", "section-provenance"}
+    always |= {"section-usual-care", "section-values", "section-provenance"}
+    always.add("section-regime" if summary["regime"] is not None else "section-compared")
     optional = {
         "section-cohort": "overlap_rule" in summary["usual_care_model"],
         "section-strategies": summary["strategies"] is not None,
@@ -194,10 +195,15 @@ def _contrasts(run):
 @answers("target", "6g", "7g(i)")
 def _assumptions(run):
     s, p = run.summary, run.protocol
+    positivity = (
+        "the learned regime recommends only actions usual care took with probability at least "
+        f"{p.constraints.support_threshold:g} in that state, and"
+        if s["regime"] is not None
+        else "no regime is learned;"
+    )
     text = (
         f"At every decision, no unmeasured confounding given the {len(p.states)} recorded states (cannot be checked "
-        "from the records); positivity: the learned regime recommends only actions usual care took with probability "
-        f"at least {s['regime']['support_threshold']:g} in that state, and a strategy the records cannot support is "
+        f"from the records); positivity: {positivity} a strategy the records cannot support is "
         "reported as not identified; consistency; the declared states carry what the next decision needs"
     )
     if s["sensitivity"] is not None:
@@ -230,6 +236,14 @@ def _eligibility_emulated(run):
 @answers("target", "7b")
 def _strategies_emulated(run):
     s, p = run.summary, run.protocol
+    if s["regime"] is None:
+        return Answer(
+            "A record follows a strategy at a decision when the action taken is the strategy's. No regime was learned "
+            "(analysis.learn_regime: false): the strategies are the fixed rules and comparators the protocol names, "
+            "checked against its clinical rules when it is read",
+            "section-compared",
+            ("regime/regime.json",),
+        )
     return Answer(
         "A record follows a strategy at a decision when the action taken is the strategy's. The learned regime "
         f"recommends only actions that the {len(p.constraints.clinical_rules)} clinical rules allow and usual care "
@@ -300,15 +314,22 @@ def _variables(run):
 @answers("target", "7h(i)")
 def _analysis_done(run):
     s, p = run.summary, run.protocol
-    m, boot, folds = s["usual_care_model"], s["bootstrap"], (s["regime"]["cross_fit"] or {}).get("folds") or 1
-    fitted = f"cross-fitted over {folds} folds" if folds > 1 else "on the records it was learned from"
-    text = f"Usual-care model {words(m['kind'])} over {m['folds']} fold(s); the learned regime evaluated {fitted}"
+    m, boot = s["usual_care_model"], s["bootstrap"]
+    text = f"Usual-care model {words(m['kind'])} over {m['folds']} fold(s); "
+    if s["regime"] is None:
+        text += "no regime learned (analysis.learn_regime: false): the named strategies evaluated"
+    else:
+        folds = (s["regime"]["cross_fit"] or {}).get("folds") or 1
+        text += "the learned regime evaluated " + (
+            f"cross-fitted over {folds} folds" if folds > 1 else "on the records it was learned from"
+        )
     if boot is None:
         text += "; no bootstrap replicates (estimates without intervals)"
     else:
+        held = "" if s["regime"] is None else f", the learned regime {p.evaluation.bootstrap_regime} in each"
         text += (
             f"; {boot['replicates_used']} of {boot['replicates']} bootstrap replicates used, {boot['method']} "
-            f"intervals at {share(boot['level'])}, the learned regime {p.evaluation.bootstrap_regime} in each"
+            f"intervals at {share(boot['level'])}{held}"
         )
     return Answer(text + f"; {_missing_policies(p)}", "section-values", ("bootstrap/intervals.json",))
 

@@ -43,6 +43,7 @@ SECTION_TITLES = {
     "section-usual-care": "3. Usual-care model",
     "section-cohort": "3b. Cohort, balance and overlap",
     "section-regime": "4. The learned regime in words",
+    "section-compared": "4. The strategies compared",
     "section-values": "5. Values of the regimes",
     "section-strategies": "5b. Strategies the records can support",
     "section-sensitivity": "6. Sensitivity to unmeasured confounding",

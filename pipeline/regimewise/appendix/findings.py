@@ -84,7 +84,7 @@ def _outcome_distribution(run):
 @answers("target", "13")
 def _effects(run):
     s = run.summary
-    parts = [s["headline"]["sentence"], s["learned_regime_sentence"]]
+    parts = [s["headline"]["sentence"], *([s["learned_regime_sentence"]] if s["learned_regime_sentence"] else [])]
     if s["survival"] is not None:
         parts.append(s["survival"]["sentence"])
     return Answer(" ".join(dict.fromkeys(parts)), "summary-panel", ("report/summary.json",))
@@ -135,10 +135,13 @@ def _usual_care_fit(run):
 @answers("gottesman", "Q2")
 def _effective_sample(run):
     s = run.summary
-    estimator, learned = s["headline"]["estimator"], s["values"]["learned"][s["headline"]["estimator"]]
+    estimator = s["headline"]["estimator"]
+    learned = ""
+    if "learned" in s["values"]:
+        learned = f" and the learned regime's ({estimator}) on {fmt(s['values']['learned'][estimator]['ess'], 1)}"
     return Answer(
         f"{fmt(s['cohort']['episodes'])} episodes; the headline estimate rests on an effective sample of "
-        f"{fmt(s['headline']['ess'], 1)} episodes and the learned regime's ({estimator}) on {fmt(learned['ess'], 1)}; "
+        f"{fmt(s['headline']['ess'], 1)} episodes{learned}; "
         f"below {fmt(s['minimum_reliable_ess'], 0)} an estimate is flagged as unreliable",
         "section-values",
         ("evaluate/values.json",),
@@ -149,6 +152,15 @@ def _effective_sample(run):
 def _constraints(run):
     s, c = run.summary, run.protocol.constraints
     change = "no limit" if c.max_intensity_change is None else f"at most {c.max_intensity_change} step(s)"
+    if s["regime"] is None:
+        return Answer(
+            f"No regime was learned (analysis.learn_regime: false); the named strategies keep to the "
+            f"{len(c.clinical_rules)} clinical rules (checked when the protocol is read) and intensity change "
+            f"{change}; "
+            f"support threshold {c.support_threshold:g} (an action below it counts as unsupported in the verdicts)",
+            "section-compared",
+            ("regime/regime.json",),
+        )
     return Answer(
         f"{len(c.clinical_rules)} clinical rules; support threshold {c.support_threshold:g} "
         f"({fmt(s['regime']['decisions_changed_by_support'])} decisions changed by it); pessimism {c.pessimism:g}; "
@@ -173,6 +185,13 @@ def _identified(run):
 
 @answers("target", "X6")
 def _cross_fit(run):
+    if run.summary["regime"] is None:
+        return Answer(
+            "No regime was learned (analysis.learn_regime: false), so nothing is cross-fitted: the named strategies "
+            "are fixed in the protocol; the bootstrap refits usual care and the outcome models in each replicate",
+            "section-values",
+            ("regime/regime.json",),
+        )
     fit = run.summary["regime"]["cross_fit"] or {}
     held = (
         "holds the learned regime fixed" if run.protocol.evaluation.bootstrap_regime == "fixed" else "learns it again"
@@ -239,6 +258,15 @@ def _all_variables(run):
 @answers("gottesman", "Q3")
 def _prospective(run):
     s = run.summary
+    if s["regime"] is None:
+        return Answer(
+            "No regime was learned (analysis.learn_regime: false): the strategies compared are the rules the protocol "
+            "names, fixed before the analysis and checked against the clinical rules",
+            "section-compared",
+            ("regime/regime.json",),
+            authors_add="a prospective evaluation, transfer to other sites and times, and clinicians' review of the "
+            "reward",
+        )
     fidelity = s["regime"].get("readable_tree_fidelity")
     return Answer(
         f"The learned regime differs from the action taken at {share(s['regime']['share_differs_from_taken'])} of "

@@ -78,7 +78,8 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
     spec = protocol.evaluation
     good, failed = collect_replicates(shards, spec.replicates)
     size = shared_resample_size(shards) if shards else NO_RESAMPLE  # no shard jobs run without replicates
-    regime = shared_regime(shards, spec.bootstrap_regime) if shards else spec.bootstrap_regime
+    expected = replicate_regime(protocol)
+    regime = shared_regime(shards, expected) if shards else expected
     scale = math.sqrt(size["m"] / size["n"]) if size["n"] else 1.0
     values = point_values(point)
     reps = [r["values"] for r in good]
@@ -137,6 +138,12 @@ def withheld(entry: dict, verdict: str | None) -> dict:
     if out["verdict"] == NOT_IDENTIFIED:
         out.update(unreported_interval=[out["low"], out["high"]], low=None, high=None, bootstrap_se=None)
     return out
+
+
+def replicate_regime(protocol: Protocol) -> str:
+    """What the replicates do with the learned regime: ``evaluation.bootstrap_regime`` (``fixed`` or ``refit``), or
+    ``none`` when the protocol learns no regime (``analysis.learn_regime: false``)."""
+    return protocol.evaluation.bootstrap_regime if protocol.analysis.learn_regime else "none"
 
 
 def shared_resample_size(shards: list[dict]) -> dict:

@@ -51,6 +51,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regimewise.bootstrap.intervals import replicate_regime
 from regimewise.bootstrap.m_out_of_n import resample_size
 from regimewise.core.features import RESAMPLED_FROM, patient_clusters
 from regimewise.core.seeds import stream_rng
@@ -64,7 +65,7 @@ from regimewise.regime.learning import (
     learn_regime,
     record_proba,
 )
-from regimewise.sensitivity.analysis import regime_curve, sensitivity_target
+from regimewise.sensitivity.analysis import bounded_actions, regime_curve, sensitivity_target
 from regimewise.survival.analysis import survival_values
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -162,7 +163,10 @@ def fit_replicate(decisions: pd.DataFrame, protocol: Protocol, held: HeldRegime 
     ``evaluation.cross_fit_folds`` > 1) and the folds of that cross-fitting (None with one fold).
 
     With ``held`` (rows aligned with ``decisions``) only usual care is refitted; the regime and folds are ``held``'s.
+    With ``analysis.learn_regime: false`` only usual care is fitted, and the regime, Q-values and folds are None.
     """
+    if not protocol.analysis.learn_regime:
+        return fit_usual_care(decisions, protocol).record_proba, None, None, None
     if held is not None:
         return fit_usual_care(decisions, protocol).record_proba, held.recommended, held.q, held.folds
     if protocol.evaluation.cross_fit_folds == 1:
@@ -196,10 +200,11 @@ def replicate_values(
     intervals). ``held``: the regime held fixed at the resample's rows (None: learned again)."""
     proba, recommended, q, folds = fit_replicate(decisions, protocol, held)
     values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds, learned_q=q)
-    curve = regime_curve(decisions, proba, recommended, protocol, adoption=sensitivity_target(protocol)["adoption"])
+    bounded = bounded_actions(decisions, protocol, recommended)
+    curve = regime_curve(decisions, proba, bounded, protocol, adoption=sensitivity_target(protocol)["adoption"])
     out = {
         "values": point_values(values),
-        "sensitivity": {"learned": to_jsonable(curve["learned"]), "usual_care": curve["usual_care"]},
+        "sensitivity": {"bounded": to_jsonable(curve["bounded"]), "usual_care": curve["usual_care"]},
     }
     if protocol.survival is not None and episodes is not None:
         out["survival"] = survival_values(decisions, episodes, proba, recommended, protocol, learned_q=q)
@@ -251,7 +256,7 @@ def run_shard(
     given (:func:`held_regime`); with ``refit`` ``held`` is ignored.
     """
     spec = protocol.evaluation
-    if spec.bootstrap_regime == "refit":
+    if spec.bootstrap_regime == "refit" or not protocol.analysis.learn_regime:
         held = None
     elif held is None:
         held = held_regime(decisions, protocol)
@@ -261,7 +266,7 @@ def run_shard(
     return {
         "shard": shard,
         "shards": spec.shards,
-        "regime": spec.bootstrap_regime,
+        "regime": replicate_regime(protocol),
         "resample": size,
         "replicates": [
             run_replicate(decisions, groups, protocol, r, size["m"], episodes=episodes, held=held) for r in replicates

@@ -78,7 +78,7 @@ def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
 def regime_targets(
     frame: pd.DataFrame,
     behaviour_proba: np.ndarray,
-    recommended: np.ndarray,
+    recommended: np.ndarray | None,
     protocol: Protocol,
     learned_q: np.ndarray | None = None,
 ) -> list[dict]:
@@ -89,27 +89,27 @@ def regime_targets(
     decisions, rows aligned with ``behaviour_proba``).
 
     ``learned_q`` (n, K) holds the learned regime's cross-fitted Q-values, needed by the override strategies.
+    With ``analysis.learn_regime: false`` there is no learned regime (``recommended`` is None): usual care comes
+    first, then the named strategies.
     """
     labels = protocol.action_labels
     k = len(labels)
-    targets = [
-        {"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)},
-        {"name": "usual_care", "label": "Usual care", "target": behaviour_proba},
-    ]
+    targets = (
+        []
+        if recommended is None
+        else [{"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)}]
+    )
+    targets.append({"name": "usual_care", "label": "Usual care", "target": behaviour_proba})
     if protocol.evaluation.fixed_strategies:
         targets += [
             {
                 "name": f"always_{a}",
                 "label": f"Always {a.replace('_', ' ')}",
-                "target": one_hot(np.full(len(recommended), j), k),
+                "target": one_hot(np.full(len(frame), j), k),
             }
             for j, a in enumerate(labels)
         ]
-    columns = {  # a categorical state's levels stay text; the comparators' conditions read them as such
-        s.name: frame[s.name].to_numpy(dtype=object if s.kind == "categorical" else float)
-        for s in protocol.states
-        if protocol.comparators
-    }
+    columns = _comparator_columns(frame, protocol)
     for c in protocol.comparators:
         codes = c.action_codes(columns, len(frame), labels)
         targets.append({"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c})
@@ -117,6 +117,35 @@ def regime_targets(
         proba = strategy_proba(s, recommended, behaviour_proba, learned_q)
         targets.append({"name": s.name, "label": s.label, "target": proba, "strategy": s})
     return targets
+
+
+def _comparator_columns(frame: pd.DataFrame, protocol: Protocol) -> dict:
+    """The states the comparators' conditions read: a categorical state's levels stay text."""
+    return {
+        s.name: frame[s.name].to_numpy(dtype=object if s.kind == "categorical" else float)
+        for s in protocol.states
+        if protocol.comparators
+    }
+
+
+def named_strategy_codes(frame: pd.DataFrame, protocol: Protocol, name: str) -> np.ndarray:
+    """Action codes, per row of ``frame``, of a strategy the protocol names (``always_<action>`` or a comparator)."""
+    labels = protocol.action_labels
+    if name.startswith("always_") and name.removeprefix("always_") in labels:
+        return np.full(len(frame), labels.index(name.removeprefix("always_")), dtype=np.int64)
+    comparator = next(c for c in protocol.comparators if c.name == name)
+    return np.asarray(comparator.action_codes(_comparator_columns(frame, protocol), len(frame), labels))
+
+
+def named_strategy_label(protocol: Protocol, name: str) -> str:
+    """The label of a strategy the protocol names: the comparator's label, or 'Always <action>'."""
+    comparator = next((c for c in protocol.comparators if c.name == name), None)
+    return comparator.label if comparator is not None else f"Always {name.removeprefix('always_').replace('_', ' ')}"
+
+
+def named_strategy_words(protocol: Protocol, name: str) -> str:
+    """A named strategy in a sentence: "the named strategy '<label>'"."""
+    return f"the named strategy '{named_strategy_label(protocol, name)}'"
 
 
 def evaluate_regime(
@@ -221,11 +250,14 @@ def evaluate_target(
 
 
 def usual_care_contrasts(regimes: list[dict], estimators) -> list[dict]:
-    """Learned regime and every strategy minus usual care, by each estimator, with the weaker regime's verdict."""
+    """Learned regime and every strategy minus usual care, by each estimator, with the weaker regime's verdict.
+
+    Without a learned regime (``analysis.learn_regime: false``), every named strategy minus usual care."""
     usual = next(r["estimates"] for r in regimes if r["name"] == "usual_care")
+    learned = any(r["name"] == "learned" for r in regimes)
     out = []
     for r in regimes:
-        if r["name"] != "learned" and "family" not in r:
+        if r["name"] == "usual_care" or (learned and r["name"] != "learned" and "family" not in r):
             continue
         for name in estimators:
             mine, theirs = r["estimates"][name], usual[name]
@@ -333,7 +365,7 @@ def clustered_mean(values: np.ndarray, cluster: np.ndarray) -> tuple[float, floa
 def evaluate_all(
     frame: pd.DataFrame,
     behaviour_proba: np.ndarray,
-    recommended: np.ndarray,
+    recommended: np.ndarray | None,
     protocol: Protocol,
     side_by_side: dict[str, np.ndarray] | None = None,
     *,
@@ -341,7 +373,8 @@ def evaluate_all(
     learned_folds: np.ndarray | None = None,
     learned_q: np.ndarray | None = None,
 ) -> dict:
-    """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts.
+    """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts
+    (``recommended`` None: no regime was learned, and the contrasts are the named strategies minus usual care).
 
     With ``strict=False`` (bootstrap replicates) a regime whose fitted-Q evaluation cannot be fitted on these
     records (an action it may take never occurs at some step) gets null dr, wdr and fqe values instead of
@@ -370,7 +403,11 @@ def evaluate_all(
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
         "regimes": regimes,
         "contrasts": contrasts,
-        "learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol),
+        **(
+            {"learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol)}
+            if recommended is not None
+            else {}
+        ),
         **(
             {}
             if side_by_side is None

@@ -18,6 +18,7 @@ from regimewise.protocol.sections import (
     MAX_SPECIFICATIONS,
     SWEEP_AXES,
     Action,
+    AnalysisSpec,
     BehaviourModelSpec,
     Constraints,
     DataSpec,
@@ -65,6 +66,7 @@ class Protocol(Strict):
         description="strategies the protocol names, such as a guideline rule: ordered rules (conditions -> action) "
         "and a default action, each evaluated, bootstrapped and (with survival) followed like the fixed strategies",
     )
+    analysis: AnalysisSpec = AnalysisSpec()
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:
@@ -140,10 +142,50 @@ class Protocol(Strict):
         return self
 
     @model_validator(mode="after")
+    def _comparison_only(self) -> Protocol:
+        """With ``analysis.learn_regime: false`` nothing is learned: refuse what needs a learned regime, and settle
+        the headline among the named strategies."""
+        if self.analysis.learn_regime:
+            if self.analysis.headline is not None:
+                raise ValueError(
+                    "analysis.headline names the headline of a study that learns no regime; with learn_regime: true "
+                    "the headline is the learned regime or strategies.headline: remove analysis.headline"
+                )
+            return self
+        for key, why in (
+            ("strategies", "partial adoption and the other strategies are derived from the learned regime"),
+            ("sweeps", "the specification sweep varies how the regime is learned"),
+        ):
+            if getattr(self, key) is not None:
+                raise ValueError(
+                    f"{key}: {why}, but analysis.learn_regime is false: remove {key} or set learn_regime: true"
+                )
+        if self.evaluation.bootstrap_regime == "refit":
+            raise ValueError(
+                "evaluation.bootstrap_regime: refit learns the regime again in each replicate, but "
+                "analysis.learn_regime is false: remove bootstrap_regime"
+            )
+        named = self.named_strategies
+        if not named:
+            raise ValueError(
+                "analysis.learn_regime is false and there is nothing to compare with usual care: add comparators or "
+                "set evaluation.fixed_strategies: true"
+            )
+        if self.analysis.headline is None and len(self.comparators) != 1:
+            raise ValueError(
+                "analysis.headline: with learn_regime: false, name the strategy the headline reports (one of "
+                f"{', '.join(named)})"
+            )
+        if self.analysis.headline is not None and self.analysis.headline not in named:
+            raise ValueError(
+                f"analysis.headline: {self.analysis.headline!r} is not a named strategy of this protocol; use one of "
+                f"{', '.join(named)}"
+            )
+        return self
+
+    @model_validator(mode="after")
     def _reference_is_a_regime(self) -> Protocol:
-        names = ["usual_care", "learned"]
-        names += [f"always_{a}" for a in self.action_labels] if self.evaluation.fixed_strategies else []
-        names += [c.name for c in self.comparators]
+        names = ["usual_care", *(["learned"] if self.analysis.learn_regime else []), *self.named_strategies]
         if self.evaluation.reference not in names:
             raise ValueError(
                 f"evaluation.reference: {self.evaluation.reference!r} is not a regime of this protocol; use one of "
@@ -172,6 +214,20 @@ class Protocol(Strict):
                 raise ValueError(f"sweeps.gammas must not exceed sensitivity.gamma_max ({self.sensitivity.gamma_max})")
             sweep_specifications(self)
         return self
+
+    @property
+    def named_strategies(self) -> tuple[str, ...]:
+        """The strategies the protocol names: the fixed ``always_<action>`` (with evaluation.fixed_strategies), then
+        the comparators."""
+        fixed = [f"always_{a}" for a in self.action_labels] if self.evaluation.fixed_strategies else []
+        return (*fixed, *(c.name for c in self.comparators))
+
+    @property
+    def headline_regime(self) -> str | None:
+        """With ``analysis.learn_regime: false``, the named strategy the headline reports (else None)."""
+        if self.analysis.learn_regime:
+            return None
+        return self.analysis.headline or self.comparators[0].name
 
     @property
     def action_labels(self) -> tuple[str, ...]:

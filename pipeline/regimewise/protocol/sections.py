@@ -543,6 +543,21 @@ class ReportSpec(Strict):
     )
 
 
+class AnalysisSpec(Strict):
+    """What the study does: learn a regime and compare it, or only compare the strategies the protocol names."""
+
+    learn_regime: Flag = Field(
+        True,
+        description="false: no regime is learned; the study values usual care, the fixed strategies and the "
+        "comparators and contrasts them (no strategies section, no sweeps)",
+    )
+    headline: Identifier | None = Field(
+        None,
+        description="with learn_regime: false, the named strategy the headline reports against usual care "
+        "(always_<action> or a comparator's name; default: the only comparator when there is exactly one)",
+    )
+
+
 class SurvivalSpec(Strict):
     """Survival under each strategy by clone–censor–weight (Cain et al. 2010; Hernán 2018; Maringe et al. 2020)."""
 

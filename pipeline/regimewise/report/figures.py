@@ -19,6 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 
 from regimewise.core.features import dummy_name
 from regimewise.describe.balance import SMD_FLAG
+from regimewise.evaluation.values import named_strategy_label
 from regimewise.usual_care.diagnostics import CRUMP_CUT
 
 # Okabe & Ito (2008), "Color universal design": distinguishable under the common colour-vision deficiencies.
@@ -70,15 +71,16 @@ def reliability_figure(by_step, labels) -> str:
     )
 
 
-def overlap_figure(overlap) -> str:
-    """Histograms of the probability of the action taken and of the action recommended, one panel per step."""
+def overlap_figure(overlap, headline: str | None = None) -> str:
+    """Histograms of the probability of the action taken and of the action recommended, one panel per step;
+    ``headline`` (a label): the actions compared are that named strategy's, no regime being learned."""
 
     steps = sorted(overlap, key=int)
     fig, axes = panel_grid(len(steps))
     for ax, step in zip(axes, steps):
         for key, colour, label in (
             ("taken_probability", "C0", "taken"),
-            ("recommended_probability", "C5", "recommended"),
+            ("recommended_probability", "C5", "recommended" if headline is None else "headline strategy"),
         ):
             counts = np.asarray(overlap[step][key]["histogram"], dtype=float)
             edges = np.linspace(0.0, 1.0, counts.size + 1)
@@ -92,7 +94,9 @@ def overlap_figure(overlap) -> str:
     return svg_text(
         fig,
         "Overlap by decision point: distribution of usual care's estimated probability of the action "
-        "taken (solid) and of the action the learned regime recommends (dashed).",
+        "taken (solid) and of the action "
+        + ("the learned regime recommends" if headline is None else f"the headline strategy ({headline}) prescribes")
+        + " (dashed).",
     )
 
 
@@ -138,9 +142,15 @@ def section_figures(protocol, behaviour, cohort) -> dict:
         labels.update({dummy_name(s.name, v): f"{s.label}: {v}" for v in levels} or {s.name: s.label})
     return {
         "reliability": reliability_figure(behaviour["by_step"], protocol.action_labels),
-        "overlap": "" if cohort is None else overlap_figure(cohort["overlap_by_step"]),
+        "overlap": "" if cohort is None else overlap_figure(cohort["overlap_by_step"], _headline_label(protocol)),
         "balance": "" if cohort is None else balance_figure(cohort["balance_by_step"], labels),
     }
+
+
+def _headline_label(protocol) -> str | None:
+    """The headline named strategy's label when the protocol learns no regime, else None."""
+    name = protocol.headline_regime
+    return None if name is None else named_strategy_label(protocol, name)
 
 
 def sensitivity_figure(sensitivity: dict) -> str:

@@ -1,7 +1,8 @@
 """report.html: one self-contained page rendered from the stage outputs with the templates in ``templates/``.
 
 The report opens with the cautions, then the protocol, the validation counts, the usual-care model, the
-learned regime in words, the value table and the provenance. Figures are inline SVG (no external assets).
+learned regime in words (or, when the protocol learns none, the named strategies it compares), the value table and
+the provenance. Figures are inline SVG (no external assets).
 Counts from 1 to ``report.min_cell_count - 1`` are shown as ``<min_cell_count``.
 """
 
@@ -81,11 +82,13 @@ def render_html(p, parts, prov, headline) -> str:
         values=parts["values"],
         prov=prov,
         summary=headline,
-        actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]),
+        actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]) if "by_step" in regime else None,
         value_figure=contrast_figure(parts["values"], p.evaluation.estimators),
         unplotted=unplotted(parts["values"], p.evaluation.estimators),
         tradeoff_figure=None if headline["strategies"] is None else tradeoff_figure(headline["strategies"]["table"]),
-        weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"]),
+        weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"])
+        if "learned_weight_histograms" in parts["values"]
+        else None,
         cohort=parts.get("cohort"),
         usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
         sensitivity=parts.get("sensitivity"),

@@ -115,7 +115,10 @@ def _summary(p, parts, prov) -> dict:
             "inverse_probability_weights": parts["behaviour"]["inverse_probability_weights"],
             **usual_care_summary(parts["behaviour"], parts.get("cohort")),
         },
-        "regime": {
+        "learn_regime": p.analysis.learn_regime,
+        "regime": None
+        if not p.analysis.learn_regime
+        else {
             "support_threshold": parts["regime"]["constraints"]["support_threshold"],
             "decisions_changed_by_support": parts["regime"]["decisions_changed_by_support"],
             "share_differs_from_taken": parts["regime"]["share_differs_from_taken"],
@@ -128,7 +131,7 @@ def _summary(p, parts, prov) -> dict:
         "minimum_reliable_ess": values["minimum_reliable_ess"],
         "bootstrap": values["bootstrap"],
         "headline": headline_block(p, values),
-        "learned_regime_sentence": headline_sentence(p, values),
+        "learned_regime_sentence": headline_sentence(p, values) if p.analysis.learn_regime else None,
         "strategies": strategy_headlines(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "sweep": sweep_headlines(parts.get("sweep")),
@@ -212,7 +215,10 @@ def safeguard_headlines(regime: dict, values: dict) -> dict:
 
 
 def headline_name(p) -> str:
-    """The regime the headline is about: the protocol's pre-specified strategy, else the learned regime."""
+    """The regime the headline is about: the protocol's pre-specified strategy, else the learned regime; without a
+    learned regime, the named strategy of ``analysis.headline`` (or the only comparator)."""
+    if p.headline_regime is not None:
+        return p.headline_regime
     chosen = headline_strategy(p.strategies)
     return "learned" if chosen is None else chosen.name
 
@@ -220,7 +226,8 @@ def headline_name(p) -> str:
 def headline_block(p, values) -> dict:
     """summary.json's ``headline``: the one contrast the report leads with, by the headline estimator.
 
-    Strategy (the pre-specified one of the ``strategies`` section, else the learned regime), estimator,
+    Strategy (the pre-specified one of the ``strategies`` section, else the learned regime; the named strategy of
+    ``analysis.headline`` when no regime is learned), estimator,
     difference from usual care with its bootstrap interval, ESS, verdict and the plain sentence. A value that is
     not identified has no number here (values.json keeps it for audit)."""
     name, estimator = headline_name(p), headline_estimator(p)
@@ -232,7 +239,7 @@ def headline_block(p, values) -> dict:
         "label": regime["label"],
         "words": regime.get("words"),
         "better": p.reward.better,
-        "prespecified": p.strategies is not None,
+        "prespecified": p.strategies is not None or p.headline_regime is not None,
         "estimator": estimator,
         "difference": None if withheld else contrast["difference"],
         "low": None if withheld else contrast.get("low"),
@@ -240,26 +247,35 @@ def headline_block(p, values) -> dict:
         "level": values["bootstrap"]["level"] if values.get("bootstrap") else None,
         "ess": regime["estimates"][estimator]["ess"],
         "verdict": contrast["verdict"],
-        "sentence": strategy_sentence(p, values) if p.strategies is not None else headline_sentence(p, values),
+        "sentence": strategy_sentence(p, values) if p.strategies is not None else headline_sentence(p, values, name),
     }
 
 
-def headline_sentence(p, values) -> str:
-    """One plain sentence on the learned-minus-usual-care contrast by the preferred estimator (wdr if run)."""
-    contrasts = {c["estimator"]: c for c in values["contrasts"] if c["regime"] == "learned"}
+def headline_sentence(p, values, regime: str = "learned") -> str:
+    """One plain sentence on the ``regime``-minus-usual-care contrast (default: the learned regime; else a named
+    strategy) by the preferred estimator (wdr if run)."""
+    contrasts = {c["estimator"]: c for c in values["contrasts"] if c["regime"] == regime}
     name = headline_estimator(p)
     contrast = contrasts[name]
-    ess = values["regimes"][0]["estimates"][name]["ess"]
+    entry = next(r for r in values["regimes"] if r["name"] == regime)
+    ess = entry["estimates"][name]["ess"]
+    named = f"the named strategy '{entry['label']}'"
+    value = "the learned regime's value" if regime == "learned" else f"the value of {named}"
     if contrast.get("withheld"):
-        return f"By {name}, the learned regime's value is not identified: {contrast_reason(values, 'learned', name)}."
+        return f"By {name}, {value} is not identified: {contrast_reason(values, regime, name)}."
     if contrast["difference"] is None:
         return (
-            f"The {name} estimate of the learned regime's value is undefined: no episode in the records follows it "
+            f"The {name} estimate of {value} is undefined: no episode in the records follows it "
             "far enough for the weights to say anything."
         )
     direction = "higher" if contrast["difference"] > 0 else "lower"
+    subject = (
+        "the learned regime's expected total reward per episode"
+        if regime == "learned"
+        else f"the expected total reward per episode under {named}"
+    )
     sentence = (
-        f"By {name}, the learned regime's expected total reward per episode is {abs(contrast['difference']):.2f} "
+        f"By {name}, {subject} is {abs(contrast['difference']):.2f} "
         f"{direction} than usual care's{reads_as(p, contrast['difference'])}"
         f"{_interval_clause(contrast, values.get('bootstrap'))}, resting on an "
         f"effective sample of {ess:.1f} episodes"
@@ -267,7 +283,11 @@ def headline_sentence(p, values) -> str:
     if contrast["low_ess"]:
         return sentence + (
             f", below the {values['minimum_reliable_ess']:.0f} needed to trust it: the data cannot confirm this "
-            "difference; a higher support threshold keeps the regime closer to usual care and better supported."
+            + (
+                "difference; a higher support threshold keeps the regime closer to usual care and better supported."
+                if regime == "learned"
+                else "difference."
+            )
         )
     return sentence + "."
 

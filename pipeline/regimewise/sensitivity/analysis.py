@@ -36,6 +36,7 @@ from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.core.weighting import kish_ess
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.strategies import headline_strategy
+from regimewise.evaluation.values import named_strategy_codes, named_strategy_words
 from regimewise.sensitivity.bounds import analysis_gammas, bounds_curve, tipping_point
 from regimewise.sensitivity.evalues import (
     e_value,
@@ -61,7 +62,13 @@ def sensitivity_target(protocol) -> dict:
 
     The override and incremental strategies' weights also depend on the probabilities of actions not taken,
     which the model does not bound; with one of them as headline the bounds stay on the learned regime, and
-    ``note`` says so."""
+    ``note`` says so.
+
+    With ``analysis.learn_regime: false`` the bounds are on the headline named strategy (``always_<action>`` or a
+    comparator): a deterministic regime, whose trajectory weight the model bounds as the learned regime's."""
+    if protocol.headline_regime is not None:
+        name = protocol.headline_regime
+        return {"name": name, "words": named_strategy_words(protocol, name), "adoption": 1.0, "note": None}
     chosen = headline_strategy(protocol.strategies)
     if chosen is not None and chosen.family == "partial_adoption":
         words = f"the learned regime followed at {100 * chosen.parameter:g}% of reviews (usual care at the others)"
@@ -74,6 +81,14 @@ def sensitivity_target(protocol) -> dict:
             "does not bound."
         )
     return {"name": "learned", "words": "the learned regime", "adoption": 1.0, "note": note}
+
+
+def bounded_actions(decisions, protocol, recommended) -> np.ndarray:
+    """Action codes of the deterministic regime the bounds are about: the learned regime's ``recommended``, or,
+    with no regime learned, the headline named strategy's actions at ``decisions``."""
+    if protocol.headline_regime is None:
+        return recommended
+    return named_strategy_codes(decisions, protocol, protocol.headline_regime)
 
 
 def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None, adoption=1.0) -> dict:
@@ -106,7 +121,7 @@ def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None,
         weights = np.exp(np.bincount(episode, weights=np.log(factor), minlength=returns.size))
     ess = kish_ess(weights) if weights.any() else 0.0
     return {
-        "learned": curve,
+        "bounded": curve,
         "usual_care": float(returns.mean()),
         "returns_sd": float(returns.std(ddof=1)),
         "ess": ess,
@@ -118,7 +133,7 @@ def _interval_limits(contrast, replicates, level) -> np.ndarray:
     """Per Γ: the α/2 quantile of the replicates' lower bounds and the 1 − α/2 quantile of their upper bounds."""
     if not replicates:
         return np.full_like(contrast, np.nan)
-    reps = np.stack([np.asarray(r["learned"], dtype=float) - r["usual_care"] for r in replicates])
+    reps = np.stack([np.asarray(r["bounded"], dtype=float) - r["usual_care"] for r in replicates])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         low = bootstrap_quantile(reps[:, :, 0], (1 - level) / 2, axis=0)
@@ -148,7 +163,7 @@ def summarise_sensitivity(
     """
     spec, level = protocol.sensitivity, protocol.evaluation.interval_level
     gammas = analysis_gammas(spec)
-    contrast = point["learned"] - point["usual_care"]
+    contrast = point["bounded"] - point["usual_care"]
     limits = _interval_limits(contrast, replicates, level)
     benefit = contrast[0, 0]
     sign = 1.0 if not np.isfinite(benefit) or benefit >= 0 else -1.0
@@ -173,8 +188,8 @@ def summarise_sensitivity(
         "table": [
             {
                 "gamma": float(gammas[i]),
-                "value_lower": finite_or_none(point["learned"][i, 0]),
-                "value_upper": finite_or_none(point["learned"][i, 1]),
+                "value_lower": finite_or_none(point["bounded"][i, 0]),
+                "value_upper": finite_or_none(point["bounded"][i, 1]),
                 "contrast_lower": finite_or_none(contrast[i, 0]),
                 "contrast_upper": finite_or_none(contrast[i, 1]),
                 "low": finite_or_none(limits[i, 0]),

@@ -21,13 +21,13 @@ from regimewise.appendix.assemble import AppendixRun, write_appendix
 from regimewise.bootstrap.intervals import combine, merge_intervals
 from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
-from regimewise.cautions import RECOMMENDATION_CAUTION
+from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
 from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
 from regimewise.errors import DataValidationError, UserInputError
-from regimewise.evaluation.values import evaluate_all, headline_estimator
+from regimewise.evaluation.values import evaluate_all, headline_estimator, named_strategy_codes
 from regimewise.io import read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
@@ -42,7 +42,7 @@ from regimewise.regime.summary import regime_summary, safeguard_summary
 from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
-from regimewise.sensitivity.analysis import regime_curve, sensitivity_target, summarise_sensitivity
+from regimewise.sensitivity.analysis import bounded_actions, regime_curve, sensitivity_target, summarise_sensitivity
 from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
 from regimewise.usual_care.fitting import fit_usual_care
@@ -150,9 +150,16 @@ def regime_stage(protocol, decisions, proba, table, regime):
     ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
     that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one
     fold).
+
+    With ``analysis.learn_regime: false`` nothing is learned: the table keeps the decisions' keys and the action
+    taken only, and regime.json says that no regime was learned (:func:`no_regime_summary`).
     """
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    if not p.analysis.learn_regime:
+        write_parquet(table, frame[["episode_id", "step", "action"]].copy())
+        write_json(regime, no_regime_summary(p))
+        return
     probabilities = read_probabilities(proba, p.action_labels)
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     variants = regime_variants(frame, probabilities, p, features)
@@ -197,6 +204,16 @@ def regime_stage(protocol, decisions, proba, table, regime):
     write_json(regime, summary)
 
 
+def no_regime_summary(p) -> dict:
+    """regime.json of a study that learns no regime: the setting, the named strategies it compares and its headline."""
+    return {
+        "learned": False,
+        "reason": "analysis.learn_regime is false: the protocol compares the strategies it names with usual care",
+        "named_strategies": list(p.named_strategies),
+        "headline": p.headline_regime,
+    }
+
+
 # ---------------------------------------------------------------------------------------------- evaluate
 def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarray:
     """Action codes of one action-label column of the regime stage's recommendations table."""
@@ -212,6 +229,9 @@ def evaluate_stage(protocol, decisions, proba, table, values):
     """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    if not p.analysis.learn_regime:  # usual care and the named strategies only
+        write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p))
+        return
     recommendations = read_parquet(table)
     recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
     learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
@@ -237,16 +257,20 @@ def evaluate_stage(protocol, decisions, proba, table, values):
 # ---------------------------------------------------------------------------------------------- describe
 def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
     """Cohort table (with follow-up and events when the episodes have them), balance before and after weighting,
-    and overlap of taken and recommended actions by step."""
+    and overlap of taken and recommended actions by step (without a learned regime, the headline named
+    strategy's actions)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     outcomes = None if episodes is None else read_parquet(episodes)
     probabilities = read_probabilities(proba, p.action_labels)
-    recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
+    if p.analysis.learn_regime:
+        recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
+    else:
+        recommended = named_strategy_codes(frame, p, p.headline_regime)
     write_json(
         cohort,
         {
-            "caution": RECOMMENDATION_CAUTION,
+            "caution": stage_caution(p),
             "baseline": cohort_table(frame, p, outcomes),
             "balance_by_step": balance_by_step(frame, probabilities, p),
             "overlap_by_step": overlap_by_step(
@@ -270,7 +294,7 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
     frame = read_parquet(decisions)
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
     held = None
-    if table is not None and p.evaluation.bootstrap_regime == "fixed":
+    if table is not None and p.evaluation.bootstrap_regime == "fixed" and p.analysis.learn_regime:
         recommendations = read_parquet(table)
         held = HeldRegime(
             column_codes(recommendations, "evaluated", p.action_labels),
@@ -291,10 +315,14 @@ def bootstrap_stage(protocol, values, shards, intervals):
 
 # ---------------------------------------------------------------------------------------------- sensitivity
 def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sensitivity):
-    """Bounds of the learned regime's value and contrast over Γ, their bootstrap intervals, Γ* and E-values."""
+    """Bounds of the learned regime's (or the headline strategy's) value and contrast over Γ, their bootstrap
+    intervals, Γ* and E-values."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
-    recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
+    recommended = None
+    if p.analysis.learn_regime:
+        recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
+    recommended = bounded_actions(frame, p, recommended)
     target = sensitivity_target(p)
     point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p, adoption=target["adoption"])
     replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
@@ -319,13 +347,15 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
-    recommendations = read_parquet(table)
-    recommended = column_codes(recommendations, "evaluated", p.action_labels)  # as the evaluation scores it
-    learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
+    recommended, learned_q = None, None  # without a learned regime: usual care and the named strategies only
+    if p.analysis.learn_regime:
+        recommendations = read_parquet(table)
+        recommended = column_codes(recommendations, "evaluated", p.action_labels)  # as the evaluation scores it
+        learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
     out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p, learned_q)
     replicates = [r["survival"] for path in shards for r in read_json(path)["replicates"] if "survival" in r]
     out["intervals"] = survival_intervals(out, replicates, p)
-    out["caution"] = RECOMMENDATION_CAUTION
+    out["caution"] = stage_caution(p)
     write_json(survival, out)
 
 
