@@ -65,7 +65,13 @@ from regimewise.regime.learning import (
     learn_regime,
     record_proba,
 )
-from regimewise.sensitivity.analysis import bounded_actions, regime_curve, sensitivity_target
+from regimewise.sensitivity.analysis import (
+    bounded_actions,
+    bounded_comparators,
+    comparator_curves,
+    regime_curve,
+    sensitivity_target,
+)
 from regimewise.survival.analysis import survival_values
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -206,6 +212,9 @@ def replicate_values(
         "values": point_values(values),
         "sensitivity": {"bounded": to_jsonable(curve["bounded"]), "usual_care": curve["usual_care"]},
     }
+    if bounded_comparators(protocol):
+        curves = comparator_curves(decisions, proba, protocol)
+        out["sensitivity"]["comparators"] = {name: to_jsonable(c["bounded"]) for name, c in curves.items()}
     if protocol.survival is not None and episodes is not None:
         out["survival"] = survival_values(decisions, episodes, proba, recommended, protocol, learned_q=q)
     return out

@@ -164,7 +164,9 @@ def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
         "e_values",
         "sentence",
     )
-    return {key: sensitivity[key] for key in keys}
+    own = ("strategy", "label", "ess", "low_ess", "tipping_point", "tipping_point_bounds", "table", "sentence")
+    comparators = [{key: c[key] for key in own} for c in sensitivity.get("comparators", [])]
+    return {key: sensitivity[key] for key in keys} | {"comparators": comparators}
 
 
 def sweep_headlines(sweep: dict | None) -> dict | None:

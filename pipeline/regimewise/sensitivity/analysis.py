@@ -36,7 +36,12 @@ from regimewise.core.quantiles import bootstrap_quantile
 from regimewise.core.weighting import kish_ess
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.strategies import headline_strategy
-from regimewise.evaluation.values import named_strategy_codes, named_strategy_words
+from regimewise.evaluation.values import (
+    headline_estimator,
+    named_strategy_codes,
+    named_strategy_label,
+    named_strategy_words,
+)
 from regimewise.sensitivity.bounds import analysis_gammas, bounds_curve, tipping_point
 from regimewise.sensitivity.evalues import (
     e_value,
@@ -89,6 +94,52 @@ def bounded_actions(decisions, protocol, recommended) -> np.ndarray:
     if protocol.headline_regime is None:
         return recommended
     return named_strategy_codes(decisions, protocol, protocol.headline_regime)
+
+
+def bounded_comparators(protocol) -> tuple[str, ...]:
+    """The comparators bounded beside the main target: every comparator of the protocol but the one the main
+    bounds are already about (the headline named strategy of a study that learns no regime). A comparator is a
+    deterministic regime, so the marginal sensitivity model bounds its trajectory weight as the learned regime's."""
+    return tuple(c.name for c in protocol.comparators if c.name != protocol.headline_regime)
+
+
+def comparator_curves(decisions, behaviour_proba, protocol) -> dict:
+    """Each comparator of :func:`bounded_comparators`: its bounds curve over the Γ grid (:func:`regime_curve`)."""
+    return {
+        name: regime_curve(decisions, behaviour_proba, named_strategy_codes(decisions, protocol, name), protocol)
+        for name in bounded_comparators(protocol)
+    }
+
+
+def comparator_sensitivity(points: dict, replicates: list[dict], protocol, intervals: dict) -> list[dict]:
+    """Per comparator: the bounds of its value and of its contrast with usual care at the protocol's Γ values,
+    the bootstrap intervals of the bounds and its tipping point Γ*, summarised as for the main target
+    (:func:`summarise_sensitivity`, without the full curve). ``replicates`` are the shards' sensitivity entries,
+    each holding its comparators' curves under ``comparators``; ``intervals`` the bootstrap's intervals.json."""
+    out = []
+    for name, point in points.items():
+        reps = [
+            {"bounded": r["comparators"][name], "usual_care": r["usual_care"]}
+            for r in replicates
+            if name in r.get("comparators", {})
+        ]
+        target = {"name": name, "words": named_strategy_words(protocol, name), "adoption": 1.0, "note": None}
+        contrast = next(
+            (
+                c
+                for c in intervals.get("contrasts", [])
+                if (c["regime"], c["versus"], c["estimator"]) == (name, "usual_care", headline_estimator(protocol))
+            ),
+            None,
+        )
+        full = summarise_sensitivity(point, reps, protocol, contrast, target)
+        keep = ("strategy", "strategy_words", "ess", "low_ess", "replicates_used", "table", "tipping_point")
+        out.append(
+            {key: full[key] for key in keep}
+            | {"tipping_point_bounds": full["tipping_point_bounds"], "e_values": full["e_values"]}
+            | {"label": named_strategy_label(protocol, name), "sentence": full["sentence"]}
+        )
+    return out
 
 
 def regime_curve(decisions, behaviour_proba, recommended, protocol, gammas=None, adoption=1.0) -> dict:

@@ -42,7 +42,14 @@ from regimewise.regime.summary import regime_summary, safeguard_summary
 from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
-from regimewise.sensitivity.analysis import bounded_actions, regime_curve, sensitivity_target, summarise_sensitivity
+from regimewise.sensitivity.analysis import (
+    bounded_actions,
+    comparator_curves,
+    comparator_sensitivity,
+    regime_curve,
+    sensitivity_target,
+    summarise_sensitivity,
+)
 from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
 from regimewise.usual_care.fitting import fit_usual_care
@@ -326,8 +333,12 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
     target = sensitivity_target(p)
     point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p, adoption=target["adoption"])
     replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
-    headline = headline_contrast(read_json(intervals), p, target["name"])
-    write_json(sensitivity, summarise_sensitivity(point, replicates, p, headline, target))
+    bootstrap = read_json(intervals)
+    headline = headline_contrast(bootstrap, p, target["name"])
+    out = summarise_sensitivity(point, replicates, p, headline, target)
+    curves = comparator_curves(frame, read_probabilities(proba, p.action_labels), p)
+    out["comparators"] = comparator_sensitivity(curves, replicates, p, bootstrap)
+    write_json(sensitivity, out)
 
 
 def headline_contrast(intervals: dict, p, regime: str = "learned") -> dict | None:
