@@ -228,9 +228,8 @@ def test_target_has_its_21_items_with_the_published_sub_items():
     assert {i.section.split(":")[0] for i in TARGET.items if not i.number.startswith("X")} == {
         "Abstract", "Introduction", "Methods", "Results", "Discussion", "Other information"
     }  # fmt: skip
-    # Sub-items and their order: the published checklist table as encoded by two third-party sources that say they
-    # were compared with it (transcriptions in public code repositories, which agree); the table itself was not
-    # read here.
+    # Sub-items and their order: the published checklist table as given by two secondary reproductions of it, which
+    # agree; the table itself was not read here.
     assert numbers == [
         "1a", "1b", "1c", "2", "3", "4", "5",
         "6a", "6b", "6c", "6d", "6e", "6f", "6g", "6h",
@@ -254,7 +253,7 @@ def test_record_has_its_13_items_numbered_after_strobe():
 
 
 def test_gottesman_has_its_three_questions():
-    # Three question headings in the Comment (Gottesman et al. 2019, Nat Med 25:16), as quoted by two third-party
+    # Three question headings in the Comment (Gottesman et al. 2019, Nat Med 25:16), as quoted by two secondary
     # notes; the Comment was not read here, and it numbers nothing: Q1-Q3 are ours.
     assert [i.number for i in GOTTESMAN.items] == ["Q1", "Q2", "Q3"]
     assert "variable" in GOTTESMAN.items[0].wording and "effective sample" in GOTTESMAN.items[1].wording

@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 import yaml
 from support import small_mdp as sm
+from support.guideline import guideline_by_hand
 from support.tiny import REPOSITORY
 
 from regimewise.bootstrap.intervals import combine
@@ -30,14 +31,6 @@ from regimewise.protocol.model import Protocol
 
 ALL = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
 DEMO = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
-
-
-def guideline_by_hand(states: pd.DataFrame) -> np.ndarray:
-    """The demo protocol's guideline, written out independently: step_up (2) when sbp > 140, potassium <= 5.5 and
-    eGFR >= 30; else step_down (1) when sbp < 110 and the therapy level is at least 1; else hold (0)."""
-    up = (states["sbp"] > 140) & (states["potassium"] <= 5.5) & (states["egfr"] >= 30)
-    down = (states["sbp"] < 110) & (states["therapy_level"] >= 1)
-    return np.where(up, 2, np.where(down, 1, 0))
 
 
 @pytest.fixture(scope="module")

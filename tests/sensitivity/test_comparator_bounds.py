@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from support.guideline import guideline_by_hand
 
 from regimewise.bootstrap.replicates import run_replicate
 from regimewise.core.features import action_codes, episode_codes
@@ -26,14 +27,6 @@ from regimewise.sensitivity.bounds import analysis_gammas
 from regimewise.usual_care.fitting import fit_usual_care
 
 REPOSITORY = Path(__file__).resolve().parents[2]
-
-
-def guideline_by_hand(states) -> np.ndarray:
-    """The demo protocol's guideline: step_up (2) when sbp > 140, potassium <= 5.5 and eGFR >= 30; else step_down
-    (1) when sbp < 110 and the therapy level is at least 1; else hold (0)."""
-    up = (states["sbp"] > 140) & (states["potassium"] <= 5.5) & (states["egfr"] >= 30)
-    down = (states["sbp"] < 110) & (states["therapy_level"] >= 1)
-    return np.where(up, 2, np.where(down, 1, 0))
 
 
 @pytest.fixture(scope="module")

@@ -7,14 +7,13 @@ tell a checked number from one taken on trust:
 - TARGET (Cashin et al. 2025): 21 items in 6 sections, as the statement's abstract says (read in several stored
   copies: JAMA 334:1084, doi 10.1001/jama.2025.13350; BMJ 2025;390:e087179). The published checklist table itself
   was not available here; the item numbers, their sub-items (1a-1c, 6a-6h, 7a-7f, 7g(i)-(ii), 7h(i)-(ii): 39 in
-  all) and their order were checked against two independent third-party encodings of it that each state they
-  were compared with the published table (two transcriptions of the checklist in public code repositories, which
-  agree with each other). The table number within the statement is not verified.
+  all) and their order come from two secondary reproductions of that table, which agree with each other; re-check
+  them against the table itself. The table number within the statement is not verified.
 - RECORD (Benchimol et al. 2015): 13 items, as the statement's abstract says; numbers and intent checked against
   the RECORD checklist table as reproduced in PMC articles (PMC5434499 Table 1, PMC11064235, a checklist copy
   titled "The RECORD statement - checklist of items, extended from the STROBE statement ...").
 - Gottesman et al. 2019: the Comment is organised under three questions (its headings; no table, no numbers:
-  Q1-Q3 are ours, in the paper's order), checked against two third-party notes that quote the Comment. The
+  Q1-Q3 are ours, in the paper's order), checked against two secondary sources that quote the Comment. The
   Comment itself (paywalled) was not read; that it raises no further headed question is not verified.
 """
 
@@ -58,8 +57,8 @@ TARGET = Guideline(
     source_table="the TARGET checklist table of the statement (its table number not verified here)",
     wording="paraphrased in our own words; the published wording is the statement's",
     checked_against=(
-        "item count and sections: the statement's abstract; item numbers, sub-items and order: two independent "
-        "third-party transcriptions of the published checklist table (public code repositories), which agree"
+        "item count and sections: the statement's abstract; item numbers, sub-items and order: two secondary "
+        "reproductions of the published checklist table, which agree (the table itself not read here)"
     ),
     counts="21 numbered items (certain: the abstract); 39 sub-items (from the two encodings, which agree)",
     scope_note=(
@@ -206,7 +205,7 @@ GOTTESMAN = Guideline(
     ),
     source_table="the Comment's three question headings (the Comment has no checklist table)",
     wording="paraphrased in our own words from the headings as quoted by third parties",
-    checked_against="two third-party notes quoting the Comment's headings; the Comment itself was not read",
+    checked_against="two secondary sources quoting the Comment's headings; the Comment itself was not read",
     counts="3 questions (as quoted); numbering Q1-Q3 is ours, in the Comment's order",
     scope_note=None,
     items=(
