@@ -54,6 +54,9 @@ def parse(argv=None):
     parser.add_argument("--strength", type=float, default=1.0)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--results", type=Path, default=None)
+    parser.add_argument(
+        "--first-seed", type=int, default=1000, help="seed of the first cohort (cohort c has seed first + c)"
+    )
     parser.add_argument("--bootstrap-regime", choices=("fixed", "refit"), default="fixed")
     parser.add_argument(
         "--headline-only",
@@ -174,7 +177,7 @@ def main(argv=None) -> None:
         done = [json.loads(line) for line in args.results.read_text().splitlines() if line.strip()]
         if any(r.get("bootstrap_regime", args.bootstrap_regime) != args.bootstrap_regime for r in done):
             raise SystemExit(f"{args.results} holds cohorts run with another --bootstrap-regime; use another file")
-    seeds = [1000 + c for c in range(args.cohorts) if 1000 + c not in {r["seed"] for r in done}]
+    seeds = [args.first_seed + c for c in range(args.cohorts) if args.first_seed + c not in {r["seed"] for r in done}]
     start = time.perf_counter()
     with ProcessPoolExecutor(max_workers=args.workers) as pool:
         for result in pool.map(one_cohort, [(seed, args) for seed in seeds]):

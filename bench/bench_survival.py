@@ -3,11 +3,13 @@
 Each cohort comes from the invented demo simulator without hidden confounding (``--strength 0``, so the
 clone–censor–weight assumptions hold). The survival stage's analysis runs on it as the workflow does (usual care
 fitted by the protocol's model, the learned regime cross-fitted, the dropout model on), and ``--replicates``
-patient-bootstrap replicates (every model refitted, :func:`regimewise.bootstrap.replicates.fit_replicate`) give the
-percentile intervals. Truths: the simulator's potential event days under each fixed strategy and usual care
-(:func:`regimewise.demo.truth.true_survival`, ``--truth-episodes`` simulated episodes with common random numbers).
-The learned regime's truth would depend on the rule learned in each cohort; it is reported with its effective
-sample only.
+patient-bootstrap replicates give the percentile intervals (usual care and the dropout model refitted, the learned
+fold regimes held fixed: the workflow's default ``bootstrap_regime: fixed``,
+:func:`regimewise.bootstrap.replicates.fit_replicate`). Truths: the simulator's potential event days under each
+fixed strategy and usual care (:func:`regimewise.demo.truth.true_survival`, ``--truth-episodes`` simulated episodes
+with common random numbers). The learned regime and the strategies built from it (partial adoption, override,
+incremental odds) have each cohort's own truth: the rule learned in that cohort's folds, simulated
+(``--learned-truth-episodes`` per fold).
 
 Prints, per strategy: cohorts whose effective sample stayed adequate to the horizon, bias and RMSE of survival at
 the horizon and of the restricted mean survival time, and the coverage of their 95% intervals among those cohorts;
@@ -15,6 +17,12 @@ and how many cohorts flagged the strategy as unreliable. Target (issue 14): cove
 adequate, and every strategy below the ESS rule flagged.
 
     python bench/bench_survival.py --cohorts 100 --episodes 3000 --replicates 50
+
+A strategy rarely adequate (always hold: in about one cohort in twelve) needs many cohorts before its coverage
+means anything; ``--only-adequate always_hold`` bootstraps only the cohorts where it is adequate (the rest cost one
+point estimate each, about 2 s) and prints figures conditional on that:
+
+    python bench/bench_survival.py --cohorts 400 --only-adequate always_hold --results hold.jsonl
 """
 
 from __future__ import annotations
@@ -29,7 +37,6 @@ from pathlib import Path
 import numpy as np
 import yaml
 from bench_strategies import simulator_strategy
-from bench_strategy_coverage import headline
 
 from regimewise.bootstrap.replicates import (
     HeldRegime,
@@ -42,6 +49,7 @@ from regimewise.bootstrap.replicates import (
 from regimewise.core.seeds import stream_rng
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.demo.truth import always, true_survival
+from regimewise.evaluation.strategies import protocol_strategies
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import crossfit_folds, fold_regimes
 from regimewise.survival.analysis import survival_analysis, survival_intervals, survival_values
@@ -68,14 +76,16 @@ def truths(n: int, seed: int) -> dict:
 
 
 def learned_truths(decisions, p: Protocol, pairs, n: int, seed: int) -> dict:
-    """True S(horizon) and RMST of the learned regime and the headline strategy as the cohort's analysis defines
-    them: the episode-weighted mean over cross-fitting folds of the rule learned without each fold (``pairs``,
-    :func:`regimewise.regime.learning.fold_regimes`; the data-adaptive target of the cross-fitted estimate;
-    common random numbers across folds)."""
+    """True S(horizon) and RMST of the learned regime and of every strategy of the protocol's ``strategies``
+    section (partial adoption, override, incremental odds; the headline among them) as the cohort's analysis
+    defines them: the episode-weighted mean over cross-fitting folds of the rule learned without each fold
+    (``pairs``, :func:`regimewise.regime.learning.fold_regimes`; the data-adaptive target of the cross-fitted
+    estimate; common random numbers across folds and strategies)."""
     first = decisions["step"].to_numpy() == 0
     shares = [float(np.sum(rows & first) / np.sum(first)) for rows, _ in pairs]
-    s = headline(p)
-    makers = {"learned": lambda learned: learned, s.name: lambda learned: simulator_strategy(s, learned)}
+    makers = {"learned": lambda learned: learned}
+    for s in protocol_strategies(p.strategies):
+        makers[s.name] = lambda learned, s=s: simulator_strategy(s, learned)
     out = {}
     for name, make in makers.items():
         parts = [
@@ -116,6 +126,8 @@ def one_cohort(seed: int, args, p: Protocol) -> dict:
     held = held_from(decisions, p, folds, pairs)
     proba, recommended, q, _ = fit_replicate(decisions, p, held)
     point = survival_analysis(decisions, episodes, proba, recommended, p, q)
+    if args.only_adequate and not _adequate(point, args.only_adequate):
+        return {"seed": seed, "screened_out": args.only_adequate}
     groups, replicates = patient_groups(decisions), []
     strata = np.array([held.folds[g[0]] for g in groups])
     for r in range(args.replicates):
@@ -128,7 +140,7 @@ def one_cohort(seed: int, args, p: Protocol) -> dict:
         except Exception as err:  # a resample the models cannot fit: counted, as the workflow does
             print(f"  cohort {seed} replicate {r} failed: {str(err).splitlines()[0]}", file=sys.stderr)
     limits = survival_intervals(point, replicates, p)["strategies"]
-    out = {"truth": learned_truths(decisions, p, pairs, args.learned_truth_episodes, seed + 1)}
+    out = {"seed": seed, "truth": learned_truths(decisions, p, pairs, args.learned_truth_episodes, seed + 1)}
     for row in point["strategies"]:
         name = row["name"]
         out[name] = {
@@ -141,17 +153,26 @@ def one_cohort(seed: int, args, p: Protocol) -> dict:
     return out
 
 
+def _adequate(point: dict, name: str) -> bool:
+    """Whether strategy ``name``'s effective sample stays adequate to the horizon in a cohort's point estimate."""
+    rows = [row for row in point["strategies"] if row["name"] == name]
+    if not rows:
+        names = [row["name"] for row in point["strategies"]]
+        raise SystemExit(f"--only-adequate {name}: no such strategy (one of {', '.join(names)})")
+    return rows[0]["diagnostics"]["unreliable_from"] is None
+
+
 def summarise(results: list[dict], truth: dict) -> None:
     """Per strategy: cohorts with an adequate ESS to the horizon, bias, RMSE and coverage among them.
 
-    Fixed strategies and usual care have one truth; the learned regime and the headline strategy have their
+    Fixed strategies and usual care have one truth; the learned regime and the strategies built from it have their
     cohort's own (:func:`learned_truths`).
     """
     print(
         f"{'strategy':22s} {'adequate':>8s} {'flagged':>7s} {'S(h) bias':>9s} {'RMSE':>7s} {'cover':>6s} "
         f"{'RMST bias':>9s} {'RMSE':>6s} {'cover':>6s}"
     )
-    for name in [k for k in results[0] if k != "truth"]:
+    for name in [k for k in results[0] if k not in ("truth", "seed")]:
         pairs = [(r[name], truth.get(name) or r["truth"].get(name)) for r in results]
         good = [(row, t) for row, t in pairs if row["reliable"] and row["survival"] is not None]
         flagged = len(pairs) - len(good)
@@ -193,9 +214,19 @@ def main(argv=None) -> int:
         "--learned-truth-episodes",
         type=int,
         default=20_000,
-        help="simulated episodes per fold regime for the learned regime's and the headline strategy's truths",
+        help="simulated episodes per fold regime for the truths of the learned regime and the strategies built from it",
     )
     parser.add_argument("--results", type=Path, help="append each cohort's result (JSON lines); resume from it")
+    parser.add_argument(
+        "--first-seed", type=int, default=1000, help="seed of the first cohort (cohort i has seed first + i)"
+    )
+    parser.add_argument(
+        "--only-adequate",
+        metavar="STRATEGY",
+        help="bootstrap only the cohorts where STRATEGY's effective sample is adequate to the horizon (the others "
+        "are screened out after their point estimate and counted): coverage conditional on an adequate ESS, at a "
+        "fraction of the cost when the strategy is rarely adequate",
+    )
     args = parser.parse_args(argv)
     p = protocol()
     started = time.time()
@@ -208,7 +239,7 @@ def main(argv=None) -> int:
     for seed in range(len(done), args.cohorts):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            result = one_cohort(1000 + seed, args, p)
+            result = one_cohort(args.first_seed + seed, args, p)
         done.append(result)
         if args.results:
             with args.results.open("a") as stream:
@@ -218,7 +249,18 @@ def main(argv=None) -> int:
         f"\n{args.cohorts} cohorts x {args.episodes} episodes, {args.replicates} replicates each, strength 0, "
         f"horizon {HORIZON:g} days; truths from {args.truth_episodes} simulated episodes; {time.time() - started:.0f} s"
     )
-    summarise(done, truth)
+    screened = [r for r in done if "screened_out" in r]
+    kept = [r for r in done if "screened_out" not in r]
+    if args.only_adequate:
+        print(
+            f"{len(screened)} of {len(done)} cohorts screened out ({args.only_adequate}'s ESS below the rule); the "
+            f"{len(kept)} bootstrapped cohorts are those where it is adequate, so every figure below is conditional "
+            "on that"
+        )
+    if not kept:
+        print("no cohort was bootstrapped")
+        return 1
+    summarise(kept, truth)
     return 0
 
 
