@@ -12,8 +12,8 @@
 # partition named like the profile's slurm_partition) to /etc/slurm/slurm.conf, keeping any earlier one aside
 # and putting it back at the end; starts munged (unless one already answers), slurmctld
 # and slurmd by hand, without systemd; installs the Snakemake SLURM executor plugin into the active venv; runs
-# the demo locally (`regimewise demo`) into WORK_DIR/local and through SLURM with config/profiles/slurm into
-# WORK_DIR/slurm; checks from the executor's job logs, the controller's job-completion record and a squeue
+# the demo locally (`regimewise demo`) into WORK_DIR/local and through SLURM (`regimewise demo --profile`,
+# config/profiles/slurm plus squeue status for this accounting-free cluster) into WORK_DIR/slurm; checks from the executor's job logs, the controller's job-completion record and a squeue
 # poll that every stage and every bootstrap shard ran as its own SLURM job; compares every artifact of the two
 # runs by SHA-256; and stops every daemon it started (also on failure or Ctrl-C).
 # Not part of CI: it changes the machine (packages, daemons) and takes 12 to 18 minutes on 2 cores.
@@ -227,23 +227,28 @@ run_local() {
     say "local run finished in $((SECONDS - t0)) s"
 }
 
+write_test_profile() {  # the repository's SLURM profile plus three settings for this test cluster only
+    # No accounting here, so job states come from squeue (README: "Sites without job accounting"); logs of
+    # successful jobs are kept (they record which SLURM job ran which workflow job); first status check after 10 s.
+    mkdir -p "$CLUSTER/profile"
+    python - "$PROFILE/profile.yaml" "$CLUSTER/profile/profile.yaml" <<'EOF'
+import sys, yaml
+profile = yaml.safe_load(open(sys.argv[1]))
+profile.update({"slurm-status-command": "squeue", "slurm-keep-successful-logs": True,
+                "slurm-init-seconds-before-status-checks": 10})
+open(sys.argv[2], "w").write(yaml.safe_dump(profile, sort_keys=False))
+EOF
+}
+
 run_slurm() {
-    # The same Snakemake command `regimewise demo` runs (pipeline/regimewise/cli.py: snakefile, results folder
-    # as --directory, the same --config, PYTHONHASHSEED=0), with the SLURM profile instead of --cores. The
-    # --slurm-* options suit this test cluster only: no accounting (status from squeue), logs of successful
-    # jobs kept (they record which SLURM job ran which workflow job), first status check after 10 s.
+    # What a user runs: `regimewise demo` with --profile (pipeline/regimewise/cli.py passes it to Snakemake), so
+    # the run records the same command as the local one.
     local out="$WORK/slurm"
     rm -rf "$out"
-    mkdir -p "$out/logs"
-    local cmd=(python -m snakemake --snakefile "$REPO/Snakefile" --directory "$out"
-        --profile "$PROFILE"
-        --slurm-status-command squeue --slurm-keep-successful-logs
-        --slurm-init-seconds-before-status-checks 10
-        --rerun-incomplete
-        --config "protocol=$PROTOCOL" "results=." "logs=logs" "benchmarks=benchmarks")
-    say "SLURM run: ${cmd[*]}"
+    write_test_profile
+    say "SLURM run: regimewise demo --out $out --profile $CLUSTER/profile (config/profiles/slurm + squeue status)"
     local t0=$SECONDS
-    if ! (cd "$out" && PYTHONHASHSEED="${PYTHONHASHSEED:-0}" "${cmd[@]}" >"$out/logs/workflow.log" 2>&1); then
+    if ! regimewise demo --out "$out" --profile "$CLUSTER/profile"; then
         tail -n 40 "$out/logs/workflow.log" >&2
         die "the SLURM run failed; see $out/logs/workflow.log and $CLUSTER/log"
     fi

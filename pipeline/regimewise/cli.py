@@ -195,6 +195,13 @@ def _add_run_options(parser, default_out):
         help="print no line per finished stage (the caution, the warning count and the report paths stay; "
         "default: off)",
     )
+    parser.add_argument(
+        "--profile",
+        metavar="DIR",
+        help="a Snakemake profile folder (holding profile.yaml) that sends the jobs elsewhere, e.g. "
+        "config/profiles/slurm: every stage and bootstrap shard a SLURM job; the results are the same bytes "
+        "(default: none, every job on this machine)",
+    )
 
 
 def main(argv=None) -> int:
@@ -428,9 +435,11 @@ def _run_workflow(protocol: Path, args, record: dict) -> Path:
         str(out),
     ]
     config = ["--configfile", str(_write_workflow_config(out, pf.path, record))]
-    command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *config]
+    profile = _profile_folder(getattr(args, "profile", None))
+    command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *profile, *config]
+    where = f"with {args.cores} core(s)" if not profile else f"through the profile {profile[1]}"
     with _exclusive_run(out) as lock:
-        print(f"regimewise {__version__}: running {pf.path.name} into {out} with {args.cores} core(s)")
+        print(f"regimewise {__version__}: running {pf.path.name} into {out} {where}")
         print(TERMINAL_CAUTION)
         if lock is not None and _left_locked(out):
             _remove_stale_lock([*snakemake, "--unlock", *config], out)
@@ -446,7 +455,7 @@ def _run_workflow(protocol: Path, args, record: dict) -> Path:
             or _system_cause(workflow_log)
             or f"the workflow failed; see {workflow_log}"
         )
-    print(warning_line(workflow_log))
+    print(warning_line(workflow_log.parent))
     return out
 
 
@@ -471,6 +480,22 @@ def output_folder(path, option: str) -> Path:
 
 
 WORKFLOW_CONFIG = Path(".snakemake") / "regimewise" / "config.yaml"
+
+
+def _profile_folder(folder: str | None) -> list[str]:
+    """Snakemake's ``--profile`` arguments for ``folder`` (none without one); a folder without a profile file is
+    one line. The path is made absolute: Snakemake runs in the results folder."""
+    if folder is None:
+        return []
+    path = Path(folder).expanduser().resolve()
+    if not path.is_dir():
+        raise UserInputError(f"--profile {folder}: no such folder; give the folder that holds profile.yaml")
+    if not any((path / name).is_file() for name in ("profile.yaml", "config.yaml")):
+        raise UserInputError(
+            f"--profile {folder}: the folder has no profile.yaml (nor config.yaml); see config/profiles/slurm "
+            "for an example"
+        )
+    return ["--profile", str(path)]
 
 
 def _write_workflow_config(out: Path, protocol: Path, record: dict | None = None) -> Path:

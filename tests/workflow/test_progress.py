@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from regimewise.workflow.progress import Progress, warning_line
 
 # An excerpt of a real Snakemake 9.27.1 log stream (a two-shard run of the small study; paths shortened and the
@@ -73,9 +75,71 @@ def test_one_line_per_finished_job_in_the_order_snakemake_reports_them():
     ]
 
 
-def test_the_closing_line_counts_the_statistical_warnings_and_names_the_log(tmp_path):
-    log = tmp_path / "workflow.log"
-    log.write_text(STREAM + STREAM.replace("ope.py:395", "ope.py:397"), encoding="utf-8")
-    assert warning_line(log) == f"2 statistical warnings (read them before the estimates); they are listed in {log}"
-    log.write_text("Finished jobid: 1 (Rule: validate)\n", encoding="utf-8")
-    assert warning_line(log) == "no statistical warnings"
+def test_the_closing_line_counts_the_warnings_in_the_stage_logs_and_names_them(tmp_path):
+    logs = tmp_path / "logs"
+    logs.mkdir()
+    # Snakemake's log holds only this invocation's jobs (here: a rerun of the report alone): not counted
+    (logs / "workflow.log").write_text(STREAM + "Finished jobid: 1 (Rule: report)\n", encoding="utf-8")
+    (logs / "evaluate.log").write_text(
+        "WARNING StatisticalWarning: no episode has a positive importance weight\n"
+        "WARNING StatisticalWarning: no episode agrees with always_add_agent\n"
+        "INFO resource use: wall 1.93 s, cpu 4.04 s, peak rss 368.6 MB\n",
+        encoding="utf-8",
+    )
+    (logs / "survival.log").write_text("WARNING StatisticalWarning: few clones follow always_step_up\n", "utf-8")
+    (logs / "report.log").write_text("INFO resource use: wall 1.00 s, cpu 1.00 s, peak rss 300.0 MB\n", "utf-8")
+    assert warning_line(logs) == (
+        "3 statistical warnings (read them before the estimates); listed in "
+        f"{logs / 'evaluate.log'}, {logs / 'survival.log'}"
+    )
+    for name in ("evaluate.log", "survival.log"):
+        (logs / name).unlink()
+    assert warning_line(logs) == "no statistical warnings"
+    (logs / "regime.log").write_text("WARNING StatisticalWarning: one\n", encoding="utf-8")
+    assert (
+        warning_line(logs) == f"1 statistical warning (read them before the estimates); listed in {logs / 'regime.log'}"
+    )
+
+
+def test_a_stage_writes_its_statistical_warnings_to_its_own_log(tmp_path, monkeypatch):
+    import types
+    import warnings
+
+    from regimewise.errors import StatisticalWarning
+    from regimewise.workflow import stages
+
+    def noisy_stage(out):
+        warnings.warn("few episodes\n  follow this regime", StatisticalWarning, stacklevel=1)
+        warnings.warn("an unrelated library notice", UserWarning, stacklevel=1)
+        Path(out).write_text("done", encoding="utf-8")
+
+    monkeypatch.setitem(stages.STAGES, "noisy", noisy_stage)
+    monkeypatch.setitem(stages.STAGE_ARGUMENTS, "noisy", {"out"})
+    log = tmp_path / "logs" / "noisy.log"
+    smk = types.SimpleNamespace(
+        rule="noisy",
+        log=_Named(log=str(log)),
+        input=_Named(),
+        output=_Named(out=str(tmp_path / "out.txt")),
+        wildcards=_Named(),
+        params=_Named(),
+    )
+    passed_on = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        warnings.showwarning = lambda message, category, *rest: passed_on.append(category.__name__)
+        shown = warnings.showwarning
+        stages.run_snakemake_job(smk)
+        assert warnings.showwarning is shown  # the hook is removed afterwards
+    lines = log.read_text(encoding="utf-8").splitlines()
+    assert lines[0] == "WARNING StatisticalWarning: few episodes follow this regime"
+    assert not any("unrelated" in line for line in lines)
+    assert passed_on == ["StatisticalWarning", "UserWarning"]  # every warning still reaches standard error
+    assert warning_line(log.parent).startswith("1 statistical warning ")
+
+
+class _Named(dict):
+    """What Snakemake passes as ``snakemake.log`` and friends: named items that also index by position."""
+
+    def __getitem__(self, key):
+        return list(self.values())[key] if isinstance(key, int) else super().__getitem__(key)

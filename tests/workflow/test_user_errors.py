@@ -198,3 +198,27 @@ def test_episodes_table_is_checked_with_the_same_guard(tmp_path, capsys):
     protocol = write_tiny(tmp_path / "study", episodes=episodes)
     line = _one_line_failure(capsys, ["check", str(protocol), "--errors", str(tmp_path / "e.csv")])
     assert "episodes.csv" in line and "full date" in line and "19540314" not in line
+
+
+# ---------------------------------------------------------------------------------------------- --profile
+def test_profile_option_naming_no_folder_or_a_folder_without_a_profile(tmp_path, capsys):
+    study = str(write_tiny(tmp_path / "s"))
+    line = _one_line_failure(capsys, ["run", study, "--profile", str(tmp_path / "nowhere")])
+    assert "--profile" in line and "no such folder" in line
+    (tmp_path / "empty").mkdir()
+    line = _one_line_failure(capsys, ["run", study, "--profile", str(tmp_path / "empty")])
+    assert "has no profile.yaml" in line
+
+
+def test_profile_option_reaches_snakemake_as_an_absolute_folder(tmp_path, capsys, monkeypatch):
+    profile = tmp_path / "site"
+    profile.mkdir()
+    (profile / "profile.yaml").write_text("cores: 1\n", encoding="utf-8")
+    seen = []
+    monkeypatch.setattr(cli, "_run_logged", lambda command, *rest: seen.append(command) or 0)
+    monkeypatch.chdir(tmp_path)
+    out = tmp_path / "out"
+    assert cli.main(["run", str(write_tiny(tmp_path / "s")), "--out", str(out), "--profile", "site"]) == 0
+    (command,) = seen
+    assert command[command.index("--profile") + 1] == str(profile.resolve())
+    assert f"into {out} through the profile {profile.resolve()}" in capsys.readouterr().out

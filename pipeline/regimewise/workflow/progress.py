@@ -5,7 +5,8 @@ and each finished one (``Finished jobid: <id> (Rule: <name>)``, followed by ``<k
 :class:`Progress` turns those events into one line per finished stage, e.g. ``[5/14] bootstrap shard 2 of 4
 done (38 s)``. The command line feeds it the workflow log as Snakemake writes it; no output file is polled, and
 a job's time runs from its announcement to its finish. Statistical warnings the stages raise reach the same
-stream; their count is read back from the workflow log at the end (:func:`warning_count`).
+stream, and each stage also writes them to its own log; their count is read back from the stage logs at the end
+(:func:`warning_line`), so a rerun that rebuilds only the report still counts the warnings behind the estimates.
 """
 
 from __future__ import annotations
@@ -80,22 +81,34 @@ class Progress:
         return STAGE_WORDS.get(rule, rule)
 
 
-WARNING_MARK = "StatisticalWarning: "
+WARNING_MARK = "WARNING StatisticalWarning: "
+WORKFLOW_LOG = "workflow.log"
 
 
-def warning_count(log: Path) -> int:
-    """How many statistical warnings the stages raised, as listed in the workflow log."""
-    try:
-        text = log.read_text(encoding="utf-8", errors="replace")
-    except OSError:
-        return 0
-    return sum(WARNING_MARK in line for line in text.splitlines())
+def warning_counts(logs: Path) -> dict[Path, int]:
+    """Statistical warnings per stage log in folder ``logs`` (``<rule>.log``, each rewritten when its rule reruns, so
+    together they hold the warnings of the results as they stand, also after a rerun of only some stages); Snakemake's
+    own ``workflow.log``, which holds one invocation's jobs only, is not counted. Only logs with a warning."""
+    counts = {}
+    for path in sorted(logs.glob("*.log")):
+        if path.name == WORKFLOW_LOG:
+            continue
+        try:
+            text = path.read_text(encoding="utf-8", errors="replace")
+        except OSError:
+            continue
+        count = sum(line.startswith(WARNING_MARK) for line in text.splitlines())
+        if count:
+            counts[path] = count
+    return counts
 
 
-def warning_line(log: Path) -> str:
-    """The closing line about statistical warnings: how many, and which log lists them."""
-    count = warning_count(log)
-    if count == 0:
+def warning_line(logs: Path) -> str:
+    """The closing line about statistical warnings: how many the stages behind the current results raised, and which
+    stage logs list them."""
+    counts = warning_counts(logs)
+    total = sum(counts.values())
+    if total == 0:
         return "no statistical warnings"
-    noun = "warning" if count == 1 else "warnings"
-    return f"{count} statistical {noun} (read them before the estimates); they are listed in {log}"
+    noun = "warning" if total == 1 else "warnings"
+    return f"{total} statistical {noun} (read them before the estimates); listed in {', '.join(map(str, counts))}"

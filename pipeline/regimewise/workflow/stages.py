@@ -11,6 +11,7 @@ import logging
 import resource
 import sys
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -26,7 +27,7 @@ from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
-from regimewise.errors import DataValidationError, UserInputError
+from regimewise.errors import DataValidationError, StatisticalWarning, UserInputError
 from regimewise.evaluation.values import evaluate_all, headline_estimator, named_strategy_codes
 from regimewise.io import read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
@@ -432,6 +433,8 @@ def run_snakemake_job(smk) -> None:
         if k in STAGE_ARGUMENTS[smk.rule]
     }
     started = time.perf_counter()
+    shown = warnings.showwarning
+    warnings.showwarning = _logged_warning(shown)
     try:
         STAGES[smk.rule](**kwargs)
         log_resource_use(time.perf_counter() - started)
@@ -440,8 +443,22 @@ def run_snakemake_job(smk) -> None:
         print(ERROR_PREFIX + str(err), file=sys.stderr)
         sys.exit(1)
     finally:
+        warnings.showwarning = shown
         handler.close()
         log.removeHandler(handler)
+
+
+def _logged_warning(show):
+    """``warnings.showwarning`` that also writes a :class:`StatisticalWarning` to the rule's log (one line,
+    ``WARNING StatisticalWarning: <message>``), so the stage's log keeps its warnings as long as its outputs stand
+    (:func:`regimewise.workflow.progress.warning_line` counts them there); standard error still gets them."""
+
+    def showwarning(message, category, filename, lineno, file=None, line=None):
+        if issubclass(category, StatisticalWarning):
+            log.warning("%s: %s", category.__name__, " ".join(str(message).split()))
+        show(message, category, filename, lineno, file, line)
+
+    return showwarning
 
 
 def log_resource_use(wall_seconds: float) -> None:
