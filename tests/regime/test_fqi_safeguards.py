@@ -144,6 +144,15 @@ def test_pessimism_penalises_uncertain_actions(log):
     assert np.all(score <= q) and np.mean(score < q) > 0.99
 
 
+@pytest.mark.parametrize(("mode", "pessimism"), [("backward", None), ("backward", 1.0), ("pooled", None)])
+def test_record_choice_is_the_recommendation_at_the_records(log, mode, pessimism):
+    # exact: the fit keeps its choices at the training decisions, which the regime stage reads instead of
+    # calling recommend on the same table again; both must be the same codes
+    model = fit(log, rules=True, mode=mode, pessimism=pessimism, ensemble_size=5, random_state=3)
+    expected = model.recommend(log["sat"], log["step"], log["behaviour_proba"], log["rules"])
+    np.testing.assert_array_equal(model.record_choice_, expected)
+
+
 def test_bootstrap_spread_matches_sklearn_refits():
     # source: scikit-learn LinearRegression with sample_weight = bootstrap multiplicities, refitted by hand
     rng = np.random.default_rng(2)

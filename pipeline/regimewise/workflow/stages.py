@@ -174,10 +174,9 @@ def regime_stage(protocol, decisions, proba, table, regime):
     permitted = rules.permitted(frame)
     steps = frame["step"].to_numpy(dtype=np.int64)
     X = features.transform(frame)
-    chosen = {
-        name: fqi.recommend(X, steps, probabilities, permitted if name in ("rules", "pessimistic") else None)
-        for name, fqi in variants.items()
-    }
+    # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
+    # "rules" and "pessimistic"), kept by the fit rather than scored again
+    chosen = {name: fqi.record_choice_ for name, fqi in variants.items()}
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
     labels = np.asarray(p.action_labels)
