@@ -37,7 +37,7 @@ from regimewise.core.folds import patient_folds
 from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.regime.permitted import constrained_choice
-from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
+from regimewise.regime.pessimism import PessimisticEnsemble, patient_resamples
 from regimewise.regime.qmodels import (
     BackwardQModel,
     BoostedActionModel,
@@ -201,10 +201,8 @@ class FittedQIteration(BackwardQModel):
             )
         self.alpha_.append(alpha)
         make = self._make_model(alpha, self._model_seed)
-        if self._ensemble_weights is not None:
-            return PessimisticEnsemble(make, self._ensemble_weights, self.settings.pessimism).fit(
-                X, action, y, rows
-            ), make
+        if self._resamples is not None:
+            return PessimisticEnsemble(make, self._resamples, self.settings.pessimism).fit(X, action, y, rows), make
         return make().fit(X, action, y, None), make
 
     def _scores(self, model, X):
@@ -328,9 +326,9 @@ class FittedQIteration(BackwardQModel):
         fold_seed, model_seed, boot_seed = np.random.SeedSequence(self.random_state).spawn(3)
         self._folds = patient_folds(groups, self.settings.cv_folds, fold_seed)
         self._model_seed = int(model_seed.generate_state(1)[0])
-        self._ensemble_weights = None
+        self._resamples = None
         if self.settings.pessimism is not None:
-            self._ensemble_weights = patient_bootstrap_weights(groups, self.settings.ensemble_size, boot_seed)
+            self._resamples = patient_resamples(groups, self.settings.ensemble_size, boot_seed)
         counts = np.zeros((self.horizon, self.n_actions), dtype=np.int64)
         np.add.at(counts, (step, action), 1)
         self.fitted_actions_ = counts > 0
