@@ -257,8 +257,9 @@ class FittedQIteration(BackwardQModel):
                 target[cont] = reward[cont] + self.settings.gamma * self._chosen_score(
                     score[later], proba[later], None if rules is None else rules[later]
                 )
-            self.models_[t], makers[t] = self._fit_model(X[rows], action[rows], target[rows], rows)
-            score[rows] = self._scores(self.models_[t], X[rows])
+            X_t = X[rows]
+            self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
+            score[rows] = self._scores(self.models_[t], X_t)
         self.n_iterations_, self.converged_ = self.horizon, True
         return target, makers, self._mask_unfitted(score, step)
 
