@@ -98,14 +98,16 @@ class PessimisticEnsemble:
     def fit(self, X, action, y, rows):
         """Fit the full-sample model and the bootstrap models on the table rows ``rows``; return ``self``.
 
-        Linear models (``fit_design``) share one design matrix instead of building it once per resample.
+        Linear models (``fit_design``) share one design matrix [1, X] (as their own ``fit`` builds it) instead of
+        building it once per fit.
         """
-        self.full_ = self.make_model().fit(X, action, y, None)
-        weights = self.resamples.rows(rows)
-        if hasattr(self.full_, "fit_design"):
+        model, weights = self.make_model(), self.resamples.rows(rows)
+        if hasattr(model, "fit_design"):
             design = np.hstack([np.ones((X.shape[0], 1)), X])
+            self.full_ = model.fit_design(design, action, y, None)
             self.replicates_ = [self.make_model().fit_design(design, action, y, w) for w in weights]
         else:
+            self.full_ = model.fit(X, action, y, None)
             self.replicates_ = [self.make_model().fit(X, action, y, w) for w in weights]
         return self
 
