@@ -259,9 +259,9 @@ class FittedQIteration(BackwardQModel):
                 )
             X_t = X[rows]
             self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
-            score[rows] = self._scores(self.models_[t], X_t)
+            score[rows] = self._mask_unfitted(self._scores(self.models_[t], X_t), step[rows])  # as _raw gives them
         self.n_iterations_, self.converged_ = self.horizon, True
-        return target, makers, self._mask_unfitted(score, step)
+        return target, makers, score
 
     def _fit_pooled(self, X, step, action, reward, next_row, proba, rules):
         Xp = self._pooled_X(X, step)
