@@ -21,7 +21,7 @@ from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.regime import pessimism, qmodels
 from regimewise.regime.fqi import FittedQIteration, QLearningSettings
 from regimewise.regime.permitted import constrained_choice
-from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
+from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights, patient_resamples
 from regimewise.regime.qmodels import (
     LinearActionModel,
     choose_ridge_alpha,
@@ -144,6 +144,15 @@ def test_pessimism_penalises_uncertain_actions(log):
     assert np.all(score <= q) and np.mean(score < q) > 0.99
 
 
+@pytest.mark.parametrize(("mode", "pessimism"), [("backward", None), ("backward", 1.0), ("pooled", None)])
+def test_record_choice_is_the_recommendation_at_the_records(log, mode, pessimism):
+    # exact: the fit keeps its choices at the training decisions, which the regime stage reads instead of
+    # calling recommend on the same table again; both must be the same codes
+    model = fit(log, rules=True, mode=mode, pessimism=pessimism, ensemble_size=5, random_state=3)
+    expected = model.recommend(log["sat"], log["step"], log["behaviour_proba"], log["rules"])
+    np.testing.assert_array_equal(model.record_choice_, expected)
+
+
 def test_bootstrap_spread_matches_sklearn_refits():
     # source: scikit-learn LinearRegression with sample_weight = bootstrap multiplicities, refitted by hand
     rng = np.random.default_rng(2)
@@ -154,7 +163,8 @@ def test_bootstrap_spread_matches_sklearn_refits():
     weights = patient_bootstrap_weights(groups, 6, seed=9)
     assert np.all(weights.reshape(6, 40, 3).std(axis=2) == 0)  # a patient's rows move together
     np.testing.assert_array_equal(weights.reshape(6, 40, 3)[..., 0].sum(axis=1), 40)  # n patients per resample
-    ens = PessimisticEnsemble(lambda: LinearActionModel(2), weights, k=1.5).fit(X, action, y, np.arange(120))
+    resamples = patient_resamples(groups, 6, seed=9)  # the same draws, kept per patient
+    ens = PessimisticEnsemble(lambda: LinearActionModel(2), resamples, k=1.5).fit(X, action, y, np.arange(120))
     manual = np.stack(
         [
             np.column_stack(
@@ -281,8 +291,8 @@ def test_spread_in_blocks_equals_one_pass(monkeypatch):
     action[:2] = 2  # action 2 only on the first patient's rows: absent from most resamples
     action[2:][action[2:] == 2] = 1
     y = X[:, 0] + action + rng.normal(size=500)
-    weights = patient_bootstrap_weights(np.repeat(np.arange(250), 2), 10, seed=3)
-    ens = PessimisticEnsemble(lambda: LinearActionModel(3), weights, k=1.0).fit(X, action, y, np.arange(500))
+    resamples = patient_resamples(np.repeat(np.arange(250), 2), 10, seed=3)
+    ens = PessimisticEnsemble(lambda: LinearActionModel(3), resamples, k=1.0).fit(X, action, y, np.arange(500))
     draws = np.stack([m.predict(X) for m in ens.replicates_])
     defined = (~np.isnan(draws)).sum(axis=0)
     with np.errstate(invalid="ignore"):

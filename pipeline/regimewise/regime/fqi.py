@@ -37,7 +37,7 @@ from regimewise.core.folds import patient_folds
 from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.regime.permitted import constrained_choice
-from regimewise.regime.pessimism import PessimisticEnsemble, patient_bootstrap_weights
+from regimewise.regime.pessimism import PessimisticEnsemble, patient_resamples
 from regimewise.regime.qmodels import (
     BackwardQModel,
     BoostedActionModel,
@@ -139,6 +139,9 @@ class FittedQIteration(BackwardQModel):
         Observed decisions where the best rule-permitted action differs from the regime's choice.
     n_without_permitted_action_ : int
         Observed decisions where nothing was permitted and the fallback was taken.
+    record_choice_ : ndarray of int, shape (n,)
+        The regime's action at each decision it was fitted on: what :meth:`recommend` returns for the training
+        ``X``, ``step``, ``behaviour_proba`` and ``rule_permitted``, without scoring them again.
 
     References
     ----------
@@ -198,10 +201,8 @@ class FittedQIteration(BackwardQModel):
             )
         self.alpha_.append(alpha)
         make = self._make_model(alpha, self._model_seed)
-        if self._ensemble_weights is not None:
-            return PessimisticEnsemble(make, self._ensemble_weights, self.settings.pessimism).fit(
-                X, action, y, rows
-            ), make
+        if self._resamples is not None:
+            return PessimisticEnsemble(make, self._resamples, self.settings.pessimism).fit(X, action, y, rows), make
         return make().fit(X, action, y, None), make
 
     def _scores(self, model, X):
@@ -225,15 +226,27 @@ class FittedQIteration(BackwardQModel):
         return self._mask_unfitted(q, step)
 
     def _next_values(self, X, step, proba, rules):
-        score = self._raw(X, step, scores=True)
+        return self._chosen_score(self._raw(X, step, scores=True), proba, rules)
+
+    def _chosen_score(self, score, proba, rules):
+        """The score of the best permitted action in each row of ``score`` (n, K): the value carried backwards."""
         choice = constrained_choice(score, proba, self.settings.support_threshold, rules)[0]
         return score[np.arange(choice.size), choice]
 
     # ------------------------------------------------------------------------------------------- learning
     def _fit_backward(self, X, step, action, reward, next_row, proba, rules):
+        """Fit the step models from the last step back; return the targets, the model makers and the scores (n, K)
+        of the fitted models at every row.
+
+        Each step's rows are scored once, right after their model is fitted: the next-state values of the step
+        before read these scores, and :meth:`fit` reuses them for the choices at the records. Steps run 0, 1, 2, …
+        within an episode (:func:`regimewise.core.arrays.check_layout`), so the next rows of step t are exactly the
+        rows of step t + 1, in the same order: the same numbers as scoring them again.
+        """
         target = reward.copy()
         self.models_ = [None] * self.horizon
         makers = [None] * self.horizon
+        score = np.full((step.size, self.n_actions), np.nan)
         for t in range(self.horizon - 1, -1, -1):
             rows = np.flatnonzero(step == t)
             if not rows.size:
@@ -241,12 +254,14 @@ class FittedQIteration(BackwardQModel):
             later = next_row[rows]
             cont, later = rows[later >= 0], later[later >= 0]
             if cont.size:
-                target[cont] = reward[cont] + self.settings.gamma * self._next_values(
-                    X[later], step[later], proba[later], None if rules is None else rules[later]
+                target[cont] = reward[cont] + self.settings.gamma * self._chosen_score(
+                    score[later], proba[later], None if rules is None else rules[later]
                 )
-            self.models_[t], makers[t] = self._fit_model(X[rows], action[rows], target[rows], rows)
+            X_t = X[rows]
+            self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
+            score[rows] = self._mask_unfitted(self._scores(self.models_[t], X_t), step[rows])  # as _raw gives them
         self.n_iterations_, self.converged_ = self.horizon, True
-        return target, makers
+        return target, makers, score
 
     def _fit_pooled(self, X, step, action, reward, next_row, proba, rules):
         Xp = self._pooled_X(X, step)
@@ -276,7 +291,7 @@ class FittedQIteration(BackwardQModel):
                 StatisticalWarning,
                 stacklevel=3,
             )
-        return target, [make]
+        return target, [make], None
 
     def _out_of_fold(self, X, step, action, target, makers):
         folds = self._folds
@@ -312,9 +327,9 @@ class FittedQIteration(BackwardQModel):
         fold_seed, model_seed, boot_seed = np.random.SeedSequence(self.random_state).spawn(3)
         self._folds = patient_folds(groups, self.settings.cv_folds, fold_seed)
         self._model_seed = int(model_seed.generate_state(1)[0])
-        self._ensemble_weights = None
+        self._resamples = None
         if self.settings.pessimism is not None:
-            self._ensemble_weights = patient_bootstrap_weights(groups, self.settings.ensemble_size, boot_seed)
+            self._resamples = patient_resamples(groups, self.settings.ensemble_size, boot_seed)
         counts = np.zeros((self.horizon, self.n_actions), dtype=np.int64)
         np.add.at(counts, (step, action), 1)
         self.fitted_actions_ = counts > 0
@@ -322,13 +337,14 @@ class FittedQIteration(BackwardQModel):
         self.alpha_ = []
         learn = self._fit_pooled if self.settings.mode == "pooled" else self._fit_backward
         with threadpool_limits(limits=1):  # many small tall-skinny solves: BLAS threads only contend
-            target, makers = learn(X, step, action, reward, next_row_index(episode), proba, rules)
+            target, makers, score = learn(X, step, action, reward, next_row_index(episode), proba, rules)
             self._set_coef()
             self.oof_mse_ = self._out_of_fold(X, step, action, target, makers) if self.settings.oof_error else None
         self._warn_unfitted(step)
-        choice, unconstrained, none_permitted = constrained_choice(
-            self._raw(X, step, scores=True), proba, self.settings.support_threshold, rules
-        )
+        if score is None:
+            score = self._raw(X, step, scores=True)
+        choice, unconstrained, none_permitted = constrained_choice(score, proba, self.settings.support_threshold, rules)
+        self.record_choice_ = choice
         self.n_changed_by_support_ = int(np.sum(choice != unconstrained))
         self.n_without_permitted_action_ = int(np.sum(none_permitted))
         return self

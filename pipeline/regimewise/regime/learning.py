@@ -67,11 +67,13 @@ def fit_q_learning(
     *,
     safeguards: str = "pessimistic",
     oof_error: bool = False,
+    X: np.ndarray | None = None,
 ) -> FittedQIteration:
     """Fitted-Q iteration on the decisions with the protocol's Q-model, learning mode and safeguards.
 
     ``safeguards`` is one of :data:`SAFEGUARDS`: each level adds one safeguard to the previous one
-    (``"pessimistic"``, the default, applies every safeguard the protocol sets).
+    (``"pessimistic"``, the default, applies every safeguard the protocol sets). ``X`` is
+    ``features.transform(decisions)`` when the caller has it already (computed here if None).
     """
     level = SAFEGUARDS.index(safeguards)
     c, q = protocol.constraints, protocol.q_model
@@ -99,7 +101,7 @@ def fit_q_learning(
         random_state=stream_ints(protocol.seed, "regime")[0],
         action_labels=protocol.action_labels,
     ).fit(
-        features.transform(decisions),
+        features.transform(decisions) if X is None else X,
         decisions["step"].to_numpy(dtype=np.int64),
         action_codes(decisions, protocol.action_labels),
         protocol.reward.sign * decisions["reward"].to_numpy(dtype=float),  # lower is better: maximise −reward
@@ -130,9 +132,10 @@ def regime_variants(
     protocol's learned regime. Only the last computes the out-of-fold error of its Q-models.
     """
     names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
+    X = features.transform(decisions)  # once for all of them
     return {
         name: fit_q_learning(
-            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1]
+            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1], X=X
         )
         for name in names
     }
@@ -203,10 +206,13 @@ def cross_fitted_regime(
         return learned.recommend(decisions, behaviour_proba), learned.q_values(decisions)
     recommended = np.empty(len(decisions), dtype=np.int64)
     q = np.empty((len(decisions), len(protocol.actions)))
-    for held_out, learned in fold_regimes(decisions, protocol, folds):
+    for fold in np.unique(folds):  # one fold's regime at a time
+        held_out = folds == fold
+        learned = fold_regime(decisions, protocol, folds, fold)
         rows = decisions.loc[held_out].reset_index(drop=True)
         recommended[held_out] = learned.recommend(rows)
         q[held_out] = learned.q_values(rows)
+        del learned, rows  # this fold's regime (usual-care model, Q-model ensembles) goes before the next is learned
     return recommended, q
 
 
@@ -214,10 +220,12 @@ def fold_regimes(
     decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray
 ) -> list[tuple[np.ndarray, LearnedRegime]]:
     """For each fold of :func:`crossfit_folds`: its rows (boolean mask) and the regime learned from the other folds."""
-    return [
-        (folds == fold, learn_regime(decisions.loc[folds != fold].reset_index(drop=True), protocol))
-        for fold in np.unique(folds)
-    ]
+    return [(folds == fold, fold_regime(decisions, protocol, folds, fold)) for fold in np.unique(folds)]
+
+
+def fold_regime(decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray, fold) -> LearnedRegime:
+    """The regime learned from the decisions outside fold ``fold`` of ``folds`` (:func:`crossfit_folds`)."""
+    return learn_regime(decisions.loc[folds != fold].reset_index(drop=True), protocol)
 
 
 def record_proba(learned, decisions: pd.DataFrame) -> np.ndarray:

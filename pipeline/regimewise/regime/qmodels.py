@@ -114,7 +114,10 @@ def fit_actions(design, action, y, alpha, n_actions, slopes=SEPARATE, weight=Non
         if weight is None:
             return design[rows], y[rows]
         root = np.sqrt(weight[rows])
-        return design[rows] * root[:, None], y[rows] * (root if y.ndim == 1 else root[:, None])
+        d, t = design[rows], y[rows]  # fresh copies: weighted in place
+        d *= root[:, None]
+        t *= root if y.ndim == 1 else root[:, None]
+        return d, t
 
     if not slopes.shared:
         for a in range(n_actions):

@@ -172,32 +172,16 @@ def regime_stage(protocol, decisions, proba, table, regime):
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     variants = regime_variants(frame, probabilities, p, features)
     rules = ClinicalRuleSet.from_protocol(p)
-    permitted = rules.permitted(frame)
-    steps = frame["step"].to_numpy(dtype=np.int64)
-    X = features.transform(frame)
-    chosen = {
-        name: fqi.recommend(X, steps, probabilities, permitted if name in ("rules", "pessimistic") else None)
-        for name, fqi in variants.items()
-    }
+    # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
+    # "rules" and "pessimistic"), kept by the fit rather than scored again
+    chosen = {name: fqi.record_choice_ for name, fqi in variants.items()}
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
-    labels = np.asarray(p.action_labels)
-    out = frame[["episode_id", "step", "action"]].copy()
-    out["recommended"] = labels[recommended]
     folds = p.evaluation.cross_fit_folds
-    if folds == 1:
-        evaluated, evaluated_q = recommended, fqi.q_values(X, steps)
-    else:
-        evaluated, evaluated_q = cross_fitted_regime(frame, probabilities, p)
-    out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
-    out[evaluated_q_columns(p.action_labels)] = evaluated_q  # the gains of the override strategies
-    for name, codes in chosen.items():
-        out[f"recommended_{name}"] = labels[codes]
-    out[[f"q_{a}" for a in p.action_labels]] = fqi.q_values(X, steps)
-    out[[f"permitted_{a}" for a in p.action_labels]] = permitted_actions(
-        probabilities, p.constraints.support_threshold, permitted
-    )
-    write_parquet(table, out, caution=RECOMMENDATION_CAUTION)
+    evaluated, evaluated_q = (recommended, None) if folds == 1 else cross_fitted_regime(frame, probabilities, p)
+    q = fqi.q_values(features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
+    permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
+    write_recommendations(table, p, frame, chosen, evaluated, q if evaluated_q is None else evaluated_q, q, permitted)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
     summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
     summary["cross_fit"] = {"folds": folds, "agreement": float(np.mean(evaluated == recommended))}
@@ -210,6 +194,27 @@ def regime_stage(protocol, decisions, proba, table, regime):
         random_state=0,
     ).to_dict()  # the states, then the missing indicators the models use
     write_json(regime, summary)
+
+
+def write_recommendations(path, p, frame, chosen, evaluated, evaluated_q, q, permitted) -> None:
+    """Write the regime stage's table: the decisions' keys and action, the learned regime's action
+    (``recommended``), the cross-fitted action and Q-values the evaluation scores (``evaluated``,
+    ``evaluated_q_<action>``: the gains of the override strategies), each side-by-side regime's action, the learned
+    regime's Q-values and the permitted actions.
+
+    Built here and released on return: its label columns are Python strings, several times the size of the
+    codes, and the stage's summaries do not need them. Each label cell points at one of the K label strings (an
+    object array), not at a string of its own."""
+    labels = np.asarray(p.action_labels, dtype=object)
+    out = frame[["episode_id", "step", "action"]].copy()
+    out["recommended"] = labels[chosen[list(chosen)[-1]]]
+    out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
+    out[evaluated_q_columns(p.action_labels)] = evaluated_q
+    for name, codes in chosen.items():
+        out[f"recommended_{name}"] = labels[codes]
+    out[[f"q_{a}" for a in p.action_labels]] = q
+    out[[f"permitted_{a}" for a in p.action_labels]] = permitted
+    write_parquet(path, out, caution=RECOMMENDATION_CAUTION)
 
 
 def no_regime_summary(p) -> dict:
