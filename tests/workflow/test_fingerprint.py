@@ -7,6 +7,7 @@ resolver independent of the project's own.
 
 from __future__ import annotations
 
+import ast
 import modulefinder
 import shutil
 from pathlib import Path
@@ -15,6 +16,7 @@ import pytest
 
 import regimewise
 from regimewise.workflow.fingerprint import (
+    _segment,
     _stage_sources,
     import_graph,
     stage_code_hashes,
@@ -89,3 +91,18 @@ def test_closure_agrees_with_the_standard_library_module_finder(copy, tmp_path):
         finder.run_script(str(script))
         found = {name for name in finder.modules if name.split(".")[0] == "regimewise"}
         assert found <= set(stage_modules(rule, copy, graph)), rule
+
+
+def test_definition_sources_are_the_standard_library_segments():
+    # Reference: ast.get_source_segment (Python standard library); the fingerprint splits the lines once instead.
+    path = PACKAGE / "workflow" / "stages.py"
+    source = path.read_text(encoding="utf-8")
+    lines = source.splitlines(keepends=True)
+    nodes = ast.parse(source).body
+    assert len(nodes) > 20
+    for node in nodes:
+        assert _segment(lines, node) == ast.get_source_segment(source, node)
+    # and a statement that starts inside a line, with a multi-byte character before it
+    text = "x = 'é'; y = (1,\n     2)\n"
+    node = ast.parse(text).body[1]
+    assert _segment(text.splitlines(keepends=True), node) == ast.get_source_segment(text, node) == "y = (1,\n     2)"

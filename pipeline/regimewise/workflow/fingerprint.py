@@ -48,22 +48,29 @@ def module_imports(path: Path, importer: str, modules: dict) -> list[tuple[str, 
 
     ``from regimewise.x import y`` where ``y`` is itself a module counts as an import of ``regimewise.x.y``.
     """
+    path = Path(path)
+    source = path.read_text(encoding="utf-8")
+    return list(_imports_in(source, importer, path.name == "__init__.py", tuple(sorted(modules))))
+
+
+@cache
+def _imports_in(source: str, importer: str, is_package: bool, module_names: tuple[str, ...]) -> tuple:
+    # Parsed once per distinct source text: a fingerprint check after editing one module reparses that module only.
+    modules = set(module_names)
     found = []
-    tree = ast.parse(Path(path).read_text(encoding="utf-8"))
-    is_package = Path(path).name == "__init__.py"
-    for node in ast.walk(tree):
+    for node in ast.walk(ast.parse(source)):
         if isinstance(node, ast.Import):
             found += [(a.name, ()) for a in node.names if a.name in modules]
         elif isinstance(node, ast.ImportFrom):
-            source = _absolute(node, importer, is_package)
-            if source.split(".")[0] != PACKAGE:
+            origin = _absolute(node, importer, is_package)
+            if origin.split(".")[0] != PACKAGE:
                 continue
             names = tuple(a.name for a in node.names)
-            found += [(f"{source}.{n}", ()) for n in names if f"{source}.{n}" in modules]
-            plain = tuple(n for n in names if f"{source}.{n}" not in modules)
-            if plain and source in modules:
-                found.append((source, plain))
-    return found
+            found += [(f"{origin}.{n}", ()) for n in names if f"{origin}.{n}" in modules]
+            plain = tuple(n for n in names if f"{origin}.{n}" not in modules)
+            if plain and origin in modules:
+                found.append((origin, plain))
+    return tuple(found)
 
 
 def import_graph(root: Path = PACKAGE_DIR) -> tuple[dict[str, Path], dict[str, set[str]]]:
@@ -102,13 +109,7 @@ def stage_rules(modules: dict) -> tuple[str, ...]:
 def _stage_sources(rule: str, modules: dict) -> tuple[list[str], set[str]]:
     """Source segments of ``<rule>_stage`` and the stages module's helpers it uses; the modules its names need."""
     path = modules[STAGES_MODULE]
-    source = path.read_text(encoding="utf-8")
-    tree = ast.parse(source)
-    top = {}
-    for node in tree.body:
-        for name in _defined_names(node):
-            top[name] = node
-    origin = {name: imported for imported, names in module_imports(path, STAGES_MODULE, modules) for name in names}
+    top, origin = _stages_index(path.read_text(encoding="utf-8"), tuple(sorted(modules.items())))
     function = f"{rule}_stage"
     if function not in top:
         raise KeyError(f"{STAGES_MODULE} has no function {function}() for rule {rule!r}")
@@ -121,9 +122,38 @@ def _stage_sources(rule: str, modules: dict) -> tuple[list[str], set[str]]:
         if name in origin:
             needed.add(origin[name])
         elif name in top:
-            segments.append(ast.get_source_segment(source, top[name]))
-            todo += [n.id for n in ast.walk(top[name]) if isinstance(n, ast.Name)]
+            segment, used = top[name]
+            segments.append(segment)
+            todo += used
     return segments, needed
+
+
+@cache
+def _stages_index(source: str, modules: tuple[tuple[str, Path], ...]) -> tuple[dict, dict]:
+    """The stages module parsed once: top-level name -> (its source segment, the names it uses, in walk order);
+    imported name -> the package module it comes from."""
+    modules = dict(modules)
+    lines = source.splitlines(keepends=True)
+    top = {}
+    for node in ast.parse(source).body:
+        used = [n.id for n in ast.walk(node) if isinstance(n, ast.Name)]
+        for name in _defined_names(node):
+            top[name] = (_segment(lines, node), used)
+    path = modules[STAGES_MODULE]
+    imports = _imports_in(source, STAGES_MODULE, path.name == "__init__.py", tuple(sorted(modules)))
+    origin = {name: imported for imported, names in imports for name in names}
+    return top, origin
+
+
+def _segment(lines: list[str], node: ast.stmt) -> str:
+    """The source of a top-level statement, as :func:`ast.get_source_segment` gives it (its offsets are UTF-8 bytes),
+    from lines split once."""
+    first, last = node.lineno - 1, node.end_lineno - 1
+    if first == last:
+        return lines[first].encode()[node.col_offset : node.end_col_offset].decode()
+    head = lines[first].encode()[node.col_offset :].decode()
+    tail = lines[last].encode()[: node.end_col_offset].decode()
+    return "".join([head, *lines[first + 1 : last], tail])
 
 
 def _defined_names(node: ast.stmt) -> list[str]:
@@ -149,8 +179,12 @@ def stage_files(rule: str, root: Path = PACKAGE_DIR, graph=None) -> tuple[Path, 
     modules = graph[0]
     files = {modules[name] for name in stage_modules(rule, root, graph)}
     folders = {path.parent for path in files if path.parent != root}
-    data = {p for folder in folders for p in folder.rglob("*") if p.is_file() and p.suffix in DATA_SUFFIXES}
+    data = {p for folder in folders for p in _data_files(folder)}
     return tuple(sorted(files | data))
+
+
+def _data_files(folder: Path) -> list[Path]:
+    return [p for p in folder.rglob("*") if p.is_file() and p.suffix in DATA_SUFFIXES]
 
 
 def stage_code_hashes(root: Path = PACKAGE_DIR) -> dict[str, str]:
