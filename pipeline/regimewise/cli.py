@@ -57,7 +57,7 @@ from regimewise.demo.files import write_cohort
 from regimewise.errors import OS_REASONS, DataValidationError, UserInputError, os_reason
 from regimewise.io import require_file, write_bytes, write_json, write_text
 from regimewise.protocol.loading import load_protocol, schema_text
-from regimewise.workflow.progress import Progress, warning_line
+from regimewise.workflow.progress import WORKFLOW_LOG, Progress, warning_line
 from regimewise.workflow.stages import ERROR_PREFIX, report_stage
 
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
@@ -423,7 +423,7 @@ def _run_workflow(protocol: Path, args, record: dict) -> Path:
     if pf.episodes_path is not None:
         require_file(pf.episodes_path, "episodes")
     out = output_folder(args.out or f"results/{pf.protocol.study.run_name}", "--out")
-    workflow_log = out / "logs" / "workflow.log"
+    workflow_log = out / "logs" / WORKFLOW_LOG
     output_folder(workflow_log.parent, "the logs folder")
     snakemake = [
         sys.executable,

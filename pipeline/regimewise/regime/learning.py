@@ -124,15 +124,16 @@ def boosting_params(protocol: Protocol) -> dict:
 
 
 def regime_variants(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures, X=None
 ) -> dict[str, FittedQIteration]:
     """The side-by-side regimes: unconstrained, support-, rule-constrained and (if k > 0) pessimistic.
 
     Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
-    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models.
+    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
+    ``features.transform(decisions)`` when the caller already has it.
     """
     names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
-    X = features.transform(decisions)  # once for all of them
+    X = features.transform(decisions) if X is None else X  # once for all of them
     return {
         name: fit_q_learning(
             decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1], X=X

@@ -170,16 +170,18 @@ def regime_stage(protocol, decisions, proba, table, regime):
         return
     probabilities = read_probabilities(proba, p.action_labels)
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
-    variants = regime_variants(frame, probabilities, p, features)
+    X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
+    variants = regime_variants(frame, probabilities, p, features, X=X)
     rules = ClinicalRuleSet.from_protocol(p)
     # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
     # "rules" and "pessimistic"), kept by the fit rather than scored again
     chosen = {name: fqi.record_choice_ for name, fqi in variants.items()}
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
+    q = fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
+    del X  # released before the cross-fitting builds its own
     folds = p.evaluation.cross_fit_folds
     evaluated, evaluated_q = (recommended, None) if folds == 1 else cross_fitted_regime(frame, probabilities, p)
-    q = fqi.q_values(features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
     permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
     write_recommendations(table, p, frame, chosen, evaluated, q if evaluated_q is None else evaluated_q, q, permitted)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
