@@ -81,6 +81,41 @@ def test_multinomial_params_equal_statsmodels_mnlogit(anes, anes_model):
     assert anes_model.feature_names_in_ == COVARIATES
 
 
+def test_newton_in_blocks_equals_statsmodels_newton(anes, monkeypatch):
+    X, pid, _ = anes
+    design = sm.add_constant(X.to_numpy())
+    endog = np.searchsorted(np.unique(pid), pid)
+    # Reference: statsmodels MNLogit's own Newton iteration (the same start, step, ridge and stopping rule), run
+    # on the whole design at once; ours reads 944 records in blocks of 100 (and of 50,000, i.e. one block).
+    reference = sm.MNLogit(endog, design).fit(disp=0, method="newton", maxiter=100)
+    for rows in (100, 50_000):
+        monkeypatch.setattr(logit, "NEWTON_BLOCK_ROWS", rows)
+        fit = logit._newton_mnlogit(design, endog, 100)
+        np.testing.assert_allclose(fit.params, np.asarray(reference.params), rtol=1e-10, atol=1e-12)
+        assert fit.converged and fit.iterations == reference.mle_retvals["iterations"]
+    # a cap on the iterations is reported, not hidden
+    capped = logit._newton_mnlogit(design, endog, 2)
+    assert not capped.converged and capped.iterations == 2
+
+
+@pytest.mark.parametrize("block_rows", [7, 64, 10_000])
+def test_rank_in_blocks_equals_numpy_matrix_rank(block_rows):
+    # Reference: numpy.linalg.matrix_rank (SVD of the whole matrix, the same default tolerance).
+    rng = np.random.default_rng(4)
+    x = rng.normal(size=(500, 4))
+    group = rng.integers(0, 3, 500)
+    dummies = (group[:, None] == np.arange(3)).astype(float)
+    cases = {
+        "full rank": np.column_stack([np.ones(500), x]),
+        "full set of dummies beside the intercept": np.column_stack([np.ones(500), x, dummies]),
+        "a column that is a sum of two others": np.column_stack([np.ones(500), x, x[:, 0] + 2 * x[:, 1]]),
+        "nearly collinear, still full rank": np.column_stack([np.ones(500), x, x[:, 0] + 1e-6 * x[:, 2]]),
+        "a zero column": np.column_stack([np.ones(500), x, np.zeros(500)]),
+    }
+    for name, design in cases.items():
+        assert logit.column_rank(design, block_rows) == np.linalg.matrix_rank(design), name
+
+
 def test_two_actions_equal_statsmodels_logit(anes):
     X, _, vote = anes
     model = MultinomialLogitBehaviour().fit(X, vote, n_actions=2)

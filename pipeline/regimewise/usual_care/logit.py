@@ -8,6 +8,7 @@ policy of off-policy evaluation (Precup, Sutton & Singh 2000).
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -58,17 +59,112 @@ def prediction_design(model, X, fitted_attribute):
 
 
 def _run_mnlogit(design, endog, method, maxiter):
-    """statsmodels MNLogit fit, or ``None`` when it breaks down (singular Hessian, non-finite estimates).
+    """Maximum-likelihood fit of the multinomial logit, or ``None`` when it breaks down (singular Hessian,
+    non-finite estimates).
 
-    statsmodels' own warnings are silenced here; the caller reports convergence problems in its own words.
+    ``"newton"`` is :func:`_newton_mnlogit`, which reads the records in blocks; any other method is statsmodels'
+    ``MNLogit`` optimiser of that name, whose own warnings are silenced here (the caller reports convergence
+    problems in its own words).
     """
+    if method == "newton":
+        return _newton_mnlogit(design, endog, maxiter)
     with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")
         try:
             result = sm.MNLogit(endog, design).fit(method=method, maxiter=maxiter, disp=0, skip_hessian=True)
         except np.linalg.LinAlgError:
             return None
-    return result if np.all(np.isfinite(result.params)) else None
+    if not np.all(np.isfinite(result.params)):
+        return None
+    retvals = result.mle_retvals
+    return MNLogitFit(np.asarray(result.params), bool(retvals.get("converged", True)), retvals.get("iterations"))
+
+
+@dataclass(frozen=True)
+class MNLogitFit:
+    """Coefficients (one column per non-reference class), whether the optimiser converged, iterations used."""
+
+    params: np.ndarray
+    converged: bool
+    iterations: int | None
+
+
+# Rows per block of the Newton step: about 20 MB of temporaries with 13 columns and 4 classes.
+NEWTON_BLOCK_ROWS = 65_536
+
+
+def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
+    """Newton's method for the multinomial logit, as statsmodels' ``MNLogit.fit(method="newton")`` runs it.
+
+    Start at 0; each step solves (H + ridge·I) Δ = −score with the Hessian H of the log-likelihood; stop when no
+    coefficient moves by more than ``tol`` or after ``maxiter`` steps (then ``converged`` is False). statsmodels'
+    defaults (``tol`` 1e-8, ridge 1e-10) are kept, so both give the same estimates to rounding; the tests check
+    it. The score and the Hessian are sums over the records, accumulated here block by block: with A_j = X·p_j
+    (each row of X times the probability of class j), −H has blocks δ_jl X'diag(p_j)X − A_j'A_l, two matrix
+    products per block (Agresti 2013, Categorical Data Analysis, 3rd ed., §8.1 for the likelihood equations).
+    Memory stays at a block's worth of temporaries instead of several copies of the design.
+    """
+    n_rows, n_cols = design.shape
+    n_other = int(endog.max())  # classes 1 .. n_other against the reference class 0
+    params = np.zeros((n_cols, n_other))
+    others = np.arange(1, n_other + 1)
+    for iteration in range(1, maxiter + 1):
+        score = np.zeros((n_other, n_cols))
+        information = np.zeros((n_other * n_cols, n_other * n_cols))
+        with np.errstate(all="ignore"):
+            for start in range(0, n_rows, NEWTON_BLOCK_ROWS):
+                X = design[start : start + NEWTON_BLOCK_ROWS]
+                proba = np.exp(_log_proba(X, params)[:, 1:])
+                taken = endog[start : start + NEWTON_BLOCK_ROWS, None] == others
+                score += (taken - proba).T @ X
+                A = (X[:, None, :] * proba[:, :, None]).reshape(len(X), -1)  # columns: class-major, as the blocks
+                information -= A.T @ A
+                weighted = A.T @ X
+                for j in range(n_other):
+                    block = slice(j * n_cols, (j + 1) * n_cols)
+                    information[block, block] += weighted[block]
+        hessian = -information
+        hessian[np.diag_indices_from(hessian)] += ridge
+        try:
+            step = np.linalg.solve(hessian, score.ravel())
+        except np.linalg.LinAlgError:
+            return None
+        step = step.reshape(n_other, n_cols).T
+        params = params - step
+        if not np.all(np.isfinite(params)):
+            return None
+        if np.all(np.abs(step) <= tol):
+            return MNLogitFit(params, True, iteration)
+    return MNLogitFit(params, False, maxiter)
+
+
+def _scaled_design(values, mean, scale):
+    """The intercept column, then every varying covariate centred and scaled: filled column by column, so the
+    only full-size array made is the design itself."""
+    varying = np.flatnonzero(scale > 0)
+    design = np.empty((values.shape[0], varying.size + 1))
+    design[:, 0] = 1.0
+    for j, column in enumerate(varying, start=1):
+        np.subtract(values[:, column], mean[column], out=design[:, j])
+        design[:, j] /= scale[column]
+    return design
+
+
+def column_rank(design, block_rows=None):
+    """``numpy.linalg.matrix_rank(design)`` for a tall matrix, read in blocks of rows.
+
+    The triangular factor R of a QR decomposition has the singular values of ``design``; R is updated block by
+    block (the R of [R; next block]), so no copy of the whole matrix is made. Singular values above numpy's
+    default tolerance, largest × max(rows, columns) × machine epsilon, count.
+    """
+    block_rows = NEWTON_BLOCK_ROWS if block_rows is None else block_rows
+    r = np.zeros((0, design.shape[1]))
+    for start in range(0, design.shape[0], block_rows):
+        r = np.linalg.qr(np.vstack([r, design[start : start + block_rows]]), mode="r")
+    singular = np.linalg.svd(r, compute_uv=False)
+    if singular.size == 0 or singular.max() == 0:
+        return 0
+    return int(np.sum(singular > singular.max() * max(design.shape) * np.finfo(float).eps))
 
 
 def _log_proba(design, params):
@@ -186,8 +282,7 @@ class MultinomialLogitBehaviour:
             self.params_ = np.zeros((self.n_features_in_ + 1, 0))
             self.converged_, self.n_iter_, self.llf_, self.method_ = True, 0, 0.0, None
             return self
-        varying = scale > 0
-        design = sm.add_constant((values[:, varying] - mean[varying]) / scale[varying], has_constant="add")
+        design = _scaled_design(values, mean, scale)
         self._check_rank(design)
         endog = np.searchsorted(self.classes_, codes)
         result = self._fit_mnlogit(design, endog)
@@ -197,8 +292,8 @@ class MultinomialLogitBehaviour:
         if llf > _SEPARATION_LLF:
             raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
         self.params_ = self._unscale(params, mean, scale)
-        self.converged_ = bool(result.mle_retvals.get("converged", True))
-        self.n_iter_ = result.mle_retvals.get("iterations")
+        self.converged_ = result.converged
+        self.n_iter_ = result.iterations
         self.llf_ = llf
         self._warn_fit_problems()
         return self
@@ -242,7 +337,7 @@ class MultinomialLogitBehaviour:
             )
 
     def _check_rank(self, design):
-        rank = np.linalg.matrix_rank(design)
+        rank = column_rank(design)
         if rank < design.shape[1]:
             raise UserInputError(
                 f"the usual-care design matrix (with the intercept this model adds) has rank {rank} < "
