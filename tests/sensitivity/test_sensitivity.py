@@ -7,6 +7,7 @@ import pytest
 from scipy.optimize import linprog
 
 from regimewise.sensitivity.bounds import (
+    bounds_curve,
     inverse_probability_bounds,
     regime_value_bounds,
     tipping_point,
@@ -55,6 +56,24 @@ def _following_episodes(rng, n_episodes=40, horizon=3):
     follows = rng.uniform(size=episode.size) < 0.7
     returns = rng.normal(size=n_episodes)
     return returns, proba, follows, episode
+
+
+@pytest.mark.parametrize("adoption", [1.0, 0.3])
+@pytest.mark.parametrize("seed", range(4))
+def test_curve_over_gammas_equals_the_bounds_at_each_gamma(seed, adoption):
+    # Reference: the bounds at each Γ computed directly (every decision's factor, every Γ), themselves checked
+    # against the linear program above at a few points; the curve leaves out the work that does not depend on Γ.
+    rng = np.random.default_rng(seed)
+    returns, proba, follows, episode = _following_episodes(rng, n_episodes=60, horizon=4)
+    confounded = rng.uniform(size=episode.size) < 0.8
+    gammas = [1.0, 1.3, 2.0, 4.5]
+    curve = bounds_curve(returns, proba, follows, episode, gammas, confounded, adoption)
+    for row, gamma in zip(curve, gammas, strict=True):
+        direct = regime_value_bounds(returns, proba, follows, episode, gamma, confounded, adoption)
+        np.testing.assert_allclose(row, [direct.lower, direct.upper], rtol=1e-12, atol=1e-12)
+    if seed == 0:
+        w_low, w_high = trajectory_weight_bounds(proba, follows, episode, returns.size, 2.0, confounded, adoption)
+        np.testing.assert_allclose(curve[2], brute_force_bounds(returns, w_low, w_high), atol=1e-8)
 
 
 def test_gamma_one_gives_the_weighted_importance_sampling_estimate():

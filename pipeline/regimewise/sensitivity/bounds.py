@@ -159,15 +159,39 @@ def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None
     """Sharp bounds of the regime's (or its partial adoption's) weighted importance-sampling value at every Γ:
     array (len(gammas), 2).
 
-    The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019).
+    The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019). The bounds
+    of :func:`trajectory_weight_bounds` are computed without the work that does not depend on Γ: an episode that
+    departs from a deterministic regime has weight 0 at every Γ, and a decision where the factor cannot move (no
+    confounding allowed there, or, under partial adoption, a decision that departs and keeps 1 − ε) contributes
+    the same factor at every Γ, so their logarithms are summed once.
     """
     returns = np.asarray(returns, dtype=float)
     order = np.argsort(-returns, kind="mergesort")
+    proba_taken = np.asarray(proba_taken, dtype=float)
+    follows = np.asarray(follows, dtype=bool)
+    episode = np.asarray(episode, dtype=np.int64)
+    confounded = np.ones_like(follows) if confounded is None else np.asarray(confounded, dtype=bool)
+    if not 0.0 < adoption <= 1.0:
+        raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
+    inverse_probability_bounds(proba_taken, 1.0)  # the probabilities' check, at every decision
+    departs = np.zeros(returns.size, dtype=bool)
+    if adoption == 1.0:
+        departs = np.bincount(episode, weights=~follows, minlength=returns.size) > 0
+    moves = confounded & follows & ~departs[episode]  # the decisions whose factor depends on Γ
+    fixed = ~moves & ~departs[episode]
+    point = 1.0 - adoption + adoption * follows[fixed] / proba_taken[fixed]
+    fixed_log = np.bincount(episode[fixed], weights=np.log(point), minlength=returns.size)
+    moving_episode, moving_proba = episode[moves], proba_taken[moves]
+
+    def product(bound):  # each episode's product of factors, one bound of 1/e at the moving decisions
+        moving_log = np.bincount(
+            moving_episode, weights=np.log(1.0 - adoption + adoption * bound), minlength=returns.size
+        )
+        return np.where(departs, 0.0, np.exp(fixed_log + moving_log))
+
     out = np.empty((len(gammas), 2))
     for i, gamma in enumerate(gammas):
-        lower, upper = trajectory_weight_bounds(
-            proba_taken, follows, episode, returns.size, gamma, confounded, adoption
-        )
+        lower, upper = (product(bound) for bound in inverse_probability_bounds(moving_proba, gamma))
         out[i, 1] = _sorted_upper_bound(returns[order], lower[order], upper[order])
         out[i, 0] = -_sorted_upper_bound(-returns[order][::-1], lower[order][::-1], upper[order][::-1])
     return out
