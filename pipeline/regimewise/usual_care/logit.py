@@ -190,10 +190,11 @@ class MultinomialLogitBehaviour:
     .. math:: P(A = k \mid x) = \frac{\exp(\beta_{0k} + x^\top \beta_k)}{\sum_j \exp(\beta_{0j} + x^\top \beta_j)},
               \quad \beta_{0c} = 0,\ \beta_c = 0 \text{ for the reference action } c = \text{classes\_}[0].
 
-    Fitted by maximum likelihood with statsmodels ``MNLogit`` (McFadden 1974, in *Frontiers in Econometrics*;
-    Agresti 2013, *Categorical Data Analysis*, 3rd ed., ch. 8). With two actions it is ordinary logistic
-    regression. The class adds the intercept; the caller builds the design matrix (indicator columns for
-    categories, squares, ...) and must not include a constant column of its own.
+    Fitted by maximum likelihood (McFadden 1974, in *Frontiers in Econometrics*; Agresti 2013, *Categorical Data
+    Analysis*, 3rd ed., ch. 8): Newton's method as statsmodels ``MNLogit`` runs it, over the records in blocks
+    (:func:`_newton_mnlogit`), or statsmodels' own optimiser for any other ``method``. With two actions it is
+    ordinary logistic regression. The class adds the intercept; the caller builds the design matrix (indicator
+    columns for categories, squares, ...) and must not include a constant column of its own.
 
     Covariates are centred and scaled inside ``fit`` for a stable Newton iteration; ``params_`` are transformed
     back to the caller's scale. A column that is constant in the training data carries no information: it is
@@ -215,7 +216,8 @@ class MultinomialLogitBehaviour:
     maxiter : int, default 100
         Maximum number of optimiser iterations.
     method : str, default "newton"
-        statsmodels optimiser (``"newton"``, ``"bfgs"``, ``"lbfgs"``, ``"nm"``, ...).
+        ``"newton"`` (the blockwise Newton iteration), or a statsmodels optimiser (``"bfgs"``, ``"lbfgs"``,
+        ``"nm"``, ...).
 
     Attributes
     ----------
