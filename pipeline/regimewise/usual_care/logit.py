@@ -40,9 +40,11 @@ def as_design(X, what="X"):
 
 
 def _standardise(values):
-    """Column means and scales for a numerically stable fit; constant columns get scale 0."""
-    mean = values.mean(axis=0)
-    scale = values.std(axis=0)
+    """Column means and scales for a numerically stable fit; constant columns get scale 0.
+
+    One column at a time, so no temporary of the whole matrix's size is made."""
+    mean = np.array([values[:, j].mean() for j in range(values.shape[1])])
+    scale = np.array([values[:, j].std() for j in range(values.shape[1])])
     constant = np.ptp(values, axis=0) == 0
     scale[constant] = 0.0
     return mean, scale
@@ -176,6 +178,16 @@ def _log_proba(design, params):
     return log_softmax(linear, axis=1)
 
 
+def _log_likelihood(design, endog, params) -> float:
+    """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
+    total = 0.0
+    for start in range(0, design.shape[0], NEWTON_BLOCK_ROWS):
+        stop = start + NEWTON_BLOCK_ROWS
+        log_proba = _log_proba(design[start:stop], params)
+        total += float(log_proba[np.arange(log_proba.shape[0]), endog[start:stop]].sum())
+    return total
+
+
 def _breakdown_message(reason):
     return (
         f"the usual-care model cannot be fitted ({reason}); most often some action is perfectly predicted "
@@ -290,7 +302,7 @@ class MultinomialLogitBehaviour:
         result = self._fit_mnlogit(design, endog)
         params = np.asarray(result.params)
         # statsmodels' llf overflows to nan when probabilities saturate; compute it in log space instead.
-        llf = float(_log_proba(design, params)[np.arange(endog.size), endog].sum())
+        llf = _log_likelihood(design, endog, params)
         if llf > _SEPARATION_LLF:
             raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
         self.params_ = self._unscale(params, mean, scale)
@@ -306,7 +318,10 @@ class MultinomialLogitBehaviour:
         if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
             raise UserInputError("X has different column names or order than at fit; pass the same design columns")
         proba = np.zeros((values.shape[0], self.n_actions_))
-        proba[:, self.classes_] = np.exp(_log_proba(np.column_stack([np.ones(len(values)), values]), self.params_))
+        for start in range(0, values.shape[0], NEWTON_BLOCK_ROWS):  # blocks: no full-size copy of the design
+            block = values[start : start + NEWTON_BLOCK_ROWS]
+            design = np.column_stack([np.ones(len(block)), block])
+            proba[start : start + NEWTON_BLOCK_ROWS, self.classes_] = np.exp(_log_proba(design, self.params_))
         return proba
 
     def _fit_mnlogit(self, design, endog):
