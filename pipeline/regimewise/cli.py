@@ -54,11 +54,10 @@ from regimewise.appendix.verify import (
 from regimewise.cautions import TERMINAL_CAUTION
 from regimewise.data.validate import report_lines, validate_records, write_error_report
 from regimewise.demo.files import write_cohort
-from regimewise.errors import OS_REASONS, DataValidationError, UserInputError, os_reason
+from regimewise.errors import ERROR_PREFIX, OS_REASONS, DataValidationError, UserInputError, os_reason
 from regimewise.io import require_file, write_bytes, write_json, write_text
 from regimewise.protocol.loading import load_protocol, schema_text
 from regimewise.workflow.progress import WORKFLOW_LOG, Progress, warning_line
-from regimewise.workflow.stages import ERROR_PREFIX, report_stage
 
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
     import fcntl
@@ -353,6 +352,8 @@ def _rerun_folder(keep: str | None):
 
 def _rerender_report(root: Path, pf, out: Path, reproduce: str) -> None:
     """Rerender report.html, summary.json and the provenance from the run's own stage outputs into ``out``."""
+    from regimewise.workflow.stages import report_stage  # the report's machinery, only for this command
+
     p = pf.protocol
     report_stage(
         protocol=str(pf.path),

@@ -9,6 +9,9 @@ from __future__ import annotations
 
 import errno
 
+# How the command line and the workflow's stages begin the one line they print for a UserInputError.
+ERROR_PREFIX = "regimewise error: "
+
 
 class UserInputError(Exception):
     """A problem the user can fix; the message says what, where and how to fix it."""

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import json
 import re
+import subprocess
+import sys
 
 import pytest
 from support.cli import run_cli
@@ -14,6 +16,18 @@ from support.tiny import REPOSITORY, tiny_decisions, write_tiny
 from regimewise.cautions import TERMINAL_CAUTION
 from regimewise.cli import build_parser
 from regimewise.protocol import protocol_schema
+
+
+def test_the_command_line_starts_without_the_report_and_model_libraries():
+    # Every `regimewise` command (and every Snakefile read) imports the command line; the plotting and model
+    # libraries load only where a command or a stage needs them, so `--help`, `check` and `verify` start quickly.
+    code = (
+        "import sys, regimewise.cli, regimewise.appendix.assemble, regimewise.appendix.verify; "
+        "print(sorted(m for m in ('matplotlib', 'statsmodels', 'sklearn', 'lifelines') if m in sys.modules))"
+    )
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "[]"
 
 
 def test_schema_goes_to_standard_output_from_any_folder(tmp_path):

@@ -11,7 +11,6 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from regimewise.appendix.checklist import build_checklist, render_checklist_html
 from regimewise.appendix.environment import environment_record
 from regimewise.appendix.manifest import artifact_paths, build_manifest
 from regimewise.appendix.records import commands_text, resolved_protocol_text, seeds_record, sha256_line
@@ -58,6 +57,10 @@ def _commands(run: AppendixRun) -> dict:
 def _checklist(run: AppendixRun) -> dict:
     """The reporting checklists (TARGET, RECORD, Gottesman et al.) answered from the run's summary and protocol,
     pointing into the artifacts the manifest lists."""
+    # imported here: the checklist renders with the report's machinery (matplotlib, statsmodels), which the
+    # readers of this module's names (the command line, verify, bundle, the Snakefile) do not need
+    from regimewise.appendix.checklist import build_checklist, render_checklist_html
+
     checklist = build_checklist(
         read_json(run.root / "report" / "summary.json"), run.pf.protocol, set(artifact_paths(run.root))
     )

@@ -27,7 +27,7 @@ from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
-from regimewise.errors import DataValidationError, StatisticalWarning, UserInputError
+from regimewise.errors import ERROR_PREFIX, DataValidationError, StatisticalWarning, UserInputError
 from regimewise.evaluation.values import evaluate_all, headline_estimator, named_strategy_codes
 from regimewise.io import read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
@@ -102,9 +102,6 @@ def appendix_stage(protocol, html, summary, provenance, manifest, command="", re
 
 
 log = logging.getLogger("regimewise")
-
-
-ERROR_PREFIX = "regimewise error: "
 
 
 # ---------------------------------------------------------------------------------------------- validate
