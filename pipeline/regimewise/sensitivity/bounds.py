@@ -71,23 +71,45 @@ def trajectory_weight_bounds(proba_taken, follows, episode, n_episodes, gamma, c
     lower, upper : ndarray, shape (E,)
         Zero for an episode that departs from the regime anywhere (its weight is zero whatever the confounding).
     """
+    return weight_bounds_over_gammas(proba_taken, follows, episode, n_episodes, confounded, adoption)(gamma)
+
+
+def weight_bounds_over_gammas(proba_taken, follows, episode, n_episodes, confounded=None, adoption=1.0):
+    """The bounds of :func:`trajectory_weight_bounds` as a function of Γ, with the work that does not depend on Γ
+    done once.
+
+    An episode that departs from a deterministic regime has weight 0 at every Γ. A decision whose factor cannot
+    move (no confounding allowed there: factor 1 − ε + ε·1[follows]/e; or, under partial adoption, one that departs:
+    factor 1 − ε) contributes the same logarithm at every Γ, so those are summed once per episode; the returned
+    function recomputes only the factors of the other decisions.
+    """
     proba_taken = np.asarray(proba_taken, dtype=float)
     follows = np.asarray(follows, dtype=bool)
     episode = np.asarray(episode, dtype=np.int64)
     confounded = np.ones_like(follows) if confounded is None else np.asarray(confounded, dtype=bool)
-    low, high = inverse_probability_bounds(proba_taken, gamma)
-    point = 1.0 / proba_taken
-    low = np.where(confounded, low, point)
-    high = np.where(confounded, high, point)
-    if adoption < 1.0:
-        if not 0.0 < adoption:
-            raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
-        low, high = (1.0 - adoption + adoption * follows * bound for bound in (low, high))
-        follows = np.ones_like(follows)  # a decision that departs keeps weight 1 − ε: nobody drops out
-    log_low = np.bincount(episode, weights=np.log(low), minlength=n_episodes)
-    log_high = np.bincount(episode, weights=np.log(high), minlength=n_episodes)
-    departs = np.bincount(episode, weights=~follows, minlength=n_episodes) > 0
-    return np.where(departs, 0.0, np.exp(log_low)), np.where(departs, 0.0, np.exp(log_high))
+    if not 0.0 < adoption <= 1.0:
+        raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
+    inverse_probability_bounds(proba_taken, 1.0)  # the probabilities' check, at every decision
+    departs = np.zeros(n_episodes, dtype=bool)
+    if adoption == 1.0:  # under partial adoption a decision that departs keeps 1 − ε: nobody drops out
+        departs = np.bincount(episode, weights=~follows, minlength=n_episodes) > 0
+    kept = ~departs[episode]
+    moves = kept & confounded & follows  # the decisions whose factor depends on Γ
+    fixed = kept & ~moves
+    fixed_factor = 1.0 - adoption + adoption * follows[fixed] / proba_taken[fixed]
+    fixed_log = np.bincount(episode[fixed], weights=np.log(fixed_factor), minlength=n_episodes)
+    moving_episode, moving_proba = episode[moves], proba_taken[moves]
+
+    def product(bound):  # each episode's product of factors, one bound of 1/e at the moving decisions
+        factor = 1.0 - adoption + adoption * bound
+        moving_log = np.bincount(moving_episode, weights=np.log(factor), minlength=n_episodes)
+        return np.where(departs, 0.0, np.exp(fixed_log + moving_log))
+
+    def at(gamma):
+        low, high = inverse_probability_bounds(moving_proba, gamma)
+        return product(low), product(high)
+
+    return at
 
 
 # ---------------------------------------------------------------------------------------------- sharp bounds
@@ -159,41 +181,18 @@ def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None
     """Sharp bounds of the regime's (or its partial adoption's) weighted importance-sampling value at every Γ:
     array (len(gammas), 2).
 
-    The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019). The bounds
-    of :func:`trajectory_weight_bounds` are computed without the work that does not depend on Γ: an episode that
-    departs from a deterministic regime has weight 0 at every Γ, and a decision where the factor cannot move (no
-    confounding allowed there, or, under partial adoption, a decision that departs and keeps 1 − ε) contributes
-    the same factor at every Γ, so their logarithms are summed once.
+    The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019), whose
+    Γ-free part :func:`weight_bounds_over_gammas` computes once.
     """
     returns = np.asarray(returns, dtype=float)
     order = np.argsort(-returns, kind="mergesort")
-    proba_taken = np.asarray(proba_taken, dtype=float)
-    follows = np.asarray(follows, dtype=bool)
-    episode = np.asarray(episode, dtype=np.int64)
-    confounded = np.ones_like(follows) if confounded is None else np.asarray(confounded, dtype=bool)
-    if not 0.0 < adoption <= 1.0:
-        raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
-    inverse_probability_bounds(proba_taken, 1.0)  # the probabilities' check, at every decision
-    departs = np.zeros(returns.size, dtype=bool)
-    if adoption == 1.0:
-        departs = np.bincount(episode, weights=~follows, minlength=returns.size) > 0
-    moves = confounded & follows & ~departs[episode]  # the decisions whose factor depends on Γ
-    fixed = ~moves & ~departs[episode]
-    point = 1.0 - adoption + adoption * follows[fixed] / proba_taken[fixed]
-    fixed_log = np.bincount(episode[fixed], weights=np.log(point), minlength=returns.size)
-    moving_episode, moving_proba = episode[moves], proba_taken[moves]
-
-    def product(bound):  # each episode's product of factors, one bound of 1/e at the moving decisions
-        moving_log = np.bincount(
-            moving_episode, weights=np.log(1.0 - adoption + adoption * bound), minlength=returns.size
-        )
-        return np.where(departs, 0.0, np.exp(fixed_log + moving_log))
-
+    y = returns[order]
+    box = weight_bounds_over_gammas(proba_taken, follows, episode, returns.size, confounded, adoption)
     out = np.empty((len(gammas), 2))
     for i, gamma in enumerate(gammas):
-        lower, upper = (product(bound) for bound in inverse_probability_bounds(moving_proba, gamma))
-        out[i, 1] = _sorted_upper_bound(returns[order], lower[order], upper[order])
-        out[i, 0] = -_sorted_upper_bound(-returns[order][::-1], lower[order][::-1], upper[order][::-1])
+        lower, upper = (bound[order] for bound in box(gamma))
+        out[i, 1] = _sorted_upper_bound(y, lower, upper)
+        out[i, 0] = -_sorted_upper_bound(-y[::-1], lower[::-1], upper[::-1])
     return out
 
 
