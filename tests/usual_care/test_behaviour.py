@@ -89,7 +89,7 @@ def test_newton_in_blocks_equals_statsmodels_newton(anes, monkeypatch):
     # on the whole design at once; ours reads 944 records in blocks of 100 (and of 50,000, i.e. one block).
     reference = sm.MNLogit(endog, design).fit(disp=0, method="newton", maxiter=100)
     for rows in (100, 50_000):
-        monkeypatch.setattr(logit, "NEWTON_BLOCK_ROWS", rows)
+        monkeypatch.setattr(logit, "BLOCK_ROWS", rows)
         fit = logit._newton_mnlogit(design, endog, 100)
         np.testing.assert_allclose(fit.params, np.asarray(reference.params), rtol=1e-10, atol=1e-12)
         assert fit.converged and fit.iterations == reference.mle_retvals["iterations"]

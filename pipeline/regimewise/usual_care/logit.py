@@ -91,8 +91,15 @@ class MNLogitFit:
     iterations: int | None
 
 
-# Rows per block of the Newton step: about 20 MB of temporaries with 13 columns and 4 classes.
-NEWTON_BLOCK_ROWS = 65_536
+# Rows per block of every pass over the records (Newton step, rank, log-likelihood, probabilities): about 20 MB
+# of temporaries with 13 columns and 4 classes.
+BLOCK_ROWS = 65_536
+
+
+def _row_blocks(n_rows, size=None):
+    """Slices of consecutive rows, ``size`` (default :data:`BLOCK_ROWS`) at a time."""
+    size = BLOCK_ROWS if size is None else size
+    return (slice(start, start + size) for start in range(0, n_rows, size))
 
 
 def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
@@ -114,10 +121,10 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         score = np.zeros((n_other, n_cols))
         information = np.zeros((n_other * n_cols, n_other * n_cols))
         with np.errstate(all="ignore"):
-            for start in range(0, n_rows, NEWTON_BLOCK_ROWS):
-                X = design[start : start + NEWTON_BLOCK_ROWS]
+            for rows in _row_blocks(n_rows):
+                X = design[rows]
                 proba = np.exp(_log_proba(X, params)[:, 1:])
-                taken = endog[start : start + NEWTON_BLOCK_ROWS, None] == others
+                taken = endog[rows, None] == others
                 score += (taken - proba).T @ X
                 A = (X[:, None, :] * proba[:, :, None]).reshape(len(X), -1)  # columns: class-major, as the blocks
                 information -= A.T @ A
@@ -159,10 +166,9 @@ def column_rank(design, block_rows=None):
     block (the R of [R; next block]), so no copy of the whole matrix is made. Singular values above numpy's
     default tolerance, largest × max(rows, columns) × machine epsilon, count.
     """
-    block_rows = NEWTON_BLOCK_ROWS if block_rows is None else block_rows
     r = np.zeros((0, design.shape[1]))
-    for start in range(0, design.shape[0], block_rows):
-        r = np.linalg.qr(np.vstack([r, design[start : start + block_rows]]), mode="r")
+    for rows in _row_blocks(design.shape[0], block_rows):
+        r = np.linalg.qr(np.vstack([r, design[rows]]), mode="r")
     singular = np.linalg.svd(r, compute_uv=False)
     if singular.size == 0 or singular.max() == 0:
         return 0
@@ -181,10 +187,9 @@ def _log_proba(design, params):
 def _log_likelihood(design, endog, params) -> float:
     """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
     total = 0.0
-    for start in range(0, design.shape[0], NEWTON_BLOCK_ROWS):
-        stop = start + NEWTON_BLOCK_ROWS
-        log_proba = _log_proba(design[start:stop], params)
-        total += float(log_proba[np.arange(log_proba.shape[0]), endog[start:stop]].sum())
+    for rows in _row_blocks(design.shape[0]):
+        log_proba = _log_proba(design[rows], params)
+        total += float(log_proba[np.arange(log_proba.shape[0]), endog[rows]].sum())
     return total
 
 
@@ -318,10 +323,9 @@ class MultinomialLogitBehaviour:
         if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
             raise UserInputError("X has different column names or order than at fit; pass the same design columns")
         proba = np.zeros((values.shape[0], self.n_actions_))
-        for start in range(0, values.shape[0], NEWTON_BLOCK_ROWS):  # blocks: no full-size copy of the design
-            block = values[start : start + NEWTON_BLOCK_ROWS]
-            design = np.column_stack([np.ones(len(block)), block])
-            proba[start : start + NEWTON_BLOCK_ROWS, self.classes_] = np.exp(_log_proba(design, self.params_))
+        for rows in _row_blocks(values.shape[0]):  # blocks: no full-size copy of the design
+            design = np.column_stack([np.ones(len(values[rows])), values[rows]])
+            proba[rows, self.classes_] = np.exp(_log_proba(design, self.params_))
         return proba
 
     def _fit_mnlogit(self, design, endog):
