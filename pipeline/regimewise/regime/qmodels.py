@@ -185,30 +185,45 @@ def evaluate_policies(
         at that step), or the :class:`UserInputError` that stopped its backup (the regime gives probability to an
         action never seen at some step).
     """
-    design = _design(np.asarray(X, dtype=float))
     step, action = np.asarray(step), np.asarray(action)
     next_row = next_row_index(np.asarray(episode))
     n, n_regimes = step.shape[0], len(targets)
-    q = np.full((n_regimes, n, n_actions), np.nan)
+    # rows regrouped by step (stable: episode order kept within a step), so that each step's rows are one slice
+    # of the design, the backed-up targets and the Q-values rather than a gathered copy; the rows each least-squares
+    # fit sees, and their order, are those of the decision table
+    order = np.argsort(step, kind="stable")
+    bounds = np.searchsorted(step[order], np.arange(horizon + 1))
+    position = np.empty(n, dtype=np.intp)
+    position[order] = np.arange(n)
+    X = np.asarray(X, dtype=float)
+    design = np.ones((n, X.shape[1] + 1))  # [1, X] with the rows in step order, built without a sorted copy of X
+    np.take(X, order, axis=0, out=design[:, 1:])
+    action_sorted = action[order]
+    q = [np.full((n, n_actions), np.nan) for _ in range(n_regimes)]  # per regime, so each is released alone
     failed: list = [None] * n_regimes
-    target = np.repeat(np.asarray(reward, dtype=float)[:, None], n_regimes, axis=1)
+    target = np.repeat(np.asarray(reward, dtype=float)[order][:, None], n_regimes, axis=1)
     for t in range(horizon - 1, -1, -1):
-        rows = np.flatnonzero(step == t)
-        later = next_row[rows]
-        cont, later = rows[later >= 0], later[later >= 0]
+        rows = slice(bounds[t], bounds[t + 1])
+        later = next_row[order[rows]]
+        continues = later >= 0
+        cont, later = np.flatnonzero(continues) + bounds[t], later[continues]
+        later_sorted = position[later]
         for r in range(n_regimes):
             if cont.size and failed[r] is None:
                 try:
                     target[cont, r] = target[cont, r] + gamma * policy_average(
-                        q[r, later], targets[r][later], action_labels
+                        q[r][later_sorted], targets[r][later], action_labels
                     )
                 except UserInputError as err:
                     failed[r] = err
-        coef = fit_actions(design[rows], action[rows], target[rows], alpha, n_actions, slopes)
-        for a in np.flatnonzero(np.bincount(action[rows], minlength=n_actions) > 0):
+        at_step = design[rows]
+        coef = fit_actions(at_step, action_sorted[rows], target[rows], alpha, n_actions, slopes)
+        for a in np.flatnonzero(np.bincount(action_sorted[rows], minlength=n_actions) > 0):
             for r in range(n_regimes):  # one regime at a time, no BLAS: the same bits whatever shares the pass
-                q[r, rows, a] = np.einsum("np,p->n", design[rows], np.ascontiguousarray(coef[a][:, r]))
-    return [q[r] if failed[r] is None else failed[r] for r in range(n_regimes)]
+                q[r][rows, a] = np.einsum("np,p->n", at_step, np.ascontiguousarray(coef[a][:, r]))
+    for r in range(n_regimes):  # back to the decision table's order, one regime at a time
+        q[r] = q[r][position] if failed[r] is None else failed[r]
+    return q
 
 
 def policy_average(q, proba, action_labels=None):
