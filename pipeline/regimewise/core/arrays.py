@@ -98,8 +98,9 @@ def check_finite(values, name, ndim):
     arr = np.asarray(values, dtype=float)
     if arr.ndim != ndim:
         raise UserInputError(f"{name} must be {ndim}-dimensional, got shape {arr.shape}.")
-    bad = np.argwhere(~np.isfinite(arr))
-    if bad.size:
+    finite = np.isfinite(arr)
+    if not finite.all():
+        bad = np.argwhere(~finite)
         raise UserInputError(f"{name} has a missing or infinite value at {tuple(bad[0])}; impute or drop that row.")
     return arr
 
@@ -112,7 +113,8 @@ def check_proba(proba, n_rows, n_actions, name):
             f"{name} has shape {arr.shape} but {n_rows} decisions and {n_actions} actions need "
             f"({n_rows}, {n_actions}); pass one column per action code."
         )
-    bad = np.flatnonzero((arr < 0).any(axis=1) | (arr > 1).any(axis=1))
+    outside = arr.size > 0 and (arr.min() < 0 or arr.max() > 1)  # one pass each when all is well
+    bad = np.flatnonzero((arr < 0).any(axis=1) | (arr > 1).any(axis=1)) if outside else np.empty(0, dtype=np.intp)
     bad = bad if bad.size else np.flatnonzero(np.abs(arr.sum(axis=1) - 1) > _PROBA_TOLERANCE)
     if bad.size:
         raise UserInputError(
