@@ -16,6 +16,7 @@ import pytest
 from scipy import stats
 from support.tiny import REPOSITORY
 
+import regimewise.evaluation.values as values_module
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import StatisticalWarning, UserInputError
@@ -26,7 +27,7 @@ from regimewise.evaluation.values import (
     minimum_reliable_ess,
 )
 from regimewise.protocol import EvaluationSpec, load_protocol
-from regimewise.regime.learning import learn_regime
+from regimewise.regime.learning import crossfit_folds, learn_regime
 
 ALL = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
 
@@ -188,3 +189,22 @@ def test_strategies_are_evaluated_with_verdicts(setting):
     ess = [by_name[f"partial_adoption_{e:g}"]["estimates"]["pdwis"]["ess"] for e in (0.2, 0.4, 0.6)]
     assert ess[0] > ess[1] > ess[2]
     assert {c["regime"] for c in values["contrasts"]} >= {"learned", "partial_adoption_0.4", "override_gain_2"}
+
+
+def test_a_regimes_values_do_not_depend_on_how_many_regimes_share_its_pass(setting, monkeypatch):
+    # source: evaluate_policies solves each regime's least squares on its own (same design, same rows, same order),
+    # so the passes a large study is cut into must give exactly the numbers of one pass (identity, no tolerance)
+    decisions, proba, protocol, _ = setting
+    demo = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
+    protocol = protocol.model_copy(update={"strategies": demo.strategies})
+    learned = learn_regime(decisions, protocol)
+    recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
+    side = {"hold_only": np.zeros(len(decisions), dtype=np.int64), "as_recommended": recommended}
+    kwargs = {"learned_folds": crossfit_folds(decisions, protocol), "learned_q": q}
+    assert values_module.regimes_per_pass(len(decisions), len(protocol.actions)) > 20  # one pass here
+    together = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
+    monkeypatch.setattr(values_module, "PASS_BYTES", 1)  # one regime per pass
+    assert values_module.regimes_per_pass(len(decisions), len(protocol.actions)) == 1
+    apart = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
+    assert len(together["regimes"]) > 10 and len(together["side_by_side"]) == 2
+    assert apart == together

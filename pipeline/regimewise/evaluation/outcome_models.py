@@ -39,7 +39,7 @@ def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_fold
         n = len(logged.step)
         q_taken, v_target = np.full((len(members), n), np.nan), np.full((len(members), n), np.nan)
         for part in parts:
-            rows = np.ones(n, dtype=bool) if part is None else learned_folds == part
+            rows = slice(None) if part is None else learned_folds == part  # every record: views, not copies
             for j, result in enumerate(_fold_models(logged, [targets[i]["target"] for i in members], protocol, rows)):
                 if isinstance(result, UserInputError):
                     out[members[j]] = _fold_error(result, part, parts) if part is not None else result
@@ -52,9 +52,10 @@ def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_fold
     return out
 
 
-def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray) -> list:
-    """(Q̂ taken, V̂) on ``rows`` for each target, fitted on those rows only, or the error that stopped one."""
-    episode = np.unique(logged.episode[rows], return_inverse=True)[1]
+def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray | slice) -> list:
+    """(Q̂ taken, V̂) on ``rows`` (a mask, or ``slice(None)`` for every record) for each target, fitted on those
+    rows only, or the error that stopped one."""
+    episode = logged.episode if isinstance(rows, slice) else np.unique(logged.episode[rows], return_inverse=True)[1]
     fitted = evaluate_policies(
         logged.X[rows],
         logged.step[rows],

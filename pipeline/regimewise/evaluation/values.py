@@ -13,6 +13,8 @@ An estimate whose Kish effective sample size is below ``max(evaluation.minimum_e
 
 from __future__ import annotations
 
+import itertools
+from collections.abc import Iterator
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -69,6 +71,16 @@ class LoggedDecisions:
         return int(self.episode.max()) + 1
 
 
+PASS_BYTES = 512 * 2**20  # memory for the regimes of one outcome-model pass (targets, Q-values, targets of fit)
+
+
+def regimes_per_pass(n_decisions: int, n_actions: int) -> int:
+    """How many regimes one evaluation pass takes: as many as fit in :data:`PASS_BYTES` at about three (n, K)
+    float64 arrays each (the target, its Q-values and their backed-up values), at least one. Every regime of a
+    small study shares one pass; a million decisions take one at a time."""
+    return max(1, PASS_BYTES // (3 * 8 * max(1, n_decisions) * max(1, n_actions)))
+
+
 def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
     out = np.zeros((len(codes), n_actions))
     out[np.arange(len(codes)), codes] = 1.0
@@ -81,7 +93,7 @@ def regime_targets(
     recommended: np.ndarray | None,
     protocol: Protocol,
     learned_q: np.ndarray | None = None,
-) -> list[dict]:
+) -> Iterator[dict]:
     """Every regime to evaluate, learned first: name, label, target probabilities, and for the strategies of the
     protocol's ``strategies`` section their family, parameter and clinical words (also the survival
     stage's strategies, so both stages name and define the regimes alike). The protocol's comparators follow the
@@ -91,32 +103,29 @@ def regime_targets(
     ``learned_q`` (n, K) holds the learned regime's cross-fitted Q-values, needed by the override strategies.
     With ``analysis.learn_regime: false`` there is no learned regime (``recommended`` is None): usual care comes
     first, then the named strategies.
+
+    Each entry is built only when asked for, so a caller that finishes with one regime before taking the next
+    holds one (n, K) target at a time, not all of them.
     """
     labels = protocol.action_labels
     k = len(labels)
-    targets = (
-        []
-        if recommended is None
-        else [{"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)}]
-    )
-    targets.append({"name": "usual_care", "label": "Usual care", "target": behaviour_proba})
+    if recommended is not None:
+        yield {"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)}
+    yield {"name": "usual_care", "label": "Usual care", "target": behaviour_proba}
     if protocol.evaluation.fixed_strategies:
-        targets += [
-            {
+        for j, a in enumerate(labels):
+            yield {
                 "name": f"always_{a}",
                 "label": f"Always {a.replace('_', ' ')}",
                 "target": one_hot(np.full(len(frame), j), k),
             }
-            for j, a in enumerate(labels)
-        ]
     columns = _comparator_columns(frame, protocol)
     for c in protocol.comparators:
         codes = c.action_codes(columns, len(frame), labels)
-        targets.append({"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c})
+        yield {"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c}
     for s in protocol_strategies(protocol.strategies):
         proba = strategy_proba(s, recommended, behaviour_proba, learned_q)
-        targets.append({"name": s.name, "label": s.label, "target": proba, "strategy": s})
-    return targets
+        yield {"name": s.name, "label": s.label, "target": proba, "strategy": s}
 
 
 def _comparator_columns(frame: pd.DataFrame, protocol: Protocol) -> dict:
@@ -388,9 +397,16 @@ def evaluate_all(
     ``learned_q`` (n, K): the cross-fitted Q-values the override strategies need.
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
-    targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q)
-    models = outcome_models(logged, targets, protocol, learned_folds)
-    regimes = [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(targets, models)]
+    regimes, histograms = [], None
+    # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
+    # (a regime's numbers do not depend on which regimes share its pass)
+    pending = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q)
+    while chunk := list(itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions)))):
+        models = outcome_models(logged, chunk, protocol, learned_folds)
+        regimes += [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(chunk, models)]
+        if chunk[0]["name"] == "learned":
+            histograms = weight_histograms(logged, chunk[0]["target"], protocol)
+        del chunk, models
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
     episode_patient[logged.episode] = logged.patient
@@ -403,22 +419,21 @@ def evaluate_all(
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
         "regimes": regimes,
         "contrasts": contrasts,
-        **(
-            {"learned_weight_histograms": weight_histograms(logged, targets[0]["target"], protocol)}
-            if recommended is not None
-            else {}
-        ),
-        **(
-            {}
-            if side_by_side is None
-            else {
-                "side_by_side": [
-                    {
-                        "name": name,
-                        "estimates": evaluate_regime(logged, one_hot(codes, len(protocol.actions)), protocol, True),
-                    }
-                    for name, codes in side_by_side.items()
-                ]
-            }
-        ),
+        **({"learned_weight_histograms": histograms} if recommended is not None else {}),
+        **({} if side_by_side is None else {"side_by_side": _side_by_side(logged, side_by_side, protocol)}),
     }
+
+
+def _side_by_side(logged: LoggedDecisions, side_by_side: dict[str, np.ndarray], protocol: Protocol) -> list[dict]:
+    """Every estimator for each safeguard comparison regime, their outcome models fitted on all records in passes
+    as in :func:`evaluate_all`."""
+    out = []
+    pending = iter(side_by_side.items())
+    while chunk := list(itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions)))):
+        targets = [{"name": name, "target": one_hot(codes, len(protocol.actions))} for name, codes in chunk]
+        models = outcome_models(logged, targets, protocol)
+        out += [
+            {"name": t["name"], "estimates": evaluate_regime(logged, t["target"], protocol, True, fitted=m)}
+            for t, m in zip(targets, models)
+        ]
+    return out

@@ -94,9 +94,8 @@ def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=No
     spec = protocol.survival
     timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
-    targets = regime_targets(decisions, proba, recommended, protocol, learned_q)
     tables, strategies = {}, []
-    for entry in targets:
+    for entry in regime_targets(decisions, proba, recommended, protocol, learned_q):  # one target held at a time
         name, label, target = entry["name"], entry["label"], entry["target"]
         tables[name] = clone_censor_weight(
             timeline,
