@@ -12,7 +12,7 @@ from sklearn.tree import DecisionTreeClassifier
 
 from regimewise.errors import UserInputError
 from regimewise.protocol import StateVariable
-from regimewise.regime.readable import distill_regime
+from regimewise.regime.readable import distill_regime, fitting_rows
 
 STATES = [
     StateVariable(name="sbp", label="SBP", kind="continuous", plausible_range=(70, 250)),
@@ -75,6 +75,28 @@ def test_fidelity_matches_sklearn_tree(data):
     )
     assert 0.5 < readable.fidelity_out_of_fold <= 1.0
     assert max(readable.importance, key=readable.importance.get) == "sbp"
+
+
+def test_above_the_row_cap_the_tree_is_fitted_on_whole_patients_and_judged_on_every_decision(data):
+    # source: scikit-learn DecisionTreeClassifier(max_depth=3) fitted independently on the chosen rows, and
+    # accuracy_score over every decision
+    frame, recommended, groups = data
+    columns = ["sbp", "level", "female"]
+    full = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0)
+    assert full.fitted_decisions == len(frame)
+    unchanged = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0, max_rows=len(frame))
+    assert unchanged == full  # at or below the cap nothing changes
+    capped = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0, max_rows=600)
+    rows = fitting_rows(len(frame), groups, 600, 0)
+    assert capped.fitted_decisions == rows.size <= 600 and rows.size > 500  # patients of 1 to 15 decisions
+    chosen = np.unique(groups[rows])
+    assert np.isin(groups, chosen).sum() == rows.size  # whole patients: every decision of a chosen patient
+    tree = DecisionTreeClassifier(max_depth=3, random_state=0).fit(frame[columns].iloc[rows], recommended[rows])
+    assert capped.fidelity == pytest.approx(accuracy_score(recommended, tree.predict(frame[columns])))
+    assert sum(rule.decisions for rule in capped.rules) == len(frame)  # the rules still count every decision
+    assert 0.5 < capped.fidelity_out_of_fold <= 1.0
+    without_patients = fitting_rows(len(frame), None, 600, 0)
+    assert without_patients.size == 600 and np.all(np.diff(without_patients) > 0)
 
 
 def test_rules_in_words_partition_the_decisions_and_reproduce_the_tree(data):

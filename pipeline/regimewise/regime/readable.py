@@ -3,7 +3,9 @@
 A classification tree of depth at most 3 (Breiman et al. 1984; scikit-learn's ``DecisionTreeClassifier``) is
 fitted to the learned regime's recommended actions at the observed decisions, on the raw state values, so its
 splits read in clinical units. Its fidelity is the share of decisions where the tree's action equals the
-regime's (in-sample, and out-of-fold with folds by patient). Each leaf becomes one rule in plain words. A table
+regime's (in-sample, and out-of-fold with folds by patient). On more than :data:`TREE_ROWS` decisions the trees
+are fitted on the decisions of a random subset of patients (fixed seed) of about that size, and the fidelity, the
+rules' counts and the table still cover every decision. Each leaf becomes one rule in plain words. A table
 gives the most common recommendation across bins of the two states the tree relies on most (impurity
 importance). Distilling a policy into a tree for interpretation follows the model-extraction idea of Bastani,
 Kim & Bastani (2017).
@@ -54,12 +56,35 @@ class ReadableRegime:
     rules: tuple[TreeRule, ...]
     importance: dict
     table: dict
+    fitted_decisions: int  # decisions the tree was fitted on (all of them up to TREE_ROWS)
     note: str = READABLE_TREE_NOTE
 
     def to_dict(self) -> dict:
         out = asdict(self)
         out["rules"] = [dict(asdict(r), text=r.text) for r in self.rules]
         return out
+
+
+# Decisions a readable tree is fitted on at most: above it, a random subset of patients (a depth-3 tree's splits
+# are settled long before; fitting on every one of millions of decisions took most of the regime stage's summary
+# time, bench/RESULTS.md). The demo's 24,000 decisions are far below it.
+TREE_ROWS = 250_000
+
+
+def fitting_rows(n: int, groups, max_rows: int, random_state: int) -> np.ndarray:
+    """Row indices (ascending) the tree is fitted on: every row up to ``max_rows``; above it, the rows of
+    patients taken in a random order (``random_state``) while their decisions fit in ``max_rows`` (rows drawn
+    at random when ``groups`` is None)."""
+    rng = np.random.default_rng(random_state)
+    if n <= max_rows:
+        return np.arange(n)
+    if groups is None:
+        return np.sort(rng.choice(n, size=max_rows, replace=False))
+    codes = np.unique(np.asarray(groups), return_inverse=True)[1]
+    order = rng.permutation(int(codes.max()) + 1)
+    sizes = np.bincount(codes)[order]
+    chosen = order[: max(1, int(np.searchsorted(np.cumsum(sizes), max_rows, side="right")))]
+    return np.flatnonzero(np.isin(codes, chosen))
 
 
 # A categorical state's dummy column, ``<state>[<level>]`` (:func:`regimewise.core.features.dummy_name`).
@@ -180,7 +205,16 @@ def two_state_table(frame, recommended, first, second, action_labels, n_bins=4) 
 
 
 def distill_regime(
-    frame, recommended, states, action_labels, *, max_depth=3, groups=None, n_folds=5, random_state=0
+    frame,
+    recommended,
+    states,
+    action_labels,
+    *,
+    max_depth=3,
+    groups=None,
+    n_folds=5,
+    random_state=0,
+    max_rows=TREE_ROWS,
 ) -> ReadableRegime:
     """Distil a regime's recommendations into a shallow tree and a two-state table.
 
@@ -196,6 +230,8 @@ def distill_regime(
         Patient of each decision, for the out-of-fold fidelity (skipped if None).
     n_folds : int, default 5
     random_state : int
+    max_rows : int, default :data:`TREE_ROWS`
+        Most decisions the trees are fitted on (:func:`fitting_rows`); fidelity is measured on all of them.
     """
     if not 1 <= max_depth <= 3:
         raise UserInputError(f"max_depth must be 1, 2 or 3 for a readable tree, got {max_depth!r}.")
@@ -204,7 +240,8 @@ def distill_regime(
     X = frame[names].to_numpy(dtype=float)
     recommended = np.asarray(recommended, dtype=np.int64)
     make = lambda: DecisionTreeClassifier(max_depth=max_depth, random_state=random_state)  # noqa: E731
-    tree = make().fit(X, recommended)
+    fit = fitting_rows(len(recommended), groups, max_rows, random_state)
+    tree = make().fit(X[fit], recommended[fit])
     fidelity = float(np.mean(tree.predict(X) == recommended))
     oof = None
     if groups is not None:
@@ -213,8 +250,9 @@ def distill_regime(
         agree = np.zeros(len(recommended), dtype=bool)
         for f in range(n_folds):
             test = fold == f
-            if test.any() and not test.all():
-                agree[test] = make().fit(X[~test], recommended[~test]).predict(X[test]) == recommended[test]
+            train = fit[fold[fit] != f]
+            if test.any() and train.size:
+                agree[test] = make().fit(X[train], recommended[train]).predict(X[test]) == recommended[test]
         oof = float(agree.mean())
     importance = {n: float(v) for n, v in zip(names, tree.feature_importances_)}
     order = sorted(range(len(names)), key=lambda i: (-tree.feature_importances_[i], i))
@@ -222,4 +260,4 @@ def distill_regime(
         two_state_table(frame, recommended, names[order[0]], names[order[1]], action_labels) if len(names) > 1 else {}
     )
     rules = tree_rules(tree, names, binary, action_labels, X, recommended)
-    return ReadableRegime(max_depth, fidelity, oof, rules, importance, table)
+    return ReadableRegime(max_depth, fidelity, oof, rules, importance, table, int(fit.size))
