@@ -86,34 +86,37 @@ def _censoring_weights(timeline, decisions, protocol):
 
 
 def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=None):
-    """(strategies [(name, label)], {name: CloneTable}, dropout summary) for every compared strategy.
+    """(dropout summary, iterator of (name, label, CloneTable)) for every compared strategy.
 
-    ``learned_q``: the learned regime's cross-fitted Q-values, which strategies that override usual care only
-    when the expected gain is large need."""
+    Each strategy's clone table is built only when the iterator reaches it, so a caller that summarises one table
+    before taking the next holds one at a time. ``learned_q``: the learned regime's cross-fitted Q-values, which
+    strategies that override usual care only when the expected gain is large need."""
     frame, outcomes = survival_inputs(decisions, episodes, protocol)
     spec = protocol.survival
     timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
-    tables, strategies = {}, []
-    for entry in regime_targets(decisions, proba, recommended, protocol, learned_q):  # one target held at a time
-        name, label, target = entry["name"], entry["label"], entry["target"]
-        tables[name] = clone_censor_weight(
-            timeline,
-            None if name == USUAL_CARE else target,
-            name=name,
-            grace=spec.grace,
-            censoring_weights=ipcw,
-            truncate=None if spec.weight_truncation is None else tuple(spec.weight_truncation),
-        )
-        strategies.append((name, label))
-    return strategies, tables, dropout
+
+    def tables():
+        for entry in regime_targets(decisions, proba, recommended, protocol, learned_q):
+            name, label, target = entry["name"], entry["label"], entry["target"]
+            table = clone_censor_weight(
+                timeline,
+                None if name == USUAL_CARE else target,
+                name=name,
+                grace=spec.grace,
+                censoring_weights=ipcw,
+                truncate=None if spec.weight_truncation is None else tuple(spec.weight_truncation),
+            )
+            yield name, label, table
+
+    return dropout, tables()
 
 
-def strategy_curves(tables, grid, protocol) -> dict:
-    """{name: SurvivalCurve} on the grid; a strategy no clone follows gets an undefined (NaN) curve."""
+def strategy_curve(table, grid, protocol):
+    """The strategy's SurvivalCurve on the grid; a strategy no clone follows gets an undefined (NaN) curve."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return {name: survival_curve(table, grid, protocol.survival.horizon_days) for name, table in tables.items()}
+        return survival_curve(table, grid, protocol.survival.horizon_days)
 
 
 def survival_values(decisions, episodes, proba, recommended, protocol, learned_q=None) -> dict:
@@ -122,9 +125,9 @@ def survival_values(decisions, episodes, proba, recommended, protocol, learned_q
     The compact form a bootstrap replicate records: {name: {"survival": [...], "rmst": x,
     "risk_difference": [...], "rmst_difference": y}}.
     """
-    _, tables, _ = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
+    _, tables = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
     times = table_times(protocol)
-    curves = strategy_curves(tables, times, protocol)
+    curves = {name: strategy_curve(table, times, protocol) for name, _, table in tables}
     return {name: _point(curve, curves[USUAL_CARE], times) for name, curve in curves.items()}
 
 
@@ -140,24 +143,29 @@ def _point(curve, usual, times) -> dict:
 
 def survival_analysis(decisions, episodes, proba, recommended, protocol, learned_q=None) -> dict:
     """Everything survival.json holds except the bootstrap intervals (added by the stage)."""
-    strategies, tables, dropout = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
+    dropout, tables = clone_tables(decisions, episodes, proba, recommended, protocol, learned_q)
     grid = time_grid(decisions, protocol)
     times = table_times(protocol)
-    curves = strategy_curves(tables, grid, protocol)
     floor = minimum_reliable_ess(int(decisions["episode_id"].nunique()), protocol.evaluation)
-    rows = []
-    for name, label in strategies:
-        diagnostics = follow_diagnostics(tables[name], grid, floor, protocol.survival.horizon_days)
-        rows.append(
-            {
-                "name": name,
-                "label": label,
-                "clones": tables[name].to_dict(),
-                "curve": curves[name].to_dict(),
-                "at_times": _point(curves[name], curves[USUAL_CARE], times),
-                "diagnostics": diagnostics.to_dict(),
-            }
-        )
+    curves, summaries, kept = {}, [], {}
+    for name, label, table in tables:  # each table summarised, then released (kept only for the Cox model)
+        curves[name] = strategy_curve(table, grid, protocol)
+        diagnostics = follow_diagnostics(table, grid, floor, protocol.survival.horizon_days)
+        summaries.append((name, label, table.to_dict(), diagnostics.to_dict()))
+        if protocol.survival.cox:
+            kept[name] = table
+        del table
+    rows = [
+        {
+            "name": name,
+            "label": label,
+            "clones": clones,
+            "curve": curves[name].to_dict(),
+            "at_times": _point(curves[name], curves[USUAL_CARE], times),
+            "diagnostics": diagnostics,
+        }
+        for name, label, clones, diagnostics in summaries
+    ]
     out = {
         "horizon_days": float(protocol.survival.horizon_days),
         "grid": [float(t) for t in grid],
@@ -167,15 +175,9 @@ def survival_analysis(decisions, episodes, proba, recommended, protocol, learned
         "weight_truncation": protocol.survival.weight_truncation,
         "minimum_reliable_ess": floor,
         "strategies": rows,
-        "cox": _cox(tables, protocol),
+        "cox": weighted_cox(kept, USUAL_CARE).to_dict() if protocol.survival.cox else None,
     }
     return out
-
-
-def _cox(tables, protocol) -> dict | None:
-    if not protocol.survival.cox:
-        return None
-    return weighted_cox(tables, USUAL_CARE).to_dict()
 
 
 def survival_intervals(point: dict, replicates: list[dict], protocol: Protocol) -> dict:
