@@ -203,8 +203,16 @@ def test_a_regimes_values_do_not_depend_on_how_many_regimes_share_its_pass(setti
     kwargs = {"learned_folds": crossfit_folds(decisions, protocol), "learned_q": q}
     assert values_module.regimes_per_pass(len(decisions), len(protocol.actions)) > 20  # one pass here
     together = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
-    monkeypatch.setattr(values_module, "PASS_BYTES", 1)  # one regime per pass
-    assert values_module.regimes_per_pass(len(decisions), len(protocol.actions)) == 1
+    monkeypatch.setattr(values_module, "regimes_per_pass", lambda *shape: 1)  # one regime per pass
     apart = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
     assert len(together["regimes"]) > 10 and len(together["side_by_side"]) == 2
     assert apart == together
+
+
+def test_the_number_of_passes_stops_growing_with_the_records():
+    # the rule's purpose (no outside source): each pass repeats work in proportion to n, so above the memory
+    # budget the regimes per pass must stay constant, or the stage's time would grow as n squared
+    per_pass = [values_module.regimes_per_pass(n, 4, 21) for n in (12_000_000, 120_000_000, 1_200_000_000)]
+    assert per_pass[0] == per_pass[1] == per_pass[2] >= 3
+    assert values_module.regimes_per_pass(24_000, 4, 21) > 100  # a demo-sized study: every regime in one pass
+    assert values_module.regimes_per_pass(10**12, 50, 0) == 1  # never zero

@@ -74,11 +74,18 @@ class LoggedDecisions:
 PASS_BYTES = 512 * 2**20  # memory for the regimes of one outcome-model pass (targets, Q-values, targets of fit)
 
 
-def regimes_per_pass(n_decisions: int, n_actions: int) -> int:
-    """How many regimes one evaluation pass takes: as many as fit in :data:`PASS_BYTES` at about three (n, K)
-    float64 arrays each (the target, its Q-values and their backed-up values), at least one. Every regime of a
-    small study shares one pass; a million decisions take one at a time."""
-    return max(1, PASS_BYTES // (3 * 8 * max(1, n_decisions) * max(1, n_actions)))
+def regimes_per_pass(n_decisions: int, n_actions: int, n_features: int = 0) -> int:
+    """How many regimes one evaluation pass takes: each needs about three (n, K) float64 arrays (the target, its
+    Q-values and their backed-up values); a pass may give them :data:`PASS_BYTES` or, when more, what it holds
+    anyway for its design ([1, X] in step order and the fold's copy of X, about 2 × (p + 1) floats per
+    decision). At least one.
+
+    The second bound keeps the number of passes from growing with n: every pass repeats work in proportion to
+    n (the design, the sorting by step), so passes that shrank as n grew would make the stage's time grow as n².
+    Every regime of a small study shares one pass."""
+    per_regime = 3 * 8 * max(1, n_decisions) * max(1, n_actions)
+    design = 2 * 8 * max(1, n_decisions) * (n_features + 1)
+    return max(1, max(PASS_BYTES, design) // per_regime)
 
 
 def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
@@ -401,7 +408,9 @@ def evaluate_all(
     # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
     # (a regime's numbers do not depend on which regimes share its pass)
     pending = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q)
-    while chunk := list(itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions)))):
+    while chunk := list(
+        itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions), logged.X.shape[1]))
+    ):
         models = outcome_models(logged, chunk, protocol, learned_folds)
         regimes += [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(chunk, models)]
         if chunk[0]["name"] == "learned":
@@ -429,7 +438,9 @@ def _side_by_side(logged: LoggedDecisions, side_by_side: dict[str, np.ndarray], 
     as in :func:`evaluate_all`."""
     out = []
     pending = iter(side_by_side.items())
-    while chunk := list(itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions)))):
+    while chunk := list(
+        itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions), logged.X.shape[1]))
+    ):
         targets = [{"name": name, "target": one_hot(codes, len(protocol.actions))} for name, codes in chunk]
         models = outcome_models(logged, targets, protocol)
         out += [

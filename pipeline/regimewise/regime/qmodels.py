@@ -196,8 +196,9 @@ def evaluate_policies(
     position = np.empty(n, dtype=np.intp)
     position[order] = np.arange(n)
     X = np.asarray(X, dtype=float)
-    design = np.ones((n, X.shape[1] + 1))  # [1, X] with the rows in step order, built without a sorted copy of X
-    np.take(X, order, axis=0, out=design[:, 1:])
+    design = np.empty((n, X.shape[1] + 1))  # [1, X] with the rows in step order
+    design[:, 0] = 1.0
+    design[:, 1:] = X[order]
     action_sorted = action[order]
     q = [np.full((n, n_actions), np.nan) for _ in range(n_regimes)]  # per regime, so each is released alone
     failed: list = [None] * n_regimes
