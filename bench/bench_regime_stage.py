@@ -1,4 +1,5 @@
-"""Benchmark: the regime stage alone, on a cohort of N episodes x 12 decisions (issue 18), with output hashes.
+"""Benchmark: the regime stage (or the evaluate or survival stage) alone, on a cohort of N episodes x 12 decisions
+(issue 18), with output hashes.
 
 The cohort and protocol are those of ``bench_scale.py`` (the invented Harbourline simulator, seed 20261201, the
 demo protocol with horizon 12 and no replicates). The validate and behaviour stages run once into the work folder
@@ -8,7 +9,11 @@ wall time, the peak resident memory of the process (``getrusage``; the interpret
 SHA-256 of every output file, so that runs of two trees (``PYTHONPATH=<tree>/pipeline``) can be compared byte for
 byte. ``--profile FILE`` writes a cProfile of the call with a CPU-time clock.
 
+``--stage evaluate`` or ``--stage survival`` times that stage instead, on the regime stage's outputs of a first run
+kept in ``<workdir>/regime_inputs`` (no bootstrap shards: survival without intervals).
+
     OMP_NUM_THREADS=1 python bench/bench_regime_stage.py --episodes 100000 --workdir /tmp/regime100k --out after
+    OMP_NUM_THREADS=1 python bench/bench_regime_stage.py --workdir /tmp/regime100k --stage evaluate --out after
 
 Invented data, research use only, not medical advice.
 """
@@ -24,7 +29,13 @@ from pathlib import Path
 
 from bench_scale import write_cohort  # the same cohort and protocol (this folder is on sys.path)
 
-from regimewise.workflow.stages import behaviour_stage, regime_stage, validate_stage
+from regimewise.workflow.stages import (
+    behaviour_stage,
+    evaluate_stage,
+    regime_stage,
+    survival_stage,
+    validate_stage,
+)
 
 
 def stage_inputs(workdir: Path, episodes: int) -> dict:
@@ -52,21 +63,35 @@ def main() -> None:
     parser.add_argument("--workdir", type=Path, required=True, help="cohort and stage inputs (kept between runs)")
     parser.add_argument("--out", default="regime", help="folder under --workdir for this run's outputs")
     parser.add_argument("--profile", type=Path, help="write a cProfile (CPU-time clock) of the stage here")
+    parser.add_argument("--stage", choices=("regime", "evaluate", "survival"), default="regime")
     args = parser.parse_args()
     inputs = stage_inputs(args.workdir, args.episodes)
     out = args.workdir / args.out
     out.mkdir(parents=True, exist_ok=True)
-    outputs = {"table": str(out / "recommendations.parquet"), "regime": str(out / "regime.json")}
+    stage, outputs = regime_stage, {"table": str(out / "recommendations.parquet"), "regime": str(out / "regime.json")}
+    if args.stage != "regime":
+        learned = args.workdir / "regime_inputs"
+        inputs["table"] = str(learned / "recommendations.parquet")
+        if not Path(inputs["table"]).is_file():
+            learned.mkdir(exist_ok=True)
+            regime_stage(**inputs, regime=str(learned / "regime.json"))
+        if args.stage == "evaluate":
+            stage, outputs = evaluate_stage, {"values": str(out / "values.json")}
+        else:
+            inputs.update(episodes=str(args.workdir / "episodes_valid.parquet"), shards=[])
+            stage, outputs = survival_stage, {"survival": str(out / "survival.json")}
     wall, cpu = time.perf_counter(), time.process_time()
     if args.profile:
         profile = cProfile.Profile(time.process_time)
-        profile.runcall(regime_stage, **inputs, **outputs)
+        profile.runcall(stage, **inputs, **outputs)
         profile.dump_stats(args.profile)
     else:
-        regime_stage(**inputs, **outputs)
+        stage(**inputs, **outputs)
     wall, cpu = time.perf_counter() - wall, time.process_time() - cpu
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kilobytes on Linux
-    print(f"regime stage, {args.episodes} episodes x 12: cpu {cpu:.1f} s, wall {wall:.1f} s, peak rss {peak:.0f} MB")
+    print(
+        f"{args.stage} stage, {args.episodes} episodes x 12: cpu {cpu:.1f} s, wall {wall:.1f} s, peak rss {peak:.0f} MB"
+    )
     for path in sorted(out.iterdir()):
         print(hashlib.sha256(path.read_bytes()).hexdigest(), path.name)
 
