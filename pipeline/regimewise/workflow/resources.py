@@ -2,7 +2,7 @@
 
 A scheduler (SLURM through Snakemake's executor, or ``--resources mem_mb=...`` locally) needs honest requests:
 too little memory kills a job, too much keeps it queued. Each rule's peak resident memory and run time grow
-about linearly with the decisions in the records (measured by ``bench/bench_scale.py`` at 10k, 100k and 1M
+about linearly with the decisions in the records (measured by ``bench/bench_scale.py`` at 100k and 1M
 episodes of 12 decisions; figures in ``bench/RESULTS.md``), so a request is ``base + slope × millions of
 decisions``, with a safety factor, doubled on each retry (Snakemake's ``attempt``).
 
@@ -39,21 +39,21 @@ class StageCost:
 # Interpreter and libraries: about 300 MB before any data (measured: the bootstrap combine stage peaks there).
 BASE_MB = 400.0
 
-# Slopes from bench/bench_scale.py at 100,000 episodes x 12 decisions (1.2M decisions): peak RSS above the
-# interpreter's 300 MB, and CPU time, per million decisions, rounded up (bench/RESULTS.md, 2026-12-02). The
-# validate slope was confirmed at 12M decisions (3.8 GB peak). A shard's per-replicate time is that of the
-# behaviour, regime and evaluate stages together (about 2 CPU minutes per million decisions).
+# Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), one stage at a time:
+# peak RSS above the interpreter's 300 MB, and CPU time, per million decisions, rounded up to 100 MB and 0.1
+# minute (bench/RESULTS.md, 2026-12-03; evaluate and survival as measured again after their memory changes). A
+# shard's per-replicate time is at most that of the behaviour, regime and evaluate stages together (1.6 CPU
+# minutes per million decisions at 1M).
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.3),
-    "behaviour": StageCost(BASE_MB, 800.0, 0.5),
-    "regime": StageCost(BASE_MB, 1600.0, 1.5),
-    "evaluate": StageCost(BASE_MB, 1100.0, 0.8),
-    "describe": StageCost(BASE_MB, 700.0, 0.2),
+    "behaviour": StageCost(BASE_MB, 600.0, 0.3),
+    "regime": StageCost(BASE_MB, 800.0, 0.8),
+    "evaluate": StageCost(BASE_MB, 1200.0, 0.7),
+    "describe": StageCost(BASE_MB, 800.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
-    "sensitivity": StageCost(BASE_MB, 600.0, 0.4),
-    # not measured at scale yet: an estimate from the clone tables, about one row per decision per strategy
-    "survival": StageCost(BASE_MB, 2000.0, 1.0),
+    "sensitivity": StageCost(BASE_MB, 800.0, 0.2),
+    "survival": StageCost(BASE_MB, 800.0, 0.3),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     "report": StageCost(BASE_MB, 0.0, 0.0),
@@ -101,7 +101,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime", 12_000_000)
-    {'mem_mb': 29400, 'runtime': 27}
+    {'mem_mb': 15000, 'runtime': 15}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
