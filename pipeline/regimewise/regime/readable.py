@@ -73,9 +73,10 @@ TREE_ROWS = 250_000
 
 def fitting_rows(n: int, groups, max_rows: int, random_state: int) -> np.ndarray:
     """Row indices (ascending) the tree is fitted on: every row up to ``max_rows``; above it, the rows of
-    patients taken in a random order (``random_state``) while their decisions fit in ``max_rows`` (rows drawn
-    at random when ``groups`` is None)."""
-    rng = np.random.default_rng(random_state)
+    patients taken in a random order while their decisions fit in ``max_rows`` (rows drawn at random when
+    ``groups`` is None). The order comes from a stream of ``random_state`` apart from the one that deals the
+    patients into the out-of-fold folds, so the subset and the folds are drawn independently."""
+    rng = np.random.default_rng(np.random.SeedSequence(random_state, spawn_key=(1,)))
     if n <= max_rows:
         return np.arange(n)
     if groups is None:
