@@ -130,9 +130,13 @@ def regime_targets(
     for c in protocol.comparators:
         codes = c.action_codes(columns, len(frame), labels)
         yield {"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c}
-    for s in protocol_strategies(protocol.strategies):
-        proba = strategy_proba(s, recommended, behaviour_proba, learned_q)
-        yield {"name": s.name, "label": s.label, "target": proba, "strategy": s}
+    for s in protocol_strategies(protocol.strategies):  # built inline: no local name keeps the last one alive
+        yield {
+            "name": s.name,
+            "label": s.label,
+            "target": strategy_proba(s, recommended, behaviour_proba, learned_q),
+            "strategy": s,
+        }
 
 
 def _comparator_columns(frame: pd.DataFrame, protocol: Protocol) -> dict:

@@ -96,18 +96,21 @@ def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=No
     timeline = make_timeline(frame, outcomes, proba, spec.horizon_days)
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
 
-    def tables():
+    def tables():  # the table goes straight out: no local name keeps it alive while the next one is built
         for entry in regime_targets(decisions, proba, recommended, protocol, learned_q):
-            name, label, target = entry["name"], entry["label"], entry["target"]
-            table = clone_censor_weight(
-                timeline,
-                None if name == USUAL_CARE else target,
-                name=name,
-                grace=spec.grace,
-                censoring_weights=ipcw,
-                truncate=None if spec.weight_truncation is None else tuple(spec.weight_truncation),
+            name = entry["name"]
+            yield (
+                name,
+                entry["label"],
+                clone_censor_weight(
+                    timeline,
+                    None if name == USUAL_CARE else entry["target"],
+                    name=name,
+                    grace=spec.grace,
+                    censoring_weights=ipcw,
+                    truncate=None if spec.weight_truncation is None else tuple(spec.weight_truncation),
+                ),
             )
-            yield name, label, table
 
     return dropout, tables()
 
