@@ -110,8 +110,9 @@ def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = N
         pq.write_table(table, tmp, compression="zstd")
 
 
-def read_parquet(path: str | Path) -> pd.DataFrame:
-    return pd.read_parquet(path, engine="pyarrow")
+def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
+    """The table at ``path``; with ``columns``, only those columns are read from the file."""
+    return pd.read_parquet(path, engine="pyarrow", columns=columns)
 
 
 def require_file(path: str | Path, what: str) -> Path:

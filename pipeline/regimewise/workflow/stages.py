@@ -228,8 +228,9 @@ def no_regime_summary(p) -> dict:
 
 # ---------------------------------------------------------------------------------------------- evaluate
 def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarray:
-    """Action codes of one action-label column of the regime stage's recommendations table."""
-    return action_codes(recommendations.drop(columns="action").rename(columns={column: "action"}), labels)
+    """Action codes of one action-label column of the regime stage's recommendations table (that column only is
+    copied, not the table)."""
+    return action_codes(recommendations[[column]].rename(columns={column: "action"}), labels)
 
 
 def evaluated_q_columns(labels) -> list[str]:
@@ -276,7 +277,7 @@ def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
     outcomes = None if episodes is None else read_parquet(episodes)
     probabilities = read_probabilities(proba, p.action_labels)
     if p.analysis.learn_regime:
-        recommended = column_codes(read_parquet(table), "recommended", p.action_labels)
+        recommended = column_codes(read_parquet(table, ["recommended"]), "recommended", p.action_labels)
     else:
         recommended = named_strategy_codes(frame, p, p.headline_regime)
     write_json(
@@ -307,7 +308,7 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
     held = None
     if table is not None and p.evaluation.bootstrap_regime == "fixed" and p.analysis.learn_regime:
-        recommendations = read_parquet(table)
+        recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels)])
         held = HeldRegime(
             column_codes(recommendations, "evaluated", p.action_labels),
             recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float),
@@ -333,7 +334,7 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
     frame = read_parquet(decisions)
     recommended = None
     if p.analysis.learn_regime:
-        recommended = column_codes(read_parquet(table), "evaluated", p.action_labels)  # as the evaluation scores it
+        recommended = column_codes(read_parquet(table, ["evaluated"]), "evaluated", p.action_labels)  # as evaluated
     recommended = bounded_actions(frame, p, recommended)
     target = sensitivity_target(p)
     point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p, adoption=target["adoption"])
@@ -365,7 +366,7 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     probabilities = read_probabilities(proba, p.action_labels)
     recommended, learned_q = None, None  # without a learned regime: usual care and the named strategies only
     if p.analysis.learn_regime:
-        recommendations = read_parquet(table)
+        recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels)])
         recommended = column_codes(recommendations, "evaluated", p.action_labels)  # as the evaluation scores it
         learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
     out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p, learned_q)
