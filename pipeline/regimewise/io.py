@@ -115,6 +115,11 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     return pd.read_parquet(path, engine="pyarrow", columns=columns)
 
 
+def parquet_columns(path: str | Path) -> list[str]:
+    """The column names of the Parquet file at ``path``, read from its schema without reading any data."""
+    return list(pq.read_schema(path).names)
+
+
 def require_file(path: str | Path, what: str) -> Path:
     """The path, or a one-line error naming what is wrong (missing, a directory, not a regular file, unreadable)
     and the protocol setting to fix."""

@@ -29,7 +29,7 @@ from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
 from regimewise.errors import ERROR_PREFIX, DataValidationError, StatisticalWarning, UserInputError
 from regimewise.evaluation.values import evaluate_all, headline_estimator, named_strategy_codes
-from regimewise.io import read_json, read_parquet, write_json, write_parquet, write_text
+from regimewise.io import parquet_columns, read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.learning import (
@@ -245,14 +245,12 @@ def evaluate_stage(protocol, decisions, proba, table, values):
     if not p.analysis.learn_regime:  # usual care and the named strategies only
         write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p))
         return
-    recommendations = read_parquet(table)
+    side = [c for c in parquet_columns(table) if c.startswith("recommended_")]  # side-by-side regimes
+    recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels), *side])
     recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
     learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
-    variants = {
-        c.removeprefix("recommended_"): action_codes(recommendations.assign(action=recommendations[c]), p.action_labels)
-        for c in recommendations.columns
-        if c.startswith("recommended_")
-    }  # side-by-side regimes of the regime stage
+    variants = {c.removeprefix("recommended_"): column_codes(recommendations, c, p.action_labels) for c in side}
+    del recommendations
     write_json(
         values,
         evaluate_all(
