@@ -16,6 +16,7 @@ STREAMS = {
     "bootstrap": 6,  # (6, r): the resample of bootstrap replicate r
     "cross_fit": 7,  # patient folds of the cross-fitted evaluation of the learned regime
     "sweep": 9,  # (9, i, r): replicate r of sweep specification i
+    "readable_tree": 10,  # the patients a readable tree is fitted on, above its row cap
 }
 
 # What each stream draws and what its index selects (written to the appendix's seeds.json).
@@ -25,6 +26,7 @@ STREAM_USES = {
     "bootstrap": ("the resample of bootstrap replicate r", ("r",)),
     "cross_fit": ("patient folds of the cross-fitted evaluation of the learned regime", ()),
     "sweep": ("replicate r of sweep specification i", ("i", "r")),
+    "readable_tree": ("the patients the readable tree is fitted on when the decisions exceed its row cap", ()),
 }
 
 RETIRED = (3, 4, 5, 8)  # numbers used by earlier versions; never reused

@@ -4,11 +4,11 @@ A classification tree of depth at most 3 (Breiman et al. 1984; scikit-learn's ``
 fitted to the learned regime's recommended actions at the observed decisions, on the raw state values, so its
 splits read in clinical units. Its fidelity is the share of decisions where the tree's action equals the
 regime's (in-sample, and out-of-fold with folds by patient). On more than :data:`TREE_ROWS` decisions the trees
-are fitted on the decisions of a random subset of patients (fixed seed) of about that size, and the fidelity, the
-rules' counts and the table still cover every decision. Each leaf becomes one rule in plain words. A table
-gives the most common recommendation across bins of the two states the tree relies on most (impurity
-importance). Distilling a policy into a tree for interpretation follows the model-extraction idea of Bastani,
-Kim & Bastani (2017).
+are fitted on the decisions of a random subset of patients (drawn from the protocol seed's ``readable_tree``
+stream) of about that size; the fidelity, the rules' counts and the table still cover every decision. Each leaf
+becomes one rule in plain words. A table gives the most common recommendation across bins of the two states the
+tree relies on most (impurity importance). Distilling a policy into a tree for interpretation follows the
+model-extraction idea of Bastani, Kim & Bastani (2017).
 
 The tree is a summary only: the learned regime (not the tree) is what was evaluated. Research use only, not
 medical advice; decisions stay with licensed clinicians under local law and ethics approval.
@@ -71,14 +71,13 @@ class ReadableRegime:
 TREE_ROWS = 250_000
 
 
-def fitting_rows(n: int, groups, max_rows: int, random_state: int) -> np.ndarray:
+def fitting_rows(n: int, groups, max_rows: int, seed: int) -> np.ndarray:
     """Row indices (ascending) the tree is fitted on: every row up to ``max_rows``; above it, the rows of
-    patients taken in a random order while their decisions fit in ``max_rows`` (rows drawn at random when
-    ``groups`` is None). The order comes from a stream of ``random_state`` apart from the one that deals the
-    patients into the out-of-fold folds, so the subset and the folds are drawn independently."""
-    rng = np.random.default_rng(np.random.SeedSequence(random_state, spawn_key=(1,)))
+    patients taken in a random order (``seed``) while their decisions fit in ``max_rows`` (rows drawn at random
+    when ``groups`` is None)."""
     if n <= max_rows:
         return np.arange(n)
+    rng = np.random.default_rng(seed)
     if groups is None:
         return np.sort(rng.choice(n, size=max_rows, replace=False))
     codes = np.unique(np.asarray(groups), return_inverse=True)[1]
@@ -216,6 +215,7 @@ def distill_regime(
     n_folds=5,
     random_state=0,
     max_rows=TREE_ROWS,
+    subset_seed=0,
 ) -> ReadableRegime:
     """Distil a regime's recommendations into a shallow tree and a two-state table.
 
@@ -233,6 +233,8 @@ def distill_regime(
     random_state : int
     max_rows : int, default :data:`TREE_ROWS`
         Most decisions the trees are fitted on (:func:`fitting_rows`); fidelity is measured on all of them.
+    subset_seed : int
+        Seed of the patients drawn above ``max_rows`` (the stage passes the protocol's ``readable_tree`` stream).
     """
     if not 1 <= max_depth <= 3:
         raise UserInputError(f"max_depth must be 1, 2 or 3 for a readable tree, got {max_depth!r}.")
@@ -241,7 +243,7 @@ def distill_regime(
     X = frame[names].to_numpy(dtype=float)
     recommended = np.asarray(recommended, dtype=np.int64)
     make = lambda: DecisionTreeClassifier(max_depth=max_depth, random_state=random_state)  # noqa: E731
-    fit = fitting_rows(len(recommended), groups, max_rows, random_state)
+    fit = fitting_rows(len(recommended), groups, max_rows, subset_seed)
     tree = make().fit(X[fit], recommended[fit])
     fidelity = float(np.mean(tree.predict(X) == recommended))
     oof = None

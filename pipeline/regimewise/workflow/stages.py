@@ -24,6 +24,7 @@ from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
 from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
 from regimewise.core.features import QFeatures, StateScaler, action_codes
+from regimewise.core.seeds import stream_ints
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
@@ -191,6 +192,7 @@ def regime_stage(protocol, decisions, proba, table, regime):
         p.action_labels,
         groups=frame["patient_id"].to_numpy(),
         random_state=0,
+        subset_seed=stream_ints(p.seed, "readable_tree")[0],
     ).to_dict()  # the states, then the missing indicators the models use
     write_json(regime, summary)
 
