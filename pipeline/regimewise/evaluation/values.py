@@ -88,6 +88,16 @@ def regimes_per_pass(n_decisions: int, n_actions: int, n_features: int = 0) -> i
     return max(1, max(PASS_BYTES, design) // per_regime)
 
 
+def _passes(regimes, logged: LoggedDecisions) -> Iterator[list]:
+    """The items of ``regimes`` in lists of :func:`regimes_per_pass` for these decisions, each taken from the
+    iterable only when the previous list is done with."""
+    size = regimes_per_pass(len(logged.step), logged.behaviour_proba.shape[1], logged.X.shape[1])
+    pending = iter(regimes)
+    while chunk := list(itertools.islice(pending, size)):
+        yield chunk
+        del chunk  # released before the next list is built, once the caller has let go of it too
+
+
 def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
     out = np.zeros((len(codes), n_actions))
     out[np.arange(len(codes)), codes] = 1.0
@@ -411,10 +421,7 @@ def evaluate_all(
     regimes, histograms = [], None
     # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
     # (a regime's numbers do not depend on which regimes share its pass)
-    pending = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q)
-    while chunk := list(
-        itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions), logged.X.shape[1]))
-    ):
+    for chunk in _passes(regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q), logged):
         models = outcome_models(logged, chunk, protocol, learned_folds)
         regimes += [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(chunk, models)]
         if chunk[0]["name"] == "learned":
@@ -441,10 +448,7 @@ def _side_by_side(logged: LoggedDecisions, side_by_side: dict[str, np.ndarray], 
     """Every estimator for each safeguard comparison regime, their outcome models fitted on all records in passes
     as in :func:`evaluate_all`."""
     out = []
-    pending = iter(side_by_side.items())
-    while chunk := list(
-        itertools.islice(pending, regimes_per_pass(len(logged.step), len(protocol.actions), logged.X.shape[1]))
-    ):
+    for chunk in _passes(side_by_side.items(), logged):
         targets = [{"name": name, "target": one_hot(codes, len(protocol.actions))} for name, codes in chunk]
         models = outcome_models(logged, targets, protocol)
         out += [
