@@ -58,6 +58,7 @@ from regimewise.errors import ERROR_PREFIX, OS_REASONS, DataValidationError, Use
 from regimewise.io import require_file, write_bytes, write_json, write_text
 from regimewise.protocol.loading import load_protocol, schema_text
 from regimewise.workflow.progress import WORKFLOW_LOG, Progress, warning_line
+from regimewise.workflow.resources import machine_memory_mb
 
 try:  # POSIX advisory locks; where they are missing a run cannot tell a dead run's lock from a live one's
     import fcntl
@@ -162,12 +163,20 @@ def _add_appendix_commands(command):
         "--rerun-into", metavar="FOLDER", help="keep the rerun in FOLDER (default: a temporary folder, removed)"
     )
     verify.add_argument("--cores", type=int, default=2, help="cores the rerun may use (default: %(default)s)")
+    verify.add_argument("--memory", type=int, metavar="MB", help=MEMORY_HELP)
     verify.add_argument("--quiet", action="store_true", help="no line per finished stage of the rerun (default: off)")
     for name, (purpose, positionals, out_help) in READING_COMMANDS.items():
         reader = command(name, purpose)
         for dest, metavar, words in positionals:
             reader.add_argument(dest, metavar=metavar, help=f"{words} (required)")
         reader.add_argument("--out", metavar="FILE", help=out_help)
+
+
+MEMORY_HELP = (
+    "memory in MB the run's jobs may hold together on this machine: a stage starts only when its request (scaled "
+    "from the number of decisions) fits beside those running, and a stage asking for more runs alone with this "
+    "much; ignored with --profile (default: this machine's memory, or its container's limit when lower)"
+)
 
 
 # The commands that only read finished runs: purpose, positional arguments (name, metavar, words), --out's help.
@@ -188,6 +197,7 @@ READING_COMMANDS = {
 def _add_run_options(parser, default_out):
     parser.add_argument("--out", help=f"results folder (default: {default_out})")
     parser.add_argument("--cores", type=int, default=2, help="cores Snakemake may use (default: %(default)s)")
+    parser.add_argument("--memory", type=int, metavar="MB", help=MEMORY_HELP)
     parser.add_argument(
         "--quiet",
         action="store_true",
@@ -419,6 +429,9 @@ def _run_workflow(protocol: Path, args, record: dict) -> Path:
         )
     if args.cores < 1:
         raise UserInputError("--cores must be at least 1")
+    memory = getattr(args, "memory", None)
+    if memory is not None and memory < 1:
+        raise UserInputError("--memory must be at least 1 (MB)")
     pf = load_protocol(protocol)
     require_file(pf.decisions_path, "decisions")
     if pf.episodes_path is not None:
@@ -437,8 +450,11 @@ def _run_workflow(protocol: Path, args, record: dict) -> Path:
     ]
     config = ["--configfile", str(_write_workflow_config(out, pf.path, record))]
     profile = _profile_folder(getattr(args, "profile", None))
-    command = [*snakemake, "--cores", str(args.cores), "--rerun-incomplete", *profile, *config]
+    memory = None if profile else (memory if memory is not None else machine_memory_mb())
+    limit = [] if memory is None else ["--resources", f"mem_mb={memory}"]
+    command = [*snakemake, "--cores", str(args.cores), *limit, "--rerun-incomplete", *profile, *config]
     where = f"with {args.cores} core(s)" if not profile else f"through the profile {profile[1]}"
+    where += f" and {memory:,} MB of memory" if memory is not None else ""
     with _exclusive_run(out) as lock:
         print(f"regimewise {__version__}: running {pf.path.name} into {out} {where}")
         print(TERMINAL_CAUTION)

@@ -6,6 +6,12 @@ about linearly with the decisions in the records (measured by ``bench/bench_scal
 episodes of 12 decisions; figures in ``bench/RESULTS.md``), so a request is ``base + slope × millions of
 decisions``, with a safety factor, doubled on each retry (Snakemake's ``attempt``).
 
+On one machine, ``regimewise run`` and ``demo`` hand Snakemake ``--resources mem_mb=`` with the memory this
+process may use (:func:`machine_memory_mb`, or ``--memory``): Snakemake then starts a job only when its request
+fits beside the running jobs' requests, so two heavy stages of a large cohort do not run together and exhaust the
+machine, and a job asking for more than the whole is given the whole (Snakemake 9 lowers such a request to the
+limit; it runs alone).
+
 The number of decisions is the ``rows_kept`` of ``validate/validation.json`` once validation has run (Snakemake
 re-evaluates resource functions just before it schedules a job); before that (the validate rule itself, or a
 dry run), it is estimated from the records file's size, erring high.
@@ -18,6 +24,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -109,3 +116,26 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     memory = (cost.base_mb + cost.mb_per_million * millions) * scale
     minutes = (cost.minutes_per_million + cost.per_replicate_minutes * replicates) * millions * scale
     return {"mem_mb": int(math.ceil(memory / 100) * 100), "runtime": max(MIN_RUNTIME_MINUTES, int(math.ceil(minutes)))}
+
+
+# Control-group memory limits (containers, batch-system slots): version 2, then version 1. An unlimited group
+# reads "max" (v2) or a number larger than the machine (v1).
+CGROUP_LIMITS = (Path("/sys/fs/cgroup/memory.max"), Path("/sys/fs/cgroup/memory/memory.limit_in_bytes"))
+
+
+def machine_memory_mb(limits=CGROUP_LIMITS) -> int | None:
+    """Memory this process may use, in MB: the machine's physical memory, or a control group's limit when that
+    is lower (a container or a batch-system slot). None when the system reports neither (then no limit is set).
+    """
+    found = []
+    try:
+        found.append(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
+    except (AttributeError, ValueError, OSError):
+        pass  # a system without sysconf (Windows) or without these names
+    for path in limits:
+        try:
+            found.append(int(Path(path).read_text(encoding="ascii").strip()))
+        except (OSError, ValueError):
+            pass  # no such group, or "max": no limit there
+    found = [value for value in found if value > 0]
+    return min(found) // 10**6 if found else None
