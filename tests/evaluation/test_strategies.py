@@ -20,6 +20,7 @@ from regimewise.evaluation.strategies import (
     partial_adoption_proba,
     share_changed,
 )
+from regimewise.regime import qmodels
 from regimewise.regime.qmodels import evaluate_policies
 
 MDP = sm.make_mdp()
@@ -162,3 +163,22 @@ def test_batched_evaluation_equals_one_fitted_q_evaluation_per_regime():
             X, log["step"], log["action"], log["reward"], log["episode"], target
         )
         np.testing.assert_allclose(q, single.q_values(X, log["step"]), rtol=0, atol=1e-10)
+
+
+def test_a_fold_given_by_its_rows_of_x_equals_the_fold_copied_out(monkeypatch):
+    # source: the same function on X[rows] copied out (the rows gathered in blocks smaller than the fold, so
+    # several blocks are joined); FittedQEvaluation, the test above's reference, on the fold's copy agrees too
+    monkeypatch.setattr(qmodels, "GATHER_ROWS", 37)
+    log = sm.sample_episodes(MDP, 600, seed=13)
+    X = np.hstack([log["X"], np.random.default_rng(1).standard_normal((log["X"].shape[0], 2))])
+    fold = np.isin(log["episode"], np.flatnonzero(np.random.default_rng(2).random(600) < 0.5))
+    episode = np.unique(log["episode"][fold], return_inverse=True)[1]
+    targets = [sm.rows_proba(t, log)[fold] for t in strategy_tables().values()]
+    common = dict(horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5)
+    arrays = (log["step"][fold], log["action"][fold], log["reward"][fold], episode, targets)
+    by_rows = evaluate_policies(X, *arrays, x_rows=np.flatnonzero(fold), **common)
+    copied = evaluate_policies(X[fold], *arrays, **common)
+    for q_rows, q_copy, target in zip(by_rows, copied, targets):
+        assert np.array_equal(q_rows, q_copy, equal_nan=True)
+        single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(X[fold], *arrays[:4], target)
+        np.testing.assert_allclose(q_rows, single.q_values(X[fold], arrays[0]), rtol=0, atol=1e-10)

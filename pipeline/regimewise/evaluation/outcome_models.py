@@ -57,7 +57,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray | s
     rows only, or the error that stopped one."""
     episode = logged.episode if isinstance(rows, slice) else np.unique(logged.episode[rows], return_inverse=True)[1]
     fitted = evaluate_policies(
-        logged.X[rows],
+        logged.X,  # the fold's rows are gathered into the pass's design, not copied out of X first
         logged.step[rows],
         logged.action[rows],
         logged.reward[rows],
@@ -69,6 +69,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray | s
         alpha=protocol.evaluation.fqe_ridge_alpha,
         action_labels=protocol.action_labels,
         slopes=logged.slopes,
+        x_rows=None if isinstance(rows, slice) else np.flatnonzero(rows),
     )
     out = []
     taken = logged.action[rows]

@@ -167,8 +167,24 @@ def _backward_induction(
     return coef
 
 
+GATHER_ROWS = 65_536  # rows of the design gathered at a time: no temporary copy of the whole of X
+
+
 def evaluate_policies(
-    X, step, action, reward, episode, targets, *, horizon, n_actions, gamma, alpha, action_labels=None, slopes=SEPARATE
+    X,
+    step,
+    action,
+    reward,
+    episode,
+    targets,
+    *,
+    horizon,
+    n_actions,
+    gamma,
+    alpha,
+    action_labels=None,
+    slopes=SEPARATE,
+    x_rows=None,
 ):
     """Fitted-Q evaluation of several regimes on the same decisions at once (Le, Voloshin & Yue 2019).
 
@@ -177,6 +193,8 @@ def evaluate_policies(
     same design for every regime, so it is solved once with one right-hand side per regime. Rows sorted by
     episode then step, as everywhere. ``action_labels`` name the actions in the errors; ``slopes``
     (:class:`regimewise.core.terms.ActionSlopes`) shares the slopes across actions in one fit per step.
+    ``x_rows`` (integer positions, optional): the rows of ``X`` that these decisions are, when ``X`` holds more
+    (a fold's decisions, without copying the fold's part of X); the other arrays hold these decisions only.
 
     Returns
     -------
@@ -196,9 +214,11 @@ def evaluate_policies(
     position = np.empty(n, dtype=np.intp)
     position[order] = np.arange(n)
     X = np.asarray(X, dtype=float)
+    source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X behind each row of the design
     design = np.empty((n, X.shape[1] + 1))  # [1, X] with the rows in step order
     design[:, 0] = 1.0
-    design[:, 1:] = X[order]
+    for start in range(0, n, GATHER_ROWS):  # in blocks: the whole X[source] would be a second copy of the design
+        design[start : start + GATHER_ROWS, 1:] = X[source[start : start + GATHER_ROWS]]
     action_sorted = action[order]
     q = [np.full((n, n_actions), np.nan) for _ in range(n_regimes)]  # per regime, so each is released alone
     failed: list = [None] * n_regimes
