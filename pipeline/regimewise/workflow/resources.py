@@ -46,21 +46,21 @@ class StageCost:
 # Interpreter and libraries: about 300 MB before any data (measured: the bootstrap combine stage peaks there).
 BASE_MB = 400.0
 
-# Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), one stage at a time:
-# peak RSS above the interpreter's 300 MB, and CPU time, per million decisions, rounded up to 100 MB and 0.1
-# minute (bench/RESULTS.md, 2026-12-03; evaluate and survival as measured again after their memory changes). A
-# shard's per-replicate time is at most that of the behaviour, regime and evaluate stages together (1.6 CPU
-# minutes per million decisions at 1M).
+# Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), the whole workflow on
+# 2 cores with its stages run one at a time: peak RSS above the interpreter's 300 MB, and CPU time, per million
+# decisions, rounded up to 100 MB and 0.1 minute (bench/RESULTS.md, 2026-12-03, at c785de4). A shard's
+# per-replicate time is at most that of the behaviour, regime and evaluate stages together (1.2 CPU minutes per
+# million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin.
 STAGE_COSTS = {
-    "validate": StageCost(BASE_MB, 400.0, 0.3),
-    "behaviour": StageCost(BASE_MB, 600.0, 0.3),
-    "regime": StageCost(BASE_MB, 800.0, 0.8),
-    "evaluate": StageCost(BASE_MB, 1200.0, 0.7),
-    "describe": StageCost(BASE_MB, 800.0, 0.1),
+    "validate": StageCost(BASE_MB, 400.0, 0.2),
+    "behaviour": StageCost(BASE_MB, 600.0, 0.2),
+    "regime": StageCost(BASE_MB, 800.0, 0.5),
+    "evaluate": StageCost(BASE_MB, 1000.0, 0.5),
+    "describe": StageCost(BASE_MB, 300.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
-    "sensitivity": StageCost(BASE_MB, 800.0, 0.2),
-    "survival": StageCost(BASE_MB, 800.0, 0.3),
+    "sensitivity": StageCost(BASE_MB, 400.0, 0.2),
+    "survival": StageCost(BASE_MB, 500.0, 0.2),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     "report": StageCost(BASE_MB, 0.0, 0.0),
@@ -108,7 +108,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime", 12_000_000)
-    {'mem_mb': 15000, 'runtime': 15}
+    {'mem_mb': 15000, 'runtime': 9}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
