@@ -175,7 +175,8 @@ def _add_appendix_commands(command):
 MEMORY_HELP = (
     "memory in MB the run's jobs may hold together on this machine: a stage starts only when its request (scaled "
     "from the number of decisions) fits beside those running, and a stage asking for more runs alone with this "
-    "much; ignored with --profile (default: this machine's memory, or its container's limit when lower)"
+    "much; ignored with --profile (default: this machine's memory, or the limit of its container or batch job "
+    "when lower)"
 )
 
 

@@ -42,6 +42,24 @@ def test_a_lower_container_limit_wins_and_unlimited_or_unreadable_ones_are_ignor
     assert resources.machine_memory_mb(limits=(huge,)) == physical
 
 
+def test_group_limits_are_found_from_the_process_groups_and_their_ancestors(tmp_path):
+    # the layout of cgroup(7) (Linux manual): /proc/self/cgroup lines "ID:CONTROLLERS:PATH", version 2 with ID 0
+    # and no controllers; a group's limit file sits in its folder under the hierarchy's mount point
+    proc = tmp_path / "cgroup"
+    proc.write_text("0::/slot/job1\n4:memory:/a/b\n2:cpu,cpuacct:/c\n")
+    root = tmp_path / "fs"
+    files = resources.cgroup_limit_files(proc, root)
+    v2 = [root / g / "memory.max" for g in ("slot/job1", "slot", "")]
+    v1 = [root / "memory" / g / "memory.limit_in_bytes" for g in ("a/b", "a", "")]
+    assert set(v2 + [root / "unified" / g / "memory.max" for g in ("slot/job1", "slot", "")] + v1) == set(files)
+    for path, text in ((v2[0], "max"), (v2[1], f"{2 * 10**9}"), (v1[1], f"{3 * 10**9}")):
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(text + "\n")
+    physical = resources.machine_memory_mb(limits=())
+    assert resources.machine_memory_mb(limits=files) == min(physical, 2000)  # the job slot's parent binds
+    assert resources.cgroup_limit_files(tmp_path / "absent", root) == []
+
+
 # ---------------------------------------------------------------------------------------------- the command
 def _command(tmp_path, monkeypatch, *options) -> list[str]:
     seen = []
@@ -89,17 +107,17 @@ rule all:
 rule a:
     output: "a.txt"
     resources: mem_mb=600
-    shell: "{python} span.py {{output}}"
+    shell: "'{python}' span.py {{output}}"
 
 rule b:
     output: "b.txt"
     resources: mem_mb=lambda wildcards, attempt: 600
-    shell: "{python} span.py {{output}}"
+    shell: "'{python}' span.py {{output}}"
 
 rule big:
     output: "big.txt"
     resources: mem_mb=5000
-    shell: "{python} span.py {{output}}"
+    shell: "'{python}' span.py {{output}}"
 """
 
 

@@ -118,24 +118,46 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     return {"mem_mb": int(math.ceil(memory / 100) * 100), "runtime": max(MIN_RUNTIME_MINUTES, int(math.ceil(minutes)))}
 
 
-# Control-group memory limits (containers, batch-system slots): version 2, then version 1. An unlimited group
-# reads "max" (v2) or a number larger than the machine (v1).
-CGROUP_LIMITS = (Path("/sys/fs/cgroup/memory.max"), Path("/sys/fs/cgroup/memory/memory.limit_in_bytes"))
+# Control groups (containers, batch-system job slots, systemd scopes) can hold a process to less memory than the
+# machine has. Version 2 writes a group's limit in memory.max ("max": none); version 1 in the memory controller's
+# memory.limit_in_bytes (a number beyond the machine: none). A group's ancestors limit it too.
+CGROUP_ROOT = Path("/sys/fs/cgroup")
+PROC_CGROUP = Path("/proc/self/cgroup")
 
 
-def machine_memory_mb(limits=CGROUP_LIMITS) -> int | None:
-    """Memory this process may use, in MB: the machine's physical memory, or a control group's limit when that
-    is lower (a container or a batch-system slot). None when the system reports neither (then no limit is set).
+def cgroup_limit_files(proc_cgroup: Path = PROC_CGROUP, root: Path = CGROUP_ROOT) -> list[Path]:
+    """The files that may hold a memory limit of this process's control groups, from ``/proc/self/cgroup``: the
+    group of each hierarchy (version 2 ``0::PATH``, version 1 ``N:memory:PATH``) and every ancestor of it. Files
+    that do not exist are listed too (the caller skips them); none when ``proc_cgroup`` cannot be read."""
+    try:
+        lines = Path(proc_cgroup).read_text(encoding="ascii").splitlines()
+    except OSError:
+        return []
+    files = []
+    for line in lines:
+        _, controllers, path = line.split(":", 2) if line.count(":") >= 2 else ("", "", "")
+        groups = [Path(path.lstrip("/")), *Path(path.lstrip("/")).parents] if path.startswith("/") else []
+        if controllers == "":  # version 2 (also mounted at unified/ on hybrid systems)
+            files += [base / g / "memory.max" for g in groups for base in (root, root / "unified")]
+        elif "memory" in controllers.split(","):
+            files += [root / "memory" / g / "memory.limit_in_bytes" for g in groups]
+    return files
+
+
+def machine_memory_mb(limits=None) -> int | None:
+    """Memory this process may use, in MB: the machine's physical memory, or the lowest limit of its control
+    groups when that is lower (a container, a batch-system job slot). ``limits``: the files to read for group
+    limits (default :func:`cgroup_limit_files`). None when the system reports neither (then no limit is set).
     """
     found = []
     try:
         found.append(os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES"))
     except (AttributeError, ValueError, OSError):
         pass  # a system without sysconf (Windows) or without these names
-    for path in limits:
+    for path in cgroup_limit_files() if limits is None else limits:
         try:
             found.append(int(Path(path).read_text(encoding="ascii").strip()))
         except (OSError, ValueError):
-            pass  # no such group, or "max": no limit there
+            pass  # no such file, or "max": no limit there
     found = [value for value in found if value > 0]
     return min(found) // 10**6 if found else None
