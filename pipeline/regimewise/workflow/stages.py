@@ -240,6 +240,14 @@ def evaluated_q_columns(labels) -> list[str]:
     return [f"evaluated_q_{label}" for label in labels]
 
 
+def evaluated_regime(table, labels) -> tuple[np.ndarray, np.ndarray]:
+    """The cross-fitted regime as the evaluation scores it, read from the regime stage's table (its columns only):
+    action codes (n,) and Q-values (n, K)."""
+    recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(labels)])
+    q = recommendations[evaluated_q_columns(labels)].to_numpy(dtype=float)
+    return column_codes(recommendations, "evaluated", labels), q
+
+
 def evaluate_stage(protocol, decisions, proba, table, values):
     """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator."""
     p = load_protocol(protocol).protocol
@@ -247,12 +255,11 @@ def evaluate_stage(protocol, decisions, proba, table, values):
     if not p.analysis.learn_regime:  # usual care and the named strategies only
         write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p))
         return
+    recommended, learned_q = evaluated_regime(table, p.action_labels)  # cross-fitted (regime stage)
     side = [c for c in parquet_columns(table) if c.startswith("recommended_")]  # side-by-side regimes
-    recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels), *side])
-    recommended = column_codes(recommendations, "evaluated", p.action_labels)  # cross-fitted (regime stage)
-    learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
-    variants = {c.removeprefix("recommended_"): column_codes(recommendations, c, p.action_labels) for c in side}
-    del recommendations
+    variants = {
+        c.removeprefix("recommended_"): column_codes(read_parquet(table, [c]), c, p.action_labels) for c in side
+    }
     write_json(
         values,
         evaluate_all(
@@ -308,12 +315,7 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
     held = None
     if table is not None and p.evaluation.bootstrap_regime == "fixed" and p.analysis.learn_regime:
-        recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels)])
-        held = HeldRegime(
-            column_codes(recommendations, "evaluated", p.action_labels),
-            recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float),
-            crossfit_folds(frame, p),
-        )
+        held = HeldRegime(*evaluated_regime(table, p.action_labels), crossfit_folds(frame, p))
     with threadpool_limits(limits=1):
         out = run_shard(frame, p, int(shard), episodes=outcomes, held=held)
     write_json(replicates, out)
@@ -366,9 +368,7 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     probabilities = read_probabilities(proba, p.action_labels)
     recommended, learned_q = None, None  # without a learned regime: usual care and the named strategies only
     if p.analysis.learn_regime:
-        recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(p.action_labels)])
-        recommended = column_codes(recommendations, "evaluated", p.action_labels)  # as the evaluation scores it
-        learned_q = recommendations[evaluated_q_columns(p.action_labels)].to_numpy(dtype=float)
+        recommended, learned_q = evaluated_regime(table, p.action_labels)  # as the evaluation scores it
     out = survival_analysis(frame, read_parquet(episodes), probabilities, recommended, p, learned_q)
     replicates = [r["survival"] for path in shards for r in read_json(path)["replicates"] if "survival" in r]
     out["intervals"] = survival_intervals(out, replicates, p)
