@@ -14,7 +14,8 @@ supported. Target of issue 13: coverage ≥ 93% over ≥ 100 cohorts of 3,000 ep
 strategy is supported by. With C cohorts a coverage near 95% is known to about ±sqrt(0.05·0.95/C).
 
 The issue's size (100 cohorts × 3,000 episodes × 200 replicates) takes many hours on 2 cores; ``--results`` (a
-JSON-lines file) lets a stopped run resume. Invented simulator, research use only, not medical advice.
+JSON-lines file) lets a stopped run resume; it also keeps each cohort's replicate values, so the percentile, basic and
+normal intervals are compared on the same replicates after the main table. Invented simulator, research use only, not medical advice.
 
     python bench/bench_strategy_coverage.py --cohorts 100 --episodes 3000 --replicates 200 --results cov.jsonl
 """
@@ -28,12 +29,13 @@ import time
 import warnings
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
+from statistics import NormalDist
 
 import numpy as np
 from bench_strategies import simulator_strategy
 from threadpoolctl import threadpool_limits
 
-from regimewise.bootstrap.intervals import combine
+from regimewise.bootstrap.intervals import combine, percentile_interval
 from regimewise.bootstrap.replicates import learn_and_evaluate, run_shard
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
@@ -102,7 +104,8 @@ def one_cohort(task):
             pf, simulate_cohort(args.episodes, seed=seed, confounding_strength=args.strength).decisions
         )
         values, _ = learn_and_evaluate(decisions, p, strict=True)
-        intervals = combine(values, [run_shard(decisions, p, 0)], p)
+        shard = run_shard(decisions, p, 0)
+        intervals = combine(values, [shard], p)
         folds = crossfit_folds(decisions, p)
         first = decisions["step"].to_numpy() == 0
         usual = true_returns("usual_care", n=args.truth_episodes, seed=seed + 1, confounding_strength=args.strength)
@@ -136,8 +139,20 @@ def one_cohort(task):
             "value_interval": [v["low"], v["high"]],
             "difference": c["difference"],
             "contrast_interval": [c["low"], c["high"]],
+            # each replicate's value and contrast (None where a replicate failed), so that interval methods can be
+            # compared afterwards on the same replicates (summarise)
+            "replicate_values": [r["values"][s.name][est] if "values" in r else None for r in shard["replicates"]],
+            "replicate_contrasts": [
+                _difference(r["values"], s.name, "usual_care", est) if "values" in r else None
+                for r in shard["replicates"]
+            ],
         }
     return out
+
+
+def _difference(values, a, b, est):
+    x, y = values[a][est], values[b][est]
+    return None if x is None or y is None else x - y
 
 
 def summarise(results):
@@ -169,6 +184,50 @@ def summarise(results):
             )
 
 
+def method_limits(estimate, draws, method, level=0.95):
+    """(low, high) of one interval method from stored replicates: the project's percentile and basic intervals
+    (regimewise.bootstrap.intervals), or the normal interval θ̂ ± z·SE with the bootstrap SE (Efron & Tibshirani
+    1993, §13.2)."""
+    draws = np.asarray([d for d in draws if d is not None], dtype=float)
+    if estimate is None or draws.size < 2:
+        return np.nan, np.nan
+    if method == "normal":
+        half = NormalDist().inv_cdf((1 + level) / 2) * np.std(draws, ddof=1)
+        return estimate - half, estimate + half
+    low, high = percentile_interval(draws, level)
+    if method == "basic":
+        return 2 * estimate - high, 2 * estimate - low
+    return low, high
+
+
+def summarise_methods(results):
+    """Coverage of each interval method on the same stored replicates, over all cohorts and where supported."""
+    rows = [r for r in results if "replicate_values" in next(iter(r["estimators"].values()))]
+    if not rows:
+        return
+    print(f"\ninterval methods on the same replicates ({len(rows)} cohorts that stored them):")
+    print(f"{'estimator':9s} {'target':8s} {'method':10s} {'coverage':>8s} {'where supported':>18s} {'width':>7s}")
+    for est in rows[0]["estimators"]:
+        is_supported = np.array([r["estimators"][est]["verdict"] == "supported" for r in rows])
+        for target, key, draws in (
+            ("value", "value", "replicate_values"),
+            ("contrast", "difference", "replicate_contrasts"),
+        ):
+            truth = np.array([r[f"truth_{target}"] for r in rows])
+            for method in ("percentile", "basic", "normal"):
+                limits = np.array(
+                    [method_limits(r["estimators"][est][key], r["estimators"][est][draws], method) for r in rows]
+                )
+                hits = (limits[:, 0] <= truth) & (truth <= limits[:, 1])
+                where = (
+                    f"{100 * np.mean(hits[is_supported]):.1f}% of {is_supported.sum()}" if is_supported.any() else "-"
+                )
+                print(
+                    f"{est:9s} {target:8s} {method:10s} {100 * np.mean(hits):7.1f}% {where:>18s} "
+                    f"{np.nanmean(limits[:, 1] - limits[:, 0]):7.3f}"
+                )
+
+
 def main(argv=None) -> None:
     args = parse(argv)
     os.environ.setdefault("OMP_NUM_THREADS", "1")
@@ -193,6 +252,7 @@ def main(argv=None) -> None:
         f"{time.perf_counter() - start:.0f} s this run"
     )
     summarise(sorted(done, key=lambda r: r["seed"]))
+    summarise_methods(sorted(done, key=lambda r: r["seed"]))
 
 
 if __name__ == "__main__":
