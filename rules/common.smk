@@ -2,7 +2,7 @@
 from regimewise.appendix.assemble import appendix_outputs
 from regimewise.appendix.environment import software_fingerprint
 from regimewise.workflow.fingerprint import stage_code_hash
-from regimewise.workflow.resources import recorded_decisions, stage_resources
+from regimewise.workflow.resources import recorded_decisions, stage_resources, stage_threads
 from regimewise.workflow.settings import load_settings
 
 SETTINGS = load_settings(config)

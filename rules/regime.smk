@@ -13,7 +13,7 @@ rule regime:
         benchmarks("regime")
     params:
         code=stage_code_hash("regime"),
-    threads: 1
+    threads: stage_threads("regime")
     resources:
         mem_mb=mem_mb("regime"),
         runtime=runtime("regime"),

@@ -11,11 +11,13 @@ Research use only: a learned regime is a hypothesis for study, not a treatment r
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
+from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import (
     QFeatures,
     action_codes,
@@ -123,6 +125,24 @@ def boosting_params(protocol: Protocol) -> dict:
     }
 
 
+def variant_tasks(
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures, X=None
+) -> dict[str, Callable[[], FittedQIteration]]:
+    """The fits of :func:`regime_variants`, one callable each, for :func:`regimewise.core.concurrency.run_concurrently`.
+
+    ``X`` is built here once for all of them when not given; the fits only read it.
+    """
+    names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
+    X = features.transform(decisions) if X is None else X
+
+    def task(name):
+        return lambda: fit_q_learning(
+            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1], X=X
+        )
+
+    return {name: task(name) for name in names}
+
+
 def regime_variants(
     decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures, X=None
 ) -> dict[str, FittedQIteration]:
@@ -132,14 +152,7 @@ def regime_variants(
     protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
     ``features.transform(decisions)`` when the caller already has it.
     """
-    names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
-    X = features.transform(decisions) if X is None else X  # once for all of them
-    return {
-        name: fit_q_learning(
-            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1], X=X
-        )
-        for name in names
-    }
+    return {name: fit() for name, fit in variant_tasks(decisions, behaviour_proba, protocol, features, X).items()}
 
 
 def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
@@ -192,28 +205,50 @@ def cross_fitted_recommendations(
 
 
 def cross_fitted_regime(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, threads: int = 1
 ) -> tuple[np.ndarray, np.ndarray]:
     """The cross-fitted recommendations of :func:`cross_fitted_recommendations` and, from the same fold regimes,
     the Q-values (n, K) of every action: each patient's Q-values from the Q-models learned without that patient.
 
     The strategies that switch only when the learned regime's estimated gain is large enough
     (:mod:`regimewise.evaluation.strategies`) read their gains from these Q-values, so a patient's gain is never
-    estimated by a model that learned from that patient.
+    estimated by a model that learned from that patient. ``threads`` fold regimes are learned at once
+    (:func:`regimewise.core.concurrency.run_concurrently`; the same numbers with any number).
     """
     folds = crossfit_folds(decisions, protocol)
     if folds is None:
         learned = learn_regime(decisions, protocol)
         return learned.recommend(decisions, behaviour_proba), learned.q_values(decisions)
+    parts = run_concurrently(cross_fit_tasks(decisions, protocol, folds), threads)
+    return assemble_cross_fit(decisions, protocol, parts)
+
+
+def cross_fit_tasks(
+    decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray
+) -> list[Callable[[], tuple[np.ndarray, np.ndarray, np.ndarray]]]:
+    """One callable per fold of ``folds``: it learns the fold's regime from the other folds and returns the fold's
+    rows (boolean mask), the regime's recommendations there and its Q-values (n_fold, K). The regime (usual-care
+    model, Q-model ensembles) is released when the callable returns."""
+
+    def task(fold):
+        def learn_and_score():
+            held_out = folds == fold
+            learned = fold_regime(decisions, protocol, folds, fold)
+            rows = decisions.loc[held_out].reset_index(drop=True)
+            return held_out, learned.recommend(rows), learned.q_values(rows)
+
+        return learn_and_score
+
+    return [task(fold) for fold in np.unique(folds)]
+
+
+def assemble_cross_fit(decisions: pd.DataFrame, protocol: Protocol, parts) -> tuple[np.ndarray, np.ndarray]:
+    """The recommendations (n,) and Q-values (n, K) of every row from the results of :func:`cross_fit_tasks`."""
     recommended = np.empty(len(decisions), dtype=np.int64)
     q = np.empty((len(decisions), len(protocol.actions)))
-    for fold in np.unique(folds):  # one fold's regime at a time
-        held_out = folds == fold
-        learned = fold_regime(decisions, protocol, folds, fold)
-        rows = decisions.loc[held_out].reset_index(drop=True)
-        recommended[held_out] = learned.recommend(rows)
-        q[held_out] = learned.q_values(rows)
-        del learned, rows  # this fold's regime (usual-care model, Q-model ensembles) goes before the next is learned
+    for held_out, codes, values in parts:
+        recommended[held_out] = codes
+        q[held_out] = values
     return recommended, q
 
 

@@ -23,6 +23,7 @@ from regimewise.bootstrap.intervals import combine, merge_intervals
 from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
 from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
+from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.core.seeds import stream_ints
 from regimewise.data.validate import validate_records, write_error_report
@@ -34,9 +35,10 @@ from regimewise.io import parquet_columns, read_json, read_parquet, write_json, 
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.learning import (
-    cross_fitted_regime,
+    assemble_cross_fit,
+    cross_fit_tasks,
     crossfit_folds,
-    regime_variants,
+    variant_tasks,
 )
 from regimewise.regime.permitted import permitted_actions
 from regimewise.regime.readable import distill_regime
@@ -148,7 +150,7 @@ def read_probabilities(path, labels) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------------------------- regime
-def regime_stage(protocol, decisions, proba, table, regime):
+def regime_stage(protocol, decisions, proba, table, regime, threads=1):
     """Learn the side-by-side regimes; write recommendations with Q-values and the fitted models' summary.
 
     The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
@@ -156,6 +158,10 @@ def regime_stage(protocol, decisions, proba, table, regime):
     ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
     that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one
     fold).
+
+    ``threads`` (the rule's) of the fits run at once: the side-by-side regimes and the cross-fitted fold regimes
+    do not depend on each other (:func:`regimewise.core.concurrency.run_concurrently`; the outputs are the same
+    with any number).
 
     With ``analysis.learn_regime: false`` nothing is learned: the table keeps the decisions' keys and the action
     taken only, and regime.json says that no regime was learned (:func:`no_regime_summary`).
@@ -169,7 +175,12 @@ def regime_stage(protocol, decisions, proba, table, regime):
     probabilities = read_probabilities(proba, p.action_labels)
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
-    variants = regime_variants(frame, probabilities, p, features, X=X)
+    fits = variant_tasks(frame, probabilities, p, features, X=X)
+    folds = crossfit_folds(frame, p)
+    cross_fits = [] if folds is None else cross_fit_tasks(frame, p, folds)
+    # the fold regimes first: each also fits its own usual-care model, the longest tasks
+    done = run_concurrently([*cross_fits, *fits.values()], threads)
+    variants = dict(zip(fits, done[len(cross_fits) :]))
     rules = ClinicalRuleSet.from_protocol(p)
     # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
     # "rules" and "pessimistic"), kept by the fit rather than scored again
@@ -177,14 +188,17 @@ def regime_stage(protocol, decisions, proba, table, regime):
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
     q = fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
-    del X  # released before the cross-fitting builds its own
-    folds = p.evaluation.cross_fit_folds
-    evaluated, evaluated_q = (recommended, None) if folds == 1 else cross_fitted_regime(frame, probabilities, p)
+    del X
+    evaluated, evaluated_q = (
+        (recommended, None) if folds is None else assemble_cross_fit(frame, p, done[: len(cross_fits)])
+    )
+    del done
     permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
     write_recommendations(table, p, frame, chosen, evaluated, q if evaluated_q is None else evaluated_q, q, permitted)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
     summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
-    summary["cross_fit"] = {"folds": folds, "agreement": float(np.mean(evaluated == recommended))}
+    agreement = float(np.mean(evaluated == recommended))
+    summary["cross_fit"] = {"folds": p.evaluation.cross_fit_folds, "agreement": agreement}
     summary["readable"] = distill_regime(
         features.scaler.covariate_frame(frame),  # categorical states as their dummies, unscaled
         recommended,
@@ -414,8 +428,8 @@ STAGES = {
 def run_snakemake_job(smk) -> None:
     """Run the stage named like the Snakemake rule, logging to the rule's log file.
 
-    The stage receives the rule's inputs, outputs, named logs, wildcards and those of its ``params`` it names
-    (never ``code``, the fingerprint).
+    The stage receives the rule's inputs, outputs, named logs, wildcards, those of its ``params`` it names (never
+    ``code``, the fingerprint) and the rule's ``threads`` if it takes them.
 
     Inputs named by a stand-in (a path with braces, :mod:`regimewise.workflow.settings`) reach the stage as the real
     path. A :class:`UserInputError` is written to the log and to standard error as one line starting with
@@ -434,14 +448,17 @@ def run_snakemake_job(smk) -> None:
     params = {k: v for k, v in smk.params.items()}
     kwargs = {
         k: v
-        for k, v in {**params, **wildcards, **named_logs, **inputs, **outputs}.items()
+        for k, v in {**params, **wildcards, **named_logs, **inputs, **outputs, "threads": smk.threads}.items()
         if k in STAGE_ARGUMENTS[smk.rule]
     }
     started = time.perf_counter()
     shown = warnings.showwarning
     warnings.showwarning = _logged_warning(shown)
     try:
-        STAGES[smk.rule](**kwargs)
+        # BLAS on one thread whatever the rule's threads (Snakemake sets OMP_NUM_THREADS to them): a multi-threaded
+        # BLAS may sum in another order, and the outputs must not depend on the cores (core/concurrency.py)
+        with threadpool_limits(limits=1):
+            STAGES[smk.rule](**kwargs)
         log_resource_use(time.perf_counter() - started)
     except UserInputError as err:
         log.error("%s", err)

@@ -1,0 +1,36 @@
+"""Independent model fits of one stage on several cores, with the same numbers as one core.
+
+A stage that fits several models which do not depend on each other (the regime stage's side-by-side regimes and
+cross-fitted fold regimes) hands them to :func:`run_concurrently` as callables. With ``threads`` above 1 they run
+on threads of the stage's own process: the arrays they read (records, design matrix, probabilities) are shared,
+not copied, and numpy releases the interpreter lock in its array loops, so two fits proceed at once.
+
+Every BLAS call inside is held to one thread (:func:`threadpoolctl.threadpool_limits`): a multi-threaded BLAS
+may sum in another order, so the same records would give numbers that differ in the last digits with the
+number of cores. Each task computes exactly what it would compute alone, and results come back in the order
+of the tasks, so the outputs are identical byte for byte whatever ``threads`` is.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from typing import TypeVar
+
+from threadpoolctl import threadpool_limits
+
+T = TypeVar("T")
+
+
+def run_concurrently(tasks: Sequence[Callable[[], T]], threads: int = 1) -> list[T]:
+    """The results of ``tasks`` (callables without arguments), in their order; up to ``threads`` at once.
+
+    Tasks must not write to shared objects (each returns what it computed). With ``threads`` 1, or a single
+    task, they run one after the other in this thread. An exception in a task is raised here.
+    """
+    threads = max(1, int(threads))
+    with threadpool_limits(limits=1):
+        if threads == 1 or len(tasks) <= 1:
+            return [task() for task in tasks]
+        with ThreadPoolExecutor(max_workers=min(threads, len(tasks))) as pool:
+            return list(pool.map(lambda task: task(), tasks))
