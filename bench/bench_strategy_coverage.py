@@ -14,8 +14,9 @@ supported. Target of issue 13: coverage ≥ 93% over ≥ 100 cohorts of 3,000 ep
 strategy is supported by. With C cohorts a coverage near 95% is known to about ±sqrt(0.05·0.95/C).
 
 The issue's size (100 cohorts × 3,000 episodes × 200 replicates) takes many hours on 2 cores; ``--results`` (a
-JSON-lines file) lets a stopped run resume; it also keeps each cohort's replicate values, so the percentile, basic and
-normal intervals are compared on the same replicates after the main table. Invented simulator, research use only, not medical advice.
+JSON-lines file) lets a stopped run resume; it also keeps each cohort's replicate values, so the percentile, basic
+and normal intervals are compared on the same replicates after the main table. Invented simulator, research use
+only, not medical advice.
 
     python bench/bench_strategy_coverage.py --cohorts 100 --episodes 3000 --replicates 200 --results cov.jsonl
 """
