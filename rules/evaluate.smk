@@ -13,7 +13,8 @@ rule evaluate:
         benchmarks("evaluate")
     params:
         code=stage_code_hash("evaluate"),
-    threads: 1
+    threads: stage_threads("evaluate")
+    priority: 1  # on the critical path: before describe and survival when they compete for the cores
     resources:
         mem_mb=mem_mb("evaluate"),
         runtime=runtime("evaluate"),

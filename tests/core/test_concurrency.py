@@ -1,6 +1,6 @@
 """Independent fits on several threads: results in task order, errors raised, BLAS on one thread, and the regime
-stage's outputs identical byte for byte with one thread and with two (the project's own rule: the numbers must not
-depend on the cores; no outside reference applies)."""
+and evaluate stages' outputs identical byte for byte with one thread and with two (the project's own rule: the
+numbers must not depend on the cores; no outside reference applies)."""
 
 from __future__ import annotations
 
@@ -18,7 +18,7 @@ from regimewise.demo.simulate import simulate_cohort
 from regimewise.io import write_parquet
 from regimewise.protocol import load_protocol
 from regimewise.regime.learning import cross_fitted_regime
-from regimewise.workflow.stages import behaviour_stage, regime_stage
+from regimewise.workflow.stages import behaviour_stage, evaluate_stage, regime_stage
 
 
 def test_results_come_back_in_task_order_whatever_finishes_first():
@@ -53,10 +53,12 @@ def cohort(tmp_path_factory):
     raw = yaml.safe_load((REPOSITORY / "config" / "protocol.yaml").read_text(encoding="utf-8"))
     raw["data"] = {"root": ".", "decisions": "decisions.parquet"}
     raw.pop("survival", None)  # no episodes table here
-    raw["constraints"]["ensemble_size"] = 5  # a smaller pessimism ensemble keeps the test quick
+    # a smaller pessimism ensemble keeps the test quick; a support threshold of 0.1 keeps every fold's regime to
+    # actions each fold has seen at every step, so that every estimator is defined (as tests/bootstrap/test_sweep.py)
+    raw["constraints"].update(ensemble_size=5, support_threshold=0.1)
     (folder / "protocol.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
     pf = load_protocol(folder / "protocol.yaml")
-    write_parquet(folder / "decisions.parquet", clean_decisions(pf, simulate_cohort(200, seed=5).decisions))
+    write_parquet(folder / "decisions.parquet", clean_decisions(pf, simulate_cohort(600, seed=5).decisions))
     behaviour_stage(folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet", folder / "b.json")
     return folder, pf
 
@@ -86,3 +88,25 @@ def test_cross_fitted_regime_is_the_same_with_two_threads(cohort):
     one, two = (cross_fitted_regime(decisions, proba, pf.protocol, threads=t) for t in (1, 2))
     np.testing.assert_array_equal(one[0], two[0])
     np.testing.assert_array_equal(one[1], two[1])
+
+
+def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):
+    folder, _ = cohort
+    table = folder / "table_for_evaluate.parquet"
+    regime_stage(
+        folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet", table, folder / "r.json"
+    )
+    written = {}
+    for threads in (1, 2):
+        values = folder / f"values{threads}.json"
+        evaluate_stage(
+            folder / "protocol.yaml",
+            folder / "decisions.parquet",
+            folder / "proba.parquet",
+            table,
+            values,
+            threads=threads,
+        )
+        written[threads] = values.read_bytes()
+    assert written[1] == written[2]
+    assert b'"side_by_side"' in written[1] and b'"fqe"' in written[1]  # every part that runs on threads was run

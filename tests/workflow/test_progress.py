@@ -123,6 +123,7 @@ def test_a_stage_writes_its_statistical_warnings_to_its_own_log(tmp_path, monkey
         output=_Named(out=str(tmp_path / "out.txt")),
         wildcards=_Named(),
         params=_Named(),
+        threads=1,
     )
     passed_on = []
     with warnings.catch_warnings():

@@ -5,8 +5,11 @@ cross-fitted.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
+from regimewise.core.concurrency import run_concurrently
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.protocol.model import Protocol
@@ -17,7 +20,7 @@ def needs_outcome_model(protocol: Protocol) -> bool:
     return any(ESTIMATORS[name].needs_q_model for name in protocol.evaluation.estimators)
 
 
-def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_folds=None) -> list:
+def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_folds=None, threads: int = 1) -> list:
     """Fitted-Q evaluation of every regime of ``targets``: per regime (Q̂ of the taken action, V̂ of the regime at
     each decision, fqe value), the :class:`UserInputError` that stopped it, or None when no estimator needs it.
 
@@ -25,7 +28,8 @@ def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_fold
     each fold of ``learned_folds`` on that fold's records, the others on all records; every group is fitted in one
     backward pass (:func:`regimewise.regime.qmodels.evaluate_policies`), which gives what one
     :class:`regimewise.evaluation.fqe.FittedQEvaluation` per regime gives. ``logged`` is a
-    :class:`regimewise.evaluation.values.LoggedDecisions`.
+    :class:`regimewise.evaluation.values.LoggedDecisions`. The folds' passes are independent: ``threads`` of them
+    run at once (:func:`regimewise.core.concurrency.run_concurrently`; the same numbers with any number).
     """
     if not needs_outcome_model(protocol):
         return [None] * len(targets)
@@ -38,9 +42,12 @@ def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_fold
         parts = np.unique(learned_folds) if group else [None]
         n = len(logged.step)
         q_taken, v_target = np.full((len(members), n), np.nan), np.full((len(members), n), np.nan)
-        for part in parts:
-            rows = slice(None) if part is None else learned_folds == part  # every record: views, not copies
-            for j, result in enumerate(_fold_models(logged, [targets[i]["target"] for i in members], protocol, rows)):
+        member_targets = [targets[i]["target"] for i in members]
+        # every record (a slice: views, not copies), or a fold's rows
+        fold_rows = [slice(None) if part is None else learned_folds == part for part in parts]
+        fits = [functools.partial(_fold_models, logged, member_targets, protocol, rows) for rows in fold_rows]
+        for part, rows, fitted in zip(parts, fold_rows, run_concurrently(fits, threads)):
+            for j, result in enumerate(fitted):
                 if isinstance(result, UserInputError):
                     out[members[j]] = _fold_error(result, part, parts) if part is not None else result
                     continue

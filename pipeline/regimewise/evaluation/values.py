@@ -13,6 +13,7 @@ An estimate whose Kish effective sample size is below ``max(evaluation.minimum_e
 
 from __future__ import annotations
 
+import functools
 import itertools
 from collections.abc import Iterator
 from dataclasses import dataclass, replace
@@ -20,6 +21,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import QFeatures, StateScaler, action_codes, episode_codes
 from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import UserInputError
@@ -402,6 +404,7 @@ def evaluate_all(
     strict: bool = True,
     learned_folds: np.ndarray | None = None,
     learned_q: np.ndarray | None = None,
+    threads: int = 1,
 ) -> dict:
     """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts
     (``recommended`` None: no regime was learned, and the contrasts are the named strategies minus usual care).
@@ -416,14 +419,23 @@ def evaluate_all(
     ``learned_folds`` (:func:`regimewise.regime.learning.crossfit_folds`) marks ``recommended`` as cross-fitted:
     the outcome models of the learned regime and of the strategies built from it are then fitted within each fold.
     ``learned_q`` (n, K): the cross-fitted Q-values the override strategies need.
+
+    ``threads``: the folds' outcome models, and the estimates of the regimes of a pass, are computed ``threads`` at
+    a time (:func:`regimewise.core.concurrency.run_concurrently`; the same numbers with any number).
     """
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
     regimes, histograms = [], None
     # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
     # (a regime's numbers do not depend on which regimes share its pass)
     for chunk in _passes(regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q), logged):
-        models = outcome_models(logged, chunk, protocol, learned_folds)
-        regimes += [evaluate_target(logged, t, protocol, strict, learned_folds, m) for t, m in zip(chunk, models)]
+        models = outcome_models(logged, chunk, protocol, learned_folds, threads)
+        regimes += run_concurrently(
+            [
+                functools.partial(evaluate_target, logged, t, protocol, strict, learned_folds, m)
+                for t, m in zip(chunk, models)
+            ],
+            threads,
+        )
         if chunk[0]["name"] == "learned":
             histograms = weight_histograms(logged, chunk[0]["target"], protocol)
         del chunk, models
@@ -440,19 +452,25 @@ def evaluate_all(
         "regimes": regimes,
         "contrasts": contrasts,
         **({"learned_weight_histograms": histograms} if recommended is not None else {}),
-        **({} if side_by_side is None else {"side_by_side": _side_by_side(logged, side_by_side, protocol)}),
+        **({} if side_by_side is None else {"side_by_side": _side_by_side(logged, side_by_side, protocol, threads)}),
     }
 
 
-def _side_by_side(logged: LoggedDecisions, side_by_side: dict[str, np.ndarray], protocol: Protocol) -> list[dict]:
+def _side_by_side(
+    logged: LoggedDecisions, side_by_side: dict[str, np.ndarray], protocol: Protocol, threads: int = 1
+) -> list[dict]:
     """Every estimator for each safeguard comparison regime, their outcome models fitted on all records in passes
     as in :func:`evaluate_all`."""
     out = []
     for chunk in _passes(side_by_side.items(), logged):
         targets = [{"name": name, "target": one_hot(codes, len(protocol.actions))} for name, codes in chunk]
         models = outcome_models(logged, targets, protocol)
-        out += [
-            {"name": t["name"], "estimates": evaluate_regime(logged, t["target"], protocol, True, fitted=m)}
-            for t, m in zip(targets, models)
-        ]
+        estimates = run_concurrently(
+            [
+                functools.partial(evaluate_regime, logged, t["target"], protocol, True, fitted=m)
+                for t, m in zip(targets, models)
+            ],
+            threads,
+        )
+        out += [{"name": t["name"], "estimates": e} for t, e in zip(targets, estimates)]
     return out

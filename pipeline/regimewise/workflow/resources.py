@@ -17,10 +17,11 @@ re-evaluates resource functions just before it schedules a job); before that (th
 dry run), it is estimated from the records file's size, erring high.
 
 Threads (:data:`STAGE_THREADS`): every rule runs one process, and BLAS is held to one thread in every stage
-(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. The regime rule
-asks for two: its side-by-side regimes and cross-fitted fold regimes are independent fits, run on two threads of
-its process (:mod:`regimewise.core.concurrency`). Every other rule asks for one (bootstrap shards are separate
-jobs). Snakemake gives a rule no more threads than ``--cores``.
+(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. The regime and
+evaluate rules ask for two: the regime stage's side-by-side regimes and cross-fitted fold regimes, and the
+evaluate stage's per-fold outcome models and per-regime estimates, are independent computations run on two
+threads of the stage's process (:mod:`regimewise.core.concurrency`). Every other rule asks for one (bootstrap
+shards are separate jobs). Snakemake gives a rule no more threads than ``--cores``.
 """
 
 from __future__ import annotations
@@ -71,15 +72,16 @@ STAGE_COSTS = {
     "appendix": StageCost(BASE_MB, 0.0, 0.1),
 }
 
-# Threads each rule asks for (1 where not listed). Two for the regime stage: it is on the critical path and its
-# six or more fits are independent; at 100k episodes x 12 two threads ran its fits 1.5 times as fast (bench/RESULTS.md).
-STAGE_THREADS = {"regime": 2}
+# Threads each rule asks for (1 where not listed). Two for the regime and evaluate stages: both are on the critical
+# path (validate -> behaviour -> regime -> evaluate -> bootstrap -> sensitivity -> report) and fit independent models
+# (bench/RESULTS.md has the times with one thread and two).
+STAGE_THREADS = {"regime": 2, "evaluate": 2}
 
 
 def stage_threads(rule: str) -> int:
     """Threads to request for ``rule`` (:data:`STAGE_THREADS`; 1 for the others).
 
-    >>> stage_threads("regime"), stage_threads("evaluate")
+    >>> stage_threads("regime"), stage_threads("describe")
     (2, 1)
     """
     if rule not in STAGE_COSTS:

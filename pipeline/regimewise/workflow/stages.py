@@ -262,12 +262,14 @@ def evaluated_regime(table, labels) -> tuple[np.ndarray, np.ndarray]:
     return column_codes(recommendations, "evaluated", labels), q
 
 
-def evaluate_stage(protocol, decisions, proba, table, values):
-    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator."""
+def evaluate_stage(protocol, decisions, proba, table, values, threads=1):
+    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator;
+    ``threads`` (the rule's) of the folds' outcome models and of the regimes' estimates at once (the same numbers
+    with any number)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     if not p.analysis.learn_regime:  # usual care and the named strategies only
-        write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p))
+        write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p, threads=threads))
         return
     recommended, learned_q = evaluated_regime(table, p.action_labels)  # cross-fitted (regime stage)
     side = [c for c in parquet_columns(table) if c.startswith("recommended_")]  # side-by-side regimes
@@ -284,6 +286,7 @@ def evaluate_stage(protocol, decisions, proba, table, values):
             variants or None,
             learned_folds=crossfit_folds(frame, p),
             learned_q=learned_q,
+            threads=threads,
         ),
     )
 
