@@ -1,7 +1,8 @@
 """Independent model fits of one stage on several cores, with the same numbers as one core.
 
 A stage that fits several models which do not depend on each other (the regime stage's side-by-side regimes and
-cross-fitted fold regimes) hands them to :func:`run_concurrently` as callables. With ``threads`` above 1 they run
+cross-fitted fold regimes; the evaluate stage's outcome models per fold and estimates per regime) hands them to
+:func:`run_concurrently` as callables. With ``threads`` above 1 they run
 on threads of the stage's own process: the arrays they read (records, design matrix, probabilities) are shared,
 not copied, and numpy releases the interpreter lock in its array loops, so two fits proceed at once.
 
