@@ -36,7 +36,7 @@ import numpy as np
 from bench_strategies import simulator_strategy
 from threadpoolctl import threadpool_limits
 
-from regimewise.bootstrap.intervals import combine, percentile_interval
+from regimewise.bootstrap.intervals import combine, contrast_of, interval
 from regimewise.bootstrap.replicates import learn_and_evaluate, run_shard
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
@@ -144,16 +144,11 @@ def one_cohort(task):
             # compared afterwards on the same replicates (summarise)
             "replicate_values": [r["values"][s.name][est] if "values" in r else None for r in shard["replicates"]],
             "replicate_contrasts": [
-                _difference(r["values"], s.name, "usual_care", est) if "values" in r else None
+                contrast_of(r["values"], s.name, "usual_care", est) if "values" in r else None
                 for r in shard["replicates"]
             ],
         }
     return out
-
-
-def _difference(values, a, b, est):
-    x, y = values[a][est], values[b][est]
-    return None if x is None or y is None else x - y
 
 
 def summarise(results):
@@ -166,14 +161,14 @@ def summarise(results):
         rows = [r["estimators"][est] for r in results]
         is_supported = np.array([row["verdict"] == "supported" for row in rows])
         supported = np.mean(is_supported)
-        for target, key, interval in (
+        for target, key, stored in (
             ("value", "value", "value_interval"),
             ("contrast", "difference", "contrast_interval"),
         ):
             truth = np.array([r[f"truth_{'value' if target == 'value' else 'contrast'}"] for r in results])
             est_values = np.array([np.nan if row[key] is None else row[key] for row in rows])
-            low = np.array([np.nan if row[interval][0] is None else row[interval][0] for row in rows])
-            high = np.array([np.nan if row[interval][1] is None else row[interval][1] for row in rows])
+            low = np.array([np.nan if row[stored][0] is None else row[stored][0] for row in rows])
+            high = np.array([np.nan if row[stored][1] is None else row[stored][1] for row in rows])
             hits = (low <= truth) & (truth <= high)
             covered = np.mean(hits)
             where = f"{100 * np.mean(hits[is_supported]):.1f}% of {is_supported.sum()}" if is_supported.any() else "-"
@@ -187,18 +182,15 @@ def summarise(results):
 
 def method_limits(estimate, draws, method, level=0.95):
     """(low, high) of one interval method from stored replicates: the project's percentile and basic intervals
-    (regimewise.bootstrap.intervals), or the normal interval θ̂ ± z·SE with the bootstrap SE (Efron & Tibshirani
-    1993, §13.2)."""
-    draws = np.asarray([d for d in draws if d is not None], dtype=float)
-    if estimate is None or draws.size < 2:
+    (:func:`regimewise.bootstrap.intervals.interval`), or the normal interval θ̂ ± z·SE with the same bootstrap SE
+    (Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 13; section from memory)."""
+    limits = interval(estimate, draws, level, 1.0, basic=method == "basic")
+    if limits["low"] is None:
         return np.nan, np.nan
     if method == "normal":
-        half = NormalDist().inv_cdf((1 + level) / 2) * np.std(draws, ddof=1)
+        half = NormalDist().inv_cdf((1 + level) / 2) * limits["bootstrap_se"]
         return estimate - half, estimate + half
-    low, high = percentile_interval(draws, level)
-    if method == "basic":
-        return 2 * estimate - high, 2 * estimate - low
-    return low, high
+    return limits["low"], limits["high"]
 
 
 def summarise_methods(results):

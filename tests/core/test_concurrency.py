@@ -17,7 +17,6 @@ from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.io import write_parquet
 from regimewise.protocol import load_protocol
-from regimewise.regime.learning import cross_fitted_regime
 from regimewise.workflow.stages import behaviour_stage, evaluate_stage, regime_stage
 
 
@@ -79,15 +78,6 @@ def test_the_regime_stage_writes_the_same_bytes_with_two_threads(cohort):
         )
         written[threads] = (table.read_bytes(), regime.read_bytes())
     assert written[1] == written[2]
-
-
-def test_cross_fitted_regime_is_the_same_with_two_threads(cohort):
-    folder, pf = cohort
-    decisions = clean_decisions(pf, simulate_cohort(120, seed=8).decisions)
-    proba = np.full((len(decisions), len(pf.protocol.actions)), 1 / len(pf.protocol.actions))
-    one, two = (cross_fitted_regime(decisions, proba, pf.protocol, threads=t) for t in (1, 2))
-    np.testing.assert_array_equal(one[0], two[0])
-    np.testing.assert_array_equal(one[1], two[1])
 
 
 def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):

@@ -65,7 +65,8 @@ def compared_pairs(point: dict, reference: str = "usual_care") -> list[tuple[str
     return [(a, b) for a, b in pairs if not ({a, b} & strategies) or b in ("usual_care", reference)]
 
 
-def _difference(values, a, b, est):
+def contrast_of(values, a, b, est):
+    """``a`` minus ``b`` by estimator ``est`` in {regime: {estimator: value}}, or None when either is missing."""
     x, y = values[a][est], values[b][est]
     return None if x is None or y is None else x - y
 
@@ -100,8 +101,8 @@ def combine(point: dict, shards: list[dict], protocol: Protocol) -> dict:
                 "regime": a,
                 "versus": b,
                 "estimator": est,
-                "difference": _difference(values, a, b, est),
-                **interval(_difference(values, a, b, est), [_difference(r, a, b, est) for r in reps], *settings),
+                "difference": contrast_of(values, a, b, est),
+                **interval(contrast_of(values, a, b, est), [contrast_of(r, a, b, est) for r in reps], *settings),
             },
             worst(judged.get((a, est), SUPPORTED), judged.get((b, est), SUPPORTED)),
         )

@@ -17,7 +17,6 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import (
     QFeatures,
     action_codes,
@@ -128,9 +127,12 @@ def boosting_params(protocol: Protocol) -> dict:
 def variant_tasks(
     decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures, X=None
 ) -> dict[str, Callable[[], FittedQIteration]]:
-    """The fits of :func:`regime_variants`, one callable each, for :func:`regimewise.core.concurrency.run_concurrently`.
+    """The side-by-side regimes: unconstrained, support-, rule-constrained and (if k > 0) pessimistic, one fit
+    callable each, for :func:`regimewise.core.concurrency.run_concurrently`.
 
-    ``X`` is built here once for all of them when not given; the fits only read it.
+    Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
+    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
+    ``features.transform(decisions)``, built here once for all of them when not given; the fits only read it.
     """
     names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
     X = features.transform(decisions) if X is None else X
@@ -141,18 +143,6 @@ def variant_tasks(
         )
 
     return {name: task(name) for name in names}
-
-
-def regime_variants(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, features: QFeatures, X=None
-) -> dict[str, FittedQIteration]:
-    """The side-by-side regimes: unconstrained, support-, rule-constrained and (if k > 0) pessimistic.
-
-    Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
-    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
-    ``features.transform(decisions)`` when the caller already has it.
-    """
-    return {name: fit() for name, fit in variant_tasks(decisions, behaviour_proba, protocol, features, X).items()}
 
 
 def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
@@ -205,22 +195,21 @@ def cross_fitted_recommendations(
 
 
 def cross_fitted_regime(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, threads: int = 1
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol
 ) -> tuple[np.ndarray, np.ndarray]:
     """The cross-fitted recommendations of :func:`cross_fitted_recommendations` and, from the same fold regimes,
     the Q-values (n, K) of every action: each patient's Q-values from the Q-models learned without that patient.
 
     The strategies that switch only when the learned regime's estimated gain is large enough
     (:mod:`regimewise.evaluation.strategies`) read their gains from these Q-values, so a patient's gain is never
-    estimated by a model that learned from that patient. ``threads`` fold regimes are learned at once
-    (:func:`regimewise.core.concurrency.run_concurrently`; the same numbers with any number).
+    estimated by a model that learned from that patient. The fold regimes are learned one after the other
+    (the regime stage runs the same :func:`cross_fit_tasks` on its threads).
     """
     folds = crossfit_folds(decisions, protocol)
     if folds is None:
         learned = learn_regime(decisions, protocol)
         return learned.recommend(decisions, behaviour_proba), learned.q_values(decisions)
-    parts = run_concurrently(cross_fit_tasks(decisions, protocol, folds), threads)
-    return assemble_cross_fit(decisions, protocol, parts)
+    return assemble_cross_fit(decisions, protocol, [task() for task in cross_fit_tasks(decisions, protocol, folds)])
 
 
 def cross_fit_tasks(
