@@ -215,7 +215,9 @@ def _assumptions(run):
 def _analysis_plan(run):
     p, e = run.protocol, run.protocol.evaluation
     return Answer(
-        f"Usual-care model: {words(p.behaviour_model.kind)}; regime: {words(p.q_model.kind)} Q-model "
+        f"Usual-care model: {words(p.behaviour_model.kind)}"
+        f"{' mixed with an even floor' if p.behaviour_model.floor_mixture else ''}; "
+        f"regime: {words(p.q_model.kind)} Q-model "
         f"({p.q_model.basis} basis), pessimism {p.constraints.pessimism:g}; estimators {', '.join(e.estimators)}; "
         f"{e.replicates} patient-bootstrap replicates, {share(e.interval_level)} {e.interval_method} intervals; "
         f"{_missing_policies(p)}",

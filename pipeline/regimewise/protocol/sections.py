@@ -256,6 +256,12 @@ class BehaviourModelSpec(Strict):
         description="extra terms beside every state's main effect (multinomial_logit only): {state: NAME, power: 2 "
         "or 3}, {spline: NAME, df: 4}, {interaction: [NAME, NAME]}",
     )
+    floor_mixture: Flag = Field(
+        False,
+        description="multinomial_logit only: mix the logit with a share of decisions spread evenly over the actions "
+        "taken in the records, the share estimated with the coefficients by maximum likelihood (Copas 1988), for "
+        "usual care that takes every action now and then whatever the state",
+    )
     folds: Annotated[WholeNumber, Field(ge=1, le=20)] = Field(
         5,
         description="cross-fitting folds, split by patient; records get out-of-fold probabilities. 1 = no "
@@ -279,6 +285,11 @@ class BehaviourModelSpec(Strict):
             raise ValueError(f"truncation_percentiles must satisfy 0 <= low < high <= 100, got [{low}, {high}]")
         if self.folds == 1 and self.kind == "gradient_boosting":
             raise ValueError("gradient_boosting must be cross-fitted: set behaviour_model.folds to 2 or more")
+        if self.floor_mixture and self.kind == "gradient_boosting":
+            raise ValueError(
+                "behaviour_model.floor_mixture applies to the multinomial_logit model (boosted trees can learn a "
+                "floor of their own); remove it or use kind: multinomial_logit"
+            )
         if self.terms and self.kind == "gradient_boosting":
             raise ValueError(
                 "behaviour_model.terms apply to the multinomial_logit model (boosted trees find their own "

@@ -185,6 +185,7 @@ def _model_block(protocol, usual_care):
         "covariates": usual_care.design.names,
         "spline_states": list(protocol.behaviour_model.spline_states),
         "scaler": usual_care.scaler.to_dict(),
+        "floor_mixture": None,
     }
     if hasattr(fitted, "params_"):
         block.update(
@@ -192,6 +193,15 @@ def _model_block(protocol, usual_care):
             log_likelihood=float(fitted.llf_),
             params=np.asarray(fitted.params_).tolist(),
         )
+        if hasattr(fitted, "share_"):
+            block["floor_mixture"] = {
+                "share": float(fitted.share_),
+                "floor": float(fitted.floor_),
+                "plain_logit_log_likelihood": float(fitted.logit_llf_),
+                "likelihood_ratio": float(fitted.lr_statistic_),
+                "p_value": float(fitted.p_value_),
+                "test": "likelihood ratio of share 0 on the boundary: 1/2 chi2(0) + 1/2 chi2(1) (Self & Liang 1987)",
+            }
     else:
         block.update(converged=None, boosting_rounds=int(fitted.max_iter))
     return block

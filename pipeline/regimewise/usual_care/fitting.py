@@ -17,6 +17,7 @@ from regimewise.usual_care.boosting import GradientBoostingBehaviour
 from regimewise.usual_care.crossfit import apply_probability_floor, cross_fit_proba
 from regimewise.usual_care.design import BehaviourDesign
 from regimewise.usual_care.logit import MultinomialLogitBehaviour
+from regimewise.usual_care.mixture import FloorMixtureLogitBehaviour
 
 
 @dataclass(frozen=True, eq=False)
@@ -29,7 +30,7 @@ class UsualCareModel:
     """
 
     design: BehaviourDesign
-    model: MultinomialLogitBehaviour | GradientBoostingBehaviour
+    model: MultinomialLogitBehaviour | FloorMixtureLogitBehaviour | GradientBoostingBehaviour
     floor: float
     record_proba: np.ndarray
     folds: np.ndarray
@@ -47,13 +48,16 @@ def _behaviour_model_factory(protocol: Protocol, seed: int):
     spec = protocol.behaviour_model
     if spec.kind == "gradient_boosting":
         return lambda: GradientBoostingBehaviour(max_iter=spec.max_iterations, random_state=seed)
+    if spec.floor_mixture:
+        return lambda: FloorMixtureLogitBehaviour(maxiter=spec.max_iterations)
     return lambda: MultinomialLogitBehaviour(maxiter=spec.max_iterations)
 
 
 def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareModel:
     """Fit the protocol's usual-care model with K-fold cross-fitting by patient (none when ``folds`` is 1).
 
-    The model (multinomial logit or gradient boosting, optionally with spline terms) is fitted once per fold
+    The model (multinomial logit, optionally mixed with an even floor, or gradient boosting; optionally with
+    spline terms) is fitted once per fold
     for the records' out-of-fold probabilities and once on all decisions for new states. Seeds come from the
     protocol's root seed (stream ``usual_care`` of :mod:`regimewise.core.seeds`).
     """

@@ -1,0 +1,246 @@
+"""Usual-care model with an even floor: a multinomial logit mixed with a share of decisions spread evenly over the
+actions, the share estimated with the coefficients by maximum likelihood.
+
+Routine care often takes every action now and then whatever the state (a clinician's habit, a patient's request,
+a recording slip). A plain logit cannot represent such a floor: it pushes the probability of an action far from
+where it is usual towards 0, so its inverse weights for those decisions are too large and the importance-weighted
+estimators are biased. The mixture is the multinomial form of Copas's contaminated logistic regression (Copas
+1988, J R Stat Soc B 50:225, section 4).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+from scipy.special import expit, log_softmax
+from scipy.stats import chi2
+
+from regimewise.core.arrays import as_actions
+from regimewise.errors import ConvergenceWarning
+from regimewise.usual_care.logit import (
+    MultinomialLogitBehaviour,
+    _row_blocks,
+    _scaled_design,
+    _standardise,
+    as_design,
+    prediction_design,
+)
+
+# The optimiser works on z = logit(share); these bounds keep the share in about [1e-9, 1 - 1e-9].
+_Z_BOUNDS = (-20.0, 20.0)
+# Start of the share: 5% of decisions from the even component (the plain logit's coefficients start the rest).
+_Z_START = float(np.log(0.05 / 0.95))
+
+
+def _mixture_pass(design, params, z, endog, n_classes):
+    """Log-likelihood, score and Hessian of the mixture in (β, z), summed over the records in row blocks.
+
+    With s = softmax(x'β) over the classes (β = 0 for class 0), share λ = expit(z), P_a = (1 − λ) s_a + λ/K and
+    r = (1 − λ) s_t / P_t for the class t taken (the posterior probability that the decision came from the logit
+    part): ∂ log P_t/∂η_j = r (e_j − s_j); ∂² log P_t/∂η_j∂η_l = −r (δ_jl s_j − s_j s_l) + r (1 − r)(e_j − s_j)(e_l
+    − s_l); ∂ log P_t/∂λ = (1/K − s_t)/P_t; ∂² log P_t/∂η_j∂λ = −(e_j − s_j) s_t / (K P_t²); ∂² log P_t/∂λ² =
+    −((1/K − s_t)/P_t)², with e the indicator of t. Derivatives in z follow by the chain rule, dλ/dz = λ(1 − λ).
+    The vector of parameters is β of class 1, then class 2, ..., then z.
+    """
+    n_cols, n_other = params.shape
+    share = float(expit(z))
+    dshare = share * (1.0 - share)
+    total = 0.0
+    score = np.zeros(n_other * n_cols + 1)
+    hessian = np.zeros((n_other * n_cols + 1, n_other * n_cols + 1))
+    classes = np.arange(n_classes)
+    for rows in _row_blocks(design.shape[0]):
+        X = design[rows]
+        taken = endog[rows]
+        linear = np.zeros((taken.size, n_classes))
+        linear[:, 1:] = X @ params
+        s = np.exp(log_softmax(linear, axis=1))
+        s_taken = s[np.arange(taken.size), taken]
+        p_taken = (1.0 - share) * s_taken + share / n_classes
+        total += float(np.log(p_taken).sum())
+        r = (1.0 - share) * s_taken / p_taken
+        residual = ((classes == taken[:, None]) - s)[:, 1:]  # e_j − s_j, classes 1..K−1
+        g_share = (1.0 / n_classes - s_taken) / p_taken
+        score[:-1] += (X.T @ (r[:, None] * residual)).T.ravel()
+        score[-1] += float(g_share.sum()) * dshare
+        cross = -(s_taken / (n_classes * p_taken**2))[:, None] * residual * dshare
+        hessian[:-1, -1] += (X.T @ cross).T.ravel()
+        hessian[-1, -1] += float((-(g_share**2) * dshare**2 + g_share * dshare * (1.0 - 2.0 * share)).sum())
+        for j in range(n_other):
+            for k in range(j, n_other):
+                weight = r * (1.0 - r) * residual[:, j] * residual[:, k] + r * s[:, j + 1] * s[:, k + 1]
+                if j == k:
+                    weight -= r * s[:, j + 1]
+                block = X.T @ (weight[:, None] * X)
+                hessian[j * n_cols : (j + 1) * n_cols, k * n_cols : (k + 1) * n_cols] += block
+                if j != k:
+                    hessian[k * n_cols : (k + 1) * n_cols, j * n_cols : (j + 1) * n_cols] += block.T
+    hessian[-1, :-1] = hessian[:-1, -1]
+    return total, score, hessian
+
+
+def _newton_mixture(design, endog, n_classes, params, z, maxiter, tol=1e-8):
+    """Maximise the mixture's log-likelihood by Newton's method with step halving, from (params, z).
+
+    Where the Hessian is not negative definite (far from the optimum) the step is taken along the score, scaled
+    by the diagonal; every step is halved until the log-likelihood rises. z stays within :data:`_Z_BOUNDS`.
+    Returns (params, z, log-likelihood, converged, iterations).
+    """
+    n_cols, n_other = params.shape
+    theta = np.append(params.T.ravel(), z)
+
+    def unpack(vector):
+        return vector[:-1].reshape(n_other, n_cols).T, float(np.clip(vector[-1], *_Z_BOUNDS))
+
+    llf, score, hessian = _mixture_pass(design, *unpack(theta), endog, n_classes)
+    for iteration in range(1, maxiter + 1):
+        information = -hessian
+        try:
+            np.linalg.cholesky(information)
+            step = np.linalg.solve(information, score)
+        except np.linalg.LinAlgError:
+            step = score / np.maximum(np.abs(np.diag(information)), 1.0)
+        for _ in range(60):
+            trial = theta + step
+            trial[-1] = np.clip(trial[-1], *_Z_BOUNDS)
+            new_llf, new_score, new_hessian = _mixture_pass(design, *unpack(trial), endog, n_classes)
+            if np.isfinite(new_llf) and new_llf >= llf - 1e-12 * abs(llf):
+                break
+            step = step / 2.0
+        else:
+            return *unpack(theta), llf, False, iteration
+        moved = np.max(np.abs(trial - theta))
+        theta, llf, score, hessian = trial, new_llf, new_score, new_hessian
+        if moved <= tol:
+            return *unpack(theta), llf, True, iteration
+    return *unpack(theta), llf, False, maxiter
+
+
+def boundary_p_value(statistic):
+    """P-value of a likelihood-ratio statistic for one parameter tested at the boundary of its space.
+
+    Under the null the statistic follows ½χ²₀ + ½χ²₁ (Self & Liang 1987, JASA 82:605, case 1), so the p-value is
+    ½ P(χ²₁ > LR) for LR > 0 and 1 at LR = 0.
+
+    >>> round(boundary_p_value(2.7055), 4)  # the 5% critical value of the 50:50 mixture is χ²₁'s 10% point
+    0.05
+    """
+    return float(0.5 * chi2.sf(statistic, 1)) if statistic > 0 else 1.0
+
+
+class FloorMixtureLogitBehaviour:
+    r"""Multinomial logit of the action taken on the state, mixed with an even floor (usual-care model).
+
+    .. math:: P(A = k \mid x) = (1 - \lambda)\,\frac{\exp(\beta_{0k} + x^\top \beta_k)}
+              {\sum_j \exp(\beta_{0j} + x^\top \beta_j)} + \frac{\lambda}{K},
+
+    over the ``K`` actions that occur in the training data (an action never taken keeps probability exactly 0,
+    as in :class:`~regimewise.usual_care.logit.MultinomialLogitBehaviour`), so every such action has probability
+    at least ``floor_ = λ / K`` at every state. The share ``λ`` and the coefficients are estimated together by
+    maximum likelihood (Copas 1988, J R Stat Soc B 50:225): the plain logit is fitted first (its checks of rank
+    and separation apply, and it gives the starting coefficients), then the mixture's log-likelihood is maximised
+    by Newton's method with step halving over the coefficients and ``z = logit(λ)`` (the observed information in
+    :func:`_mixture_pass`), on centred and scaled covariates as the plain logit.
+
+    ``λ = 0`` is the plain logit, so the mixture's log-likelihood is never below it. The likelihood-ratio test of
+    ``λ = 0`` sits on the boundary of the parameter space: its statistic follows ½χ²₀ + ½χ²₁ under the null
+    (Self & Liang 1987, JASA 82:605, case 1): :func:`boundary_p_value`.
+
+    Parameters
+    ----------
+    maxiter : int, default 100
+        Newton iterations of the plain logit, and again of the mixture.
+
+    Attributes
+    ----------
+    classes_, n_actions_, n_features_in_, feature_names_in_ : as the plain logit.
+    params_ : ndarray, shape (n_features_in_ + 1, len(classes_) - 1)
+        The logit part's coefficients on the caller's scale (row 0 the intercepts).
+    share_ : float
+        ``λ``, the estimated share of decisions taken evenly at random among the actions.
+    floor_ : float
+        ``λ / K``, every observed action's smallest probability.
+    llf_ : float
+        Maximised log-likelihood of the mixture.
+    logit_llf_ : float
+        Maximised log-likelihood of the plain logit.
+    lr_statistic_, p_value_ : float
+        Likelihood-ratio test of ``λ = 0`` (boundary-corrected p-value).
+    converged_ : bool
+    n_iter_ : int
+    method_ : str
+        ``"newton"``.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> X = rng.normal(size=(2000, 1))
+    >>> eta = 3.0 * X[:, 0]
+    >>> logit = np.exp(eta) / (1 + np.exp(eta))
+    >>> p1 = 0.8 * logit + 0.1  # a share of 0.2 spread evenly over the two actions
+    >>> model = FloorMixtureLogitBehaviour().fit(X, (rng.random(2000) < p1).astype(int), n_actions=2)
+    >>> 0.1 < model.share_ < 0.3
+    True
+    """
+
+    def __init__(self, maxiter=100):
+        self.maxiter = maxiter
+
+    def fit(self, X, action, n_actions):
+        """Fit on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``; returns self.
+
+        Raises :class:`UserInputError` where the plain logit does (malformed input, rank deficiency, complete
+        separation, a breakdown even after BFGS).
+        """
+        logit = MultinomialLogitBehaviour(maxiter=self.maxiter).fit(X, action, n_actions)
+        for name in ("classes_", "n_actions_", "n_features_in_", "feature_names_in_"):
+            setattr(self, name, getattr(logit, name))
+        self.logit_llf_ = logit.llf_
+        self.method_ = "newton"
+        if self.classes_.size == 1:
+            self.params_, self.share_, self.floor_ = logit.params_, 0.0, 0.0
+            self.llf_, self.lr_statistic_, self.p_value_ = logit.llf_, 0.0, 1.0
+            self.converged_, self.n_iter_ = True, 0
+            return self
+        values, _ = as_design(X)
+        codes = as_actions(action, n_actions, n_rows=values.shape[0])
+        endog = np.searchsorted(self.classes_, codes)
+        mean, scale = _standardise(values)
+        design = _scaled_design(values, mean, scale)
+        varying = scale > 0  # the plain logit's coefficients on the centred and scaled covariates start the fit
+        intercept, slopes = logit.params_[0] + mean @ logit.params_[1:], logit.params_[1:][varying]
+        start = np.vstack([intercept, slopes * scale[varying, None]])
+        n_classes = self.classes_.size
+        with np.errstate(over="ignore", under="ignore", divide="ignore"):
+            params, z, llf, converged, iterations = _newton_mixture(
+                design, endog, n_classes, start, _Z_START, self.maxiter
+            )
+        if llf < self.logit_llf_:  # a worse local optimum: the plain logit (share 0) is the better point
+            params, z, llf = start, -np.inf, self.logit_llf_
+        self.llf_ = float(llf)
+        self.share_ = float(expit(z))
+        self.floor_ = self.share_ / n_classes
+        self.params_ = MultinomialLogitBehaviour._unscale(params, mean, scale)
+        self.lr_statistic_ = float(max(0.0, 2.0 * (self.llf_ - self.logit_llf_)))
+        self.p_value_ = boundary_p_value(self.lr_statistic_)
+        self.converged_ = bool(converged)
+        self.n_iter_ = int(iterations)
+        if not self.converged_:
+            warnings.warn(
+                f"the usual-care model with an even floor did not converge in {self.maxiter} Newton iterations; "
+                "raise behaviour_model.max_iterations or set behaviour_model.floor_mixture: false",
+                ConvergenceWarning,
+                stacklevel=2,
+            )
+        return self
+
+    def predict_proba(self, X):
+        """Probability of every action, shape (n, n_actions_), columns in action-code order."""
+        values, _ = prediction_design(self, X, "params_")
+        proba = np.zeros((values.shape[0], self.n_actions_))
+        for rows in _row_blocks(values.shape[0]):
+            design = np.column_stack([np.ones(len(values[rows])), values[rows]])
+            linear = np.column_stack([np.zeros(design.shape[0]), design @ self.params_])
+            proba[rows, self.classes_] = (1.0 - self.share_) * np.exp(log_softmax(linear, axis=1)) + self.floor_
+        return proba
