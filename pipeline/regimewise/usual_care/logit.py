@@ -39,7 +39,7 @@ def as_design(X, what="X"):
     return values, names
 
 
-def _standardise(values):
+def standardise(values):
     """Column means and scales for a numerically stable fit; constant columns get scale 0.
 
     One column at a time, so no temporary of the whole matrix's size is made."""
@@ -96,7 +96,7 @@ class MNLogitFit:
 BLOCK_ROWS = 65_536
 
 
-def _row_blocks(n_rows, size=None):
+def row_blocks(n_rows, size=None):
     """Slices of consecutive rows, ``size`` (default :data:`BLOCK_ROWS`) at a time."""
     size = BLOCK_ROWS if size is None else size
     return (slice(start, start + size) for start in range(0, n_rows, size))
@@ -121,7 +121,7 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         score = np.zeros((n_other, n_cols))
         information = np.zeros((n_other * n_cols, n_other * n_cols))
         with np.errstate(all="ignore"):
-            for rows in _row_blocks(n_rows):
+            for rows in row_blocks(n_rows):
                 X = design[rows]
                 proba = np.exp(_log_proba(X, params)[:, 1:])
                 taken = endog[rows, None] == others
@@ -147,7 +147,7 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
     return MNLogitFit(params, False, maxiter)
 
 
-def _scaled_design(values, mean, scale):
+def scaled_design(values, mean, scale):
     """The intercept column, then every varying covariate centred and scaled: filled column by column, so the
     only full-size array made is the design itself."""
     varying = np.flatnonzero(scale > 0)
@@ -167,7 +167,7 @@ def column_rank(design, block_rows=None):
     default tolerance, largest × max(rows, columns) × machine epsilon, count.
     """
     r = np.zeros((0, design.shape[1]))
-    for rows in _row_blocks(design.shape[0], block_rows):
+    for rows in row_blocks(design.shape[0], block_rows):
         r = np.linalg.qr(np.vstack([r, design[rows]]), mode="r")
     singular = np.linalg.svd(r, compute_uv=False)
     if singular.size == 0 or singular.max() == 0:
@@ -187,7 +187,7 @@ def _log_proba(design, params):
 def _log_likelihood(design, endog, params) -> float:
     """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
     total = 0.0
-    for rows in _row_blocks(design.shape[0]):
+    for rows in row_blocks(design.shape[0]):
         log_proba = _log_proba(design[rows], params)
         total += float(log_proba[np.arange(log_proba.shape[0]), endog[rows]].sum())
     return total
@@ -295,13 +295,13 @@ class MultinomialLogitBehaviour:
         self.n_features_in_ = values.shape[1]
         self.feature_names_in_ = names
         self.classes_ = np.unique(codes)
-        mean, scale = _standardise(values)
+        mean, scale = standardise(values)
         self._warn_constant_columns(scale == 0)
         if self.classes_.size == 1:
             self.params_ = np.zeros((self.n_features_in_ + 1, 0))
             self.converged_, self.n_iter_, self.llf_, self.method_ = True, 0, 0.0, None
             return self
-        design = _scaled_design(values, mean, scale)
+        design = scaled_design(values, mean, scale)
         self._check_rank(design)
         endog = np.searchsorted(self.classes_, codes)
         result = self._fit_mnlogit(design, endog)
@@ -310,7 +310,7 @@ class MultinomialLogitBehaviour:
         llf = _log_likelihood(design, endog, params)
         if llf > _SEPARATION_LLF:
             raise UserInputError(_breakdown_message("every action taken is predicted with probability 1"))
-        self.params_ = self._unscale(params, mean, scale)
+        self.params_ = unscale(params, mean, scale)
         self.converged_ = result.converged
         self.n_iter_ = result.iterations
         self.llf_ = llf
@@ -323,7 +323,7 @@ class MultinomialLogitBehaviour:
         if names is not None and self.feature_names_in_ is not None and names != self.feature_names_in_:
             raise UserInputError("X has different column names or order than at fit; pass the same design columns")
         proba = np.zeros((values.shape[0], self.n_actions_))
-        for rows in _row_blocks(values.shape[0]):  # blocks: no full-size copy of the design
+        for rows in row_blocks(values.shape[0]):  # blocks: no full-size copy of the design
             design = np.column_stack([np.ones(len(values[rows])), values[rows]])
             proba[rows, self.classes_] = np.exp(_log_proba(design, self.params_))
         return proba
@@ -376,11 +376,11 @@ class MultinomialLogitBehaviour:
                 stacklevel=3,
             )
 
-    @staticmethod
-    def _unscale(params_scaled, mean, scale):
-        """Map coefficients on centred and scaled covariates back to the original covariates."""
-        varying = scale > 0
-        slopes = np.zeros((scale.size, params_scaled.shape[1]))
-        slopes[varying] = params_scaled[1:] / scale[varying, None]
-        intercept = params_scaled[0] - mean @ slopes
-        return np.vstack([intercept, slopes])
+
+def unscale(params_scaled, mean, scale):
+    """Map coefficients on centred and scaled covariates back to the original covariates."""
+    varying = scale > 0
+    slopes = np.zeros((scale.size, params_scaled.shape[1]))
+    slopes[varying] = params_scaled[1:] / scale[varying, None]
+    intercept = params_scaled[0] - mean @ slopes
+    return np.vstack([intercept, slopes])

@@ -20,11 +20,12 @@ from regimewise.core.arrays import as_actions
 from regimewise.errors import ConvergenceWarning
 from regimewise.usual_care.logit import (
     MultinomialLogitBehaviour,
-    _row_blocks,
-    _scaled_design,
-    _standardise,
     as_design,
     prediction_design,
+    row_blocks,
+    scaled_design,
+    standardise,
+    unscale,
 )
 
 # The optimiser works on z = logit(share); these bounds keep the share in about [1e-9, 1 - 1e-9].
@@ -50,7 +51,7 @@ def _mixture_pass(design, params, z, endog, n_classes):
     score = np.zeros(n_other * n_cols + 1)
     hessian = np.zeros((n_other * n_cols + 1, n_other * n_cols + 1))
     classes = np.arange(n_classes)
-    for rows in _row_blocks(design.shape[0]):
+    for rows in row_blocks(design.shape[0]):
         X = design[rows]
         taken = endog[rows]
         linear = np.zeros((taken.size, n_classes))
@@ -206,8 +207,8 @@ class FloorMixtureLogitBehaviour:
         values, _ = as_design(X)
         codes = as_actions(action, n_actions, n_rows=values.shape[0])
         endog = np.searchsorted(self.classes_, codes)
-        mean, scale = _standardise(values)
-        design = _scaled_design(values, mean, scale)
+        mean, scale = standardise(values)
+        design = scaled_design(values, mean, scale)
         varying = scale > 0  # the plain logit's coefficients on the centred and scaled covariates start the fit
         intercept, slopes = logit.params_[0] + mean @ logit.params_[1:], logit.params_[1:][varying]
         start = np.vstack([intercept, slopes * scale[varying, None]])
@@ -221,7 +222,7 @@ class FloorMixtureLogitBehaviour:
         self.llf_ = float(llf)
         self.share_ = float(expit(z))
         self.floor_ = self.share_ / n_classes
-        self.params_ = MultinomialLogitBehaviour._unscale(params, mean, scale)
+        self.params_ = unscale(params, mean, scale)
         self.lr_statistic_ = float(max(0.0, 2.0 * (self.llf_ - self.logit_llf_)))
         self.p_value_ = boundary_p_value(self.lr_statistic_)
         self.converged_ = bool(converged)
@@ -239,7 +240,7 @@ class FloorMixtureLogitBehaviour:
         """Probability of every action, shape (n, n_actions_), columns in action-code order."""
         values, _ = prediction_design(self, X, "params_")
         proba = np.zeros((values.shape[0], self.n_actions_))
-        for rows in _row_blocks(values.shape[0]):
+        for rows in row_blocks(values.shape[0]):
             design = np.column_stack([np.ones(len(values[rows])), values[rows]])
             linear = np.column_stack([np.zeros(design.shape[0]), design @ self.params_])
             proba[rows, self.classes_] = (1.0 - self.share_) * np.exp(log_softmax(linear, axis=1)) + self.floor_
