@@ -21,7 +21,7 @@ PACKAGE = Path(regimewise.__file__).parent
 # Lowest first: a module may import from its own layer's modules and from layers below it, never above.
 LAYERS = tuple(
     "__init__ errors cautions estimators protocol io core data usual_care describe regime evaluation survival "
-    "sensitivity bootstrap report appendix demo workflow cli".split()
+    "sensitivity bootstrap report appendix demo selfcheck workflow cli".split()
 )
 
 
