@@ -28,13 +28,13 @@ from pathlib import Path
 import numpy as np
 
 from regimewise.bootstrap.intervals import combine
-from regimewise.demo.strategies import IncrementalOdds, OverrideGain, PartialAdoption
 from regimewise.demo.truth import always, true_returns
 from regimewise.evaluation.strategies import protocol_strategies
 from regimewise.evaluation.values import headline_estimator
 from regimewise.io import read_json, read_parquet
 from regimewise.protocol import load_protocol
 from regimewise.regime.learning import crossfit_folds, fold_regimes
+from regimewise.selfcheck.cohort import strategy_policy as simulator_strategy  # the strategy built from a regime
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
@@ -45,15 +45,6 @@ def parse(argv=None):
     parser.add_argument("--truth-episodes", type=int, default=20_000)
     parser.add_argument("--seed", type=int, default=20261202)
     return parser.parse_args(argv)
-
-
-def simulator_strategy(s, learned):
-    """The simulator's version (demo/strategies.py) of strategy ``s`` built from one fold's learned regime."""
-    if s.family == "partial_adoption":
-        return PartialAdoption(learned, s.parameter)
-    if s.family == "override_gain":
-        return OverrideGain(learned, learned.q_values, s.parameter)
-    return IncrementalOdds(learned, s.parameter)
 
 
 def fold_truth(make, folds_and_regimes, shares, usual, n, seed):

@@ -46,6 +46,13 @@ def stage_caution(protocol) -> str:
     return RECOMMENDATION_CAUTION if protocol.analysis.learn_regime else STRATEGY_CAUTION
 
 
+SELFCHECK_CAUTION = (
+    "Research use only: the self-check reruns the analysis on cohorts simulated from models fitted to these "
+    "records; it shows how the pipeline behaves in a world like the fitted one, not that its models are right, and "
+    "it is not medical advice. Treatment decisions stay with licensed clinicians under local law and ethics approval."
+)
+
+
 TERMINAL_CAUTION = (
     "Research use only: not medical advice. Treatment decisions stay with licensed clinicians, "
     "under local law and with ethics approval."

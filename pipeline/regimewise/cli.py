@@ -1,13 +1,15 @@
-"""Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | simulate | schema | verify RESULTS_DIR |
-compare RUN_A RUN_B | bundle RESULTS_DIR``.
+"""Command line: ``regimewise demo | run PROTOCOL | check PROTOCOL | selfcheck PROTOCOL | simulate | schema |
+verify RESULTS_DIR | compare RUN_A RUN_B | bundle RESULTS_DIR``.
 
 ``demo`` and ``run`` drive the Snakemake workflow in a subprocess (``python -m snakemake``) with the results
 folder as its working directory, printing one line per finished job from Snakemake's own log stream
 (:mod:`regimewise.workflow.progress`); ``check`` validates a protocol and its records and writes only the error
 list (``validation_errors.csv`` in ``--errors``, default the protocol's folder) when they fail, removing an old
-one when they pass; ``schema`` prints the protocol's JSON Schema (or writes ``--out``). ``verify``, ``compare`` and
-``bundle`` read a finished run's appendix (:mod:`regimewise.appendix`); ``verify`` reruns the workflow into a
-temporary folder (or rerenders the report only, or compares with another run) and compares every manifest entry.
+one when they pass; ``selfcheck`` reruns the analysis on cohorts simulated to look like the records
+(:mod:`regimewise.selfcheck`) in worker processes, without Snakemake; ``schema`` prints the protocol's JSON
+Schema (or writes ``--out``). ``verify``, ``compare`` and ``bundle`` read a finished run's appendix
+(:mod:`regimewise.appendix`); ``verify`` reruns the workflow into a temporary folder (or rerenders the report
+only, or compares with another run) and compares every manifest entry.
 
 ``demo`` and ``run`` hand Snakemake the command line as typed (absolute paths shortened,
 :func:`regimewise.appendix.records.shown_command`) and the command that reproduces the run, in the workflow config;
@@ -122,6 +124,31 @@ def build_parser() -> argparse.ArgumentParser:
         help=f"folder for the error list {ERROR_LIST} (default: the protocol's folder); a passing check removes an "
         "old list there",
     )
+    selfcheck = command(
+        "selfcheck",
+        "Rerun the analysis on cohorts simulated to look like your records, with known truths: bias, interval "
+        "coverage and power of the pipeline on records like yours.",
+    )
+    selfcheck.add_argument("protocol", help="protocol YAML file (required)")
+    selfcheck.add_argument(
+        "--cohorts", type=int, help="simulated cohorts (default: the protocol's selfcheck.cohorts, else 50)"
+    )
+    selfcheck.add_argument(
+        "--replicates",
+        type=int,
+        help="bootstrap replicates per simulated cohort (default: the protocol's selfcheck.replicates, else 50)",
+    )
+    selfcheck.add_argument(
+        "--truth-episodes",
+        type=int,
+        help="simulated episodes per policy for the truths (default: the protocol's selfcheck.truth_episodes, else "
+        "100000)",
+    )
+    selfcheck.add_argument(
+        "--out",
+        help="folder for selfcheck.json and selfcheck.html (default: results/<run_name of the protocol>/selfcheck)",
+    )
+    selfcheck.add_argument("--cores", type=int, default=2, help="worker processes (default: %(default)s)")
     simulate = command("simulate", "Write an invented cohort from the demo scenario's simulator (demo use only).")
     simulate.add_argument("--out", required=True, help="folder for decisions.csv, episodes.csv, truth.json (required)")
     simulate.add_argument("--episodes", type=int, default=3000, help="episodes to simulate (default: %(default)s)")
@@ -284,6 +311,34 @@ def _remove_stale(report: Path) -> None:
         print(f"removed the old error list {report}")
 
 
+def cmd_selfcheck(args) -> int:
+    from regimewise.selfcheck.run import run_selfcheck, settings  # heavy imports only for this command
+
+    if args.cores < 1:
+        raise UserInputError("--cores must be at least 1")
+    pf = load_protocol(args.protocol)
+    chosen = settings(pf, args.cohorts, args.replicates, args.truth_episodes)
+    out = output_folder(args.out or f"results/{pf.protocol.study.run_name}/selfcheck", "--out")
+    print(
+        f"regimewise {__version__}: self-check of {pf.path.name}: {chosen['cohorts']} look-alike cohorts, "
+        f"{chosen['replicates']} replicates each, {args.cores} worker(s), into {out}"
+    )
+    print(TERMINAL_CAUTION)
+    started = time.perf_counter()
+    document = run_selfcheck(pf, out, cores=args.cores, **chosen)
+    minutes, seconds = divmod(round(time.perf_counter() - started), 60)
+    uc = (document["summary"]["usual_care_value"] or {}).get("all") or {}
+    if uc.get("coverage") is not None:
+        print(
+            f"usual care's value: {100 * uc['coverage']:.1f}% coverage (Monte Carlo SE "
+            f"{100 * uc['coverage_mcse']:.1f} points) over {uc['n_used']} cohorts"
+        )
+    print(f"self-check done in {minutes} min {seconds} s")
+    print(f"page:    {out / 'selfcheck.html'}")
+    print(f"details: {out / 'selfcheck.json'}")
+    return 0
+
+
 def cmd_simulate(args) -> int:
     if args.episodes < 1:
         raise UserInputError(f"--episodes must be at least 1 (got {args.episodes})")
@@ -411,6 +466,7 @@ COMMANDS = {
     "demo": cmd_demo,
     "run": cmd_run,
     "check": cmd_check,
+    "selfcheck": cmd_selfcheck,
     "simulate": cmd_simulate,
     "schema": cmd_schema,
     "verify": cmd_verify,

@@ -17,6 +17,7 @@ STREAMS = {
     "cross_fit": 7,  # patient folds of the cross-fitted evaluation of the learned regime
     "sweep": 9,  # (9, i, r): replicate r of sweep specification i
     "readable_tree": 10,  # the patients a readable tree is fitted on, above its row cap
+    "selfcheck": 11,  # (11, c): simulated cohort c of the self-check and the draws of its truths
 }
 
 # What each stream draws and what its index selects (written to the appendix's seeds.json).
@@ -27,6 +28,7 @@ STREAM_USES = {
     "cross_fit": ("patient folds of the cross-fitted evaluation of the learned regime", ()),
     "sweep": ("replicate r of sweep specification i", ("i", "r")),
     "readable_tree": ("the patients the readable tree is fitted on when the decisions exceed its row cap", ()),
+    "selfcheck": ("simulated cohort c of the self-check and the draws of its truths", ("c",)),
 }
 
 RETIRED = (3, 4, 5, 8)  # numbers used by earlier versions; never reused

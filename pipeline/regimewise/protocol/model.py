@@ -26,6 +26,7 @@ from regimewise.protocol.sections import (
     QModelSpec,
     ReportSpec,
     RewardSpec,
+    SelfCheckSpec,
     SensitivitySpec,
     StateVariable,
     Study,
@@ -67,6 +68,9 @@ class Protocol(Strict):
         "and a default action, each evaluated, bootstrapped and (with survival) followed like the fixed strategies",
     )
     analysis: AnalysisSpec = AnalysisSpec()
+    selfcheck: SelfCheckSpec | None = Field(
+        None, description="optional settings of `regimewise selfcheck` (none: its defaults)"
+    )
 
     @model_validator(mode="after")
     def _names_unique(self) -> Protocol:

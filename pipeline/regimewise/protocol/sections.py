@@ -630,6 +630,23 @@ SWEEP_AXES = (
 MAX_SPECIFICATIONS = 100
 
 
+class SelfCheckSpec(Strict):
+    """The self-check: the analysis rerun on cohorts simulated from a look-alike world fitted to the records
+    (plasmode simulation; Franklin et al. 2014), to measure its bias and interval coverage on records like these."""
+
+    cohorts: Annotated[WholeNumber, Field(ge=2, le=1000)] = Field(
+        50, description="simulated cohorts, each of as many episodes as the records"
+    )
+    replicates: Annotated[WholeNumber, Field(ge=20, le=1000)] = Field(
+        50,
+        description="bootstrap replicates per simulated cohort (may be fewer than evaluation.replicates; the "
+        "self-check's page states both)",
+    )
+    truth_episodes: Annotated[WholeNumber, Field(ge=1000, le=1_000_000)] = Field(
+        100_000, description="simulated episodes per policy for each cohort's truths (common random numbers)"
+    )
+
+
 class SweepSpec(Strict):
     """Specification sweep: the learned-minus-usual-care contrast recomputed under alternative analysis choices."""
 

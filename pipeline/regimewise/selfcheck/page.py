@@ -1,0 +1,139 @@
+"""selfcheck.html: the self-check's section as one self-contained page (the report's stylesheet, no scripts)."""
+
+from __future__ import annotations
+
+from html import escape
+
+from regimewise.report.html import report_stylesheet
+
+TARGET_WORDS = {"value": "value", "contrast": "difference from usual care"}
+
+
+def _number(x, digits=3):
+    return "—" if x is None else f"{x:,.{digits}f}"
+
+
+def _percent(x, digits=1):
+    return "—" if x is None else f"{100 * x:.{digits}f}%"
+
+
+def _points(x):
+    return "—" if x is None else f"{100 * x:.1f}"
+
+
+def _coverage(measure):
+    if not measure or measure.get("coverage") is None:
+        return "—"
+    return f"{_percent(measure['coverage'])} ± {_points(measure['coverage_mcse'])}"
+
+
+def _share_of(measure):
+    """A coverage in words: '75.0% (Monte Carlo SE 21.7 points) of 4'."""
+    if not measure or measure.get("coverage") is None:
+        return "— of the"
+    mcse = _points(measure["coverage_mcse"])
+    return f"{_percent(measure['coverage'])} (Monte Carlo SE {mcse} points) of {measure['n_used']}"
+
+
+def _performance_table(summary, names) -> str:
+    head = (
+        "<tr><th scope='col'>Strategy</th><th scope='col'>Estimator</th><th scope='col'>Target</th>"
+        "<th scope='col'>Cohorts</th><th scope='col'>Bias (MCSE)</th><th scope='col'>Empirical SE</th>"
+        "<th scope='col'>Mean estimated SE</th><th scope='col'>Coverage ± MCSE (points)</th>"
+        "<th scope='col'>Mean width</th><th scope='col'>Supported in</th>"
+        "<th scope='col'>Coverage where supported</th></tr>"
+    )
+    body = []
+    for row in summary["rows"]:
+        m, s = row["all"] or {}, row["supported"]
+        body.append(
+            f"<tr><td>{escape(names.get(row['strategy'], row['strategy']))}</td><td>{escape(row['estimator'])}</td>"
+            f"<td>{TARGET_WORDS[row['target']]}</td><td>{m.get('n_used', 0)}</td>"
+            f"<td>{_number(m.get('bias'))} ({_number(m.get('bias_mcse'))})</td>"
+            f"<td>{_number(m.get('empirical_se'))}</td><td>{_number(m.get('model_se'))}</td>"
+            f"<td>{_coverage(m)}</td><td>{_number(m.get('mean_width'))}</td>"
+            f"<td>{row['cohorts_supported']}</td><td>{_coverage(s)}</td></tr>"
+        )
+    caption = "How the pipeline performed on the look-alike cohorts, by strategy, estimator and target"
+    return f"<table><caption>{caption}</caption><thead>{head}</thead>{''.join(body)}</table>"
+
+
+def _fit_table(fit, labels) -> str:
+    rows = "".join(
+        f"<tr><td>{escape(a)}</td><td>{_percent(fit['action_shares']['records'][a])}</td>"
+        f"<td>{_percent(fit['action_shares']['simulated'][a])}</td></tr>"
+        for a in labels
+    )
+    r = fit["mean_return"]
+    d = fit["decisions_per_episode"]
+    rows += (
+        f"<tr><td>mean return (SE)</td><td>{_number(r['records'])} ({_number(r['records_se'])})</td>"
+        f"<td>{_number(r['simulated'])} ({_number(r['simulated_se'])})</td></tr>"
+        f"<tr><td>decisions per episode</td><td>{_number(d['records'], 2)}</td>"
+        f"<td>{_number(d['simulated'], 2)}</td></tr>"
+    )
+    head = "<tr><th scope='col'></th><th scope='col'>Records</th><th scope='col'>One simulated cohort</th></tr>"
+    caption = "The look-alike world against the records: usual care's action shares, return, follow-up"
+    return f"<table><caption>{caption}</caption><thead>{head}</thead>{rows}</table>"
+
+
+def selfcheck_page(document: dict, protocol, cautions) -> str:
+    """The page: cautions, the headline sentence, the performance table, the fit check and the settings."""
+    s, summary, fit = document["settings"], document["summary"], document["fit_check"]
+    headline = summary.get("headline") or {}
+    names = {"usual_care": "Usual care", "learned": "Learned regime"}
+    if headline.get("name"):
+        names[headline["name"]] = headline["name"].replace("_", " ")
+    est = summary["estimator"]
+    uc = (summary.get("usual_care_value") or {}).get("all") or {}
+    sentences = [
+        f"On records like these, the pipeline's {100 * protocol.evaluation.interval_level:.0f}% intervals for usual "
+        f"care's value ({escape(est)}) covered the truth in {_share_of(uc)} look-alike cohorts."
+    ]
+    h = (headline.get("all") or {}) if headline else {}
+    if h:
+        sentences.append(
+            f"For the headline strategy ({escape(names[headline['name']])}), the interval of its difference from usual "
+            f"care covered the truth in {_share_of(h)} cohorts, and excluded zero (detected a benefit; the mean true "
+            f"difference was {_number(summary['mean_true_contrast'])}) in {_percent(h.get('power'))} of them."
+        )
+    flagged = fit["flagged"]
+    listed = ", ".join(
+        f"{escape(f['state'])} at decision point {f['step']} ({_number(f['smd'], 2)})" for f in flagged[:5]
+    )
+    drift = (
+        f"{len(flagged)} state and decision-point pair(s) differ from the records by a standardised difference above "
+        f"{fit['smd_flag']}: {listed}{', …' if len(flagged) > 5 else ''}"
+        if flagged
+        else f"every state at every decision point is within a standardised difference of {fit['smd_flag']} of the "
+        f"records (largest {_number(fit['largest_smd'])})"
+    )
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+        f"<title>Self-check: {escape(protocol.study.title)}</title><style>{report_stylesheet()}</style></head><body>",
+        "<main>",
+        f"<h1>Self-check on look-alike cohorts</h1><p>{escape(protocol.study.title)}</p>",
+        "<section class='cautions'>" + "".join(f"<p>{escape(c)}</p>" for c in (document["caution"], *cautions)),
+        "</section>",
+        "<h2>What the self-check found</h2><p>" + " ".join(sentences) + "</p>",
+        "<p>The look-alike world is only as good as its fitted models (plasmode simulation: Franklin, Schneeweiss, "
+        "Polinski &amp; Rassen 2014): it keeps the records' first decisions and simulates the rest from regressions "
+        "of each state, the reward and follow-up on the state and action, with usual care from the protocol's "
+        "usual-care model and no hidden confounding. Good coverage here says the estimators work when those models "
+        "are right; it cannot show that they are. Truths are those of the rules learned in each simulated cohort "
+        "(the cross-fitted target), computed on "
+        f"{s['truth_episodes']:,} simulated episodes per policy with common random numbers. Monte Carlo standard "
+        "errors follow Morris, White &amp; Crowther (2019, Stat Med 38:2074).</p>",
+        _performance_table(summary, names),
+        f"<h2>How well the world reproduces the records</h2><p>{drift}.</p>",
+        _fit_table(fit, protocol.action_labels),
+        "<h2>Settings</h2><ul>",
+        f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each</li>",
+        f"<li>{s['replicates']} bootstrap replicates per cohort (the analysis itself uses "
+        f"{s['analysis_replicates']})</li>",
+        f"<li>root seed {s['seed']}; {escape(s['seed_stream'])}</li>",
+        f"<li>{document['seconds']:.0f} seconds in all</li></ul>",
+        "</main></body></html>",
+    ]
+    return "\n".join(parts) + "\n"

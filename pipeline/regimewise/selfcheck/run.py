@@ -1,0 +1,172 @@
+"""The self-check from start to end: fit the look-alike world on the validated records, rerun the analysis on R
+simulated cohorts (in parallel processes), summarise how the pipeline performed, and write selfcheck.json and
+selfcheck.html."""
+
+from __future__ import annotations
+
+import time
+import warnings
+from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
+
+import numpy as np
+from pydantic import ValidationError
+from threadpoolctl import threadpool_limits
+
+from regimewise.cautions import REPORT_CAUTIONS, SELFCHECK_CAUTION
+from regimewise.data.validate import validate_records
+from regimewise.errors import UserInputError
+from regimewise.evaluation.values import headline_estimator
+from regimewise.io import write_json, write_text
+from regimewise.protocol import ProtocolFile, SelfCheckSpec, load_protocol
+from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_seeds, headline_strategy, run_cohort
+from regimewise.selfcheck.fitcheck import reproduction
+from regimewise.selfcheck.page import selfcheck_page
+from regimewise.selfcheck.performance import performance
+from regimewise.selfcheck.world import LookAlikeWorld
+
+# Per worker process: the world fitted once from the records (the fit is deterministic, so every worker's world is
+# the same), the protocol and the settings.
+_WORKER: dict = {}
+
+
+def _start_worker(protocol_path: str, replicates: int, truth_episodes: int) -> None:
+    warnings.simplefilter("ignore")
+    pf = load_protocol(protocol_path)
+    with threadpool_limits(limits=1):
+        world = LookAlikeWorld.fit(validate_records(pf).decisions, pf.protocol)
+    _WORKER.update(world=world, protocol=pf.protocol, replicates=replicates, truth_episodes=truth_episodes)
+
+
+def _cohort_job(cohort: int) -> dict:
+    with threadpool_limits(limits=1):
+        return run_cohort(
+            _WORKER["world"], _WORKER["protocol"], cohort, _WORKER["replicates"], _WORKER["truth_episodes"]
+        )
+
+
+def settings(pf: ProtocolFile, cohorts: int | None, replicates: int | None, truth_episodes: int | None) -> dict:
+    """The self-check's settings: the command line's, else the protocol's ``selfcheck`` section's, else defaults;
+    checked against the section's bounds (one line naming the first setting out of them)."""
+    spec = pf.protocol.selfcheck or SelfCheckSpec()
+    chosen = {
+        "cohorts": cohorts if cohorts is not None else spec.cohorts,
+        "replicates": replicates if replicates is not None else spec.replicates,
+        "truth_episodes": truth_episodes if truth_episodes is not None else spec.truth_episodes,
+    }
+    try:
+        SelfCheckSpec.model_validate(chosen)
+    except ValidationError as err:
+        first = err.errors()[0]
+        name = str(first["loc"][0])
+        raise UserInputError(
+            f"self-check setting {name} = {chosen[name]!r}: {first['msg'].lower()} (--{name.replace('_', '-')})"
+        ) from None
+    return chosen
+
+
+def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int) -> dict:
+    """Run the whole self-check; returns what selfcheck.json holds (written to ``out`` with selfcheck.html)."""
+    started = time.perf_counter()
+    records = validate_records(pf).decisions
+    with threadpool_limits(limits=1), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        world = LookAlikeWorld.fit(records, pf.protocol)  # in this process first: a bad cohort fails fast
+        first, _ = world.simulate(world.n_episodes, cohort_seeds(pf.protocol, 0)[0])
+    fit_check = reproduction(records, first, pf.protocol)
+    with ProcessPoolExecutor(
+        max_workers=max(1, min(cores, cohorts)),
+        initializer=_start_worker,
+        initargs=(str(pf.path), replicates, truth_episodes),
+    ) as pool:
+        results = list(pool.map(_cohort_job, range(cohorts)))
+    elapsed = time.perf_counter() - started
+    summary = summarise(results, pf.protocol)
+    document = {
+        "caution": SELFCHECK_CAUTION,
+        "settings": {
+            "cohorts": cohorts,
+            "episodes_per_cohort": world.n_episodes,
+            "replicates": replicates,
+            "analysis_replicates": pf.protocol.evaluation.replicates,
+            "truth_episodes": truth_episodes,
+            "seed": pf.protocol.seed,
+            "seed_stream": "selfcheck (11, c): cohort c's records and the draws of its truths",
+        },
+        "world": {
+            "numeric_states": list(world.numeric_states),
+            "modelled_discrete_states": list(world.class_states),
+            "carried_states": list(world.carried_states),
+        },
+        "fit_check": fit_check,
+        "summary": summary,
+        "cohorts": results,
+        "seconds": round(elapsed, 1),
+    }
+    write_json(out / "selfcheck.json", document)
+    write_text(out / "selfcheck.html", selfcheck_page(document, pf.protocol, REPORT_CAUTIONS))
+    return document
+
+
+def _column(results, name, est, key):
+    values = [r["estimates"].get(name, {}).get(est, {}).get(key) for r in results]
+    return np.array([np.nan if v is None else v for v in values], dtype=float)
+
+
+def _limits(results, name, est, key):
+    pairs = [r["estimates"].get(name, {}).get(est, {}).get(key) or [None, None] for r in results]
+    return tuple(np.array([np.nan if v is None else v for v in column], dtype=float) for column in zip(*pairs))
+
+
+def _measure(estimate, truth, se, low, high, rows):
+    """Performance on the cohorts in ``rows`` with an estimate and an interval (None below two such cohorts)."""
+    usable = rows & np.isfinite(estimate) & np.isfinite(low) & np.isfinite(high)
+    if usable.sum() < 2:
+        return None
+    se_used = se[usable] if np.all(np.isfinite(se[usable])) else None
+    return performance(estimate[usable], truth[usable], se_used, low[usable], high[usable])
+
+
+def summarise(results: list[dict], protocol) -> dict:
+    """Performance of every estimator for every compared strategy's value and contrast with usual care, over all
+    cohorts and over the cohorts where the estimate is supported (Morris, White & Crowther 2019)."""
+    names = [USUAL_CARE] + ([LEARNED] if LEARNED in results[0]["truths"] else [])
+    strategy = headline_strategy(protocol) if protocol.analysis.learn_regime else None
+    if strategy is not None:
+        names.append(strategy.name)
+    rows = []
+    for name in names:
+        for est in protocol.evaluation.estimators:
+            verdicts = np.array([r["estimates"].get(name, {}).get(est, {}).get("verdict") for r in results])
+            supported = verdicts == "supported"
+            for target in ("value",) if name == USUAL_CARE else ("value", "contrast"):
+                truth = np.array([r["truths"][name][target] for r in results], dtype=float)
+                estimate = _column(results, name, est, target)
+                se = _column(results, name, est, f"{target}_se")
+                low, high = _limits(results, name, est, f"{target}_interval")
+                everywhere = np.ones(len(results), dtype=bool)
+                rows.append(
+                    {
+                        "strategy": name,
+                        "estimator": est,
+                        "target": target,
+                        "cohorts_supported": int(supported.sum()),
+                        "all": _measure(estimate, truth, se, low, high, everywhere),
+                        "supported": _measure(estimate, truth, se, low, high, supported),
+                    }
+                )
+    headline_est = headline_estimator(protocol)
+
+    def pick(name, target):
+        return next(
+            (r for r in rows if (r["strategy"], r["estimator"], r["target"]) == (name, headline_est, target)), None
+        )
+
+    true_contrasts = [r["truths"][strategy.name]["contrast"] for r in results] if strategy is not None else []
+    return {
+        "estimator": headline_est,
+        "rows": rows,
+        "usual_care_value": pick(USUAL_CARE, "value"),
+        "headline": None if strategy is None else {"name": strategy.name, **(pick(strategy.name, "contrast") or {})},
+        "mean_true_contrast": float(np.mean(true_contrasts)) if true_contrasts else None,
+    }

@@ -1,0 +1,330 @@
+"""The look-alike world: a generative model of the user's own cohort, for a plasmode simulation.
+
+A plasmode simulation keeps the real covariate structure and simulates from models fitted to the real data, so that
+the truth is known (Franklin, Schneeweiss, Polinski & Rassen 2014, Comput Stat Data Anal 72:219). Here:
+
+* **baseline**: each simulated episode starts from the first decision of a real episode, drawn with replacement
+  (its states and its day);
+* **transitions**, one set of models per decision point t: every numeric state at t + 1 by least squares on the
+  states at t, the action (indicators) and the action's interactions with the numeric states, plus a residual of
+  the same fit; a binary or categorical state by a multinomial logistic regression on the same covariates (a state
+  that never changes within an episode in the records is carried forward unchanged);
+* **rewards**: at each decision point by least squares on the same covariates, plus a residual;
+* **residuals are drawn jointly**: one real decision of the same step is drawn per simulated decision, and its
+  residuals of every numeric state and of the reward are used together (with its gap in days to the next
+  decision), which keeps the dependence between the noises of the states and the reward;
+* **follow-up**: whether an episode has a decision at t + 1, by logistic regression on the same covariates (a
+  constant where every or no episode continues);
+* **usual care**: the protocol's usual-care model fitted on the records (:func:`fit_usual_care`).
+
+Numeric states are kept within their plausible range; integer states are rounded. Each episode is its own
+patient, and the states are complete (no missing values). The world is only as good as these models; the
+self-check reports how well it reproduces the records (:func:`reproduction`). Research use only.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+import pandas as pd
+from sklearn.linear_model import LogisticRegression
+
+from regimewise.core.features import StateScaler, action_codes, level_values
+from regimewise.errors import UserInputError
+from regimewise.protocol import Protocol
+from regimewise.usual_care.fitting import UsualCareModel, fit_usual_care
+
+# Fewest decisions per fitted coefficient of a per-step model (common practice for linear models, no source).
+ROWS_PER_COEFFICIENT = 2
+# Penalty of the logistic models (scikit-learn's C on standardised covariates): mild, so that a state or a
+# follow-up that the covariates separate gets probabilities near 0 and 1 instead of a failed fit.
+LOGISTIC_C = 1.0
+
+
+def _solve(design, target):
+    """Least-squares coefficients (minimum-norm where the design is rank-deficient, e.g. an action never taken)."""
+    return np.linalg.lstsq(design, target, rcond=None)[0]
+
+
+@dataclass(frozen=True)
+class _ClassModel:
+    """A binary or categorical state (or the follow-up) at the next decision: classes and a fitted logistic model,
+    or one class with probability 1 (``model`` None)."""
+
+    classes: np.ndarray
+    model: LogisticRegression | None
+
+    @classmethod
+    def fit(cls, design, values):
+        classes, codes = np.unique(values, return_inverse=True)
+        if classes.size == 1:
+            return cls(classes, None)
+        model = LogisticRegression(C=LOGISTIC_C, max_iter=2000).fit(design[:, 1:], codes)
+        return cls(classes, model)
+
+    def draw(self, design, uniforms):
+        if self.model is None:
+            return np.repeat(self.classes, len(design))
+        cumulative = np.cumsum(self.model.predict_proba(design[:, 1:]), axis=1)
+        index = np.minimum((uniforms[:, None] > cumulative).sum(axis=1), self.classes.size - 1)
+        return self.classes[index]
+
+
+@dataclass(frozen=True)
+class _Step:
+    """The models of one decision point: next states, reward, follow-up, and the residual donors."""
+
+    numeric: dict  # state -> coefficients
+    classes: dict  # state -> _ClassModel
+    reward: np.ndarray
+    follow_up: _ClassModel | None  # None at the last decision point
+    residuals: np.ndarray  # (donors, numeric states) of the decisions with a next decision
+    reward_residuals: np.ndarray  # (donors,) aligned with ``residuals``; all decisions when none continues
+    gaps: np.ndarray  # (donors,) days to the next decision
+
+
+@dataclass(frozen=True)
+class LookAlikeWorld:
+    """A fitted generative model of a cohort (see the module's description); :meth:`simulate` draws cohorts and
+    :meth:`returns` gives every simulated episode's return under a policy, with common random numbers."""
+
+    protocol: Protocol
+    scaler: StateScaler
+    usual_care: UsualCareModel
+    baseline: pd.DataFrame
+    steps: tuple[_Step, ...]
+    numeric_states: tuple[str, ...]
+    class_states: tuple[str, ...]
+    carried_states: tuple[str, ...]
+    n_episodes: int
+
+    # ------------------------------------------------------------------------------------------------- fitting
+    @classmethod
+    def fit(cls, decisions: pd.DataFrame, protocol: Protocol) -> LookAlikeWorld:
+        """Fit the world on clean decisions (:func:`regimewise.data.records.clean_decisions`).
+
+        Raises :class:`UserInputError` in one line when a decision point has too few decisions for its models.
+        """
+        frame = decisions.reset_index(drop=True)
+        episode = frame["episode_id"].to_numpy()
+        step = frame["step"].to_numpy()
+        following = np.r_[episode[1:] == episode[:-1], False] & np.r_[step[1:] == step[:-1] + 1, False]
+        starts = np.r_[True, episode[1:] != episode[:-1]]
+        if np.any(step[starts] != 0):
+            raise UserInputError("the self-check needs every episode to start at decision point 0; some start later")
+        scaler = StateScaler.fit(frame, protocol)
+        kinds = {s.name: s.kind for s in protocol.states}
+        carried = tuple(
+            s.name
+            for s in protocol.states
+            if s.kind in ("binary", "categorical") and _never_changes(frame, s.name, following)
+        )
+        numeric = tuple(s.name for s in protocol.states if kinds[s.name] in ("continuous", "integer"))
+        discrete = [s.name for s in protocol.states if s.kind in ("binary", "categorical")]
+        classes = tuple(name for name in discrete if name not in carried)
+        baseline = frame.loc[starts].reset_index(drop=True)
+        world = cls(protocol, scaler, None, baseline, (), numeric, classes, carried, int(starts.sum()))
+        codes = action_codes(frame, protocol.action_labels)
+        steps = []
+        for t in range(int(step.max()) + 1):
+            rows = np.flatnonzero(step == t)
+            steps.append(world._fit_step(frame, codes, rows, following[rows], t))
+        # usual care last: a cohort too small for the per-step models is refused by the check above, in our words
+        return replace(world, steps=tuple(steps), usual_care=fit_usual_care(frame, protocol))
+
+    def _fit_step(self, frame, codes, rows, continues, t):
+        design = self.design(frame.iloc[rows], codes[rows])
+        need = ROWS_PER_COEFFICIENT * design.shape[1]
+        if rows.size < need:
+            raise UserInputError(
+                f"the self-check needs at least {need} decisions at decision point {t} to fit its models "
+                f"({design.shape[1]} coefficients each); the records have {rows.size}: use fewer states or a "
+                "shorter horizon, or do without the self-check"
+            )
+        reward = frame["reward"].to_numpy()[rows]
+        reward_coef = _solve(design, reward)
+        reward_residuals = reward - design @ reward_coef
+        if not continues.any():
+            return _Step({}, {}, reward_coef, None, np.zeros((rows.size, 0)), reward_residuals, np.zeros(rows.size))
+        nxt = rows[continues] + 1
+        moving = design[continues]
+        if continues.sum() < need:
+            raise UserInputError(
+                f"the self-check needs at least {need} episodes that go on from decision point {t} to {t + 1} to "
+                f"fit its transition models; the records have {int(continues.sum())}: use a shorter horizon"
+            )
+        numeric, residuals = {}, []
+        for name in self.numeric_states:
+            target = frame[name].to_numpy(dtype=float)[nxt]
+            numeric[name] = _solve(moving, target)
+            residuals.append(target - moving @ numeric[name])
+        class_models = {
+            name: _ClassModel.fit(moving, _state_text(frame, name, self.protocol)[nxt]) for name in self.class_states
+        }
+        follow_up = _ClassModel.fit(design, continues.astype(int))
+        days = frame["day"].to_numpy(dtype=float)
+        return _Step(
+            numeric,
+            class_models,
+            reward_coef,
+            follow_up,
+            np.column_stack(residuals) if residuals else np.zeros((nxt.size, 0)),
+            reward_residuals[continues],
+            days[nxt] - days[rows[continues]],
+        )
+
+    # ------------------------------------------------------------------------------------------------- design
+    def design(self, frame: pd.DataFrame, codes: np.ndarray) -> np.ndarray:
+        """Covariates of every model: 1, the scaled states (categorical as dummies), the action's indicators
+        (the protocol's first action the reference) and their products with the numeric states."""
+        width = len(self.scaler.names) - len(self.scaler.indicators)
+        states = (self.scaler.state_matrix(frame) - np.asarray(self.scaler.means[:width])) / np.asarray(
+            self.scaler.scales[:width]
+        )
+        numeric = [j for j, name in enumerate(self.scaler.names[:width]) if name in self.numeric_states]
+        n_actions = len(self.protocol.actions)
+        indicators = (np.asarray(codes)[:, None] == np.arange(1, n_actions)).astype(float)
+        products = (indicators[:, :, None] * states[:, None, numeric]).reshape(len(frame), -1)
+        return np.column_stack([np.ones(len(frame)), states, indicators, products])
+
+    # ------------------------------------------------------------------------------------------------- rollouts
+    def _draws(self, n, seed):
+        """Every random number an episode may use, drawn up front in fixed shapes (common random numbers: the
+        same seed gives the same draws whatever the policy)."""
+        horizon = len(self.steps)
+        streams = np.random.SeedSequence(seed).spawn(6)
+        rng = [np.random.default_rng(s) for s in streams]
+        return {
+            "baseline": rng[0].integers(0, self.n_episodes, n),
+            "donor": rng[1].random((n, horizon)),
+            "classes": rng[2].random((n, horizon, max(len(self.class_states), 1))),
+            "usual_care": rng[3].random((n, horizon)),
+            "follow_up": rng[4].random((n, horizon)),
+            "coins": rng[5].random((n, horizon)),
+        }
+
+    def _rollout(self, n, seed, policy, record=False):
+        """Simulate ``n`` episodes under ``policy``; returns the decisions (one frame per decision point, with
+        ``record``, else empty), usual care's probabilities of the simulated decisions, and each episode's discounted
+        return."""
+        draws = self._draws(n, seed)
+        p = self.protocol
+        start = self.baseline.iloc[draws["baseline"]].reset_index(drop=True)
+        state = start[[s.name for s in p.states]].copy()
+        day = start["day"].to_numpy(dtype=float)
+        active = np.ones(n, dtype=bool)
+        returns = np.zeros(n)
+        frames, probabilities = [], []
+        # a regime that does not act on usual care's natural action needs no usual-care probabilities
+        needs_usual_care = record or isinstance(policy, str) or hasattr(policy, "modify")
+        for t, models in enumerate(self.steps):
+            index = np.flatnonzero(active)
+            current = state.iloc[index].reset_index(drop=True)
+            current["step"] = t
+            proba = self.usual_care.predict_proba(current) if needs_usual_care else None
+            natural = _draw_codes(proba, draws["usual_care"][index, t]) if needs_usual_care else None
+            codes = _policy_codes(policy, current, natural, proba, draws["coins"][index, t])
+            design = self.design(current, codes)
+            donor = self._donor(models, draws["donor"][index, t])
+            reward = design @ models.reward + models.reward_residuals[donor]
+            returns[index] += p.discount**t * reward
+            if record:
+                frames.append(self._decisions(current, index, day[index], codes, reward, t))
+                probabilities.append(proba)
+            if models.follow_up is None:
+                break
+            goes_on = models.follow_up.draw(design, draws["follow_up"][index, t]).astype(bool)
+            nxt = self._next_states(models, current, design, donor, draws["classes"][index, t])
+            for j, name in enumerate(nxt.columns):
+                state.iloc[index, j] = nxt[name].to_numpy()
+            day[index] = day[index] + models.gaps[donor]
+            active[index[~goes_on]] = False
+            if not active.any():
+                break
+        return frames, probabilities, returns
+
+    def _donor(self, models, uniforms):
+        return np.minimum((uniforms * len(models.reward_residuals)).astype(np.int64), len(models.reward_residuals) - 1)
+
+    def _next_states(self, models, current, design, donor, uniforms):
+        p = self.protocol
+        nxt = current[[s.name for s in p.states]].copy()
+        for j, name in enumerate(self.numeric_states):
+            spec = next(s for s in p.states if s.name == name)
+            values = design @ models.numeric[name] + models.residuals[donor, j]
+            if spec.kind == "integer":
+                values = np.round(values)
+            nxt[name] = np.clip(values, *spec.plausible_range)
+        for j, name in enumerate(self.class_states):
+            drawn = models.classes[name].draw(design, uniforms[:, j])
+            spec = next(s for s in p.states if s.name == name)
+            nxt[name] = drawn.astype(float) if spec.kind == "binary" else drawn
+        return nxt
+
+    def _decisions(self, current, index, day, codes, reward, t):
+        labels = np.asarray(self.protocol.action_labels, dtype=object)
+        frame = pd.DataFrame(
+            {
+                "episode_id": [f"S{i + 1:07d}" for i in index],
+                "step": np.full(index.size, t, dtype=np.int64),
+                "day": np.round(day).astype(np.int64),
+            }
+        )
+        frame.insert(1, "patient_id", frame["episode_id"])
+        for s in self.protocol.states:
+            frame[s.name] = current[s.name].to_numpy()
+        frame["action"] = labels[codes]
+        frame["reward"] = reward
+        return frame
+
+    def simulate(self, n: int, seed: int) -> tuple[pd.DataFrame, np.ndarray]:
+        """A cohort of ``n`` episodes under usual care: clean decisions (episode and step order) and usual care's
+        probabilities of every simulated decision (the truth of the world's usual care)."""
+        _check_count(n)
+        frames, probabilities, _ = self._rollout(n, seed, "usual_care", record=True)
+        decisions = pd.concat(frames, ignore_index=True)
+        proba = np.concatenate(probabilities)
+        order = np.lexsort((decisions["step"].to_numpy(), decisions["episode_id"].to_numpy()))
+        return decisions.iloc[order].reset_index(drop=True), proba[order]
+
+    def returns(self, policy, n: int, seed: int) -> np.ndarray:
+        """Every episode's discounted return under ``policy``: ``"usual_care"``, a regime (a callable of a state
+        frame giving action codes, such as a learned regime), or a strategy acting on usual care's natural action
+        (an object with ``modify(frame, natural, proba, coins)``, as in :mod:`regimewise.demo.strategies`). The
+        same ``seed`` gives every policy the same draws (common random numbers)."""
+        _check_count(n)
+        return self._rollout(n, seed, policy)[2]
+
+
+# ----------------------------------------------------------------------------------------------------- helpers
+def _check_count(n):
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+        raise UserInputError(f"number of episodes: got {n!r}; give a positive integer")
+
+
+def _state_text(frame, name, protocol):
+    spec = next(s for s in protocol.states if s.name == name)
+    if spec.kind == "categorical":
+        return level_values(frame, name, spec.coded_levels)
+    return frame[name].to_numpy(dtype=float)
+
+
+def _never_changes(frame, name, following):
+    values = frame[name].to_numpy()
+    return bool(np.all(values[1:][following[:-1]] == values[:-1][following[:-1]]))
+
+
+def _draw_codes(proba, uniforms):
+    cumulative = np.cumsum(proba, axis=1)
+    return np.minimum((uniforms[:, None] > cumulative).sum(axis=1), proba.shape[1] - 1)
+
+
+def _policy_codes(policy, frame, natural, proba, coins):
+    if isinstance(policy, str) and policy == "usual_care":
+        return natural
+    if hasattr(policy, "modify"):
+        return np.asarray(policy.modify(frame, natural, proba, coins), dtype=np.int64)
+    if callable(policy):
+        return np.asarray(policy(frame), dtype=np.int64)
+    raise UserInputError(f"policy: got {policy!r}; give 'usual_care', a regime or a strategy")

@@ -1,0 +1,130 @@
+"""The look-alike world of the self-check, checked against the demo simulator (an external truth here: its cohorts
+are drawn from a known model that the world does not see), exact common random numbers, and hand computation."""
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from support.tiny import REPOSITORY, tiny_decisions, tiny_protocol_dict
+
+from regimewise.data.records import clean_decisions
+from regimewise.demo.simulate import simulate_cohort
+from regimewise.demo.truth import true_returns
+from regimewise.errors import UserInputError
+from regimewise.io import dumps_json
+from regimewise.protocol import load_protocol
+from regimewise.protocol.loading import ProtocolFile
+from regimewise.protocol.model import Protocol
+from regimewise.selfcheck.cohort import cohort_seeds, run_cohort
+from regimewise.selfcheck.fitcheck import episode_returns, reproduction, standardised_difference
+from regimewise.selfcheck.world import LookAlikeWorld
+
+
+@pytest.fixture(scope="module")
+def demo_world():
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    records = clean_decisions(pf, simulate_cohort(2000, seed=31, confounding_strength=0.0).decisions)
+    return pf.protocol, records, LookAlikeWorld.fit(records, pf.protocol)
+
+
+def test_world_reproduces_the_demo_cohort(demo_world):
+    # The demo simulator drew these records; the world is fitted on them alone. Tolerances are ours (no source):
+    # every action share within 1.5 points, every state's mean at every decision point within 0.1 of a pooled SD
+    # (the common rule of thumb for a standardised difference, after Austin 2009), and the mean return within 3 SEs.
+    protocol, records, world = demo_world
+    simulated, proba = world.simulate(2000, seed=3)
+    fit = reproduction(records, simulated, protocol)
+    for action in protocol.action_labels:
+        assert abs(fit["action_shares"]["records"][action] - fit["action_shares"]["simulated"][action]) < 0.015
+    assert fit["flagged"] == [] and fit["largest_smd"] < 0.1
+    r = fit["mean_return"]
+    assert abs(r["records"] - r["simulated"]) < 3 * np.hypot(r["records_se"], r["simulated_se"])
+    assert world.carried_states == ("female", "diabetes")  # never change within an episode in the records
+    np.testing.assert_allclose(proba.sum(axis=1), 1.0)
+    assert (
+        simulated["day"].is_monotonic_increasing or (simulated.groupby("episode_id")["day"].diff().dropna() > 0).all()
+    )
+
+
+def test_usual_care_truth_matches_the_simulated_cohorts(demo_world):
+    # Issue 19: without hidden confounding, the world's truth for usual care equals the mean return of its simulated
+    # cohorts within 3 Monte Carlo SEs (20 cohorts of 500 episodes against 40,000 truth episodes).
+    protocol, _, world = demo_world
+    means = np.array(
+        [episode_returns(world.simulate(500, seed=100 + c)[0], protocol.discount).mean() for c in range(20)]
+    )
+    truth = world.returns("usual_care", 40_000, seed=7)
+    mcse = np.sqrt(means.var(ddof=1) / means.size + truth.var(ddof=1) / truth.size)
+    assert abs(means.mean() - truth.mean()) < 3 * mcse
+
+
+def test_world_truth_is_close_to_the_simulator_truth(demo_world):
+    # The simulator's own usual-care value (regimewise.demo.truth, 40,000 episodes) against the world's: the world
+    # keeps the 2,000 records' first states, so it carries their sampling error (about 0.24 here); 3 of those SEs.
+    protocol, records, world = demo_world
+    simulator = true_returns("usual_care", n=40_000, seed=5, confounding_strength=0.0).mean()
+    observed = episode_returns(records, protocol.discount)
+    assert abs(world.returns("usual_care", 40_000, seed=8).mean() - simulator) < 3 * observed.std() / np.sqrt(2000)
+
+
+def test_simulated_returns_are_the_returns_under_usual_care(demo_world):
+    # Common random numbers: the cohort simulate() draws and returns("usual_care") with the same seed are the same
+    # episodes, so each episode's return agrees to rounding; a regime changes only the actions' consequences.
+    protocol, _, world = demo_world
+    simulated, _ = world.simulate(300, seed=11)
+    np.testing.assert_allclose(world.returns("usual_care", 300, seed=11), episode_returns(simulated, 1.0), rtol=1e-12)
+    hold = world.returns(lambda frame: np.zeros(len(frame), dtype=np.int64), 300, seed=11)
+    assert hold.shape == (300,) and not np.allclose(hold, episode_returns(simulated, 1.0))
+    np.testing.assert_array_equal(hold, world.returns(lambda frame: np.zeros(len(frame), dtype=np.int64), 300, 11))
+
+
+def _tiny(n_episodes, seed=0):
+    protocol = Protocol.model_validate(tiny_protocol_dict())
+    frame = tiny_decisions(n_episodes, seed)
+    pf = ProtocolFile(protocol=protocol, path=REPOSITORY / "config" / "protocol.yaml", sha256="0" * 64)
+    return protocol, clean_decisions(pf, frame)
+
+
+def test_a_changing_binary_state_is_modelled():
+    protocol, records = _tiny(300)
+    world = LookAlikeWorld.fit(records, protocol)
+    assert world.class_states == ("flag",) and world.carried_states == ()
+    simulated, _ = world.simulate(2000, seed=1)
+    assert set(np.unique(simulated["flag"])) == {0.0, 1.0}
+    assert abs(simulated["flag"].mean() - records["flag"].mean()) < 0.05  # iid flag with P = 0.5 in the records
+
+
+def test_too_small_a_cohort_is_refused_in_one_line():
+    protocol, records = _tiny(5)
+    with pytest.raises(UserInputError, match=r"needs at least \d+ decisions at decision point 0") as err:
+        LookAlikeWorld.fit(records, protocol)
+    assert "\n" not in str(err.value)
+
+
+def test_standardised_difference_by_hand():
+    # Austin 2009, Stat Med 28:3083, eq. 1: (mean_b − mean_a) / sqrt((s_a² + s_b²) / 2), sample variances.
+    a, b = np.array([1.0, 2.0, 3.0, 4.0]), np.array([2.0, 4.0, 6.0])
+    s2a = ((1 - 2.5) ** 2 + (2 - 2.5) ** 2 + (3 - 2.5) ** 2 + (4 - 2.5) ** 2) / 3
+    s2b = ((2 - 4) ** 2 + 0 + (6 - 4) ** 2) / 2
+    assert standardised_difference(a, b) == pytest.approx((4 - 2.5) / np.sqrt((s2a + s2b) / 2))
+    assert standardised_difference(np.ones(3), np.ones(3)) is None
+    assert standardised_difference(np.ones(3), 2 * np.ones(3)) == np.inf
+
+
+def test_a_cohort_job_reruns_alone_to_the_same_bytes():
+    # Issue 19: seeds come from the protocol's root seed and the cohort's index, so cohort 1 alone and after
+    # cohort 0 give the same bytes.
+    protocol, records = _tiny(120)
+    protocol = protocol.model_copy(
+        update={"evaluation": protocol.evaluation.model_copy(update={"estimators": ["wdr"]})}
+    )
+    world = LookAlikeWorld.fit(records, protocol)
+    alone = dumps_json(run_cohort(world, protocol, 1, replicates=20, truth_episodes=1000))
+    run_cohort(world, protocol, 0, replicates=20, truth_episodes=1000)
+    again = dumps_json(run_cohort(world, protocol, 1, replicates=20, truth_episodes=1000))
+    assert alone == again
+    result = json.loads(alone)
+    assert result["seed"] == cohort_seeds(protocol, 1)[0] != cohort_seeds(protocol, 0)[0]
+    assert set(result["truths"]) == {"usual_care", "learned"} and result["replicates_used"] == 20
+    assert isinstance(pd.Series(result["estimates"]["learned"]["wdr"]["value_interval"]).iloc[0], float)
