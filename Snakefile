@@ -18,6 +18,7 @@ include: "rules/bootstrap.smk"
 include: "rules/sensitivity.smk"
 include: "rules/survival.smk"
 include: "rules/sweep.smk"
+include: "rules/selfcheck.smk"
 include: "rules/report.smk"
 include: "rules/appendix.smk"
 

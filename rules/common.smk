@@ -36,6 +36,14 @@ def sweep_inputs(wildcards):
     return {"sweep": results("sweep/sweep.json")} if SETTINGS.sweep_specs else {}
 
 
+def selfcheck_cohort_files():
+    return [results(f"selfcheck/cohorts/cohort_{c}.json") for c in range(SETTINGS.selfcheck_cohorts)]
+
+
+def selfcheck_inputs(wildcards):
+    return {"selfcheck": results("selfcheck/selfcheck.json")} if SETTINGS.selfcheck_cohorts else {}
+
+
 def survival_inputs(wildcards):
     return {"survival": results("survival/survival.json")} if SETTINGS.survival else {}
 
@@ -66,7 +74,11 @@ def decisions_recorded():
 
 
 def replicates_in_job(rule):
-    return {"bootstrap_shard": SETTINGS.replicates_per_shard, "sweep_spec": SETTINGS.sweep_replicates}.get(rule, 0)
+    return {
+        "bootstrap_shard": SETTINGS.replicates_per_shard,
+        "sweep_spec": SETTINGS.sweep_replicates,
+        "selfcheck_cohort": SETTINGS.selfcheck_replicates,
+    }.get(rule, 0)
 
 
 def mem_mb(rule):

@@ -3,6 +3,7 @@ rule report:
     input:
         unpack(record_inputs),
         unpack(sweep_inputs),
+        unpack(selfcheck_inputs),
         unpack(survival_inputs),
         validation=results("validate/validation.json"),
         decisions=results("validate/decisions.parquet"),

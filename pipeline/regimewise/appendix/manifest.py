@@ -25,6 +25,7 @@ ARTIFACT_FOLDERS = (
     "sensitivity",
     "survival",
     "sweep",
+    "selfcheck",
     "report",
 )
 

@@ -94,6 +94,7 @@ def render_html(p, parts, prov, headline) -> str:
         sensitivity=parts.get("sensitivity"),
         sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
         sweep=parts.get("sweep"),
+        selfcheck=parts.get("selfcheck"),
         sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
         survival=parts.get("survival"),
         sparse_bin=SPARSE_BIN,

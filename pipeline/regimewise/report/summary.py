@@ -135,6 +135,7 @@ def _summary(p, parts, prov) -> dict:
         "strategies": strategy_headlines(p, values),
         "sensitivity": sensitivity_headlines(parts.get("sensitivity")),
         "sweep": sweep_headlines(parts.get("sweep")),
+        "selfcheck": selfcheck_headlines(parts.get("selfcheck")),
         "survival": survival_headlines(parts.get("survival"), headline_name(p)),
         "protocol_sha256": prov["protocol"]["sha256"],
         "inputs_sha256": {k: v["sha256"] for k, v in prov["inputs"].items()},
@@ -167,6 +168,18 @@ def sensitivity_headlines(sensitivity: dict | None) -> dict | None:
     own = ("strategy", "label", "ess", "low_ess", "tipping_point", "tipping_point_bounds", "table", "sentence")
     comparators = [{key: c[key] for key in own} for c in sensitivity.get("comparators", [])]
     return {key: sensitivity[key] for key in keys} | {"comparators": comparators}
+
+
+def selfcheck_headlines(selfcheck: dict | None) -> dict | None:
+    """The self-check's settings and summary (without the cohorts' rows, which stay in selfcheck.json)."""
+    if selfcheck is None:
+        return None
+    fit = selfcheck["fit_check"]
+    return {
+        "settings": selfcheck["settings"],
+        "summary": selfcheck["summary"],
+        "fit_check": {key: fit[key] for key in ("largest_smd", "smd_flag", "flagged", "action_shares", "mean_return")},
+    }
 
 
 def sweep_headlines(sweep: dict | None) -> dict | None:

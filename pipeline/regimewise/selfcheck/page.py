@@ -132,8 +132,7 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each</li>",
         f"<li>{s['replicates']} bootstrap replicates per cohort (the analysis itself uses "
         f"{s['analysis_replicates']})</li>",
-        f"<li>root seed {s['seed']}; {escape(s['seed_stream'])}</li>",
-        f"<li>{document['seconds']:.0f} seconds in all</li></ul>",
+        f"<li>root seed {s['seed']}; {escape(s['seed_stream'])}</li></ul>",
         "</main></body></html>",
     ]
     return "\n".join(parts) + "\n"

@@ -4,7 +4,6 @@ selfcheck.html."""
 
 from __future__ import annotations
 
-import time
 import warnings
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
@@ -23,7 +22,7 @@ from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_seeds, headl
 from regimewise.selfcheck.fitcheck import reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.performance import performance
-from regimewise.selfcheck.world import LookAlikeWorld
+from regimewise.selfcheck.world import LookAlikeWorld, fitted_world
 
 # Per worker process: the world fitted once from the records (the fit is deterministic, so every worker's world is
 # the same), the protocol and the settings.
@@ -33,8 +32,7 @@ _WORKER: dict = {}
 def _start_worker(protocol_path: str, replicates: int, truth_episodes: int) -> None:
     warnings.simplefilter("ignore")
     pf = load_protocol(protocol_path)
-    with threadpool_limits(limits=1):
-        world = LookAlikeWorld.fit(validate_records(pf).decisions, pf.protocol)
+    world = fitted_world(validate_records(pf).decisions, pf.protocol)
     _WORKER.update(world=world, protocol=pf.protocol, replicates=replicates, truth_episodes=truth_episodes)
 
 
@@ -65,32 +63,22 @@ def settings(pf: ProtocolFile, cohorts: int | None, replicates: int | None, trut
     return chosen
 
 
-def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int) -> dict:
-    """Run the whole self-check; returns what selfcheck.json holds (written to ``out`` with selfcheck.html)."""
-    started = time.perf_counter()
-    records = validate_records(pf).decisions
+def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], replicates: int) -> dict:
+    """What selfcheck.json holds: settings, the world's models, the fit check (the records against simulated
+    cohort 0), the summary and every cohort's result (in cohort order)."""
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        world = LookAlikeWorld.fit(records, pf.protocol)  # in this process first: a bad cohort fails fast
-        first, _ = world.simulate(world.n_episodes, cohort_seeds(pf.protocol, 0)[0])
-    fit_check = reproduction(records, first, pf.protocol)
-    with ProcessPoolExecutor(
-        max_workers=max(1, min(cores, cohorts)),
-        initializer=_start_worker,
-        initargs=(str(pf.path), replicates, truth_episodes),
-    ) as pool:
-        results = list(pool.map(_cohort_job, range(cohorts)))
-    elapsed = time.perf_counter() - started
-    summary = summarise(results, pf.protocol)
-    document = {
+        first, _ = world.simulate(world.n_episodes, cohort_seeds(protocol, 0)[0])
+    results = sorted(results, key=lambda r: r["cohort"])
+    return {
         "caution": SELFCHECK_CAUTION,
         "settings": {
-            "cohorts": cohorts,
+            "cohorts": len(results),
             "episodes_per_cohort": world.n_episodes,
             "replicates": replicates,
-            "analysis_replicates": pf.protocol.evaluation.replicates,
-            "truth_episodes": truth_episodes,
-            "seed": pf.protocol.seed,
+            "analysis_replicates": protocol.evaluation.replicates,
+            "truth_episodes": results[0]["truth_episodes"],
+            "seed": protocol.seed,
             "seed_stream": "selfcheck (11, c): cohort c's records and the draws of its truths",
         },
         "world": {
@@ -98,13 +86,30 @@ def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, tr
             "modelled_discrete_states": list(world.class_states),
             "carried_states": list(world.carried_states),
         },
-        "fit_check": fit_check,
-        "summary": summary,
+        "fit_check": reproduction(records, first, protocol),
+        "summary": summarise(results, protocol),
         "cohorts": results,
-        "seconds": round(elapsed, 1),
     }
-    write_json(out / "selfcheck.json", document)
-    write_text(out / "selfcheck.html", selfcheck_page(document, pf.protocol, REPORT_CAUTIONS))
+
+
+def write_selfcheck(document: dict, protocol, json_path, html_path) -> None:
+    write_json(json_path, document)
+    write_text(html_path, selfcheck_page(document, protocol, REPORT_CAUTIONS))
+
+
+def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int) -> dict:
+    """Run the whole self-check in worker processes; returns what selfcheck.json holds (written to ``out`` with
+    selfcheck.html). The same settings give the same bytes whatever the number of workers."""
+    records = validate_records(pf).decisions
+    world = fitted_world(records, pf.protocol)  # in this process first: a cohort too small fails fast
+    with ProcessPoolExecutor(
+        max_workers=max(1, min(cores, cohorts)),
+        initializer=_start_worker,
+        initargs=(str(pf.path), replicates, truth_episodes),
+    ) as pool:
+        results = list(pool.map(_cohort_job, range(cohorts)))
+    document = selfcheck_document(records, world, pf.protocol, results, replicates)
+    write_selfcheck(document, pf.protocol, out / "selfcheck.json", out / "selfcheck.html")
     return document
 
 

@@ -24,11 +24,13 @@ self-check reports how well it reproduces the records (:func:`reproduction`). Re
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 from sklearn.linear_model import LogisticRegression
+from threadpoolctl import threadpool_limits
 
 from regimewise.core.features import StateScaler, action_codes, level_values
 from regimewise.errors import UserInputError
@@ -295,6 +297,14 @@ class LookAlikeWorld:
         same ``seed`` gives every policy the same draws (common random numbers)."""
         _check_count(n)
         return self._rollout(n, seed, policy)[2]
+
+
+def fitted_world(records: pd.DataFrame, protocol: Protocol) -> LookAlikeWorld:
+    """The look-alike world fitted on clean records, one BLAS thread, fitting warnings silenced (the analysis of
+    the records themselves reports them)."""
+    with threadpool_limits(limits=1), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return LookAlikeWorld.fit(records, protocol)
 
 
 # ----------------------------------------------------------------------------------------------------- helpers

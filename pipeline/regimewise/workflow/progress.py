@@ -26,6 +26,7 @@ STAGE_WORDS = {
     "sensitivity": "sensitivity analysis",
     "survival": "survival analysis",
     "sweep": "specification sweep",
+    "selfcheck": "self-check on look-alike cohorts",
     "report": "report",
     "appendix": "audit appendix (manifest, environment, protocol, seeds, commands, checklist)",
     "all": "final check of all outputs",
@@ -78,6 +79,8 @@ class Progress:
             return f"bootstrap shard {int(wildcards['shard']) + 1}{of}"
         if rule == "sweep_spec":
             return f"sweep specification {wildcards.get('spec', '')}".rstrip()
+        if rule == "selfcheck_cohort":
+            return f"self-check cohort {wildcards.get('cohort', '')}".rstrip()
         return STAGE_WORDS.get(rule, rule)
 
 

@@ -68,6 +68,9 @@ STAGE_COSTS = {
     "survival": StageCost(BASE_MB, 500.0, 0.2),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
+    # not measured at scale: a cohort job simulates a cohort of the records' size and analyses it like a shard
+    "selfcheck_cohort": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
+    "selfcheck": StageCost(BASE_MB, 600.0, 0.5),
     "report": StageCost(BASE_MB, 0.0, 0.0),
     # not measured at scale: reads each artifact once to hash it (a few seconds per GB), holds none in memory
     "appendix": StageCost(BASE_MB, 0.0, 0.1),

@@ -45,6 +45,8 @@ class Settings:
     sweep_specs: tuple[str, ...] = ()
     bootstrap_replicates: int = 0
     sweep_replicates: int = 0
+    selfcheck_cohorts: int = 0
+    selfcheck_replicates: int = 0
     survival: bool = False
     command: str = ""
     reproduce: str = ""
@@ -92,6 +94,8 @@ def load_settings(config: dict) -> Settings:
         survival=pf.protocol.survival is not None,
         bootstrap_replicates=pf.protocol.evaluation.replicates,
         sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
+        selfcheck_cohorts=0 if pf.protocol.selfcheck is None else pf.protocol.selfcheck.cohorts,
+        selfcheck_replicates=0 if pf.protocol.selfcheck is None else pf.protocol.selfcheck.replicates,
         command=str(config.get("command") or ""),
         reproduce=str(config.get("reproduce") or ""),
         stand_ins={str(path): stand_in(path, what) for what, path in braced.items()},

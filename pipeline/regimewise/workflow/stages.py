@@ -46,6 +46,9 @@ from regimewise.regime.summary import regime_summary, safeguard_summary
 from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
+from regimewise.selfcheck.cohort import run_cohort
+from regimewise.selfcheck.run import selfcheck_document, write_selfcheck
+from regimewise.selfcheck.world import fitted_world
 from regimewise.sensitivity.analysis import (
     bounded_actions,
     comparator_curves,
@@ -74,6 +77,7 @@ def report_stage(
     sensitivity=None,
     sweep=None,
     survival=None,
+    selfcheck=None,
     reproduce="",
 ):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs; ``reproduce`` is the
@@ -89,6 +93,7 @@ def report_stage(
         "sensitivity": None if sensitivity is None else read_json(sensitivity),
         "sweep": None if sweep is None else read_json(sweep),
         "survival": None if survival is None else read_json(survival),
+        "selfcheck": None if selfcheck is None else read_json(selfcheck),
     }
     prov = build_provenance(pf, reproduce)
     headline = build_summary(p, parts, prov)
@@ -410,6 +415,28 @@ def sweep_stage(protocol, specs, sweep):
     write_json(sweep, combine_sweep([read_json(path) for path in specs], p))
 
 
+# ---------------------------------------------------------------------------------------------- self-check
+def selfcheck_cohort_stage(protocol, decisions, cohort, result):
+    """One look-alike cohort of the self-check (wildcard ``cohort``): simulate, analyse, and compute its truths."""
+    p = load_protocol(protocol).protocol
+    world = fitted_world(read_parquet(decisions), p)
+    with threadpool_limits(limits=1), warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the analysis of the records themselves reports its warnings
+        out = run_cohort(world, p, int(cohort), p.selfcheck.replicates, p.selfcheck.truth_episodes)
+    write_json(result, out)
+    log.info("self-check cohort %s: %d of %d replicates used", cohort, out["replicates_used"], out["replicates"])
+
+
+def selfcheck_stage(protocol, decisions, cohorts, selfcheck, page):
+    """The self-check's summary (selfcheck.json) and its page (selfcheck.html) from the cohort jobs."""
+    p = load_protocol(protocol).protocol
+    records = read_parquet(decisions)
+    document = selfcheck_document(
+        records, fitted_world(records, p), p, [read_json(path) for path in cohorts], p.selfcheck.replicates
+    )
+    write_selfcheck(document, p, selfcheck, page)
+
+
 # ---------------------------------------------------------------------------------------------- dispatch
 STAGES = {
     "validate": validate_stage,
@@ -423,6 +450,8 @@ STAGES = {
     "survival": survival_stage,
     "sweep_spec": sweep_spec_stage,
     "sweep": sweep_stage,
+    "selfcheck_cohort": selfcheck_cohort_stage,
+    "selfcheck": selfcheck_stage,
     "report": report_stage,
     "appendix": appendix_stage,
 }
