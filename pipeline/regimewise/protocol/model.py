@@ -69,7 +69,9 @@ class Protocol(Strict):
     )
     analysis: AnalysisSpec = AnalysisSpec()
     selfcheck: SelfCheckSpec | None = Field(
-        None, description="optional settings of `regimewise selfcheck` (none: its defaults)"
+        None,
+        description="optional self-check on look-alike cohorts: one workflow job per cohort and report section 6c; "
+        "also the defaults of `regimewise selfcheck` (none: no self-check in the workflow)",
     )
 
     @model_validator(mode="after")
