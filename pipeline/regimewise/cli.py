@@ -325,7 +325,11 @@ def cmd_selfcheck(args) -> int:
     )
     print(TERMINAL_CAUTION)
     started = time.perf_counter()
-    document = run_selfcheck(pf, out, cores=args.cores, **chosen)
+
+    def progress(done, total):
+        print(f"[{done}/{total}] look-alike cohort {done - 1} done ({time.perf_counter() - started:.0f} s)", flush=True)
+
+    document = run_selfcheck(pf, out, cores=args.cores, progress=progress, **chosen)
     minutes, seconds = divmod(round(time.perf_counter() - started), 60)
     uc = (document["summary"]["usual_care_value"] or {}).get("all") or {}
     if uc.get("coverage") is not None:

@@ -21,6 +21,18 @@ def finished(tmp_path_factory):
     return path, out, json.loads((out / "selfcheck.json").read_text(encoding="utf-8"))
 
 
+def test_prints_a_line_per_cohort(tmp_path, capsys):
+    protocol = tiny_protocol_dict()
+    protocol["evaluation"] = {"estimators": ["wdr"]}
+    path = write_tiny(tmp_path / "study", protocol=protocol, decisions=tiny_decisions(100, 4))
+    argv = ["selfcheck", str(path), "--cohorts", "2", "--replicates", "20", "--truth-episodes", "1000"]
+    assert main([*argv, "--out", str(tmp_path / "out"), "--cores", "1"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert any(line.startswith("[1/2] look-alike cohort 0 done") for line in lines)
+    assert any(line.startswith("[2/2] look-alike cohort 1 done") for line in lines)
+    assert any(line.startswith("self-check done in") for line in lines)
+
+
 def test_writes_the_page_and_the_details(finished):
     _, out, document = finished
     assert document["settings"]["cohorts"] == 3 and document["settings"]["replicates"] == 20

@@ -126,7 +126,7 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"{s['truth_episodes']:,} simulated episodes per policy with common random numbers. Monte Carlo standard "
         "errors follow Morris, White &amp; Crowther (2019, Stat Med 38:2074).</p>",
         _performance_table(summary, names),
-        f"<h2>How well the world reproduces the records</h2><p>{drift}.</p>",
+        f"<h2>How well the world reproduces the records</h2><p>{drift[:1].upper() + drift[1:]}.</p>",
         _fit_table(fit, protocol.action_labels),
         "<h2>Settings</h2><ul>",
         f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each</li>",

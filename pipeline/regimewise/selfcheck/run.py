@@ -97,9 +97,12 @@ def write_selfcheck(document: dict, protocol, json_path, html_path) -> None:
     write_text(html_path, selfcheck_page(document, protocol, REPORT_CAUTIONS))
 
 
-def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int) -> dict:
+def run_selfcheck(
+    pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int, progress=None
+) -> dict:
     """Run the whole self-check in worker processes; returns what selfcheck.json holds (written to ``out`` with
-    selfcheck.html). The same settings give the same bytes whatever the number of workers."""
+    selfcheck.html). The same settings give the same bytes whatever the number of workers. ``progress(done,
+    cohorts)``, if given, is called as the cohorts finish (in cohort order)."""
     records = validate_records(pf).decisions
     world = fitted_world(records, pf.protocol)  # in this process first: a cohort too small fails fast
     with ProcessPoolExecutor(
@@ -107,7 +110,11 @@ def run_selfcheck(pf: ProtocolFile, out: Path, cohorts: int, replicates: int, tr
         initializer=_start_worker,
         initargs=(str(pf.path), replicates, truth_episodes),
     ) as pool:
-        results = list(pool.map(_cohort_job, range(cohorts)))
+        results = []
+        for result in pool.map(_cohort_job, range(cohorts)):
+            results.append(result)
+            if progress is not None:
+                progress(len(results), cohorts)
     document = selfcheck_document(records, world, pf.protocol, results, replicates)
     write_selfcheck(document, pf.protocol, out / "selfcheck.json", out / "selfcheck.html")
     return document
