@@ -7,36 +7,21 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import level_values
+from regimewise.describe.balance import SMD_FLAG, smd
 from regimewise.protocol import Protocol
 
-# A standardised difference above 0.1 flags a state whose simulated distribution drifts from the records (common
-# practice for balance diagnostics, after Austin 2009, Stat Med 28:3083; a rule of thumb, no source for the value).
-SMD_FLAG = 0.1
 
-
-def standardised_difference(real: np.ndarray, simulated: np.ndarray) -> float | None:
-    """(mean simulated − mean real) / √((var real + var simulated)/2); None when both variances are 0 and the means
-    agree, ±inf when they differ (Austin 2009, Stat Med 28:3083, eq. 1)."""
-    real, simulated = np.asarray(real, dtype=float), np.asarray(simulated, dtype=float)
-    if real.size == 0 or simulated.size == 0:
-        return None
-    difference = simulated.mean() - real.mean()
-    pooled = np.sqrt((real.var(ddof=1) + simulated.var(ddof=1)) / 2.0) if min(real.size, simulated.size) > 1 else 0.0
-    if pooled == 0:
-        return None if difference == 0 else float(np.sign(difference) * np.inf)
-    return float(difference / pooled)
-
-
-def _columns(frame: pd.DataFrame, protocol: Protocol) -> dict[str, np.ndarray]:
-    """Every state as numeric columns: numeric states as they are, each level of a categorical as a 0/1 column."""
+def _columns(frame: pd.DataFrame, protocol: Protocol) -> dict[str, tuple[np.ndarray, bool]]:
+    """Every state as numeric columns, each with whether it is 0/1: numeric states as they are, each level of a
+    categorical as a 0/1 column."""
     out = {}
     for s in protocol.states:
         if s.kind == "categorical":
             text = level_values(frame, s.name, s.coded_levels)
             for level in s.coded_levels:
-                out[f"{s.name}[{level}]"] = (text == level).astype(float)
+                out[f"{s.name}[{level}]"] = ((text == level).astype(float), True)
         else:
-            out[s.name] = frame[s.name].to_numpy(dtype=float)
+            out[s.name] = (frame[s.name].to_numpy(dtype=float), s.kind == "binary")
     return out
 
 
@@ -49,13 +34,13 @@ def episode_returns(frame: pd.DataFrame, discount: float) -> np.ndarray:
 def reproduction(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Protocol) -> dict:
     """Observed against simulated: states by decision point (means, SDs, standardised differences), action shares,
     decisions per episode and the mean return. ``flagged`` lists the (state, decision point) pairs whose absolute
-    standardised difference exceeds :data:`SMD_FLAG`."""
+    standardised difference is at least the describe stage's flag, 0.1 (common practice after Austin 2009)."""
     real_cols, sim_cols = _columns(records, protocol), _columns(simulated, protocol)
     real_step, sim_step = records["step"].to_numpy(), simulated["step"].to_numpy()
     states = []
-    for name in real_cols:
+    for name, (values, binary) in real_cols.items():
         for t in np.unique(real_step):
-            real, sim = real_cols[name][real_step == t], sim_cols[name][sim_step == t]
+            real, sim = values[real_step == t], sim_cols[name][0][sim_step == t]
             states.append(
                 {
                     "state": name,
@@ -64,7 +49,7 @@ def reproduction(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Proto
                     "simulated_mean": float(sim.mean()) if sim.size else None,
                     "records_sd": float(real.std(ddof=1)) if real.size > 1 else None,
                     "simulated_sd": float(sim.std(ddof=1)) if sim.size > 1 else None,
-                    "smd": standardised_difference(real, sim),
+                    "smd": smd(sim, real, binary),  # simulated against records (Austin 2009)
                 }
             )
     labels = protocol.action_labels
@@ -76,7 +61,7 @@ def reproduction(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Proto
     flagged = [
         {"state": s["state"], "step": s["step"], "smd": s["smd"]}
         for s in states
-        if s["smd"] is not None and abs(s["smd"]) > SMD_FLAG
+        if s["smd"] is not None and abs(s["smd"]) >= SMD_FLAG
     ]
     return {
         "states": states,

@@ -102,10 +102,10 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"{escape(f['state'])} at decision point {f['step']} ({_number(f['smd'], 2)})" for f in flagged[:5]
     )
     drift = (
-        f"{len(flagged)} state and decision-point pair(s) differ from the records by a standardised difference above "
-        f"{fit['smd_flag']}: {listed}{', …' if len(flagged) > 5 else ''}"
+        f"{len(flagged)} state and decision-point pair(s) differ from the records by a standardised difference of at "
+        f"least {fit['smd_flag']}: {listed}{', …' if len(flagged) > 5 else ''}"
         if flagged
-        else f"every state at every decision point is within a standardised difference of {fit['smd_flag']} of the "
+        else f"every state at every decision point is below a standardised difference of {fit['smd_flag']} from the "
         f"records (largest {_number(fit['largest_smd'])})"
     )
     parts = [

@@ -68,9 +68,7 @@ class _ClassModel:
     def draw(self, design, uniforms):
         if self.model is None:
             return np.repeat(self.classes, len(design))
-        cumulative = np.cumsum(self.model.predict_proba(design[:, 1:]), axis=1)
-        index = np.minimum((uniforms[:, None] > cumulative).sum(axis=1), self.classes.size - 1)
-        return self.classes[index]
+        return self.classes[_draw_codes(self.model.predict_proba(design[:, 1:]), uniforms)]
 
 
 @dataclass(frozen=True)
