@@ -41,9 +41,9 @@ from regimewise.bootstrap.replicates import learn_and_evaluate, run_shard
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.demo.truth import true_returns
-from regimewise.evaluation.strategies import protocol_strategies
 from regimewise.protocol import load_protocol
 from regimewise.regime.learning import crossfit_folds, fold_regimes
+from regimewise.selfcheck.cohort import compared_protocol, headline_strategy
 
 REPOSITORY = Path(__file__).resolve().parents[1]
 
@@ -71,24 +71,6 @@ def parse(argv=None):
     return parser.parse_args(argv)
 
 
-def headline(p):
-    h = p.strategies.headline
-    return next(s for s in protocol_strategies(p.strategies) if (s.family, s.parameter) == (h.family, h.value))
-
-
-def headline_only(p):
-    """The protocol with usual care, the learned regime and the headline strategy only (no comparator)."""
-    h = p.strategies.headline
-    grids = {f: ([h.value] if f == h.family else []) for f in ("partial_adoption", "override_gain", "incremental_odds")}
-    return p.model_copy(
-        update={
-            "strategies": p.strategies.model_copy(update=grids),
-            "comparators": [],
-            "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False}),
-        }
-    )
-
-
 def one_cohort(task):
     seed, args = task
     warnings.simplefilter("ignore")
@@ -98,8 +80,8 @@ def one_cohort(task):
     )
     p = pf.protocol.model_copy(update={"evaluation": raw, "seed": seed})
     if args.headline_only:
-        p = headline_only(p)
-    s = headline(p)
+        p = compared_protocol(p, args.replicates)  # usual care, the learned regime and the headline only
+    s = headline_strategy(p)
     with threadpool_limits(limits=1):
         decisions = clean_decisions(
             pf, simulate_cohort(args.episodes, seed=seed, confounding_strength=args.strength).decisions
@@ -239,9 +221,9 @@ def main(argv=None) -> None:
                     handle.write(json.dumps(result) + "\n")
     p = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
     print(
-        f"headline strategy {headline(p).name}: {len(done)} cohorts x {args.episodes} episodes, {args.replicates} "
-        f"replicates ({args.bootstrap_regime} regime), strength {args.strength}, truths on {args.truth_episodes} "
-        f"episodes{', headline strategy only' if args.headline_only else ''}; "
+        f"headline strategy {headline_strategy(p).name}: {len(done)} cohorts x {args.episodes} episodes, "
+        f"{args.replicates} replicates ({args.bootstrap_regime} regime), strength {args.strength}, truths on "
+        f"{args.truth_episodes} episodes{', headline strategy only' if args.headline_only else ''}; "
         f"{time.perf_counter() - start:.0f} s this run"
     )
     summarise(sorted(done, key=lambda r: r["seed"]))
