@@ -145,6 +145,12 @@ def build_parser() -> argparse.ArgumentParser:
         "100000)",
     )
     selfcheck.add_argument(
+        "--reference-episodes",
+        type=int,
+        help="simulated episodes the reference rule for the learned regime's regret is learned from (default: the "
+        "protocol's selfcheck.reference_episodes, else 100000)",
+    )
+    selfcheck.add_argument(
         "--out",
         help="folder for selfcheck.json and selfcheck.html (default: results/<run_name of the protocol>/selfcheck)",
     )
@@ -317,7 +323,13 @@ def cmd_selfcheck(args) -> int:
     if args.cores < 1:
         raise UserInputError("--cores must be at least 1")
     pf = load_protocol(args.protocol)
-    chosen = settings(pf, args.cohorts, args.replicates, args.truth_episodes)
+    chosen = settings(
+        pf,
+        cohorts=args.cohorts,
+        replicates=args.replicates,
+        truth_episodes=args.truth_episodes,
+        reference_episodes=args.reference_episodes,
+    )
     out = output_folder(args.out or f"results/{pf.protocol.study.run_name}/selfcheck", "--out")
     print(
         f"regimewise {__version__}: self-check of {pf.path.name}: {chosen['cohorts']} look-alike cohorts, "
@@ -326,10 +338,12 @@ def cmd_selfcheck(args) -> int:
     print(TERMINAL_CAUTION)
     started = time.perf_counter()
 
-    def progress(done, total):
-        print(f"[{done}/{total}] look-alike cohort {done - 1} done ({time.perf_counter() - started:.0f} s)", flush=True)
+    def progress(done, total, result):
+        outcome = f"failed: {result['failed']}" if "failed" in result else "done"
+        elapsed = time.perf_counter() - started
+        print(f"[{done}/{total}] look-alike cohort {result['cohort']} {outcome} ({elapsed:.0f} s)", flush=True)
 
-    document = run_selfcheck(pf, out, cores=args.cores, progress=progress, **chosen)
+    document = run_selfcheck(pf, out, chosen, cores=args.cores, progress=progress)
     minutes, seconds = divmod(round(time.perf_counter() - started), 60)
     uc = (document["summary"]["usual_care_value"] or {}).get("all") or {}
     if uc.get("coverage") is not None:

@@ -17,7 +17,7 @@ def test_workflow_runs_the_selfcheck_into_the_report(tmp_path):
     raw["data"].update(root=".", decisions="data/decisions.csv", episodes="data/episodes.csv")
     raw["evaluation"].update(replicates=2, shards=1)
     raw["constraints"]["ensemble_size"] = 5
-    raw["selfcheck"] = {"cohorts": 2, "replicates": 20, "truth_episodes": 1000}
+    raw["selfcheck"] = {"cohorts": 2, "replicates": 20, "truth_episodes": 1000, "reference_episodes": 2000}
     protocol = tmp_path / "protocol.yaml"
     protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
     out = tmp_path / "out"
@@ -30,7 +30,7 @@ def test_workflow_runs_the_selfcheck_into_the_report(tmp_path):
     assert summary["selfcheck"]["settings"]["cohorts"] == 2
     assert summary["selfcheck"]["summary"]["usual_care_value"]["all"]["n_used"] == 2
     html = (out / "report" / "report.html").read_text(encoding="utf-8")
-    assert "Self-check on look-alike cohorts" in html and "look-alike cohorts" in html
+    assert "Self-check on look-alike cohorts" in html and "Regret of the learned regime" in html
     manifest = json.loads((out / "appendix" / "manifest.json").read_text(encoding="utf-8"))
     listed = {entry["path"] for entry in manifest["files"]}
     assert {"selfcheck/selfcheck.json", "selfcheck/selfcheck.html", "selfcheck/cohorts/cohort_0.json"} <= listed

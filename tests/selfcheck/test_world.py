@@ -17,8 +17,10 @@ from regimewise.io import dumps_json
 from regimewise.protocol import load_protocol
 from regimewise.protocol.loading import ProtocolFile
 from regimewise.protocol.model import Protocol
+from regimewise.regime.learning import learn_regime
 from regimewise.selfcheck.cohort import cohort_seeds, run_cohort
 from regimewise.selfcheck.fitcheck import episode_returns, reproduction
+from regimewise.selfcheck.regret import reference_regimes
 from regimewise.selfcheck.world import LookAlikeWorld
 
 
@@ -142,3 +144,22 @@ def test_a_cohort_job_reruns_alone_to_the_same_bytes():
     assert set(result["truths"]) == {"usual_care", "learned"} and result["replicates_used"] == 20
     low, high = result["estimates"]["learned"]["wdr"]["value_interval"]
     assert math.isfinite(low) and math.isfinite(high) and low < high
+
+
+def test_the_reference_rule_beats_usual_care_and_small_cohorts_rules(demo_world):
+    # The regret's reference (the protocol's learner on many simulated episodes) should be better than usual care in
+    # the world fitted to the demo simulator's records (whose learned regime has a real benefit), and at least as
+    # good as rules learned from 400-episode cohorts of the same world, within 3 paired Monte Carlo SEs (our
+    # tolerance, no source). Paired: every policy is rolled out on the same draws (common random numbers).
+    protocol, _, world = demo_world
+    reference, half = reference_regimes(world, protocol, 20_000)
+    usual = world.returns("usual_care", 20_000, seed=11)
+    best = world.returns(reference, 20_000, seed=11)
+    gain = best - usual
+    assert gain.mean() > 3 * gain.std(ddof=1) / math.sqrt(gain.size)
+    for seed in (1, 2, 3):
+        small = learn_regime(world.simulate(400, seed=seed)[0], protocol)
+        shortfall = best - world.returns(small, 20_000, seed=11)
+        assert shortfall.mean() > -3 * shortfall.std(ddof=1) / math.sqrt(shortfall.size)
+    settled = best - world.returns(half, 20_000, seed=11)
+    assert abs(settled.mean()) < 0.25 * gain.mean()  # the half-size reference is close (our tolerance)

@@ -18,6 +18,7 @@ STREAMS = {
     "sweep": 9,  # (9, i, r): replicate r of sweep specification i
     "readable_tree": 10,  # the patients a readable tree is fitted on, above its row cap
     "selfcheck": 11,  # (11, c): simulated cohort c of the self-check and the draws of its truths
+    "selfcheck_reference": 12,  # the self-check's reference rule (for the learned regime's regret)
 }
 
 # What each stream draws and what its index selects (written to the appendix's seeds.json).
@@ -29,6 +30,7 @@ STREAM_USES = {
     "sweep": ("replicate r of sweep specification i", ("i", "r")),
     "readable_tree": ("the patients the readable tree is fitted on when the decisions exceed its row cap", ()),
     "selfcheck": ("simulated cohort c of the self-check and the draws of its truths", ("c",)),
+    "selfcheck_reference": ("the simulated cohorts the self-check's reference rule is fitted on", ()),
 }
 
 RETIRED = (3, 4, 5, 8)  # numbers used by earlier versions; never reused

@@ -645,6 +645,11 @@ class SelfCheckSpec(Strict):
     truth_episodes: Annotated[WholeNumber, Field(ge=1000, le=1_000_000)] = Field(
         100_000, description="simulated episodes per policy for each cohort's truths (common random numbers)"
     )
+    reference_episodes: Annotated[WholeNumber, Field(ge=1000, le=1_000_000)] = Field(
+        100_000,
+        description="simulated episodes the reference rule is learned from (the learned regime's regret is measured "
+        "against it)",
+    )
 
 
 class SweepSpec(Strict):

@@ -24,6 +24,7 @@ from regimewise.regime.learning import crossfit_folds, fold_regimes, learn_regim
 from regimewise.selfcheck.world import LookAlikeWorld
 
 USUAL_CARE, LEARNED = "usual_care", "learned"
+MESSAGE_LENGTH = 300  # characters of a failed cohort's error message kept in selfcheck.json
 
 
 def cohort_seeds(protocol: Protocol, cohort: int) -> tuple[int, int]:
@@ -138,3 +139,23 @@ def run_cohort(world: LookAlikeWorld, protocol: Protocol, cohort: int, replicate
         "truths": truths,
         "estimates": _estimates(values, intervals, set(truths)),
     }
+
+
+def cohort_outcome(
+    world: LookAlikeWorld, protocol: Protocol, cohort: int, replicates: int, truth_episodes: int
+) -> dict:
+    """:func:`run_cohort`, with a failure of the analysis on this simulated cohort recorded instead of raised: the
+    cohort's entry then holds ``failed`` (the error's kind and first line) and no estimates, and the summary leaves
+    it out and counts it. Out of memory is still raised (it says nothing about the records)."""
+    try:
+        return run_cohort(world, protocol, cohort, replicates, truth_episodes)
+    except MemoryError:
+        raise
+    except Exception as err:  # any failure of the analysis on one cohort is a finding to report
+        message = (str(err).strip().splitlines() or [""])[0][:MESSAGE_LENGTH]
+        return {
+            "cohort": cohort,
+            "seed": cohort_seeds(protocol, cohort)[0],
+            "episodes": world.n_episodes,
+            "failed": f"{type(err).__name__}: {message}" if message else type(err).__name__,
+        }

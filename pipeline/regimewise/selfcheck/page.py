@@ -77,6 +77,45 @@ def _fit_table(fit, labels) -> str:
     return f"<table><caption>{caption}</caption><thead>{head}</thead>{rows}</table>"
 
 
+def _regret_sentence(regret) -> str:
+    """The learned regime's regret against the reference rule, in words (empty without a learned regime)."""
+    if not regret:
+        return ""
+    check = regret["reference_check"]
+    mcse = "" if regret["regret_mcse"] is None else f" (Monte Carlo SE {_number(regret['regret_mcse'])})"
+    share = regret["share_of_gain"]
+    reached = (
+        f"; the learned rules reached {_percent(share)} of the reference's gain over usual care "
+        f"({_number(regret['reference_gain'])})"
+        if share is not None
+        else "; the reference does not improve on usual care in this world"
+    )
+    return (
+        "<p>Regret of the learned regime: its true value fell short of the reference rule's (the protocol's learner "
+        f"fitted on {regret['reference_episodes']:,} simulated episodes) by {_number(regret['mean_regret'])} on "
+        f"average{mcse}, median {_number(regret['median_regret'])}, from {_number(regret['min_regret'])} to "
+        f"{_number(regret['max_regret'])}, over {regret['cohorts']} cohorts{reached}; in "
+        f"{_percent(regret['worse_than_usual_care'])} of the cohorts the learned rules were worse than usual care. "
+        "The reference is a rule the protocol allows, so this regret is, up to Monte Carlo error, a lower bound on "
+        "the regret against the best such rule: the price of the cohort's size. Fitted on "
+        f"{check['episodes']:,} episodes instead, the reference's value is {_number(check['value'])} against "
+        f"{_number(check['full_value'])} (close values say the reference has settled).</p>"
+    )
+
+
+def _failures(failed, cohorts) -> str:
+    """The cohorts whose analysis failed (empty when none did)."""
+    if not failed:
+        return ""
+    items = "".join(f"<li>cohort {f['cohort']} (seed {f['seed']}): {escape(f['error'])}</li>" for f in failed[:10])
+    more = f"<li>… and {len(failed) - 10} more (selfcheck.json)</li>" if len(failed) > 10 else ""
+    return (
+        f"<p><strong>The analysis failed on {len(failed)} of {cohorts} look-alike cohorts</strong>; the figures above "
+        "leave them out, which may flatter the pipeline. The same failure may happen on records like these:</p>"
+        f"<ul>{items}{more}</ul>"
+    )
+
+
 def selfcheck_page(document: dict, protocol, cautions) -> str:
     """The page: cautions, the headline sentence, the performance table, the fit check and the settings."""
     s, summary, fit = document["settings"], document["summary"], document["fit_check"]
@@ -97,6 +136,8 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
             f"care covered the truth in {_share_of(h)} cohorts, and excluded zero (detected a benefit; the mean true "
             f"difference was {_number(summary['mean_true_contrast'])}) in {_percent(h.get('power'))} of them."
         )
+    regret = _regret_sentence(summary.get("regret"))
+    failures = _failures(document.get("failed_cohorts", []), s["cohorts"])
     flagged = fit["flagged"]
     listed = ", ".join(
         f"{escape(f['state'])} at decision point {f['step']} ({_number(f['smd'], 2)})" for f in flagged[:5]
@@ -117,6 +158,8 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         "<section class='cautions'>" + "".join(f"<p>{escape(c)}</p>" for c in (document["caution"], *cautions)),
         "</section>",
         "<h2>What the self-check found</h2><p>" + " ".join(sentences) + "</p>",
+        regret,
+        failures,
         "<p>The look-alike world is only as good as its fitted models (plasmode simulation: Franklin, Schneeweiss, "
         "Polinski &amp; Rassen 2014): it keeps the records' first decisions and simulates the rest from regressions "
         "of each state, the reward and follow-up on the state and action, with usual care from the protocol's "
@@ -129,9 +172,12 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"<h2>How well the world reproduces the records</h2><p>{drift[:1].upper() + drift[1:]}.</p>",
         _fit_table(fit, protocol.action_labels),
         "<h2>Settings</h2><ul>",
-        f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each</li>",
+        f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each "
+        f"({s['cohorts_completed']} completed their analysis)</li>",
         f"<li>{s['replicates']} bootstrap replicates per cohort (the analysis itself uses "
         f"{s['analysis_replicates']})</li>",
+        f"<li>{s['truth_episodes']:,} simulated episodes per policy for each cohort's truths; the reference rule "
+        f"learned from {s['reference_episodes']:,}</li>",
         f"<li>root seed {s['seed']}; {escape(s['seed_stream'])}</li></ul>",
         "</main></body></html>",
     ]

@@ -18,10 +18,11 @@ from regimewise.errors import UserInputError
 from regimewise.evaluation.values import headline_estimator
 from regimewise.io import write_json, write_text
 from regimewise.protocol import ProtocolFile, SelfCheckSpec, load_protocol
-from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_seeds, headline_strategy, run_cohort
+from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_outcome, cohort_seeds, headline_strategy
 from regimewise.selfcheck.fitcheck import reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.performance import performance
+from regimewise.selfcheck.regret import regret
 from regimewise.selfcheck.world import LookAlikeWorld, fitted_world
 
 # Per worker process: the world fitted once from the records (the fit is deterministic, so every worker's world is
@@ -38,19 +39,21 @@ def _start_worker(protocol_path: str, replicates: int, truth_episodes: int) -> N
 
 def _cohort_job(cohort: int) -> dict:
     with threadpool_limits(limits=1):
-        return run_cohort(
+        return cohort_outcome(
             _WORKER["world"], _WORKER["protocol"], cohort, _WORKER["replicates"], _WORKER["truth_episodes"]
         )
 
 
-def settings(pf: ProtocolFile, cohorts: int | None, replicates: int | None, truth_episodes: int | None) -> dict:
-    """The self-check's settings: the command line's, else the protocol's ``selfcheck`` section's, else defaults;
-    checked against the section's bounds (one line naming the first setting out of them)."""
+def settings(pf: ProtocolFile, **given) -> dict:
+    """The self-check's settings (``cohorts``, ``replicates``, ``truth_episodes``, ``reference_episodes``): the
+    command line's where given (not None), else the protocol's ``selfcheck`` section's, else defaults; checked
+    against the section's bounds (one line naming the first setting out of them)."""
     spec = pf.protocol.selfcheck or SelfCheckSpec()
+    unknown = set(given) - set(SelfCheckSpec.model_fields)
+    if unknown:
+        raise TypeError(f"unknown self-check setting(s): {sorted(unknown)}")
     chosen = {
-        "cohorts": cohorts if cohorts is not None else spec.cohorts,
-        "replicates": replicates if replicates is not None else spec.replicates,
-        "truth_episodes": truth_episodes if truth_episodes is not None else spec.truth_episodes,
+        name: given[name] if given.get(name) is not None else getattr(spec, name) for name in SelfCheckSpec.model_fields
     }
     try:
         SelfCheckSpec.model_validate(chosen)
@@ -63,23 +66,42 @@ def settings(pf: ProtocolFile, cohorts: int | None, replicates: int | None, trut
     return chosen
 
 
-def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], replicates: int) -> dict:
+def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], chosen: dict) -> dict:
     """What selfcheck.json holds: settings, the world's models, the fit check (the records against simulated
-    cohort 0), the summary and every cohort's result (in cohort order)."""
+    cohort 0), the summary (with the learned regime's regret), the failed cohorts and every cohort's result (in
+    cohort order). Raises :class:`UserInputError` when fewer than two cohorts completed their analysis."""
+    results = sorted(results, key=lambda r: r["cohort"])
+    failed = [r for r in results if "failed" in r]
+    completed = [r for r in results if "failed" not in r]
+    if len(completed) < 2:
+        first = failed[0]
+        raise UserInputError(
+            f"the analysis failed on {len(failed)} of {len(results)} look-alike cohorts, so the self-check has "
+            f"nothing to summarise; cohort {first['cohort']}: {first['failed']}"
+        )
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
         first, _ = world.simulate(world.n_episodes, cohort_seeds(protocol, 0)[0])
-    results = sorted(results, key=lambda r: r["cohort"])
+        regret_summary, regret_rows = regret(world, protocol, completed, chosen["reference_episodes"])
+    summary = summarise(completed, protocol)
+    summary["regret"] = regret_summary
+    for r in completed:
+        if r["cohort"] in regret_rows:
+            row = regret_rows[r["cohort"]]
+            r["regret"] = {"reference_value": row["reference_value"], "regret": row["regret"]}
     return {
         "caution": SELFCHECK_CAUTION,
         "settings": {
             "cohorts": len(results),
+            "cohorts_completed": len(completed),
             "episodes_per_cohort": world.n_episodes,
-            "replicates": replicates,
+            "replicates": chosen["replicates"],
             "analysis_replicates": protocol.evaluation.replicates,
-            "truth_episodes": results[0]["truth_episodes"],
+            "truth_episodes": chosen["truth_episodes"],
+            "reference_episodes": chosen["reference_episodes"],
             "seed": protocol.seed,
-            "seed_stream": "selfcheck (11, c): cohort c's records and the draws of its truths",
+            "seed_stream": "selfcheck (11, c): cohort c's records and the draws of its truths; selfcheck_reference "
+            "(12): the reference rule's cohorts",
         },
         "world": {
             "numeric_states": list(world.numeric_states),
@@ -87,8 +109,9 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
             "carried_states": list(world.carried_states),
         },
         "fit_check": reproduction(records, first, protocol),
-        "summary": summarise(results, protocol),
-        "cohorts": results,
+        "summary": summary,
+        "failed_cohorts": [{"cohort": r["cohort"], "seed": r["seed"], "error": r["failed"]} for r in failed],
+        "cohorts": completed,
     }
 
 
@@ -97,25 +120,25 @@ def write_selfcheck(document: dict, protocol, json_path, html_path) -> None:
     write_text(html_path, selfcheck_page(document, protocol, REPORT_CAUTIONS))
 
 
-def run_selfcheck(
-    pf: ProtocolFile, out: Path, cohorts: int, replicates: int, truth_episodes: int, cores: int, progress=None
-) -> dict:
-    """Run the whole self-check in worker processes; returns what selfcheck.json holds (written to ``out`` with
-    selfcheck.html). The same settings give the same bytes whatever the number of workers. ``progress(done,
-    cohorts)``, if given, is called as the cohorts finish (in cohort order)."""
+def run_selfcheck(pf: ProtocolFile, out: Path, chosen: dict, cores: int, progress=None) -> dict:
+    """Run the whole self-check with the settings ``chosen`` (:func:`settings`) in worker processes; returns what
+    selfcheck.json holds (written to ``out`` with selfcheck.html). The same settings give the same bytes whatever
+    the number of workers. ``progress(done, cohorts, result)``, if given, is called as the cohorts finish (in
+    cohort order)."""
     records = validate_records(pf).decisions
     world = fitted_world(records, pf.protocol)  # in this process first: a cohort too small fails fast
+    cohorts = chosen["cohorts"]
     with ProcessPoolExecutor(
         max_workers=max(1, min(cores, cohorts)),
         initializer=_start_worker,
-        initargs=(str(pf.path), replicates, truth_episodes),
+        initargs=(str(pf.path), chosen["replicates"], chosen["truth_episodes"]),
     ) as pool:
         results = []
         for result in pool.map(_cohort_job, range(cohorts)):
             results.append(result)
             if progress is not None:
-                progress(len(results), cohorts)
-    document = selfcheck_document(records, world, pf.protocol, results, replicates)
+                progress(len(results), cohorts, result)
+    document = selfcheck_document(records, world, pf.protocol, results, chosen)
     write_selfcheck(document, pf.protocol, out / "selfcheck.json", out / "selfcheck.html")
     return document
 

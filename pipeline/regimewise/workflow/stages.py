@@ -46,7 +46,7 @@ from regimewise.regime.summary import regime_summary, safeguard_summary
 from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
-from regimewise.selfcheck.cohort import run_cohort
+from regimewise.selfcheck.cohort import cohort_outcome
 from regimewise.selfcheck.run import selfcheck_document, write_selfcheck
 from regimewise.selfcheck.world import fitted_world
 from regimewise.sensitivity.analysis import (
@@ -422,18 +422,20 @@ def selfcheck_cohort_stage(protocol, decisions, cohort, result):
     world = fitted_world(read_parquet(decisions), p)
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the analysis of the records themselves reports its warnings
-        out = run_cohort(world, p, int(cohort), p.selfcheck.replicates, p.selfcheck.truth_episodes)
+        out = cohort_outcome(world, p, int(cohort), p.selfcheck.replicates, p.selfcheck.truth_episodes)
     write_json(result, out)
-    log.info("self-check cohort %s: %d of %d replicates used", cohort, out["replicates_used"], out["replicates"])
+    if "failed" in out:
+        log.warning("self-check cohort %s: the analysis failed (%s); the summary leaves it out", cohort, out["failed"])
+    else:
+        log.info("self-check cohort %s: %d of %d replicates used", cohort, out["replicates_used"], out["replicates"])
 
 
 def selfcheck_stage(protocol, decisions, cohorts, selfcheck, page):
     """The self-check's summary (selfcheck.json) and its page (selfcheck.html) from the cohort jobs."""
     p = load_protocol(protocol).protocol
     records = read_parquet(decisions)
-    document = selfcheck_document(
-        records, fitted_world(records, p), p, [read_json(path) for path in cohorts], p.selfcheck.replicates
-    )
+    results = [read_json(path) for path in cohorts]
+    document = selfcheck_document(records, fitted_world(records, p), p, results, p.selfcheck.model_dump())
     write_selfcheck(document, p, selfcheck, page)
 
 
