@@ -151,6 +151,12 @@ def build_parser() -> argparse.ArgumentParser:
         "protocol's selfcheck.reference_episodes, else 100000)",
     )
     selfcheck.add_argument(
+        "--confounder-gamma",
+        metavar="GAMMA",
+        help="strength Γ >= 1 of a hidden confounder built into the look-alike world, so the self-check also tests "
+        "the sensitivity bounds at Γ (default: the protocol's selfcheck.confounder_gamma, else 1 = none)",
+    )
+    selfcheck.add_argument(
         "--out",
         help="folder for selfcheck.json and selfcheck.html (default: results/<run_name of the protocol>/selfcheck)",
     )
@@ -329,11 +335,14 @@ def cmd_selfcheck(args) -> int:
         replicates=args.replicates,
         truth_episodes=args.truth_episodes,
         reference_episodes=args.reference_episodes,
+        confounder_gamma=args.confounder_gamma,
     )
     out = output_folder(args.out or f"results/{pf.protocol.study.run_name}/selfcheck", "--out")
+    gamma = chosen["confounder_gamma"]
+    hidden = f", a hidden confounder of strength Γ = {gamma:g}" if gamma > 1 else ""
     print(
         f"regimewise {__version__}: self-check of {pf.path.name}: {chosen['cohorts']} look-alike cohorts, "
-        f"{chosen['replicates']} replicates each, {args.cores} worker(s), into {out}"
+        f"{chosen['replicates']} replicates each{hidden}, {args.cores} worker(s), into {out}"
     )
     print(TERMINAL_CAUTION)
     started = time.perf_counter()
@@ -350,6 +359,14 @@ def cmd_selfcheck(args) -> int:
         print(
             f"usual care's value: {100 * uc['coverage']:.1f}% coverage (Monte Carlo SE "
             f"{100 * uc['coverage_mcse']:.1f} points) over {uc['n_used']} cohorts"
+        )
+    confounding = document["summary"].get("confounding")
+    if confounding is not None and confounding["truth_within_interval"] is not None:
+        print(
+            f"hidden confounder Γ = {confounding['gamma']:g}: the bounds' intervals at Γ held the truth in "
+            f"{100 * confounding['truth_within_interval']:.1f}% (Monte Carlo SE "
+            f"{100 * confounding['truth_within_interval_mcse']:.1f} points) of "
+            f"{confounding['cohorts_with_interval']} cohorts"
         )
     print(f"self-check done in {minutes} min {seconds} s")
     print(f"page:    {out / 'selfcheck.html'}")

@@ -186,16 +186,31 @@ def fit_replicate(decisions: pd.DataFrame, protocol: Protocol, held: HeldRegime 
 
 
 def learn_and_evaluate(
-    decisions: pd.DataFrame, protocol: Protocol, strict: bool = False, held: HeldRegime | None = None
+    decisions: pd.DataFrame,
+    protocol: Protocol,
+    strict: bool = False,
+    held: HeldRegime | None = None,
+    target: bool = False,
 ) -> tuple[dict, dict]:
     """Refit (:func:`fit_replicate`) and evaluate as the workflow does.
 
     Returns the output of :func:`regimewise.evaluation.values.evaluate_all` and the confounding-sensitivity curve
-    of the regime (:func:`regimewise.sensitivity.analysis.regime_curve`).
+    (:func:`regimewise.sensitivity.analysis.regime_curve`) of the learned regime, or with ``target`` of the
+    sensitivity stage's target (:func:`target_curve`, as every replicate computes it).
     """
     proba, recommended, q, folds = fit_replicate(decisions, protocol, held)
     values = evaluate_all(decisions, proba, recommended, protocol, strict=strict, learned_folds=folds, learned_q=q)
+    if target:
+        return values, target_curve(decisions, proba, recommended, protocol)
     return values, regime_curve(decisions, proba, recommended, protocol)
+
+
+def target_curve(decisions: pd.DataFrame, proba: np.ndarray, recommended, protocol: Protocol) -> dict:
+    """The bounds curve of the regime the sensitivity stage bounds (:func:`sensitivity_target`: the headline
+    partial adoption, the learned regime or the headline named strategy), given usual care's probabilities and the
+    learned regime's actions at ``decisions``."""
+    bounded = bounded_actions(decisions, protocol, recommended)
+    return regime_curve(decisions, proba, bounded, protocol, adoption=sensitivity_target(protocol)["adoption"])
 
 
 def replicate_values(
@@ -206,8 +221,7 @@ def replicate_values(
     intervals). ``held``: the regime held fixed at the resample's rows (None: learned again)."""
     proba, recommended, q, folds = fit_replicate(decisions, protocol, held)
     values = evaluate_all(decisions, proba, recommended, protocol, strict=False, learned_folds=folds, learned_q=q)
-    bounded = bounded_actions(decisions, protocol, recommended)
-    curve = regime_curve(decisions, proba, bounded, protocol, adoption=sensitivity_target(protocol)["adoption"])
+    curve = target_curve(decisions, proba, recommended, protocol)
     out = {
         "values": point_values(values),
         "sensitivity": {"bounded": to_jsonable(curve["bounded"]), "usual_care": curve["usual_care"]},

@@ -25,6 +25,7 @@ from regimewise.protocol.sections import (
     StateVariable,
     SurvivalSpec,
     SweepSpec,
+    confounder_problem,
 )
 
 __all__ = [
@@ -43,6 +44,7 @@ __all__ = [
     "StateVariable",
     "SurvivalSpec",
     "SweepSpec",
+    "confounder_problem",
     "export_schema",
     "load_protocol",
     "protocol_schema",

@@ -32,6 +32,7 @@ from regimewise.protocol.sections import (
     Study,
     SurvivalSpec,
     SweepSpec,
+    confounder_problem,
 )
 from regimewise.protocol.strategies import StrategiesSpec
 from regimewise.protocol.terms import interactions_problem, terms_problem
@@ -211,6 +212,14 @@ class Protocol(Strict):
                 "survival needs real days since the index date, but data.columns.day is null; name the day column "
                 "or remove survival"
             )
+        return self
+
+    @model_validator(mode="after")
+    def _selfcheck_confounder_fits(self) -> Protocol:
+        if self.selfcheck is not None:
+            problem = confounder_problem(self.selfcheck.confounder_gamma, self.sensitivity, self.analysis.learn_regime)
+            if problem is not None:
+                raise ValueError(f"selfcheck.confounder_gamma {problem}")
         return self
 
     @model_validator(mode="after")

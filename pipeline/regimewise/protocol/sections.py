@@ -650,6 +650,23 @@ class SelfCheckSpec(Strict):
         description="simulated episodes the reference rule is learned from (the learned regime's regret is measured "
         "against it)",
     )
+    confounder_gamma: Annotated[float, Field(ge=1.0, le=50.0), FINITE, NOT_BOOLEAN] = Field(
+        1.0,
+        description="strength Γ of a hidden confounder built into the look-alike world at the decisions "
+        "sensitivity.confounded_decisions names (1: none; at most sensitivity.gamma_max): the self-check then also "
+        "checks the sensitivity bounds at Γ against the truth",
+    )
+
+
+def confounder_problem(gamma: float, sensitivity: SensitivitySpec, learn_regime: bool) -> str | None:
+    """Why a hidden confounder of strength ``gamma`` cannot be built into the self-check's world for this protocol
+    (None when it can): the bounds are computed up to ``sensitivity.gamma_max`` only, and the self-check's truths
+    are those of the learned regime and its strategies."""
+    if gamma > sensitivity.gamma_max:
+        return f"must not exceed sensitivity.gamma_max ({sensitivity.gamma_max:g})"
+    if gamma > 1.0 and not learn_regime:
+        return "needs analysis.learn_regime: true (the self-check's truths are the learned regime's)"
+    return None
 
 
 class SweepSpec(Strict):

@@ -7,7 +7,13 @@ number of replicates (:func:`run_shard`, :func:`combine`). The truths are the da
 cross-fitted estimates aim at: for the learned regime and the headline strategy, the episode-weighted mean over
 the cross-fitting folds of the true value of the rule learned without that fold, in the look-alike world, by Monte
 Carlo with common random numbers (a truth defined for another rule would make valid estimators look biased; Shaw
-et al. 2025). Research use only.
+et al. 2025).
+
+With a hidden confounder in the world (Γ > 1, :meth:`LookAlikeWorld.with_confounder`), each cohort also gets the
+sensitivity analysis the sensitivity stage runs (:func:`regimewise.bootstrap.replicates.target_curve` on the
+cohort, the bootstrap replicates' curves of the same shard, :func:`summarise_sensitivity`): the point bounds of the
+sensitivity target's contrast with usual care, and their percentile-bootstrap interval (Zhao, Small & Bhattacharya
+2019), at the world's Γ and at Γ = 1, beside the target's true contrast. Research use only.
 """
 
 from __future__ import annotations
@@ -22,6 +28,7 @@ from regimewise.evaluation.strategies import protocol_strategies
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import crossfit_folds, fold_regimes, learn_regime
 from regimewise.selfcheck.world import LookAlikeWorld
+from regimewise.sensitivity.analysis import sensitivity_target, summarise_sensitivity
 
 USUAL_CARE, LEARNED = "usual_care", "learned"
 MESSAGE_LENGTH = 300  # characters of a failed cohort's error message kept in selfcheck.json
@@ -50,13 +57,18 @@ def strategy_policy(strategy, learned):
     return IncrementalOdds(learned, strategy.parameter)
 
 
-def compared_protocol(protocol: Protocol, replicates: int) -> Protocol:
+def compared_protocol(protocol: Protocol, replicates: int, confounder_gamma: float = 1.0) -> Protocol:
     """The protocol as the self-check runs it: usual care, the learned regime and the headline strategy only (no
-    other strategy of the grids, no fixed strategies, no comparators), ``replicates`` replicates in one shard."""
+    other strategy of the grids, no fixed strategies, no comparators), ``replicates`` replicates in one shard; with
+    a hidden confounder (``confounder_gamma`` > 1) its Γ joins the sensitivity table's Γ values, so the bounds and
+    every replicate's curve are computed at it."""
     evaluation = protocol.evaluation.model_copy(
         update={"replicates": replicates, "shards": 1, "fixed_strategies": False}
     )
     update = {"evaluation": evaluation, "comparators": []}
+    if confounder_gamma > 1.0:
+        gammas = sorted({1.0, float(confounder_gamma), *protocol.sensitivity.gammas})
+        update["sensitivity"] = protocol.sensitivity.model_copy(update={"gammas": gammas})
     s = protocol.strategies
     if s is not None:
         h = s.headline
@@ -119,15 +131,49 @@ def _estimates(values, intervals, names):
     return out
 
 
+def _confounding(curve, shard, protocol, gamma, truths) -> dict:
+    """The sensitivity analysis of one cohort at the world's Γ and at Γ = 1 (:func:`summarise_sensitivity` on the
+    cohort's curve and its replicates' curves): the target, its true contrast with usual care, and per Γ the point
+    bounds of the contrast and their bootstrap interval."""
+    target = sensitivity_target(protocol)
+    replicates = [r["sensitivity"] for r in shard["replicates"] if "sensitivity" in r]
+    table = summarise_sensitivity(curve, replicates, protocol, None, target)["table"]
+    rows = {row["gamma"]: row for row in table}
+
+    def at(g):
+        row = rows[g]
+        return {
+            "gamma": g,
+            "bounds": [row["contrast_lower"], row["contrast_upper"]],
+            "interval": [row["low"], row["high"]],
+        }
+
+    return {
+        "gamma": gamma,
+        "strategy": target["name"],
+        "strategy_words": target["words"],
+        "true_contrast": truths[target["name"]]["contrast"],
+        "replicates_used": len(replicates),
+        "at_gamma": at(gamma),
+        "at_one": at(1.0),
+    }
+
+
 def run_cohort(world: LookAlikeWorld, protocol: Protocol, cohort: int, replicates: int, truth_episodes: int) -> dict:
     """Simulate cohort ``cohort`` (as many episodes as the records), rerun the analysis with ``replicates``
-    bootstrap replicates, and compute the truths on ``truth_episodes`` simulated episodes per policy."""
-    p = compared_protocol(protocol, replicates)
+    bootstrap replicates, and compute the truths on ``truth_episodes`` simulated episodes per policy; with a hidden
+    confounder in the world, also the sensitivity bounds at its Γ (:func:`_confounding`)."""
+    gamma = world.confounder_gamma
+    p = compared_protocol(protocol, replicates, gamma)
     records_seed, truth_seed = cohort_seeds(protocol, cohort)
     decisions, _ = world.simulate(world.n_episodes, records_seed)
-    values, _ = learn_and_evaluate(decisions, p, strict=False)
-    intervals = combine(values, [run_shard(decisions, p, 0)], p)
+    values, curve = learn_and_evaluate(decisions, p, strict=False, target=True)
+    shard = run_shard(decisions, p, 0)
+    intervals = combine(values, [shard], p)
     truths = _truths(world, decisions, p, truth_episodes, truth_seed)
+    extra = {}
+    if gamma > 1.0:
+        extra["confounding"] = _confounding(curve, shard, p, gamma, truths)
     return {
         "cohort": cohort,
         "seed": records_seed,
@@ -138,6 +184,7 @@ def run_cohort(world: LookAlikeWorld, protocol: Protocol, cohort: int, replicate
         "mean_return": float(decisions.groupby("episode_id", sort=False)["reward"].sum().mean()),
         "truths": truths,
         "estimates": _estimates(values, intervals, set(truths)),
+        **extra,
     }
 
 

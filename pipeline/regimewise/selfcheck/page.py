@@ -35,6 +35,26 @@ def _share_of(measure):
     return f"{_percent(measure['coverage'])} (Monte Carlo SE {mcse} points) of {measure['n_used']}"
 
 
+def _confounding_sentence(c, level) -> str:
+    """The hidden confounder's check in words."""
+    gamma = f"{c['gamma']:g}"
+    naive = (
+        f"{_percent(c['naive_coverage'])} (Monte Carlo SE {_points(c['naive_coverage_mcse'])} points) of "
+        f"{c['naive_cohorts']}"
+    )
+    return (
+        f"With a hidden confounder of strength Γ = {gamma} built into the look-alike world (one particular "
+        "confounder within the sensitivity model, not the worst case it allows), the sensitivity bounds at "
+        f"Γ = {gamma} of the difference between {escape(c['strategy_words'])} and usual care contained the true "
+        "difference in "
+        f"{_percent(c['truth_within_bounds'])} (Monte Carlo SE {_points(c['truth_within_bounds_mcse'])} points) of "
+        f"{c['cohorts_with_bounds']} cohorts, and their bootstrap intervals in "
+        f"{_percent(c['truth_within_interval'])} (Monte Carlo SE {_points(c['truth_within_interval_mcse'])} points) "
+        f"of {c['cohorts_with_interval']}; the ordinary {100 * level:.0f}% intervals, which assume no hidden "
+        f"confounding, covered it in {naive}."
+    )
+
+
 def _performance_table(summary, names) -> str:
     head = (
         "<tr><th scope='col'>Strategy</th><th scope='col'>Estimator</th><th scope='col'>Target</th>"
@@ -138,6 +158,15 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         )
     regret = _regret_sentence(summary.get("regret"))
     failures = _failures(document.get("failed_cohorts", []), s["cohorts"])
+    confounding = summary.get("confounding")
+    if confounding:
+        sentences.append(_confounding_sentence(confounding, protocol.evaluation.interval_level))
+    hidden = (
+        f"a hidden confounder of strength Γ = {confounding['gamma']:g} at the decisions the protocol's sensitivity "
+        "analysis allows to be confounded (it tilts usual care's choice and shifts that decision's reward)"
+        if confounding
+        else "no hidden confounding"
+    )
     flagged = fit["flagged"]
     listed = ", ".join(
         f"{escape(f['state'])} at decision point {f['step']} ({_number(f['smd'], 2)})" for f in flagged[:5]
@@ -163,7 +192,7 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         "<p>The look-alike world is only as good as its fitted models (plasmode simulation: Franklin, Schneeweiss, "
         "Polinski &amp; Rassen 2014): it keeps the records' first decisions and simulates the rest from regressions "
         "of each state, the reward and follow-up on the state and action, with usual care from the protocol's "
-        "usual-care model and no hidden confounding. Good coverage here says the estimators work when those models "
+        f"usual-care model and {hidden}. Good coverage here says the estimators work when those models "
         "are right; it cannot show that they are. Truths are those of the rules learned in each simulated cohort "
         "(the cross-fitted target), computed on "
         f"{s['truth_episodes']:,} simulated episodes per policy with common random numbers. Monte Carlo standard "

@@ -27,7 +27,10 @@ from regimewise.selfcheck.world import LookAlikeWorld
 
 def reference_regimes(world: LookAlikeWorld, protocol: Protocol, episodes: int):
     """The reference rule, fitted on ``episodes`` simulated episodes, and its check fitted on half as many (each
-    on its own draws of stream ``selfcheck_reference``)."""
+    on its own draws of stream ``selfcheck_reference``). Both are fitted on episodes of the world without its hidden
+    confounder, if it has one: the reference stands for the best rule, not for what the learner makes of confounded
+    records (a rule that does not see the confounder has the same value in either world)."""
+    world = world.with_confounder(1.0)
     full_seed, half_seed = (int(s) for s in stream(protocol.seed, "selfcheck_reference").generate_state(2))
     full = learn_regime(world.simulate(episodes, full_seed)[0], protocol)
     half = learn_regime(world.simulate(max(episodes // 2, 1), half_seed)[0], protocol)

@@ -7,6 +7,7 @@ from __future__ import annotations
 import warnings
 from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
+from typing import NoReturn
 
 import numpy as np
 from pydantic import ValidationError
@@ -17,11 +18,11 @@ from regimewise.data.validate import validate_records
 from regimewise.errors import UserInputError
 from regimewise.evaluation.values import headline_estimator
 from regimewise.io import write_json, write_text
-from regimewise.protocol import ProtocolFile, SelfCheckSpec, load_protocol
+from regimewise.protocol import ProtocolFile, SelfCheckSpec, confounder_problem, load_protocol
 from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_outcome, cohort_seeds, headline_strategy
 from regimewise.selfcheck.fitcheck import reproduction
 from regimewise.selfcheck.page import selfcheck_page
-from regimewise.selfcheck.performance import performance
+from regimewise.selfcheck.performance import coverage_mcse, performance
 from regimewise.selfcheck.regret import regret
 from regimewise.selfcheck.world import LookAlikeWorld, fitted_world
 
@@ -30,10 +31,10 @@ from regimewise.selfcheck.world import LookAlikeWorld, fitted_world
 _WORKER: dict = {}
 
 
-def _start_worker(protocol_path: str, replicates: int, truth_episodes: int) -> None:
+def _start_worker(protocol_path: str, replicates: int, truth_episodes: int, confounder_gamma: float) -> None:
     warnings.simplefilter("ignore")
     pf = load_protocol(protocol_path)
-    world = fitted_world(validate_records(pf).decisions, pf.protocol)
+    world = fitted_world(validate_records(pf).decisions, pf.protocol, confounder_gamma)
     _WORKER.update(world=world, protocol=pf.protocol, replicates=replicates, truth_episodes=truth_episodes)
 
 
@@ -45,9 +46,10 @@ def _cohort_job(cohort: int) -> dict:
 
 
 def settings(pf: ProtocolFile, **given) -> dict:
-    """The self-check's settings (``cohorts``, ``replicates``, ``truth_episodes``, ``reference_episodes``): the
-    command line's where given (not None), else the protocol's ``selfcheck`` section's, else defaults; checked
-    against the section's bounds (one line naming the first setting out of them)."""
+    """The self-check's settings (``cohorts``, ``replicates``, ``truth_episodes``, ``reference_episodes``,
+    ``confounder_gamma``): the command line's where given (not None), else the protocol's ``selfcheck`` section's,
+    else defaults; checked against the section's bounds and the protocol (one line naming the first setting out of
+    them). ``confounder_gamma`` may be the command line's text."""
     spec = pf.protocol.selfcheck or SelfCheckSpec()
     unknown = set(given) - set(SelfCheckSpec.model_fields)
     if unknown:
@@ -55,15 +57,29 @@ def settings(pf: ProtocolFile, **given) -> dict:
     chosen = {
         name: given[name] if given.get(name) is not None else getattr(spec, name) for name in SelfCheckSpec.model_fields
     }
+    if given.get("confounder_gamma") is not None:
+        chosen["confounder_gamma"] = _gamma_number(given["confounder_gamma"])
     try:
         SelfCheckSpec.model_validate(chosen)
     except ValidationError as err:
         first = err.errors()[0]
-        name = str(first["loc"][0])
-        raise UserInputError(
-            f"self-check setting {name} = {chosen[name]!r}: {first['msg'].lower()} (--{name.replace('_', '-')})"
-        ) from None
+        _refuse(str(first["loc"][0]), chosen, first["msg"].lower())
+    p = pf.protocol
+    problem = confounder_problem(chosen["confounder_gamma"], p.sensitivity, p.analysis.learn_regime)
+    if problem is not None:
+        _refuse("confounder_gamma", chosen, problem)
     return chosen
+
+
+def _gamma_number(text) -> float:
+    try:
+        return float(text)
+    except (TypeError, ValueError):
+        _refuse("confounder_gamma", {"confounder_gamma": text}, "not a number; give a number of at least 1")
+
+
+def _refuse(name: str, chosen: dict, problem: str) -> NoReturn:
+    raise UserInputError(f"self-check setting {name} = {chosen[name]!r}: {problem} (--{name.replace('_', '-')})")
 
 
 def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], chosen: dict) -> dict:
@@ -89,6 +105,7 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
         if r["cohort"] in regret_rows:
             row = regret_rows[r["cohort"]]
             r["regret"] = {"reference_value": row["reference_value"], "regret": row["regret"]}
+    confounder = {} if world.confounder_gamma == 1.0 else {"confounder_gamma": world.confounder_gamma}
     return {
         "caution": SELFCHECK_CAUTION,
         "settings": {
@@ -102,6 +119,7 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
             "seed": protocol.seed,
             "seed_stream": "selfcheck (11, c): cohort c's records and the draws of its truths; selfcheck_reference "
             "(12): the reference rule's cohorts",
+            **confounder,
         },
         "world": {
             "numeric_states": list(world.numeric_states),
@@ -126,12 +144,13 @@ def run_selfcheck(pf: ProtocolFile, out: Path, chosen: dict, cores: int, progres
     the number of workers. ``progress(done, cohorts, result)``, if given, is called as the cohorts finish (in
     cohort order)."""
     records = validate_records(pf).decisions
-    world = fitted_world(records, pf.protocol)  # in this process first: a cohort too small fails fast
+    gamma = chosen["confounder_gamma"]
+    world = fitted_world(records, pf.protocol, gamma)  # in this process first: a cohort too small fails fast
     cohorts = chosen["cohorts"]
     with ProcessPoolExecutor(
         max_workers=max(1, min(cores, cohorts)),
         initializer=_start_worker,
-        initargs=(str(pf.path), chosen["replicates"], chosen["truth_episodes"]),
+        initargs=(str(pf.path), chosen["replicates"], chosen["truth_episodes"], gamma),
     ) as pool:
         results = []
         for result in pool.map(_cohort_job, range(cohorts)):
@@ -198,10 +217,59 @@ def summarise(results: list[dict], protocol) -> dict:
         )
 
     true_contrasts = [r["truths"][strategy.name]["contrast"] for r in results] if strategy is not None else []
-    return {
+    out = {
         "estimator": headline_est,
         "rows": rows,
         "usual_care_value": pick(USUAL_CARE, "value"),
         "headline": None if strategy is None else {"name": strategy.name, **(pick(strategy.name, "contrast") or {})},
         "mean_true_contrast": float(np.mean(true_contrasts)) if true_contrasts else None,
+    }
+    if "confounding" in results[0]:  # only with a hidden confounder in the world: Γ = 1 adds nothing
+        naive = pick(results[0]["confounding"]["strategy"], "contrast")
+        out["confounding"] = confounding_summary(results, naive["all"] if naive else None)
+    return out
+
+
+def _holds(truth, limits):
+    """Whether ``truth`` lies in ``limits`` (None where either limit is undefined)."""
+    low, high = limits
+    if low is None or high is None:
+        return None
+    return low <= truth <= high
+
+
+def _share(hits) -> dict:
+    """The share of True among the defined entries and its Monte Carlo SE √(p(1 − p)/R) (Morris, White &
+    Crowther 2019, Table 6, coverage)."""
+    defined = [h for h in hits if h is not None]
+    if not defined:
+        return {"share": None, "mcse": None, "n_used": 0}
+    p = sum(defined) / len(defined)
+    return {"share": p, "mcse": coverage_mcse(p, len(defined)), "n_used": len(defined)}
+
+
+def confounding_summary(results: list[dict], naive: dict | None) -> dict:
+    """With a hidden confounder of strength Γ in the world: the share of cohorts whose point bounds of the
+    sensitivity target's contrast with usual care at Γ contain its true contrast, and the share whose bootstrap
+    interval of those bounds does, each with its Monte Carlo SE; beside them, ``naive``: the headline estimator's
+    ordinary interval's performance for the same contrast (a row of :func:`summarise`)."""
+    first = results[0]["confounding"]
+    entries = [r["confounding"] for r in results]
+    within_bounds = _share([_holds(c["true_contrast"], c["at_gamma"]["bounds"]) for c in entries])
+    within_interval = _share([_holds(c["true_contrast"], c["at_gamma"]["interval"]) for c in entries])
+    return {
+        "gamma": first["gamma"],
+        "strategy": first["strategy"],
+        "strategy_words": first["strategy_words"],
+        "cohorts": len(results),
+        "truth_within_bounds": within_bounds["share"],
+        "truth_within_bounds_mcse": within_bounds["mcse"],
+        "cohorts_with_bounds": within_bounds["n_used"],
+        "truth_within_interval": within_interval["share"],
+        "truth_within_interval_mcse": within_interval["mcse"],
+        "cohorts_with_interval": within_interval["n_used"],
+        "naive_coverage": None if naive is None else naive["coverage"],
+        "naive_coverage_mcse": None if naive is None else naive["coverage_mcse"],
+        "naive_cohorts": 0 if naive is None else naive["n_used"],
+        "mean_true_contrast": float(np.mean([c["true_contrast"] for c in entries])),
     }

@@ -19,7 +19,34 @@ the truth is known (Franklin, Schneeweiss, Polinski & Rassen 2014, Comput Stat D
 
 Numeric states are kept within their plausible range; integer states are rounded. Each episode is its own
 patient, and the states are complete (no missing values). The world is only as good as these models; the
-self-check reports how well it reproduces the records (:func:`reproduction`). Research use only.
+self-check reports how well it reproduces the records (:func:`reproduction`).
+
+**A hidden confounder of strength Γ** (optional, :meth:`LookAlikeWorld.with_confounder`; Γ = 1, the default, is
+none and leaves every draw and output as without it). At each decision point the protocol's
+``sensitivity.confounded_decisions`` names (:func:`regimewise.sensitivity.analysis.confounded_mask`, so the
+sensitivity bounds' assumption holds in the world), a hidden U_t ~ Bernoulli(½) is drawn, independent across
+decisions and of the states, from its own stream of common random numbers (every policy sees the same U). It acts
+on two things:
+
+* usual care's choice (:func:`hidden_choice`): U_t = 1 moves probability mass δ from the lower half of the
+  protocol's action order to the upper half, U_t = 0 the same mass the other way, each half's actions scaled in
+  proportion (with an odd number of actions the middle one keeps its probability). Averaged over U_t the
+  probabilities are the world's fitted usual-care probabilities e(a|x) exactly, so the records' usual-care model
+  stays right for the marginal, as the marginal sensitivity model assumes (Tan 2006, JASA 101:1619). δ is the
+  largest mass for which the odds of every P(a|x,U) against the odds of e(a|x) stay within [1/Γ, Γ]. Scaling a
+  probability e by c changes its odds by c(1 − e)/(1 − ce), which moves away from 1 as e grows, so the binding
+  action is each half's most likely one, and solving c(1 − e)/(1 − ce) = Γ (or 1/Γ) gives δ in closed form per
+  decision, vectorised; the binding action's odds ratio is exactly Γ or 1/Γ. A decision whose upper or lower half
+  has no probability cannot be tilted this way (δ = 0). The tilt is one particular confounder within the model,
+  not the worst case the bounds allow for;
+* the reward at that decision: + κ·(2U_t − 1)·σ_t, with σ_t the sample SD (divisor n − 1) of the step's reward
+  residuals that the world draws from and κ = :data:`CONFOUNDER_REWARD_SHIFT` = 0.5 (a hidden factor worth half a
+  residual SD either way: large enough that naive estimates are visibly biased on cohorts of a few thousand
+  episodes, small beside the reward's own noise). U_t does not change the states, so it confounds the decision it
+  belongs to through that decision's reward only.
+
+Under a policy that ignores U the reward term averages zero, so such a policy's value is what it is without the
+confounder; usual care's actions depend on U, which is what biases an analysis that cannot see U. Research use only.
 """
 
 from __future__ import annotations
@@ -35,6 +62,7 @@ from threadpoolctl import threadpool_limits
 from regimewise.core.features import StateScaler, action_codes, level_values
 from regimewise.errors import UserInputError
 from regimewise.protocol import Protocol
+from regimewise.sensitivity.analysis import confounded_mask
 from regimewise.usual_care.fitting import UsualCareModel, fit_usual_care
 
 # Fewest decisions per fitted coefficient of a per-step model (common practice for linear models, no source).
@@ -42,6 +70,9 @@ ROWS_PER_COEFFICIENT = 2
 # Penalty of the logistic models (scikit-learn's C on standardised covariates): mild, so that a state or a
 # follow-up that the covariates separate gets probabilities near 0 and 1 instead of a failed fit.
 LOGISTIC_C = 1.0
+# κ: the hidden confounder's shift of the reward at a confounded decision, in residual SDs of that step's reward
+# (our choice, no source; see the module's description).
+CONFOUNDER_REWARD_SHIFT = 0.5
 
 
 def _solve(design, target):
@@ -98,6 +129,7 @@ class LookAlikeWorld:
     class_states: tuple[str, ...]
     carried_states: tuple[str, ...]
     n_episodes: int
+    confounder_gamma: float = 1.0
 
     # ------------------------------------------------------------------------------------------------- fitting
     @classmethod
@@ -174,6 +206,11 @@ class LookAlikeWorld:
             days[nxt] - days[rows[continues]],
         )
 
+    def with_confounder(self, gamma: float) -> LookAlikeWorld:
+        """This world with a hidden confounder of strength Γ = ``gamma`` ≥ 1 at the protocol's confounded decisions
+        (see the module's description; Γ = 1: none)."""
+        return replace(self, confounder_gamma=_check_gamma(gamma))
+
     # ------------------------------------------------------------------------------------------------- design
     def design(self, frame: pd.DataFrame, codes: np.ndarray) -> np.ndarray:
         """Covariates of every model: 1, the scaled states (categorical as dummies), the action's indicators
@@ -193,9 +230,9 @@ class LookAlikeWorld:
         """Every random number an episode may use, drawn up front in fixed shapes (common random numbers: the
         same seed gives the same draws whatever the policy)."""
         horizon = len(self.steps)
-        streams = np.random.SeedSequence(seed).spawn(6)
+        streams = np.random.SeedSequence(seed).spawn(7)  # a child's numbers do not depend on how many are spawned
         rng = [np.random.default_rng(s) for s in streams]
-        return {
+        draws = {
             "baseline": rng[0].integers(0, self.n_episodes, n),
             "donor": rng[1].random((n, horizon)),
             "classes": rng[2].random((n, horizon, max(len(self.class_states), 1))),
@@ -203,6 +240,15 @@ class LookAlikeWorld:
             "follow_up": rng[4].random((n, horizon)),
             "coins": rng[5].random((n, horizon)),
         }
+        if self.confounder_gamma > 1.0:  # the hidden U_t ~ Bernoulli(½); not drawn without a confounder
+            draws["hidden"] = rng[6].random((n, horizon)) < 0.5
+        return draws
+
+    def confounded_steps(self) -> np.ndarray:
+        """Per decision point: whether the hidden confounder acts there (Γ > 1 and a decision the protocol's
+        ``sensitivity.confounded_decisions`` names)."""
+        steps = np.arange(len(self.steps))
+        return confounded_mask(steps, self.protocol.sensitivity) & (self.confounder_gamma > 1.0)
 
     def _rollout(self, n, seed, policy, record=False):
         """Simulate ``n`` episodes under ``policy``; returns the decisions (one frame per decision point, with
@@ -218,16 +264,23 @@ class LookAlikeWorld:
         frames, probabilities = [], []
         # a regime that does not act on usual care's natural action needs no usual-care probabilities
         needs_usual_care = record or isinstance(policy, str) or hasattr(policy, "modify")
+        confounded = self.confounded_steps()
         for t, models in enumerate(self.steps):
             index = np.flatnonzero(active)
             current = state.iloc[index].reset_index(drop=True)
             current["step"] = t
+            hidden = draws["hidden"][index, t] if confounded[t] else None
             proba = self.usual_care.predict_proba(current) if needs_usual_care else None
+            if needs_usual_care and hidden is not None:  # usual care's choice given the state and U
+                proba = hidden_choice(proba, hidden, self.confounder_gamma)
             natural = _draw_codes(proba, draws["usual_care"][index, t]) if needs_usual_care else None
             codes = _policy_codes(policy, current, natural, proba, draws["coins"][index, t])
             design = self.design(current, codes)
             donor = self._donor(models, draws["donor"][index, t])
             reward = design @ models.reward + models.reward_residuals[donor]
+            if hidden is not None:
+                shift = CONFOUNDER_REWARD_SHIFT * np.std(models.reward_residuals, ddof=1)
+                reward = reward + shift * (2.0 * hidden - 1.0)
             returns[index] += p.discount**t * reward
             if record:
                 frames.append(self._decisions(current, index, day[index], codes, reward, t))
@@ -280,7 +333,8 @@ class LookAlikeWorld:
 
     def simulate(self, n: int, seed: int) -> tuple[pd.DataFrame, np.ndarray]:
         """A cohort of ``n`` episodes under usual care: clean decisions (episode and step order) and usual care's
-        probabilities of every simulated decision (the truth of the world's usual care)."""
+        probabilities of every simulated decision (the truth of the world's usual care: with a hidden confounder,
+        the probabilities given the state and U, from which the actions were drawn)."""
         _check_count(n)
         frames, probabilities, _ = self._rollout(n, seed, "usual_care", record=True)
         decisions = pd.concat(frames, ignore_index=True)
@@ -291,21 +345,67 @@ class LookAlikeWorld:
     def returns(self, policy, n: int, seed: int) -> np.ndarray:
         """Every episode's discounted return under ``policy``: ``"usual_care"``, a regime (a callable of a state
         frame giving action codes, such as a learned regime), or a strategy acting on usual care's natural action
-        (an object with ``modify(frame, natural, proba, coins)``, as in :mod:`regimewise.demo.strategies`). The
-        same ``seed`` gives every policy the same draws (common random numbers)."""
+        (an object with ``modify(frame, natural, proba, coins)``, as in :mod:`regimewise.demo.strategies`; with a
+        hidden confounder ``proba`` are usual care's probabilities given the state and U, from which ``natural``
+        was drawn). The same ``seed`` gives every policy the same draws (common random numbers)."""
         _check_count(n)
         return self._rollout(n, seed, policy)[2]
 
 
-def fitted_world(records: pd.DataFrame, protocol: Protocol) -> LookAlikeWorld:
+def fitted_world(records: pd.DataFrame, protocol: Protocol, confounder_gamma: float = 1.0) -> LookAlikeWorld:
     """The look-alike world fitted on clean records, one BLAS thread, fitting warnings silenced (the analysis of
-    the records themselves reports them)."""
+    the records themselves reports them), with a hidden confounder of strength ``confounder_gamma`` (1: none)."""
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return LookAlikeWorld.fit(records, protocol)
+        return LookAlikeWorld.fit(records, protocol).with_confounder(confounder_gamma)
+
+
+def hidden_choice(proba: np.ndarray, hidden: np.ndarray, gamma: float) -> np.ndarray:
+    """Usual care's probabilities given the state and the hidden U: rows of :func:`tilted_probabilities` at
+    U = 1 where ``hidden``, at U = 0 elsewhere."""
+    high, low = tilted_probabilities(proba, gamma)
+    return np.where(np.asarray(hidden, dtype=bool)[:, None], high, low)
+
+
+def tilted_probabilities(proba, gamma: float) -> tuple[np.ndarray, np.ndarray]:
+    """Usual care's probabilities given a hidden U = 1 and U = 0, tilted from ``proba`` (n, K), the
+    probabilities e(a|x) averaged over U, within the marginal sensitivity model of strength Γ (Tan 2006).
+
+    U = 1 scales the upper half of the action order (codes ≥ ⌈K/2⌉) by 1 + δ/s and the lower half (codes < ⌊K/2⌋)
+    by 1 − δ/l, U = 0 the other way (s, l: each half's probability), so the two average to ``proba`` and each row
+    still sums to 1. Scaling e by c gives the odds ratio c(1 − e)/(1 − ce); it is Γ at c = Γ/(1 − e + Γe) and 1/Γ
+    at c = 1/(Γ(1 − e) + e), and moves away from 1 as e grows, so δ is the largest mass with both halves' most likely
+    actions within [1/Γ, Γ] in both directions: one of them reaches Γ or 1/Γ exactly (unless a half is empty, when
+    δ = 0).
+    """
+    e = np.asarray(proba, dtype=float)
+    gamma = _check_gamma(gamma)
+    k = e.shape[1]
+    code = np.arange(k)
+    upper, lower = code >= (k + 1) // 2, code < k // 2
+    halves = []
+    for part in (upper, lower):
+        mass, top = e[:, part].sum(axis=1), e[:, part].max(axis=1)
+        raise_to = gamma / (1.0 - top + gamma * top) - 1.0  # c − 1 at odds ratio Γ, c ≥ 1
+        lower_to = 1.0 - 1.0 / (gamma * (1.0 - top) + top)  # 1 − c at odds ratio 1/Γ, c ≤ 1
+        halves.append((mass, mass * np.minimum(raise_to, lower_to)))
+    (upper_mass, upper_room), (lower_mass, lower_room) = halves
+    delta = np.minimum(upper_room, lower_room)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        up = np.where(upper_mass > 0, delta / upper_mass, 0.0)[:, None]
+        down = np.where(lower_mass > 0, delta / lower_mass, 0.0)[:, None]
+    step = np.where(upper, up, 0.0) - np.where(lower, down, 0.0)
+    return e * (1.0 + step), e * (1.0 - step)
 
 
 # ----------------------------------------------------------------------------------------------------- helpers
+def _check_gamma(gamma):
+    number = not isinstance(gamma, bool) and isinstance(gamma, (int, float, np.integer, np.floating))
+    if not number or not np.isfinite(gamma) or gamma < 1.0:
+        raise UserInputError(f"hidden confounder's strength Γ: got {gamma!r}; give a finite number of at least 1")
+    return float(gamma)
+
+
 def _check_count(n):
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
         raise UserInputError(f"number of episodes: got {n!r}; give a positive integer")

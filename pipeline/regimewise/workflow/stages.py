@@ -419,7 +419,7 @@ def sweep_stage(protocol, specs, sweep):
 def selfcheck_cohort_stage(protocol, decisions, cohort, result):
     """One look-alike cohort of the self-check (wildcard ``cohort``): simulate, analyse, and compute its truths."""
     p = load_protocol(protocol).protocol
-    world = fitted_world(read_parquet(decisions), p)
+    world = fitted_world(read_parquet(decisions), p, p.selfcheck.confounder_gamma)
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the analysis of the records themselves reports its warnings
         out = cohort_outcome(world, p, int(cohort), p.selfcheck.replicates, p.selfcheck.truth_episodes)
@@ -435,7 +435,8 @@ def selfcheck_stage(protocol, decisions, cohorts, selfcheck, page):
     p = load_protocol(protocol).protocol
     records = read_parquet(decisions)
     results = [read_json(path) for path in cohorts]
-    document = selfcheck_document(records, fitted_world(records, p), p, results, p.selfcheck.model_dump())
+    world = fitted_world(records, p, p.selfcheck.confounder_gamma)
+    document = selfcheck_document(records, world, p, results, p.selfcheck.model_dump())
     write_selfcheck(document, p, selfcheck, page)
 
 
