@@ -17,13 +17,14 @@ import pytest
 import yaml
 from support.tiny import REPOSITORY, tiny_protocol_dict
 
-from regimewise.bootstrap.sweep import combine_sweep
+from regimewise.bootstrap.sweep import analysis_protocol, combine_sweep
 from regimewise.data.records import clean_decisions
 from regimewise.demo.files import write_cohort
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import ProtocolError, UserInputError
 from regimewise.io import read_json, write_parquet
 from regimewise.protocol import load_protocol, sweep_specifications
+from regimewise.sensitivity.analysis import sensitivity_target
 from regimewise.workflow.settings import load_settings
 from regimewise.workflow.stages import (
     behaviour_stage,
@@ -180,6 +181,15 @@ def test_specification_interval_is_the_percentile_interval_of_its_replicates(stu
         low, high = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2], method="weibull")
         assert (contrast["low"], contrast["high"]) == pytest.approx((low, high), abs=1e-12)
     assert [row["gamma"] for row in spec["sensitivity"]["table"]] == [1.0, 1.25, 1.5, 2.0, 3.0]
+
+
+def test_the_point_and_the_replicates_bound_the_same_regime(study):
+    # The demo protocol's headline is a partial adoption, which the sensitivity stage bounds; the sweep's contrast
+    # is the learned regime's, so its point bounds and its replicates' bounds must both be the learned regime's.
+    _, protocol = study
+    assert protocol.strategies is not None and protocol.strategies.headline.family == "partial_adoption"
+    for spec in sweep_specifications(protocol):
+        assert sensitivity_target(analysis_protocol(spec, protocol))["name"] == "learned"
 
 
 def test_other_specification_ids_are_refused(study, tmp_path):

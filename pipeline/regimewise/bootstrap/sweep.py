@@ -56,13 +56,16 @@ def find_specification(protocol: Protocol, spec_id: str) -> Specification:
 
 
 def analysis_protocol(spec: Specification, protocol: Protocol) -> Protocol:
-    """The specification's protocol for the sweep: no fixed strategies or comparators (not compared here), the
-    sweep's Γ values."""
+    """The specification's protocol for the sweep: no fixed strategies, comparators or derived strategies (not
+    compared here), the sweep's Γ values. Without derived strategies the confounding bounds are the learned
+    regime's in the point analysis and in every replicate alike (with a partial-adoption headline the replicates
+    would otherwise bound that strategy while the point bounds the learned regime)."""
     p = spec.protocol
     return p.model_copy(
         update={
             "evaluation": p.evaluation.model_copy(update={"fixed_strategies": False, "reference": "usual_care"}),
             "comparators": [],
+            "strategies": None,
             "sensitivity": p.sensitivity.model_copy(update={"gammas": list(protocol.sweeps.gammas)}),
         }
     )
