@@ -24,6 +24,7 @@ from regimewise.protocol.model import Protocol
 from regimewise.report.html import template_environment
 from regimewise.selfcheck.cohort import run_cohort
 from regimewise.selfcheck.fitcheck import episode_returns
+from regimewise.selfcheck.page import _share_in_words
 from regimewise.selfcheck.run import confounding_summary
 from regimewise.selfcheck.world import CONFOUNDER_REWARD_SHIFT, LookAlikeWorld, tilted_probabilities
 from regimewise.workflow.stages import selfcheck_cohort_stage, selfcheck_stage
@@ -288,14 +289,16 @@ def test_the_page_and_the_report_say_it_in_words(finished):
         "With a hidden confounder of strength Γ = 2 built into the look-alike world (one particular confounder within "
         "the sensitivity model, not the worst case it allows), the sensitivity bounds at Γ = 2 of the difference "
         "between the learned regime and usual care contained the true difference in "
-        f"{100 * c['truth_within_bounds']:.1f}%"
+        + _share_in_words(c["truth_within_bounds"], c["truth_within_bounds_mcse"], c["cohorts_with_bounds"])
     )
     assert expected in page and "usual-care model and no hidden confounding" not in page
     protocol = load_protocol(path).protocol
     section = template_environment(protocol).get_template("sections/selfcheck.html")
     html = section.render(selfcheck=document, p=protocol)
     assert "the sensitivity bounds at Γ = 2 of the difference between the learned regime and usual care" in html
-    assert f"their bootstrap intervals in {100 * c['truth_within_interval']:.1f}%" in html
+    p, n = c["truth_within_interval"], c["cohorts_with_interval"]
+    share = f"all {n} of {n}" if p == 1 else f"none of {n}" if p == 0 else f"{100 * p:.1f}% (MCSE"
+    assert f"their bootstrap intervals in {share}" in html
     assert "not the worst case" in html and "model above and no hidden confounding" not in html
     plain = {**document, "summary": {k: v for k, v in document["summary"].items() if k != "confounding"}}
     assert "hidden confounder" not in section.render(selfcheck=plain, p=protocol)
@@ -338,3 +341,12 @@ def test_a_protocol_confounder_above_gamma_max_is_refused(tmp_path, capsys):
     assert main(["check", str(path)]) == 1
     err = capsys.readouterr().err.strip()
     assert "selfcheck.confounder_gamma must not exceed sensitivity.gamma_max (5)" in err and "\n" not in err
+
+
+def test_a_share_of_cohorts_in_words():
+    # MCSE of a coverage √(p(1 − p)/R) (Morris, White & Crowther 2019, Table 6): 0.8 of 50 gives 5.66 points; at
+    # p = 0 or 1 it is 0, which says nothing, so the words give the count instead.
+    assert _share_in_words(0.8, math.sqrt(0.8 * 0.2 / 50), 50) == "80.0% (Monte Carlo SE 5.7 points) of 50"
+    assert _share_in_words(1.0, 0.0, 50) == "all 50 of 50"
+    assert _share_in_words(0.0, 0.0, 7) == "none of 7"
+    assert _share_in_words(None, None, 0) == "— of the"

@@ -27,31 +27,37 @@ def _coverage(measure):
     return f"{_percent(measure['coverage'])} ± {_points(measure['coverage_mcse'])}"
 
 
+def _share_in_words(share, mcse, n) -> str:
+    """A share of cohorts in words: '75.0% (Monte Carlo SE 21.7 points) of 4'; a share of 0 or 1, whose Monte Carlo
+    SE √(p(1 − p)/R) is 0 and says nothing, as 'all 50 of 50' or 'none of 50'."""
+    if share is None:
+        return "— of the"
+    if share == 1.0:
+        return f"all {n} of {n}"
+    if share == 0.0:
+        return f"none of {n}"
+    return f"{_percent(share)} (Monte Carlo SE {_points(mcse)} points) of {n}"
+
+
 def _share_of(measure):
-    """A coverage in words: '75.0% (Monte Carlo SE 21.7 points) of 4'."""
+    """A coverage in words (:func:`_share_in_words`)."""
     if not measure or measure.get("coverage") is None:
         return "— of the"
-    mcse = _points(measure["coverage_mcse"])
-    return f"{_percent(measure['coverage'])} (Monte Carlo SE {mcse} points) of {measure['n_used']}"
+    return _share_in_words(measure["coverage"], measure["coverage_mcse"], measure["n_used"])
 
 
 def _confounding_sentence(c, level) -> str:
     """The hidden confounder's check in words."""
     gamma = f"{c['gamma']:g}"
-    naive = (
-        f"{_percent(c['naive_coverage'])} (Monte Carlo SE {_points(c['naive_coverage_mcse'])} points) of "
-        f"{c['naive_cohorts']}"
-    )
+    naive = _share_in_words(c["naive_coverage"], c["naive_coverage_mcse"], c["naive_cohorts"])
+    bounds = _share_in_words(c["truth_within_bounds"], c["truth_within_bounds_mcse"], c["cohorts_with_bounds"])
+    interval = _share_in_words(c["truth_within_interval"], c["truth_within_interval_mcse"], c["cohorts_with_interval"])
     return (
         f"With a hidden confounder of strength Γ = {gamma} built into the look-alike world (one particular "
         "confounder within the sensitivity model, not the worst case it allows), the sensitivity bounds at "
         f"Γ = {gamma} of the difference between {escape(c['strategy_words'])} and usual care contained the true "
-        "difference in "
-        f"{_percent(c['truth_within_bounds'])} (Monte Carlo SE {_points(c['truth_within_bounds_mcse'])} points) of "
-        f"{c['cohorts_with_bounds']} cohorts, and their bootstrap intervals in "
-        f"{_percent(c['truth_within_interval'])} (Monte Carlo SE {_points(c['truth_within_interval_mcse'])} points) "
-        f"of {c['cohorts_with_interval']}; the ordinary {100 * level:.0f}% intervals, which assume no hidden "
-        f"confounding, covered it in {naive}."
+        f"difference in {bounds} cohorts, and their bootstrap intervals in {interval}; the ordinary "
+        f"{100 * level:.0f}% intervals, which assume no hidden confounding, covered it in {naive}."
     )
 
 
