@@ -19,7 +19,7 @@ from regimewise.protocol.loading import ProtocolFile
 from regimewise.protocol.model import Protocol
 from regimewise.regime.learning import learn_regime
 from regimewise.selfcheck.cohort import cohort_seeds, run_cohort
-from regimewise.selfcheck.fitcheck import episode_returns, reproduction
+from regimewise.selfcheck.fitcheck import episode_returns, learned_rules, reproduction
 from regimewise.selfcheck.regret import reference_regimes
 from regimewise.selfcheck.world import LookAlikeWorld
 
@@ -163,3 +163,22 @@ def test_the_reference_rule_beats_usual_care_and_small_cohorts_rules(demo_world)
         assert shortfall.mean() > -3 * shortfall.std(ddof=1) / math.sqrt(shortfall.size)
     settled = best - world.returns(half, 20_000, seed=11)
     assert abs(settled.mean()) < 0.25 * gain.mean()  # the half-size reference is close (our tolerance)
+
+
+def test_the_learned_rules_of_the_records_and_a_simulated_cohort(demo_world):
+    # Hand computation: the share of decisions where the rule learned on all of a cohort's decisions recommends the
+    # action usual care took, and the recommended actions' shares; flagged at a difference of 10 points (ours).
+    protocol, records, world = demo_world
+    simulated, _ = world.simulate(2000, seed=3)
+    rules = learned_rules(records, simulated, protocol)
+    for which, frame in (("records", records), ("simulated", simulated)):
+        recommended = learn_regime(frame, protocol).recommend(frame)
+        taken = np.array([protocol.action_labels.index(a) for a in frame["action"]])
+        assert rules[which]["agreement"] == pytest.approx(np.mean(recommended == taken))
+        shares = rules[which]["recommended_shares"]
+        assert sum(shares.values()) == pytest.approx(1.0)
+        assert shares[protocol.action_labels[0]] == pytest.approx(np.mean(recommended == 0))
+    gap = rules["simulated"]["agreement"] - rules["records"]["agreement"]
+    assert rules["agreement_difference"] == pytest.approx(gap) and rules["flagged"] == (abs(gap) >= 0.1)
+    no_regime = protocol.model_copy(update={"analysis": protocol.analysis.model_copy(update={"learn_regime": False})})
+    assert learned_rules(records, simulated, no_regime) is None

@@ -178,7 +178,8 @@ def selfcheck_headlines(selfcheck: dict | None) -> dict | None:
     return {
         "settings": selfcheck["settings"],
         "summary": selfcheck["summary"],
-        "fit_check": {key: fit[key] for key in ("largest_smd", "smd_flag", "flagged", "action_shares", "mean_return")},
+        "fit_check": {key: fit[key] for key in ("largest_smd", "smd_flag", "flagged", "action_shares", "mean_return")}
+        | {"learned_rule": fit.get("learned_rule")},  # absent from documents written before it existed
     }
 
 

@@ -1,14 +1,20 @@
 """How well the look-alike world reproduces the records: observed against simulated distributions of every state at
-every decision point, usual care's action shares, episode lengths and the mean return."""
+every decision point, usual care's action shares, episode lengths and the mean return; and whether the rule the
+protocol's learner finds in a simulated cohort acts like the one it finds in the records."""
 
 from __future__ import annotations
 
 import numpy as np
 import pandas as pd
 
-from regimewise.core.features import level_values
+from regimewise.core.features import action_codes, level_values
 from regimewise.describe.balance import SMD_FLAG, smd
 from regimewise.protocol import Protocol
+from regimewise.regime.learning import learn_regime
+
+# A learned rule whose agreement with usual care differs between the records and a simulated cohort by at least this
+# much is pointed out (our threshold, no source): overlap-dependent results (ESS, support) then differ too.
+AGREEMENT_FLAG = 0.10
 
 
 def _columns(frame: pd.DataFrame, protocol: Protocol) -> dict[str, tuple[np.ndarray, bool]]:
@@ -80,3 +86,27 @@ def reproduction(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Proto
             "simulated_se": float(sim_return.std(ddof=1) / np.sqrt(sim_return.size)),
         },
     }
+
+
+def _rule_summary(frame: pd.DataFrame, protocol: Protocol) -> dict:
+    regime = learn_regime(frame, protocol)
+    taken = action_codes(frame, protocol.action_labels)
+    recommended = regime.recommend(frame)
+    counts = np.bincount(recommended, minlength=len(protocol.action_labels)) / len(recommended)
+    return {
+        "agreement": float(np.mean(recommended == taken)),
+        "recommended_shares": {a: float(c) for a, c in zip(protocol.action_labels, counts)},
+    }
+
+
+def learned_rules(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Protocol) -> dict | None:
+    """The rule the protocol's learner finds in the records and in one simulated cohort (each fitted on all its
+    decisions, without cross-fitting): the share of decisions where it recommends the action usual care took, and
+    its recommended actions' shares; ``flagged`` when the agreements differ by at least :data:`AGREEMENT_FLAG`
+    (then the look-alike cohorts' overlap, ESS and support verdicts differ from the records'). None when the
+    protocol learns no regime."""
+    if not protocol.analysis.learn_regime:
+        return None
+    out = {"records": _rule_summary(records, protocol), "simulated": _rule_summary(simulated, protocol)}
+    gap = out["simulated"]["agreement"] - out["records"]["agreement"]
+    return out | {"agreement_difference": gap, "flag": AGREEMENT_FLAG, "flagged": bool(abs(gap) >= AGREEMENT_FLAG)}

@@ -98,8 +98,22 @@ def _fit_table(fit, labels) -> str:
         f"<tr><td>decisions per episode</td><td>{_number(d['records'], 2)}</td>"
         f"<td>{_number(d['simulated'], 2)}</td></tr>"
     )
+    rule = fit.get("learned_rule")
+    if rule:
+        rows += (
+            f"<tr><td>learned rule: recommends the action usual care took</td>"
+            f"<td>{_percent(rule['records']['agreement'])}</td><td>{_percent(rule['simulated']['agreement'])}</td></tr>"
+        )
+        rows += "".join(
+            f"<tr><td>learned rule: recommends {escape(a)}</td>"
+            f"<td>{_percent(rule['records']['recommended_shares'][a])}</td>"
+            f"<td>{_percent(rule['simulated']['recommended_shares'][a])}</td></tr>"
+            for a in labels
+        )
     head = "<tr><th scope='col'></th><th scope='col'>Records</th><th scope='col'>One simulated cohort</th></tr>"
-    caption = "The look-alike world against the records: usual care's action shares, return, follow-up"
+    caption = "The look-alike world against the records: usual care's action shares, return, follow-up" + (
+        ", and the rule the protocol's learner finds in each (fitted on all decisions)" if rule else ""
+    )
     return f"<table><caption>{caption}</caption><thead>{head}</thead>{rows}</table>"
 
 
@@ -126,6 +140,21 @@ def _regret_sentence(regret) -> str:
         "the regret against the best such rule: the price of the cohort's size. Fitted on "
         f"{check['episodes']:,} episodes instead, the reference's value is {_number(check['value'])} against "
         f"{_number(check['full_value'])} (close values say the reference has settled).</p>"
+    )
+
+
+def _rule_note(fit) -> str:
+    """A sentence when the rule learned in a simulated cohort agrees with usual care much more or less often than
+    the rule learned in the records (empty otherwise)."""
+    rule = fit.get("learned_rule")
+    if not rule or not rule["flagged"]:
+        return ""
+    return (
+        f" The rule the protocol's learner finds in a simulated cohort recommends usual care's action at "
+        f"{_percent(rule['simulated']['agreement'])} of decisions, against {_percent(rule['records']['agreement'])} in "
+        "the records: the look-alike cohorts' overlap with their learned rules, and so their effective sample sizes "
+        "and support verdicts, differ from the records', and the coverage above is for rules that act differently "
+        "from the records' rule."
     )
 
 
@@ -204,7 +233,7 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"{s['truth_episodes']:,} simulated episodes per policy with common random numbers. Monte Carlo standard "
         "errors follow Morris, White &amp; Crowther (2019, Stat Med 38:2074).</p>",
         _performance_table(summary, names),
-        f"<h2>How well the world reproduces the records</h2><p>{drift[:1].upper() + drift[1:]}.</p>",
+        f"<h2>How well the world reproduces the records</h2><p>{drift[:1].upper() + drift[1:]}.{_rule_note(fit)}</p>",
         _fit_table(fit, protocol.action_labels),
         "<h2>Settings</h2><ul>",
         f"<li>{s['cohorts']} simulated cohorts of {s['episodes_per_cohort']:,} episodes each "

@@ -20,7 +20,7 @@ from regimewise.evaluation.values import headline_estimator
 from regimewise.io import write_json, write_text
 from regimewise.protocol import ProtocolFile, SelfCheckSpec, confounder_problem, load_protocol
 from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_outcome, cohort_seeds, headline_strategy
-from regimewise.selfcheck.fitcheck import reproduction
+from regimewise.selfcheck.fitcheck import learned_rules, reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.performance import coverage_mcse, performance
 from regimewise.selfcheck.regret import regret
@@ -99,6 +99,7 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
         warnings.simplefilter("ignore")
         first, _ = world.simulate(world.n_episodes, cohort_seeds(protocol, 0)[0])
         regret_summary, regret_rows = regret(world, protocol, completed, chosen["reference_episodes"])
+        fit_check = reproduction(records, first, protocol) | {"learned_rule": learned_rules(records, first, protocol)}
     summary = summarise(completed, protocol)
     summary["regret"] = regret_summary
     for r in completed:
@@ -126,7 +127,7 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
             "modelled_discrete_states": list(world.class_states),
             "carried_states": list(world.carried_states),
         },
-        "fit_check": reproduction(records, first, protocol),
+        "fit_check": fit_check,
         "summary": summary,
         "failed_cohorts": [{"cohort": r["cohort"], "seed": r["seed"], "error": r["failed"]} for r in failed],
         "cohorts": completed,
