@@ -1,5 +1,6 @@
 """How well the look-alike world reproduces the records: observed against simulated distributions of every state at
-every decision point, usual care's action shares, episode lengths and the mean return."""
+every decision point, usual care's action shares, episode lengths and the mean return; with the survival part,
+events, losses to follow-up and survival at the horizon."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ import pandas as pd
 from regimewise.core.features import level_values
 from regimewise.describe.balance import SMD_FLAG, smd
 from regimewise.protocol import Protocol
+from regimewise.survival.curves import product_limit
 
 
 def _columns(frame: pd.DataFrame, protocol: Protocol) -> dict[str, tuple[np.ndarray, bool]]:
@@ -79,4 +81,28 @@ def reproduction(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Proto
             "simulated": float(sim_return.mean()),
             "simulated_se": float(sim_return.std(ddof=1) / np.sqrt(sim_return.size)),
         },
+    }
+
+
+def _follow_up_figures(episodes: pd.DataFrame, horizon: float) -> dict:
+    """Share of episodes with an event by the horizon, share lost to follow-up before it (no event, follow-up
+    shorter than the horizon), and the Kaplan–Meier survival at the horizon (the pipeline's product-limit
+    estimator, follow-up cut at the horizon)."""
+    follow = episodes["followup_days"].to_numpy(dtype=float)
+    event = (episodes["event"].to_numpy(dtype=float) == 1) & (follow <= horizon)
+    stop = np.minimum(follow, horizon)
+    times, survival = product_limit(np.zeros(stop.size), stop, event, np.ones(stop.size))
+    return {
+        "event_share": float(event.mean()),
+        "dropout_share": float(np.mean(~event & (follow < horizon))),
+        "survival_at_horizon": float(survival[times <= horizon][-1]) if np.any(times <= horizon) else 1.0,
+    }
+
+
+def follow_up_reproduction(records: pd.DataFrame, simulated: pd.DataFrame, horizon: float) -> dict:
+    """The records' episodes table against a simulated cohort's: events, losses and survival at the horizon."""
+    return {
+        "horizon_days": float(horizon),
+        "records": _follow_up_figures(records, horizon),
+        "simulated": _follow_up_figures(simulated, horizon),
     }

@@ -19,7 +19,7 @@ from regimewise.evaluation.values import headline_estimator
 from regimewise.io import write_json, write_text
 from regimewise.protocol import ProtocolFile, SelfCheckSpec, load_protocol
 from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_seeds, headline_strategy, run_cohort
-from regimewise.selfcheck.fitcheck import reproduction
+from regimewise.selfcheck.fitcheck import follow_up_reproduction, reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.performance import performance
 from regimewise.selfcheck.world import LookAlikeWorld, fitted_world
@@ -32,7 +32,8 @@ _WORKER: dict = {}
 def _start_worker(protocol_path: str, replicates: int, truth_episodes: int) -> None:
     warnings.simplefilter("ignore")
     pf = load_protocol(protocol_path)
-    world = fitted_world(validate_records(pf).decisions, pf.protocol)
+    records = validate_records(pf)
+    world = fitted_world(records.decisions, pf.protocol, records.episodes)
     _WORKER.update(world=world, protocol=pf.protocol, replicates=replicates, truth_episodes=truth_episodes)
 
 
@@ -63,13 +64,19 @@ def settings(pf: ProtocolFile, cohorts: int | None, replicates: int | None, trut
     return chosen
 
 
-def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], replicates: int) -> dict:
+def selfcheck_document(
+    records, world: LookAlikeWorld, protocol, results: list[dict], replicates: int, episodes=None
+) -> dict:
     """What selfcheck.json holds: settings, the world's models, the fit check (the records against simulated
-    cohort 0), the summary and every cohort's result (in cohort order)."""
+    cohort 0; with the survival part, also their events, losses and survival at the horizon from ``episodes``,
+    the records' episodes table), the summary and every cohort's result (in cohort order)."""
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        first, _ = world.simulate(world.n_episodes, cohort_seeds(protocol, 0)[0])
+        first, first_episodes, _ = world.simulate_records(world.n_episodes, cohort_seeds(protocol, 0)[0])
     results = sorted(results, key=lambda r: r["cohort"])
+    fit_check = reproduction(records, first, protocol)
+    if first_episodes is not None and episodes is not None:
+        fit_check["follow_up"] = follow_up_reproduction(episodes, first_episodes, protocol.survival.horizon_days)
     return {
         "caution": SELFCHECK_CAUTION,
         "settings": {
@@ -86,7 +93,7 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
             "modelled_discrete_states": list(world.class_states),
             "carried_states": list(world.carried_states),
         },
-        "fit_check": reproduction(records, first, protocol),
+        "fit_check": fit_check,
         "summary": summarise(results, protocol),
         "cohorts": results,
     }
@@ -103,8 +110,9 @@ def run_selfcheck(
     """Run the whole self-check in worker processes; returns what selfcheck.json holds (written to ``out`` with
     selfcheck.html). The same settings give the same bytes whatever the number of workers. ``progress(done,
     cohorts)``, if given, is called as the cohorts finish (in cohort order)."""
-    records = validate_records(pf).decisions
-    world = fitted_world(records, pf.protocol)  # in this process first: a cohort too small fails fast
+    validated = validate_records(pf)
+    records = validated.decisions
+    world = fitted_world(records, pf.protocol, validated.episodes)  # in this process first: too small fails fast
     with ProcessPoolExecutor(
         max_workers=max(1, min(cores, cohorts)),
         initializer=_start_worker,
@@ -115,7 +123,7 @@ def run_selfcheck(
             results.append(result)
             if progress is not None:
                 progress(len(results), cohorts)
-    document = selfcheck_document(records, world, pf.protocol, results, replicates)
+    document = selfcheck_document(records, world, pf.protocol, results, replicates, validated.episodes)
     write_selfcheck(document, pf.protocol, out / "selfcheck.json", out / "selfcheck.html")
     return document
 
@@ -175,10 +183,64 @@ def summarise(results: list[dict], protocol) -> dict:
         )
 
     true_contrasts = [r["truths"][strategy.name]["contrast"] for r in results] if strategy is not None else []
-    return {
+    out = {
         "estimator": headline_est,
         "rows": rows,
         "usual_care_value": pick(USUAL_CARE, "value"),
         "headline": None if strategy is None else {"name": strategy.name, **(pick(strategy.name, "contrast") or {})},
         "mean_true_contrast": float(np.mean(true_contrasts)) if true_contrasts else None,
+    }
+    if "survival" in results[0]:
+        out["survival"] = summarise_survival(results, names, strategy)
+    return out
+
+
+def _survival_columns(found: list[dict], target: str, at: int):
+    """Estimate, bootstrap SE and interval limits of ``target`` at table time ``at`` per cohort (NaN if absent)."""
+
+    def column(values):
+        return np.array([np.nan if v is None else v for v in values], dtype=float)
+
+    def at_time(values):
+        return None if values is None else values[at]
+
+    limits = [f.get(f"{target}_interval") or [None, None] for f in found]
+    return (
+        column(at_time(f.get(target)) for f in found),
+        column(at_time(f.get(f"{target}_se")) for f in found),
+        column(at_time(low) for low, _ in limits),
+        column(at_time(high) for _, high in limits),
+    )
+
+
+def summarise_survival(results: list[dict], names: list[str], strategy) -> dict:
+    """Performance of the survival analysis at the horizon: every compared strategy's survival and the others'
+    risk difference from usual care, against their truths without loss to follow-up (Morris, White & Crowther
+    2019)."""
+    first = results[0]["survival"]
+    horizon = first["horizon_days"]
+    at = first["times"].index(horizon)
+    rows = []
+    for name in names:
+        for target in ("survival",) if name == USUAL_CARE else ("survival", "risk_difference"):
+            found = [r["survival"]["estimates"].get(name, {}) for r in results]
+            truth = np.array([r["truths"][name][target][at] for r in results], dtype=float)
+            estimate, se, low, high = _survival_columns(found, target, at)
+            everywhere = np.ones(len(results), dtype=bool)
+            measured = _measure(estimate, truth, se, low, high, everywhere)
+            rows.append({"strategy": name, "target": target, "time": horizon, "all": measured})
+    headline = None
+    if strategy is not None:
+        row = next(r for r in rows if (r["strategy"], r["target"]) == (strategy.name, "risk_difference"))
+        headline = {"name": strategy.name, "all": row["all"]}
+    true_differences = (
+        [r["truths"][strategy.name]["risk_difference"][at] for r in results] if strategy is not None else []
+    )
+    return {
+        "horizon_days": horizon,
+        "rows": rows,
+        "usual_care": next(r for r in rows if r["strategy"] == USUAL_CARE),
+        "headline": headline,
+        "mean_true_risk_difference": float(np.mean(true_differences)) if true_differences else None,
+        "mean_events": float(np.mean([r["survival"]["events"] for r in results])),
     }
