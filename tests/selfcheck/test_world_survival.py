@@ -4,6 +4,7 @@ estimator as the external reference, exact common random numbers, the pipeline's
 the summary's arithmetic by hand (Morris, White & Crowther 2019, Table 6)."""
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -145,11 +146,11 @@ def two_cohorts():
         }
     )
     world = LookAlikeWorld.fit(decisions, p, episodes)
-    return p, [run_cohort(world, p, c, replicates=10, truth_episodes=2000) for c in range(2)]
+    return p, [run_cohort(world, p, c, replicates=10, truth_episodes=2000) for c in range(2)], world
 
 
 def test_a_cohort_records_survival_estimates_and_truths(two_cohorts):
-    p, results = two_cohorts
+    p, results, _ = two_cohorts
     names = {"usual_care", "learned", "partial_adoption_0.4"}
     for result in results:
         survival = result["survival"]
@@ -165,10 +166,23 @@ def test_a_cohort_records_survival_estimates_and_truths(two_cohorts):
         assert low[1] <= uc["survival"][1] <= high[1] and uc["survival_se"][1] > 0
 
 
+def test_the_survival_part_adds_to_a_cohort_and_changes_nothing_else(two_cohorts):
+    # The same cohort without the follow-up model: every value estimate, interval and truth is the same number (the
+    # survival part only reads the draws and replicates the values use), and the survival keys are absent.
+    p, results, world = two_cohorts
+    alone = run_cohort(replace(world, follow_up=None), p, 0, replicates=10, truth_episodes=2000)
+    assert "survival" not in alone
+    full = {**results[0], "truths": {k: dict(v) for k, v in results[0]["truths"].items()}}
+    full.pop("survival")
+    for truth in full["truths"].values():
+        del truth["survival"], truth["risk_difference"]
+    assert dumps_json(alone) == dumps_json(full)
+
+
 def test_the_summary_measures_survival_by_hand(two_cohorts):
     # Coverage and bias of usual care's survival at the horizon over the two cohorts, by hand (Morris, White &
     # Crowther 2019, Table 6: coverage = share of intervals holding the truth, MCSE √(p(1−p)/R)).
-    p, results = two_cohorts
+    p, results, _ = two_cohorts
     summary = summarise(results, p)["survival"]
     uc = summary["usual_care"]["all"]
     hits, errors = [], []
