@@ -15,10 +15,11 @@ from regimewise.data.records import check_episodes, clean_decisions, clean_episo
 from regimewise.demo.scenario import ScenarioParams
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.demo.strategies import PartialAdoption
+from regimewise.errors import UserInputError
 from regimewise.io import dumps_json
 from regimewise.protocol import load_protocol
 from regimewise.report.html import template_environment
-from regimewise.selfcheck.cohort import run_cohort
+from regimewise.selfcheck.cohort import AfterGrace, run_cohort
 from regimewise.selfcheck.fitcheck import follow_up_reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.run import summarise
@@ -40,6 +41,11 @@ def _records(n, seed, params=None):
 def demo_world():
     pf, decisions, episodes = _records(2000, 31)
     return pf, decisions, episodes, LookAlikeWorld.fit(decisions, pf.protocol, episodes)
+
+
+def _always_hold(frame):
+    """A regime: the protocol's first action (hold) at every decision."""
+    return np.zeros(len(frame), dtype=np.int64)
 
 
 def _lifelines_km(episodes, at):
@@ -98,12 +104,31 @@ def test_survival_truths_use_common_random_numbers(demo_world):
     # gets exactly usual care's event days, so its risk difference is exactly 0; a regime that always holds differs.
     _, _, _, world = demo_world
     usual_returns, usual = world.returns_and_event_days("usual_care", 3000, seed=4)
-    never = PartialAdoption(lambda frame: np.zeros(len(frame), dtype=np.int64), 0.0)
+    never = PartialAdoption(_always_hold, 0.0)
     returns, same = world.returns_and_event_days(never, 3000, seed=4)
     assert np.array_equal(same, usual) and np.array_equal(returns, usual_returns)
     assert float(np.mean(usual > HORIZON)) - float(np.mean(same > HORIZON)) == 0.0
-    _, hold = world.returns_and_event_days(lambda frame: np.zeros(len(frame), dtype=np.int64), 3000, seed=4)
+    _, hold = world.returns_and_event_days(_always_hold, 3000, seed=4)
     assert not np.array_equal(hold, usual)
+
+
+def test_a_grace_period_covering_every_decision_is_usual_care(demo_world):
+    # The survival analysis's grace period: usual care for the first g decisions, then the strategy. With g = 8 (every
+    # demo decision) the strategy is usual care, event day for event day (common random numbers); with g = 2 it is
+    # neither usual care nor the strategy from the start.
+    _, _, _, world = demo_world
+    hold = _always_hold
+    _, usual = world.returns_and_event_days("usual_care", 3000, seed=6)
+    _, from_start = world.returns_and_event_days(hold, 3000, seed=6)
+    assert np.array_equal(world.returns_and_event_days(AfterGrace(hold, 8), 3000, seed=6)[1], usual)
+    _, after_two = world.returns_and_event_days(AfterGrace(hold, 2), 3000, seed=6)
+    assert not np.array_equal(after_two, usual) and not np.array_equal(after_two, from_start)
+
+
+def test_episodes_without_follow_up_are_refused_in_one_line(demo_world):
+    pf, decisions, episodes, _ = demo_world
+    with pytest.raises(UserInputError, match="needs 'followup_days' in the episodes table"):
+        LookAlikeWorld.fit(decisions, pf.protocol, episodes.drop(columns="followup_days"))
 
 
 def test_without_a_survival_section_nothing_changes(demo_world):

@@ -15,10 +15,13 @@ its intervals from the survival values of the same bootstrap replicates (:func:`
 workflow forms them. The truths are each compared strategy's survival at the protocol's table times and its risk
 difference from usual care, with loss to follow-up switched off (survival had nobody been lost: the estimand the
 dropout weights target), by Monte Carlo with the same draws for every policy and the same fold shares as the
-values. Research use only.
+values; with a grace period of g decision points, of each strategy after usual care's first g decisions (as the
+analysis defines it). Research use only.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -78,14 +81,33 @@ def compared_protocol(protocol: Protocol, replicates: int) -> Protocol:
     return protocol.model_copy(update=update)
 
 
-def _policy_truths(world, n, seed, times):
+@dataclass(frozen=True)
+class AfterGrace:
+    """``policy`` from decision point ``grace`` on, usual care's natural action before: the strategy the survival
+    analysis estimates with a grace period (:mod:`regimewise.survival.clones`)."""
+
+    policy: object
+    grace: int
+
+    def modify(self, frame, natural, proba, coins):
+        if hasattr(self.policy, "modify"):
+            codes = self.policy.modify(frame, natural, proba, coins)
+        else:
+            codes = self.policy(frame)
+        return np.where(frame["step"].to_numpy() < self.grace, natural, codes)
+
+
+def _policy_truths(world, n, seed, times, grace=0):
     """A function of a policy giving its returns and, with ``times``, its true survival at them without loss to
-    follow-up (else None); every policy gets the same draws."""
+    follow-up (else None); every policy gets the same draws. With a grace period the survival is that of the policy
+    after the grace period (a second run), the returns those of the policy itself."""
 
     def run(policy):
         if times is None:
             return world.returns(policy, n, seed), None
         returns, event_days = world.returns_and_event_days(policy, n, seed)
+        if grace > 0 and not (isinstance(policy, str) and policy == USUAL_CARE):
+            event_days = world.returns_and_event_days(AfterGrace(policy, grace), n, seed)[1]
         return returns, np.array([float(np.mean(event_days > t)) for t in times])
 
     return run
@@ -96,7 +118,7 @@ def _truths(world, decisions, protocol, n, seed):
     usual care (the same draws for every policy); with survival, also the true survival at the table times and the
     risk difference from usual care there."""
     times = table_times(protocol) if has_survival(world, protocol) else None
-    run = _policy_truths(world, n, seed, times)
+    run = _policy_truths(world, n, seed, times, 0 if times is None else protocol.survival.grace)
     usual, usual_survival = run(USUAL_CARE)
     out = {USUAL_CARE: {"value": float(usual.mean()), "contrast": 0.0}}
     if times is not None:
