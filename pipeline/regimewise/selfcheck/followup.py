@@ -12,7 +12,7 @@ records have them).
   regression on the world's design (state, action, their products) over the at-risk decisions, leaving out the
   decisions whose episode is lost in that interval (their event time, had they stayed, is unknown); the event's
   day is placed at the relative position within its interval of an event of a real decision at t, drawn at random
-  (uniform in the interval when the records have no event at t), rounded up to a whole day;
+  (uniform in the interval when the records have no event at t), rounded up to a whole day within the interval;
 * **loss to follow-up**: at an episode's last decision, lost before the horizon or not, by one logistic
   regression on the same design over the records' last at-risk decisions; the day of loss at the relative position
   between the decision and the horizon of a real loss, drawn at random.
@@ -158,9 +158,11 @@ class FollowUp:
             return
         rows, d, x = index[risk], today[risk], design[risk]
         stop = np.minimum(following[risk], h)
-        hit = m.events[t].draw(x, self.draws["event"][rows, t])
         where = _pick(m.event_positions[t], self.draws["event_day"][rows, t])
-        self.event_day[rows[hit]] = (d + np.maximum(1.0, np.ceil(where * (stop - d))))[hit]
+        day = np.minimum(d + np.maximum(1.0, np.ceil(where * (stop - d))), np.floor(stop))
+        # an interval without a whole day before a horizon that is not a whole day holds no event
+        hit = m.events[t].draw(x, self.draws["event"][rows, t]) & (day > d)
+        self.event_day[rows[hit]] = day[hit]
         if not self.loss:
             return
         last = np.isinf(following[risk])
