@@ -220,6 +220,11 @@ def test_the_summary_measures_survival_by_hand(two_cohorts):
     assert uc["coverage"] == pytest.approx(cover) and uc["bias"] == pytest.approx(sum(errors) / 2)
     assert uc["coverage_mcse"] == pytest.approx(math.sqrt(cover * (1 - cover) / 2))
     assert summary["headline"]["name"] == "partial_adoption_0.4"
+    # "reliable": the cohorts whose usual-care effective sample stays above the floor (the survival diagnostics'
+    # unreliable_from is None), counted by hand
+    reliable = sum(r["survival"]["estimates"]["usual_care"]["reliable"] for r in results)
+    assert summary["usual_care"]["cohorts_reliable"] == reliable == 2
+    assert summary["usual_care"]["reliable"]["coverage"] == pytest.approx(cover)
     document = _document(p, results)
     page = selfcheck_page(document, p, [])
     assert "Survival at the horizon (730 days)" in page and "risk difference from usual care" in page

@@ -164,13 +164,14 @@ def _bootstrap_se(draws):
 
 def _survival_estimates(point, limits, replicates, names):
     """{name: {survival, risk_difference: per table time; each with its interval (low and high lists) and
-    bootstrap SE (the SD of the replicates, as the values' bootstrap SE)}} of the survival analysis."""
+    bootstrap SE (the SD of the replicates, as the values' bootstrap SE); reliable: whether the strategy's
+    effective sample stays above the analysis's floor up to the horizon}} of the survival analysis."""
     out = {}
     for row in point["strategies"]:
         name = row["name"]
         if name not in names:
             continue
-        out[name] = {}
+        out[name] = {"reliable": row["diagnostics"]["unreliable_from"] is None}
         for key in ("survival", "risk_difference"):
             estimate = row["at_times"][key]
             bounds = limits["strategies"][name][key] or {"low": [None] * len(estimate), "high": [None] * len(estimate)}

@@ -64,7 +64,8 @@ def _survival_table(survival, names) -> str:
     head = (
         "<tr><th scope='col'>Strategy</th><th scope='col'>Target</th><th scope='col'>Cohorts</th>"
         "<th scope='col'>Bias (MCSE)</th><th scope='col'>Empirical SE</th><th scope='col'>Mean bootstrap SE</th>"
-        "<th scope='col'>Coverage ± MCSE (points)</th><th scope='col'>Intervals excluding 0</th></tr>"
+        "<th scope='col'>Coverage ± MCSE (points)</th><th scope='col'>Intervals excluding 0</th>"
+        "<th scope='col'>Reliable in</th><th scope='col'>Coverage where reliable</th></tr>"
     )
     body = []
     for row in survival["rows"]:
@@ -75,11 +76,13 @@ def _survival_table(survival, names) -> str:
             f"<td>{SURVIVAL_WORDS[row['target']]}</td><td>{m.get('n_used', 0)}</td>"
             f"<td>{_number(m.get('bias'))} ({_number(m.get('bias_mcse'))})</td>"
             f"<td>{_number(m.get('empirical_se'))}</td><td>{_number(m.get('model_se'))}</td>"
-            f"<td>{_coverage(m)}</td><td>{power}</td></tr>"
+            f"<td>{_coverage(m)}</td><td>{power}</td>"
+            f"<td>{row['cohorts_reliable']}</td><td>{_coverage(row['reliable'])}</td></tr>"
         )
     caption = (
         f"Survival at the horizon ({survival['horizon_days']:g} days) by clone–censor–weight on the look-alike "
-        "cohorts, against the truth had nobody been lost to follow-up"
+        "cohorts, against the truth had nobody been lost to follow-up (reliable: effective sample above the "
+        "analysis's floor up to the horizon)"
     )
     return f"<table><caption>{caption}</caption><thead>{head}</thead>{''.join(body)}</table>"
 

@@ -215,8 +215,8 @@ def _survival_columns(found: list[dict], target: str, at: int):
 
 def summarise_survival(results: list[dict], names: list[str], strategy) -> dict:
     """Performance of the survival analysis at the horizon: every compared strategy's survival and the others'
-    risk difference from usual care, against their truths without loss to follow-up (Morris, White & Crowther
-    2019)."""
+    risk difference from usual care, against their truths without loss to follow-up, over all cohorts and over
+    those where the strategy's effective sample stays reliable to the horizon (Morris, White & Crowther 2019)."""
     first = results[0]["survival"]
     horizon = first["horizon_days"]
     at = first["times"].index(horizon)
@@ -226,9 +226,18 @@ def summarise_survival(results: list[dict], names: list[str], strategy) -> dict:
             found = [r["survival"]["estimates"].get(name, {}) for r in results]
             truth = np.array([r["truths"][name][target][at] for r in results], dtype=float)
             estimate, se, low, high = _survival_columns(found, target, at)
+            reliable = np.array([bool(f.get("reliable")) for f in found])
             everywhere = np.ones(len(results), dtype=bool)
-            measured = _measure(estimate, truth, se, low, high, everywhere)
-            rows.append({"strategy": name, "target": target, "time": horizon, "all": measured})
+            rows.append(
+                {
+                    "strategy": name,
+                    "target": target,
+                    "time": horizon,
+                    "cohorts_reliable": int(reliable.sum()),
+                    "all": _measure(estimate, truth, se, low, high, everywhere),
+                    "reliable": _measure(estimate, truth, se, low, high, reliable),
+                }
+            )
     headline = None
     if strategy is not None:
         row = next(r for r in rows if (r["strategy"], r["target"]) == (strategy.name, "risk_difference"))
