@@ -3,6 +3,7 @@ rule selfcheck_cohort:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
     output:
         result=results("selfcheck/cohorts/cohort_{cohort}.json"),
     log:
@@ -27,6 +28,7 @@ rule selfcheck:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
+        episodes=results("validate/episodes.parquet"),
         cohorts=selfcheck_cohort_files(),
     output:
         selfcheck=results("selfcheck/selfcheck.json"),

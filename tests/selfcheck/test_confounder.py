@@ -308,12 +308,15 @@ def test_the_workflow_stages_write_the_commands_bytes(finished, tmp_path):
     # The workflow's stages read the protocol's selfcheck.confounder_gamma, as the command did.
     path, out, _ = finished
     pf = load_protocol(path)
-    decisions = tmp_path / "decisions.parquet"
-    write_parquet(decisions, validate_records(pf).decisions)
+    decisions, episodes = tmp_path / "decisions.parquet", tmp_path / "episodes.parquet"
+    validated = validate_records(pf)
+    write_parquet(decisions, validated.decisions)
+    write_parquet(episodes, validated.episodes)
     cohorts = [tmp_path / f"cohort_{c}.json" for c in range(3)]
     for c, result in enumerate(cohorts):
-        selfcheck_cohort_stage(str(path), str(decisions), c, str(result))
-    selfcheck_stage(str(path), str(decisions), [str(c) for c in cohorts], tmp_path / "s.json", tmp_path / "s.html")
+        selfcheck_cohort_stage(str(path), str(decisions), str(episodes), c, str(result))
+    pages = (tmp_path / "s.json", tmp_path / "s.html")
+    selfcheck_stage(str(path), str(decisions), str(episodes), [str(c) for c in cohorts], *pages)
     assert (tmp_path / "s.json").read_bytes() == (out / "selfcheck.json").read_bytes()
     assert (tmp_path / "s.html").read_bytes() == (out / "selfcheck.html").read_bytes()
 

@@ -14,21 +14,34 @@ sensitivity analysis the sensitivity stage runs (:func:`regimewise.bootstrap.rep
 cohort, the bootstrap replicates' curves of the same shard, :func:`summarise_sensitivity`): the point bounds of the
 sensitivity target's contrast with usual care, and their percentile-bootstrap interval (Zhao, Small & Bhattacharya
 2019), at the world's Γ and at Γ = 1, beside the target's true contrast. Research use only.
+
+With a ``survival`` section (and a world that models follow-up), the cohort comes with an episodes table and the
+survival stage's own analysis runs on it (:func:`survival_analysis`, clone–censor–weight with the dropout weights),
+its intervals from the survival values of the same bootstrap replicates (:func:`survival_intervals`), as the
+workflow forms them. The truths are each compared strategy's survival at the protocol's table times and its risk
+difference from usual care, with loss to follow-up switched off (survival had nobody been lost: the estimand the
+dropout weights target), by Monte Carlo with the same draws for every policy and the same fold shares as the
+values; with a grace period of g decision points, of each strategy after usual care's first g decisions (as the
+analysis defines it). Research use only.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from regimewise.bootstrap.intervals import combine
-from regimewise.bootstrap.replicates import learn_and_evaluate, run_shard
+from regimewise.bootstrap.replicates import HeldRegime, fit_replicate, run_shard, target_curve
 from regimewise.core.seeds import stream
 from regimewise.demo.strategies import IncrementalOdds, OverrideGain, PartialAdoption
 from regimewise.evaluation.strategies import protocol_strategies
+from regimewise.evaluation.values import evaluate_all
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import crossfit_folds, fold_regimes, learn_regime
 from regimewise.selfcheck.world import LookAlikeWorld
 from regimewise.sensitivity.analysis import sensitivity_target, summarise_sensitivity
+from regimewise.survival.analysis import survival_analysis, survival_intervals, table_times
 
 USUAL_CARE, LEARNED = "usual_care", "learned"
 MESSAGE_LENGTH = 300  # characters of a failed cohort's error message kept in selfcheck.json
@@ -59,9 +72,9 @@ def strategy_policy(strategy, learned):
 
 def compared_protocol(protocol: Protocol, replicates: int, confounder_gamma: float = 1.0) -> Protocol:
     """The protocol as the self-check runs it: usual care, the learned regime and the headline strategy only (no
-    other strategy of the grids, no fixed strategies, no comparators), ``replicates`` replicates in one shard; with
-    a hidden confounder (``confounder_gamma`` > 1) its Γ joins the sensitivity table's Γ values, so the bounds and
-    every replicate's curve are computed at it."""
+    other strategy of the grids, no fixed strategies, no comparators, no Cox model), ``replicates`` replicates in
+    one shard; with a hidden confounder (``confounder_gamma`` > 1) its Γ joins the sensitivity table's Γ values, so
+    the bounds and every replicate's curve are computed at it."""
     evaluation = protocol.evaluation.model_copy(
         update={"replicates": replicates, "shards": 1, "fixed_strategies": False}
     )
@@ -69,6 +82,8 @@ def compared_protocol(protocol: Protocol, replicates: int, confounder_gamma: flo
     if confounder_gamma > 1.0:
         gammas = sorted({1.0, float(confounder_gamma), *protocol.sensitivity.gammas})
         update["sensitivity"] = protocol.sensitivity.model_copy(update={"gammas": gammas})
+    if protocol.survival is not None:
+        update["survival"] = protocol.survival.model_copy(update={"cox": False})
     s = protocol.strategies
     if s is not None:
         h = s.headline
@@ -78,11 +93,48 @@ def compared_protocol(protocol: Protocol, replicates: int, confounder_gamma: flo
     return protocol.model_copy(update=update)
 
 
+@dataclass(frozen=True)
+class AfterGrace:
+    """``policy`` from decision point ``grace`` on, usual care's natural action before: the strategy the survival
+    analysis estimates with a grace period (:mod:`regimewise.survival.clones`)."""
+
+    policy: object
+    grace: int
+
+    def modify(self, frame, natural, proba, coins):
+        if hasattr(self.policy, "modify"):
+            codes = self.policy.modify(frame, natural, proba, coins)
+        else:
+            codes = self.policy(frame)
+        return np.where(frame["step"].to_numpy() < self.grace, natural, codes)
+
+
+def _policy_truths(world, n, seed, times, grace=0):
+    """A function of a policy giving its returns and, with ``times``, its true survival at them without loss to
+    follow-up (else None); every policy gets the same draws. With a grace period the survival is that of the policy
+    after the grace period (a second run), the returns those of the policy itself."""
+
+    def run(policy):
+        if times is None:
+            return world.returns(policy, n, seed), None
+        returns, event_days = world.returns_and_event_days(policy, n, seed)
+        if grace > 0 and not (isinstance(policy, str) and policy == USUAL_CARE):
+            event_days = world.returns_and_event_days(AfterGrace(policy, grace), n, seed)[1]
+        return returns, np.array([float(np.mean(event_days > t)) for t in times])
+
+    return run
+
+
 def _truths(world, decisions, protocol, n, seed):
     """{name: true value} of usual care, the learned regime and the headline strategy, and their contrasts with
-    usual care (the same draws for every policy)."""
-    usual = world.returns(USUAL_CARE, n, seed)
+    usual care (the same draws for every policy); with survival, also the true survival at the table times and the
+    risk difference from usual care there."""
+    times = table_times(protocol) if has_survival(world, protocol) else None
+    run = _policy_truths(world, n, seed, times, 0 if times is None else protocol.survival.grace)
+    usual, usual_survival = run(USUAL_CARE)
     out = {USUAL_CARE: {"value": float(usual.mean()), "contrast": 0.0}}
+    if times is not None:
+        out[USUAL_CARE].update(survival=usual_survival.tolist(), risk_difference=[0.0] * len(times))
     if not protocol.analysis.learn_regime:
         return out
     folds = crossfit_folds(decisions, protocol)
@@ -98,11 +150,47 @@ def _truths(world, decisions, protocol, n, seed):
         policies[strategy.name] = lambda learned: strategy_policy(strategy, learned)
     for name, make in policies.items():
         value = contrast = 0.0
+        survival = risk_difference = 0.0
         for (_, learned), share in zip(pairs, shares):
-            returns = world.returns(make(learned), n, seed)
+            returns, policy_survival = run(make(learned))
             value += share * float(returns.mean())
             contrast += share * float((returns - usual).mean())
+            if times is not None:  # risk difference = (1 − S_π) − (1 − S_usual care)
+                survival = survival + share * policy_survival
+                risk_difference = risk_difference + share * (usual_survival - policy_survival)
         out[name] = {"value": value, "contrast": contrast}
+        if times is not None:
+            out[name].update(survival=survival.tolist(), risk_difference=risk_difference.tolist())
+    return out
+
+
+def has_survival(world: LookAlikeWorld, protocol: Protocol) -> bool:
+    """Whether the self-check checks survival: a survival section and a world that models follow-up."""
+    return protocol.survival is not None and world.follow_up is not None
+
+
+def _bootstrap_se(draws):
+    defined = np.asarray([d for d in draws if d is not None], dtype=float)
+    return float(np.std(defined, ddof=1)) if defined.size >= 2 else None
+
+
+def _survival_estimates(point, limits, replicates, names):
+    """{name: {survival, risk_difference: per table time; each with its interval (low and high lists) and
+    bootstrap SE (the SD of the replicates, as the values' bootstrap SE); reliable: whether the strategy's
+    effective sample stays above the analysis's floor up to the horizon}} of the survival analysis."""
+    out = {}
+    for row in point["strategies"]:
+        name = row["name"]
+        if name not in names:
+            continue
+        out[name] = {"reliable": row["diagnostics"]["unreliable_from"] is None}
+        for key in ("survival", "risk_difference"):
+            estimate = row["at_times"][key]
+            bounds = limits["strategies"][name][key] or {"low": [None] * len(estimate), "high": [None] * len(estimate)}
+            draws = [r[name][key] for r in replicates if name in r]
+            out[name][key] = estimate
+            out[name][f"{key}_interval"] = [bounds["low"], bounds["high"]]
+            out[name][f"{key}_se"] = [_bootstrap_se([d[i] for d in draws]) for i in range(len(estimate))]
     return out
 
 
@@ -166,15 +254,17 @@ def run_cohort(world: LookAlikeWorld, protocol: Protocol, cohort: int, replicate
     gamma = world.confounder_gamma
     p = compared_protocol(protocol, replicates, gamma)
     records_seed, truth_seed = cohort_seeds(protocol, cohort)
-    decisions, _ = world.simulate(world.n_episodes, records_seed)
-    values, curve = learn_and_evaluate(decisions, p, strict=False, target=True)
-    shard = run_shard(decisions, p, 0)
+    decisions, episodes, _ = world.simulate_records(world.n_episodes, records_seed)
+    survival = has_survival(world, p)
+    # as bootstrap.replicates.learn_and_evaluate, keeping the fit for the survival analysis, the held regime and
+    # the sensitivity target's curve
+    proba, recommended, q, folds = fit_replicate(decisions, p)
+    values = evaluate_all(decisions, proba, recommended, p, strict=False, learned_folds=folds, learned_q=q)
+    held = None if recommended is None else HeldRegime(recommended, q, folds)
+    shard = run_shard(decisions, p, 0, episodes=episodes if survival else None, held=held)
     intervals = combine(values, [shard], p)
     truths = _truths(world, decisions, p, truth_episodes, truth_seed)
-    extra = {}
-    if gamma > 1.0:
-        extra["confounding"] = _confounding(curve, shard, p, gamma, truths)
-    return {
+    out = {
         "cohort": cohort,
         "seed": records_seed,
         "episodes": world.n_episodes,
@@ -184,8 +274,21 @@ def run_cohort(world: LookAlikeWorld, protocol: Protocol, cohort: int, replicate
         "mean_return": float(decisions.groupby("episode_id", sort=False)["reward"].sum().mean()),
         "truths": truths,
         "estimates": _estimates(values, intervals, set(truths)),
-        **extra,
     }
+    if survival:  # the survival stage's analysis, its intervals from the same replicates
+        point = survival_analysis(decisions, episodes, proba, recommended, p, q)
+        replicates_survival = [r["survival"] for r in shard["replicates"] if "survival" in r]
+        limits = survival_intervals(point, replicates_survival, p)
+        out["survival"] = {
+            "times": point["times"],
+            "horizon_days": point["horizon_days"],
+            "events": int(episodes["event"].sum()),
+            "estimates": _survival_estimates(point, limits, replicates_survival, set(truths)),
+        }
+    if gamma > 1.0:
+        curve = target_curve(decisions, proba, recommended, p)
+        out["confounding"] = _confounding(curve, shard, p, gamma, truths)
+    return out
 
 
 def cohort_outcome(

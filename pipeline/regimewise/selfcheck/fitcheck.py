@@ -1,6 +1,7 @@
 """How well the look-alike world reproduces the records: observed against simulated distributions of every state at
-every decision point, usual care's action shares, episode lengths and the mean return; and whether the rule the
-protocol's learner finds in a simulated cohort acts like the one it finds in the records."""
+every decision point, usual care's action shares, episode lengths and the mean return; with the survival part,
+events, losses to follow-up and survival at the horizon; and whether the rule the protocol's learner finds in a
+simulated cohort acts like the one it finds in the records."""
 
 from __future__ import annotations
 
@@ -11,6 +12,7 @@ from regimewise.core.features import action_codes, level_values
 from regimewise.describe.balance import SMD_FLAG, smd
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import learn_regime
+from regimewise.survival.curves import product_limit
 
 # A learned rule whose agreement with usual care differs between the records and a simulated cohort by at least this
 # much is pointed out (our threshold, no source): overlap-dependent results (ESS, support) then differ too.
@@ -110,3 +112,27 @@ def learned_rules(records: pd.DataFrame, simulated: pd.DataFrame, protocol: Prot
     out = {"records": _rule_summary(records, protocol), "simulated": _rule_summary(simulated, protocol)}
     gap = out["simulated"]["agreement"] - out["records"]["agreement"]
     return out | {"agreement_difference": gap, "flag": AGREEMENT_FLAG, "flagged": bool(abs(gap) >= AGREEMENT_FLAG)}
+
+
+def _follow_up_figures(episodes: pd.DataFrame, horizon: float) -> dict:
+    """Share of episodes with an event by the horizon, share lost to follow-up before it (no event, follow-up
+    shorter than the horizon), and the Kaplan–Meier survival at the horizon (the pipeline's product-limit
+    estimator, follow-up cut at the horizon)."""
+    follow = episodes["followup_days"].to_numpy(dtype=float)
+    event = (episodes["event"].to_numpy(dtype=float) == 1) & (follow <= horizon)
+    stop = np.minimum(follow, horizon)
+    times, survival = product_limit(np.zeros(stop.size), stop, event, np.ones(stop.size))
+    return {
+        "event_share": float(event.mean()),
+        "dropout_share": float(np.mean(~event & (follow < horizon))),
+        "survival_at_horizon": float(survival[times <= horizon][-1]) if np.any(times <= horizon) else 1.0,
+    }
+
+
+def follow_up_reproduction(records: pd.DataFrame, simulated: pd.DataFrame, horizon: float) -> dict:
+    """The records' episodes table against a simulated cohort's: events, losses and survival at the horizon."""
+    return {
+        "horizon_days": float(horizon),
+        "records": _follow_up_figures(records, horizon),
+        "simulated": _follow_up_figures(simulated, horizon),
+    }

@@ -7,6 +7,7 @@ from html import escape
 from regimewise.report.html import report_stylesheet
 
 TARGET_WORDS = {"value": "value", "contrast": "difference from usual care"}
+SURVIVAL_WORDS = {"survival": "survival", "risk_difference": "risk difference from usual care"}
 
 
 def _number(x, digits=3):
@@ -84,6 +85,60 @@ def _performance_table(summary, names) -> str:
     return f"<table><caption>{caption}</caption><thead>{head}</thead>{''.join(body)}</table>"
 
 
+def _survival_table(survival, names) -> str:
+    """Performance of the survival analysis at the horizon, one row per strategy and target."""
+    head = (
+        "<tr><th scope='col'>Strategy</th><th scope='col'>Target</th><th scope='col'>Cohorts</th>"
+        "<th scope='col'>Bias (MCSE)</th><th scope='col'>Empirical SE</th><th scope='col'>Mean bootstrap SE</th>"
+        "<th scope='col'>Coverage ± MCSE (points)</th><th scope='col'>Intervals excluding 0</th>"
+        "<th scope='col'>Reliable in</th><th scope='col'>Coverage where reliable</th></tr>"
+    )
+    body = []
+    for row in survival["rows"]:
+        m = row["all"] or {}
+        power = _percent(m.get("power")) if row["target"] == "risk_difference" else "—"
+        body.append(
+            f"<tr><td>{escape(names.get(row['strategy'], row['strategy']))}</td>"
+            f"<td>{SURVIVAL_WORDS[row['target']]}</td><td>{m.get('n_used', 0)}</td>"
+            f"<td>{_number(m.get('bias'))} ({_number(m.get('bias_mcse'))})</td>"
+            f"<td>{_number(m.get('empirical_se'))}</td><td>{_number(m.get('model_se'))}</td>"
+            f"<td>{_coverage(m)}</td><td>{power}</td>"
+            f"<td>{row['cohorts_reliable']}</td><td>{_coverage(row['reliable'])}</td></tr>"
+        )
+    caption = (
+        f"Survival at the horizon ({survival['horizon_days']:g} days) by clone–censor–weight on the look-alike "
+        "cohorts, against the truth had nobody been lost to follow-up (reliable: effective sample above the "
+        "analysis's floor up to the horizon)"
+    )
+    return f"<table><caption>{caption}</caption><thead>{head}</thead>{''.join(body)}</table>"
+
+
+def _survival_part(summary, names) -> list[str]:
+    """The survival part of the page (nothing without it)."""
+    survival = summary.get("survival")
+    if not survival:
+        return []
+    uc = (survival["usual_care"] or {}).get("all") or {}
+    words = [
+        f"The survival analysis's intervals for usual care's survival at {survival['horizon_days']:g} days covered "
+        f"the truth in {_share_of(uc)} cohorts"
+    ]
+    h = (survival.get("headline") or {}).get("all") or {}
+    if h:
+        words.append(
+            f"; for the headline strategy's risk difference from usual care, in {_share_of(h)} cohorts (mean true "
+            f"risk difference {_number(survival['mean_true_risk_difference'])}; intervals excluding zero in "
+            f"{_percent(h.get('power'))})"
+        )
+    return [
+        "<h2>Survival</h2><p>" + "".join(words) + ". The world ends follow-up with an event in the interval after "
+        "each decision and, at an episode's last decision, loss to follow-up, both by logistic regression on the "
+        "state and action; the truths switch loss off (survival had nobody been lost, the target of the dropout "
+        f"weights). About {survival['mean_events']:,.0f} events per cohort.</p>",
+        _survival_table(survival, names),
+    ]
+
+
 def _fit_table(fit, labels) -> str:
     rows = "".join(
         f"<tr><td>{escape(a)}</td><td>{_percent(fit['action_shares']['records'][a])}</td>"
@@ -98,6 +153,17 @@ def _fit_table(fit, labels) -> str:
         f"<tr><td>decisions per episode</td><td>{_number(d['records'], 2)}</td>"
         f"<td>{_number(d['simulated'], 2)}</td></tr>"
     )
+    follow = fit.get("follow_up")
+    if follow:
+        rec, sim = follow["records"], follow["simulated"]
+        rows += (
+            f"<tr><td>events by day {follow['horizon_days']:g}</td><td>{_percent(rec['event_share'])}</td>"
+            f"<td>{_percent(sim['event_share'])}</td></tr>"
+            f"<tr><td>lost to follow-up before it</td><td>{_percent(rec['dropout_share'])}</td>"
+            f"<td>{_percent(sim['dropout_share'])}</td></tr>"
+            f"<tr><td>Kaplan–Meier survival at it</td><td>{_number(rec['survival_at_horizon'])}</td>"
+            f"<td>{_number(sim['survival_at_horizon'])}</td></tr>"
+        )
     rule = fit.get("learned_rule")
     if rule:
         rows += (
@@ -233,6 +299,7 @@ def selfcheck_page(document: dict, protocol, cautions) -> str:
         f"{s['truth_episodes']:,} simulated episodes per policy with common random numbers. Monte Carlo standard "
         "errors follow Morris, White &amp; Crowther (2019, Stat Med 38:2074).</p>",
         _performance_table(summary, names),
+        *_survival_part(summary, names),
         f"<h2>How well the world reproduces the records</h2><p>{drift[:1].upper() + drift[1:]}.{_rule_note(fit)}</p>",
         _fit_table(fit, protocol.action_labels),
         "<h2>Settings</h2><ul>",

@@ -20,7 +20,7 @@ from regimewise.evaluation.values import headline_estimator
 from regimewise.io import write_json, write_text
 from regimewise.protocol import ProtocolFile, SelfCheckSpec, confounder_problem, load_protocol
 from regimewise.selfcheck.cohort import LEARNED, USUAL_CARE, cohort_outcome, cohort_seeds, headline_strategy
-from regimewise.selfcheck.fitcheck import learned_rules, reproduction
+from regimewise.selfcheck.fitcheck import follow_up_reproduction, learned_rules, reproduction
 from regimewise.selfcheck.page import selfcheck_page
 from regimewise.selfcheck.performance import coverage_mcse, performance
 from regimewise.selfcheck.regret import regret
@@ -34,7 +34,8 @@ _WORKER: dict = {}
 def _start_worker(protocol_path: str, replicates: int, truth_episodes: int, confounder_gamma: float) -> None:
     warnings.simplefilter("ignore")
     pf = load_protocol(protocol_path)
-    world = fitted_world(validate_records(pf).decisions, pf.protocol, confounder_gamma)
+    records = validate_records(pf)
+    world = fitted_world(records.decisions, pf.protocol, episodes=records.episodes, confounder_gamma=confounder_gamma)
     _WORKER.update(world=world, protocol=pf.protocol, replicates=replicates, truth_episodes=truth_episodes)
 
 
@@ -82,10 +83,14 @@ def _refuse(name: str, chosen: dict, problem: str) -> NoReturn:
     raise UserInputError(f"self-check setting {name} = {chosen[name]!r}: {problem} (--{name.replace('_', '-')})")
 
 
-def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[dict], chosen: dict) -> dict:
+def selfcheck_document(
+    records, world: LookAlikeWorld, protocol, results: list[dict], chosen: dict, episodes=None
+) -> dict:
     """What selfcheck.json holds: settings, the world's models, the fit check (the records against simulated
-    cohort 0), the summary (with the learned regime's regret), the failed cohorts and every cohort's result (in
-    cohort order). Raises :class:`UserInputError` when fewer than two cohorts completed their analysis."""
+    cohort 0; with the survival part, also their events, losses and survival at the horizon from ``episodes``, the
+    records' episodes table), the summary (with the learned regime's regret), the failed cohorts and every
+    cohort's result (in cohort order). Raises :class:`UserInputError` when fewer than two cohorts completed their
+    analysis."""
     results = sorted(results, key=lambda r: r["cohort"])
     failed = [r for r in results if "failed" in r]
     completed = [r for r in results if "failed" not in r]
@@ -97,9 +102,11 @@ def selfcheck_document(records, world: LookAlikeWorld, protocol, results: list[d
         )
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        first, _ = world.simulate(world.n_episodes, cohort_seeds(protocol, 0)[0])
+        first, first_episodes, _ = world.simulate_records(world.n_episodes, cohort_seeds(protocol, 0)[0])
         regret_summary, regret_rows = regret(world, protocol, completed, chosen["reference_episodes"])
         fit_check = reproduction(records, first, protocol) | {"learned_rule": learned_rules(records, first, protocol)}
+    if first_episodes is not None and episodes is not None:
+        fit_check["follow_up"] = follow_up_reproduction(episodes, first_episodes, protocol.survival.horizon_days)
     summary = summarise(completed, protocol)
     summary["regret"] = regret_summary
     for r in completed:
@@ -144,9 +151,11 @@ def run_selfcheck(pf: ProtocolFile, out: Path, chosen: dict, cores: int, progres
     selfcheck.json holds (written to ``out`` with selfcheck.html). The same settings give the same bytes whatever
     the number of workers. ``progress(done, cohorts, result)``, if given, is called as the cohorts finish (in
     cohort order)."""
-    records = validate_records(pf).decisions
+    validated = validate_records(pf)
+    records = validated.decisions
     gamma = chosen["confounder_gamma"]
-    world = fitted_world(records, pf.protocol, gamma)  # in this process first: a cohort too small fails fast
+    # in this process first: a cohort too small fails fast
+    world = fitted_world(records, pf.protocol, episodes=validated.episodes, confounder_gamma=gamma)
     cohorts = chosen["cohorts"]
     with ProcessPoolExecutor(
         max_workers=max(1, min(cores, cohorts)),
@@ -158,7 +167,7 @@ def run_selfcheck(pf: ProtocolFile, out: Path, chosen: dict, cores: int, progres
             results.append(result)
             if progress is not None:
                 progress(len(results), cohorts, result)
-    document = selfcheck_document(records, world, pf.protocol, results, chosen)
+    document = selfcheck_document(records, world, pf.protocol, results, chosen, validated.episodes)
     write_selfcheck(document, pf.protocol, out / "selfcheck.json", out / "selfcheck.html")
     return document
 
@@ -228,6 +237,8 @@ def summarise(results: list[dict], protocol) -> dict:
     if "confounding" in results[0]:  # only with a hidden confounder in the world: Γ = 1 adds nothing
         naive = pick(results[0]["confounding"]["strategy"], "contrast")
         out["confounding"] = confounding_summary(results, naive["all"] if naive else None)
+    if "survival" in results[0]:
+        out["survival"] = summarise_survival(results, names, strategy)
     return out
 
 
@@ -273,4 +284,64 @@ def confounding_summary(results: list[dict], naive: dict | None) -> dict:
         "naive_coverage_mcse": None if naive is None else naive["coverage_mcse"],
         "naive_cohorts": 0 if naive is None else naive["n_used"],
         "mean_true_contrast": float(np.mean([c["true_contrast"] for c in entries])),
+    }
+
+
+def _survival_columns(found: list[dict], target: str, at: int):
+    """Estimate, bootstrap SE and interval limits of ``target`` at table time ``at`` per cohort (NaN if absent)."""
+
+    def column(values):
+        return np.array([np.nan if v is None else v for v in values], dtype=float)
+
+    def at_time(values):
+        return None if values is None else values[at]
+
+    limits = [f.get(f"{target}_interval") or [None, None] for f in found]
+    return (
+        column(at_time(f.get(target)) for f in found),
+        column(at_time(f.get(f"{target}_se")) for f in found),
+        column(at_time(low) for low, _ in limits),
+        column(at_time(high) for _, high in limits),
+    )
+
+
+def summarise_survival(results: list[dict], names: list[str], strategy) -> dict:
+    """Performance of the survival analysis at the horizon: every compared strategy's survival and the others'
+    risk difference from usual care, against their truths without loss to follow-up, over all cohorts and over
+    those where the strategy's effective sample stays reliable to the horizon (Morris, White & Crowther 2019)."""
+    first = results[0]["survival"]
+    horizon = first["horizon_days"]
+    at = first["times"].index(horizon)
+    rows = []
+    for name in names:
+        for target in ("survival",) if name == USUAL_CARE else ("survival", "risk_difference"):
+            found = [r["survival"]["estimates"].get(name, {}) for r in results]
+            truth = np.array([r["truths"][name][target][at] for r in results], dtype=float)
+            estimate, se, low, high = _survival_columns(found, target, at)
+            reliable = np.array([bool(f.get("reliable")) for f in found])
+            everywhere = np.ones(len(results), dtype=bool)
+            rows.append(
+                {
+                    "strategy": name,
+                    "target": target,
+                    "time": horizon,
+                    "cohorts_reliable": int(reliable.sum()),
+                    "all": _measure(estimate, truth, se, low, high, everywhere),
+                    "reliable": _measure(estimate, truth, se, low, high, reliable),
+                }
+            )
+    headline = None
+    if strategy is not None:
+        row = next(r for r in rows if (r["strategy"], r["target"]) == (strategy.name, "risk_difference"))
+        headline = {"name": strategy.name, "all": row["all"]}
+    true_differences = (
+        [r["truths"][strategy.name]["risk_difference"][at] for r in results] if strategy is not None else []
+    )
+    return {
+        "horizon_days": horizon,
+        "rows": rows,
+        "usual_care": next(r for r in rows if r["strategy"] == USUAL_CARE),
+        "headline": headline,
+        "mean_true_risk_difference": float(np.mean(true_differences)) if true_differences else None,
+        "mean_events": float(np.mean([r["survival"]["events"] for r in results])),
     }

@@ -15,7 +15,10 @@ the truth is known (Franklin, Schneeweiss, Polinski & Rassen 2014, Comput Stat D
   decision), which keeps the dependence between the noises of the states and the reward;
 * **follow-up**: whether an episode has a decision at t + 1, by logistic regression on the same covariates (a
   constant where every or no episode continues);
-* **usual care**: the protocol's usual-care model fitted on the records (:func:`fit_usual_care`).
+* **usual care**: the protocol's usual-care model fitted on the records (:func:`fit_usual_care`);
+* **events and loss to follow-up**, only with a ``survival`` section and the records' episodes table: per decision
+  point, an event in the interval after the decision, and at an episode's last decision, loss to follow-up before
+  the horizon (:mod:`regimewise.selfcheck.followup`); the simulated cohort then comes with an episodes table.
 
 Numeric states are kept within their plausible range; integer states are rounded. Each episode is its own
 patient, and the states are complete (no missing values). The world is only as good as these models; the
@@ -62,6 +65,7 @@ from threadpoolctl import threadpool_limits
 from regimewise.core.features import StateScaler, action_codes, level_values
 from regimewise.errors import UserInputError
 from regimewise.protocol import Protocol
+from regimewise.selfcheck.followup import FollowUpModel
 from regimewise.sensitivity.analysis import confounded_mask
 from regimewise.usual_care.fitting import UsualCareModel, fit_usual_care
 
@@ -130,11 +134,13 @@ class LookAlikeWorld:
     carried_states: tuple[str, ...]
     n_episodes: int
     confounder_gamma: float = 1.0
+    follow_up: FollowUpModel | None = None  # events and loss to follow-up (survival section and episodes only)
 
     # ------------------------------------------------------------------------------------------------- fitting
     @classmethod
-    def fit(cls, decisions: pd.DataFrame, protocol: Protocol) -> LookAlikeWorld:
-        """Fit the world on clean decisions (:func:`regimewise.data.records.clean_decisions`).
+    def fit(cls, decisions: pd.DataFrame, protocol: Protocol, episodes: pd.DataFrame | None = None) -> LookAlikeWorld:
+        """Fit the world on clean decisions (:func:`regimewise.data.records.clean_decisions`); with a ``survival``
+        section and the records' clean episodes table, also how follow-up ends.
 
         Raises :class:`UserInputError` in one line when a decision point has too few decisions for its models.
         """
@@ -162,6 +168,13 @@ class LookAlikeWorld:
         for t in range(int(step.max()) + 1):
             rows = np.flatnonzero(step == t)
             steps.append(world._fit_step(frame, codes, rows, following[rows], t))
+        if protocol.survival is not None and episodes is not None:
+            world = replace(
+                world,
+                follow_up=FollowUpModel.fit(
+                    frame, episodes, world.design(frame, codes), protocol.survival.horizon_days, len(steps)
+                ),
+            )
         # usual care last: a cohort too small for the per-step models is refused by the check above, in our words
         return replace(world, steps=tuple(steps), usual_care=fit_usual_care(frame, protocol))
 
@@ -230,7 +243,7 @@ class LookAlikeWorld:
         """Every random number an episode may use, drawn up front in fixed shapes (common random numbers: the
         same seed gives the same draws whatever the policy)."""
         horizon = len(self.steps)
-        streams = np.random.SeedSequence(seed).spawn(7)  # a child's numbers do not depend on how many are spawned
+        streams = np.random.SeedSequence(seed).spawn(11)  # a child's numbers do not depend on how many are spawned
         rng = [np.random.default_rng(s) for s in streams]
         draws = {
             "baseline": rng[0].integers(0, self.n_episodes, n),
@@ -242,6 +255,13 @@ class LookAlikeWorld:
         }
         if self.confounder_gamma > 1.0:  # the hidden U_t ~ Bernoulli(½); not drawn without a confounder
             draws["hidden"] = rng[6].random((n, horizon)) < 0.5
+        if self.follow_up is not None:  # children 7 to 10: the others' draws are unchanged
+            draws.update(
+                event=rng[7].random((n, horizon)),
+                event_day=rng[8].random((n, horizon)),
+                loss=rng[9].random(n),
+                loss_day=rng[10].random(n),
+            )
         return draws
 
     def confounded_steps(self) -> np.ndarray:
@@ -250,11 +270,13 @@ class LookAlikeWorld:
         steps = np.arange(len(self.steps))
         return confounded_mask(steps, self.protocol.sensitivity) & (self.confounder_gamma > 1.0)
 
-    def _rollout(self, n, seed, policy, record=False):
+    def _rollout(self, n, seed, policy, record=False, follow=None):
         """Simulate ``n`` episodes under ``policy``; returns the decisions (one frame per decision point, with
-        ``record``, else empty), usual care's probabilities of the simulated decisions, and each episode's discounted
-        return."""
+        ``record``, else empty), usual care's probabilities of the simulated decisions, each episode's discounted
+        return, and with ``follow`` ("observed": with loss to follow-up, "no loss": without) the episodes' end of
+        follow-up (:class:`regimewise.selfcheck.followup.FollowUp`, else None)."""
         draws = self._draws(n, seed)
+        tracker = None if follow is None else self.follow_up.tracker(n, draws, loss=follow == "observed")
         p = self.protocol
         start = self.baseline.iloc[draws["baseline"]].reset_index(drop=True)
         state = start[[s.name for s in p.states]].copy()
@@ -286,16 +308,20 @@ class LookAlikeWorld:
                 frames.append(self._decisions(current, index, day[index], codes, reward, t))
                 probabilities.append(proba)
             if models.follow_up is None:
+                if tracker is not None:
+                    tracker.step(t, index, design, day[index], np.full(index.size, np.inf))
                 break
             goes_on = models.follow_up.draw(design, draws["follow_up"][index, t]).astype(bool)
             nxt = self._next_states(models, current, design, donor, draws["classes"][index, t])
             for j, name in enumerate(nxt.columns):
                 state.iloc[index, j] = nxt[name].to_numpy()
+            if tracker is not None:
+                tracker.step(t, index, design, day[index], np.where(goes_on, day[index] + models.gaps[donor], np.inf))
             day[index] = day[index] + models.gaps[donor]
             active[index[~goes_on]] = False
             if not active.any():
                 break
-        return frames, probabilities, returns
+        return frames, probabilities, returns, tracker
 
     def _donor(self, models, uniforms):
         return np.minimum((uniforms * len(models.reward_residuals)).astype(np.int64), len(models.reward_residuals) - 1)
@@ -335,12 +361,26 @@ class LookAlikeWorld:
         """A cohort of ``n`` episodes under usual care: clean decisions (episode and step order) and usual care's
         probabilities of every simulated decision (the truth of the world's usual care: with a hidden confounder,
         the probabilities given the state and U, from which the actions were drawn)."""
+        decisions, _, proba = self.simulate_records(n, seed)
+        return decisions, proba
+
+    def simulate_records(self, n: int, seed: int) -> tuple[pd.DataFrame, pd.DataFrame | None, np.ndarray]:
+        """As :meth:`simulate`, with the cohort's episodes table between (``episode_id``, ``patient_id``,
+        ``n_decisions``, ``followup_days``, ``event``, in episode order; loss to follow-up on), or None when the
+        world has no follow-up model. The decisions are those :meth:`simulate` gives for the same seed."""
         _check_count(n)
-        frames, probabilities, _ = self._rollout(n, seed, "usual_care", record=True)
+        frames, probabilities, _, tracker = self._rollout(
+            n, seed, "usual_care", record=True, follow=None if self.follow_up is None else "observed"
+        )
         decisions = pd.concat(frames, ignore_index=True)
         proba = np.concatenate(probabilities)
         order = np.lexsort((decisions["step"].to_numpy(), decisions["episode_id"].to_numpy()))
-        return decisions.iloc[order].reset_index(drop=True), proba[order]
+        decisions = decisions.iloc[order].reset_index(drop=True)
+        if tracker is None:
+            return decisions, None, proba[order]
+        episodes = tracker.episodes(np.array([f"S{i + 1:07d}" for i in range(n)], dtype=object))
+        episodes.insert(2, "n_decisions", decisions.groupby("episode_id", sort=True).size().to_numpy())
+        return decisions, episodes, proba[order]
 
     def returns(self, policy, n: int, seed: int) -> np.ndarray:
         """Every episode's discounted return under ``policy``: ``"usual_care"``, a regime (a callable of a state
@@ -351,13 +391,30 @@ class LookAlikeWorld:
         _check_count(n)
         return self._rollout(n, seed, policy)[2]
 
+    def returns_and_event_days(self, policy, n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+        """As :meth:`returns`, with each episode's event day had nobody been lost to follow-up (infinite without an
+        event by the horizon): the same draws for every policy, so a policy acting as usual care does gives the same
+        event days. Needs a world with a follow-up model."""
+        _check_count(n)
+        if self.follow_up is None:
+            raise UserInputError("survival truths need a world fitted with a survival section and an episodes table")
+        _, _, returns, tracker = self._rollout(n, seed, policy, follow="no loss")
+        return returns, tracker.event_day
 
-def fitted_world(records: pd.DataFrame, protocol: Protocol, confounder_gamma: float = 1.0) -> LookAlikeWorld:
-    """The look-alike world fitted on clean records, one BLAS thread, fitting warnings silenced (the analysis of
-    the records themselves reports them), with a hidden confounder of strength ``confounder_gamma`` (1: none)."""
+
+def fitted_world(
+    records: pd.DataFrame,
+    protocol: Protocol,
+    *,
+    episodes: pd.DataFrame | None = None,
+    confounder_gamma: float = 1.0,
+) -> LookAlikeWorld:
+    """The look-alike world fitted on clean records (and their episodes table, for the survival part), one BLAS
+    thread, fitting warnings silenced (the analysis of the records themselves reports them), with a hidden
+    confounder of strength ``confounder_gamma`` (1: none)."""
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        return LookAlikeWorld.fit(records, protocol).with_confounder(confounder_gamma)
+        return LookAlikeWorld.fit(records, protocol, episodes).with_confounder(confounder_gamma)
 
 
 def hidden_choice(proba: np.ndarray, hidden: np.ndarray, gamma: float) -> np.ndarray:

@@ -416,10 +416,12 @@ def sweep_stage(protocol, specs, sweep):
 
 
 # ---------------------------------------------------------------------------------------------- self-check
-def selfcheck_cohort_stage(protocol, decisions, cohort, result):
+def selfcheck_cohort_stage(protocol, decisions, episodes, cohort, result):
     """One look-alike cohort of the self-check (wildcard ``cohort``): simulate, analyse, and compute its truths."""
     p = load_protocol(protocol).protocol
-    world = fitted_world(read_parquet(decisions), p, p.selfcheck.confounder_gamma)
+    world = fitted_world(
+        read_parquet(decisions), p, episodes=read_parquet(episodes), confounder_gamma=p.selfcheck.confounder_gamma
+    )
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the analysis of the records themselves reports its warnings
         out = cohort_outcome(world, p, int(cohort), p.selfcheck.replicates, p.selfcheck.truth_episodes)
@@ -430,13 +432,13 @@ def selfcheck_cohort_stage(protocol, decisions, cohort, result):
         log.info("self-check cohort %s: %d of %d replicates used", cohort, out["replicates_used"], out["replicates"])
 
 
-def selfcheck_stage(protocol, decisions, cohorts, selfcheck, page):
+def selfcheck_stage(protocol, decisions, episodes, cohorts, selfcheck, page):
     """The self-check's summary (selfcheck.json) and its page (selfcheck.html) from the cohort jobs."""
     p = load_protocol(protocol).protocol
-    records = read_parquet(decisions)
+    records, outcomes = read_parquet(decisions), read_parquet(episodes)
     results = [read_json(path) for path in cohorts]
-    world = fitted_world(records, p, p.selfcheck.confounder_gamma)
-    document = selfcheck_document(records, world, p, results, p.selfcheck.model_dump())
+    world = fitted_world(records, p, episodes=outcomes, confounder_gamma=p.selfcheck.confounder_gamma)
+    document = selfcheck_document(records, world, p, results, p.selfcheck.model_dump(), outcomes)
     write_selfcheck(document, p, selfcheck, page)
 
 
