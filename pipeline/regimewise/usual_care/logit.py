@@ -102,28 +102,48 @@ def row_blocks(n_rows, size=None):
     return (slice(start, start + size) for start in range(0, n_rows, size))
 
 
+# Step halvings of Newton's method before a fit that cannot raise its log-likelihood stops (see _newton_mnlogit).
+HALVINGS = 30
+# Relative fall of the log-likelihood that counts as rounding near the maximum, not as a worse point.
+LLF_ROUNDING = 1e-9
+
+
 def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
-    """Newton's method for the multinomial logit, as statsmodels' ``MNLogit.fit(method="newton")`` runs it.
+    """Newton's method for the multinomial logit, as statsmodels' ``MNLogit.fit(method="newton")`` runs it, with
+    step halving where a full step would lower the log-likelihood.
 
     Start at 0; each step solves (H + ridge·I) Δ = −score with the Hessian H of the log-likelihood; stop when no
-    coefficient moves by more than ``tol`` or after ``maxiter`` steps (then ``converged`` is False). statsmodels'
+    coefficient moves by more than ``tol`` or after ``maxiter`` passes (then ``converged`` is False). statsmodels'
     defaults (``tol`` 1e-8, ridge 1e-10) are kept, so both give the same estimates to rounding; the tests check
     it. The score and the Hessian are sums over the records, accumulated here block by block: with A_j = X·p_j
     (each row of X times the probability of class j), −H has blocks δ_jl X'diag(p_j)X − A_j'A_l, two matrix
     products per block (Agresti 2013, Categorical Data Analysis, 3rd ed., §8.1 for the likelihood equations).
     Memory stays at a block's worth of temporaries instead of several copies of the design.
+
+    The log-likelihood is concave, so a full Newton step raises it wherever the quadratic model holds and the
+    iterates are statsmodels' exactly. Under (quasi-)separation the estimates diverge, the fitted probabilities
+    reach 0 and 1 in floating point and the Hessian turns singular; a full step can then jump to a far worse point
+    (how far depends on rounding, so on the numpy and BLAS build). Each pass therefore also sums the
+    log-likelihood, and a step that lowered it by more than rounding (:data:`LLF_ROUNDING`) is halved, up to
+    :data:`HALVINGS` times, before the fit stops unconverged at its best point (the usual safeguard of Newton's
+    method, backtracking: Nocedal & Wright 2006, Numerical Optimization, 2nd ed., §3.1).
     """
     n_rows, n_cols = design.shape
     n_other = int(endog.max())  # classes 1 .. n_other against the reference class 0
     params = np.zeros((n_cols, n_other))
     others = np.arange(1, n_other + 1)
+    best = None  # (params, log-likelihood, step) of the last point a step was taken from
+    halvings = 0
     for iteration in range(1, maxiter + 1):
         score = np.zeros((n_other, n_cols))
         information = np.zeros((n_other * n_cols, n_other * n_cols))
+        llf = 0.0
         with np.errstate(all="ignore"):
             for rows in row_blocks(n_rows):
                 X = design[rows]
-                proba = np.exp(_log_proba(X, params)[:, 1:])
+                log_proba = _log_proba(X, params)
+                llf += float(log_proba[np.arange(len(X)), endog[rows]].sum())
+                proba = np.exp(log_proba[:, 1:])
                 taken = endog[rows, None] == others
                 score += (taken - proba).T @ X
                 A = (X[:, None, :] * proba[:, :, None]).reshape(len(X), -1)  # columns: class-major, as the blocks
@@ -132,6 +152,15 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
                 for j in range(n_other):
                     block = slice(j * n_cols, (j + 1) * n_cols)
                     information[block, block] += weighted[block]
+        # the step lowered the likelihood beyond rounding (or made it undefined)
+        if best is not None and not llf >= best[1] - LLF_ROUNDING * (1.0 + abs(best[1])):
+            if halvings == HALVINGS:
+                return MNLogitFit(best[0], False, iteration)
+            halvings += 1
+            best = (best[0], best[1], best[2] / 2.0)
+            params = best[0] - best[2]
+            continue
+        halvings = 0
         hessian = -information
         hessian[np.diag_indices_from(hessian)] += ridge
         try:
@@ -139,6 +168,7 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         except np.linalg.LinAlgError:
             return None
         step = step.reshape(n_other, n_cols).T
+        best = (params, llf, step)
         params = params - step
         if not np.all(np.isfinite(params)):
             return None
