@@ -81,13 +81,19 @@ def replicates_in_job(rule):
     }.get(rule, 0)
 
 
+def decisions_in_job(rule):
+    # the self-check's summary job also learns the reference rule on its own simulated cohort
+    extra = SETTINGS.selfcheck_reference_decisions if rule == "selfcheck" else 0
+    return decisions_recorded() + extra
+
+
 def mem_mb(rule):
-    return lambda wildcards, attempt: stage_resources(rule, decisions_recorded(), replicates_in_job(rule), attempt)[
+    return lambda wildcards, attempt: stage_resources(rule, decisions_in_job(rule), replicates_in_job(rule), attempt)[
         "mem_mb"
     ]
 
 
 def runtime(rule):
-    return lambda wildcards, attempt: stage_resources(rule, decisions_recorded(), replicates_in_job(rule), attempt)[
+    return lambda wildcards, attempt: stage_resources(rule, decisions_in_job(rule), replicates_in_job(rule), attempt)[
         "runtime"
     ]

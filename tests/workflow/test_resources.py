@@ -7,6 +7,7 @@ import math
 from pathlib import Path
 
 import pytest
+from support.tiny import tiny_protocol_dict
 
 from regimewise.workflow.resources import (
     BYTES_PER_DECISION,
@@ -16,7 +17,7 @@ from regimewise.workflow.resources import (
     recorded_decisions,
     stage_resources,
 )
-from regimewise.workflow.settings import Settings
+from regimewise.workflow.settings import Settings, load_settings
 
 
 def test_decisions_come_from_validation_when_present(tmp_path):
@@ -70,3 +71,22 @@ def test_every_rule_has_a_cost():
         if line.startswith("rule ")
     }
     assert names - {"all"} == set(STAGE_COSTS)
+
+
+def test_the_selfcheck_summary_asks_for_its_reference_cohort(tmp_path):
+    # The summary job learns the regret's reference rule on reference_episodes simulated episodes of at most
+    # `horizon` decisions each, whatever the records' size: its requests count those decisions too. Measured: the
+    # demo protocol's self-check (24,000 decisions, reference from 100,000 episodes × 8) peaked at 964 MB in its
+    # largest process (bench/RESULTS.md, 2026-12-04), above the 620 MB the records alone would ask for.
+    config = {"protocol": str(tmp_path / "protocol.yaml"), "results": "r", "logs": "l", "benchmarks": "b"}
+    raw = tiny_protocol_dict()
+    raw["selfcheck"] = {"reference_episodes": 100_000}
+    (tmp_path / "protocol.yaml").write_text(json.dumps(raw), encoding="utf-8")
+    settings = load_settings(config)
+    assert settings.selfcheck_reference_decisions == 100_000 * raw["horizon"]
+    demo = stage_resources("selfcheck", 24_000 + 100_000 * 8)
+    assert demo["mem_mb"] >= 964 and stage_resources("selfcheck", 24_000)["mem_mb"] < 964
+    raw.pop("selfcheck")
+    (tmp_path / "protocol.yaml").write_text(json.dumps(raw), encoding="utf-8")
+    settings = load_settings(config)
+    assert settings.selfcheck_reference_decisions == 0

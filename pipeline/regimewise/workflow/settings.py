@@ -47,6 +47,7 @@ class Settings:
     sweep_replicates: int = 0
     selfcheck_cohorts: int = 0
     selfcheck_replicates: int = 0
+    selfcheck_reference_decisions: int = 0  # at most: reference_episodes × horizon (the summary job's reference rule)
     survival: bool = False
     command: str = ""
     reproduce: str = ""
@@ -96,6 +97,9 @@ def load_settings(config: dict) -> Settings:
         sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
         selfcheck_cohorts=0 if pf.protocol.selfcheck is None else pf.protocol.selfcheck.cohorts,
         selfcheck_replicates=0 if pf.protocol.selfcheck is None else pf.protocol.selfcheck.replicates,
+        selfcheck_reference_decisions=0
+        if pf.protocol.selfcheck is None
+        else pf.protocol.selfcheck.reference_episodes * pf.protocol.horizon,
         command=str(config.get("command") or ""),
         reproduce=str(config.get("reproduce") or ""),
         stand_ins={str(path): stand_in(path, what) for what, path in braced.items()},
