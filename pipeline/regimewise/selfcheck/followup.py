@@ -119,15 +119,16 @@ class FollowUpModel:
         """Fit on clean decisions, their episodes table and the world's design of every decision."""
         rows = records_intervals(decisions, episodes, horizon)
         step = decisions["step"].to_numpy()
-        day, stop, follow = (rows[c].to_numpy() for c in ("day", "stop", "followup"))
+        day, stop, follow, at_risk, event, lost, last = (
+            rows[c].to_numpy() for c in ("day", "stop", "followup", "at_risk", "event", "lost", "last")
+        )
         events, positions = [], []
         for t in range(steps):
-            fitted = rows["at_risk"].to_numpy() & (step == t) & ~rows["lost"].to_numpy()
-            events.append(_Binary.fit(design[fitted], rows["event"].to_numpy()[fitted]))
-            hit = fitted & rows["event"].to_numpy()
+            fitted = at_risk & (step == t) & ~lost
+            events.append(_Binary.fit(design[fitted], event[fitted]))
+            hit = fitted & event
             positions.append((follow[hit] - day[hit]) / (stop[hit] - day[hit]))
-        exposed = rows["at_risk"].to_numpy() & (rows["last"].to_numpy() | rows["lost"].to_numpy())
-        lost = rows["lost"].to_numpy()
+        exposed = at_risk & (last | lost)
         loss = _Binary.fit(design[exposed], lost[exposed])
         loss_positions = (follow[lost] - day[lost]) / (horizon - day[lost])
         return cls(float(horizon), tuple(events), tuple(positions), loss, loss_positions)

@@ -345,7 +345,7 @@ class LookAlikeWorld:
         labels = np.asarray(self.protocol.action_labels, dtype=object)
         frame = pd.DataFrame(
             {
-                "episode_id": [f"S{i + 1:07d}" for i in index],
+                "episode_id": _episode_ids(index),
                 "step": np.full(index.size, t, dtype=np.int64),
                 "day": np.round(day).astype(np.int64),
             }
@@ -378,7 +378,7 @@ class LookAlikeWorld:
         decisions = decisions.iloc[order].reset_index(drop=True)
         if tracker is None:
             return decisions, None, proba[order]
-        episodes = tracker.episodes(np.array([f"S{i + 1:07d}" for i in range(n)], dtype=object))
+        episodes = tracker.episodes(_episode_ids(np.arange(n)))
         episodes.insert(2, "n_decisions", decisions.groupby("episode_id", sort=True).size().to_numpy())
         return decisions, episodes, proba[order]
 
@@ -461,6 +461,12 @@ def _check_gamma(gamma):
     if not number or not np.isfinite(gamma) or gamma < 1.0:
         raise UserInputError(f"hidden confounder's strength Γ: got {gamma!r}; give a finite number of at least 1")
     return float(gamma)
+
+
+def _episode_ids(index) -> np.ndarray:
+    """The identifiers of simulated episodes ``index`` (0-based): S0000001, S0000002, ... in the decisions and the
+    episodes table alike."""
+    return np.array([f"S{i + 1:07d}" for i in index], dtype=object)
 
 
 def _check_count(n):
