@@ -1,6 +1,7 @@
 """Independent fits on several threads: results in task order, errors raised, BLAS on one thread, and the regime
-and evaluate stages' outputs identical byte for byte with one thread and with two (the project's own rule: the
-numbers must not depend on the cores; no outside reference applies)."""
+and evaluate stages' outputs identical byte for byte with one thread and with two, and the regime stage's whether it
+learns the cross-fitted fold regimes itself or reads them from the crossfit job (the project's own rule: the numbers
+must not depend on the cores or on how the work is split into jobs; no outside reference applies)."""
 
 from __future__ import annotations
 
@@ -15,9 +16,10 @@ from threadpoolctl import threadpool_info
 from regimewise.core.concurrency import run_concurrently
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
-from regimewise.io import write_parquet
+from regimewise.errors import UserInputError
+from regimewise.io import read_parquet, write_parquet
 from regimewise.protocol import load_protocol
-from regimewise.workflow.stages import behaviour_stage, evaluate_stage, regime_stage
+from regimewise.workflow.stages import behaviour_stage, crossfit_stage, evaluate_stage, regime_stage
 
 
 def test_results_come_back_in_task_order_whatever_finishes_first():
@@ -78,6 +80,50 @@ def test_the_regime_stage_writes_the_same_bytes_with_two_threads(cohort):
         )
         written[threads] = (table.read_bytes(), regime.read_bytes())
     assert written[1] == written[2]
+
+
+def test_the_regime_stage_writes_the_same_bytes_from_the_crossfit_jobs_table(cohort):
+    # the workflow learns the fold regimes in their own job (beside the behaviour stage); the regime stage's outputs
+    # must be those it writes when it learns them itself
+    folder, pf = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    crossfit_stage(protocol, decisions, folder / "crossfit.parquet", threads=2)
+    table = read_parquet(folder / "crossfit.parquet")
+    labels = pf.protocol.action_labels
+    assert list(table.columns) == ["episode_id", "step", "evaluated", *[f"evaluated_q_{a}" for a in labels]]
+    written = {}
+    for name, crossfit in (("alone", None), ("split", folder / "crossfit.parquet")):
+        out, regime = folder / f"table_{name}.parquet", folder / f"regime_{name}.json"
+        regime_stage(protocol, decisions, proba, out, regime, crossfit=crossfit)
+        written[name] = (out.read_bytes(), regime.read_bytes())
+    assert written["alone"] == written["split"]
+    evaluated = read_parquet(folder / "table_split.parquet", ["evaluated"])["evaluated"]
+    assert (evaluated.to_numpy() == np.asarray(labels, dtype=object)[table["evaluated"].to_numpy()]).all()
+
+
+def test_the_regime_stage_refuses_a_crossfit_table_of_other_decisions(cohort):
+    folder, _ = cohort
+    crossfit_stage(folder / "protocol.yaml", folder / "decisions.parquet", folder / "crossfit_other.parquet")
+    other = read_parquet(folder / "crossfit_other.parquet").iloc[:-1]
+    write_parquet(folder / "crossfit_other.parquet", other)
+    with pytest.raises(UserInputError, match="does not hold the cross-fitted regimes of these decisions"):
+        regime_stage(
+            folder / "protocol.yaml",
+            folder / "decisions.parquet",
+            folder / "proba.parquet",
+            folder / "t.parquet",
+            folder / "r.json",
+            crossfit=folder / "crossfit_other.parquet",
+        )
+
+
+def test_the_crossfit_job_writes_only_keys_with_one_fold(cohort):
+    folder, _ = cohort
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    raw["evaluation"]["cross_fit_folds"] = 1
+    (folder / "one_fold.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    crossfit_stage(folder / "one_fold.yaml", folder / "decisions.parquet", folder / "crossfit_one.parquet")
+    assert list(read_parquet(folder / "crossfit_one.parquet").columns) == ["episode_id", "step"]
 
 
 def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):

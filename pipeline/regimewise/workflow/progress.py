@@ -19,6 +19,7 @@ from pathlib import Path
 STAGE_WORDS = {
     "validate": "validation of the records",
     "behaviour": "usual-care model",
+    "crossfit": "cross-fitted fold regimes",
     "regime": "regime learning",
     "evaluate": "off-policy evaluation",
     "describe": "cohort description",

@@ -59,6 +59,7 @@ BASE_MB = 400.0
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
     "behaviour": StageCost(BASE_MB, 600.0, 0.2),
+    "crossfit": StageCost(BASE_MB, 600.0, 0.3),
     "regime": StageCost(BASE_MB, 1000.0, 0.5),
     "evaluate": StageCost(BASE_MB, 1200.0, 0.5),
     "describe": StageCost(BASE_MB, 300.0, 0.1),

@@ -155,14 +155,48 @@ def read_probabilities(path, labels) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------------------------- regime
-def regime_stage(protocol, decisions, proba, table, regime, threads=1):
+def crossfit_stage(protocol, decisions, crossfit, threads=1):
+    """Learn the cross-fitted fold regimes; write, for every decision, the action and Q-values of the regime
+    learned without that decision's patient (:func:`regimewise.regime.learning.cross_fit_tasks`).
+
+    The fold regimes fit their own usual-care models, so they need the validated records only: the workflow runs
+    this job beside the behaviour stage, and the regime stage reads its table (a temporary file of the workflow,
+    consumed there). With one fold (``evaluation.cross_fit_folds: 1``) or no learned regime the table holds the
+    decisions' keys only: the regime stage then evaluates the regime it learns on all records.
+    """
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    out = frame[["episode_id", "step"]].copy()
+    folds = crossfit_folds(frame, p) if p.analysis.learn_regime else None
+    if folds is not None:
+        evaluated, q = assemble_cross_fit(frame, p, run_concurrently(cross_fit_tasks(frame, p, folds), threads))
+        out["evaluated"] = evaluated
+        out[evaluated_q_columns(p.action_labels)] = q
+    write_parquet(crossfit, out)
+
+
+def read_crossfit(path, frame, labels) -> tuple[np.ndarray, np.ndarray] | None:
+    """The cross-fitted actions (n,) and Q-values (n, K) written by :func:`crossfit_stage`, or None when it
+    cross-fitted nothing. Its rows must be the decisions' rows, in their order."""
+    table = read_parquet(path)
+    if len(table) != len(frame) or not np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy()):
+        raise UserInputError(
+            f"{path} does not hold the cross-fitted regimes of these decisions (its rows differ); rerun the workflow"
+        )
+    if "evaluated" not in table.columns:
+        return None
+    return table["evaluated"].to_numpy(dtype=np.int64), table[evaluated_q_columns(labels)].to_numpy(dtype=float)
+
+
+def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threads=1):
     """Learn the side-by-side regimes; write recommendations with Q-values and the fitted models' summary.
 
     The ``recommended`` column is the protocol's learned regime (every safeguard the protocol sets); the
     ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.learning.SAFEGUARDS`); the
     ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
     that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one
-    fold).
+    fold). ``crossfit``, the table of :func:`crossfit_stage` (the workflow's), gives those; without it the stage
+    learns the fold regimes itself (the same numbers).
 
     ``threads`` (the rule's) of the fits run at once: the side-by-side regimes and the cross-fitted fold regimes
     do not depend on each other (:func:`regimewise.core.concurrency.run_concurrently`; the outputs are the same
@@ -181,11 +215,18 @@ def regime_stage(protocol, decisions, proba, table, regime, threads=1):
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
     fits = variant_tasks(frame, probabilities, p, features, X=X)
-    folds = crossfit_folds(frame, p)
-    cross_fits = [] if folds is None else cross_fit_tasks(frame, p, folds)
+    if crossfit is None:
+        folds = crossfit_folds(frame, p)
+        cross_fits = [] if folds is None else cross_fit_tasks(frame, p, folds)
+    else:
+        cross_fits = []
     # the fold regimes first: each also fits its own usual-care model, the longest tasks
     done = run_concurrently([*cross_fits, *fits.values()], threads)
     variants = dict(zip(fits, done[len(cross_fits) :]))
+    if crossfit is not None:
+        crossfitted = read_crossfit(crossfit, frame, p.action_labels)
+    else:
+        crossfitted = assemble_cross_fit(frame, p, done[: len(cross_fits)]) if cross_fits else None
     rules = ClinicalRuleSet.from_protocol(p)
     # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
     # "rules" and "pessimistic"), kept by the fit rather than scored again
@@ -193,11 +234,8 @@ def regime_stage(protocol, decisions, proba, table, regime, threads=1):
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
     q = fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
-    del X
-    evaluated, evaluated_q = (
-        (recommended, None) if folds is None else assemble_cross_fit(frame, p, done[: len(cross_fits)])
-    )
-    del done
+    del X, done
+    evaluated, evaluated_q = (recommended, None) if crossfitted is None else crossfitted
     permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
     write_recommendations(table, p, frame, chosen, evaluated, q if evaluated_q is None else evaluated_q, q, permitted)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
@@ -446,6 +484,7 @@ def selfcheck_stage(protocol, decisions, episodes, cohorts, selfcheck, page):
 STAGES = {
     "validate": validate_stage,
     "behaviour": behaviour_stage,
+    "crossfit": crossfit_stage,
     "regime": regime_stage,
     "evaluate": evaluate_stage,
     "describe": describe_stage,
