@@ -17,9 +17,19 @@ from regimewise.core.concurrency import run_concurrently
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import UserInputError
-from regimewise.io import read_parquet, write_parquet
+from regimewise.io import dumps_json, read_json, read_parquet, write_parquet
 from regimewise.protocol import load_protocol
-from regimewise.workflow.stages import behaviour_stage, crossfit_stage, evaluate_stage, regime_stage
+from regimewise.sensitivity import analysis
+from regimewise.workflow.stages import (
+    behaviour_stage,
+    bootstrap_stage,
+    crossfit_stage,
+    evaluate_stage,
+    headline_contrast,
+    regime_stage,
+    sensitivity_curves_stage,
+    sensitivity_stage,
+)
 
 
 def test_results_come_back_in_task_order_whatever_finishes_first():
@@ -146,3 +156,34 @@ def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):
         written[threads] = values.read_bytes()
     assert written[1] == written[2]
     assert b'"side_by_side"' in written[1] and b'"fqe"' in written[1]  # every part that runs on threads was run
+
+
+def test_the_sensitivity_stage_writes_what_the_analysis_finds_from_the_curves_jobs_file(cohort):
+    # the bounds curves are computed in their own job (beside the evaluate stage) and pass through a JSON file:
+    # sensitivity.json must hold what the analysis finds from the records directly
+    folder, _ = cohort
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    raw["evaluation"].update(replicates=0, shards=1)  # intervals.json without replicates: no shard to run here
+    (folder / "no_replicates.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    protocol, decisions, proba = folder / "no_replicates.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    p = load_protocol(protocol).protocol
+    table = folder / "table_for_sensitivity.parquet"
+    regime_stage(protocol, decisions, proba, table, folder / "r_s.json")
+    evaluate_stage(protocol, decisions, proba, table, folder / "values_s.json")
+    bootstrap_stage(protocol, folder / "values_s.json", [], folder / "intervals_s.json")
+    sensitivity_curves_stage(protocol, decisions, proba, table, folder / "curves.json")
+    sensitivity_stage(protocol, folder / "curves.json", folder / "intervals_s.json", [], folder / "sens.json")
+
+    frame, probabilities = read_parquet(decisions), read_parquet(proba)[[f"p_{a}" for a in p.action_labels]]
+    evaluated = read_parquet(table, ["evaluated"])["evaluated"].map(p.action_labels.index).to_numpy()
+    target = analysis.sensitivity_target(p)
+    point = analysis.regime_curve(
+        frame, probabilities.to_numpy(), analysis.bounded_actions(frame, p, evaluated), p, adoption=target["adoption"]
+    )
+    intervals = read_json(folder / "intervals_s.json")
+    direct = analysis.summarise_sensitivity(point, [], p, headline_contrast(intervals, p, target["name"]), target)
+    direct["comparators"] = analysis.comparator_sensitivity(
+        analysis.comparator_curves(frame, probabilities.to_numpy(), p), [], p, intervals
+    )
+    assert (folder / "sens.json").read_text(encoding="utf-8") == dumps_json(direct)
+    assert direct["comparators"]  # the demo protocol bounds its comparators too

@@ -24,6 +24,7 @@ STAGE_WORDS = {
     "evaluate": "off-policy evaluation",
     "describe": "cohort description",
     "bootstrap": "bootstrap intervals",
+    "sensitivity_curves": "sensitivity bounds over the confounding strengths",
     "sensitivity": "sensitivity analysis",
     "survival": "survival analysis",
     "sweep": "specification sweep",

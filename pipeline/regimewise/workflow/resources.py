@@ -18,10 +18,12 @@ dry run), it is estimated from the records file's size, erring high.
 
 Threads (:data:`STAGE_THREADS`): every rule runs one process, and BLAS is held to one thread in every stage
 (:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. The regime and
-evaluate rules ask for two: the regime stage's side-by-side regimes and cross-fitted fold regimes, and the
-evaluate stage's per-fold outcome models and per-regime estimates, are independent computations run on two
-threads of the stage's process (:mod:`regimewise.core.concurrency`). Every other rule asks for one (bootstrap
-shards are separate jobs). Snakemake gives a rule no more threads than ``--cores``.
+evaluate rules ask for two: the regime stage's side-by-side regimes, and the evaluate stage's per-fold outcome
+models and per-regime estimates, are independent computations run on two threads of the stage's process
+(:mod:`regimewise.core.concurrency`). Every other rule asks for one (bootstrap shards are separate jobs): the
+``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour``, and ``sensitivity_curves`` (the
+bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and ``survival`` without
+waiting for the bootstrap. Snakemake gives a rule no more threads than ``--cores``.
 """
 
 from __future__ import annotations
@@ -65,7 +67,8 @@ STAGE_COSTS = {
     "describe": StageCost(BASE_MB, 300.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
-    "sensitivity": StageCost(BASE_MB, 400.0, 0.2),
+    "sensitivity_curves": StageCost(BASE_MB, 400.0, 0.2),
+    "sensitivity": StageCost(BASE_MB, 0.0, 0.0),
     "survival": StageCost(BASE_MB, 500.0, 0.2),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),

@@ -7,6 +7,7 @@ them directly. A stage never holds statistics of its own beyond arranging inputs
 
 from __future__ import annotations
 
+import json
 import logging
 import resource
 import sys
@@ -389,9 +390,11 @@ def bootstrap_stage(protocol, values, shards, intervals):
 
 
 # ---------------------------------------------------------------------------------------------- sensitivity
-def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sensitivity):
-    """Bounds of the learned regime's (or the headline strategy's) value and contrast over Γ, their bootstrap
-    intervals, Γ* and E-values."""
+def sensitivity_curves_stage(protocol, decisions, proba, table, curves):
+    """The bounds curves over the Γ grid of the learned regime (or the headline strategy) and of each comparator:
+    the sensitivity analysis's work on the records, which needs no bootstrap result. The workflow runs it beside the
+    evaluate stage; :func:`sensitivity_stage` combines its curves with the bootstrap's (a temporary file of the
+    workflow, consumed there; JSON with non-finite numbers kept as they are)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     recommended = None
@@ -399,13 +402,39 @@ def sensitivity_stage(protocol, decisions, proba, table, intervals, shards, sens
         recommended = column_codes(read_parquet(table, ["evaluated"]), "evaluated", p.action_labels)  # as evaluated
     recommended = bounded_actions(frame, p, recommended)
     target = sensitivity_target(p)
-    point = regime_curve(frame, read_probabilities(proba, p.action_labels), recommended, p, adoption=target["adoption"])
+    probabilities = read_probabilities(proba, p.action_labels)
+    point = regime_curve(frame, probabilities, recommended, p, adoption=target["adoption"])
+    found = {"point": point, "comparators": comparator_curves(frame, probabilities, p)}
+    write_text(curves, json.dumps(_curve_lists(found), allow_nan=True, sort_keys=True) + "\n")
+
+
+def _curve_lists(value):
+    if isinstance(value, dict):
+        return {k: _curve_lists(v) for k, v in value.items()}
+    return value.tolist() if isinstance(value, np.ndarray) else value
+
+
+def read_curves(path) -> tuple[dict, dict]:
+    """The curves of :func:`sensitivity_curves_stage`: the main target's and each comparator's, as it found them."""
+    found = json.loads(Path(path).read_text(encoding="utf-8"))
+
+    def curve(c):
+        return c | {"bounded": np.asarray(c["bounded"], dtype=float)}
+
+    return curve(found["point"]), {name: curve(c) for name, c in found["comparators"].items()}
+
+
+def sensitivity_stage(protocol, curves, intervals, shards, sensitivity):
+    """Bounds of the learned regime's (or the headline strategy's) value and contrast over Γ (the curves of
+    :func:`sensitivity_curves_stage`), their bootstrap intervals, Γ* and E-values."""
+    p = load_protocol(protocol).protocol
+    point, comparators = read_curves(curves)
+    target = sensitivity_target(p)
     replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
     bootstrap = read_json(intervals)
     headline = headline_contrast(bootstrap, p, target["name"])
     out = summarise_sensitivity(point, replicates, p, headline, target)
-    curves = comparator_curves(frame, read_probabilities(proba, p.action_labels), p)
-    out["comparators"] = comparator_sensitivity(curves, replicates, p, bootstrap)
+    out["comparators"] = comparator_sensitivity(comparators, replicates, p, bootstrap)
     write_json(sensitivity, out)
 
 
@@ -490,6 +519,7 @@ STAGES = {
     "describe": describe_stage,
     "bootstrap_shard": bootstrap_shard_stage,
     "bootstrap": bootstrap_stage,
+    "sensitivity_curves": sensitivity_curves_stage,
     "sensitivity": sensitivity_stage,
     "survival": survival_stage,
     "sweep_spec": sweep_spec_stage,
