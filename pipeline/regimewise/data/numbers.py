@@ -26,6 +26,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from regimewise.data.distinct import broadcast
+
 AGE_LIMIT = 89
 
 
@@ -41,10 +43,20 @@ AGE_LIKE_SHARE = 0.9
 SERIAL_DISTINCT_SHARE = 0.9
 
 
-def whole_numbers(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """The column as floats (NaN where not a number) and a mask of its finite whole numbers."""
+def whole_numbers(values: pd.Series, distinct=None) -> tuple[np.ndarray, np.ndarray]:
+    """The column as floats (NaN where not a number) and a mask of its finite whole numbers.
+
+    ``distinct`` is the column's :func:`regimewise.data.distinct.distinct_text` when it is a text column: the
+    text is then parsed once per distinct value (in a container of the column's own dtype, which decides how
+    pandas parses it) instead of once per row.
+    """
     if pd.api.types.is_bool_dtype(values):
         numbers = np.full(len(values), np.nan)
+    elif distinct is not None:
+        codes, uniques = distinct
+        kind = values.dtype if isinstance(values.dtype, pd.StringDtype) else object
+        parsed = pd.to_numeric(pd.Series(uniques, dtype=kind), errors="coerce")
+        numbers = broadcast(parsed.to_numpy(dtype=float, na_value=np.nan), codes, np.nan)
     else:
         numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     with np.errstate(invalid="ignore"):
@@ -55,7 +67,10 @@ def whole_numbers(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
 def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
     """Mask of whole numbers of eight digits that read as YYYYMMDD, DDMMYYYY or MMDDYYYY (years 1900-2099); seven
     digits too, a DDMMYYYY or MMDDYYYY date stored as a number having lost its leading zero (1032000)."""
-    n = np.where(whole & (np.abs(numbers) >= 1e6) & (np.abs(numbers) < 1e8), np.abs(numbers), 0).astype(np.int64)
+    absolute = np.abs(numbers)
+    with np.errstate(invalid="ignore"):
+        rows = np.flatnonzero(whole & (absolute >= 1e6) & (absolute < 1e8))  # only these can be dates
+    n = absolute[rows].astype(np.int64)
     found = np.zeros(n.size, dtype=bool)
     eight = n >= 10_000_000
     for year, month, day in (
@@ -64,13 +79,16 @@ def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
         (n % 10_000, n // 1_000_000, n // 10_000 % 100),
     ):
         found |= (year >= 1900) & (year <= 2099) & (month >= 1) & (month <= 12) & (day >= 1) & (day <= 31)
-    return found & (n > 0)
+    dates = np.zeros(numbers.size, dtype=bool)
+    dates[rows] = found
+    return dates
 
 
 def universal_hits(numbers: np.ndarray, whole: np.ndarray) -> list[tuple[np.ndarray, str]]:
     """Rows (mask, category) of the rules that hold in every column."""
+    absolute = np.abs(numbers)
     return [
-        (whole & (np.abs(numbers) >= 1e8) & (np.abs(numbers) < 1e15), "social-security, telephone or record number"),
+        (whole & (absolute >= 1e8) & (absolute < 1e15), "social-security, telephone or record number"),
         (eight_digit_dates(numbers, whole), "full date"),
     ]
 
