@@ -28,6 +28,7 @@ from regimewise.data.deidentify import (
     value_hits,
 )
 from regimewise.data.distinct import blank_text, distinct_text
+from regimewise.data.findings import long_text_findings, text_lengths
 from regimewise.data.missing import blank_mask
 from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
 
@@ -231,3 +232,21 @@ def test_text_columns_read_per_distinct_value_as_cell_by_cell(cells, dtype, colu
     assert _found(value_hits(column, values, role)) == cell_by_cell_hits(column, values, role)
     blanks = [isinstance(v, str) and v.strip() == "" for v in values.astype(object)]
     assert blank_mask(values).tolist() == blanks
+
+
+@pytest.mark.parametrize(
+    ("cells", "expected"),
+    [
+        (["ab", None, np.nan, pd.NA, "é" * 201, "€x", ""], [2, 0, 0, 0, 201, 2, 0]),  # characters, not bytes
+        (["\ud800a", "b"], [2, 1]),  # a lone surrogate: measured through pandas
+        ([1, "abc", None, [1, 2]], [1, 3, 0, 6]),  # other cells by their text: '1', '[1, 2]'
+    ],
+)
+def test_text_lengths_by_hand(cells, expected):
+    assert text_lengths(_column(cells, object)).tolist() == expected
+
+
+def test_long_text_is_found_by_characters():
+    frame = pd.DataFrame({"note": ["é" * 200, "é" * 201, None], "code": ["a", "b", "c"]})
+    found = long_text_findings("d.csv", frame)
+    assert [(f.row, f.column, f.message) for f in found] == [(2, "note", "text of 201 characters (at most 200)")]
