@@ -250,3 +250,20 @@ def test_long_text_is_found_by_characters():
     frame = pd.DataFrame({"note": ["é" * 200, "é" * 201, None], "code": ["a", "b", "c"]})
     found = long_text_findings("d.csv", frame)
     assert [(f.row, f.column, f.message) for f in found] == [(2, "note", "text of 201 characters (at most 200)")]
+
+
+NUMBER_TEXT = st.one_of(
+    st.text(alphabet=" \t+-.0123456789eEinfINFatyx_\u00a0\uff11\u0663", max_size=10),
+    st.from_regex(r"\s?[+-]?\d{0,17}(\.\d{0,3})?([eE][+-]?\d{1,3})?\s?", fullmatch=True),
+    st.integers(-(10**25), 10**25).map(str),
+    st.sampled_from(["E0000123", "P000042", "inf", "-Infinity", "nan", "1_000", "0x1A"]),
+)
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(cells=st.lists(st.one_of(NUMBER_TEXT, st.none()), min_size=1, max_size=30), dtype=st.sampled_from(TEXT_DTYPES))
+def test_numbers_parsed_per_distinct_value_match_the_whole_column(cells, dtype):
+    # Text that cannot be a number (a letter before any digit, and no infinity) is not parsed at all.
+    values = _column(cells, dtype)
+    expected = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    np.testing.assert_array_equal(whole_numbers(values, distinct_text(values))[0], expected)

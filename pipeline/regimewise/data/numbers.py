@@ -25,6 +25,8 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from regimewise.data.distinct import broadcast
 
@@ -55,13 +57,36 @@ def whole_numbers(values: pd.Series, distinct=None) -> tuple[np.ndarray, np.ndar
     elif distinct is not None:
         codes, uniques = distinct
         kind = values.dtype if isinstance(values.dtype, pd.StringDtype) else object
-        parsed = pd.to_numeric(pd.Series(uniques, dtype=kind), errors="coerce")
-        numbers = broadcast(parsed.to_numpy(dtype=float, na_value=np.nan), codes, np.nan)
+        parsed = np.full(len(uniques), np.nan)
+        could = could_be_numbers(uniques)
+        if could.any():
+            found = pd.to_numeric(pd.Series(uniques[could], dtype=kind), errors="coerce")
+            parsed[could] = found.to_numpy(dtype=float, na_value=np.nan)
+        numbers = broadcast(parsed, codes, np.nan)
     else:
         numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     with np.errstate(invalid="ignore"):
         whole = np.isfinite(numbers) & (np.floor(numbers) == numbers)
     return numbers, whole
+
+
+# pandas parses a number from text only when a digit comes before any letter (``12``, ``-1.5e3``, `` .5``) or
+# when the text spells infinity: no other text is handed to its parser (ids such as ``E0000123`` are not).
+MAYBE_NUMBER = "^[^A-Za-z]*[0-9]"
+
+
+MAYBE_INFINITY = "(?i)inf"
+
+
+def could_be_numbers(uniques: np.ndarray) -> np.ndarray:
+    """Mask of the ``str`` values pandas might parse as a number (the others are not numbers); all of them when
+    pyarrow cannot hold one (a lone surrogate)."""
+    try:
+        text = pa.array(uniques, type=pa.string())
+    except (pa.ArrowException, UnicodeError):
+        return np.ones(len(uniques), dtype=bool)
+    digits = np.asarray(pc.match_substring_regex(text, MAYBE_NUMBER), dtype=bool)
+    return digits | np.asarray(pc.match_substring_regex(text, MAYBE_INFINITY), dtype=bool)
 
 
 def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
