@@ -31,6 +31,7 @@ from regimewise.data.distinct import blank_text, distinct_text
 from regimewise.data.findings import long_text_findings, text_lengths
 from regimewise.data.missing import blank_mask
 from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
+from regimewise.data.records import _episode_ends
 
 NUMBER = "social-security, telephone or record number"
 TEXT_DTYPES = ["object", "string", "string[pyarrow]", "category"]
@@ -267,3 +268,37 @@ def test_numbers_parsed_per_distinct_value_match_the_whole_column(cells, dtype):
     values = _column(cells, dtype)
     expected = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     np.testing.assert_array_equal(whole_numbers(values, distinct_text(values))[0], expected)
+
+
+def _grouped_ends(decisions):
+    """Each episode's patient and last day as a groupby gives them (the reading before runs were used)."""
+    return decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
+
+
+@pytest.mark.parametrize(
+    "change",
+    [
+        lambda d: d,  # clean: sorted by episode and step
+        lambda d: d.iloc[::-1].reset_index(drop=True),  # reversed
+        lambda d: d.assign(patient_id=d["patient_id"].where(d.index != 0)),  # a missing patient at a run's start
+        lambda d: d.assign(day=d["day"].astype(float).where(d.index != 4)),  # a missing day
+        lambda d: d.iloc[:0],  # no decisions
+    ],
+)
+def test_episode_ends_are_those_of_grouping(change):
+    decisions = pd.DataFrame(
+        {
+            "episode_id": ["E1", "E1", "E1", "E10", "E10", "E2"],
+            "patient_id": ["P1", "P1", "P1", "P7", "P7", "P1"],
+            "day": [0, 30, 95, 3, 2, 0],  # E10's days go backwards: the last day is the largest
+        }
+    )
+    decisions = change(decisions)
+    pd.testing.assert_frame_equal(_episode_ends(decisions), _grouped_ends(decisions))
+
+
+def test_episode_ends_of_clean_decisions_by_hand():
+    decisions = pd.DataFrame({"episode_id": ["E1", "E1", "E2"], "patient_id": ["P1", "P1", "P2"], "day": [0, 90, 7]})
+    ends = _episode_ends(decisions)
+    assert ends.index.tolist() == ["E1", "E2"] and ends.index.name == "episode_id"
+    assert ends["_patient"].tolist() == ["P1", "P2"] and ends["last_day"].tolist() == [90, 7]
