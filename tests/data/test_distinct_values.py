@@ -30,7 +30,7 @@ from regimewise.data.deidentify import (
 from regimewise.data.distinct import blank_text, distinct_text
 from regimewise.data.findings import long_text_findings, text_lengths
 from regimewise.data.missing import blank_mask
-from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
+from regimewise.data.numbers import content_hits, eight_digit_dates, named_age_hits, universal_hits, whole_numbers
 from regimewise.data.records import _episode_ends
 
 NUMBER = "social-security, telephone or record number"
@@ -302,3 +302,33 @@ def test_episode_ends_of_clean_decisions_by_hand():
     ends = _episode_ends(decisions)
     assert ends.index.tolist() == ["E1", "E2"] and ends.index.name == "episode_id"
     assert ends["_patient"].tolist() == ["P1", "P2"] and ends["last_day"].tolist() == [90, 7]
+
+
+def _reads_as_date(x: float) -> bool:
+    """A whole number of seven or eight digits read as YYYYMMDD (eight only), DDMMYYYY or MMDDYYYY, written out
+    digit by digit (a seven-digit number lost the leading zero of its day or month)."""
+    if not (np.isfinite(x) and float(x).is_integer() and 1e6 <= abs(x) < 1e8):
+        return False
+    s = f"{int(abs(x)):08d}"
+    readings = [(int(s[4:]), int(s[2:4]), int(s[:2])), (int(s[4:]), int(s[:2]), int(s[2:4]))]
+    if s[0] != "0":
+        readings.append((int(s[:4]), int(s[4:6]), int(s[6:])))
+    return any(1900 <= y <= 2099 and 1 <= m <= 12 and 1 <= d <= 31 for y, m, d in readings)
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    st.lists(
+        st.one_of(
+            st.integers(-(10**9), 10**9),
+            st.integers(1_000_000, 99_999_999),
+            st.sampled_from([19540314, 14031954, 5111962, 1032000, 20991231, 21000101, 1e7 + 0.5, np.nan, np.inf]),
+        ),
+        min_size=1,
+        max_size=40,
+    )
+)
+def test_eight_digit_dates_digit_by_digit(values):
+    numbers = np.array(values, dtype=float)
+    whole = np.isfinite(numbers) & (np.floor(np.nan_to_num(numbers)) == numbers)
+    assert eight_digit_dates(numbers, whole).tolist() == [_reads_as_date(x) for x in numbers]

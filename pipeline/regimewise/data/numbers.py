@@ -89,12 +89,14 @@ def could_be_numbers(uniques: np.ndarray) -> np.ndarray:
     return digits | np.asarray(pc.match_substring_regex(text, MAYBE_INFINITY), dtype=bool)
 
 
-def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
+def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray, absolute: np.ndarray | None = None) -> np.ndarray:
     """Mask of whole numbers of eight digits that read as YYYYMMDD, DDMMYYYY or MMDDYYYY (years 1900-2099); seven
-    digits too, a DDMMYYYY or MMDDYYYY date stored as a number having lost its leading zero (1032000)."""
-    absolute = np.abs(numbers)
+    digits too, a DDMMYYYY or MMDDYYYY date stored as a number having lost its leading zero (1032000).
+    ``absolute`` is ``np.abs(numbers)`` when the caller has it."""
+    absolute = np.abs(numbers) if absolute is None else absolute
     with np.errstate(invalid="ignore"):
-        rows = np.flatnonzero(whole & (absolute >= 1e6) & (absolute < 1e8))  # only these can be dates
+        rows = np.flatnonzero((absolute >= 1e6) & (absolute < 1e8))
+    rows = rows[whole[rows]]  # only whole numbers of seven or eight digits can be dates
     n = absolute[rows].astype(np.int64)
     found = np.zeros(n.size, dtype=bool)
     eight = n >= 10_000_000
@@ -114,7 +116,7 @@ def universal_hits(numbers: np.ndarray, whole: np.ndarray) -> list[tuple[np.ndar
     absolute = np.abs(numbers)
     return [
         (whole & (absolute >= 1e8) & (absolute < 1e15), "social-security, telephone or record number"),
-        (eight_digit_dates(numbers, whole), "full date"),
+        (eight_digit_dates(numbers, whole, absolute), "full date"),
     ]
 
 
