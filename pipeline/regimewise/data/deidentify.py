@@ -49,6 +49,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from regimewise.data.distinct import broadcast, distinct_text
 from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
 from regimewise.protocol.identifiers import (
     ANY_EXACT,
@@ -205,36 +206,88 @@ def value_hits(column: str, values: pd.Series, role: str = OTHER, age: bool | No
     protocol declares (states and contract columns, read by their declared meaning) and :data:`OTHER` for the
     rest, which are also read by the content rules of :mod:`regimewise.data.numbers`. ``age`` says whether the
     column holds ages (a state declared as an age); None reads it from the column's name (:func:`is_age_column`).
+
+    A row's category is that of the first rule it breaks (number rules, then text rules). Text columns are read
+    once per distinct value (:func:`regimewise.data.distinct.distinct_text`).
     """
     if pd.api.types.is_datetime64_any_dtype(values):
         rows = np.flatnonzero(values.notna().to_numpy())
         return [IdentifierHit(column, int(r), "full date", 10) for r in rows]
-    found: dict[int, str] = {}
     age = is_age_column(column) if age is None else age
-    for mask_, category in _number_rules(column, values, role, age):
-        for r in np.flatnonzero(mask_):
-            found.setdefault(int(r), category)
-    if pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values):
-        codes, uniques = pd.factorize(values.astype(object).map(_hashable), use_na_sentinel=True)
-        text = pa.array([str(u) for u in uniques], type=pa.string())
+    text_column = pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values)
+    distinct = distinct_text(values) if text_column else None
+    categories: list[str] = []
+    first = np.full(len(values), -1, dtype=np.int64)  # per row, the index in categories of its first rule
+    for mask_, category in _number_rules(column, values, role, age, distinct):
+        _mark(first, categories, mask_, category)
+    if text_column:
+        codes, uniques = _text_codes(values, distinct)
+        text = _arrow_text(uniques, all_text=distinct is not None and uniques is distinct[1])
+        by_code = np.full(len(uniques), -1, dtype=np.int64)  # per distinct value, its category's index
         for code, category in _text_categories(uniques, text, role == ID):
-            for r in np.flatnonzero(codes == code):
-                found.setdefault(int(r), category)
-        if not found and role == OTHER:
+            if category not in categories:
+                categories.append(category)
+            by_code[code] = categories.index(category)
+        text_rows = broadcast(by_code, codes, -1)
+        unmarked = first < 0
+        first[unmarked] = text_rows[unmarked]
+        if not (first >= 0).any() and role == OTHER:
             return name_column_hits(column, codes, uniques, text)
-    return [IdentifierHit(column, r, c, len(str(values.iat[r]))) for r, c in sorted(found.items())]
+    return [
+        IdentifierHit(column, int(r), categories[first[r]], len(str(values.iat[r]))) for r in np.flatnonzero(first >= 0)
+    ]
+
+
+def _mark(first: np.ndarray, categories: list[str], mask_: np.ndarray, category: str) -> None:
+    """Give the rows of ``mask_`` that no earlier rule marked the index of ``category``."""
+    new = mask_ & (first < 0)
+    if new.any():
+        if category not in categories:
+            categories.append(category)
+        first[new] = categories.index(category)
 
 
 def _hashable(value):
     return value if isinstance(value, (str, int, float, bool)) or value is None else repr(value)
 
 
-def _number_rules(column: str, values: pd.Series, role: str, age: bool) -> list[tuple[np.ndarray, str]]:
-    numbers, whole = whole_numbers(values)
+def _text_codes(values: pd.Series, distinct) -> tuple[np.ndarray, np.ndarray]:
+    """``pandas.factorize`` of the cells as the text rules read them: each cell as itself when it is a ``str``,
+    number, bool or None, else as its ``repr`` (lists and dicts cannot be hashed; pd.NA becomes ``'<NA>'``).
+
+    For a text column (``distinct``, see :func:`regimewise.data.distinct.distinct_text`) every cell but the
+    missing ones already reads as itself: its factorization is reused, unless a missing cell is neither None
+    nor NaN (pd.NA, NaT); then only those cells are replaced by their ``repr`` before factorizing again.
+    """
+    if distinct is None:
+        return pd.factorize(values.astype(object).map(_hashable), use_na_sentinel=True)
+    codes, uniques = distinct
+    missing = np.flatnonzero(codes < 0)
+    cells = values.iloc[missing].astype(object).to_numpy()
+    odd = [i for i, cell in enumerate(cells) if not (cell is None or isinstance(cell, float))]
+    if not odd:
+        return codes, uniques
+    mapped = values.astype(object).to_numpy(copy=True)
+    mapped[missing[odd]] = [repr(cells[i]) for i in odd]
+    return pd.factorize(mapped, use_na_sentinel=True)
+
+
+def _arrow_text(uniques, all_text: bool) -> pa.Array:
+    """The distinct values as a pyarrow string array (each one's ``str``)."""
+    if all_text:
+        return pa.array(uniques, type=pa.string())
+    return pa.array([str(u) for u in uniques], type=pa.string())
+
+
+def _number_rules(column: str, values: pd.Series, role: str, age: bool, distinct=None) -> list[tuple[np.ndarray, str]]:
+    numbers, whole = whole_numbers(values, distinct)
     rules = universal_hits(numbers, whole)
     if role != ID and age:
-        grouped = values.astype("string").str.strip().eq(AGE_GROUP_LABEL).fillna(False).to_numpy(dtype=bool)
-        rules.append((named_age_hits(numbers) & ~grouped, "age over 89"))
+        named = named_age_hits(numbers)
+        if named.any():  # the '90+' label can only clear rows the age rule marks
+            grouped = values.astype("string").str.strip().eq(AGE_GROUP_LABEL).fillna(False).to_numpy(dtype=bool)
+            named &= ~grouped
+        rules.append((named, "age over 89"))
     elif role == OTHER:
         rules += content_hits(numbers, whole)
     if role == OTHER and suggests_postcode(column):
@@ -337,4 +390,6 @@ def _undeclared_levels(values: pd.Series, levels) -> pd.Series:
     codes, uniques = pd.factorize(values, use_na_sentinel=True)
     declared = np.isin(np.asarray([level_text(u) for u in uniques], dtype=object), np.asarray(list(levels), object))
     blank = np.append(declared, False)[codes]
+    if blank.all():  # the usual case: every cell a declared level (no need to copy the cells as objects)
+        return pd.Series(np.nan, index=values.index, dtype=object, name=values.name)
     return values.astype(object).mask(blank) if blank.any() else values

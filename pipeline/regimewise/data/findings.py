@@ -10,6 +10,8 @@ from typing import Annotated, Any, Literal
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, create_model
 
 from regimewise.data.deidentify import find_identifiers, is_age_column, mask, shown_value
@@ -368,7 +370,7 @@ def long_text_findings(file: str, frame: pd.DataFrame) -> list[Finding]:
         values = frame[column]
         if not pd.api.types.is_object_dtype(values):
             continue
-        lengths = values.astype("string").str.len().fillna(0).to_numpy()
+        lengths = text_lengths(values)
         for row in np.flatnonzero(lengths > MAX_TEXT_CHARS)[:MAX_FINDINGS_PER_RULE]:
             findings.append(
                 Finding(
@@ -382,3 +384,20 @@ def long_text_findings(file: str, frame: pd.DataFrame) -> list[Finding]:
                 )
             )
     return findings
+
+
+def text_lengths(values: pd.Series) -> np.ndarray:
+    """Characters in each cell of an object column as text (0 where missing).
+
+    A column of ``str`` is measured by pyarrow (code points, as ``len``); any other, or one pyarrow cannot hold
+    (a lone surrogate), through pandas' string dtype, which reads each cell's ``str``.
+    """
+    cells = values.to_numpy()
+    if pd.api.types.infer_dtype(cells, skipna=True) == "string":
+        try:
+            text = pa.array(cells, type=pa.string(), from_pandas=True)
+        except (pa.ArrowException, UnicodeError):
+            pass
+        else:
+            return pc.fill_null(pc.utf8_length(text), 0).to_numpy()
+    return values.astype("string").str.len().fillna(0).to_numpy()

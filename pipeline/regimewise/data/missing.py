@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import indicator_name
+from regimewise.data.distinct import blank_text, broadcast, distinct_text
 from regimewise.protocol.loading import ProtocolFile
 
 POLICIES = ("refuse", "drop", "carry_forward", "indicator")
@@ -36,7 +37,11 @@ def _missing_mask(values: pd.Series) -> np.ndarray:
 
 
 def blank_mask(values: pd.Series) -> np.ndarray:
-    """Cells holding only whitespace (a text column's distinct values are stripped once each)."""
+    """Cells holding only whitespace (a text column's distinct values are checked once each, all at once)."""
+    distinct = distinct_text(values)
+    if distinct is not None:
+        codes, uniques = distinct
+        return broadcast(blank_text(uniques), codes, False)
     codes, uniques = pd.factorize(values, use_na_sentinel=True)
     blank = np.array([str(u).strip() == "" for u in uniques], dtype=bool)
     return np.append(blank, False)[codes]

@@ -25,6 +25,10 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from regimewise.data.distinct import broadcast
 
 AGE_LIMIT = 89
 
@@ -41,10 +45,24 @@ AGE_LIKE_SHARE = 0.9
 SERIAL_DISTINCT_SHARE = 0.9
 
 
-def whole_numbers(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """The column as floats (NaN where not a number) and a mask of its finite whole numbers."""
+def whole_numbers(values: pd.Series, distinct=None) -> tuple[np.ndarray, np.ndarray]:
+    """The column as floats (NaN where not a number) and a mask of its finite whole numbers.
+
+    ``distinct`` is the column's :func:`regimewise.data.distinct.distinct_text` when it is a text column: the
+    text is then parsed once per distinct value (in a container of the column's own dtype, which decides how
+    pandas parses it) instead of once per row.
+    """
     if pd.api.types.is_bool_dtype(values):
         numbers = np.full(len(values), np.nan)
+    elif distinct is not None:
+        codes, uniques = distinct
+        kind = values.dtype if isinstance(values.dtype, pd.StringDtype) else object
+        parsed = np.full(len(uniques), np.nan)
+        could = could_be_numbers(uniques)
+        if could.any():
+            found = pd.to_numeric(pd.Series(uniques[could], dtype=kind), errors="coerce")
+            parsed[could] = found.to_numpy(dtype=float, na_value=np.nan)
+        numbers = broadcast(parsed, codes, np.nan)
     else:
         numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     with np.errstate(invalid="ignore"):
@@ -52,10 +70,34 @@ def whole_numbers(values: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return numbers, whole
 
 
-def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
+# pandas parses a number from text only when a digit comes before any letter (``12``, ``-1.5e3``, `` .5``) or
+# when the text spells infinity: no other text is handed to its parser (ids such as ``E0000123`` are not).
+MAYBE_NUMBER = "^[^A-Za-z]*[0-9]"
+
+
+MAYBE_INFINITY = "(?i)inf"
+
+
+def could_be_numbers(uniques: np.ndarray) -> np.ndarray:
+    """Mask of the ``str`` values pandas might parse as a number (the others are not numbers); all of them when
+    pyarrow cannot hold one (a lone surrogate)."""
+    try:
+        text = pa.array(uniques, type=pa.string())
+    except (pa.ArrowException, UnicodeError):
+        return np.ones(len(uniques), dtype=bool)
+    digits = np.asarray(pc.match_substring_regex(text, MAYBE_NUMBER), dtype=bool)
+    return digits | np.asarray(pc.match_substring_regex(text, MAYBE_INFINITY), dtype=bool)
+
+
+def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray, absolute: np.ndarray | None = None) -> np.ndarray:
     """Mask of whole numbers of eight digits that read as YYYYMMDD, DDMMYYYY or MMDDYYYY (years 1900-2099); seven
-    digits too, a DDMMYYYY or MMDDYYYY date stored as a number having lost its leading zero (1032000)."""
-    n = np.where(whole & (np.abs(numbers) >= 1e6) & (np.abs(numbers) < 1e8), np.abs(numbers), 0).astype(np.int64)
+    digits too, a DDMMYYYY or MMDDYYYY date stored as a number having lost its leading zero (1032000).
+    ``absolute`` is ``np.abs(numbers)`` when the caller has it."""
+    absolute = np.abs(numbers) if absolute is None else absolute
+    with np.errstate(invalid="ignore"):
+        rows = np.flatnonzero((absolute >= 1e6) & (absolute < 1e8))
+    rows = rows[whole[rows]]  # only whole numbers of seven or eight digits can be dates
+    n = absolute[rows].astype(np.int64)
     found = np.zeros(n.size, dtype=bool)
     eight = n >= 10_000_000
     for year, month, day in (
@@ -64,14 +106,17 @@ def eight_digit_dates(numbers: np.ndarray, whole: np.ndarray) -> np.ndarray:
         (n % 10_000, n // 1_000_000, n // 10_000 % 100),
     ):
         found |= (year >= 1900) & (year <= 2099) & (month >= 1) & (month <= 12) & (day >= 1) & (day <= 31)
-    return found & (n > 0)
+    dates = np.zeros(numbers.size, dtype=bool)
+    dates[rows] = found
+    return dates
 
 
 def universal_hits(numbers: np.ndarray, whole: np.ndarray) -> list[tuple[np.ndarray, str]]:
     """Rows (mask, category) of the rules that hold in every column."""
+    absolute = np.abs(numbers)
     return [
-        (whole & (np.abs(numbers) >= 1e8) & (np.abs(numbers) < 1e15), "social-security, telephone or record number"),
-        (eight_digit_dates(numbers, whole), "full date"),
+        (whole & (absolute >= 1e8) & (absolute < 1e15), "social-security, telephone or record number"),
+        (eight_digit_dates(numbers, whole, absolute), "full date"),
     ]
 
 

@@ -281,9 +281,25 @@ def check_episodes(
     findings = field_findings(file, frame, episode_rules(pf, frame))
     if findings:
         return findings
-    last = decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
+    last = _episode_ends(decisions)
     findings = _episode_links(file, frame, cols, last, dropped_episodes)
     return findings or _episode_consistency(file, frame, cols, last)
+
+
+def _episode_ends(decisions: pd.DataFrame) -> pd.DataFrame:
+    """Each episode's patient and last decision day, indexed by episode id in sorted order.
+
+    Clean decisions come sorted by episode and step: each episode is one run of rows, read without grouping.
+    Decisions in another order, with missing ids or with days that are not whole numbers are grouped.
+    """
+    starts, _ = episode_runs(decisions)
+    episodes = pd.Index(decisions["episode_id"].to_numpy()[starts], name="episode_id")
+    patients = decisions["patient_id"].to_numpy()[starts]
+    days = decisions["day"].to_numpy()
+    runs = starts.size and days.dtype.kind in "iu" and not pd.isna(patients).any() and not episodes.hasnans
+    if not (runs and episodes.is_unique and episodes.is_monotonic_increasing):
+        return decisions.groupby("episode_id", sort=True).agg(_patient=("patient_id", "first"), last_day=("day", "max"))
+    return pd.DataFrame({"_patient": patients, "last_day": np.maximum.reduceat(days, starts)}, index=episodes)
 
 
 def _rows_found(file, source, rows, column, values, rule, message, fix) -> list[Finding]:

@@ -280,6 +280,7 @@ def summarise(
     levels = merged_levels(frame, pf) if frame is not None else {}
     starts, lengths = episode_runs(decisions)
     known = {r.column for r in decision_rules(pf)} | {f"{s}_missing" for s in p.state_names}
+    actions = decisions["action"].value_counts()  # one pass over the labels (clean text) for all actions
     return {
         "decisions_file": pf.decisions_path.name,
         "episodes_file": None if pf.episodes_path is None else pf.episodes_path.name,
@@ -292,7 +293,7 @@ def summarise(
         "patients": int(decisions["patient_id"].nunique()),
         "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.tolist()).items())},
         "decisions_by_step": {str(k): int(v) for k, v in decisions.groupby("step").size().items()},
-        "actions": {a: int((decisions["action"] == a).sum()) for a in p.action_labels},
+        "actions": {a: int(actions.get(a, 0)) for a in p.action_labels},
         "findings_by_rule": {rule: 0 for rule in RULES_CHECKED},
         "missing_data": missing_actions or {},
         "acknowledged_columns": [a.model_dump() for a in p.data.acknowledged_columns],
