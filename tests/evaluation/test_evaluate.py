@@ -21,13 +21,16 @@ from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.evaluation.fqe import FittedQEvaluation
+from regimewise.evaluation.strategies import changed_by_row, share_changed
 from regimewise.evaluation.values import (
     LoggedDecisions,
     evaluate_all,
     minimum_reliable_ess,
 )
+from regimewise.evaluation.verdicts import unsupported_by_row, unsupported_share
 from regimewise.protocol import EvaluationSpec, load_protocol
 from regimewise.regime.learning import crossfit_folds, learn_regime
+from regimewise.regime.qmodels import target_rows
 
 ALL = ["is", "wis", "pdis", "pdwis", "dr", "wdr", "fqe"]
 
@@ -191,17 +194,24 @@ def test_strategies_are_evaluated_with_verdicts(setting):
     assert {c["regime"] for c in values["contrasts"]} >= {"learned", "partial_adoption_0.4", "override_gain_2"}
 
 
-def test_a_regimes_values_do_not_depend_on_how_many_regimes_share_its_pass(setting, monkeypatch):
-    # source: evaluate_policies solves each regime's least squares on its own (same design, same rows, same order),
-    # so the passes a large study is cut into must give exactly the numbers of one pass (identity, no tolerance)
+@pytest.fixture(scope="module")
+def with_strategies(setting):
+    """The setting with the demo protocol's strategies: decisions, usual care, protocol, the learned regime's
+    recommendations and Q-values."""
     decisions, proba, protocol, _ = setting
     demo = load_protocol(REPOSITORY / "config" / "protocol.yaml").protocol
     protocol = protocol.model_copy(update={"strategies": demo.strategies})
     learned = learn_regime(decisions, protocol)
-    recommended, q = learned.recommend(decisions, proba), learned.q_values(decisions)
+    return decisions, proba, protocol, learned.recommend(decisions, proba), learned.q_values(decisions)
+
+
+def test_a_regimes_values_do_not_depend_on_how_many_regimes_share_its_pass(with_strategies, monkeypatch):
+    # source: evaluate_policies solves each regime's least squares on its own (same design, same rows, same order),
+    # so the passes a large study is cut into must give exactly the numbers of one pass (identity, no tolerance)
+    decisions, proba, protocol, recommended, q = with_strategies
     side = {"hold_only": np.zeros(len(decisions), dtype=np.int64), "as_recommended": recommended}
     kwargs = {"learned_folds": crossfit_folds(decisions, protocol), "learned_q": q}
-    assert values_module.regimes_per_pass(len(decisions), len(protocol.actions)) > 20  # one pass here
+    assert values_module.regimes_per_pass(len(decisions)) > 20  # one pass here
     together = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
     monkeypatch.setattr(values_module, "regimes_per_pass", lambda *shape: 1)  # one regime per pass
     apart = evaluate_all(decisions, proba, recommended, protocol, side, **kwargs)
@@ -209,10 +219,33 @@ def test_a_regimes_values_do_not_depend_on_how_many_regimes_share_its_pass(setti
     assert apart == together
 
 
+def test_targets_built_by_rows_equal_the_whole_targets(with_strategies, monkeypatch):
+    # source: regime_targets' (n, K) probabilities of every regime (one-hot for the deterministic ones, each
+    # strategy built whole); the forms the evaluation keeps (action codes, a strategy built for the rows asked
+    # for) give the same numbers bit for bit, whole (filled in blocks smaller than the table), at any rows, and
+    # in the means over decisions of the shares computed a block at a time
+    decisions, proba, protocol, recommended, q = with_strategies
+    monkeypatch.setattr(values_module, "SHARE_ROWS", 1000)  # several blocks, the last one short
+    assert len(decisions) % 1000
+    whole = list(values_module.regime_targets(decisions, proba, recommended, protocol, q))
+    by_rows = list(values_module.regime_targets(decisions, proba, recommended, protocol, q, by_rows=True))
+    assert [t["name"] for t in whole] == [t["name"] for t in by_rows] and len(whole) > 10
+    rows = np.random.default_rng(4).permutation(len(decisions))[:500]
+    k = len(protocol.actions)
+    for dense, kept in zip(whole, by_rows):
+        assert np.array_equal(values_module.whole_target(kept["target"], proba), dense["target"]), dense["name"]
+        assert np.array_equal(target_rows(kept["target"], rows, k), dense["target"][rows]), dense["name"]
+        for by_row, share in (
+            (changed_by_row, share_changed),
+            (lambda t, b: unsupported_by_row(t, b, 0.05), lambda t, b: unsupported_share(t, b, 0.05)),
+        ):
+            assert values_module.row_mean(kept["target"], proba, by_row) == share(dense["target"], proba)
+
+
 def test_the_number_of_passes_stops_growing_with_the_records():
     # the rule's purpose (no outside source): each pass repeats work in proportion to n, so above the memory
     # budget the regimes per pass must stay constant, or the stage's time would grow as n squared
-    per_pass = [values_module.regimes_per_pass(n, 4, 21) for n in (12_000_000, 120_000_000, 1_200_000_000)]
+    per_pass = [values_module.regimes_per_pass(n) for n in (12_000_000, 120_000_000, 1_200_000_000)]
     assert per_pass[0] == per_pass[1] == per_pass[2] >= 3
-    assert values_module.regimes_per_pass(24_000, 4, 21) > 100  # a demo-sized study: every regime in one pass
-    assert values_module.regimes_per_pass(10**12, 50, 0) == 1  # never zero
+    assert values_module.regimes_per_pass(24_000) > 100  # a demo-sized study: every regime in one pass
+    assert values_module.regimes_per_pass(10**12) >= 1  # never zero

@@ -20,7 +20,6 @@ from regimewise.evaluation.strategies import (
     partial_adoption_proba,
     share_changed,
 )
-from regimewise.regime import qmodels
 from regimewise.regime.qmodels import evaluate_policies
 
 MDP = sm.make_mdp()
@@ -149,7 +148,8 @@ def test_saturated_fqe_is_exact_for_each_strategy():
 
 
 def test_batched_evaluation_equals_one_fitted_q_evaluation_per_regime():
-    # source: FittedQEvaluation (itself checked against exact evaluation above and scikit-learn Ridge in test_fqi.py)
+    # source: FittedQEvaluation (itself checked against exact evaluation above and scikit-learn Ridge in test_fqi.py):
+    # Q̂ of the action taken and V̂ of the regime at every decision, regime by regime
     log = sm.sample_episodes(MDP, 600, seed=12)
     X = np.hstack([log["X"], np.random.default_rng(0).standard_normal((log["X"].shape[0], 2))])
     tables = list(strategy_tables().values()) + [sm.deterministic_proba(REGIME)]
@@ -158,27 +158,49 @@ def test_batched_evaluation_equals_one_fitted_q_evaluation_per_regime():
         X, log["step"], log["action"], log["reward"], log["episode"], targets,
         horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5,
     )  # fmt: skip
-    for q, target in zip(batched, targets):
+    for (taken, value), target in zip(batched, targets):
         single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(
             X, log["step"], log["action"], log["reward"], log["episode"], target
         )
-        np.testing.assert_allclose(q, single.q_values(X, log["step"]), rtol=0, atol=1e-10)
+        expected_taken, expected_value = single.taken_and_target_values(X, log["step"], log["action"], target)
+        np.testing.assert_allclose(taken, expected_taken, rtol=0, atol=1e-10)
+        np.testing.assert_allclose(value, expected_value, rtol=0, atol=1e-10)
 
 
-def test_a_fold_given_by_its_rows_of_x_equals_the_fold_copied_out(monkeypatch):
-    # source: the same function on X[rows] copied out (the rows gathered in blocks smaller than the fold, so
-    # several blocks are joined); FittedQEvaluation, the test above's reference, on the fold's copy agrees too
-    monkeypatch.setattr(qmodels, "GATHER_ROWS", 37)
+def test_a_fold_given_by_its_rows_equals_the_fold_copied_out():
+    # source: the same function on X[rows] and the targets' rows copied out; FittedQEvaluation, the test above's
+    # reference, on the fold's copy agrees too
     log = sm.sample_episodes(MDP, 600, seed=13)
     X = np.hstack([log["X"], np.random.default_rng(1).standard_normal((log["X"].shape[0], 2))])
     fold = np.isin(log["episode"], np.flatnonzero(np.random.default_rng(2).random(600) < 0.5))
     episode = np.unique(log["episode"][fold], return_inverse=True)[1]
-    targets = [sm.rows_proba(t, log)[fold] for t in strategy_tables().values()]
+    targets = [sm.rows_proba(t, log) for t in strategy_tables().values()]
     common = dict(horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5)
-    arrays = (log["step"][fold], log["action"][fold], log["reward"][fold], episode, targets)
-    by_rows = evaluate_policies(X, *arrays, x_rows=np.flatnonzero(fold), **common)
-    copied = evaluate_policies(X[fold], *arrays, **common)
-    for q_rows, q_copy, target in zip(by_rows, copied, targets):
-        assert np.array_equal(q_rows, q_copy, equal_nan=True)
-        single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(X[fold], *arrays[:4], target)
-        np.testing.assert_allclose(q_rows, single.q_values(X[fold], arrays[0]), rtol=0, atol=1e-10)
+    arrays = (log["step"][fold], log["action"][fold], log["reward"][fold], episode)
+    by_rows = evaluate_policies(X, *arrays, targets, x_rows=np.flatnonzero(fold), **common)
+    copied = evaluate_policies(X[fold], *arrays, [t[fold] for t in targets], **common)
+    for rows_result, copy_result, target in zip(by_rows, copied, targets):
+        for got, copy in zip(rows_result, copy_result):
+            assert np.array_equal(got, copy)
+        single = FittedQEvaluation(sm.N_ACTIONS, sm.HORIZON, gamma=0.9, alpha=0.5).fit(X[fold], *arrays, target[fold])
+        expected = single.taken_and_target_values(X[fold], arrays[0], arrays[1], target[fold])
+        np.testing.assert_allclose(rows_result, expected, rtol=0, atol=1e-10)
+
+
+def test_a_deterministic_regime_given_by_its_codes_equals_its_one_hot_probabilities():
+    # source: the same function given the regime's one-hot (n, K) probabilities; both bit for bit, on all rows
+    # and on a fold's rows read in place
+    log = sm.sample_episodes(MDP, 400, seed=14)
+    codes = REGIME[log["step"], log["state"]]
+    one_hot = sm.rows_proba(sm.deterministic_proba(REGIME), log)
+    table = (log["X"], log["step"], log["action"], log["reward"], log["episode"])
+    common = dict(horizon=sm.HORIZON, n_actions=sm.N_ACTIONS, gamma=0.9, alpha=0.5)
+    by_codes = evaluate_policies(*table, [codes, one_hot], **common)
+    assert all(np.array_equal(a, b) for a, b in zip(*by_codes))
+    fold = log["episode"] % 3 == 0
+    episode = np.unique(log["episode"][fold], return_inverse=True)[1]
+    arrays = (log["step"][fold], log["action"][fold], log["reward"][fold], episode)
+    in_fold = evaluate_policies(log["X"], *arrays, [codes, one_hot], x_rows=np.flatnonzero(fold), **common)
+    assert all(np.array_equal(a, b) for a, b in zip(*in_fold))
+    (copied,) = evaluate_policies(log["X"][fold], *arrays, [one_hot[fold]], **common)
+    assert all(np.array_equal(a, b) for a, b in zip(in_fold[0], copied))

@@ -365,3 +365,19 @@ def test_regime_learns_with_shared_slopes_and_a_spline(tmp_path):
     last = frame[frame.step == 1].reset_index(drop=True)
     q1, _ = _statsmodels_q(last, last["reward"].to_numpy(), knots_from=frame)
     np.testing.assert_allclose(learned.q_values(last), q1, atol=1e-8)
+
+
+def test_features_read_by_rows_equal_the_rows_of_the_whole_matrix(tmp_path):
+    # source: QFeatures.transform of the whole frame; a block of rows (in any order, by positions, a mask or a
+    # slice) holds exactly those rows' numbers, with a categorical state, an interaction and a spline among the terms
+    protocol = _load(tmp_path, _study(horizon=2))
+    frame = _rows(150, 2).assign(patient_id=lambda f: f["episode_id"])
+    proba = np.full((len(frame), len(ACTIONS)), 1 / len(ACTIONS))
+    whole = LoggedDecisions.from_frame(frame, proba, protocol).X
+    by_rows = LoggedDecisions.from_frame(frame, proba, protocol, feature_rows=True).X
+    assert by_rows.shape == whole.shape and whole.shape[1] > 5
+    positions = np.random.default_rng(5).permutation(len(frame))[:97]
+    assert np.array_equal(by_rows[positions], whole[positions])
+    assert np.array_equal(by_rows[frame["step"].to_numpy() == 1], whole[frame["step"].to_numpy() == 1])
+    assert np.array_equal(by_rows[10:40], whole[10:40])
+    assert np.array_equal(np.asarray(by_rows), whole)

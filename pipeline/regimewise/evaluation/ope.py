@@ -389,6 +389,18 @@ def evaluate_off_policy(
     weights = importance_weights(
         step, action, reward, episode, behaviour_proba, target_proba, horizon=horizon, action_labels=action_labels
     )
+    return estimates_from_weights(weights, gamma, q_taken, v_target)
+
+
+def estimates_from_weights(weights, gamma=1.0, q_taken=None, v_target=None):
+    """Every estimator of this module on importance weights computed once (:func:`importance_weights`), so that
+    the evaluated regime's (n, K) probabilities need not be held while the estimators run.
+
+    Returns
+    -------
+    dict of str to OffPolicyEstimate
+        As :func:`evaluate_off_policy`.
+    """
     results = []
     for name, estimate in COMPUTE.items():
         if ESTIMATORS[name].family == "weights":

@@ -13,7 +13,7 @@ from regimewise.core.concurrency import run_concurrently
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.protocol.model import Protocol
-from regimewise.regime.qmodels import evaluate_policies, policy_average
+from regimewise.regime.qmodels import evaluate_policies
 
 
 def needs_outcome_model(protocol: Protocol) -> bool:
@@ -35,60 +35,61 @@ def outcome_models(logged, targets: list[dict], protocol: Protocol, learned_fold
         return [None] * len(targets)
     folded = [learned_folds is not None and (t["name"] == "learned" or "strategy" in t) for t in targets]
     out: list = [None] * len(targets)
+    first = logged.step == 0
     for group in (True, False):
         members = [i for i, f in enumerate(folded) if f == group]
         if not members:
             continue
         parts = np.unique(learned_folds) if group else [None]
-        n = len(logged.step)
-        q_taken, v_target = np.full((len(members), n), np.nan), np.full((len(members), n), np.nan)
         member_targets = [targets[i]["target"] for i in members]
-        # every record (a slice: views, not copies), or a fold's rows
+        # every record (a slice: the whole table, read in place), or a fold's rows
         fold_rows = [slice(None) if part is None else learned_folds == part for part in parts]
         fits = [functools.partial(_fold_models, logged, member_targets, protocol, rows) for rows in fold_rows]
-        for part, rows, fitted in zip(parts, fold_rows, run_concurrently(fits, threads)):
-            for j, result in enumerate(fitted):
-                if isinstance(result, UserInputError):
-                    out[members[j]] = _fold_error(result, part, parts) if part is not None else result
-                    continue
-                q_taken[j, rows], v_target[j, rows] = result
-        first = logged.step == 0
+        fitted = run_concurrently(fits, threads)  # per fold, per member: (Q̂ taken, V̂) on the fold's rows, or error
         for j, i in enumerate(members):
-            if out[i] is None:
-                out[i] = (q_taken[j], v_target[j], float(np.mean(v_target[j][first])))
+            pieces = [by_fold[j] for by_fold in fitted]
+            for by_fold in fitted:
+                by_fold[j] = None  # each member's pieces are released once joined
+            errors = [(part, p) for part, p in zip(parts, pieces) if isinstance(p, UserInputError)]
+            if errors:  # the last fold that failed names the error
+                part, err = errors[-1]
+                out[i] = _fold_error(err, part, parts) if part is not None else err
+                continue
+            q_taken, v_target = _joined(pieces, fold_rows, len(logged.step))
+            out[i] = (q_taken, v_target, float(np.mean(v_target[first])))
     return out
+
+
+def _joined(pieces: list, fold_rows: list, n: int) -> tuple:
+    """(Q̂ taken, V̂) of every record from the folds' pieces; the pieces themselves when one covers every record."""
+    if len(pieces) == 1 and isinstance(fold_rows[0], slice):
+        return pieces[0]
+    q_taken, v_target = np.full(n, np.nan), np.full(n, np.nan)
+    for (q, v), rows in zip(pieces, fold_rows):
+        q_taken[rows], v_target[rows] = q, v
+    return q_taken, v_target
 
 
 def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray | slice) -> list:
     """(Q̂ taken, V̂) on ``rows`` (a mask, or ``slice(None)`` for every record) for each target, fitted on those
-    rows only, or the error that stopped one."""
-    episode = logged.episode if isinstance(rows, slice) else np.unique(logged.episode[rows], return_inverse=True)[1]
-    fitted = evaluate_policies(
-        logged.X,  # the fold's rows are gathered into the pass's design, not copied out of X first
+    rows only, or the error that stopped one. The fold's rows of X and of the targets are read in place, a step at
+    a time (:func:`regimewise.regime.qmodels.evaluate_policies`), not copied out."""
+    whole = isinstance(rows, slice)
+    return evaluate_policies(
+        logged.X,
         logged.step[rows],
         logged.action[rows],
         logged.reward[rows],
-        episode,
-        [t[rows] for t in targets],
+        logged.episode if whole else np.unique(logged.episode[rows], return_inverse=True)[1],
+        targets,
         horizon=protocol.horizon,
         n_actions=len(protocol.actions),
         gamma=protocol.discount,
         alpha=protocol.evaluation.fqe_ridge_alpha,
         action_labels=protocol.action_labels,
         slopes=logged.slopes,
-        x_rows=None if isinstance(rows, slice) else np.flatnonzero(rows),
+        x_rows=None if whole else np.flatnonzero(rows),
     )
-    out = []
-    taken = logged.action[rows]
-    for q, t in zip(fitted, targets):
-        if isinstance(q, UserInputError):
-            out.append(q)
-            continue
-        try:
-            out.append((q[np.arange(len(taken)), taken], policy_average(q, t[rows], protocol.action_labels)))
-        except UserInputError as err:
-            out.append(err)
-    return out
 
 
 def _fold_error(err: UserInputError, part, parts) -> UserInputError:

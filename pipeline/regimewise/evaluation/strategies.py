@@ -152,8 +152,14 @@ def share_changed(target_proba, behaviour_proba) -> float:
     probability of a change when the strategy's action is drawn as close to usual care's as possible (a maximal
     coupling; for the override strategy it is exactly the probability that the clinician's action is overridden).
     """
+    return float(np.mean(changed_by_row(target_proba, behaviour_proba)))
+
+
+def changed_by_row(target_proba, behaviour_proba) -> np.ndarray:
+    """Per decision, Σ_a max(0, π_e(a|s) − p̂_b(a|s)) (the terms of :func:`share_changed`; a row's term depends on
+    that row alone)."""
     diff = np.asarray(target_proba, dtype=float) - np.asarray(behaviour_proba, dtype=float)
-    return float(np.mean(np.sum(np.clip(diff, 0.0, None), axis=1)))
+    return np.sum(np.clip(diff, 0.0, None), axis=1)
 
 
 def protocol_strategies(spec) -> list[Strategy]:

@@ -27,21 +27,49 @@ from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.fqe import FittedQEvaluation
-from regimewise.evaluation.ope import evaluate_off_policy, importance_weights
+from regimewise.evaluation.ope import estimates_from_weights, importance_weights
 from regimewise.evaluation.outcome_models import needs_outcome_model, outcome_models
-from regimewise.evaluation.strategies import protocol_strategies, share_changed, strategy_proba
-from regimewise.evaluation.verdicts import outcome_model_share, unsupported_share, verdict, worst
+from regimewise.evaluation.strategies import changed_by_row, protocol_strategies, strategy_proba
+from regimewise.evaluation.verdicts import outcome_model_share, unsupported_by_row, verdict, worst
 from regimewise.protocol.model import Protocol
 from regimewise.protocol.sections import EvaluationSpec
+from regimewise.regime.qmodels import target_rows
 
 WEIGHT_HISTOGRAM_EDGES = tuple(x / 2 for x in range(-6, 9))  # log10 of the cumulative weight, 10^-3 .. 10^4
 
 
+class FeatureRows:
+    """The Q-features of the decisions read a block of rows at a time: ``X[rows]`` transforms those rows of the
+    frame only, so the whole (n, p) matrix, the evaluation's largest array, need not be held while the outcome
+    models are fitted a step at a time (:func:`regimewise.regime.qmodels.evaluate_policies`). The features of a
+    row depend on that row alone, so the blocks hold exactly the numbers of the whole matrix. ``np.asarray`` of it
+    is the whole matrix, for code that needs it.
+    """
+
+    def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol):
+        self.features = features
+        self.frame = frame
+        # the features read the states' columns only: a block gathers those, not the ids and labels
+        self.columns = [s.name for s in protocol.states if s.name in frame.columns]
+        self.shape = (len(frame), len(features.names))
+
+    def __len__(self) -> int:
+        return self.shape[0]
+
+    def __getitem__(self, rows) -> np.ndarray:
+        # column by column, the rows first: selecting the columns of the whole frame first would copy them whole
+        return self.features.transform(pd.DataFrame({c: self.frame[c].iloc[rows] for c in self.columns}))
+
+    def __array__(self, dtype=None, copy=None) -> np.ndarray:
+        return np.asarray(self.features.transform(self.frame), dtype=dtype)
+
+
 @dataclass(frozen=True)
 class LoggedDecisions:
-    """The decision table as the arrays the estimators take (rows sorted by episode and step)."""
+    """The decision table as the arrays the estimators take (rows sorted by episode and step). ``X`` is the (n, p)
+    Q-features, or a :class:`FeatureRows` that computes the rows asked for."""
 
-    X: np.ndarray
+    X: np.ndarray | FeatureRows
     step: np.ndarray
     action: np.ndarray
     reward: np.ndarray
@@ -51,10 +79,13 @@ class LoggedDecisions:
     slopes: ActionSlopes = SEPARATE  # how the outcome models' coefficients vary with the action
 
     @classmethod
-    def from_frame(cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol) -> LoggedDecisions:
+    def from_frame(
+        cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, *, feature_rows: bool = False
+    ) -> LoggedDecisions:
+        """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame``."""
         features = QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol, frame)
         return cls(
-            X=features.transform(frame),
+            X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
             step=frame["step"].to_numpy(dtype=np.int64),
             action=action_codes(frame, protocol.action_labels),
             reward=frame["reward"].to_numpy(dtype=float),
@@ -73,27 +104,28 @@ class LoggedDecisions:
         return int(self.episode.max()) + 1
 
 
-PASS_BYTES = 512 * 2**20  # memory for the regimes of one outcome-model pass (targets, Q-values, targets of fit)
+PASS_BYTES = 64 * 2**20  # memory for the outcome models' results of one pass's regimes
+MIN_REGIMES_PER_PASS = 4  # however many decisions: the number of passes must not grow with n
 
 
-def regimes_per_pass(n_decisions: int, n_actions: int, n_features: int = 0) -> int:
-    """How many regimes one evaluation pass takes: each needs about three (n, K) float64 arrays (the target, its
-    Q-values and their backed-up values); a pass may give them :data:`PASS_BYTES` or, when more, what it holds
-    anyway for its design ([1, X] in step order and the fold's copy of X, about 2 × (p + 1) floats per
-    decision). At least one.
+def regimes_per_pass(n_decisions: int) -> int:
+    """How many regimes one evaluation pass takes. Each regime of a pass holds, from its outcome models until it
+    is scored, two float64 values per decision (Q̂ of the action taken and V̂ of the regime); its targets are
+    action codes or built for the rows asked for, and the features are read a step at a time
+    (:func:`regimewise.regime.qmodels.evaluate_policies`), so nothing else a pass holds grows with its regimes. A
+    pass may give those results :data:`PASS_BYTES`, and takes at least :data:`MIN_REGIMES_PER_PASS` regimes.
 
-    The second bound keeps the number of passes from growing with n: every pass repeats work in proportion to
-    n (the design, the sorting by step), so passes that shrank as n grew would make the stage's time grow as n².
-    Every regime of a small study shares one pass."""
-    per_regime = 3 * 8 * max(1, n_decisions) * max(1, n_actions)
-    design = 2 * 8 * max(1, n_decisions) * (n_features + 1)
-    return max(1, max(PASS_BYTES, design) // per_regime)
+    The lower bound keeps the number of passes from growing with n: every pass repeats work in proportion to n
+    (reading the features, the sorting by step, the least-squares Gram matrices), so passes that shrank as n grew
+    would make the stage's time grow as n². Every regime of a small study shares one pass."""
+    per_regime = 2 * 8 * max(1, n_decisions)
+    return max(MIN_REGIMES_PER_PASS, PASS_BYTES // per_regime)
 
 
 def _passes(regimes, logged: LoggedDecisions) -> Iterator[list]:
     """The items of ``regimes`` in lists of :func:`regimes_per_pass` for these decisions, each taken from the
     iterable only when the previous list is done with."""
-    size = regimes_per_pass(len(logged.step), logged.behaviour_proba.shape[1], logged.X.shape[1])
+    size = regimes_per_pass(len(logged.step))
     pending = iter(regimes)
     while chunk := list(itertools.islice(pending, size)):
         yield chunk
@@ -112,6 +144,8 @@ def regime_targets(
     recommended: np.ndarray | None,
     protocol: Protocol,
     learned_q: np.ndarray | None = None,
+    *,
+    by_rows: bool = False,
 ) -> Iterator[dict]:
     """Every regime to evaluate, learned first: name, label, target probabilities, and for the strategies of the
     protocol's ``strategies`` section their family, parameter and clinical words (also the survival
@@ -124,31 +158,53 @@ def regime_targets(
     first, then the named strategies.
 
     Each entry is built only when asked for, so a caller that finishes with one regime before taking the next
-    holds one (n, K) target at a time, not all of them.
+    holds one (n, K) target at a time, not all of them. With ``by_rows`` no target but usual care's is (n, K): a
+    regime that takes one action with probability 1 (the learned regime, the fixed strategies, the comparators)
+    has as target its (n,) action codes, and a strategy a function that builds its probabilities for the rows
+    asked for (:func:`regimewise.regime.qmodels.target_rows` reads all three; a strategy's probabilities of a row
+    depend on that row alone, so they are the same numbers).
     """
     labels = protocol.action_labels
     k = len(labels)
+
+    def deterministic(codes):
+        return np.asarray(codes) if by_rows else one_hot(codes, k)
+
     if recommended is not None:
-        yield {"name": "learned", "label": "Learned regime", "target": one_hot(recommended, k)}
+        yield {"name": "learned", "label": "Learned regime", "target": deterministic(recommended)}
     yield {"name": "usual_care", "label": "Usual care", "target": behaviour_proba}
     if protocol.evaluation.fixed_strategies:
         for j, a in enumerate(labels):
             yield {
                 "name": f"always_{a}",
                 "label": f"Always {a.replace('_', ' ')}",
-                "target": one_hot(np.full(len(frame), j), k),
+                "target": deterministic(np.full(len(frame), j)),
             }
     columns = _comparator_columns(frame, protocol)
     for c in protocol.comparators:
         codes = c.action_codes(columns, len(frame), labels)
-        yield {"name": c.name, "label": c.label, "target": one_hot(codes, k), "comparator": c}
+        yield {"name": c.name, "label": c.label, "target": deterministic(codes), "comparator": c}
     for s in protocol_strategies(protocol.strategies):  # built inline: no local name keeps the last one alive
         yield {
             "name": s.name,
             "label": s.label,
-            "target": strategy_proba(s, recommended, behaviour_proba, learned_q),
+            "target": _strategy_by_rows(s, recommended, behaviour_proba, learned_q)
+            if by_rows
+            else strategy_proba(s, recommended, behaviour_proba, learned_q),
             "strategy": s,
         }
+
+
+def _strategy_by_rows(s, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
+    """Strategy ``s`` as a function of rows that returns its (m, K) probabilities there. It is built on no rows
+    first, so that a strategy that cannot be built (override_gain without Q-values) stops here, as it would whole."""
+
+    def rows_proba(rows):
+        q = None if learned_q is None else learned_q[rows]
+        return strategy_proba(s, recommended[rows], behaviour_proba[rows], q)
+
+    rows_proba(slice(0, 0))
+    return rows_proba
 
 
 def _comparator_columns(frame: pd.DataFrame, protocol: Protocol) -> dict:
@@ -200,12 +256,15 @@ def evaluate_regime(
     :func:`regimewise.regime.learning.cross_fitted_recommendations`). ``fitted`` passes the outcome model's
     (Q̂ taken, V̂, fqe value) or the error that stopped it (:func:`regimewise.evaluation.outcome_models.outcome_models`).
     ``records_regime``: the regime is usual care, the one the records follow
-    (:func:`regimewise.evaluation.verdicts.verdict`).
+    (:func:`regimewise.evaluation.verdicts.verdict`). ``target``: the regime's (n, K) probabilities, its (n,)
+    action codes, or a function of the rows (:func:`regimewise.regime.qmodels.target_rows`); its (n, K)
+    probabilities are built only for the importance weights, and a block of rows at a time for its unsupported
+    share, so they are not held while the estimators run.
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
         try:
-            fitted = _fitted_q_evaluation(logged, target, protocol, folds)
+            fitted = _fitted_q_evaluation(logged, whole_target(target, logged.behaviour_proba), protocol, folds)
         except UserInputError as err:
             fitted = err
     if isinstance(fitted, UserInputError):
@@ -213,15 +272,14 @@ def evaluate_regime(
             raise fitted
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
-    results = evaluate_off_policy(
+    weights = importance_weights(  # the regime's (n, K) probabilities live for this call only
         *logged.weighting_table(),
-        target,
+        whole_target(target, logged.behaviour_proba),
         horizon=protocol.horizon,
-        gamma=protocol.discount,
-        q_taken=q_taken,
-        v_target=v_target,
         action_labels=protocol.action_labels,
     )
+    results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
+    del weights
     for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
         if e.needs_q_model:
             results.setdefault(
@@ -231,7 +289,8 @@ def evaluate_regime(
         results["PDWIS"], estimator=ESTIMATORS["fqe"].label, value=fqe_value, se=float("nan")
     )
     floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
-    share = unsupported_share(target, logged.behaviour_proba, protocol.constraints.support_threshold)
+    threshold = protocol.constraints.support_threshold
+    share = row_mean(target, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
     out = {}
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATORS[name].label].to_dict() | {"estimator": name}  # one spelling: the protocol's
@@ -265,20 +324,53 @@ def evaluate_target(
     name, strategy = t["name"], t.get("strategy")
     folds = learned_folds if name == "learned" or strategy is not None else None
     deterministic = name != "usual_care" and strategy is None
+    target = t["target"]  # as regime_targets gives it: (n, K), action codes or a function of the rows
     out = {
         "name": name,
         "label": t["label"],
         "estimates": evaluate_regime(
-            logged, t["target"], protocol, deterministic, strict, folds, fitted, records_regime=name == "usual_care"
+            logged, target, protocol, deterministic, strict, folds, fitted, records_regime=name == "usual_care"
         ),
     }
     if strategy is not None:
-        out.update(strategy.to_dict(), share_changed=share_changed(t["target"], logged.behaviour_proba))
+        out.update(strategy.to_dict(), share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
     if "comparator" in t:
         c = t["comparator"]
         out.update(comparator=True, words=c.words(protocol.states), source=c.source)
-        out.update(share_changed=share_changed(t["target"], logged.behaviour_proba))
+        out.update(share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
     return out
+
+
+SHARE_ROWS = 65_536  # rows of a regime's probabilities built at a time
+
+
+def whole_target(target, behaviour_proba: np.ndarray) -> np.ndarray:
+    """A regime's (n, K) probabilities from a target as :func:`regimewise.regime.qmodels.target_rows` reads it,
+    filled a block of :data:`SHARE_ROWS` rows at a time, so that building them takes little more memory than
+    they hold (a strategy built whole makes several (n, K) temporaries). (n, K) probabilities are returned as
+    given."""
+    if isinstance(target, np.ndarray) and target.ndim == 2:
+        return target
+    n, k = behaviour_proba.shape
+    out = np.empty((n, k))
+    for start in range(0, n, SHARE_ROWS):
+        rows = slice(start, start + SHARE_ROWS)
+        out[rows] = target_rows(target, rows, k)
+    return out
+
+
+def row_mean(target, behaviour_proba: np.ndarray, term) -> float:
+    """Mean over decisions of ``term(target rows, usual care's rows)``, a value per row that depends on that row
+    alone (:func:`regimewise.evaluation.verdicts.unsupported_by_row`,
+    :func:`regimewise.evaluation.strategies.changed_by_row`). The regime's probabilities are built a block of
+    :data:`SHARE_ROWS` rows at a time (:func:`regimewise.regime.qmodels.target_rows`) rather than whole; the mean
+    is taken over the whole column of terms, so it is the number the whole (n, K) matrix gives."""
+    n, k = behaviour_proba.shape
+    terms = np.empty(n)
+    for start in range(0, n, SHARE_ROWS):
+        rows = slice(start, start + SHARE_ROWS)
+        terms[rows] = term(target_rows(target, rows, k), behaviour_proba[rows])
+    return float(np.mean(terms))
 
 
 def usual_care_contrasts(regimes: list[dict], estimators) -> list[dict]:
@@ -423,11 +515,13 @@ def evaluate_all(
     ``threads``: the folds' outcome models, and the estimates of the regimes of a pass, are computed ``threads`` at
     a time (:func:`regimewise.core.concurrency.run_concurrently`; the same numbers with any number).
     """
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol)
+    # the outcome models read the features a step's rows at a time: X is never held whole
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
     regimes, histograms = [], None
     # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
     # (a regime's numbers do not depend on which regimes share its pass)
-    for chunk in _passes(regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q), logged):
+    targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True)
+    for chunk in _passes(targets, logged):
         models = outcome_models(logged, chunk, protocol, learned_folds, threads)
         regimes += run_concurrently(
             [
@@ -437,7 +531,7 @@ def evaluate_all(
             threads,
         )
         if chunk[0]["name"] == "learned":
-            histograms = weight_histograms(logged, chunk[0]["target"], protocol)
+            histograms = weight_histograms(logged, whole_target(chunk[0]["target"], logged.behaviour_proba), protocol)
         del chunk, models
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
@@ -463,7 +557,7 @@ def _side_by_side(
     as in :func:`evaluate_all`."""
     out = []
     for chunk in _passes(side_by_side.items(), logged):
-        targets = [{"name": name, "target": one_hot(codes, len(protocol.actions))} for name, codes in chunk]
+        targets = [{"name": name, "target": codes} for name, codes in chunk]  # one-hot only while scored
         models = outcome_models(logged, targets, protocol)
         estimates = run_concurrently(
             [

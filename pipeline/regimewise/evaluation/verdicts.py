@@ -43,9 +43,15 @@ def unsupported_share(target_proba, behaviour_proba, support_threshold: float) -
 
     For a deterministic regime this is the share of decisions whose prescribed action is below the threshold.
     """
+    return float(np.mean(unsupported_by_row(target_proba, behaviour_proba, support_threshold)))
+
+
+def unsupported_by_row(target_proba, behaviour_proba, support_threshold: float) -> np.ndarray:
+    """Per decision, the regime's probability on actions usual care takes with probability < threshold (the
+    terms of :func:`unsupported_share`; a row's term depends on that row alone)."""
     target = np.asarray(target_proba, dtype=float)
     below = np.asarray(behaviour_proba, dtype=float) < support_threshold
-    return float(np.mean(np.sum(np.where(below, target, 0.0), axis=1)))
+    return np.sum(np.where(below, target, 0.0), axis=1)
 
 
 def verdict(

@@ -167,7 +167,23 @@ def _backward_induction(
     return coef
 
 
-GATHER_ROWS = 65_536  # rows of the design gathered at a time: no temporary copy of the whole of X
+GATHER_ROWS = 32_768  # rows of X read at a time into a step's design
+
+
+def target_rows(target, rows, n_actions):
+    """A regime's probabilities (m, K) at ``rows`` (integer positions, a mask or a slice). ``target`` is the
+    regime's (n, K) probabilities; its (n,) action codes when it takes one action with probability 1 (made one-hot
+    here, for the rows asked for only); or a function of the rows that returns their probabilities (a regime
+    computed row by row, built for the rows asked for only)."""
+    if callable(target):
+        return target(rows)
+    target = np.asarray(target)
+    if target.ndim == 2:
+        return target[rows]
+    codes = target[rows]
+    out = np.zeros((codes.shape[0], n_actions))
+    out[np.arange(codes.shape[0]), codes] = 1.0
+    return out
 
 
 def evaluate_policies(
@@ -189,62 +205,74 @@ def evaluate_policies(
     """Fitted-Q evaluation of several regimes on the same decisions at once (Le, Voloshin & Yue 2019).
 
     The backward induction of :class:`regimewise.evaluation.fqe.FittedQEvaluation` run for every regime of
-    ``targets`` (a list of (n, K) probabilities) together: each step's and action's least-squares problem has the
-    same design for every regime, so it is solved once with one right-hand side per regime. Rows sorted by
-    episode then step, as everywhere. ``action_labels`` name the actions in the errors; ``slopes``
-    (:class:`regimewise.core.terms.ActionSlopes`) shares the slopes across actions in one fit per step.
-    ``x_rows`` (integer positions, optional): the rows of ``X`` that these decisions are, when ``X`` holds more
-    (a fold's decisions, without copying the fold's part of X); the other arrays hold these decisions only.
+    ``targets`` together: each step's and action's least-squares problem has the same design for every regime, so
+    it is solved once with one right-hand side per regime. A target is what :func:`target_rows` reads: a regime's
+    (n, K) probabilities, its (n,) action codes, or a function of the rows. Rows sorted by episode then step,
+    steps 0, 1, 2, ... within an episode, as everywhere. ``action_labels`` name the actions in the errors;
+    ``slopes`` (:class:`regimewise.core.terms.ActionSlopes`) shares the slopes across actions in one fit per step.
+    ``x_rows`` (integer positions, optional): the rows of ``X`` and of every target that these decisions are, when
+    those hold more (a fold's decisions, without copying the fold's part out); the other arrays hold these
+    decisions only. ``X`` is read only by ``X[positions]``, one step's rows at a time, so it may be an object
+    that computes the rows asked for (:class:`regimewise.evaluation.values.FeatureRows`).
+
+    The work goes one step at a time, from the last: that step's rows of [1, X] are gathered, the backed-up
+    targets r + γ V̂_{t+1} of its rows formed, the models fitted, and the Q-values of its rows kept only as long as
+    it takes to read off Q̂ of the action taken and V̂ = Σ_a π(a|s) Q̂(s, a). So no regime's (n, K) Q-values and no
+    copy of the whole design are ever held; the next step down reads V̂ of its next rows, the same numbers the
+    backup of :class:`regimewise.evaluation.fqe.FittedQEvaluation` computes.
 
     Returns
     -------
     list
-        Per regime, the fitted Q-values (n, K) of every action at every decision (NaN for an action without rows
-        at that step), or the :class:`UserInputError` that stopped its backup (the regime gives probability to an
-        action never seen at some step).
+        Per regime, (Q̂ of the action taken, V̂ of the regime), each (n,) in the order of the decisions, or the
+        :class:`UserInputError` that stopped it (the regime gives probability to an action never seen at some
+        step: found from the last step down, as the backup finds it).
     """
     step, action = np.asarray(step), np.asarray(action)
     next_row = next_row_index(np.asarray(episode))
     n, n_regimes = step.shape[0], len(targets)
-    # rows regrouped by step (stable: episode order kept within a step), so that each step's rows are one slice
-    # of the design, the backed-up targets and the Q-values rather than a gathered copy; the rows each least-squares
-    # fit sees, and their order, are those of the decision table
+    # rows regrouped by step (stable: episode order kept within a step); the rows each least-squares fit sees,
+    # and their order, are those of the decision table
     order = np.argsort(step, kind="stable")
     bounds = np.searchsorted(step[order], np.arange(horizon + 1))
-    position = np.empty(n, dtype=np.intp)
-    position[order] = np.arange(n)
-    X = np.asarray(X, dtype=float)
-    source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X behind each row of the design
-    design = np.empty((n, X.shape[1] + 1))  # [1, X] with the rows in step order
-    design[:, 0] = 1.0
-    for start in range(0, n, GATHER_ROWS):  # in blocks: the whole X[source] would be a second copy of the design
-        design[start : start + GATHER_ROWS, 1:] = X[source[start : start + GATHER_ROWS]]
-    action_sorted = action[order]
-    q = [np.full((n, n_actions), np.nan) for _ in range(n_regimes)]  # per regime, so each is released alone
+    X = X if hasattr(X, "shape") else np.asarray(X, dtype=float)  # an array, or rows computed when asked for
+    source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X and of the targets behind each
+    reward = np.asarray(reward, dtype=float)
+    taken = [np.full(n, np.nan) for _ in range(n_regimes)]  # per regime, in the decisions' order
+    value = [np.full(n, np.nan) for _ in range(n_regimes)]
     failed: list = [None] * n_regimes
-    target = np.repeat(np.asarray(reward, dtype=float)[order][:, None], n_regimes, axis=1)
     for t in range(horizon - 1, -1, -1):
-        rows = slice(bounds[t], bounds[t + 1])
-        later = next_row[order[rows]]
-        continues = later >= 0
-        cont, later = np.flatnonzero(continues) + bounds[t], later[continues]
-        later_sorted = position[later]
+        here = order[bounds[t] : bounds[t + 1]]  # this step's decisions
+        later = next_row[here]
+        cont = np.flatnonzero(later >= 0)
+        later = later[cont]
+        at_step = np.empty((here.size, X.shape[1] + 1))  # [1, X] of this step's rows
+        at_step[:, 0] = 1.0
+        for start in range(0, here.size, GATHER_ROWS):  # in blocks: features computed on demand stay small
+            block = source[bounds[t] + start : min(bounds[t] + start + GATHER_ROWS, bounds[t + 1])]
+            at_step[start : start + block.size, 1:] = X[block]
+        target = np.repeat(reward[here][:, None], n_regimes, axis=1)
         for r in range(n_regimes):
             if cont.size and failed[r] is None:
-                try:
-                    target[cont, r] = target[cont, r] + gamma * policy_average(
-                        q[r][later_sorted], targets[r][later], action_labels
-                    )
-                except UserInputError as err:
-                    failed[r] = err
-        at_step = design[rows]
-        coef = fit_actions(at_step, action_sorted[rows], target[rows], alpha, n_actions, slopes)
-        for a in np.flatnonzero(np.bincount(action_sorted[rows], minlength=n_actions) > 0):
-            for r in range(n_regimes):  # one regime at a time, no BLAS: the same bits whatever shares the pass
-                q[r][rows, a] = np.einsum("np,p->n", at_step, np.ascontiguousarray(coef[a][:, r]))
-    for r in range(n_regimes):  # back to the decision table's order, one regime at a time
-        q[r] = q[r][position] if failed[r] is None else failed[r]
-    return q
+                target[cont, r] = target[cont, r] + gamma * value[r][later]
+        acted = action[here]
+        coef = fit_actions(at_step, acted, target, alpha, n_actions, slopes)
+        del target
+        present = np.flatnonzero(np.bincount(acted, minlength=n_actions) > 0)
+        for r in range(n_regimes):
+            if failed[r] is not None:
+                continue
+            q = np.full((here.size, n_actions), np.nan)
+            for a in present:  # one regime at a time, no BLAS: the same bits whatever shares the pass
+                q[:, a] = np.einsum("np,p->n", at_step, np.ascontiguousarray(coef[a][:, r]))
+            taken[r][here] = q[np.arange(here.size), acted]
+            try:
+                value[r][here] = policy_average(
+                    q, target_rows(targets[r], source[bounds[t] : bounds[t + 1]], n_actions), action_labels
+                )
+            except UserInputError as err:
+                failed[r] = err
+    return [(taken[r], value[r]) if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
 def policy_average(q, proba, action_labels=None):
