@@ -105,7 +105,13 @@ class StateScaler:
         )
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        return (self.unscaled(frame) - np.asarray(self.means)) / np.asarray(self.scales)
+        """The covariate columns centred and scaled, (n, len(names)).
+
+        The same two operations on every value as ``(unscaled - means) / scales``, the division in place in the
+        centred result (the unscaled matrix may be a view of the frame's data, so it is not written)."""
+        scaled = np.subtract(self.unscaled(frame), np.asarray(self.means))
+        scaled /= np.asarray(self.scales)
+        return scaled
 
     def unscaled(self, frame: pd.DataFrame) -> np.ndarray:
         """The covariate columns before centring and scaling (states as recorded, dummies, indicators).
@@ -212,6 +218,16 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
     return tuple(used), tuple(dropped)
 
 
+def _column_major(values: np.ndarray) -> bool:
+    """Whether a matrix is stored column by column only (not also row by row, as a single row or column is)."""
+    return values.flags.f_contiguous and not values.flags.c_contiguous
+
+
+# Rows of the Q-model's covariates computed at a time (:meth:`QFeatures.transform`): 65,536 rows of 8 states and
+# their powers are a few MB of temporaries, where the whole table's would be several times the result's size.
+FEATURE_BLOCK_ROWS = 65_536
+
+
 @dataclass(frozen=True)
 class QFeatures:
     """Covariates of the Q-model: scaled states, plus powers of the continuous and integer states for a polynomial
@@ -252,12 +268,33 @@ class QFeatures:
         return [j for j, name in enumerate(self.scaler.names) if name not in replaced]
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        states = self.scaler.transform(frame)
-        powered = states[:, list(self.squared)]
-        blocks = [states[:, self._linear()]] + [powered**k for k in range(2, self.degree + 1) if self.squared]
-        if self.terms is not None:
-            blocks.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
-        return np.column_stack(blocks) if len(blocks) > 1 else blocks[0]
+        """The Q-model's covariates (n, len(names)): the scaled states, their powers, then the terms' columns.
+
+        Written into the result :data:`FEATURE_BLOCK_ROWS` rows at a time, so the scaled states and their powers
+        exist for one block only, not for the whole table: every value comes from the same operations on arrays of
+        the same memory layout as on the whole table (the terms' columns are computed on the whole table). The
+        result has the layout the columns side by side would have (``numpy.column_stack``: column-major when all
+        of them are), as matrix products downstream may round differently on another layout.
+        """
+        linear, squared = self._linear(), list(self.squared)
+        powers = list(range(2, self.degree + 1)) if squared else []
+        terms = None if self.terms is None else self.terms.transform(frame, uncentred(self.scaler, frame))
+        width = len(linear) + len(squared) * len(powers) + (0 if terms is None else terms.shape[1])
+        out = None
+        for start in range(0, max(len(frame), 1), FEATURE_BLOCK_ROWS):
+            rows = slice(start, start + FEATURE_BLOCK_ROWS)
+            states = self.scaler.transform(frame.iloc[rows])
+            scaled, powered = states[:, linear], states[:, squared]
+            if out is None:
+                parts = [scaled] + ([powered] if powers else []) + ([] if terms is None else [terms])
+                out = np.empty((len(frame), width), order="F" if all(map(_column_major, parts)) else "C")
+            out[rows, : len(linear)] = scaled
+            for i, k in enumerate(powers):
+                column = len(linear) + i * len(squared)
+                out[rows, column : column + len(squared)] = powered**k
+        if terms is not None:
+            out[:, width - terms.shape[1] :] = terms
+        return out
 
     @property
     def names(self) -> list[str]:
