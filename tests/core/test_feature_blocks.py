@@ -78,3 +78,52 @@ def test_scaled_states_equal_the_centred_and_scaled_columns():
     before = data.copy()
     scaler.transform(data)
     pd.testing.assert_frame_equal(data, before)  # the frame's own values are never written
+
+
+def whole_table_behaviour_design(design, frame):
+    """The usual-care design as computed before the blocks: every block of columns on the whole table, stacked."""
+    import patsy
+
+    keep = [j for j, name in enumerate(design.scaler.names) if name not in design._replaced()]
+    bases = [
+        patsy.build_design_matrices([info], {"x": frame[name].to_numpy(dtype=float)})[0]
+        for name, info in design.splines
+    ]
+    terms = [] if design.terms is None else [design.terms.transform(frame, uncentred(design.scaler, frame))]
+    step = [frame[["step"]].to_numpy(dtype=float) / max(design.horizon - 1, 1)] if design.include_step else []
+    blocks = [design.scaler.transform(frame)[:, keep], *map(np.asarray, bases), *terms, *step]
+    return np.column_stack(blocks)
+
+
+@pytest.mark.parametrize("kind", ["splines", "categorical", "terms", "plain"])
+@pytest.mark.parametrize("block_rows", [5, 100_000])
+def test_usual_care_design_by_blocks_equals_the_whole_table_design(monkeypatch, kind, block_rows):
+    from regimewise.usual_care.design import BehaviourDesign
+
+    monkeypatch.setattr(features_module, "FEATURE_BLOCK_ROWS", block_rows)
+    raw = protocol(kind if kind in ("categorical", "terms") else "numeric").model_dump(mode="json", by_alias=True)
+    spec = {"kind": "multinomial_logit", "include_step": kind != "plain"}
+    if kind == "splines":
+        spec.update(spline_states=["z"], spline_df=4)
+    if kind == "terms":
+        spec["terms"] = [{"interaction": ["bp", "flag"]}, {"spline": "bp", "df": 3}]
+    raw["behaviour_model"] = {**raw.get("behaviour_model", {}), **spec}
+    p = Protocol.model_validate(raw)
+    data = frame(211).assign(step=np.arange(211) % 3)
+    design = BehaviourDesign.fit(data, p)
+    new, old = design.transform(data), whole_table_behaviour_design(design, data)
+    assert new.shape == old.shape == (211, len(design.names))
+    assert new.tobytes(order="A") == old.tobytes(order="A")
+    assert (new.flags.c_contiguous, new.flags.f_contiguous) == (old.flags.c_contiguous, old.flags.f_contiguous)
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_stacked_order_is_the_layout_of_numpy_column_stack(seed):
+    rng = np.random.default_rng(seed)
+    parts = []
+    for _ in range(rng.integers(1, 5)):
+        width = int(rng.integers(1, 4))
+        parts.append(np.empty((6, width), order=rng.choice(["C", "F"])))
+    stacked = np.column_stack(parts)
+    expected = "F" if stacked.flags.f_contiguous and not stacked.flags.c_contiguous else "C"
+    assert features_module._stacked_order(parts) == expected

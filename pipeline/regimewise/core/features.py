@@ -218,14 +218,50 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
     return tuple(used), tuple(dropped)
 
 
-def _column_major(values: np.ndarray) -> bool:
-    """Whether a matrix is stored column by column only (not also row by row, as a single row or column is)."""
-    return values.flags.f_contiguous and not values.flags.c_contiguous
-
-
-# Rows of the Q-model's covariates computed at a time (:meth:`QFeatures.transform`): 65,536 rows of 8 states and
-# their powers are a few MB of temporaries, where the whole table's would be several times the result's size.
+# Rows of the scaled states computed at a time (:func:`stack_by_blocks`): 65,536 rows of 8 states and their powers
+# are a few MB of temporaries, where the whole table's would be several times the size of the result.
 FEATURE_BLOCK_ROWS = 65_536
+
+
+def stack_by_blocks(frame: pd.DataFrame, scaler: StateScaler, block, whole: list) -> np.ndarray:
+    """``numpy.column_stack([*block(scaler.transform(frame)), *whole])``, the same bits in the same memory layout,
+    with the scaled states and the columns ``block`` makes of them computed :data:`FEATURE_BLOCK_ROWS` rows at a
+    time (``block`` must work row by row, as element-wise arithmetic does), so that they exist for one block only.
+
+    ``whole`` holds columns computed on the whole table (e.g. spline bases, whose matrix products are left as
+    they were). The result is laid out as ``numpy.column_stack`` lays out these parts (:func:`_stacked_order`):
+    matrix products downstream may round differently on another layout.
+    """
+    out, n = None, len(frame)
+    for start in range(0, max(n, 1), FEATURE_BLOCK_ROWS):
+        rows = slice(start, start + FEATURE_BLOCK_ROWS)
+        parts = block(scaler.transform(frame.iloc[rows]))
+        if out is None:
+            width = sum(part.shape[1] for part in [*parts, *whole])
+            out = np.empty((n, width), order=_stacked_order([*parts, *whole]))
+        column = 0
+        for part in parts:
+            out[rows, column : column + part.shape[1]] = part
+            column += part.shape[1]
+    for part in whole:
+        out[:, column : column + part.shape[1]] = part
+        column += part.shape[1]
+    return out
+
+
+def _stacked_order(parts: list) -> str:
+    """The memory layout ("C" or "F") of ``numpy.column_stack(parts)`` for 2-D ``parts``, found by stacking 2-row
+    stand-ins of the same layouts (a part that is both row- and column-contiguous, e.g. one column, stands in as one
+    column too)."""
+
+    def stand_in(part):
+        if part.flags.c_contiguous and part.flags.f_contiguous:
+            return np.empty((2, 1))
+        by_column = part.flags.f_contiguous or (not part.flags.c_contiguous and part.strides[0] <= part.strides[1])
+        return np.empty((2, max(part.shape[1], 2)), order="F" if by_column else "C")
+
+    stacked = np.column_stack([stand_in(part) for part in parts])
+    return "F" if stacked.flags.f_contiguous and not stacked.flags.c_contiguous else "C"
 
 
 @dataclass(frozen=True)
@@ -268,33 +304,17 @@ class QFeatures:
         return [j for j, name in enumerate(self.scaler.names) if name not in replaced]
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        """The Q-model's covariates (n, len(names)): the scaled states, their powers, then the terms' columns.
-
-        Written into the result :data:`FEATURE_BLOCK_ROWS` rows at a time, so the scaled states and their powers
-        exist for one block only, not for the whole table: every value comes from the same operations on arrays of
-        the same memory layout as on the whole table (the terms' columns are computed on the whole table). The
-        result has the layout the columns side by side would have (``numpy.column_stack``: column-major when all
-        of them are), as matrix products downstream may round differently on another layout.
-        """
+        """The Q-model's covariates (n, len(names)): the scaled states, their powers, then the terms' columns
+        (:func:`stack_by_blocks`: the scaled states and their powers are computed a block of rows at a time)."""
         linear, squared = self._linear(), list(self.squared)
-        powers = list(range(2, self.degree + 1)) if squared else []
-        terms = None if self.terms is None else self.terms.transform(frame, uncentred(self.scaler, frame))
-        width = len(linear) + len(squared) * len(powers) + (0 if terms is None else terms.shape[1])
-        out = None
-        for start in range(0, max(len(frame), 1), FEATURE_BLOCK_ROWS):
-            rows = slice(start, start + FEATURE_BLOCK_ROWS)
-            states = self.scaler.transform(frame.iloc[rows])
-            scaled, powered = states[:, linear], states[:, squared]
-            if out is None:
-                parts = [scaled] + ([powered] if powers else []) + ([] if terms is None else [terms])
-                out = np.empty((len(frame), width), order="F" if all(map(_column_major, parts)) else "C")
-            out[rows, : len(linear)] = scaled
-            for i, k in enumerate(powers):
-                column = len(linear) + i * len(squared)
-                out[rows, column : column + len(squared)] = powered**k
-        if terms is not None:
-            out[:, width - terms.shape[1] :] = terms
-        return out
+        powers = range(2, self.degree + 1) if squared else range(0)
+
+        def block(states):
+            powered = states[:, squared]
+            return [states[:, linear], *(powered**k for k in powers)]
+
+        terms = [] if self.terms is None else [self.terms.transform(frame, uncentred(self.scaler, frame))]
+        return stack_by_blocks(frame, self.scaler, block, terms)
 
     @property
     def names(self) -> list[str]:
