@@ -12,7 +12,7 @@ from sklearn.tree import DecisionTreeClassifier
 
 from regimewise.errors import UserInputError
 from regimewise.protocol import StateVariable
-from regimewise.regime.readable import distill_regime, fitting_rows
+from regimewise.regime.readable import distill_regime, fitting_rows, tree_rules
 
 STATES = [
     StateVariable(name="sbp", label="SBP", kind="continuous", plausible_range=(70, 250)),
@@ -129,3 +129,28 @@ def test_summary_says_it_is_a_summary(data):
     assert "not the tree, is what was evaluated" in out["note"]
     with pytest.raises(UserInputError, match="max_depth"):
         distill_regime(frame, recommended, STATES, LABELS, max_depth=5)
+
+
+def test_rule_agreement_is_that_of_the_tree_predictions(data):
+    # each leaf's decisions and agreement against sklearn's own predict (the rules read the class off the leaves)
+    frame, recommended, _ = data
+    names = [s.name for s in STATES]
+    X = frame[names].to_numpy(dtype=float)
+    tree = DecisionTreeClassifier(max_depth=3, random_state=0).fit(X, recommended)
+    rules = tree_rules(tree, names, [s.kind == "binary" for s in STATES], LABELS, X, recommended)
+    leaf, predicted = tree.apply(X), tree.predict(X)
+    expected = sorted(
+        (int((leaf == node).sum()), float(np.mean(recommended[leaf == node] == predicted[leaf == node])))
+        for node in np.unique(leaf)
+    )
+    assert sorted((r.decisions, r.agreement) for r in rules) == expected
+    assert {r.action for r in rules} <= set(LABELS)
+
+
+def test_a_frame_of_exactly_the_states_gives_the_same_summary_as_a_wider_one(data):
+    frame, recommended, groups = data
+    names = [s.name for s in STATES]
+    exact = pd.DataFrame(frame[names].to_numpy(dtype=float), columns=names)  # as the stage's covariate frame
+    wider = exact.assign(other=1.0)
+    first = distill_regime(exact, recommended, STATES, LABELS, groups=groups).to_dict()
+    assert first == distill_regime(wider, recommended, STATES, LABELS, groups=groups).to_dict()

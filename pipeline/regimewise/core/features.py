@@ -105,7 +105,13 @@ class StateScaler:
         )
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        return (self.unscaled(frame) - np.asarray(self.means)) / np.asarray(self.scales)
+        """The covariate columns centred and scaled, (n, len(names)).
+
+        The same two operations on every value as ``(unscaled - means) / scales``, the division in place in the
+        centred result (the unscaled matrix may be a view of the frame's data, so it is not written)."""
+        scaled = np.subtract(self.unscaled(frame), np.asarray(self.means))
+        scaled /= np.asarray(self.scales)
+        return scaled
 
     def unscaled(self, frame: pd.DataFrame) -> np.ndarray:
         """The covariate columns before centring and scaling (states as recorded, dummies, indicators).
@@ -212,6 +218,52 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
     return tuple(used), tuple(dropped)
 
 
+# Rows of the scaled states computed at a time (:func:`stack_by_blocks`): 65,536 rows of 8 states and their powers
+# are a few MB of temporaries, where the whole table's would be several times the size of the result.
+FEATURE_BLOCK_ROWS = 65_536
+
+
+def stack_by_blocks(frame: pd.DataFrame, scaler: StateScaler, block, whole: list) -> np.ndarray:
+    """``numpy.column_stack([*block(scaler.transform(frame)), *whole])``, the same bits in the same memory layout,
+    with the scaled states and the columns ``block`` makes of them computed :data:`FEATURE_BLOCK_ROWS` rows at a
+    time (``block`` must work row by row, as element-wise arithmetic does), so that they exist for one block only.
+
+    ``whole`` holds columns computed on the whole table (e.g. spline bases, whose matrix products are left as
+    they were). The result is laid out as ``numpy.column_stack`` lays out these parts (:func:`_stacked_order`):
+    matrix products downstream may round differently on another layout.
+    """
+    out, n = None, len(frame)
+    for start in range(0, max(n, 1), FEATURE_BLOCK_ROWS):
+        rows = slice(start, start + FEATURE_BLOCK_ROWS)
+        parts = block(scaler.transform(frame.iloc[rows]))
+        if out is None:
+            width = sum(part.shape[1] for part in [*parts, *whole])
+            out = np.empty((n, width), order=_stacked_order([*parts, *whole]))
+        column = 0
+        for part in parts:
+            out[rows, column : column + part.shape[1]] = part
+            column += part.shape[1]
+    for part in whole:
+        out[:, column : column + part.shape[1]] = part
+        column += part.shape[1]
+    return out
+
+
+def _stacked_order(parts: list) -> str:
+    """The memory layout ("C" or "F") of ``numpy.column_stack(parts)`` for 2-D ``parts``, found by stacking 2-row
+    stand-ins of the same layouts (a part that is both row- and column-contiguous, e.g. one column, stands in as one
+    column too)."""
+
+    def stand_in(part):
+        if part.flags.c_contiguous and part.flags.f_contiguous:
+            return np.empty((2, 1))
+        by_column = part.flags.f_contiguous or (not part.flags.c_contiguous and part.strides[0] <= part.strides[1])
+        return np.empty((2, max(part.shape[1], 2)), order="F" if by_column else "C")
+
+    stacked = np.column_stack([stand_in(part) for part in parts])
+    return "F" if stacked.flags.f_contiguous and not stacked.flags.c_contiguous else "C"
+
+
 @dataclass(frozen=True)
 class QFeatures:
     """Covariates of the Q-model: scaled states, plus powers of the continuous and integer states for a polynomial
@@ -252,12 +304,17 @@ class QFeatures:
         return [j for j, name in enumerate(self.scaler.names) if name not in replaced]
 
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
-        states = self.scaler.transform(frame)
-        powered = states[:, list(self.squared)]
-        blocks = [states[:, self._linear()]] + [powered**k for k in range(2, self.degree + 1) if self.squared]
-        if self.terms is not None:
-            blocks.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
-        return np.column_stack(blocks) if len(blocks) > 1 else blocks[0]
+        """The Q-model's covariates (n, len(names)): the scaled states, their powers, then the terms' columns
+        (:func:`stack_by_blocks`: the scaled states and their powers are computed a block of rows at a time)."""
+        linear, squared = self._linear(), list(self.squared)
+        powers = range(2, self.degree + 1) if squared else range(0)
+
+        def block(states):
+            powered = states[:, squared]
+            return [states[:, linear], *(powered**k for k in powers)]
+
+        terms = [] if self.terms is None else [self.terms.transform(frame, uncentred(self.scaler, frame))]
+        return stack_by_blocks(frame, self.scaler, block, terms)
 
     @property
     def names(self) -> list[str]:

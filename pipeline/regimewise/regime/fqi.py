@@ -347,6 +347,9 @@ class FittedQIteration(BackwardQModel):
         self.record_choice_ = choice
         self.n_changed_by_support_ = int(np.sum(choice != unconstrained))
         self.n_without_permitted_action_ = int(np.sum(none_permitted))
+        # the folds and resamples (one entry per decision and per patient) serve the fits only: not kept with the
+        # fitted models, which a stage holds for several regimes at once
+        del self._folds, self._resamples
         return self
 
     def _check_rules(self, rule_permitted, n_rows):

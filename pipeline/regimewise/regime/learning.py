@@ -45,16 +45,22 @@ class LearnedRegime:
     action_labels: tuple[str, ...]
     rules: ClinicalRuleSet | None = None
 
-    def q_values(self, frame: pd.DataFrame) -> np.ndarray:
-        return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
+    def q_values(self, frame: pd.DataFrame, *, X: np.ndarray | None = None) -> np.ndarray:
+        """Fitted Q-values (n, K); ``X`` is ``self.q_features.transform(frame)`` when the caller has it already."""
+        X = self.q_features.transform(frame) if X is None else X
+        return self.fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
 
-    def recommend(self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None) -> np.ndarray:
-        """Recommended action codes; usual-care probabilities are estimated unless given."""
+    def recommend(
+        self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None, *, X: np.ndarray | None = None
+    ) -> np.ndarray:
+        """Recommended action codes; usual-care probabilities are estimated unless given, and so are the Q-features
+        ``X`` (``self.q_features.transform(frame)``)."""
         if behaviour_proba is None:
             behaviour_proba = self.usual_care.predict_proba(frame)
         steps = frame["step"].to_numpy(dtype=np.int64)
         permitted = None if self.rules is None else self.rules.permitted(frame)
-        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba, permitted)
+        X = self.q_features.transform(frame) if X is None else X
+        return self.fqi.recommend(X, steps, behaviour_proba, permitted)
 
     def __call__(self, frame: pd.DataFrame) -> np.ndarray:
         return self.recommend(frame)
@@ -133,16 +139,27 @@ def variant_tasks(
     Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
     protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
     ``features.transform(decisions)``, built here once for all of them when not given; the fits only read it.
+    Each callable lets go of ``X`` when it has run, so once every one has run the caller's ``del X`` frees it (the
+    regime stage's summaries need memory of their own); a callable run a second time builds ``X`` again.
     """
     names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
     X = features.transform(decisions) if X is None else X
 
-    def task(name):
-        return lambda: fit_q_learning(
-            decisions, behaviour_proba, protocol, features, safeguards=name, oof_error=name == names[-1], X=X
-        )
+    def task(name, held):
+        def fit():
+            return fit_q_learning(
+                decisions,
+                behaviour_proba,
+                protocol,
+                features,
+                safeguards=name,
+                oof_error=name == names[-1],
+                X=held.pop() if held else None,  # each callable's own list: no other thread touches it
+            )
 
-    return {name: task(name) for name in names}
+        return fit
+
+    return {name: task(name, [X]) for name in names}
 
 
 def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
@@ -224,7 +241,11 @@ def cross_fit_tasks(
             held_out = folds == fold
             learned = fold_regime(decisions, protocol, folds, fold)
             rows = decisions.loc[held_out].reset_index(drop=True)
-            return held_out, learned.recommend(rows), learned.q_values(rows)
+            # usual care's probabilities first (their design is released before the Q-features are built), then the
+            # Q-features once for the recommendations and the Q-values: what recommend and q_values compute alone
+            proba = learned.usual_care.predict_proba(rows)
+            X = learned.q_features.transform(rows)
+            return held_out, learned.recommend(rows, proba, X=X), learned.q_values(rows, X=X)
 
         return learn_and_score
 

@@ -85,7 +85,8 @@ class PessimisticEnsemble:
     ----------
     make_model : callable returning an unfitted action model (``fit(X, action, y, weight)``, ``predict(X)``)
     resamples : PatientResamples
-        Bootstrap resamples of the patients of the whole decision table (:func:`patient_resamples`).
+        Bootstrap resamples of the patients of the whole decision table (:func:`patient_resamples`); let go of
+        (set to None) by :meth:`fit` once it has taken its rows' weights.
     k : float
         Pessimism multiplier (>= 0).
     """
@@ -102,6 +103,7 @@ class PessimisticEnsemble:
         building it once per fit.
         """
         model, weights = self.make_model(), self.resamples.rows(rows)
+        self.resamples = None  # the weights are taken: the fitted ensemble does not keep the table's resamples alive
         if hasattr(model, "fit_design"):
             design = np.hstack([np.ones((X.shape[0], 1)), X])
             self.full_ = model.fit_design(design, action, y, None)

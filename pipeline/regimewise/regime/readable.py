@@ -131,7 +131,9 @@ def tree_rules(tree, state_names, binary, action_labels, X, target) -> tuple[Tre
     thresholds merged into one condition per state (:func:`_conditions`)."""
     t = tree.tree_
     leaf_of = tree.apply(X)
-    predicted = tree.predict(X)
+    # what tree.predict(X) returns (the class of the largest value at each row's leaf), read off the leaves found
+    # above instead of running the rows down the tree again with (n, classes) probabilities
+    predicted = tree.classes_.take(np.argmax(t.value[:, 0, :], axis=1))[leaf_of]
     values = np.asarray(X, dtype=float)
     integer = [bool(np.all(values[:, j] == np.round(values[:, j]))) for j in range(values.shape[1])]
     rules = []
@@ -240,7 +242,9 @@ def distill_regime(
         raise UserInputError(f"max_depth must be 1, 2 or 3 for a readable tree, got {max_depth!r}.")
     names = [s.name for s in states]
     binary = [s.kind == "binary" for s in states]
-    X = frame[names].to_numpy(dtype=float)
+    # the frame's own values when it holds exactly these columns (the regime stage's covariate frame): the same
+    # numbers and layout as the copy frame[names] would give, without a second copy of the states
+    X = (frame if list(frame.columns) == names else frame[names]).to_numpy(dtype=float)
     recommended = np.asarray(recommended, dtype=np.int64)
     make = lambda: DecisionTreeClassifier(max_depth=max_depth, random_state=random_state)  # noqa: E731
     fit = fitting_rows(len(recommended), groups, max_rows, subset_seed)

@@ -9,7 +9,7 @@ from dataclasses import dataclass
 import numpy as np
 import patsy
 
-from regimewise.core.features import StateScaler
+from regimewise.core.features import StateScaler, stack_by_blocks
 from regimewise.core.terms import TermColumns, spline_basis, uncentred
 
 
@@ -51,18 +51,18 @@ class BehaviourDesign:
         return {name for name, _ in self.splines} | set(self.terms.spline_states if self.terms else ())
 
     def transform(self, frame):
-        """Design matrix (n, len(names))."""
+        """Design matrix (n, len(names)): the scaled states a block of rows at a time, the other columns on the whole
+        table (:func:`regimewise.core.features.stack_by_blocks`)."""
         replaced = self._replaced()
-        scaled = self.scaler.transform(frame)
         linear = [j for j, name in enumerate(self.scaler.names) if name not in replaced]
-        blocks = [scaled[:, linear]]
+        whole = []
         for name, info in self.splines:
-            blocks.append(np.asarray(patsy.build_design_matrices([info], {"x": frame[name].to_numpy(dtype=float)})[0]))
+            whole.append(np.asarray(patsy.build_design_matrices([info], {"x": frame[name].to_numpy(dtype=float)})[0]))
         if self.terms is not None:
-            blocks.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
+            whole.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
         if self.include_step:
-            blocks.append((frame["step"].to_numpy(dtype=float) / max(self.horizon - 1, 1))[:, None])
-        return np.column_stack(blocks)
+            whole.append((frame["step"].to_numpy(dtype=float) / max(self.horizon - 1, 1))[:, None])
+        return stack_by_blocks(frame, self.scaler, lambda scaled: [scaled[:, linear]], whole)
 
     @property
     def names(self):
