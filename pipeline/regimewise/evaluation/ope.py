@@ -181,10 +181,11 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     ratio[episode, step] = taken_e / taken_b
     followed = np.ones(shape, dtype=bool)
     followed[episode, step] = taken_e >= 1 - _FOLLOW_TOLERANCE
+    del rows, taken_b, taken_e  # released before the grids are built
     grid_reward = np.zeros(shape)
     grid_reward[episode, step] = reward
     return ImportanceWeights(
-        cumulative=np.cumprod(ratio, axis=1),
+        cumulative=np.cumprod(ratio, axis=1, out=ratio),
         reward=grid_reward,
         row_episode=episode,
         row_step=step,
@@ -309,9 +310,17 @@ def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
     q, v = check_finite(q_taken, "q_taken", 1), check_finite(v_target, "v_target", 1)
     if not q.shape[0] == v.shape[0] == n_rows:
         raise UserInputError(f"q_taken and v_target need one value per decision ({n_rows}); pass them from fqi.")
-    q, v = weights.to_grid(q), weights.to_grid(v)
     previous = np.hstack([np.full((normalised.shape[0], 1), 1.0 / normalised.shape[0]), normalised[:, :-1]])
-    terms = normalised * weights.reward - (normalised * q - previous * v)
+    # normalised · r − (normalised · Q̂ − previous · V̂), each product formed in place in its own grid: the same
+    # operations on the same numbers (a product does not depend on the order of its factors), fewer (E, H) grids
+    model = weights.to_grid(q)
+    model *= normalised
+    carried = weights.to_grid(v)
+    carried *= previous
+    model -= carried
+    del carried, previous
+    terms = normalised * weights.reward
+    terms -= model
     return terms @ _discounts(terms.shape[1], gamma)
 
 

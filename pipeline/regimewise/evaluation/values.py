@@ -167,8 +167,8 @@ def regime_targets(
     labels = protocol.action_labels
     k = len(labels)
 
-    def deterministic(codes):
-        return np.asarray(codes) if by_rows else one_hot(codes, k)
+    def deterministic(codes):  # by rows: the codes in the smallest integer type that holds them
+        return np.asarray(codes).astype(np.min_scalar_type(max(k - 1, 0)), copy=False) if by_rows else one_hot(codes, k)
 
     if recommended is not None:
         yield {"name": "learned", "label": "Learned regime", "target": deterministic(recommended)}
