@@ -14,6 +14,7 @@ import pytest
 from scipy import stats
 from support import small_mdp as sm
 
+from regimewise.core.arrays import check_layout
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.evaluation.ope import (
     evaluate_off_policy,
@@ -312,3 +313,19 @@ def test_complete_overlap_is_silent(log):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         per_decision_is(weights_for(log, random_policy_rows(log, seed=3)))
+
+
+def test_a_layout_checked_once_gives_the_same_weights(log):
+    # source: the same function checking the layout itself; a table checked once by check_layout (as
+    # LoggedDecisions.from_frame does for all regimes) and passed with layout_checked gives identical weights
+    target = sm.rows_proba(sm.deterministic_proba(np.zeros((sm.HORIZON, sm.N_STATES), dtype=int)), log)
+    target = 0.5 * target + 0.5 * log["behaviour_proba"]
+    table = (log["step"], log["action"], log["reward"], log["episode"])
+    checked = check_layout(log["step"], log["action"], log["episode"], sm.HORIZON, sm.N_ACTIONS)
+    common = dict(horizon=sm.HORIZON)
+    again = importance_weights(*table, log["behaviour_proba"], target, **common)
+    once = importance_weights(
+        checked[0], checked[1], log["reward"], checked[2], log["behaviour_proba"], target, layout_checked=True, **common
+    )
+    assert np.array_equal(once.cumulative, again.cumulative) and np.array_equal(once.reward, again.reward)
+    assert once.n_following == again.n_following and (once.cumulative != 1).any()

@@ -135,7 +135,9 @@ class ImportanceWeights:
         return grid
 
 
-def importance_weights(step, action, reward, episode, behaviour_proba, target_proba, *, horizon, action_labels=None):
+def importance_weights(
+    step, action, reward, episode, behaviour_proba, target_proba, *, horizon, action_labels=None, layout_checked=False
+):
     """Compute the importance weights every estimator of this module shares.
 
     Parameters
@@ -150,6 +152,10 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
         Number of decision steps H.
     action_labels : sequence of str, optional
         The protocol's label of each action code, used to name actions in errors.
+    layout_checked : bool, default False
+        step, action and episode are what :func:`regimewise.core.arrays.check_layout` returned for them (as a
+        caller that weights many regimes on one table checks it once): used as they are, not checked and copied
+        again for every regime.
 
     Returns
     -------
@@ -166,7 +172,8 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     if behaviour_proba.ndim != 2:
         raise UserInputError(f"behaviour_proba must be (n, K), got shape {behaviour_proba.shape}.")
     n_actions = behaviour_proba.shape[1]
-    step, action, episode = check_layout(step, action, episode, horizon, n_actions)
+    if not layout_checked:
+        step, action, episode = check_layout(step, action, episode, horizon, n_actions)
     n = step.shape[0]
     reward = check_finite(reward, "reward", 1)
     if reward.shape[0] != n:
