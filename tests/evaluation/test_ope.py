@@ -16,6 +16,7 @@ from support import small_mdp as sm
 
 from regimewise.core.arrays import check_layout
 from regimewise.errors import StatisticalWarning, UserInputError
+from regimewise.evaluation import ope
 from regimewise.evaluation.ope import (
     evaluate_off_policy,
     importance_weights,
@@ -329,3 +330,22 @@ def test_a_layout_checked_once_gives_the_same_weights(log):
     )
     assert np.array_equal(once.cumulative, again.cumulative) and np.array_equal(once.reward, again.reward)
     assert once.n_following == again.n_following and (once.cumulative != 1).any()
+
+
+def test_weights_read_in_blocks_name_the_same_row_and_count_every_block(monkeypatch):
+    # source: the hand-worked example read whole; in blocks of 2 rows the weights are identical, the refused row
+    # is the table's row 3 (the second block's second row) and the warning counts the decisions of every block
+    whole = importance_weights(**HAND, horizon=2)
+    monkeypatch.setattr(ope, "WEIGHT_ROWS", 2)
+    blocks = importance_weights(**HAND, horizon=2)
+    assert np.array_equal(blocks.cumulative, whole.cumulative) and blocks.n_following == whole.n_following
+    behaviour = HAND["behaviour_proba"].copy()
+    behaviour[3] = [1.0, 0.0]
+    with pytest.raises(UserInputError, match="row 3: usual care's probability"):
+        importance_weights(**{**HAND, "behaviour_proba": behaviour}, horizon=2)
+    behaviour = HAND["behaviour_proba"].copy()
+    behaviour[[0, 2, 4]] = [1.0, 0.0]  # usual care never takes action 1 at rows 0, 2 and 4 (three blocks)
+    target = HAND["target_proba"].copy()
+    target[[0, 2, 4]] = [0.5, 0.5]
+    with pytest.warns(StatisticalWarning, match="at 3 decisions"):
+        importance_weights(**{**HAND, "behaviour_proba": behaviour, "target_proba": target}, horizon=2)

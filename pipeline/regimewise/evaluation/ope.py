@@ -180,15 +180,25 @@ def importance_weights(
         raise UserInputError(f"reward has {reward.shape[0]} values for {n} decisions; pass one per decision.")
     behaviour_proba = check_proba(behaviour_proba, n, n_actions, "behaviour_proba")
     target_proba = check_proba(target_proba, n, n_actions, "target_proba")
-    rows = np.arange(n)
-    taken_b, taken_e = behaviour_proba[rows, action], target_proba[rows, action]
-    _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels)
     shape = (episode[-1] + 1, horizon)
     ratio = np.ones(shape)
-    ratio[episode, step] = taken_e / taken_b
     followed = np.ones(shape, dtype=bool)
-    followed[episode, step] = taken_e >= 1 - _FOLLOW_TOLERANCE
-    del rows, taken_b, taken_e  # released before the grids are built
+    unseen = 0
+    for start in range(0, n, WEIGHT_ROWS):  # a block of rows at a time: no n-sized temporaries per regime
+        rows = np.arange(start, min(start + WEIGHT_ROWS, n))
+        taken_b, taken_e = behaviour_proba[rows, action[rows]], target_proba[rows, action[rows]]
+        unseen += _check_positivity(
+            taken_b, action[rows], behaviour_proba[rows], target_proba[rows], action_labels, first_row=start
+        )
+        ratio[episode[rows], step[rows]] = taken_e / taken_b
+        followed[episode[rows], step[rows]] = taken_e >= 1 - _FOLLOW_TOLERANCE
+    if unseen:
+        warnings.warn(
+            f"at {unseen} decisions the evaluated regime gives probability to an action usual care never takes; "
+            "importance sampling cannot see those actions and its estimate is biased.",
+            StatisticalWarning,
+            stacklevel=2,
+        )
     grid_reward = np.zeros(shape)
     grid_reward[episode, step] = reward
     return ImportanceWeights(
@@ -200,23 +210,20 @@ def importance_weights(
     )
 
 
-def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels):
-    """Refuse a taken action usual care could not take; warn where the regime leaves usual care's support."""
+WEIGHT_ROWS = 65_536  # decisions whose taken probabilities are read at a time
+
+
+def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels, first_row=0):
+    """Refuse a taken action usual care could not take; return how many decisions (of these rows, the table's
+    from ``first_row``) the regime gives probability to an action usual care never takes (warned about once)."""
     bad = np.flatnonzero(taken_b <= 0)
     if bad.size:
         raise UserInputError(
-            f"row {bad[0]}: usual care's probability of the taken {action_name(action[bad[0]], action_labels)} is "
-            "0, so its importance weight is undefined; fix the usual-care model (e.g. bound probabilities away "
-            "from 0)."
+            f"row {first_row + bad[0]}: usual care's probability of the taken "
+            f"{action_name(action[bad[0]], action_labels)} is 0, so its importance weight is undefined; fix the "
+            "usual-care model (e.g. bound probabilities away from 0)."
         )
-    unseen = int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
-    if unseen:
-        warnings.warn(
-            f"at {unseen} decisions the evaluated regime gives probability to an action usual care never takes; "
-            "importance sampling cannot see those actions and its estimate is biased.",
-            StatisticalWarning,
-            stacklevel=3,
-        )
+    return int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
 
 
 def _kish(w):
