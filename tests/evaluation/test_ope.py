@@ -14,7 +14,9 @@ import pytest
 from scipy import stats
 from support import small_mdp as sm
 
+from regimewise.core.arrays import check_layout
 from regimewise.errors import StatisticalWarning, UserInputError
+from regimewise.evaluation import ope
 from regimewise.evaluation.ope import (
     evaluate_off_policy,
     importance_weights,
@@ -312,3 +314,38 @@ def test_complete_overlap_is_silent(log):
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         per_decision_is(weights_for(log, random_policy_rows(log, seed=3)))
+
+
+def test_a_layout_checked_once_gives_the_same_weights(log):
+    # source: the same function checking the layout itself; a table checked once by check_layout (as
+    # LoggedDecisions.from_frame does for all regimes) and passed with layout_checked gives identical weights
+    target = sm.rows_proba(sm.deterministic_proba(np.zeros((sm.HORIZON, sm.N_STATES), dtype=int)), log)
+    target = 0.5 * target + 0.5 * log["behaviour_proba"]
+    table = (log["step"], log["action"], log["reward"], log["episode"])
+    checked = check_layout(log["step"], log["action"], log["episode"], sm.HORIZON, sm.N_ACTIONS)
+    common = dict(horizon=sm.HORIZON)
+    again = importance_weights(*table, log["behaviour_proba"], target, **common)
+    once = importance_weights(
+        checked[0], checked[1], log["reward"], checked[2], log["behaviour_proba"], target, layout_checked=True, **common
+    )
+    assert np.array_equal(once.cumulative, again.cumulative) and np.array_equal(once.reward, again.reward)
+    assert once.n_following == again.n_following and (once.cumulative != 1).any()
+
+
+def test_weights_read_in_blocks_name_the_same_row_and_count_every_block(monkeypatch):
+    # source: the hand-worked example read whole; in blocks of 2 rows the weights are identical, the refused row
+    # is the table's row 3 (the second block's second row) and the warning counts the decisions of every block
+    whole = importance_weights(**HAND, horizon=2)
+    monkeypatch.setattr(ope, "WEIGHT_ROWS", 2)
+    blocks = importance_weights(**HAND, horizon=2)
+    assert np.array_equal(blocks.cumulative, whole.cumulative) and blocks.n_following == whole.n_following
+    behaviour = HAND["behaviour_proba"].copy()
+    behaviour[3] = [1.0, 0.0]
+    with pytest.raises(UserInputError, match="row 3: usual care's probability"):
+        importance_weights(**{**HAND, "behaviour_proba": behaviour}, horizon=2)
+    behaviour = HAND["behaviour_proba"].copy()
+    behaviour[[0, 2, 4]] = [1.0, 0.0]  # usual care never takes action 1 at rows 0, 2 and 4 (three blocks)
+    target = HAND["target_proba"].copy()
+    target[[0, 2, 4]] = [0.5, 0.5]
+    with pytest.warns(StatisticalWarning, match="at 3 decisions"):
+        importance_weights(**{**HAND, "behaviour_proba": behaviour, "target_proba": target}, horizon=2)

@@ -217,13 +217,14 @@ def value_hits(column: str, values: pd.Series, role: str = OTHER, age: bool | No
     text_column = pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values)
     distinct = distinct_text(values) if text_column else None
     categories: list[str] = []
-    first = np.full(len(values), -1, dtype=np.int64)  # per row, the index in categories of its first rule
+    # per row, the index in categories of the first rule it breaks (-1: none); there are a few dozen categories
+    first = np.full(len(values), -1, dtype=np.int8)
     for mask_, category in _number_rules(column, values, role, age, distinct):
         _mark(first, categories, mask_, category)
     if text_column:
         codes, uniques = _text_codes(values, distinct)
         text = _arrow_text(uniques, all_text=distinct is not None and uniques is distinct[1])
-        by_code = np.full(len(uniques), -1, dtype=np.int64)  # per distinct value, its category's index
+        by_code = np.full(len(uniques), -1, dtype=np.int8)  # per distinct value, its category's index
         for code, category in _text_categories(uniques, text, role == ID):
             if category not in categories:
                 categories.append(category)

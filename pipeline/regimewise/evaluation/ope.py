@@ -135,7 +135,9 @@ class ImportanceWeights:
         return grid
 
 
-def importance_weights(step, action, reward, episode, behaviour_proba, target_proba, *, horizon, action_labels=None):
+def importance_weights(
+    step, action, reward, episode, behaviour_proba, target_proba, *, horizon, action_labels=None, layout_checked=False
+):
     """Compute the importance weights every estimator of this module shares.
 
     Parameters
@@ -150,6 +152,10 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
         Number of decision steps H.
     action_labels : sequence of str, optional
         The protocol's label of each action code, used to name actions in errors.
+    layout_checked : bool, default False
+        step, action and episode are what :func:`regimewise.core.arrays.check_layout` returned for them (as a
+        caller that weights many regimes on one table checks it once): used as they are, not checked and copied
+        again for every regime.
 
     Returns
     -------
@@ -166,25 +172,37 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     if behaviour_proba.ndim != 2:
         raise UserInputError(f"behaviour_proba must be (n, K), got shape {behaviour_proba.shape}.")
     n_actions = behaviour_proba.shape[1]
-    step, action, episode = check_layout(step, action, episode, horizon, n_actions)
+    if not layout_checked:
+        step, action, episode = check_layout(step, action, episode, horizon, n_actions)
     n = step.shape[0]
     reward = check_finite(reward, "reward", 1)
     if reward.shape[0] != n:
         raise UserInputError(f"reward has {reward.shape[0]} values for {n} decisions; pass one per decision.")
     behaviour_proba = check_proba(behaviour_proba, n, n_actions, "behaviour_proba")
     target_proba = check_proba(target_proba, n, n_actions, "target_proba")
-    rows = np.arange(n)
-    taken_b, taken_e = behaviour_proba[rows, action], target_proba[rows, action]
-    _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels)
     shape = (episode[-1] + 1, horizon)
     ratio = np.ones(shape)
-    ratio[episode, step] = taken_e / taken_b
     followed = np.ones(shape, dtype=bool)
-    followed[episode, step] = taken_e >= 1 - _FOLLOW_TOLERANCE
+    unseen = 0
+    for start in range(0, n, WEIGHT_ROWS):  # a block of rows at a time: no n-sized temporaries per regime
+        rows = np.arange(start, min(start + WEIGHT_ROWS, n))
+        taken_b, taken_e = behaviour_proba[rows, action[rows]], target_proba[rows, action[rows]]
+        unseen += _check_positivity(
+            taken_b, action[rows], behaviour_proba[rows], target_proba[rows], action_labels, first_row=start
+        )
+        ratio[episode[rows], step[rows]] = taken_e / taken_b
+        followed[episode[rows], step[rows]] = taken_e >= 1 - _FOLLOW_TOLERANCE
+    if unseen:
+        warnings.warn(
+            f"at {unseen} decisions the evaluated regime gives probability to an action usual care never takes; "
+            "importance sampling cannot see those actions and its estimate is biased.",
+            StatisticalWarning,
+            stacklevel=2,
+        )
     grid_reward = np.zeros(shape)
     grid_reward[episode, step] = reward
     return ImportanceWeights(
-        cumulative=np.cumprod(ratio, axis=1),
+        cumulative=np.cumprod(ratio, axis=1, out=ratio),
         reward=grid_reward,
         row_episode=episode,
         row_step=step,
@@ -192,23 +210,20 @@ def importance_weights(step, action, reward, episode, behaviour_proba, target_pr
     )
 
 
-def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels):
-    """Refuse a taken action usual care could not take; warn where the regime leaves usual care's support."""
+WEIGHT_ROWS = 65_536  # decisions whose taken probabilities are read at a time
+
+
+def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels, first_row=0):
+    """Refuse a taken action usual care could not take; return how many decisions (of these rows, the table's
+    from ``first_row``) the regime gives probability to an action usual care never takes (warned about once)."""
     bad = np.flatnonzero(taken_b <= 0)
     if bad.size:
         raise UserInputError(
-            f"row {bad[0]}: usual care's probability of the taken {action_name(action[bad[0]], action_labels)} is "
-            "0, so its importance weight is undefined; fix the usual-care model (e.g. bound probabilities away "
-            "from 0)."
+            f"row {first_row + bad[0]}: usual care's probability of the taken "
+            f"{action_name(action[bad[0]], action_labels)} is 0, so its importance weight is undefined; fix the "
+            "usual-care model (e.g. bound probabilities away from 0)."
         )
-    unseen = int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
-    if unseen:
-        warnings.warn(
-            f"at {unseen} decisions the evaluated regime gives probability to an action usual care never takes; "
-            "importance sampling cannot see those actions and its estimate is biased.",
-            StatisticalWarning,
-            stacklevel=3,
-        )
+    return int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
 
 
 def _kish(w):
@@ -309,9 +324,17 @@ def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
     q, v = check_finite(q_taken, "q_taken", 1), check_finite(v_target, "v_target", 1)
     if not q.shape[0] == v.shape[0] == n_rows:
         raise UserInputError(f"q_taken and v_target need one value per decision ({n_rows}); pass them from fqi.")
-    q, v = weights.to_grid(q), weights.to_grid(v)
     previous = np.hstack([np.full((normalised.shape[0], 1), 1.0 / normalised.shape[0]), normalised[:, :-1]])
-    terms = normalised * weights.reward - (normalised * q - previous * v)
+    # normalised · r − (normalised · Q̂ − previous · V̂), each product formed in place in its own grid: the same
+    # operations on the same numbers (a product does not depend on the order of its factors), fewer (E, H) grids
+    model = weights.to_grid(q)
+    model *= normalised
+    carried = weights.to_grid(v)
+    carried *= previous
+    model -= carried
+    del carried, previous
+    terms = normalised * weights.reward
+    terms -= model
     return terms @ _discounts(terms.shape[1], gamma)
 
 

@@ -21,6 +21,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
+from regimewise.core.arrays import check_layout
 from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import QFeatures, StateScaler, action_codes, episode_codes
 from regimewise.core.terms import SEPARATE, ActionSlopes
@@ -77,6 +78,7 @@ class LoggedDecisions:
     patient: np.ndarray
     behaviour_proba: np.ndarray
     slopes: ActionSlopes = SEPARATE  # how the outcome models' coefficients vary with the action
+    layout_checked: bool = False  # step, action and episode come from check_layout (so every weighting skips it)
 
     @classmethod
     def from_frame(
@@ -84,15 +86,25 @@ class LoggedDecisions:
     ) -> LoggedDecisions:
         """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame``."""
         features = QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol, frame)
+        # the layout every importance weighting needs, checked once here (the error it raises is the one the first
+        # weighting would raise)
+        step, action, episode = check_layout(
+            frame["step"].to_numpy(dtype=np.int64),
+            action_codes(frame, protocol.action_labels),
+            episode_codes(frame),
+            protocol.horizon,
+            len(protocol.actions),
+        )
         return cls(
             X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
-            step=frame["step"].to_numpy(dtype=np.int64),
-            action=action_codes(frame, protocol.action_labels),
+            step=step,
+            action=action,
             reward=frame["reward"].to_numpy(dtype=float),
-            episode=episode_codes(frame),
+            episode=episode,
             patient=pd.factorize(frame["patient_id"], sort=False)[0],
             behaviour_proba=behaviour_proba,
             slopes=features.action_slopes(protocol),
+            layout_checked=True,
         )
 
     def weighting_table(self) -> tuple:
@@ -167,8 +179,8 @@ def regime_targets(
     labels = protocol.action_labels
     k = len(labels)
 
-    def deterministic(codes):
-        return np.asarray(codes) if by_rows else one_hot(codes, k)
+    def deterministic(codes):  # by rows: the codes in the smallest integer type that holds them
+        return np.asarray(codes).astype(np.min_scalar_type(max(k - 1, 0)), copy=False) if by_rows else one_hot(codes, k)
 
     if recommended is not None:
         yield {"name": "learned", "label": "Learned regime", "target": deterministic(recommended)}
@@ -277,6 +289,7 @@ def evaluate_regime(
         whole_target(target, logged.behaviour_proba),
         horizon=protocol.horizon,
         action_labels=protocol.action_labels,
+        layout_checked=logged.layout_checked,
     )
     results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
     del weights
@@ -458,7 +471,11 @@ def weight_histograms(logged: LoggedDecisions, target: np.ndarray, protocol: Pro
     Weights below or above the fixed edges are counted in the first or last bin.
     """
     weights = importance_weights(
-        *logged.weighting_table(), target, horizon=protocol.horizon, action_labels=protocol.action_labels
+        *logged.weighting_table(),
+        target,
+        horizon=protocol.horizon,
+        action_labels=protocol.action_labels,
+        layout_checked=logged.layout_checked,
     )
     edges = np.asarray(WEIGHT_HISTOGRAM_EDGES)
     by_step = []

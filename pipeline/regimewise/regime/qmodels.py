@@ -234,20 +234,23 @@ def evaluate_policies(
     # rows regrouped by step (stable: episode order kept within a step); the rows each least-squares fit sees,
     # and their order, are those of the decision table
     order = np.argsort(step, kind="stable")
-    bounds = np.searchsorted(step[order], np.arange(horizon + 1))
+    bounds = np.concatenate([[0], np.cumsum(np.bincount(step, minlength=horizon)[:horizon])])  # step t: [b_t, b_t+1)
     X = X if hasattr(X, "shape") else np.asarray(X, dtype=float)  # an array, or rows computed when asked for
     source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X and of the targets behind each
     reward = np.asarray(reward, dtype=float)
     taken = [np.full(n, np.nan) for _ in range(n_regimes)]  # per regime, in the decisions' order
     value = [np.full(n, np.nan) for _ in range(n_regimes)]
     failed: list = [None] * n_regimes
+    # one buffer for [1, X] of a step's rows, the largest step's size, reused by every step (no churn of large
+    # allocations, which the allocator would keep as resident memory)
+    design = np.empty((int(np.diff(bounds).max(initial=0)), X.shape[1] + 1))
+    design[:, 0] = 1.0
     for t in range(horizon - 1, -1, -1):
         here = order[bounds[t] : bounds[t + 1]]  # this step's decisions
         later = next_row[here]
         cont = np.flatnonzero(later >= 0)
         later = later[cont]
-        at_step = np.empty((here.size, X.shape[1] + 1))  # [1, X] of this step's rows
-        at_step[:, 0] = 1.0
+        at_step = design[: here.size]  # [1, X] of this step's rows
         for start in range(0, here.size, GATHER_ROWS):  # in blocks: features computed on demand stay small
             block = source[bounds[t] + start : min(bounds[t] + start + GATHER_ROWS, bounds[t + 1])]
             at_step[start : start + block.size, 1:] = X[block]
