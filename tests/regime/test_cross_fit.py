@@ -11,16 +11,19 @@ memory); scoring each patient with a regime learned without that patient is not.
 import numpy as np
 import pandas as pd
 import pytest
-from support.tiny import tiny_decisions, tiny_protocol_dict
+from support.tiny import REPOSITORY, tiny_decisions, tiny_protocol_dict
 
 from regimewise.core.folds import patient_folds
 from regimewise.errors import UserInputError
 from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import (
+    cross_fit_tasks,
     cross_fitted_recommendations,
     crossfit_folds,
+    fold_regime,
     learn_regime,
+    score_by_step,
 )
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -114,3 +117,30 @@ def test_copies_of_a_patient_in_a_bootstrap_resample_share_a_fold():
     # ... but never straddle two folds, so no fold regime is scored on a copy of a patient it learned from
     assert (pd.Series(folds).groupby(resample["resampled_from"].to_numpy()).nunique() == 1).all()
     assert resample["resampled_from"].nunique() < 30  # the draw did repeat patients
+
+
+def test_held_out_rows_scored_step_by_step_get_the_numbers_of_the_whole_frame():
+    # the demo protocol (pessimistic ensemble, clinical rules, splines in usual care): each fold's recommendations
+    # and Q-values from cross_fit_tasks, which builds the Q-features one step at a time, equal bit for bit those of
+    # the fold regime's own recommend and q_values on the whole held-out frame
+    from regimewise.data.records import clean_decisions
+    from regimewise.demo.simulate import simulate_cohort
+    from regimewise.protocol import load_protocol
+
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    p = pf.protocol
+    d = clean_decisions(pf, simulate_cohort(600, seed=5).decisions)
+    folds = crossfit_folds(d, p)
+    for fold, task in zip(np.unique(folds), cross_fit_tasks(d, p, folds)):
+        held_out, codes, q = task()
+        np.testing.assert_array_equal(held_out, folds == fold)
+        learned = fold_regime(d, p, folds, fold)
+        rows = d.loc[held_out].reset_index(drop=True)
+        expected_codes, expected_q = learned.recommend(rows), learned.q_values(rows)
+        assert codes.dtype == expected_codes.dtype and q.dtype == expected_q.dtype
+        assert codes.tobytes() == expected_codes.tobytes() and q.tobytes() == expected_q.tobytes()
+    assert np.unique(rows["step"]).size == p.horizon  # every step was scored on its own
+    shuffled = rows.sample(frac=1.0, random_state=0).reset_index(drop=True)  # steps interleaved in any order
+    codes, q = score_by_step(learned, shuffled)
+    assert codes.tobytes() == learned.recommend(shuffled).tobytes()
+    assert q.tobytes() == learned.q_values(shuffled).tobytes()

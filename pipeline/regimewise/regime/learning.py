@@ -241,15 +241,34 @@ def cross_fit_tasks(
             held_out = folds == fold
             learned = fold_regime(decisions, protocol, folds, fold)
             rows = decisions.loc[held_out].reset_index(drop=True)
-            # usual care's probabilities first (their design is released before the Q-features are built), then the
-            # Q-features once for the recommendations and the Q-values: what recommend and q_values compute alone
-            proba = learned.usual_care.predict_proba(rows)
-            X = learned.q_features.transform(rows)
-            return held_out, learned.recommend(rows, proba, X=X), learned.q_values(rows, X=X)
+            return held_out, *score_by_step(learned, rows)
 
         return learn_and_score
 
     return [task(fold) for fold in np.unique(folds)]
+
+
+def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """``learned.recommend(frame)`` and ``learned.q_values(frame)``, with the Q-features built for one decision step
+    at a time rather than for the whole frame.
+
+    The step models score each step's rows on their own (:meth:`FittedQIteration.recommend` and ``q_values`` take
+    the rows of step t out of X, in their order, into a copy of their own), and every Q-feature depends on its own
+    row only, so the rows of one step, in the frame's order, get exactly the numbers of the whole frame. Usual
+    care's probabilities (computed in row blocks from the first row) and the clinical rules are computed on the
+    whole frame, as ``recommend`` computes them.
+    """
+    proba = learned.usual_care.predict_proba(frame)
+    permitted = None if learned.rules is None else learned.rules.permitted(frame)
+    steps = frame["step"].to_numpy(dtype=np.int64)
+    codes = np.empty(len(frame), dtype=np.intp)
+    q = np.empty((len(frame), len(learned.action_labels)))
+    for t in np.unique(steps):
+        at = np.flatnonzero(steps == t)
+        X = learned.q_features.transform(frame.iloc[at])
+        codes[at] = learned.fqi.recommend(X, steps[at], proba[at], None if permitted is None else permitted[at])
+        q[at] = learned.fqi.q_values(X, steps[at])
+    return codes, q
 
 
 def assemble_cross_fit(decisions: pd.DataFrame, protocol: Protocol, parts) -> tuple[np.ndarray, np.ndarray]:
