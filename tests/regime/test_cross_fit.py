@@ -144,3 +144,14 @@ def test_held_out_rows_scored_step_by_step_get_the_numbers_of_the_whole_frame():
     codes, q = score_by_step(learned, shuffled)
     assert codes.tobytes() == learned.recommend(shuffled).tobytes()
     assert q.tobytes() == learned.q_values(shuffled).tobytes()
+
+
+def test_rows_of_a_mask_equal_the_reset_selection():
+    from regimewise.regime.learning import rows_of
+
+    d = tiny_decisions(30, seed=4)
+    mask = np.random.default_rng(0).random(len(d)) < 0.4
+    got = rows_of(d, mask)
+    pd.testing.assert_frame_equal(got, d.loc[mask].reset_index(drop=True), check_index_type=True)
+    got.loc[0, "bp"] = -1.0  # a copy: the records are not written
+    assert (d["bp"] != -1.0).all()
