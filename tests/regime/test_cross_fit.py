@@ -155,3 +155,26 @@ def test_rows_of_a_mask_equal_the_reset_selection():
     pd.testing.assert_frame_equal(got, d.loc[mask].reset_index(drop=True), check_index_type=True)
     got.loc[0, "bp"] = -1.0  # a copy: the records are not written
     assert (d["bp"] != -1.0).all()
+
+
+def test_variant_tasks_let_go_of_x_and_build_it_again_when_rerun():
+    import gc
+    import weakref
+
+    from regimewise.core.features import QFeatures, StateScaler
+    from regimewise.regime.learning import variant_tasks
+
+    p, d = protocol(2), tiny_decisions(60, seed=3)
+    proba = np.full((len(d), 3), 1 / 3)
+    features = QFeatures.from_protocol(StateScaler.fit(d, p), p, d)
+    X = features.transform(d)
+    tasks = variant_tasks(d, proba, p, features, X=X)
+    first = {name: task() for name, task in tasks.items()}
+    alive = weakref.ref(X)
+    del X
+    gc.collect()
+    assert alive() is None  # no callable holds the features once each has run
+    again = {name: task() for name, task in tasks.items()}  # run again: X built anew, the same fits
+    for name in tasks:
+        np.testing.assert_array_equal(again[name].record_choice_, first[name].record_choice_)
+        np.testing.assert_array_equal(again[name].coef_, first[name].coef_)

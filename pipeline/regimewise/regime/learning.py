@@ -45,22 +45,16 @@ class LearnedRegime:
     action_labels: tuple[str, ...]
     rules: ClinicalRuleSet | None = None
 
-    def q_values(self, frame: pd.DataFrame, *, X: np.ndarray | None = None) -> np.ndarray:
-        """Fitted Q-values (n, K); ``X`` is ``self.q_features.transform(frame)`` when the caller has it already."""
-        X = self.q_features.transform(frame) if X is None else X
-        return self.fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
+    def q_values(self, frame: pd.DataFrame) -> np.ndarray:
+        return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
 
-    def recommend(
-        self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None, *, X: np.ndarray | None = None
-    ) -> np.ndarray:
-        """Recommended action codes; usual-care probabilities are estimated unless given, and so are the Q-features
-        ``X`` (``self.q_features.transform(frame)``)."""
+    def recommend(self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None) -> np.ndarray:
+        """Recommended action codes; usual-care probabilities are estimated unless given."""
         if behaviour_proba is None:
             behaviour_proba = self.usual_care.predict_proba(frame)
         steps = frame["step"].to_numpy(dtype=np.int64)
         permitted = None if self.rules is None else self.rules.permitted(frame)
-        X = self.q_features.transform(frame) if X is None else X
-        return self.fqi.recommend(X, steps, behaviour_proba, permitted)
+        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba, permitted)
 
     def __call__(self, frame: pd.DataFrame) -> np.ndarray:
         return self.recommend(frame)
