@@ -11,16 +11,19 @@ memory); scoring each patient with a regime learned without that patient is not.
 import numpy as np
 import pandas as pd
 import pytest
-from support.tiny import tiny_decisions, tiny_protocol_dict
+from support.tiny import REPOSITORY, tiny_decisions, tiny_protocol_dict
 
 from regimewise.core.folds import patient_folds
 from regimewise.errors import UserInputError
 from regimewise.evaluation.values import evaluate_all, point_values
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import (
+    cross_fit_tasks,
     cross_fitted_recommendations,
     crossfit_folds,
+    fold_regime,
     learn_regime,
+    score_by_step,
 )
 from regimewise.usual_care.fitting import fit_usual_care
 
@@ -114,3 +117,64 @@ def test_copies_of_a_patient_in_a_bootstrap_resample_share_a_fold():
     # ... but never straddle two folds, so no fold regime is scored on a copy of a patient it learned from
     assert (pd.Series(folds).groupby(resample["resampled_from"].to_numpy()).nunique() == 1).all()
     assert resample["resampled_from"].nunique() < 30  # the draw did repeat patients
+
+
+def test_held_out_rows_scored_step_by_step_get_the_numbers_of_the_whole_frame():
+    # the demo protocol (pessimistic ensemble, clinical rules, splines in usual care): each fold's recommendations
+    # and Q-values from cross_fit_tasks, which builds the Q-features one step at a time, equal bit for bit those of
+    # the fold regime's own recommend and q_values on the whole held-out frame
+    from regimewise.data.records import clean_decisions
+    from regimewise.demo.simulate import simulate_cohort
+    from regimewise.protocol import load_protocol
+
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    p = pf.protocol
+    d = clean_decisions(pf, simulate_cohort(600, seed=5).decisions)
+    folds = crossfit_folds(d, p)
+    for fold, task in zip(np.unique(folds), cross_fit_tasks(d, p, folds)):
+        held_out, codes, q = task()
+        np.testing.assert_array_equal(held_out, folds == fold)
+        learned = fold_regime(d, p, folds, fold)
+        rows = d.loc[held_out].reset_index(drop=True)
+        expected_codes, expected_q = learned.recommend(rows), learned.q_values(rows)
+        assert codes.dtype == expected_codes.dtype and q.dtype == expected_q.dtype
+        assert codes.tobytes() == expected_codes.tobytes() and q.tobytes() == expected_q.tobytes()
+    assert np.unique(rows["step"]).size == p.horizon  # every step was scored on its own
+    shuffled = rows.sample(frac=1.0, random_state=0).reset_index(drop=True)  # steps interleaved in any order
+    codes, q = score_by_step(learned, shuffled)
+    assert codes.tobytes() == learned.recommend(shuffled).tobytes()
+    assert q.tobytes() == learned.q_values(shuffled).tobytes()
+
+
+def test_rows_of_a_mask_equal_the_reset_selection():
+    from regimewise.regime.learning import rows_of
+
+    d = tiny_decisions(30, seed=4)
+    mask = np.random.default_rng(0).random(len(d)) < 0.4
+    got = rows_of(d, mask)
+    pd.testing.assert_frame_equal(got, d.loc[mask].reset_index(drop=True), check_index_type=True)
+    got.loc[0, "bp"] = -1.0  # a copy: the records are not written
+    assert (d["bp"] != -1.0).all()
+
+
+def test_variant_tasks_let_go_of_x_and_build_it_again_when_rerun():
+    import gc
+    import weakref
+
+    from regimewise.core.features import QFeatures, StateScaler
+    from regimewise.regime.learning import variant_tasks
+
+    p, d = protocol(2), tiny_decisions(60, seed=3)
+    proba = np.full((len(d), 3), 1 / 3)
+    features = QFeatures.from_protocol(StateScaler.fit(d, p), p, d)
+    X = features.transform(d)
+    tasks = variant_tasks(d, proba, p, features, X=X)
+    first = {name: task() for name, task in tasks.items()}
+    alive = weakref.ref(X)
+    del X
+    gc.collect()
+    assert alive() is None  # no callable holds the features once each has run
+    again = {name: task() for name, task in tasks.items()}  # run again: X built anew, the same fits
+    for name in tasks:
+        np.testing.assert_array_equal(again[name].record_choice_, first[name].record_choice_)
+        np.testing.assert_array_equal(again[name].coef_, first[name].coef_)

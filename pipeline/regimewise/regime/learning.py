@@ -45,22 +45,16 @@ class LearnedRegime:
     action_labels: tuple[str, ...]
     rules: ClinicalRuleSet | None = None
 
-    def q_values(self, frame: pd.DataFrame, *, X: np.ndarray | None = None) -> np.ndarray:
-        """Fitted Q-values (n, K); ``X`` is ``self.q_features.transform(frame)`` when the caller has it already."""
-        X = self.q_features.transform(frame) if X is None else X
-        return self.fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
+    def q_values(self, frame: pd.DataFrame) -> np.ndarray:
+        return self.fqi.q_values(self.q_features.transform(frame), frame["step"].to_numpy(dtype=np.int64))
 
-    def recommend(
-        self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None, *, X: np.ndarray | None = None
-    ) -> np.ndarray:
-        """Recommended action codes; usual-care probabilities are estimated unless given, and so are the Q-features
-        ``X`` (``self.q_features.transform(frame)``)."""
+    def recommend(self, frame: pd.DataFrame, behaviour_proba: np.ndarray | None = None) -> np.ndarray:
+        """Recommended action codes; usual-care probabilities are estimated unless given."""
         if behaviour_proba is None:
             behaviour_proba = self.usual_care.predict_proba(frame)
         steps = frame["step"].to_numpy(dtype=np.int64)
         permitted = None if self.rules is None else self.rules.permitted(frame)
-        X = self.q_features.transform(frame) if X is None else X
-        return self.fqi.recommend(X, steps, behaviour_proba, permitted)
+        return self.fqi.recommend(self.q_features.transform(frame), steps, behaviour_proba, permitted)
 
     def __call__(self, frame: pd.DataFrame) -> np.ndarray:
         return self.recommend(frame)
@@ -240,16 +234,34 @@ def cross_fit_tasks(
         def learn_and_score():
             held_out = folds == fold
             learned = fold_regime(decisions, protocol, folds, fold)
-            rows = decisions.loc[held_out].reset_index(drop=True)
-            # usual care's probabilities first (their design is released before the Q-features are built), then the
-            # Q-features once for the recommendations and the Q-values: what recommend and q_values compute alone
-            proba = learned.usual_care.predict_proba(rows)
-            X = learned.q_features.transform(rows)
-            return held_out, learned.recommend(rows, proba, X=X), learned.q_values(rows, X=X)
+            return held_out, *score_by_step(learned, rows_of(decisions, held_out))
 
         return learn_and_score
 
     return [task(fold) for fold in np.unique(folds)]
+
+
+def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """``learned.recommend(frame)`` and ``learned.q_values(frame)``, with the Q-features built for one decision step
+    at a time rather than for the whole frame.
+
+    The step models score each step's rows on their own (:meth:`FittedQIteration.recommend` and ``q_values`` take
+    the rows of step t out of X, in their order, into a copy of their own), and every Q-feature depends on its own
+    row only, so the rows of one step, in the frame's order, get exactly the numbers of the whole frame. Usual
+    care's probabilities (computed in row blocks from the first row) and the clinical rules are computed on the
+    whole frame, as ``recommend`` computes them.
+    """
+    proba = learned.usual_care.predict_proba(frame)
+    permitted = None if learned.rules is None else learned.rules.permitted(frame)
+    steps = frame["step"].to_numpy(dtype=np.int64)
+    codes = np.empty(len(frame), dtype=np.intp)
+    q = np.empty((len(frame), len(learned.action_labels)))
+    for t in np.unique(steps):
+        at = np.flatnonzero(steps == t)
+        X = learned.q_features.transform(frame.iloc[at])
+        codes[at] = learned.fqi.recommend(X, steps[at], proba[at], None if permitted is None else permitted[at])
+        q[at] = learned.fqi.q_values(X, steps[at])
+    return codes, q
 
 
 def assemble_cross_fit(decisions: pd.DataFrame, protocol: Protocol, parts) -> tuple[np.ndarray, np.ndarray]:
@@ -271,7 +283,15 @@ def fold_regimes(
 
 def fold_regime(decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray, fold) -> LearnedRegime:
     """The regime learned from the decisions outside fold ``fold`` of ``folds`` (:func:`crossfit_folds`)."""
-    return learn_regime(decisions.loc[folds != fold].reset_index(drop=True), protocol)
+    return learn_regime(rows_of(decisions, folds != fold), protocol)
+
+
+def rows_of(decisions: pd.DataFrame, mask: np.ndarray) -> pd.DataFrame:
+    """The rows of ``mask``, numbered 0..n-1: ``decisions.loc[mask].reset_index(drop=True)`` with one copy of the rows
+    instead of two (``reset_index`` copies the selected rows again)."""
+    rows = decisions.loc[mask]
+    rows.index = pd.RangeIndex(len(rows))
+    return rows
 
 
 def record_proba(learned, decisions: pd.DataFrame) -> np.ndarray:
