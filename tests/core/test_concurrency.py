@@ -5,6 +5,7 @@ must not depend on the cores or on how the work is split into jobs; no outside r
 
 from __future__ import annotations
 
+import platform
 import time
 
 import numpy as np
@@ -13,7 +14,7 @@ import yaml
 from support.tiny import REPOSITORY
 from threadpoolctl import threadpool_info
 
-from regimewise.core.concurrency import run_concurrently
+from regimewise.core.concurrency import run_concurrently, share_allocator_arenas
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import UserInputError
@@ -56,6 +57,13 @@ def test_blas_runs_on_one_thread_inside_the_tasks():
 
     seen = run_concurrently([blas_threads, blas_threads], threads=2)
     assert seen[0] and all(n == 1 for threads in seen for n in threads)
+
+
+def test_the_allocator_takes_one_shared_arena_where_the_c_library_is_glibc():
+    # glibc's mallopt returns 1 when it takes a setting; elsewhere nothing changes and the call says so
+    took = share_allocator_arenas()
+    assert took is (platform.libc_ver()[0] == "glibc")
+    assert run_concurrently([lambda: np.ones(10**6).sum()] * 2, threads=2) == [10**6, 10**6]
 
 
 @pytest.fixture(scope="module")

@@ -17,13 +17,12 @@ re-evaluates resource functions just before it schedules a job); before that (th
 dry run), it is estimated from the records file's size, erring high.
 
 Threads (:data:`STAGE_THREADS`): every rule runs one process, and BLAS is held to one thread in every stage
-(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. The regime and
-evaluate rules ask for two: the regime stage's side-by-side regimes, and the evaluate stage's per-fold outcome
-models and per-regime estimates, are independent computations run on two threads of the stage's process
-(:mod:`regimewise.core.concurrency`). Every other rule asks for one (bootstrap shards are separate jobs): the
-``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour``, and ``sensitivity_curves`` (the
-bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and ``survival`` without
-waiting for the bootstrap. Snakemake gives a rule no more threads than ``--cores``.
+(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. Every rule asks
+for one thread (:data:`STAGE_THREADS` says why; the regime and evaluate stages can run their independent fits on two
+threads of their process, :mod:`regimewise.core.concurrency`, when a rule asks for them). Bootstrap shards are
+separate jobs; the ``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour``, and
+``sensitivity_curves`` (the bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and
+``survival`` without waiting for the bootstrap. Snakemake gives a rule no more threads than ``--cores``.
 """
 
 from __future__ import annotations
@@ -60,10 +59,10 @@ BASE_MB = 400.0
 # million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin.
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
-    "behaviour": StageCost(BASE_MB, 600.0, 0.2),
+    "behaviour": StageCost(BASE_MB, 500.0, 0.3),
     "crossfit": StageCost(BASE_MB, 600.0, 0.3),
-    "regime": StageCost(BASE_MB, 1000.0, 0.5),
-    "evaluate": StageCost(BASE_MB, 1200.0, 0.5),
+    "regime": StageCost(BASE_MB, 600.0, 0.5),
+    "evaluate": StageCost(BASE_MB, 600.0, 0.5),
     "describe": StageCost(BASE_MB, 300.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
@@ -80,17 +79,19 @@ STAGE_COSTS = {
     "appendix": StageCost(BASE_MB, 0.0, 0.1),
 }
 
-# Threads each rule asks for (1 where not listed). Two for the regime and evaluate stages: both are on the critical
-# path (validate -> behaviour -> regime -> evaluate -> bootstrap -> sensitivity -> report) and fit independent models
-# (bench/RESULTS.md has the times with one thread and two).
-STAGE_THREADS = {"regime": 2, "evaluate": 2}
+# Threads each rule asks for (1 where not listed). None asks for more at present. The regime and evaluate stages can
+# run their independent fits on two threads (their functions' ``threads``), and did until the crossfit and
+# sensitivity_curves rules were split off; now a second core is better spent on the jobs that can run beside them
+# (behaviour beside crossfit; sensitivity_curves, survival and describe beside evaluate), and at 1M episodes x 12
+# two concurrent fits held about 1.6 GB more than one, taking the regime stage above 8 GB (bench/RESULTS.md).
+STAGE_THREADS: dict[str, int] = {}
 
 
 def stage_threads(rule: str) -> int:
     """Threads to request for ``rule`` (:data:`STAGE_THREADS`; 1 for the others).
 
-    >>> stage_threads("regime"), stage_threads("describe")
-    (2, 1)
+    >>> stage_threads("evaluate"), stage_threads("regime")
+    (1, 1)
     """
     if rule not in STAGE_COSTS:
         raise KeyError(f"no resource figures for rule {rule!r}")
@@ -137,7 +138,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime", 12_000_000)
-    {'mem_mb': 18600, 'runtime': 9}
+    {'mem_mb': 11400, 'runtime': 9}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
