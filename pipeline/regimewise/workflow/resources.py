@@ -52,16 +52,16 @@ class StageCost:
 BASE_MB = 400.0
 
 # Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), the whole workflow on
-# 2 cores with its stages run one at a time: peak RSS above the interpreter's 300 MB, and CPU time, per million
-# decisions, rounded up to 100 MB and 0.1 minute (bench/RESULTS.md, 2026-12-03, at c785de4; regime and evaluate
-# re-measured with their two threads on 2026-12-04 at 651c9b0: peaks 11.8 and 13.9 GB, wall 276 and 275 s). A shard's
+# 2 cores: peak RSS above the interpreter's 300 MB, and CPU time, per million decisions, rounded up to 100 MB and
+# 0.1 minute (bench/RESULTS.md, 2026-12-04, at d0063e8: every rule on one thread; peaks regime 7.8 GB, crossfit
+# 6.7, evaluate 6.2, behaviour 6.0, survival 5.7, sensitivity_curves 4.1, validate 3.7, describe 3.6 GB). A shard's
 # per-replicate time is at most that of the behaviour, regime and evaluate stages together (1.2 CPU minutes per
 # million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin.
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
     "behaviour": StageCost(BASE_MB, 500.0, 0.3),
-    "crossfit": StageCost(BASE_MB, 600.0, 0.3),
-    "regime": StageCost(BASE_MB, 600.0, 0.5),
+    "crossfit": StageCost(BASE_MB, 600.0, 0.4),
+    "regime": StageCost(BASE_MB, 700.0, 0.5),
     "evaluate": StageCost(BASE_MB, 600.0, 0.5),
     "describe": StageCost(BASE_MB, 300.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
@@ -138,7 +138,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime", 12_000_000)
-    {'mem_mb': 11400, 'runtime': 9}
+    {'mem_mb': 13200, 'runtime': 9}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
