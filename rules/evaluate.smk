@@ -1,3 +1,27 @@
+# ---- evaluate_fixed: usual care, fixed strategies and comparators (beside the regime stage) -----------------
+rule evaluate_fixed:
+    input:
+        protocol=SETTINGS.protocol_input,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+    output:
+        fixed=temp(results("evaluate/fixed.json")),  # read by the evaluate rule only; not an artifact
+    log:
+        logs("evaluate_fixed"),
+    benchmark:
+        benchmarks("evaluate_fixed")
+    params:
+        code=stage_code_hash("evaluate_fixed"),
+    threads: stage_threads("evaluate_fixed")
+    resources:
+        mem_mb=mem_mb("evaluate_fixed"),
+        runtime=runtime("evaluate_fixed"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
 # ---- evaluate: off-policy values of the learned regime, usual care and fixed strategies -----------------
 rule evaluate:
     input:
@@ -5,6 +29,7 @@ rule evaluate:
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),
+        fixed=results("evaluate/fixed.json"),
     output:
         values=results("evaluate/values.json"),
     log:

@@ -1,7 +1,9 @@
 """Independent fits on several threads: results in task order, errors raised, BLAS on one thread, and the regime
-and evaluate stages' outputs identical byte for byte with one thread and with two, and the regime stage's whether it
-learns the cross-fitted fold regimes itself or reads them from the crossfit job (the project's own rule: the numbers
-must not depend on the cores or on how the work is split into jobs; no outside reference applies)."""
+and evaluate stages' outputs identical byte for byte with one thread and with two, the regime stage's whether it
+learns the cross-fitted fold regimes itself or reads them from the crossfit job, and the evaluate stage's whether it
+evaluates usual care and the fixed strategies itself or reads them from the evaluate_fixed job (the project's own
+rule: the numbers must not depend on the cores or on how the work is split into jobs; no outside reference
+applies)."""
 
 from __future__ import annotations
 
@@ -18,6 +20,7 @@ from regimewise.core.concurrency import run_concurrently, share_allocator_arenas
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import UserInputError
+from regimewise.evaluation.values import FIXED_PART, LEARNED_PART, fixed_regime_names, regime_targets
 from regimewise.io import dumps_json, read_json, read_parquet, write_parquet
 from regimewise.protocol import load_protocol
 from regimewise.sensitivity import analysis
@@ -25,6 +28,7 @@ from regimewise.workflow.stages import (
     behaviour_stage,
     bootstrap_stage,
     crossfit_stage,
+    evaluate_fixed_stage,
     evaluate_stage,
     headline_contrast,
     regime_stage,
@@ -164,6 +168,58 @@ def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):
         written[threads] = values.read_bytes()
     assert written[1] == written[2]
     assert b'"side_by_side"' in written[1] and b'"fqe"' in written[1]  # every part that runs on threads was run
+
+
+def test_the_evaluate_stage_writes_the_same_bytes_from_the_fixed_strategies_file(cohort):
+    # the workflow evaluates usual care, the fixed strategies and the comparators in their own job (beside the regime
+    # stage); values.json must be the one the stage writes when it evaluates every regime itself
+    folder, pf = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    table = folder / "table_for_fixed.parquet"
+    regime_stage(protocol, decisions, proba, table, folder / "r_f.json")
+    evaluate_fixed_stage(protocol, decisions, proba, folder / "fixed.json")
+    fixed = read_json(folder / "fixed.json")
+    assert [r["name"] for r in fixed["regimes"]] == fixed_regime_names(pf.protocol)
+    assert pf.protocol.comparators and pf.protocol.evaluation.fixed_strategies  # every kind of fixed regime is there
+    evaluate_stage(protocol, decisions, proba, table, folder / "values_alone.json")
+    evaluate_stage(protocol, decisions, proba, table, folder / "values_split.json", fixed=folder / "fixed.json")
+    assert (folder / "values_alone.json").read_bytes() == (folder / "values_split.json").read_bytes()
+
+
+def test_the_evaluate_stage_refuses_a_fixed_strategies_file_of_other_decisions_or_protocol(cohort):
+    folder, _ = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    table = folder / "table_for_fixed.parquet"
+    if not table.is_file():
+        regime_stage(protocol, decisions, proba, table, folder / "r_f.json")
+    evaluate_fixed_stage(protocol, decisions, proba, folder / "fixed_other.json")
+    document = read_json(folder / "fixed_other.json")
+    (folder / "fixed_other.json").write_text(dumps_json({**document, "decisions": 7}), encoding="utf-8")
+    with pytest.raises(UserInputError, match="holds the values of 7 decisions"):
+        evaluate_stage(protocol, decisions, proba, table, folder / "v.json", fixed=folder / "fixed_other.json")
+    # a file of another protocol's regimes (a comparator renamed since): refused, not spliced in
+    document["regimes"][-1]["name"] = "renamed"
+    (folder / "fixed_other.json").write_text(dumps_json(document), encoding="utf-8")
+    with pytest.raises(UserInputError, match="not this protocol's"):
+        evaluate_stage(protocol, decisions, proba, table, folder / "v.json", fixed=folder / "fixed_other.json")
+
+
+def test_the_two_parts_of_the_regimes_together_are_every_regime_in_order(cohort):
+    folder, pf = cohort
+    p = pf.protocol
+    frame = read_parquet(folder / "decisions.parquet")
+    proba = read_parquet(folder / "proba.parquet")[[f"p_{a}" for a in p.action_labels]].to_numpy()
+    recommended = np.zeros(len(frame), dtype=np.int64)
+    q = np.zeros((len(frame), len(p.action_labels)))
+
+    def names(part):
+        return [t["name"] for t in regime_targets(frame, proba, recommended, p, q, by_rows=True, part=part)]
+
+    whole, fixed, learned = names(None), names(FIXED_PART), names(LEARNED_PART)
+    assert fixed == fixed_regime_names(p)
+    assert whole == [learned[0], *fixed, *learned[1:]] and learned[0] == "learned" and len(learned) > 1
+    with pytest.raises(ValueError, match="part must be"):
+        names("other")
 
 
 def test_the_sensitivity_stage_writes_what_the_analysis_finds_from_the_curves_jobs_file(cohort):

@@ -144,6 +144,16 @@ def _passes(regimes, logged: LoggedDecisions) -> Iterator[list]:
         del chunk  # released before the next list is built, once the caller has let go of it too
 
 
+FIXED_PART, LEARNED_PART = "fixed", "learned"  # the two parts of the regimes (regime_targets' ``part``)
+
+
+def fixed_regime_names(protocol: Protocol) -> list[str]:
+    """Names of the regimes that do not depend on the learned regime, in :func:`regime_targets`' order: usual care,
+    the fixed strategies (``evaluation.fixed_strategies``), the protocol's comparators."""
+    fixed = [f"always_{a}" for a in protocol.action_labels] if protocol.evaluation.fixed_strategies else []
+    return ["usual_care", *fixed, *(c.name for c in protocol.comparators)]
+
+
 def one_hot(codes: np.ndarray, n_actions: int) -> np.ndarray:
     out = np.zeros((len(codes), n_actions))
     out[np.arange(len(codes)), codes] = 1.0
@@ -158,6 +168,7 @@ def regime_targets(
     learned_q: np.ndarray | None = None,
     *,
     by_rows: bool = False,
+    part: str | None = None,
 ) -> Iterator[dict]:
     """Every regime to evaluate, learned first: name, label, target probabilities, and for the strategies of the
     protocol's ``strategies`` section their family, parameter and clinical words (also the survival
@@ -175,27 +186,38 @@ def regime_targets(
     has as target its (n,) action codes, and a strategy a function that builds its probabilities for the rows
     asked for (:func:`regimewise.regime.qmodels.target_rows` reads all three; a strategy's probabilities of a row
     depend on that row alone, so they are the same numbers).
+
+    ``part`` keeps one part of the list, in the same order: ``"fixed"`` the regimes that do not depend on the
+    learned regime (usual care, the fixed strategies, the comparators: :func:`fixed_regime_names`), ``"learned"``
+    the learned regime and the strategies of the ``strategies`` section; None every regime. The entries of the
+    other part are never built.
     """
+    if part not in (None, FIXED_PART, LEARNED_PART):
+        raise ValueError(f"part must be None, {FIXED_PART!r} or {LEARNED_PART!r}, not {part!r}")
+    fixed, learned = part != LEARNED_PART, part != FIXED_PART
     labels = protocol.action_labels
     k = len(labels)
 
     def deterministic(codes):  # by rows: the codes in the smallest integer type that holds them
         return np.asarray(codes).astype(np.min_scalar_type(max(k - 1, 0)), copy=False) if by_rows else one_hot(codes, k)
 
-    if recommended is not None:
+    if recommended is not None and learned:
         yield {"name": "learned", "label": "Learned regime", "target": deterministic(recommended)}
-    yield {"name": "usual_care", "label": "Usual care", "target": behaviour_proba}
-    if protocol.evaluation.fixed_strategies:
-        for j, a in enumerate(labels):
-            yield {
-                "name": f"always_{a}",
-                "label": f"Always {a.replace('_', ' ')}",
-                "target": deterministic(np.full(len(frame), j)),
-            }
-    columns = _comparator_columns(frame, protocol)
-    for c in protocol.comparators:
-        codes = c.action_codes(columns, len(frame), labels)
-        yield {"name": c.name, "label": c.label, "target": deterministic(codes), "comparator": c}
+    if fixed:
+        yield {"name": "usual_care", "label": "Usual care", "target": behaviour_proba}
+        if protocol.evaluation.fixed_strategies:
+            for j, a in enumerate(labels):
+                yield {
+                    "name": f"always_{a}",
+                    "label": f"Always {a.replace('_', ' ')}",
+                    "target": deterministic(np.full(len(frame), j)),
+                }
+        columns = _comparator_columns(frame, protocol)
+        for c in protocol.comparators:
+            codes = c.action_codes(columns, len(frame), labels)
+            yield {"name": c.name, "label": c.label, "target": deterministic(codes), "comparator": c}
+    if not learned:
+        return
     for s in protocol_strategies(protocol.strategies):  # built inline: no local name keeps the last one alive
         yield {
             "name": s.name,
@@ -514,9 +536,16 @@ def evaluate_all(
     learned_folds: np.ndarray | None = None,
     learned_q: np.ndarray | None = None,
     threads: int = 1,
+    fixed: list[dict] | None = None,
 ) -> dict:
     """Values of every regime, usual care's observed mean return and the learned-minus-usual-care contrasts
     (``recommended`` None: no regime was learned, and the contrasts are the named strategies minus usual care).
+
+    ``fixed``: the entries of the regimes that do not depend on the learned regime, as
+    :func:`evaluate_fixed_regimes` computed them on these decisions (the workflow computes them in a job of their
+    own, before the regime is learned). They are taken as they are, in their place of the list, and only the
+    learned regime and the strategies are evaluated here: the same values, as no regime's numbers depend on the
+    others evaluated with it.
 
     With ``strict=False`` (bootstrap replicates) a regime whose fitted-Q evaluation cannot be fitted on these
     records (an action it may take never occurs at some step) gets null dr, wdr and fqe values instead of
@@ -534,22 +563,18 @@ def evaluate_all(
     """
     # the outcome models read the features a step's rows at a time: X is never held whole
     logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
-    regimes, histograms = [], None
-    # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
-    # (a regime's numbers do not depend on which regimes share its pass)
-    targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True)
-    for chunk in _passes(targets, logged):
-        models = outcome_models(logged, chunk, protocol, learned_folds, threads)
-        regimes += run_concurrently(
-            [
-                functools.partial(evaluate_target, logged, t, protocol, strict, learned_folds, m)
-                for t, m in zip(chunk, models)
-            ],
-            threads,
-        )
-        if chunk[0]["name"] == "learned":
-            histograms = weight_histograms(logged, whole_target(chunk[0]["target"], logged.behaviour_proba), protocol)
-        del chunk, models
+    part = None if fixed is None else LEARNED_PART
+    targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True, part=part)
+    regimes, histograms = _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads)
+    if fixed is not None:  # in regime_targets' order: the learned regime, the fixed part, the strategies
+        names = [r["name"] for r in fixed]
+        if names != fixed_regime_names(protocol):
+            raise UserInputError(
+                f"the fixed strategies' values hold {names}, not this protocol's {fixed_regime_names(protocol)}; "
+                "rerun the workflow"
+            )
+        head = 1 if recommended is not None else 0
+        regimes = [*regimes[:head], *fixed, *regimes[head:]]
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
     episode_patient[logged.episode] = logged.patient
@@ -565,6 +590,40 @@ def evaluate_all(
         **({"learned_weight_histograms": histograms} if recommended is not None else {}),
         **({} if side_by_side is None else {"side_by_side": _side_by_side(logged, side_by_side, protocol, threads)}),
     }
+
+
+def _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads) -> tuple[list[dict], dict | None]:
+    """The entries of :func:`evaluate_target` for every regime of ``targets`` (an iterable of
+    :func:`regime_targets`), and the learned regime's weight histograms when it is among them (else None)."""
+    regimes, histograms = [], None
+    # regimes in passes of a bounded size: each pass's targets and outcome models are freed before the next
+    # (a regime's numbers do not depend on which regimes share its pass)
+    for chunk in _passes(targets, logged):
+        models = outcome_models(logged, chunk, protocol, learned_folds, threads)
+        regimes += run_concurrently(
+            [
+                functools.partial(evaluate_target, logged, t, protocol, strict, learned_folds, m)
+                for t, m in zip(chunk, models)
+            ],
+            threads,
+        )
+        if chunk[0]["name"] == "learned":
+            histograms = weight_histograms(logged, whole_target(chunk[0]["target"], logged.behaviour_proba), protocol)
+        del chunk, models
+    return regimes, histograms
+
+
+def evaluate_fixed_regimes(
+    frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, *, threads: int = 1
+) -> list[dict]:
+    """values.json's entries of the regimes that do not depend on the learned regime (usual care, the fixed
+    strategies, the protocol's comparators: :func:`fixed_regime_names`), each fitted on all records.
+
+    They need the records and usual care's probabilities only, so the workflow computes them in a job of their own
+    while the regime is learned, and :func:`evaluate_all` takes them (``fixed``)."""
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    targets = regime_targets(frame, logged.behaviour_proba, None, protocol, by_rows=True, part=FIXED_PART)
+    return _evaluate_targets(logged, targets, protocol, True, None, threads)[0]
 
 
 def _side_by_side(

@@ -21,6 +21,7 @@ STAGE_WORDS = {
     "behaviour": "usual-care model",
     "crossfit": "cross-fitted fold regimes",
     "regime": "regime learning",
+    "evaluate_fixed": "off-policy evaluation of usual care and the fixed strategies",
     "evaluate": "off-policy evaluation",
     "describe": "cohort description",
     "bootstrap": "bootstrap intervals",

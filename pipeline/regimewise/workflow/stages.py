@@ -31,7 +31,12 @@ from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
 from regimewise.describe.cohort import cohort_table
 from regimewise.errors import ERROR_PREFIX, DataValidationError, StatisticalWarning, UserInputError
-from regimewise.evaluation.values import evaluate_all, headline_estimator, named_strategy_codes
+from regimewise.evaluation.values import (
+    evaluate_all,
+    evaluate_fixed_regimes,
+    headline_estimator,
+    named_strategy_codes,
+)
 from regimewise.io import parquet_columns, read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
@@ -306,14 +311,41 @@ def evaluated_regime(table, labels) -> tuple[np.ndarray, np.ndarray]:
     return column_codes(recommendations, "evaluated", labels), q
 
 
-def evaluate_stage(protocol, decisions, proba, table, values, threads=1):
-    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator;
-    ``threads`` (the rule's) of the folds' outcome models and of the regimes' estimates at once (the same numbers
-    with any number)."""
+def evaluate_fixed_stage(protocol, decisions, proba, fixed, threads=1):
+    """Values of the regimes that do not depend on the learned regime (usual care, the fixed strategies, the
+    protocol's comparators: :func:`regimewise.evaluation.values.evaluate_fixed_regimes`), written for the evaluate
+    stage. They need the records and usual care's probabilities only, so the workflow runs this job while the
+    regime is learned; its file is a temporary one of the workflow, consumed by the evaluate rule."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
+    regimes = evaluate_fixed_regimes(frame, read_probabilities(proba, p.action_labels), p, threads=threads)
+    write_json(fixed, {"decisions": len(frame), "regimes": regimes})
+
+
+def read_fixed(path, frame) -> list[dict]:
+    """The entries written by :func:`evaluate_fixed_stage`, which must be of these decisions."""
+    document = read_json(path)
+    if document.get("decisions") != len(frame):
+        raise UserInputError(
+            f"{path} holds the values of {document.get('decisions')} decisions, not of these {len(frame)}; "
+            "rerun the workflow"
+        )
+    return document["regimes"]
+
+
+def evaluate_stage(protocol, decisions, proba, table, values, fixed=None, threads=1):
+    """Values of the learned regime, usual care, fixed strategies and the protocol's strategies by each estimator;
+    ``threads`` (the rule's) of the folds' outcome models and of the regimes' estimates at once (the same numbers
+    with any number).
+
+    ``fixed``, the file of :func:`evaluate_fixed_stage` (the workflow's), gives the values of usual care, the fixed
+    strategies and the comparators; without it the stage computes them itself (the same numbers)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    done = None if fixed is None else read_fixed(fixed, frame)
     if not p.analysis.learn_regime:  # usual care and the named strategies only
-        write_json(values, evaluate_all(frame, read_probabilities(proba, p.action_labels), None, p, threads=threads))
+        probabilities = read_probabilities(proba, p.action_labels)
+        write_json(values, evaluate_all(frame, probabilities, None, p, threads=threads, fixed=done))
         return
     recommended, learned_q = evaluated_regime(table, p.action_labels)  # cross-fitted (regime stage)
     side = [c for c in parquet_columns(table) if c.startswith("recommended_")]  # side-by-side regimes
@@ -331,6 +363,7 @@ def evaluate_stage(protocol, decisions, proba, table, values, threads=1):
             learned_folds=crossfit_folds(frame, p),
             learned_q=learned_q,
             threads=threads,
+            fixed=done,
         ),
     )
 
@@ -515,6 +548,7 @@ STAGES = {
     "behaviour": behaviour_stage,
     "crossfit": crossfit_stage,
     "regime": regime_stage,
+    "evaluate_fixed": evaluate_fixed_stage,
     "evaluate": evaluate_stage,
     "describe": describe_stage,
     "bootstrap_shard": bootstrap_shard_stage,
