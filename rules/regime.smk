@@ -21,12 +21,40 @@ rule crossfit:
         "scripts/run_stage.py"
 
 
-# ---- regime: constrained fitted-Q iteration --------------------------------------------------------------
-rule regime:
+# ---- regime_fit: the side-by-side regimes by constrained fitted-Q iteration, beside crossfit ----------------
+rule regime_fit:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
+    output:
+        # read by the regime rule only; not artifacts
+        fitted=temp(results("regime/fitted.parquet")),
+        fitted_summary=temp(results("regime/fitted.json")),
+    log:
+        logs("regime_fit"),
+    benchmark:
+        benchmarks("regime_fit")
+    params:
+        code=stage_code_hash("regime_fit"),
+    threads: stage_threads("regime_fit")
+    priority: 1  # on the critical path: before evaluate_fixed when both are ready
+    resources:
+        mem_mb=mem_mb("regime_fit"),
+        runtime=runtime("regime_fit"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+# ---- regime: the side-by-side and cross-fitted regimes joined into the recommendations and regime.json -------
+rule regime:
+    input:
+        protocol=SETTINGS.protocol_input,
+        decisions=results("validate/decisions.parquet"),
+        fitted=results("regime/fitted.parquet"),
+        fitted_summary=results("regime/fitted.json"),
         crossfit=results("regime/crossfit.parquet"),
     output:
         table=results("regime/recommendations.parquet"),

@@ -31,6 +31,8 @@ from regimewise.workflow.stages import (
     evaluate_fixed_stage,
     evaluate_stage,
     headline_contrast,
+    regime_fit_stage,
+    regime_join_stage,
     regime_stage,
     sensitivity_curves_stage,
     sensitivity_stage,
@@ -121,6 +123,64 @@ def test_the_regime_stage_writes_the_same_bytes_from_the_crossfit_jobs_table(coh
     assert written["alone"] == written["split"]
     evaluated = read_parquet(folder / "table_split.parquet", ["evaluated"])["evaluated"]
     assert (evaluated.to_numpy() == np.asarray(labels, dtype=object)[table["evaluated"].to_numpy()]).all()
+
+
+def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes(cohort):
+    # the workflow learns the side-by-side regimes in a job beside the crossfit job and joins the two afterwards;
+    # the outputs must be those the regime stage writes in one job
+    folder, _ = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    crossfit_stage(protocol, decisions, folder / "crossfit_j.parquet")
+    regime_stage(protocol, decisions, proba, folder / "t_one.parquet", folder / "r_one.json")
+    regime_fit_stage(protocol, decisions, proba, folder / "fitted.parquet", folder / "fitted.json")
+    regime_join_stage(
+        protocol,
+        decisions,
+        folder / "fitted.parquet",
+        folder / "fitted.json",
+        folder / "crossfit_j.parquet",
+        folder / "t_two.parquet",
+        folder / "r_two.json",
+    )
+    assert (folder / "t_one.parquet").read_bytes() == (folder / "t_two.parquet").read_bytes()
+    assert (folder / "r_one.json").read_bytes() == (folder / "r_two.json").read_bytes()
+    # a fitted table of other decisions is refused, not joined
+    write_parquet(folder / "fitted_other.parquet", read_parquet(folder / "fitted.parquet").iloc[1:])
+    with pytest.raises(UserInputError, match="does not hold the side-by-side regimes of these decisions"):
+        regime_join_stage(
+            protocol,
+            decisions,
+            folder / "fitted_other.parquet",
+            folder / "fitted.json",
+            folder / "crossfit_j.parquet",
+            folder / "t_x.parquet",
+            folder / "r_x.json",
+        )
+
+
+def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes_when_nothing_is_learned(cohort):
+    folder, _ = cohort
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    raw.pop("strategies")  # strategies built on the learned regime need one (tests/workflow/test_compare_only_run.py)
+    raw["analysis"] = {"learn_regime": False}
+    raw["evaluation"]["reference"] = "always_hold"
+    (folder / "no_learning.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    protocol, decisions, proba = folder / "no_learning.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    assert not load_protocol(protocol).protocol.analysis.learn_regime
+    regime_stage(protocol, decisions, proba, folder / "n_one.parquet", folder / "n_one.json")
+    crossfit_stage(protocol, decisions, folder / "n_cross.parquet")
+    regime_fit_stage(protocol, decisions, proba, folder / "n_fitted.parquet", folder / "n_fitted.json")
+    regime_join_stage(
+        protocol,
+        decisions,
+        folder / "n_fitted.parquet",
+        folder / "n_fitted.json",
+        folder / "n_cross.parquet",
+        folder / "n_two.parquet",
+        folder / "n_two.json",
+    )
+    assert (folder / "n_one.parquet").read_bytes() == (folder / "n_two.parquet").read_bytes()
+    assert (folder / "n_one.json").read_bytes() == (folder / "n_two.json").read_bytes()
 
 
 def test_the_regime_stage_refuses_a_crossfit_table_of_other_decisions(cohort):

@@ -13,6 +13,7 @@ import resource
 import sys
 import time
 import warnings
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -201,12 +202,12 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
     ``recommended_<variant>`` columns hold the side-by-side regimes (:data:`regimewise.regime.learning.SAFEGUARDS`); the
     ``evaluated`` column is what the evaluation scores: each patient's actions under the regime learned without
     that patient (:func:`regimewise.regime.learning.cross_fitted_recommendations`; equal to ``recommended`` with one
-    fold). ``crossfit``, the table of :func:`crossfit_stage` (the workflow's), gives those; without it the stage
-    learns the fold regimes itself (the same numbers).
+    fold). ``crossfit``, the table of :func:`crossfit_stage`, gives those; without it the stage learns the fold
+    regimes itself (the same numbers). The workflow splits this stage in two jobs, :func:`regime_fit_stage` (beside
+    the crossfit job) and :func:`regime_join_stage`, which write the same bytes.
 
-    ``threads`` (the rule's) of the fits run at once: the side-by-side regimes and the cross-fitted fold regimes
-    do not depend on each other (:func:`regimewise.core.concurrency.run_concurrently`; the outputs are the same
-    with any number).
+    ``threads`` of the fits run at once: the side-by-side regimes and the cross-fitted fold regimes do not depend
+    on each other (:func:`regimewise.core.concurrency.run_concurrently`; the outputs are the same with any number).
 
     With ``analysis.learn_regime: false`` nothing is learned: the table keeps the decisions' keys and the action
     taken only, and regime.json says that no regime was learned (:func:`no_regime_summary`).
@@ -214,25 +215,45 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     if not p.analysis.learn_regime:
-        write_parquet(table, frame[["episode_id", "step", "action"]].copy())
+        write_parquet(table, frame[RECORD_KEYS].copy())
         write_json(regime, no_regime_summary(p))
         return
     probabilities = read_probabilities(proba, p.action_labels)
-    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
-    X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
-    fits = variant_tasks(frame, probabilities, p, features, X=X)
-    if crossfit is None:
-        folds = crossfit_folds(frame, p)
-        cross_fits = [] if folds is None else cross_fit_tasks(frame, p, folds)
-    else:
-        cross_fits = []
-    # the fold regimes first: each also fits its own usual-care model, the longest tasks
-    done = run_concurrently([*cross_fits, *fits.values()], threads)
-    variants = dict(zip(fits, done[len(cross_fits) :]))
+    folds = crossfit_folds(frame, p) if crossfit is None else None
+    cross_fits = [] if folds is None else cross_fit_tasks(frame, p, folds)
+    learned, done = learn_side_by_side(p, frame, probabilities, cross_fits, threads)
     if crossfit is not None:
         crossfitted = read_crossfit(crossfit, frame, p.action_labels)
     else:
-        crossfitted = assemble_cross_fit(frame, p, done[: len(cross_fits)]) if cross_fits else None
+        crossfitted = assemble_cross_fit(frame, p, done) if cross_fits else None
+    del done
+    write_regime(p, frame, learned, crossfitted, table, regime)
+
+
+RECORD_KEYS = ["episode_id", "step", "action"]  # the decisions' columns the regime stage's table starts with
+
+
+@dataclass
+class SideBySide:
+    """What the side-by-side learnings give the regime stage's outputs: each regime's actions at the records
+    (``chosen``, {variant: codes}, the protocol's learned regime last), the learned regime's Q-values (n, K), the
+    permitted actions (n, K) and regime.json's summary without its ``cross_fit`` part."""
+
+    chosen: dict
+    q: np.ndarray
+    permitted: np.ndarray
+    summary: dict
+
+
+def learn_side_by_side(p, frame, probabilities, cross_fits, threads=1) -> tuple[SideBySide, list]:
+    """Learn the side-by-side regimes (and run the tasks ``cross_fits`` beside them, the longest first); returns
+    their :class:`SideBySide` and the results of ``cross_fits``."""
+    features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
+    X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
+    fits = variant_tasks(frame, probabilities, p, features, X=X)
+    # the fold regimes first: each also fits its own usual-care model, the longest tasks
+    done = run_concurrently([*cross_fits, *fits.values()], threads)
+    variants = dict(zip(fits, done[len(cross_fits) :]))
     rules = ClinicalRuleSet.from_protocol(p)
     # each regime's actions at the records it learned from (what its recommend returns there: clinical rules for
     # "rules" and "pessimistic"), kept by the fit rather than scored again
@@ -240,14 +261,10 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
     q = fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
-    del X, done
-    evaluated, evaluated_q = (recommended, None) if crossfitted is None else crossfitted
+    del X
     permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
-    write_recommendations(table, p, frame, chosen, evaluated, q if evaluated_q is None else evaluated_q, q, permitted)
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
     summary.update(safeguard_summary(p, frame, variants, chosen, probabilities, rules))
-    agreement = float(np.mean(evaluated == recommended))
-    summary["cross_fit"] = {"folds": p.evaluation.cross_fit_folds, "agreement": agreement}
     summary["readable"] = distill_regime(
         features.scaler.covariate_frame(frame),  # categorical states as their dummies, unscaled
         recommended,
@@ -257,7 +274,65 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
         random_state=0,
         subset_seed=stream_ints(p.seed, "readable_tree")[0],
     ).to_dict()  # the states, then the missing indicators the models use
-    write_json(regime, summary)
+    return SideBySide(chosen, q, permitted, summary), done[: len(cross_fits)]
+
+
+def write_regime(p, frame, learned: SideBySide, crossfitted, table, regime) -> None:
+    """Write the regime stage's table and regime.json from the side-by-side regimes and the cross-fitted ones
+    (``crossfitted``: :func:`read_crossfit`'s actions and Q-values, or None with one fold)."""
+    recommended = learned.chosen[list(learned.chosen)[-1]]
+    evaluated, evaluated_q = (recommended, learned.q) if crossfitted is None else crossfitted
+    write_recommendations(table, p, frame, learned.chosen, evaluated, evaluated_q, learned.q, learned.permitted)
+    cross_fit = {"folds": p.evaluation.cross_fit_folds, "agreement": float(np.mean(evaluated == recommended))}
+    write_json(regime, {**learned.summary, "cross_fit": cross_fit})
+
+
+def regime_fit_stage(protocol, decisions, proba, fitted, fitted_summary, threads=1):
+    """The workflow's first half of :func:`regime_stage`: learn the side-by-side regimes, which need usual care's
+    probabilities but not the cross-fitted fold regimes, so this job runs beside the crossfit job. Writes each
+    regime's action codes, the learned regime's Q-values and the permitted actions per decision (``fitted``) and
+    the summary (``fitted_summary``), temporary files of the workflow read by :func:`regime_join_stage`."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    if not p.analysis.learn_regime:
+        write_parquet(fitted, frame[["step"]].copy())
+        write_json(fitted_summary, no_regime_summary(p))
+        return
+    learned, _ = learn_side_by_side(p, frame, read_probabilities(proba, p.action_labels), [], threads)
+    out = frame[["step"]].copy()
+    for name, codes in learned.chosen.items():
+        out[f"chosen_{name}"] = np.asarray(codes).astype(np.min_scalar_type(max(len(p.action_labels) - 1, 0)))
+    out[[f"q_{a}" for a in p.action_labels]] = learned.q
+    out[[f"permitted_{a}" for a in p.action_labels]] = learned.permitted
+    write_parquet(fitted, out)
+    write_json(fitted_summary, learned.summary)
+
+
+def regime_join_stage(protocol, decisions, fitted, fitted_summary, crossfit, table, regime):
+    """The workflow's second half of :func:`regime_stage`: join the side-by-side regimes of
+    :func:`regime_fit_stage` with the cross-fitted fold regimes of :func:`crossfit_stage` into the regime stage's
+    table and regime.json (the same bytes as :func:`regime_stage`). Both files must be of these decisions."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions, RECORD_KEYS)
+    summary = read_json(fitted_summary)
+    columns = read_parquet(fitted)
+    if len(columns) != len(frame) or not np.array_equal(columns["step"].to_numpy(), frame["step"].to_numpy()):
+        raise UserInputError(
+            f"{fitted} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
+        )
+    if not p.analysis.learn_regime:
+        write_parquet(table, frame[RECORD_KEYS].copy())
+        write_json(regime, summary)
+        return
+    chosen = {c.removeprefix("chosen_"): columns[c].to_numpy() for c in columns.columns if c.startswith("chosen_")}
+    learned = SideBySide(
+        chosen,
+        columns[[f"q_{a}" for a in p.action_labels]].to_numpy(dtype=float),
+        columns[[f"permitted_{a}" for a in p.action_labels]].to_numpy(dtype=bool),
+        summary,
+    )
+    del columns
+    write_regime(p, frame, learned, read_crossfit(crossfit, frame, p.action_labels), table, regime)
 
 
 def write_recommendations(path, p, frame, chosen, evaluated, evaluated_q, q, permitted) -> None:
@@ -547,7 +622,8 @@ STAGES = {
     "validate": validate_stage,
     "behaviour": behaviour_stage,
     "crossfit": crossfit_stage,
-    "regime": regime_stage,
+    "regime_fit": regime_fit_stage,
+    "regime": regime_join_stage,
     "evaluate_fixed": evaluate_fixed_stage,
     "evaluate": evaluate_stage,
     "describe": describe_stage,
