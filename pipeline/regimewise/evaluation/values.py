@@ -50,8 +50,10 @@ class FeatureRows:
     def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol):
         self.features = features
         self.frame = frame
-        # the features read the states' columns only: a block gathers those, not the ids and labels
-        self.columns = [s.name for s in protocol.states if s.name in frame.columns]
+        # the features read the states' columns and the scaler's missing indicators: a block gathers those, not the
+        # ids and labels (a block without its indicator columns would read every indicator as 0)
+        wanted = [s.name for s in protocol.states] + list(features.scaler.indicators)
+        self.columns = [c for c in wanted if c in frame.columns]
         self.shape = (len(frame), len(features.names))
 
     def __len__(self) -> int:
