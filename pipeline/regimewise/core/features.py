@@ -12,6 +12,7 @@ lists covariates use it (missing-indicator method; Groenwold et al., CMAJ 2012;1
 
 from __future__ import annotations
 
+import functools
 import logging
 from dataclasses import dataclass
 
@@ -109,7 +110,12 @@ class StateScaler:
 
         The same two operations on every value as ``(unscaled - means) / scales``, the division in place in the
         centred result (the unscaled matrix may be a view of the frame's data, so it is not written)."""
-        scaled = np.subtract(self.unscaled(frame), np.asarray(self.means))
+        return self.scale(self.unscaled(frame))
+
+    def scale(self, unscaled: np.ndarray) -> np.ndarray:
+        """Covariate columns as :meth:`unscaled` gives them, centred and scaled (a new array; the input is not
+        written, as it may be a view of a frame's data)."""
+        scaled = np.subtract(unscaled, np.asarray(self.means))
         scaled /= np.asarray(self.scales)
         return scaled
 
@@ -218,6 +224,65 @@ def _split_constant_indicators(frame: pd.DataFrame, columns: tuple[str, ...]) ->
     return tuple(used), tuple(dropped)
 
 
+class StateArrays:
+    """The columns of a decision table that :meth:`StateScaler.unscaled` reads, taken out of the frame once as
+    numpy arrays, so that the covariates of any rows can be gathered many times (the evaluation's outcome models
+    read every step's rows of the features in every pass and every fold) without building a frame each time.
+
+    A numeric column is kept as the frame holds it (a float column is the frame's own data, not a copy) and turned
+    into floats for the rows asked for, as ``to_numpy(dtype=float)`` turns them; a column of another dtype (e.g. a
+    nullable one) is turned into floats once, whole. A categorical state is kept as its levels' codes, checked
+    against its levels once (:func:`level_values`), and a dummy is 1.0 where the code is its level's. A missing
+    indicator is read as :func:`indicator_values` reads it.
+    """
+
+    def __init__(self, scaler: StateScaler, frame: pd.DataFrame):
+        self.n = len(frame)
+        # the memory layout of StateScaler.unscaled: the frame's column block (column-major) when every covariate
+        # is a state column, numpy.column_stack (row-major) otherwise
+        self.order = "F" if not scaler.dummies and not scaler.indicators else "C"
+        codes = {state: _level_codes(level_values(frame, state, levels), levels) for state, levels in scaler.levels}
+        dummies = {column: (state, level) for column, state, level in scaler.dummies}
+        levels = dict(scaler.levels)
+        self.columns: list[tuple[np.ndarray, int | None]] = []  # per covariate: values, or codes and the level's
+        for name in scaler.names[: len(scaler.names) - len(scaler.indicators)]:
+            if name in dummies:
+                state, level = dummies[name]
+                self.columns.append((codes[state], levels[state].index(level)))
+            else:
+                self.columns.append((_numeric_column(frame[name]), None))
+        for column in scaler.indicators:
+            values = _numeric_column(frame[column]) if column in frame.columns else indicator_values(frame, column)
+            self.columns.append((values, None))
+
+    def unscaled(self, rows) -> np.ndarray:
+        """``StateScaler.unscaled(frame.iloc[rows])``: the same values in the same memory layout."""
+        m = len(np.arange(self.n)[rows]) if not _is_positions(rows) else len(rows)
+        out = np.empty((m, len(self.columns)), order=self.order)
+        for j, (values, level) in enumerate(self.columns):
+            picked = values[rows]
+            out[:, j] = picked if level is None else picked == level  # cast to float as to_numpy(dtype=float) does
+        return out
+
+
+def _is_positions(rows) -> bool:
+    return isinstance(rows, np.ndarray) and rows.dtype.kind in "iu"
+
+
+def _numeric_column(values: pd.Series) -> np.ndarray:
+    """A column as numpy holds it when its dtype is numpy's boolean, integer or float (cast per block later),
+    otherwise as floats (``to_numpy(dtype=float)``, whole)."""
+    raw = values.to_numpy()
+    return raw if raw.dtype.kind in "biuf" else values.to_numpy(dtype=float)
+
+
+def _level_codes(text: np.ndarray, levels: tuple[str, ...]) -> np.ndarray:
+    """Position in ``levels`` of each level text (all are among them: :func:`level_values` checked)."""
+    codes, uniques = pd.factorize(text, use_na_sentinel=False)
+    position = np.asarray([levels.index(u) for u in uniques], dtype=np.int64)
+    return position[codes].astype(np.min_scalar_type(max(len(levels) - 1, 0)))
+
+
 # Rows of the scaled states computed at a time (:func:`stack_by_blocks`): 65,536 rows of 8 states and their powers
 # are a few MB of temporaries, where the whole table's would be several times the size of the result.
 FEATURE_BLOCK_ROWS = 65_536
@@ -232,10 +297,17 @@ def stack_by_blocks(frame: pd.DataFrame, scaler: StateScaler, block, whole: list
     they were). The result is laid out as ``numpy.column_stack`` lays out these parts (:func:`_stacked_order`):
     matrix products downstream may round differently on another layout.
     """
-    out, n = None, len(frame)
+    return stack_parts_by_blocks(len(frame), lambda rows: block(scaler.transform(frame.iloc[rows])), whole)
+
+
+def stack_parts_by_blocks(n: int, parts_of_rows, whole: list) -> np.ndarray:
+    """:func:`stack_by_blocks` of ``n`` rows whose block columns ``parts_of_rows(rows)`` returns for a slice of
+    them, so that the states may come from elsewhere than a frame (:class:`StateArrays`) and the columns may be
+    read from what is kept of them (:class:`KeptPowers`)."""
+    out = None
     for start in range(0, max(n, 1), FEATURE_BLOCK_ROWS):
         rows = slice(start, start + FEATURE_BLOCK_ROWS)
-        parts = block(scaler.transform(frame.iloc[rows]))
+        parts = parts_of_rows(rows)
         if out is None:
             width = sum(part.shape[1] for part in [*parts, *whole])
             out = np.empty((n, width), order=_stacked_order([*parts, *whole]))
@@ -262,6 +334,51 @@ def _stacked_order(parts: list) -> str:
 
     stacked = np.column_stack([stand_in(part) for part in parts])
     return "F" if stacked.flags.f_contiguous and not stacked.flags.c_contiguous else "C"
+
+
+class KeptPowers:
+    """The powers above the square (cubes) of the numeric scaled states of the first rows of a table, computed once
+    and then read: a cube of a negative number is the slowest element-wise operation of the Q-features by far, and
+    the evaluation reads every row's features in every pass. Each element's power depends on that element alone
+    (the same bits whatever else is in the array, checked in the tests), so a kept power is the computed one.
+
+    Rows ``0 .. capacity - 1`` are kept, ``capacity`` being as many as ``budget`` bytes hold (all of a table
+    that fits); later rows are computed every time, so the memory stays bounded whatever the table's size. The
+    store is written as rows are first asked for, so its pages are taken only as they fill. Threads that read
+    different rows (the folds' outcome models) may share it: a row is marked as kept only after its powers are
+    written, and two threads that compute one row write the same bits.
+    """
+
+    def __init__(self, n: int, width: int, count: int, budget: int):
+        per_row = 8 * width * count
+        self.capacity = min(n, budget // per_row) if per_row else 0
+        self.store = np.empty((count, self.capacity, width))
+        self.kept = np.zeros(self.capacity, dtype=bool)
+
+    def powers(self, positions: np.ndarray, powered: np.ndarray, degrees) -> list[np.ndarray]:
+        """``[powered**k for k in degrees]`` for the rows at ``positions`` (``powered`` holds their numeric scaled
+        states), each in the memory layout of ``powered**k``; the kept rows read, the others computed (and kept
+        when there is room). ``degrees``: every degree above 2 of the features, in order."""
+        inside = np.flatnonzero(positions < self.capacity)
+        slots = positions[inside]
+        known = self.kept[slots]
+        read, write = inside[known], inside[~known]
+        fresh = np.ones(len(positions), dtype=bool)
+        fresh[read] = False
+        out = []
+        for i, k in enumerate(degrees):
+            if read.size:
+                values = np.empty_like(powered)  # the layout of powered**k
+                if read.size < len(positions):
+                    values[fresh] = powered[fresh] ** k
+                values[read] = self.store[i, slots[known]]
+            else:  # nothing kept yet (or past the capacity): computed as without a store
+                values = powered**k
+            if write.size:
+                self.store[i, slots[~known]] = values[write]
+            out.append(values)
+        self.kept[slots[~known]] = True
+        return out
 
 
 @dataclass(frozen=True)
@@ -306,15 +423,39 @@ class QFeatures:
     def transform(self, frame: pd.DataFrame) -> np.ndarray:
         """The Q-model's covariates (n, len(names)): the scaled states, their powers, then the terms' columns
         (:func:`stack_by_blocks`: the scaled states and their powers are computed a block of rows at a time)."""
-        linear, squared = self._linear(), list(self.squared)
-        powers = range(2, self.degree + 1) if squared else range(0)
-
-        def block(states):
-            powered = states[:, squared]
-            return [states[:, linear], *(powered**k for k in powers)]
-
         terms = [] if self.terms is None else [self.terms.transform(frame, uncentred(self.scaler, frame))]
-        return stack_by_blocks(frame, self.scaler, block, terms)
+        return stack_by_blocks(frame, self.scaler, self._block, terms)
+
+    def transform_arrays(self, states: StateArrays, rows, kept: KeptPowers | None = None) -> np.ndarray:
+        """``transform(frame.iloc[rows])`` from the frame's states taken out once (:class:`StateArrays`): the same
+        bits in the same memory layout, the rows gathered by numpy indexing instead of a frame built per call.
+        ``rows``: integer positions, a mask or a slice. ``kept`` (built for these states and features) holds the
+        powers above the square of the rows it has seen, read instead of computed again. Without
+        ``q_model.terms`` only (a term may read any column of the frame; :meth:`transform` serves then)."""
+        if self.terms is not None:
+            raise ValueError("features with q_model.terms are computed from the frame (QFeatures.transform)")
+        positions = rows if _is_positions(rows) else np.arange(states.n)[rows]
+
+        def parts(part):
+            at = positions[part]
+            power = None if kept is None else functools.partial(kept.powers, at)
+            return self._block(self.scaler.scale(states.unscaled(at)), power)
+
+        return stack_parts_by_blocks(len(positions), parts, [])
+
+    def _block(self, states: np.ndarray, power=None) -> list:
+        """The columns made of a block of scaled states: the linear ones, then each power of the numeric ones.
+        ``power(powered, degrees)`` may give the powers above the square (:meth:`KeptPowers.powers`)."""
+        squared = list(self.squared)
+        degrees = range(2, self.degree + 1) if squared else range(0)
+        powered = states[:, squared]
+        if power is None or len(degrees) < 2:
+            return [states[:, self._linear()], *(powered**k for k in degrees)]
+        return [states[:, self._linear()], powered**2, *power(powered, degrees[1:])]
+
+    def kept_powers(self, n: int, budget: int) -> KeptPowers:
+        """A :class:`KeptPowers` for ``n`` rows of these features in at most ``budget`` bytes."""
+        return KeptPowers(n, len(self.squared), max(self.degree - 2, 0) if self.squared else 0, budget)
 
     @property
     def names(self) -> list[str]:

@@ -184,14 +184,17 @@ def importance_weights(
     ratio = np.ones(shape)
     followed = np.ones(shape, dtype=bool)
     unseen = 0
+    # the grids' cells in row-major order: a decision's cell is episode * horizon + step
+    ratio_cells, followed_cells = ratio.reshape(-1), followed.reshape(-1)
     for start in range(0, n, WEIGHT_ROWS):  # a block of rows at a time: no n-sized temporaries per regime
-        rows = np.arange(start, min(start + WEIGHT_ROWS, n))
-        taken_b, taken_e = behaviour_proba[rows, action[rows]], target_proba[rows, action[rows]]
-        unseen += _check_positivity(
-            taken_b, action[rows], behaviour_proba[rows], target_proba[rows], action_labels, first_row=start
-        )
-        ratio[episode[rows], step[rows]] = taken_e / taken_b
-        followed[episode[rows], step[rows]] = taken_e >= 1 - _FOLLOW_TOLERANCE
+        rows = slice(start, min(start + WEIGHT_ROWS, n))  # views of the block, not copies
+        taken, behaviour, target = action[rows], behaviour_proba[rows], target_proba[rows]
+        at = np.arange(taken.shape[0])
+        taken_b, taken_e = behaviour[at, taken], target[at, taken]
+        unseen += _check_positivity(taken_b, taken, behaviour, target, action_labels, first_row=start)
+        cells = episode[rows] * horizon + step[rows]
+        ratio_cells[cells] = taken_e / taken_b
+        followed_cells[cells] = taken_e >= 1 - _FOLLOW_TOLERANCE
     if unseen:
         warnings.warn(
             f"at {unseen} decisions the evaluated regime gives probability to an action usual care never takes; "
