@@ -144,35 +144,41 @@ def _truncation_bounds(weights, truncate):
     return float(np.percentile(weights, low)), float(np.percentile(weights, high))
 
 
-def _decision_rows(timeline, weight):
-    """Kept decisions with a positive weight, as rows."""
-    follow = weight > 0
-    code = timeline.episode[follow]
-    last = timeline.stop[follow] == timeline.end[code]
+def _block_cumprod(values, position):
+    """Running product of ``values`` within each episode's block (``position``: place in the block, 0, 1, ...).
+
+    The products are formed in the order a grouped running product forms them (1·v_0, then ·v_1, ...), one
+    place in the block at a time for all episodes together, so every product is the same float."""
+    out = np.array(values, dtype=float)
+    for place in range(1, int(position.max(initial=0)) + 1):
+        at = np.flatnonzero(position == place)
+        out[at] = out[at - 1] * out[at]
+    return out
+
+
+def _assemble(timeline, weight):
+    """Pre-decision rows (weight 1) and the kept decisions with a positive weight, sorted by episode then start,
+    with identifiers; zero-length rows dropped (see :attr:`Timeline.clone_rows`).
+
+    The columns are those of the pre-decision rows followed by ``step`` and ``weight`` when there are
+    pre-decision rows, the decisions' order otherwise: the order a concatenation of the two would give."""
+    every = timeline.clone_rows
+    decision = every["decision"]
+    pre = decision < 0
+    row_weight = np.where(pre, 1.0, weight[np.where(pre, 0, decision)]) if decision.size else np.zeros(0)
+    keep = pre | (row_weight > 0)
+    code = every["episode"][keep]
+    columns = {name: every[name][keep] for name in ("start", "stop", "event", "step")}
+    columns["weight"] = row_weight[keep]
+    order = ["start", "stop", "event", "step"] if every["has_pre"] else ["step", "start", "stop", "event"]
     return pd.DataFrame(
         {
             "episode": code,
-            "step": timeline.step[follow],
-            "start": timeline.start[follow],
-            "stop": timeline.stop[follow],
-            "event": last & timeline.event[code],
-            "weight": weight[follow],
+            "episode_id": timeline.episode_ids[code],
+            "patient_id": timeline.patient_ids[code],
+            **{name: columns[name] for name in [*order, "weight"]},
         }
     )
-
-
-def _assemble(timeline, decision_rows):
-    """Pre-decision rows (weight 1) and decision rows, sorted, with identifiers; zero-length rows dropped."""
-    pre = timeline.pre_rows().assign(step=-1, weight=1.0)
-    rows = pd.concat([pre, decision_rows], ignore_index=True) if len(pre) else decision_rows
-    rows = rows[rows["stop"] > rows["start"]]
-    rows = rows.sort_values(["episode", "start"], kind="stable").reset_index(drop=True)
-    code = rows["episode"].to_numpy()
-    rows.insert(1, "episode_id", timeline.episode_ids[code])
-    rows.insert(2, "patient_id", timeline.patient_ids[code])
-    rows["event"] = rows["event"].astype(bool)
-    rows["step"] = rows["step"].astype(np.int64)
-    return rows
 
 
 def clone_censor_weight(
@@ -219,10 +225,11 @@ def clone_censor_weight(
     """
     grace = nonnegative_int(grace, "grace")
     ratio, kind = _follow_ratio(timeline, strategy_proba, grace)
-    weight = pd.Series(ratio).groupby(timeline.episode, sort=False).cumprod().to_numpy()
-    n_censored = int(np.unique(timeline.episode[weight == 0]).shape[0])
+    weight = _block_cumprod(ratio, timeline.block_position)
+    censored = timeline.episode[weight == 0]  # episode codes are sorted: count where the code changes
+    n_censored = int(censored.shape[0] and 1 + np.count_nonzero(censored[1:] != censored[:-1]))
     weight = weight * _censoring_factor(timeline, censoring_weights)
-    rows = _assemble(timeline, _decision_rows(timeline, weight))
+    rows = _assemble(timeline, weight)
     bounds = None
     if truncate is not None:
         bounds = _truncation_bounds(rows["weight"].to_numpy(), truncate)

@@ -23,6 +23,7 @@ available. American Journal of Epidemiology 183:758 (time zero, follow-up, horiz
 """
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import pandas as pd
@@ -105,6 +106,42 @@ class Timeline:
         stop = np.minimum(self.first_day[has], self.end[has])
         event = self.event[has] & (self.end[has] <= self.first_day[has])
         return pd.DataFrame({"episode": codes, "start": 0.0, "stop": stop, "event": event})
+
+    @cached_property
+    def block_position(self):
+        """Position of each kept decision inside its episode's block of kept decisions (0, 1, ...)."""
+        first = np.ones(self.episode.shape[0], dtype=bool)
+        first[1:] = self.episode[1:] != self.episode[:-1]
+        starts = np.flatnonzero(first)
+        return np.arange(self.episode.shape[0]) - starts[np.cumsum(first) - 1]
+
+    @cached_property
+    def clone_rows(self):
+        """Every row a clone table can hold, in table order, computed once for all strategies.
+
+        A dict of arrays: the pre-decision rows and the kept decisions, of positive length (``stop > start``),
+        sorted by episode, then start (a stable sort), with columns ``episode``, ``start``, ``stop``, ``event``
+        (an event on the episode's last row), ``step`` (-1 before the first decision) and ``decision`` (position
+        in the kept decisions; -1 for a pre-decision row); and ``has_pre``, whether there is any pre-decision
+        row. A clone table keeps every pre-decision row and the decisions its clones still follow, so its rows
+        are these with the others left out, in the order a stable sort of that subset would give.
+        """
+        pre = self.pre_rows()
+        n_pre = len(pre)
+        last = self.stop == self.end[self.episode]
+        columns = {
+            "episode": np.concatenate([pre["episode"].to_numpy(), self.episode]),
+            "start": np.concatenate([pre["start"].to_numpy(), self.start]),
+            "stop": np.concatenate([pre["stop"].to_numpy(), self.stop]),
+            "event": np.concatenate([pre["event"].to_numpy(), last & self.event[self.episode]]),
+            "step": np.concatenate([np.full(n_pre, -1, dtype=np.int64), self.step]),
+            "decision": np.concatenate([np.full(n_pre, -1, dtype=np.int64), np.arange(self.episode.shape[0])]),
+        }
+        positive = np.flatnonzero(columns["stop"] > columns["start"])
+        order = positive[np.lexsort((columns["start"][positive], columns["episode"][positive]))]
+        out = {name: values[order] for name, values in columns.items()}
+        out["has_pre"] = n_pre > 0
+        return out
 
 
 def _episode_codes(episode_ids, step):
