@@ -70,13 +70,15 @@ def product_limit(start, stop, event, weight):
     """
     start, stop, weight = (np.asarray(x, dtype=float) for x in (start, stop, weight))
     event = np.asarray(event, dtype=bool) & (weight > 0)
-    times = np.unique(stop[event])
-    died = np.bincount(np.searchsorted(times, stop[event]), weights=weight[event], minlength=times.shape[0])
     order_stop, order_start = np.argsort(stop), np.argsort(start)
+    sorted_stop = stop[order_stop]
+    event_stops = sorted_stop[event[order_stop]]  # increasing: distinct values where they change
+    times = event_stops[np.append(True, event_stops[1:] != event_stops[:-1])] if event_stops.size else event_stops
+    died = np.bincount(np.searchsorted(times, stop[event]), weights=weight[event], minlength=times.shape[0])
     tail_stop = np.append(np.cumsum(weight[order_stop][::-1])[::-1], 0.0)
     tail_start = np.append(np.cumsum(weight[order_start][::-1])[::-1], 0.0)
     at_risk = (
-        tail_stop[np.searchsorted(stop[order_stop], times, side="left")]
+        tail_stop[np.searchsorted(sorted_stop, times, side="left")]
         - tail_start[np.searchsorted(start[order_start], times, side="left")]
     )  # weight with stop >= τ minus weight with start >= τ: rows with start < τ <= stop
     return times, np.cumprod(1.0 - died / at_risk)
@@ -101,18 +103,28 @@ def kaplan_meier(table, label=None):
     lifelines.KaplanMeierFitter or None
         None when no row has a positive weight.
     """
-    rows = table.rows[table.rows["weight"] > 0]
-    if rows.empty:
+    columns = _positive_weight_columns(table.rows)
+    if columns["weights"].size == 0:
         return None
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=NON_INTEGER_WEIGHTS)
-        return KaplanMeierFitter().fit(
-            durations=rows["stop"].to_numpy(dtype=float),
-            event_observed=rows["event"].to_numpy(dtype=bool),
-            entry=rows["start"].to_numpy(dtype=float),
-            weights=rows["weight"].to_numpy(dtype=float),
-            label=label or table.name,
-        )
+        return KaplanMeierFitter().fit(**columns, label=label or table.name)
+
+
+def _positive_weight_columns(rows):
+    """The ``stop``, ``event``, ``start`` and ``weight`` columns of the rows with a positive weight, as arrays
+    named for ``KaplanMeierFitter.fit``; only the four columns are filtered (no other column is copied), and
+    not at all when every weight is positive, as clone tables' weights are."""
+    columns = {
+        "durations": rows["stop"].to_numpy(dtype=float),
+        "event_observed": rows["event"].to_numpy(dtype=bool),
+        "entry": rows["start"].to_numpy(dtype=float),
+        "weights": rows["weight"].to_numpy(dtype=float),
+    }
+    positive = columns["weights"] > 0
+    if positive.all():
+        return columns
+    return {name: values[positive] for name, values in columns.items()}
 
 
 @dataclass(frozen=True, eq=False)
