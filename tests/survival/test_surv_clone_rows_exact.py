@@ -124,3 +124,11 @@ def test_block_running_product_is_the_grouped_one():
     values[rng.random(episode.size) < 0.1] = 0.0
     expected = pd.Series(values).groupby(episode, sort=False).cumprod().to_numpy()
     assert np.array_equal(_block_cumprod(values, position).view(np.int64), expected.view(np.int64))
+
+
+def test_patients_are_each_episodes_first_patient_id():
+    decisions, episodes, proba, _ = random_cohort(13, n_episodes=80, n_steps=3)
+    timeline = make_timeline(decisions, episodes, proba, horizon=100)
+    expected = decisions.groupby("episode_id", sort=False)["patient_id"].first()
+    assert timeline.patient_ids.tolist() == expected.loc[timeline.episode_ids].tolist()
+    assert timeline.patient_ids.dtype == object

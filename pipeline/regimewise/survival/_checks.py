@@ -48,9 +48,9 @@ def probability_matrix(values, what, n_rows, n_actions=None):
     if array.ndim != 2 or array.shape[0] != n_rows or (n_actions is not None and array.shape[1] != n_actions):
         expected = f"({n_rows}, {'K' if n_actions is None else n_actions})"
         raise UserInputError(f"{what} has shape {array.shape} but {expected} is needed: one row per decision")
-    if not np.all(np.isfinite(array)):
-        raise UserInputError(f"{what} has {int(np.sum(~np.isfinite(array)))} missing or infinite value(s)")
-    if np.any(array < 0) or np.any(array > 1):
+    if not np.all((array >= 0) & (array <= 1)):  # one pass when all is well: NaN and ±inf fail it too
+        if not np.all(np.isfinite(array)):
+            raise UserInputError(f"{what} has {int(np.sum(~np.isfinite(array)))} missing or infinite value(s)")
         outside = int(np.sum((array < 0) | (array > 1)))
         raise UserInputError(f"{what} has {outside} value(s) outside [0, 1]: pass probabilities, not scores")
     worst = float(np.max(np.abs(array.sum(axis=1) - 1.0)))

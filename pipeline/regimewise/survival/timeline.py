@@ -207,10 +207,10 @@ def _patients(decisions, code, episode_ids):
     if "patient_id" not in decisions.columns:
         return np.asarray(episode_ids, dtype=object)
     patient = decisions["patient_id"].astype(str).to_numpy()
-    per_episode = pd.Series(patient).groupby(code).nunique()
-    if int(per_episode.max()) > 1:
+    same_episode = code[1:] == code[:-1]  # an episode's rows are contiguous: compare each row with the one before
+    if np.any(patient[1:][same_episode] != patient[:-1][same_episode]):
         raise UserInputError("an episode has more than one patient_id: each episode belongs to one patient")
-    first = np.unique(code, return_index=True)[1]
+    first = np.flatnonzero(np.append(True, ~same_episode))
     return patient[first].astype(object)
 
 
