@@ -171,13 +171,14 @@ def _assemble(timeline, weight):
     columns = {name: every[name][keep] for name in ("start", "stop", "event", "step")}
     columns["weight"] = row_weight[keep]
     order = ["start", "stop", "event", "step"] if every["has_pre"] else ["step", "start", "stop", "event"]
-    return pd.DataFrame(
+    return pd.DataFrame(  # the arrays are fresh: copy=False keeps one block per column instead of stacking copies
         {
             "episode": code,
             "episode_id": timeline.episode_ids[code],
             "patient_id": timeline.patient_ids[code],
             **{name: columns[name] for name in [*order, "weight"]},
-        }
+        },
+        copy=False,
     )
 
 
