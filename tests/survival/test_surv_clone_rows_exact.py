@@ -12,6 +12,7 @@ import pandas as pd
 import pytest
 from surv_helpers import one_hot, random_cohort
 
+from regimewise.errors import UserInputError
 from regimewise.survival import clone_censor_weight, make_timeline
 from regimewise.survival.clones import _block_cumprod
 
@@ -132,3 +133,35 @@ def test_patients_are_each_episodes_first_patient_id():
     expected = decisions.groupby("episode_id", sort=False)["patient_id"].first()
     assert timeline.patient_ids.tolist() == expected.loc[timeline.episode_ids].tolist()
     assert timeline.patient_ids.dtype == object
+
+
+@pytest.mark.parametrize("grace", [0, 2])
+def test_action_codes_give_the_table_of_their_one_hot_matrix(grace):
+    decisions, episodes, proba, _ = random_cohort(17, n_episodes=200, n_steps=4)
+    timeline = make_timeline(decisions, episodes, proba, horizon=110)
+    rng = np.random.default_rng(17)
+    ipcw = rng.uniform(1.0, 2.0, size=timeline.row.shape[0])
+    taken = decisions["action"].to_numpy()
+    for codes in (rng.integers(0, 3, size=len(decisions)).astype(np.uint8), (taken + 1) % 3, np.full(len(taken), 1)):
+        by_codes = clone_censor_weight(timeline, codes, grace=grace, censoring_weights=ipcw, truncate=(1, 99))
+        by_matrix = clone_censor_weight(
+            timeline, one_hot(codes, 3), grace=grace, censoring_weights=ipcw, truncate=(1, 99)
+        )
+        pd.testing.assert_frame_equal(by_codes.rows, by_matrix.rows, check_exact=True)
+        assert by_codes.to_dict() == by_matrix.to_dict() and by_codes.kind == "deterministic"
+
+
+@pytest.mark.parametrize(
+    "codes, match",
+    [
+        (np.full(5, 1), r"has shape \(5,\) but"),
+        (np.full(180, 3), "codes 0..2"),
+        (np.full(180, -1), "codes 0..2"),
+        (np.full(180, 1.0), "must be integer action codes"),
+    ],
+)
+def test_bad_action_codes_are_refused(codes, match):
+    decisions, episodes, proba, _ = random_cohort(19, n_episodes=60, n_steps=3)
+    timeline = make_timeline(decisions, episodes, proba, horizon=100)
+    with pytest.raises(UserInputError, match=match):
+        clone_censor_weight(timeline, codes)

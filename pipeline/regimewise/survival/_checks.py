@@ -59,6 +59,18 @@ def probability_matrix(values, what, n_rows, n_actions=None):
     return array
 
 
+def action_code_vector(values, what, n_rows, n_actions):
+    """Return ``values`` as (n_rows,) integer action codes in 0..n_actions-1."""
+    array = np.asarray(values)
+    if array.ndim != 1 or array.shape[0] != n_rows:
+        raise UserInputError(f"{what} has shape {array.shape} but ({n_rows},) is needed: one code per decision")
+    if array.dtype.kind not in "iu":
+        raise UserInputError(f"{what} must be integer action codes, not {array.dtype}: encode the actions first")
+    if array.size and (array.min() < 0 or array.max() >= n_actions):
+        raise UserInputError(f"{what} must be action codes 0..{n_actions - 1}: encode the actions first")
+    return array
+
+
 def positive_probability(values, what):
     """Refuse probabilities of the action taken that are not in (0, 1] (positivity)."""
     if np.any(values <= 0):

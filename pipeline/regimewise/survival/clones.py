@@ -48,7 +48,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.errors import UserInputError
-from regimewise.survival._checks import finite_vector, nonnegative_int, probability_matrix
+from regimewise.survival._checks import action_code_vector, finite_vector, nonnegative_int, probability_matrix
 from regimewise.survival._results import plain
 
 __all__ = ["CloneTable", "clone_censor_weight"]
@@ -111,12 +111,21 @@ class CloneTable:
 
 
 def _follow_ratio(timeline, strategy_proba, grace):
-    """Per kept decision: π_s(a_taken) / p̂(a_taken), 1 inside the grace period; and the strategy's kind."""
+    """Per kept decision: π_s(a_taken) / p̂(a_taken), 1 inside the grace period; and the strategy's kind.
+
+    A strategy given as (n,) action codes is the one-hot strategy of those codes: its probability of the action
+    taken is 1.0 or 0.0, the same floats its one-hot matrix holds, so the ratios are the same numbers."""
     if strategy_proba is None:
         return np.ones(timeline.row.shape[0]), NATURAL_COURSE
-    strategy = probability_matrix(strategy_proba, "strategy probabilities", timeline.n_decisions, timeline.n_actions)
-    kind = DETERMINISTIC if np.all((strategy == 0) | (strategy == 1)) else STOCHASTIC
-    ratio = strategy[timeline.row, timeline.action] / timeline.proba_taken
+    if np.ndim(strategy_proba) == 1:
+        codes = action_code_vector(strategy_proba, "strategy action codes", timeline.n_decisions, timeline.n_actions)
+        followed = np.where(codes[timeline.row] == timeline.action, 1.0, 0.0)
+        ratio, kind = followed / timeline.proba_taken, DETERMINISTIC
+    else:
+        n, k = timeline.n_decisions, timeline.n_actions
+        strategy = probability_matrix(strategy_proba, "strategy probabilities", n, k)
+        kind = DETERMINISTIC if np.all((strategy == 0) | (strategy == 1)) else STOCHASTIC
+        ratio = strategy[timeline.row, timeline.action] / timeline.proba_taken
     ratio[timeline.step < grace] = 1.0
     return ratio, kind
 
@@ -191,9 +200,10 @@ def clone_censor_weight(
     ----------
     timeline : Timeline
         From :func:`regimewise.survival.make_timeline`.
-    strategy_proba : array_like, shape (n, K), optional
-        The strategy's probability of each action at each input decision (one-hot for a deterministic strategy).
-        None means the natural course (usual care): weight 1, no artificial censoring.
+    strategy_proba : array_like, shape (n, K) or (n,), optional
+        The strategy's probability of each action at each input decision (one-hot for a deterministic strategy),
+        or for a deterministic strategy its (n,) integer action codes (the same as their one-hot matrix, without
+        building it). None means the natural course (usual care): weight 1, no artificial censoring.
     name : str
         Label carried into the results.
     grace : int
