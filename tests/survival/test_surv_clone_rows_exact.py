@@ -15,6 +15,7 @@ from surv_helpers import one_hot, random_cohort
 from regimewise.errors import UserInputError
 from regimewise.survival import clone_censor_weight, make_timeline
 from regimewise.survival.clones import _block_cumprod
+from regimewise.survival.timeline import _merged_order
 
 
 def _reference_rows(timeline, ratio, censoring_weights):
@@ -165,3 +166,20 @@ def test_bad_action_codes_are_refused(codes, match):
     timeline = make_timeline(decisions, episodes, proba, horizon=100)
     with pytest.raises(UserInputError, match=match):
         clone_censor_weight(timeline, codes)
+
+
+def test_merged_order_is_the_stable_sort():
+    decisions, episodes, proba, _ = random_cohort(23, n_episodes=150, n_steps=4)
+    timeline = make_timeline(decisions, episodes, proba, horizon=120)
+    pre = timeline.pre_rows()
+    episode = np.concatenate([pre["episode"].to_numpy(), timeline.episode])
+    start = np.concatenate([pre["start"].to_numpy(), timeline.start])
+    order = _merged_order(episode, start, len(pre), timeline.n_episodes)
+    assert np.array_equal(order, np.lexsort((start, episode)))
+    # keys a timeline cannot have (an episode's second decision before its first): counting would misplace
+    # it, so the stable sort decides
+    second = len(pre) + np.flatnonzero(timeline.block_position == 1)[0]
+    start[second] = start[second - 1] - 0.5
+    order = _merged_order(episode, start, len(pre), timeline.n_episodes)
+    assert np.array_equal(order, np.lexsort((start, episode)))
+    assert order[np.flatnonzero(order == second)[0] + 1] == second - 1

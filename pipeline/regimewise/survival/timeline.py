@@ -137,11 +137,32 @@ class Timeline:
             "step": np.concatenate([np.full(n_pre, -1, dtype=np.int64), self.step]),
             "decision": np.concatenate([np.full(n_pre, -1, dtype=np.int64), np.arange(self.episode.shape[0])]),
         }
-        positive = np.flatnonzero(columns["stop"] > columns["start"])
-        order = positive[np.lexsort((columns["start"][positive], columns["episode"][positive]))]
+        order = _merged_order(columns["episode"], columns["start"], n_pre, self.n_episodes)
+        order = order[columns["stop"][order] > columns["start"][order]]
         out = {name: values[order] for name, values in columns.items()}
         out["has_pre"] = n_pre > 0
         return out
+
+
+def _merged_order(episode, start, n_pre, n_episodes):
+    """Order of the pre-decision rows (the first ``n_pre``, one per episode at most) and the decisions (the rest,
+    by episode) by episode, then start: the order a stable sort gives (``np.lexsort``).
+
+    Each episode's pre-decision row goes just before its decisions, found by counting (no sort); the result is
+    kept when the keys it gives increase strictly, as they do for a timeline (a pre-decision row starts at 0,
+    before the first decision day, and decision days increase), since a stable sort can give no other order of
+    distinct keys. Otherwise the stable sort decides."""
+    pre, decisions = episode[:n_pre], episode[n_pre:]
+    per_episode = np.bincount(decisions, minlength=n_episodes)
+    decisions_before = np.concatenate([[0], np.cumsum(per_episode)])[pre]
+    pre_through = np.cumsum(np.bincount(pre, minlength=n_episodes))[decisions] if n_pre else 0
+    order = np.zeros(episode.shape[0], dtype=np.int64)  # strictly increasing keys below make it a permutation
+    order[np.arange(n_pre) + decisions_before] = np.arange(n_pre)
+    order[np.arange(decisions.shape[0]) + pre_through] = np.arange(n_pre, episode.shape[0])
+    e, t = episode[order], start[order]
+    if np.all((e[1:] > e[:-1]) | ((e[1:] == e[:-1]) & (t[1:] > t[:-1]))):
+        return order
+    return np.lexsort((start, episode))
 
 
 def _episode_codes(episode_ids, step):
