@@ -49,7 +49,8 @@ def survival_inputs(decisions: pd.DataFrame, episodes: pd.DataFrame, protocol: P
             f"survival.horizon_days is {spec.horizon_days:g} but the longest follow-up in the episodes table is "
             f"{longest:g} days; lower the horizon to at most the longest follow-up"
         )
-    frame = decisions[["episode_id", "patient_id", "step", "day"]].copy()
+    columns = ("episode_id", "patient_id", "step", "day")  # read, never written: the frame need not copy them
+    frame = pd.DataFrame({name: decisions[name] for name in columns}, copy=False)
     frame["action"] = action_codes(decisions, protocol.action_labels)
     return frame, episodes[["episode_id", "followup_days", "event"]]
 
