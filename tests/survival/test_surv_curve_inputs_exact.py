@@ -2,6 +2,8 @@
 
 * :func:`product_limit` reads its distinct event times off the stop-sorted rows; the reference is
   ``np.unique(stop[event & (weight > 0)])`` and the rest of the estimator as written before.
+* Clone tables holding every row of their timeline share one pair of sorts (``CloneTable.sort_orders``); the
+  diagnostics from them equal those of the table sorting its own rows.
 * :func:`kaplan_meier` passes lifelines the four columns of the rows with a positive weight without copying the
   clone table; the reference fits lifelines' ``KaplanMeierFitter`` on the filtered frame, as before.
 
@@ -9,6 +11,8 @@ Data: lifelines' shipped Gehan 6-MP remission data (``lifelines/datasets/gehan.d
 times and weights added, and random clone tables with ties on decision days, zero weights and censoring.
 """
 
+import dataclasses
+import json
 import warnings
 
 import numpy as np
@@ -17,7 +21,8 @@ import pytest
 from lifelines import KaplanMeierFitter
 from surv_helpers import gehan, one_hot, random_cohort
 
-from regimewise.survival import clone_censor_weight, kaplan_meier, make_timeline, product_limit
+from regimewise.errors import UserInputError
+from regimewise.survival import clone_censor_weight, follow_diagnostics, kaplan_meier, make_timeline, product_limit
 from regimewise.survival.clones import CloneTable
 
 
@@ -111,3 +116,33 @@ def test_kaplan_meier_of_clone_tables_equals_the_filtered_frame(seed):
 def test_kaplan_meier_of_a_table_no_clone_follows_is_none():
     rows = pd.DataFrame({"start": [0.0], "stop": [4.0], "event": [True], "weight": [0.0]})
     assert kaplan_meier(CloneTable("nobody", rows, 1, "deterministic", 0, 1, None)) is None
+
+
+def _diagnostics_bits(table, grid):
+    out = follow_diagnostics(table, grid, 5.0).to_dict()
+    return json.dumps(out, sort_keys=True, allow_nan=True)
+
+
+def test_tables_with_every_row_share_sorts_that_give_the_same_diagnostics():
+    decisions, episodes, proba, _ = random_cohort(31, n_episodes=300, n_steps=4)
+    timeline = make_timeline(decisions, episodes, proba, horizon=120)
+    ipcw = np.random.default_rng(31).uniform(1.0, 2.5, size=timeline.row.shape[0])
+    usual = clone_censor_weight(timeline, None, censoring_weights=ipcw)
+    stochastic = clone_censor_weight(timeline, proba[::-1], censoring_weights=ipcw, truncate=(2, 98))
+    censoring = clone_censor_weight(timeline, one_hot(np.zeros(len(decisions), dtype=int), 3))
+    assert usual.sort_orders is not None and stochastic.sort_orders is usual.sort_orders
+    assert censoring.sort_orders is None and censoring.n_censored > 0
+    grid = np.arange(0.0, 121.0, 10.0)
+    for table in (usual, stochastic):
+        unsorted = dataclasses.replace(table, sort_orders=None)
+        assert _diagnostics_bits(table, grid) == _diagnostics_bits(unsorted, grid)
+        rows = table.rows
+        shared = product_limit(rows["start"], rows["stop"], rows["event"], rows["weight"], table.sort_orders)
+        own = product_limit(rows["start"], rows["stop"], rows["event"], rows["weight"])
+        assert all(np.array_equal(_bits(a), _bits(b)) for a, b in zip(shared, own, strict=True))
+
+
+def test_product_limit_refuses_orders_of_other_rows():
+    orders = (np.arange(2), np.arange(2))
+    with pytest.raises(UserInputError, match="argsorts of these stop and start"):
+        product_limit([0.0, 0.0, 1.0], [1.0, 2.0, 3.0], [True, False, True], [1.0, 1.0, 1.0], orders)

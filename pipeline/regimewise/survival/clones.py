@@ -42,7 +42,7 @@ Am J Epidemiol 168:656.
 """
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -81,6 +81,10 @@ class CloneTable:
         Clones whose weight became 0 (artificially censored at a deviation).
     truncation : tuple of float or None
         Lower and upper weight bounds applied, or None.
+    sort_orders : tuple of ndarray or None
+        ``(np.argsort(stop), np.argsort(start))`` of the rows when the table holds every row its timeline can
+        give (usual care, and strategies that censor no clone): the same arrays for all such tables of a
+        timeline, sorted once (:attr:`Timeline.clone_row_sorts`). None otherwise.
     """
 
     name: str
@@ -90,6 +94,7 @@ class CloneTable:
     grace: int
     n_censored: int
     truncation: tuple | None
+    sort_orders: tuple | None = field(default=None, repr=False)
 
     def to_dict(self):
         """Summary (not the rows) with plain JSON values; keys sorted."""
@@ -167,7 +172,8 @@ def _block_cumprod(values, position):
 
 def _assemble(timeline, weight):
     """Pre-decision rows (weight 1) and the kept decisions with a positive weight, sorted by episode then start,
-    with identifiers; zero-length rows dropped (see :attr:`Timeline.clone_rows`).
+    with identifiers; zero-length rows dropped (see :attr:`Timeline.clone_rows`). Returns the rows and whether
+    they are every row of :attr:`Timeline.clone_rows`.
 
     The columns are those of the pre-decision rows followed by ``step`` and ``weight`` when there are
     pre-decision rows, the decisions' order otherwise: the order a concatenation of the two would give."""
@@ -180,7 +186,7 @@ def _assemble(timeline, weight):
     columns = {name: every[name][keep] for name in ("start", "stop", "event", "step")}
     columns["weight"] = row_weight[keep]
     order = ["start", "stop", "event", "step"] if every["has_pre"] else ["step", "start", "stop", "event"]
-    return pd.DataFrame(  # the arrays are fresh: copy=False keeps one block per column instead of stacking copies
+    rows = pd.DataFrame(  # the arrays are fresh: copy=False keeps one block per column instead of stacking copies
         {
             "episode": code,
             "episode_id": timeline.episode_ids[code],
@@ -189,6 +195,7 @@ def _assemble(timeline, weight):
         },
         copy=False,
     )
+    return rows, bool(keep.all())
 
 
 def clone_censor_weight(
@@ -240,7 +247,7 @@ def clone_censor_weight(
     censored = timeline.episode[weight == 0]  # episode codes are sorted: count where the code changes
     n_censored = int(censored.shape[0] and 1 + np.count_nonzero(censored[1:] != censored[:-1]))
     weight = weight * _censoring_factor(timeline, censoring_weights)
-    rows = _assemble(timeline, weight)
+    rows, every_row = _assemble(timeline, weight)
     bounds = None
     if truncate is not None:
         bounds = _truncation_bounds(rows["weight"].to_numpy(), truncate)
@@ -254,4 +261,5 @@ def clone_censor_weight(
         grace=grace,
         n_censored=n_censored,
         truncation=bounds,
+        sort_orders=timeline.clone_row_sorts if every_row else None,
     )

@@ -40,7 +40,7 @@ NON_INTEGER_WEIGHTS = r"It (looks like|appears) your weights are not integers"  
 __all__ = ["Contrast", "SurvivalCurve", "contrast", "kaplan_meier", "product_limit", "survival_curve"]
 
 
-def product_limit(start, stop, event, weight):
+def product_limit(start, stop, event, weight, orders=None):
     """Weighted product-limit estimate from counting-process rows, in numpy.
 
     Parameters
@@ -51,6 +51,9 @@ def product_limit(start, stop, event, weight):
         Event at ``stop``.
     weight : array_like, shape (N,)
         Non-negative weight in force on the row.
+    orders : tuple of ndarray, optional
+        ``(np.argsort(stop), np.argsort(start))`` when already known (e.g. :attr:`CloneTable.sort_orders`); they
+        must be those very arrays, since the order of tied times decides the order of the sums.
 
     Returns
     -------
@@ -70,7 +73,9 @@ def product_limit(start, stop, event, weight):
     """
     start, stop, weight = (np.asarray(x, dtype=float) for x in (start, stop, weight))
     event = np.asarray(event, dtype=bool) & (weight > 0)
-    order_stop, order_start = np.argsort(stop), np.argsort(start)
+    order_stop, order_start = (np.argsort(stop), np.argsort(start)) if orders is None else orders
+    if order_stop.shape != stop.shape or order_start.shape != start.shape:
+        raise UserInputError("product_limit orders must be the argsorts of these stop and start: drop them")
     sorted_stop = stop[order_stop]
     event_stops = sorted_stop[event[order_stop]]  # increasing: distinct values where they change
     times = event_stops[np.append(True, event_stops[1:] != event_stops[:-1])] if event_stops.size else event_stops

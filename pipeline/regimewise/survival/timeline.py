@@ -143,6 +143,13 @@ class Timeline:
         out["has_pre"] = n_pre > 0
         return out
 
+    @cached_property
+    def clone_row_sorts(self):
+        """``(np.argsort(stop), np.argsort(start))`` of :attr:`clone_rows`, sorted once: a clone table holding
+        every one of those rows has these very arrays as its stop and start, so the same sorts serve it."""
+        rows = self.clone_rows
+        return np.argsort(rows["stop"]), np.argsort(rows["start"])
+
 
 def _merged_order(episode, start, n_pre, n_episodes):
     """Order of the pre-decision rows (the first ``n_pre``, one per episode at most) and the decisions (the rest,
