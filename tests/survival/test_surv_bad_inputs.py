@@ -34,7 +34,13 @@ def _timeline_cases(decisions, episodes, proba):
     reversed_steps = decisions.iloc[::-1]
     interleaved = decisions.iloc[[0, 1, 2, 4, 3, *range(5, len(decisions))]]
     gap = decisions.assign(step=decisions["step"].where(decisions.index != 2, 5))
+    proba_nan, proba_inf = proba.copy(), proba.copy()
+    proba_nan[3, 1], proba_inf[5, 0] = np.nan, np.inf
+    two_patients = decisions.assign(patient_id=decisions["patient_id"].where(decisions.index != 5, "someone else"))
     return [
+        (lambda: make_timeline(decisions, episodes, proba_nan, 100), "1 missing or infinite value"),
+        (lambda: make_timeline(decisions, episodes, proba_inf, 100), "1 missing or infinite value"),
+        (lambda: make_timeline(two_patients, episodes, proba, 100), "more than one patient_id"),
         (lambda: make_timeline(decisions, episodes, proba[:-1], 100), r"has shape \(119, 3\) but \(120, K\)"),
         (lambda: make_timeline(decisions.assign(day=decisions["day"] - 5), episodes, proba, 100), "day is negative"),
         (lambda: make_timeline(decisions, episodes, proba * 1.5, 100), r"outside \[0, 1\]"),

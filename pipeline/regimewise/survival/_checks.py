@@ -48,14 +48,26 @@ def probability_matrix(values, what, n_rows, n_actions=None):
     if array.ndim != 2 or array.shape[0] != n_rows or (n_actions is not None and array.shape[1] != n_actions):
         expected = f"({n_rows}, {'K' if n_actions is None else n_actions})"
         raise UserInputError(f"{what} has shape {array.shape} but {expected} is needed: one row per decision")
-    if not np.all(np.isfinite(array)):
-        raise UserInputError(f"{what} has {int(np.sum(~np.isfinite(array)))} missing or infinite value(s)")
-    if np.any(array < 0) or np.any(array > 1):
+    if not np.all((array >= 0) & (array <= 1)):  # one pass when all is well: NaN and ±inf fail it too
+        if not np.all(np.isfinite(array)):
+            raise UserInputError(f"{what} has {int(np.sum(~np.isfinite(array)))} missing or infinite value(s)")
         outside = int(np.sum((array < 0) | (array > 1)))
         raise UserInputError(f"{what} has {outside} value(s) outside [0, 1]: pass probabilities, not scores")
     worst = float(np.max(np.abs(array.sum(axis=1) - 1.0)))
     if worst > _ROW_SUM_TOLERANCE:
         raise UserInputError(f"{what} rows must sum to 1; the worst row is off by {worst:.3g}: renormalise them")
+    return array
+
+
+def action_code_vector(values, what, n_rows, n_actions):
+    """Return ``values`` as (n_rows,) integer action codes in 0..n_actions-1."""
+    array = np.asarray(values)
+    if array.ndim != 1 or array.shape[0] != n_rows:
+        raise UserInputError(f"{what} has shape {array.shape} but ({n_rows},) is needed: one code per decision")
+    if array.dtype.kind not in "iu":
+        raise UserInputError(f"{what} must be integer action codes, not {array.dtype}: encode the actions first")
+    if array.size and (array.min() < 0 or array.max() >= n_actions):
+        raise UserInputError(f"{what} must be action codes 0..{n_actions - 1}: encode the actions first")
     return array
 
 

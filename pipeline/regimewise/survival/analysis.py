@@ -49,7 +49,8 @@ def survival_inputs(decisions: pd.DataFrame, episodes: pd.DataFrame, protocol: P
             f"survival.horizon_days is {spec.horizon_days:g} but the longest follow-up in the episodes table is "
             f"{longest:g} days; lower the horizon to at most the longest follow-up"
         )
-    frame = decisions[["episode_id", "patient_id", "step", "day"]].copy()
+    columns = ("episode_id", "patient_id", "step", "day")  # read, never written: the frame need not copy them
+    frame = pd.DataFrame({name: decisions[name] for name in columns}, copy=False)
     frame["action"] = action_codes(decisions, protocol.action_labels)
     return frame, episodes[["episode_id", "followup_days", "event"]]
 
@@ -97,14 +98,16 @@ def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=No
     ipcw, dropout = _censoring_weights(timeline, decisions, protocol)
 
     def tables():  # the table goes straight out: no local name keeps it alive while the next one is built
-        for entry in regime_targets(decisions, proba, recommended, protocol, learned_q):
+        # by rows: a deterministic strategy comes as its action codes (no one-hot matrix is built), a named
+        # strategy as a function of the rows, asked here for every row (the same matrix as built whole)
+        for entry in regime_targets(decisions, proba, recommended, protocol, learned_q, by_rows=True):
             name = entry["name"]
             yield (
                 name,
                 entry["label"],
                 clone_censor_weight(
                     timeline,
-                    None if name == USUAL_CARE else entry["target"],
+                    None if name == USUAL_CARE else _every_row(entry["target"]),
                     name=name,
                     grace=spec.grace,
                     censoring_weights=ipcw,
@@ -113,6 +116,12 @@ def clone_tables(decisions, episodes, proba, recommended, protocol, learned_q=No
             )
 
     return dropout, tables()
+
+
+def _every_row(target):
+    """A target of :func:`regime_targets` with ``by_rows``, for every decision: (n,) action codes as they are,
+    a function of the rows evaluated on all of them."""
+    return target(slice(None)) if callable(target) else target
 
 
 def strategy_curve(table, grid, protocol):

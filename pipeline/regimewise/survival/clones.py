@@ -42,13 +42,13 @@ Am J Epidemiol 168:656.
 """
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from regimewise.errors import UserInputError
-from regimewise.survival._checks import finite_vector, nonnegative_int, probability_matrix
+from regimewise.survival._checks import action_code_vector, finite_vector, nonnegative_int, probability_matrix
 from regimewise.survival._results import plain
 
 __all__ = ["CloneTable", "clone_censor_weight"]
@@ -81,6 +81,10 @@ class CloneTable:
         Clones whose weight became 0 (artificially censored at a deviation).
     truncation : tuple of float or None
         Lower and upper weight bounds applied, or None.
+    sort_orders : tuple of ndarray or None
+        ``(np.argsort(stop), np.argsort(start))`` of the rows when the table holds every row its timeline can
+        give (usual care, and strategies that censor no clone): the same arrays for all such tables of a
+        timeline, sorted once (:attr:`Timeline.clone_row_sorts`). None otherwise.
     """
 
     name: str
@@ -90,6 +94,7 @@ class CloneTable:
     grace: int
     n_censored: int
     truncation: tuple | None
+    sort_orders: tuple | None = field(default=None, repr=False)
 
     def to_dict(self):
         """Summary (not the rows) with plain JSON values; keys sorted."""
@@ -111,12 +116,21 @@ class CloneTable:
 
 
 def _follow_ratio(timeline, strategy_proba, grace):
-    """Per kept decision: π_s(a_taken) / p̂(a_taken), 1 inside the grace period; and the strategy's kind."""
+    """Per kept decision: π_s(a_taken) / p̂(a_taken), 1 inside the grace period; and the strategy's kind.
+
+    A strategy given as (n,) action codes is the one-hot strategy of those codes: its probability of the action
+    taken is 1.0 or 0.0, the same floats its one-hot matrix holds, so the ratios are the same numbers."""
     if strategy_proba is None:
         return np.ones(timeline.row.shape[0]), NATURAL_COURSE
-    strategy = probability_matrix(strategy_proba, "strategy probabilities", timeline.n_decisions, timeline.n_actions)
-    kind = DETERMINISTIC if np.all((strategy == 0) | (strategy == 1)) else STOCHASTIC
-    ratio = strategy[timeline.row, timeline.action] / timeline.proba_taken
+    if np.ndim(strategy_proba) == 1:
+        codes = action_code_vector(strategy_proba, "strategy action codes", timeline.n_decisions, timeline.n_actions)
+        followed = np.where(codes[timeline.row] == timeline.action, 1.0, 0.0)
+        ratio, kind = followed / timeline.proba_taken, DETERMINISTIC
+    else:
+        n, k = timeline.n_decisions, timeline.n_actions
+        strategy = probability_matrix(strategy_proba, "strategy probabilities", n, k)
+        kind = DETERMINISTIC if np.all((strategy == 0) | (strategy == 1)) else STOCHASTIC
+        ratio = strategy[timeline.row, timeline.action] / timeline.proba_taken
     ratio[timeline.step < grace] = 1.0
     return ratio, kind
 
@@ -144,35 +158,44 @@ def _truncation_bounds(weights, truncate):
     return float(np.percentile(weights, low)), float(np.percentile(weights, high))
 
 
-def _decision_rows(timeline, weight):
-    """Kept decisions with a positive weight, as rows."""
-    follow = weight > 0
-    code = timeline.episode[follow]
-    last = timeline.stop[follow] == timeline.end[code]
-    return pd.DataFrame(
+def _block_cumprod(values, position):
+    """Running product of ``values`` within each episode's block (``position``: place in the block, 0, 1, ...).
+
+    The products are formed in the order a grouped running product forms them (1·v_0, then ·v_1, ...), one
+    place in the block at a time for all episodes together, so every product is the same float."""
+    out = np.array(values, dtype=float)
+    for place in range(1, int(position.max(initial=0)) + 1):
+        at = np.flatnonzero(position == place)
+        out[at] = out[at - 1] * out[at]
+    return out
+
+
+def _assemble(timeline, weight):
+    """Pre-decision rows (weight 1) and the kept decisions with a positive weight, sorted by episode then start,
+    with identifiers; zero-length rows dropped (see :attr:`Timeline.clone_rows`). Returns the rows and whether
+    they are every row of :attr:`Timeline.clone_rows`.
+
+    The columns are those of the pre-decision rows followed by ``step`` and ``weight`` when there are
+    pre-decision rows, the decisions' order otherwise: the order a concatenation of the two would give."""
+    every = timeline.clone_rows
+    decision = every["decision"]
+    pre = decision < 0
+    row_weight = np.where(pre, 1.0, weight[np.where(pre, 0, decision)]) if decision.size else np.zeros(0)
+    keep = pre | (row_weight > 0)
+    code = every["episode"][keep]
+    columns = {name: every[name][keep] for name in ("start", "stop", "event", "step")}
+    columns["weight"] = row_weight[keep]
+    order = ["start", "stop", "event", "step"] if every["has_pre"] else ["step", "start", "stop", "event"]
+    rows = pd.DataFrame(  # the arrays are fresh: copy=False keeps one block per column instead of stacking copies
         {
             "episode": code,
-            "step": timeline.step[follow],
-            "start": timeline.start[follow],
-            "stop": timeline.stop[follow],
-            "event": last & timeline.event[code],
-            "weight": weight[follow],
-        }
+            "episode_id": timeline.episode_ids[code],
+            "patient_id": timeline.patient_ids[code],
+            **{name: columns[name] for name in [*order, "weight"]},
+        },
+        copy=False,
     )
-
-
-def _assemble(timeline, decision_rows):
-    """Pre-decision rows (weight 1) and decision rows, sorted, with identifiers; zero-length rows dropped."""
-    pre = timeline.pre_rows().assign(step=-1, weight=1.0)
-    rows = pd.concat([pre, decision_rows], ignore_index=True) if len(pre) else decision_rows
-    rows = rows[rows["stop"] > rows["start"]]
-    rows = rows.sort_values(["episode", "start"], kind="stable").reset_index(drop=True)
-    code = rows["episode"].to_numpy()
-    rows.insert(1, "episode_id", timeline.episode_ids[code])
-    rows.insert(2, "patient_id", timeline.patient_ids[code])
-    rows["event"] = rows["event"].astype(bool)
-    rows["step"] = rows["step"].astype(np.int64)
-    return rows
+    return rows, bool(keep.all())
 
 
 def clone_censor_weight(
@@ -184,9 +207,10 @@ def clone_censor_weight(
     ----------
     timeline : Timeline
         From :func:`regimewise.survival.make_timeline`.
-    strategy_proba : array_like, shape (n, K), optional
-        The strategy's probability of each action at each input decision (one-hot for a deterministic strategy).
-        None means the natural course (usual care): weight 1, no artificial censoring.
+    strategy_proba : array_like, shape (n, K) or (n,), optional
+        The strategy's probability of each action at each input decision (one-hot for a deterministic strategy),
+        or for a deterministic strategy its (n,) integer action codes (the same as their one-hot matrix, without
+        building it). None means the natural course (usual care): weight 1, no artificial censoring.
     name : str
         Label carried into the results.
     grace : int
@@ -219,10 +243,11 @@ def clone_censor_weight(
     """
     grace = nonnegative_int(grace, "grace")
     ratio, kind = _follow_ratio(timeline, strategy_proba, grace)
-    weight = pd.Series(ratio).groupby(timeline.episode, sort=False).cumprod().to_numpy()
-    n_censored = int(np.unique(timeline.episode[weight == 0]).shape[0])
+    weight = _block_cumprod(ratio, timeline.block_position)
+    censored = timeline.episode[weight == 0]  # episode codes are sorted: count where the code changes
+    n_censored = int(censored.shape[0] and 1 + np.count_nonzero(censored[1:] != censored[:-1]))
     weight = weight * _censoring_factor(timeline, censoring_weights)
-    rows = _assemble(timeline, _decision_rows(timeline, weight))
+    rows, every_row = _assemble(timeline, weight)
     bounds = None
     if truncate is not None:
         bounds = _truncation_bounds(rows["weight"].to_numpy(), truncate)
@@ -236,4 +261,5 @@ def clone_censor_weight(
         grace=grace,
         n_censored=n_censored,
         truncation=bounds,
+        sort_orders=timeline.clone_row_sorts if every_row else None,
     )

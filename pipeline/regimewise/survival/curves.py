@@ -40,7 +40,7 @@ NON_INTEGER_WEIGHTS = r"It (looks like|appears) your weights are not integers"  
 __all__ = ["Contrast", "SurvivalCurve", "contrast", "kaplan_meier", "product_limit", "survival_curve"]
 
 
-def product_limit(start, stop, event, weight):
+def product_limit(start, stop, event, weight, orders=None):
     """Weighted product-limit estimate from counting-process rows, in numpy.
 
     Parameters
@@ -51,6 +51,9 @@ def product_limit(start, stop, event, weight):
         Event at ``stop``.
     weight : array_like, shape (N,)
         Non-negative weight in force on the row.
+    orders : tuple of ndarray, optional
+        ``(np.argsort(stop), np.argsort(start))`` when already known (e.g. :attr:`CloneTable.sort_orders`); they
+        must be those very arrays, since the order of tied times decides the order of the sums.
 
     Returns
     -------
@@ -70,13 +73,17 @@ def product_limit(start, stop, event, weight):
     """
     start, stop, weight = (np.asarray(x, dtype=float) for x in (start, stop, weight))
     event = np.asarray(event, dtype=bool) & (weight > 0)
-    times = np.unique(stop[event])
+    order_stop, order_start = (np.argsort(stop), np.argsort(start)) if orders is None else orders
+    if order_stop.shape != stop.shape or order_start.shape != start.shape:
+        raise UserInputError("product_limit orders must be the argsorts of these stop and start: drop them")
+    sorted_stop = stop[order_stop]
+    event_stops = sorted_stop[event[order_stop]]  # increasing: distinct values where they change
+    times = event_stops[np.append(True, event_stops[1:] != event_stops[:-1])] if event_stops.size else event_stops
     died = np.bincount(np.searchsorted(times, stop[event]), weights=weight[event], minlength=times.shape[0])
-    order_stop, order_start = np.argsort(stop), np.argsort(start)
     tail_stop = np.append(np.cumsum(weight[order_stop][::-1])[::-1], 0.0)
     tail_start = np.append(np.cumsum(weight[order_start][::-1])[::-1], 0.0)
     at_risk = (
-        tail_stop[np.searchsorted(stop[order_stop], times, side="left")]
+        tail_stop[np.searchsorted(sorted_stop, times, side="left")]
         - tail_start[np.searchsorted(start[order_start], times, side="left")]
     )  # weight with stop >= τ minus weight with start >= τ: rows with start < τ <= stop
     return times, np.cumprod(1.0 - died / at_risk)
@@ -101,18 +108,28 @@ def kaplan_meier(table, label=None):
     lifelines.KaplanMeierFitter or None
         None when no row has a positive weight.
     """
-    rows = table.rows[table.rows["weight"] > 0]
-    if rows.empty:
+    columns = _positive_weight_columns(table.rows)
+    if columns["weights"].size == 0:
         return None
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=NON_INTEGER_WEIGHTS)
-        return KaplanMeierFitter().fit(
-            durations=rows["stop"].to_numpy(dtype=float),
-            event_observed=rows["event"].to_numpy(dtype=bool),
-            entry=rows["start"].to_numpy(dtype=float),
-            weights=rows["weight"].to_numpy(dtype=float),
-            label=label or table.name,
-        )
+        return KaplanMeierFitter().fit(**columns, label=label or table.name)
+
+
+def _positive_weight_columns(rows):
+    """The ``stop``, ``event``, ``start`` and ``weight`` columns of the rows with a positive weight, as arrays
+    named for ``KaplanMeierFitter.fit``; only the four columns are filtered (no other column is copied), and
+    not at all when every weight is positive, as clone tables' weights are."""
+    columns = {
+        "durations": rows["stop"].to_numpy(dtype=float),
+        "event_observed": rows["event"].to_numpy(dtype=bool),
+        "entry": rows["start"].to_numpy(dtype=float),
+        "weights": rows["weight"].to_numpy(dtype=float),
+    }
+    positive = columns["weights"] > 0
+    if positive.all():
+        return columns
+    return {name: values[positive] for name, values in columns.items()}
 
 
 @dataclass(frozen=True, eq=False)

@@ -119,7 +119,7 @@ def follow_diagnostics(table, times, min_ess, horizon=None):
     if np.any(weight < 0):
         raise UserInputError(f"clone table {table.name!r} has negative weights: rebuild it with clone_censor_weight")
     count, total, squares, largest = _risk_set_summaries(start, stop, weight, times).T
-    step_times, step_survival = product_limit(start, stop, rows["event"].to_numpy(bool), weight)
+    step_times, step_survival = product_limit(start, stop, rows["event"].to_numpy(bool), weight, table.sort_orders)
     expected = table.n_clones * step_value(times, step_times, step_survival, left=True)
     with np.errstate(divide="ignore", invalid="ignore"):
         ess = np.where(squares > 0, total**2 / np.where(squares > 0, squares, 1.0), 0.0)

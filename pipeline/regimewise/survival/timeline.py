@@ -23,6 +23,7 @@ available. American Journal of Epidemiology 183:758 (time zero, follow-up, horiz
 """
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import pandas as pd
@@ -106,6 +107,70 @@ class Timeline:
         event = self.event[has] & (self.end[has] <= self.first_day[has])
         return pd.DataFrame({"episode": codes, "start": 0.0, "stop": stop, "event": event})
 
+    @cached_property
+    def block_position(self):
+        """Position of each kept decision inside its episode's block of kept decisions (0, 1, ...)."""
+        first = np.ones(self.episode.shape[0], dtype=bool)
+        first[1:] = self.episode[1:] != self.episode[:-1]
+        starts = np.flatnonzero(first)
+        return np.arange(self.episode.shape[0]) - starts[np.cumsum(first) - 1]
+
+    @cached_property
+    def clone_rows(self):
+        """Every row a clone table can hold, in table order, computed once for all strategies.
+
+        A dict of arrays: the pre-decision rows and the kept decisions, of positive length (``stop > start``),
+        sorted by episode, then start (a stable sort), with columns ``episode``, ``start``, ``stop``, ``event``
+        (an event on the episode's last row), ``step`` (-1 before the first decision) and ``decision`` (position
+        in the kept decisions; -1 for a pre-decision row); and ``has_pre``, whether there is any pre-decision
+        row. A clone table keeps every pre-decision row and the decisions its clones still follow, so its rows
+        are these with the others left out, in the order a stable sort of that subset would give.
+        """
+        pre = self.pre_rows()
+        n_pre = len(pre)
+        last = self.stop == self.end[self.episode]
+        columns = {
+            "episode": np.concatenate([pre["episode"].to_numpy(), self.episode]),
+            "start": np.concatenate([pre["start"].to_numpy(), self.start]),
+            "stop": np.concatenate([pre["stop"].to_numpy(), self.stop]),
+            "event": np.concatenate([pre["event"].to_numpy(), last & self.event[self.episode]]),
+            "step": np.concatenate([np.full(n_pre, -1, dtype=np.int64), self.step]),
+            "decision": np.concatenate([np.full(n_pre, -1, dtype=np.int64), np.arange(self.episode.shape[0])]),
+        }
+        order = _merged_order(columns["episode"], columns["start"], n_pre, self.n_episodes)
+        order = order[columns["stop"][order] > columns["start"][order]]
+        out = {name: values[order] for name, values in columns.items()}
+        out["has_pre"] = n_pre > 0
+        return out
+
+    @cached_property
+    def clone_row_sorts(self):
+        """``(np.argsort(stop), np.argsort(start))`` of :attr:`clone_rows`, sorted once: a clone table holding
+        every one of those rows has these very arrays as its stop and start, so the same sorts serve it."""
+        rows = self.clone_rows
+        return np.argsort(rows["stop"]), np.argsort(rows["start"])
+
+
+def _merged_order(episode, start, n_pre, n_episodes):
+    """Order of the pre-decision rows (the first ``n_pre``, one per episode at most) and the decisions (the rest,
+    by episode) by episode, then start: the order a stable sort gives (``np.lexsort``).
+
+    Each episode's pre-decision row goes just before its decisions, found by counting (no sort); the result is
+    kept when the keys it gives increase strictly, as they do for a timeline (a pre-decision row starts at 0,
+    before the first decision day, and decision days increase), since a stable sort can give no other order of
+    distinct keys. Otherwise the stable sort decides."""
+    pre, decisions = episode[:n_pre], episode[n_pre:]
+    per_episode = np.bincount(decisions, minlength=n_episodes)
+    decisions_before = np.concatenate([[0], np.cumsum(per_episode)])[pre]
+    pre_through = np.cumsum(np.bincount(pre, minlength=n_episodes))[decisions] if n_pre else 0
+    order = np.zeros(episode.shape[0], dtype=np.int64)  # strictly increasing keys below make it a permutation
+    order[np.arange(n_pre) + decisions_before] = np.arange(n_pre)
+    order[np.arange(decisions.shape[0]) + pre_through] = np.arange(n_pre, episode.shape[0])
+    e, t = episode[order], start[order]
+    if np.all((e[1:] > e[:-1]) | ((e[1:] == e[:-1]) & (t[1:] > t[:-1]))):
+        return order
+    return np.lexsort((start, episode))
+
 
 def _episode_codes(episode_ids, step):
     """Codes 0..E-1 of contiguous episode blocks; refuses rows not sorted by episode then step."""
@@ -170,10 +235,10 @@ def _patients(decisions, code, episode_ids):
     if "patient_id" not in decisions.columns:
         return np.asarray(episode_ids, dtype=object)
     patient = decisions["patient_id"].astype(str).to_numpy()
-    per_episode = pd.Series(patient).groupby(code).nunique()
-    if int(per_episode.max()) > 1:
+    same_episode = code[1:] == code[:-1]  # an episode's rows are contiguous: compare each row with the one before
+    if np.any(patient[1:][same_episode] != patient[:-1][same_episode]):
         raise UserInputError("an episode has more than one patient_id: each episode belongs to one patient")
-    first = np.unique(code, return_index=True)[1]
+    first = np.flatnonzero(np.append(True, ~same_episode))
     return patient[first].astype(object)
 
 
