@@ -141,9 +141,9 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         with np.errstate(all="ignore"):
             for rows in row_blocks(n_rows):
                 X = design[rows]
-                log_proba = _log_proba(X, params)
-                llf += float(log_proba[np.arange(len(X)), endog[rows]].sum())
-                proba = np.exp(log_proba[:, 1:])
+                log_proba = _log_proba_by_class(X, params)
+                llf += float(log_proba[endog[rows], np.arange(len(X))].sum())
+                proba = np.ascontiguousarray(np.exp(log_proba[1:]).T)  # records × classes, as the products want
                 taken = endog[rows, None] == others
                 score += (taken - proba).T @ X
                 A = (X[:, None, :] * proba[:, :, None]).reshape(len(X), -1)  # columns: class-major, as the blocks
@@ -205,21 +205,50 @@ def column_rank(design, block_rows=None):
     return int(np.sum(singular > singular.max() * max(design.shape) * np.finfo(float).eps))
 
 
-def _log_proba(design, params):
-    """Log-probabilities of the reference class and the others, computed stably in log space.
+# numpy sums fewer than this many values one after the other, (((a0 + a1) + a2) + ...), and more pairwise.
+_SEQUENTIAL_SUM = 8
+
+
+def log_softmax_by_class(linear):
+    """``scipy.special.log_softmax(linear.T, axis=1).T`` to the last bit, for linear predictors laid out class
+    by class, shape (classes, records), and several times faster with few classes.
+
+    scipy's max and sum of exponentials over the classes of each record are reductions along a short, fast axis,
+    slow in numpy; over the class rows they are elementwise operations along the records. The max is exact in
+    any order, and the sum adds the classes in scipy's order, one after the other, as numpy does with fewer than
+    :data:`_SEQUENTIAL_SUM` values; with more classes numpy sums pairwise, so scipy is called.
+    """
+    if linear.shape[0] >= _SEQUENTIAL_SUM:
+        return log_softmax(linear.T, axis=1).T
+    top = linear.max(axis=0)
+    top[~np.isfinite(top)] = 0  # as scipy: an infinite or missing maximum shifts nothing
+    shifted = linear - top
+    with np.errstate(divide="ignore"):
+        return shifted - np.log(np.exp(shifted).sum(axis=0))
+
+
+def _log_proba_by_class(design, params):
+    """Log-probabilities of the reference class and the others, shape (classes, records), computed stably in
+    log space (:func:`log_softmax_by_class`).
 
     ``design`` includes the constant column; ``params`` has one column per non-reference class.
     """
-    linear = np.column_stack([np.zeros(design.shape[0]), design @ params])
-    return log_softmax(linear, axis=1)
+    linear = np.zeros((params.shape[1] + 1, design.shape[0]))
+    linear[1:] = (design @ params).T
+    return log_softmax_by_class(linear)
+
+
+def _log_proba(design, params):
+    """:func:`_log_proba_by_class` with one row per record, shape (records, classes)."""
+    return _log_proba_by_class(design, params).T
 
 
 def _log_likelihood(design, endog, params) -> float:
     """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
     total = 0.0
     for rows in row_blocks(design.shape[0]):
-        log_proba = _log_proba(design[rows], params)
-        total += float(log_proba[np.arange(log_proba.shape[0]), endog[rows]].sum())
+        log_proba = _log_proba_by_class(design[rows], params)
+        total += float(log_proba[endog[rows], np.arange(log_proba.shape[1])].sum())
     return total
 
 
