@@ -119,3 +119,14 @@ def test_fits_are_the_replaced_formulation_to_the_bit(n_actions, absent, block_r
         assert ours.llf_ == reference.llf_ and ours.n_iter_ == reference.n_iter_
         np.testing.assert_array_equal(ours.predict_proba(X), reference.predict_proba(X))
     assert fits["ours"][1].share_ == fits["reference"][1].share_ > 0.0
+
+
+@pytest.mark.parametrize("fill_rows", [7, 4096])
+def test_scaled_design_filled_by_rows_is_column_by_column_to_the_bit(fill_rows, monkeypatch):
+    # Reference: every varying column centred and scaled on its own, as the design was first filled.
+    monkeypatch.setattr(logit, "FILL_ROWS", fill_rows)
+    values = np.random.default_rng(5).normal(size=(1001, 4)) * [3.0, 1.0, 1.0, 1e-3] + [10.0, 0.0, 0.0, 7.0]
+    values[:, 1] = 2.5  # a constant column, left out
+    mean, scale = logit.standardise(values)
+    reference = [np.ones(len(values))] + [(values[:, j] - mean[j]) / scale[j] for j in (0, 2, 3)]
+    np.testing.assert_array_equal(logit.scaled_design(values, mean, scale), np.column_stack(reference))

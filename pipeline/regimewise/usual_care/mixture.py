@@ -16,17 +16,13 @@ import numpy as np
 from scipy.special import expit
 from scipy.stats import chi2
 
-from regimewise.core.arrays import as_actions
 from regimewise.errors import ConvergenceWarning
 from regimewise.usual_care.logit import (
     MultinomialLogitBehaviour,
     _log_proba,
     _log_proba_by_class,
-    as_design,
     prediction_design,
     row_blocks,
-    scaled_design,
-    standardise,
     unscale,
 )
 
@@ -205,7 +201,8 @@ class FloorMixtureLogitBehaviour:
         Raises :class:`UserInputError` where the plain logit does (malformed input, rank deficiency, complete
         separation, a breakdown even after BFGS).
         """
-        logit = MultinomialLogitBehaviour(maxiter=self.maxiter).fit(X, action, n_actions)
+        logit = MultinomialLogitBehaviour(maxiter=self.maxiter)
+        scaled = logit.fit_scaled(X, action, n_actions)  # the design, classes and scaling the mixture reuses
         for name in ("classes_", "n_actions_", "n_features_in_", "feature_names_in_"):
             setattr(self, name, getattr(logit, name))
         self.logit_llf_ = logit.llf_
@@ -215,11 +212,7 @@ class FloorMixtureLogitBehaviour:
             self.llf_, self.lr_statistic_, self.p_value_ = logit.llf_, 0.0, 1.0
             self.converged_, self.n_iter_ = True, 0
             return self
-        values, _ = as_design(X)
-        codes = as_actions(action, n_actions, n_rows=values.shape[0])
-        endog = np.searchsorted(self.classes_, codes)
-        mean, scale = standardise(values)
-        design = scaled_design(values, mean, scale)
+        design, endog, mean, scale = scaled.design, scaled.endog, scaled.mean, scaled.scale
         varying = scale > 0  # the plain logit's coefficients on the centred and scaled covariates start the fit
         intercept, slopes = logit.params_[0] + mean @ logit.params_[1:], logit.params_[1:][varying]
         start = np.vstack([intercept, slopes * scale[varying, None]])
