@@ -130,3 +130,14 @@ def test_scaled_design_filled_by_rows_is_column_by_column_to_the_bit(fill_rows, 
     mean, scale = logit.standardise(values)
     reference = [np.ones(len(values))] + [(values[:, j] - mean[j]) / scale[j] for j in (0, 2, 3)]
     np.testing.assert_array_equal(logit.scaled_design(values, mean, scale), np.column_stack(reference))
+
+
+@pytest.mark.parametrize("n_rows", [1, 7, 8192, 8193, 100_003])
+def test_standardise_on_column_copies_is_numpys_on_the_columns_to_the_bit(n_rows):
+    # Reference: numpy's mean and standard deviation of every (strided) column of the matrix itself.
+    rng = np.random.default_rng(n_rows)
+    values = rng.normal(size=(n_rows, 5)) * [1e-3, 1.0, 50.0, 1e4, 1.0] + [0.0, -7.0, 1e3, 3e6, 0.0]
+    values[:, 4] = 1.5
+    mean, scale = logit.standardise(values)
+    np.testing.assert_array_equal(mean, [values[:, j].mean() for j in range(5)])
+    np.testing.assert_array_equal(scale, [values[:, j].std() for j in range(4)] + [0.0])
