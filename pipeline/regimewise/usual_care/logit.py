@@ -42,9 +42,14 @@ def as_design(X, what="X"):
 def standardise(values):
     """Column means and scales for a numerically stable fit; constant columns get scale 0.
 
-    One column at a time, so no temporary of the whole matrix's size is made."""
-    mean = np.array([values[:, j].mean() for j in range(values.shape[1])])
-    scale = np.array([values[:, j].std() for j in range(values.shape[1])])
+    One column at a time, so no temporary of the whole matrix's size is made. Each column is copied once into
+    a contiguous array and its mean and standard deviation are taken there: numpy sums a strided column and its
+    contiguous copy in the same (pairwise) order, so the numbers are the same, and the column is gathered from
+    across the whole matrix once instead of in every pass of the mean and the deviation, about twice as fast."""
+    mean, scale = np.empty(values.shape[1]), np.empty(values.shape[1])
+    for j in range(values.shape[1]):
+        column = np.ascontiguousarray(values[:, j])
+        mean[j], scale[j] = column.mean(), column.std()
     constant = np.ptp(values, axis=0) == 0
     scale[constant] = 0.0
     return mean, scale
@@ -80,6 +85,17 @@ def _run_mnlogit(design, endog, method, maxiter):
         return None
     retvals = result.mle_retvals
     return MNLogitFit(np.asarray(result.params), bool(retvals.get("converged", True)), retvals.get("iterations"))
+
+
+@dataclass(frozen=True)
+class ScaledDesign:
+    """What a fit ran on: the design (:func:`scaled_design`), the index in ``classes_`` of every record's action,
+    and the covariates' means and scales (:func:`standardise`)."""
+
+    design: np.ndarray
+    endog: np.ndarray
+    mean: np.ndarray
+    scale: np.ndarray
 
 
 @dataclass(frozen=True)
@@ -141,9 +157,9 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         with np.errstate(all="ignore"):
             for rows in row_blocks(n_rows):
                 X = design[rows]
-                log_proba = _log_proba(X, params)
-                llf += float(log_proba[np.arange(len(X)), endog[rows]].sum())
-                proba = np.exp(log_proba[:, 1:])
+                log_proba = _log_proba_by_class(X, params)
+                llf += float(log_proba[endog[rows], np.arange(len(X))].sum())
+                proba = np.ascontiguousarray(np.exp(log_proba[1:]).T)  # records × classes, as the products want
                 taken = endog[rows, None] == others
                 score += (taken - proba).T @ X
                 A = (X[:, None, :] * proba[:, :, None]).reshape(len(X), -1)  # columns: class-major, as the blocks
@@ -177,15 +193,23 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
     return MNLogitFit(params, False, maxiter)
 
 
+# Rows of the covariates centred and scaled at a time by scaled_design: a block that stays in the processor's cache.
+FILL_ROWS = 4096
+
+
 def scaled_design(values, mean, scale):
-    """The intercept column, then every varying covariate centred and scaled: filled column by column, so the
-    only full-size array made is the design itself."""
+    """The intercept column, then every varying covariate centred and scaled: filled a few thousand rows at a
+    time (:data:`FILL_ROWS`), so the only full-size array made is the design itself and every row is written
+    once and in order (column by column, each column's writes stride across the whole design, several times
+    slower). Each entry is (value − mean) / scale, whatever the order of filling."""
     varying = np.flatnonzero(scale > 0)
     design = np.empty((values.shape[0], varying.size + 1))
     design[:, 0] = 1.0
-    for j, column in enumerate(varying, start=1):
-        np.subtract(values[:, column], mean[column], out=design[:, j])
-        design[:, j] /= scale[column]
+    centre, spread = mean[varying], scale[varying]
+    for rows in row_blocks(values.shape[0], FILL_ROWS):
+        block = design[rows, 1:]
+        np.subtract(values[rows][:, varying], centre, out=block)
+        block /= spread
     return design
 
 
@@ -205,21 +229,50 @@ def column_rank(design, block_rows=None):
     return int(np.sum(singular > singular.max() * max(design.shape) * np.finfo(float).eps))
 
 
-def _log_proba(design, params):
-    """Log-probabilities of the reference class and the others, computed stably in log space.
+# numpy sums fewer than this many values one after the other, (((a0 + a1) + a2) + ...), and more pairwise.
+_SEQUENTIAL_SUM = 8
+
+
+def log_softmax_by_class(linear):
+    """``scipy.special.log_softmax(linear.T, axis=1).T`` to the last bit, for linear predictors laid out class
+    by class, shape (classes, records), and several times faster with few classes.
+
+    scipy's max and sum of exponentials over the classes of each record are reductions along a short, fast axis,
+    slow in numpy; over the class rows they are elementwise operations along the records. The max is exact in
+    any order, and the sum adds the classes in scipy's order, one after the other, as numpy does with fewer than
+    :data:`_SEQUENTIAL_SUM` values; with more classes numpy sums pairwise, so scipy is called.
+    """
+    if linear.shape[0] >= _SEQUENTIAL_SUM:
+        return log_softmax(linear.T, axis=1).T
+    top = linear.max(axis=0)
+    top[~np.isfinite(top)] = 0  # as scipy: an infinite or missing maximum shifts nothing
+    shifted = linear - top
+    with np.errstate(divide="ignore"):
+        return shifted - np.log(np.exp(shifted).sum(axis=0))
+
+
+def _log_proba_by_class(design, params):
+    """Log-probabilities of the reference class and the others, shape (classes, records), computed stably in
+    log space (:func:`log_softmax_by_class`).
 
     ``design`` includes the constant column; ``params`` has one column per non-reference class.
     """
-    linear = np.column_stack([np.zeros(design.shape[0]), design @ params])
-    return log_softmax(linear, axis=1)
+    linear = np.zeros((params.shape[1] + 1, design.shape[0]))
+    linear[1:] = (design @ params).T
+    return log_softmax_by_class(linear)
+
+
+def _log_proba(design, params):
+    """:func:`_log_proba_by_class` with one row per record, shape (records, classes)."""
+    return _log_proba_by_class(design, params).T
 
 
 def _log_likelihood(design, endog, params) -> float:
     """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
     total = 0.0
     for rows in row_blocks(design.shape[0]):
-        log_proba = _log_proba(design[rows], params)
-        total += float(log_proba[np.arange(log_proba.shape[0]), endog[rows]].sum())
+        log_proba = _log_proba_by_class(design[rows], params)
+        total += float(log_proba[endog[rows], np.arange(log_proba.shape[1])].sum())
     return total
 
 
@@ -319,6 +372,13 @@ class MultinomialLogitBehaviour:
             after the BFGS fallback. Quasi-separation (only some decisions predicted with certainty) is not an
             error: it shows as a :class:`ConvergenceWarning` and probabilities near 0 and 1.
         """
+        self.fit_scaled(X, action, n_actions)
+        return self
+
+    def fit_scaled(self, X, action, n_actions):
+        """:meth:`fit`, returning the design it ran on (a :class:`ScaledDesign`; ``None`` when only one action
+        occurs), so that a model refined from this fit (:class:`~regimewise.usual_care.mixture.
+        FloorMixtureLogitBehaviour`) need not check, standardise and copy the covariates a second time."""
         values, names = as_design(X)
         codes = as_actions(action, n_actions, n_rows=values.shape[0])
         self.n_actions_ = int(n_actions)
@@ -330,7 +390,7 @@ class MultinomialLogitBehaviour:
         if self.classes_.size == 1:
             self.params_ = np.zeros((self.n_features_in_ + 1, 0))
             self.converged_, self.n_iter_, self.llf_, self.method_ = True, 0, 0.0, None
-            return self
+            return None
         design = scaled_design(values, mean, scale)
         self._check_rank(design)
         endog = np.searchsorted(self.classes_, codes)
@@ -345,7 +405,7 @@ class MultinomialLogitBehaviour:
         self.n_iter_ = result.iterations
         self.llf_ = llf
         self._warn_fit_problems()
-        return self
+        return ScaledDesign(design, endog, mean, scale)
 
     def predict_proba(self, X):
         """Probability of every action, shape (n, n_actions_), columns in action-code order."""

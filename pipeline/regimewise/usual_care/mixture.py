@@ -13,18 +13,16 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy.special import expit, log_softmax
+from scipy.special import expit
 from scipy.stats import chi2
 
-from regimewise.core.arrays import as_actions
 from regimewise.errors import ConvergenceWarning
 from regimewise.usual_care.logit import (
     MultinomialLogitBehaviour,
-    as_design,
+    _log_proba,
+    _log_proba_by_class,
     prediction_design,
     row_blocks,
-    scaled_design,
-    standardise,
     unscale,
 )
 
@@ -43,6 +41,13 @@ def _mixture_pass(design, params, z, endog, n_classes):
     − s_l); ∂ log P_t/∂λ = (1/K − s_t)/P_t; ∂² log P_t/∂η_j∂λ = −(e_j − s_j) s_t / (K P_t²); ∂² log P_t/∂λ² =
     −((1/K − s_t)/P_t)², with e the indicator of t. Derivatives in z follow by the chain rule, dλ/dz = λ(1 − λ).
     The vector of parameters is β of class 1, then class 2, ..., then z.
+
+    The block (j, l) of the Hessian in β is X'diag(w_jl)X with the weight w_jl of the second derivative above.
+    The per-record quantities are held class by class (one contiguous row of the block's records per class, and
+    the block's covariates transposed likewise), so that every elementwise product runs along the records
+    instead of along a short row of classes or covariates, several times faster. The products and sums are the
+    same operations in the same order as on records × classes arrays, and the matrix products the same ones, one
+    per pair of classes: the result is the records × classes formulation's to the last bit (a test checks it).
     """
     n_cols, n_other = params.shape
     share = float(expit(z))
@@ -50,30 +55,32 @@ def _mixture_pass(design, params, z, endog, n_classes):
     total = 0.0
     score = np.zeros(n_other * n_cols + 1)
     hessian = np.zeros((n_other * n_cols + 1, n_other * n_cols + 1))
-    classes = np.arange(n_classes)
     for rows in row_blocks(design.shape[0]):
         X = design[rows]
         taken = endog[rows]
-        linear = np.zeros((taken.size, n_classes))
-        linear[:, 1:] = X @ params
-        s = np.exp(log_softmax(linear, axis=1))
-        s_taken = s[np.arange(taken.size), taken]
+        by_record = np.arange(taken.size)
+        s = np.exp(_log_proba_by_class(X, params))  # (classes, records)
+        s_taken = s[taken, by_record]
         p_taken = (1.0 - share) * s_taken + share / n_classes
         total += float(np.log(p_taken).sum())
         r = (1.0 - share) * s_taken / p_taken
-        residual = ((classes == taken[:, None]) - s)[:, 1:]  # e_j − s_j, classes 1..K−1
+        residual = (np.arange(1, n_classes)[:, None] == taken) - s[1:]  # e_j − s_j, classes 1..K−1
         g_share = (1.0 / n_classes - s_taken) / p_taken
-        score[:-1] += (X.T @ (r[:, None] * residual)).T.ravel()
+        score[:-1] += (X.T @ np.ascontiguousarray((r * residual).T)).T.ravel()
         score[-1] += float(g_share.sum()) * dshare
-        cross = -(s_taken / (n_classes * p_taken**2))[:, None] * residual * dshare
-        hessian[:-1, -1] += (X.T @ cross).T.ravel()
+        cross = -(s_taken / (n_classes * p_taken**2)) * residual * dshare
+        hessian[:-1, -1] += (X.T @ np.ascontiguousarray(cross.T)).T.ravel()
         hessian[-1, -1] += float((-(g_share**2) * dshare**2 + g_share * dshare * (1.0 - 2.0 * share)).sum())
+        covariates = np.ascontiguousarray(X.T)
+        weighted = np.empty_like(covariates)
+        r_residual = r * (1.0 - r) * residual  # r (1 − r)(e_j − s_j), the first factors of every weight
+        r_s = r * s[1:]
         for j in range(n_other):
             for k in range(j, n_other):
-                weight = r * (1.0 - r) * residual[:, j] * residual[:, k] + r * s[:, j + 1] * s[:, k + 1]
+                weight = r_residual[j] * residual[k] + r_s[j] * s[k + 1]
                 if j == k:
-                    weight -= r * s[:, j + 1]
-                block = X.T @ (weight[:, None] * X)
+                    weight -= r_s[j]
+                block = X.T @ np.multiply(weight, covariates, out=weighted).T
                 hessian[j * n_cols : (j + 1) * n_cols, k * n_cols : (k + 1) * n_cols] += block
                 if j != k:
                     hessian[k * n_cols : (k + 1) * n_cols, j * n_cols : (j + 1) * n_cols] += block.T
@@ -194,7 +201,8 @@ class FloorMixtureLogitBehaviour:
         Raises :class:`UserInputError` where the plain logit does (malformed input, rank deficiency, complete
         separation, a breakdown even after BFGS).
         """
-        logit = MultinomialLogitBehaviour(maxiter=self.maxiter).fit(X, action, n_actions)
+        logit = MultinomialLogitBehaviour(maxiter=self.maxiter)
+        scaled = logit.fit_scaled(X, action, n_actions)  # the design, classes and scaling the mixture reuses
         for name in ("classes_", "n_actions_", "n_features_in_", "feature_names_in_"):
             setattr(self, name, getattr(logit, name))
         self.logit_llf_ = logit.llf_
@@ -204,11 +212,7 @@ class FloorMixtureLogitBehaviour:
             self.llf_, self.lr_statistic_, self.p_value_ = logit.llf_, 0.0, 1.0
             self.converged_, self.n_iter_ = True, 0
             return self
-        values, _ = as_design(X)
-        codes = as_actions(action, n_actions, n_rows=values.shape[0])
-        endog = np.searchsorted(self.classes_, codes)
-        mean, scale = standardise(values)
-        design = scaled_design(values, mean, scale)
+        design, endog, mean, scale = scaled.design, scaled.endog, scaled.mean, scaled.scale
         varying = scale > 0  # the plain logit's coefficients on the centred and scaled covariates start the fit
         intercept, slopes = logit.params_[0] + mean @ logit.params_[1:], logit.params_[1:][varying]
         start = np.vstack([intercept, slopes * scale[varying, None]])
@@ -242,6 +246,5 @@ class FloorMixtureLogitBehaviour:
         proba = np.zeros((values.shape[0], self.n_actions_))
         for rows in row_blocks(values.shape[0]):
             design = np.column_stack([np.ones(len(values[rows])), values[rows]])
-            linear = np.column_stack([np.zeros(design.shape[0]), design @ self.params_])
-            proba[rows, self.classes_] = (1.0 - self.share_) * np.exp(log_softmax(linear, axis=1)) + self.floor_
+            proba[rows, self.classes_] = (1.0 - self.share_) * np.exp(_log_proba(design, self.params_)) + self.floor_
         return proba
