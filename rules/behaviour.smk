@@ -1,11 +1,11 @@
-# ---- behaviour: the usual-care model, its probabilities and diagnostics ---------------------------------
+# ---- behaviour: the usual-care model and its probabilities ------------------------------------------------
 rule behaviour:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
     output:
         proba=results("behaviour/behaviour_proba.parquet"),
-        diagnostics=results("behaviour/behaviour.json"),
+        model=temp(results("behaviour/model.json")),  # read by the behaviour_diagnostics rule only; not an artifact
     log:
         logs("behaviour"),
     benchmark:
@@ -16,6 +16,31 @@ rule behaviour:
     resources:
         mem_mb=mem_mb("behaviour"),
         runtime=runtime("behaviour"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+# ---- behaviour_diagnostics: behaviour.json (calibration, discrimination, weights), beside the later jobs ---------
+rule behaviour_diagnostics:
+    input:
+        protocol=SETTINGS.protocol_input,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+        model=results("behaviour/model.json"),
+    output:
+        diagnostics=results("behaviour/behaviour.json"),
+    log:
+        logs("behaviour_diagnostics"),
+    benchmark:
+        benchmarks("behaviour_diagnostics")
+    params:
+        code=stage_code_hash("behaviour_diagnostics"),
+    threads: 1
+    resources:
+        mem_mb=mem_mb("behaviour_diagnostics"),
+        runtime=runtime("behaviour_diagnostics"),
     conda:
         "envs/regimewise.yaml"
     script:

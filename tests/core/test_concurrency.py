@@ -1,5 +1,6 @@
 """Independent fits on several threads: results in task order, errors raised, BLAS on one thread, and the regime
-and evaluate stages' outputs identical byte for byte with one thread and with two, the regime stage's whether it
+and evaluate stages' outputs identical byte for byte with one thread and with two, the behaviour stage's whether it
+writes behaviour.json itself or in a job of its own, the regime stage's whether it
 learns the cross-fitted fold regimes itself or reads them from the crossfit job, and the evaluate stage's whether it
 evaluates usual care and the fixed strategies itself or reads them from the evaluate_fixed job (the project's own
 rule: the numbers must not depend on the cores or on how the work is split into jobs; no outside reference
@@ -25,6 +26,8 @@ from regimewise.io import dumps_json, read_json, read_parquet, write_parquet
 from regimewise.protocol import load_protocol
 from regimewise.sensitivity import analysis
 from regimewise.workflow.stages import (
+    behaviour_diagnostics_stage,
+    behaviour_fit_stage,
     behaviour_stage,
     bootstrap_stage,
     crossfit_stage,
@@ -86,6 +89,24 @@ def cohort(tmp_path_factory):
     write_parquet(folder / "decisions.parquet", clean_decisions(pf, simulate_cohort(600, seed=5).decisions))
     behaviour_stage(folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet", folder / "b.json")
     return folder, pf
+
+
+def test_the_behaviour_fit_and_diagnostics_jobs_write_the_behaviour_stages_bytes(cohort):
+    # the workflow fits usual care in one job and writes behaviour.json in another, beside the later jobs
+    folder, _ = cohort
+    protocol, decisions = folder / "protocol.yaml", folder / "decisions.parquet"
+    behaviour_fit_stage(protocol, decisions, folder / "proba_fit.parquet", folder / "model.json")
+    behaviour_diagnostics_stage(
+        protocol, decisions, folder / "proba_fit.parquet", folder / "model.json", folder / "b_split.json"
+    )
+    assert (folder / "proba_fit.parquet").read_bytes() == (folder / "proba.parquet").read_bytes()
+    assert (folder / "b_split.json").read_bytes() == (folder / "b.json").read_bytes()
+    # probabilities of other decisions are refused
+    write_parquet(folder / "proba_other.parquet", read_parquet(folder / "proba_fit.parquet").iloc[:-1])
+    with pytest.raises(UserInputError, match="does not hold the probabilities of these decisions"):
+        behaviour_diagnostics_stage(
+            protocol, decisions, folder / "proba_other.parquet", folder / "model.json", folder / "b_x.json"
+        )
 
 
 def test_the_regime_stage_writes_the_same_bytes_with_two_threads(cohort):

@@ -178,7 +178,8 @@ def overlap_by_step(steps, codes, recommended, proba, support_threshold):
 
 
 # ---------------------------------------------------------------------------------------------- behaviour.json
-def _model_block(protocol, usual_care):
+def model_block(protocol, usual_care) -> dict:
+    """behaviour.json's ``model``: the model's kind, covariates, scaler, fit and floor-mixture facts."""
     fitted = usual_care.model
     block = {
         "kind": protocol.behaviour_model.kind,
@@ -213,11 +214,20 @@ def usual_care_diagnostics(protocol, frame, usual_care) -> dict:
     Diagnostics use the records' cross-fitted (out-of-fold) probabilities, so calibration and discrimination
     are not flattered by predicting the data a model was fitted on.
     """
+    return diagnostics_document(
+        protocol, frame, usual_care.record_proba, usual_care.floor, usual_care.folds, model_block(protocol, usual_care)
+    )
+
+
+def diagnostics_document(protocol, frame, proba, floor, folds, model) -> dict:
+    """behaviour.json from the records (``frame``), their probabilities under the usual-care model (``proba``,
+    (n, K), raised to ``floor``), the cross-fitting's fold of each decision and the model's :func:`model_block`.
+
+    The workflow fits the model in one job and writes this document in another, from the probabilities it wrote
+    and the model's block (:func:`regimewise.workflow.stages.behaviour_diagnostics_stage`)."""
     spec = protocol.behaviour_model
     labels = protocol.action_labels
     codes = action_codes(frame, labels)
-    proba = usual_care.record_proba
-    floor = usual_care.floor
     at_floor = proba == floor if floor > 0 else np.zeros(proba.shape, dtype=bool)
     diagnostics = behaviour_diagnostics_by_step(
         frame["step"].to_numpy(),
@@ -228,9 +238,9 @@ def usual_care_diagnostics(protocol, frame, usual_care) -> dict:
         spec.truncation_percentiles,
     )
     overall = diagnostics["overall"]
-    patients = frame.groupby(usual_care.folds)["patient_id"].nunique()
+    patients = frame.groupby(folds)["patient_id"].nunique()
     return {
-        "model": _model_block(protocol, usual_care),
+        "model": model,
         "decisions": int(len(frame)),
         "auc": overall["auc"],
         "auc_method": "one-vs-rest macro average, "

@@ -62,17 +62,27 @@ def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareMode
     protocol's root seed (stream ``usual_care`` of :mod:`regimewise.core.seeds`).
     """
     spec = protocol.behaviour_model
-    fold_seed, model_seed = stream_ints(protocol.seed, "usual_care", 2)
+    model_seed = stream_ints(protocol.seed, "usual_care", 2)[1]
     design = BehaviourDesign.fit(decisions, protocol)
     X = design.transform(decisions)
     codes = action_codes(decisions, protocol.action_labels)
     make_model = _behaviour_model_factory(protocol, int(model_seed))
     model = make_model().fit(X, codes, len(protocol.actions))
+    folds = usual_care_folds(decisions, protocol)
     if spec.folds == 1:  # parametric model, no cross-fitting: in-sample probabilities for the records
-        folds = np.zeros(len(decisions), dtype=np.int64)
         out_of_fold = model.predict_proba(X)
     else:
-        folds = patient_folds(patient_clusters(decisions), spec.folds, int(fold_seed))
         out_of_fold = cross_fit_proba(make_model, X, codes, len(protocol.actions), folds)
     floor = spec.probability_floor
     return UsualCareModel(design, model, floor, apply_probability_floor(out_of_fold, floor), folds)
+
+
+def usual_care_folds(decisions: pd.DataFrame, protocol: Protocol) -> np.ndarray:
+    """The fold of each decision in the usual-care model's cross-fitting by patient (all 0 with one fold): the
+    folds :func:`fit_usual_care` uses, from the records' patients and the protocol's root seed, so another job can
+    find them again."""
+    spec = protocol.behaviour_model
+    if spec.folds == 1:
+        return np.zeros(len(decisions), dtype=np.int64)
+    fold_seed = stream_ints(protocol.seed, "usual_care", 2)[0]
+    return patient_folds(patient_clusters(decisions), spec.folds, int(fold_seed))

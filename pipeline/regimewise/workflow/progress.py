@@ -19,6 +19,7 @@ from pathlib import Path
 STAGE_WORDS = {
     "validate": "validation of the records",
     "behaviour": "usual-care model",
+    "behaviour_diagnostics": "usual-care model's diagnostics",
     "crossfit": "cross-fitted fold regimes",
     "regime_fit": "regime learning",
     "regime": "recommendations of the learned regimes",

@@ -20,7 +20,8 @@ Threads (:data:`STAGE_THREADS`): every rule runs one process, and BLAS is held t
 (:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. Every rule asks
 for one thread (:data:`STAGE_THREADS` says why; the regime and evaluate stages can run their independent fits on two
 threads of their process, :mod:`regimewise.core.concurrency`, when a rule asks for them). Bootstrap shards are
-separate jobs; the ``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour`` and ``regime_fit``
+separate jobs; ``behaviour_diagnostics`` (behaviour.json) runs beside the jobs after ``behaviour``; the
+``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour`` and ``regime_fit``
 (the side-by-side regimes; the ``regime`` rule joins the two), ``evaluate_fixed`` (the values of usual care, the
 fixed strategies and the comparators) beside ``regime_fit``, and
 ``sensitivity_curves`` (the bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and
@@ -61,10 +62,11 @@ BASE_MB = 400.0
 # million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin. Split off since:
 # evaluate_fixed keeps evaluate's memory slope (its time about a third of evaluate's at 100k episodes); regime_fit
 # keeps the regime stage's figures, and the regime rule, now a join of two tables, has the slope measured at 100k
-# (780 MB peak at 1.2M decisions, 2.8 s CPU).
+# (780 MB peak at 1.2M decisions, 2.8 s CPU), as has behaviour_diagnostics (867 MB, 2.9 s CPU).
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
     "behaviour": StageCost(BASE_MB, 500.0, 0.3),
+    "behaviour_diagnostics": StageCost(BASE_MB, 400.0, 0.1),
     "crossfit": StageCost(BASE_MB, 600.0, 0.4),
     "regime_fit": StageCost(BASE_MB, 700.0, 0.5),
     "regime": StageCost(BASE_MB, 400.0, 0.1),

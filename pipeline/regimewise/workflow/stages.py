@@ -65,8 +65,13 @@ from regimewise.sensitivity.analysis import (
     summarise_sensitivity,
 )
 from regimewise.survival.analysis import survival_analysis, survival_intervals
-from regimewise.usual_care.diagnostics import overlap_by_step, usual_care_diagnostics
-from regimewise.usual_care.fitting import fit_usual_care
+from regimewise.usual_care.diagnostics import (
+    diagnostics_document,
+    model_block,
+    overlap_by_step,
+    usual_care_diagnostics,
+)
+from regimewise.usual_care.fitting import fit_usual_care, usual_care_folds
 from regimewise.workflow.settings import real_input
 
 
@@ -147,14 +152,50 @@ def proba_columns(labels) -> list[str]:
 
 
 def behaviour_stage(protocol, decisions, proba, diagnostics):
-    """Fit the usual-care model with cross-fitting; write the records' out-of-fold probabilities and diagnostics."""
+    """Fit the usual-care model with cross-fitting; write the records' out-of-fold probabilities and diagnostics.
+    The workflow splits this stage in two jobs, :func:`behaviour_fit_stage` (on the critical path: every later
+    model needs the probabilities) and :func:`behaviour_diagnostics_stage` (beside the jobs after it), which write
+    the same bytes."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     model = fit_usual_care(frame, p)
+    _write_probabilities(proba, p, frame, model)
+    write_json(diagnostics, usual_care_diagnostics(p, frame, model))
+
+
+def _write_probabilities(path, p, frame, model) -> None:
     table = frame[["episode_id", "step"]].copy()
     table[proba_columns(p.action_labels)] = model.record_proba
-    write_parquet(proba, table)
-    write_json(diagnostics, usual_care_diagnostics(p, frame, model))
+    write_parquet(path, table)
+
+
+def behaviour_fit_stage(protocol, decisions, proba, model):
+    """The workflow's first half of :func:`behaviour_stage`: fit the usual-care model and write the records'
+    probabilities, and the model's block of behaviour.json (``model``, a temporary file of the workflow read by
+    :func:`behaviour_diagnostics_stage`)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    fitted = fit_usual_care(frame, p)
+    _write_probabilities(proba, p, frame, fitted)
+    write_json(model, model_block(p, fitted))
+
+
+def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
+    """The workflow's second half of :func:`behaviour_stage`: behaviour.json from the records, the probabilities
+    :func:`behaviour_fit_stage` wrote (which must be of these decisions) and the model's block (the same bytes)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    table = read_parquet(proba)
+    if len(table) != len(frame) or not np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy()):
+        raise UserInputError(f"{proba} does not hold the probabilities of these decisions; rerun the workflow")
+    # rows in memory as the fit left them (the diagnostics' sums run over the array in its memory order)
+    probabilities = np.ascontiguousarray(table[proba_columns(p.action_labels)].to_numpy(dtype=float))
+    del table
+    folds = usual_care_folds(frame, p)
+    document = diagnostics_document(
+        p, frame, probabilities, p.behaviour_model.probability_floor, folds, read_json(model)
+    )
+    write_json(diagnostics, document)
 
 
 def read_probabilities(path, labels) -> np.ndarray:
@@ -620,7 +661,8 @@ def selfcheck_stage(protocol, decisions, episodes, cohorts, selfcheck, page):
 # ---------------------------------------------------------------------------------------------- dispatch
 STAGES = {
     "validate": validate_stage,
-    "behaviour": behaviour_stage,
+    "behaviour": behaviour_fit_stage,
+    "behaviour_diagnostics": behaviour_diagnostics_stage,
     "crossfit": crossfit_stage,
     "regime_fit": regime_fit_stage,
     "regime": regime_join_stage,
