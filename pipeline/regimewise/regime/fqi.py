@@ -294,15 +294,21 @@ class FittedQIteration(BackwardQModel):
         return target, [make], None
 
     def _out_of_fold(self, X, step, action, target, makers):
+        """Mean out-of-fold squared error of the Q-models at each step present.
+
+        Backward mode: each step's errors are averaged as they come (the same numbers, in the same order, as
+        gathering them into a table and reading that step's rows back)."""
         folds = self._folds
         if self.settings.mode == "pooled":
             error = out_of_fold_errors(makers[0], self._pooled_X(X, step), action, target, folds)
-        else:
-            error = np.full(step.size, np.nan)
-            for t in np.unique(step):
-                rows = step == t
-                error[rows] = out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows])
-        return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+            return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+        out = {}
+        for t in np.flatnonzero(np.bincount(step)):  # the steps present, ascending (np.unique without a sort)
+            rows = np.flatnonzero(step == t)
+            out[int(t)] = float(
+                np.nanmean(out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows]))
+            )
+        return out
 
     def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None):
         """Fit the Q-models; return ``self``.
