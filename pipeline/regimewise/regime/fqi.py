@@ -36,7 +36,7 @@ from regimewise.core.arrays import check_proba, next_row_index
 from regimewise.core.folds import patient_folds
 from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import StatisticalWarning, UserInputError
-from regimewise.regime.permitted import constrained_choice
+from regimewise.regime.permitted import constrained_choice, permitted_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_resamples
 from regimewise.regime.qmodels import (
     BackwardQModel,
@@ -230,7 +230,7 @@ class FittedQIteration(BackwardQModel):
 
     def _chosen_score(self, score, proba, rules):
         """The score of the best permitted action in each row of ``score`` (n, K): the value carried backwards."""
-        choice = constrained_choice(score, proba, self.settings.support_threshold, rules)[0]
+        choice = permitted_choice(score, proba, self.settings.support_threshold, rules)
         return score[np.arange(choice.size), choice]
 
     # ------------------------------------------------------------------------------------------- learning
@@ -418,7 +418,7 @@ class FittedQIteration(BackwardQModel):
                 "data; the regime is undefined there."
             )
         rules = self._check_rules(rule_permitted, score.shape[0])
-        return constrained_choice(score, behaviour_proba, self.settings.support_threshold, rules)[0]
+        return permitted_choice(score, behaviour_proba, self.settings.support_threshold, rules)
 
     def recommend_proba(self, X, step, behaviour_proba, rule_permitted=None):
         """One-hot (n, K) probabilities of the regime, e.g. as ``target_proba`` for off-policy evaluation."""
