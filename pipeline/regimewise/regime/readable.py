@@ -71,6 +71,20 @@ class ReadableRegime:
 TREE_ROWS = 250_000
 
 
+def group_codes(groups) -> np.ndarray:
+    """Each row's group as a code 0..G-1 in the groups' sorted order: ``numpy.unique(groups, return_inverse=True)[1]``.
+
+    Groups that are such codes already (integers with every value from 0 to their largest present) are their own
+    codes, as ``numpy.unique`` would give them back: they are returned without its sort of every row, so
+    :func:`distill_regime` sorts the patients once and :func:`fitting_rows` reuses its codes.
+    """
+    groups = np.asarray(groups)
+    if groups.dtype.kind == "i" and groups.ndim == 1 and groups.size and groups.min() == 0:
+        if groups.max() < groups.size and np.bincount(groups).all():  # a count per possible code: at most n of them
+            return groups.astype(np.intp, copy=False)
+    return np.unique(groups, return_inverse=True)[1]
+
+
 def fitting_rows(n: int, groups, max_rows: int, seed: int) -> np.ndarray:
     """Row indices (ascending) the tree is fitted on: every row up to ``max_rows``; above it, the rows of
     patients taken in a random order (``seed``) while their decisions fit in ``max_rows`` (rows drawn at random
@@ -80,7 +94,7 @@ def fitting_rows(n: int, groups, max_rows: int, seed: int) -> np.ndarray:
     rng = np.random.default_rng(seed)
     if groups is None:
         return np.sort(rng.choice(n, size=max_rows, replace=False))
-    codes = np.unique(np.asarray(groups), return_inverse=True)[1]
+    codes = group_codes(groups)
     order = rng.permutation(int(codes.max()) + 1)
     sizes = np.bincount(codes)[order]
     chosen = order[: max(1, int(np.searchsorted(np.cumsum(sizes), max_rows, side="right")))]
@@ -247,12 +261,12 @@ def distill_regime(
     X = (frame if list(frame.columns) == names else frame[names]).to_numpy(dtype=float)
     recommended = np.asarray(recommended, dtype=np.int64)
     make = lambda: DecisionTreeClassifier(max_depth=max_depth, random_state=random_state)  # noqa: E731
-    fit = fitting_rows(len(recommended), groups, max_rows, subset_seed)
+    codes = None if groups is None else group_codes(groups)  # patients sorted once: the fitting rows reuse them
+    fit = fitting_rows(len(recommended), codes, max_rows, subset_seed)
     tree = make().fit(X[fit], recommended[fit])
     fidelity = float(np.mean(tree.predict(X) == recommended))
     oof = None
     if groups is not None:
-        codes = np.unique(np.asarray(groups), return_inverse=True)[1]
         fold = np.random.default_rng(random_state).permutation(int(codes.max()) + 1)[codes] % n_folds
         agree = np.zeros(len(recommended), dtype=bool)
         for f in range(n_folds):
