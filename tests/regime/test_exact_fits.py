@@ -10,6 +10,8 @@ import numpy as np
 import pytest
 
 from regimewise.core.terms import ActionSlopes
+from regimewise.regime.fqi import FittedQIteration, QLearningSettings
+from regimewise.regime.permitted import constrained_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_resamples
 from regimewise.regime.qmodels import (
     ActionCells,
@@ -116,3 +118,36 @@ def test_out_of_fold_errors_equal_fitting_each_fold_alone(slopes):
     np.testing.assert_array_equal(
         out_of_fold_errors(make, X, action, y, folds), old_out_of_fold_errors(make, X, action, y, folds)
     )
+
+
+@pytest.mark.parametrize("pessimism", [None, 1.5])
+def test_q_values_and_scores_are_each_step_models_on_their_rows(pessimism):
+    """recommend_with_q (one prediction per step for both) and a single step's rows passed without a copy give what
+    each step model predicts and scores on its own rows, taken out of the table one step at a time."""
+    rng = np.random.default_rng(12)
+    episodes, horizon = 200, 3
+    step = np.tile(np.arange(horizon), episodes)
+    X = rng.normal(size=(step.size, 3))
+    action = rng.integers(0, 3, step.size)
+    proba = rng.dirichlet(np.ones(3), size=step.size)
+    rules = rng.random((step.size, 3)) < 0.8
+    settings = QLearningSettings(support_threshold=0.1, pessimism=pessimism, ensemble_size=6)
+    model = FittedQIteration(3, horizon, settings, random_state=4).fit(
+        X, step, action, rng.normal(size=step.size), np.repeat(np.arange(episodes), horizon), proba
+    )
+    q_ref, score_ref = np.full((step.size, 3), np.nan), np.full((step.size, 3), np.nan)
+    for t in range(horizon):
+        rows = step == t
+        step_model = model.models_[t]
+        q_ref[rows] = step_model.predict(X[rows])
+        score_ref[rows] = step_model.score(X[rows]) if pessimism else step_model.predict(X[rows])
+    choice_ref = constrained_choice(score_ref, proba, 0.1, rules)[0]
+    codes, q = model.recommend_with_q(X, step, proba, rules)
+    np.testing.assert_array_equal(q, q_ref)
+    np.testing.assert_array_equal(codes, choice_ref)
+    np.testing.assert_array_equal(model.scores(X, step), score_ref)
+    at = np.flatnonzero(step == 1)
+    codes, q = model.recommend_with_q(X[at], step[at], proba[at], rules[at])
+    np.testing.assert_array_equal(q, q_ref[at])
+    np.testing.assert_array_equal(codes, choice_ref[at])
+    np.testing.assert_array_equal(model.recommend(X[at], step[at], proba[at], rules[at]), choice_ref[at])

@@ -152,6 +152,7 @@ class PessimisticEnsemble:
             sd = np.nanstd(np.where(defined >= 2, draws, 0.0), axis=0, ddof=1)
         return np.where(defined >= 2, sd, 0.0)
 
-    def score(self, X):
-        """Pessimistic score Q_full − k · sd (n, K); equals :meth:`predict` when ``k == 0``."""
-        return self.predict(X) - self.k * self.spread(X)
+    def score(self, X, predicted=None):
+        """Pessimistic score Q_full − k · sd (n, K); equals :meth:`predict` when ``k == 0``. ``predicted``:
+        :meth:`predict` of ``X`` when the caller has it (not computed again)."""
+        return (self.predict(X) if predicted is None else predicted) - self.k * self.spread(X)
