@@ -140,14 +140,20 @@ def _range_text(name, low, high, above, below, whole) -> str:
     return f"{name} {below} {show(high)}"
 
 
-def tree_rules(tree, state_names, binary, action_labels, X, target) -> tuple[TreeRule, ...]:
-    """Every leaf of a fitted tree as a :class:`TreeRule` (depth-first, left branch first), each path's
-    thresholds merged into one condition per state (:func:`_conditions`)."""
-    t = tree.tree_
+def leaf_predictions(tree, X) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's leaf of a fitted tree and what ``tree.predict(X)`` returns there (the class of the largest value
+    at the leaf), read off the leaves instead of running the rows down the tree again with (n, classes)
+    probabilities: one pass serves the fidelity and the leaves' agreement (:func:`distill_regime`)."""
     leaf_of = tree.apply(X)
-    # what tree.predict(X) returns (the class of the largest value at each row's leaf), read off the leaves found
-    # above instead of running the rows down the tree again with (n, classes) probabilities
-    predicted = tree.classes_.take(np.argmax(t.value[:, 0, :], axis=1))[leaf_of]
+    return leaf_of, tree.classes_.take(np.argmax(tree.tree_.value[:, 0, :], axis=1))[leaf_of]
+
+
+def tree_rules(tree, state_names, binary, action_labels, X, target, leaves=None) -> tuple[TreeRule, ...]:
+    """Every leaf of a fitted tree as a :class:`TreeRule` (depth-first, left branch first), each path's
+    thresholds merged into one condition per state (:func:`_conditions`). ``leaves``: :func:`leaf_predictions`
+    of ``X`` when the caller has them."""
+    t = tree.tree_
+    leaf_of, predicted = leaf_predictions(tree, X) if leaves is None else leaves
     values = np.asarray(X, dtype=float)
     integer = [bool(np.all(values[:, j] == np.round(values[:, j]))) for j in range(values.shape[1])]
     rules = []
@@ -202,18 +208,25 @@ def two_state_table(frame, recommended, first, second, action_labels, n_bins=4) 
         edges, discrete = _bins(values, n_bins)
         axes.append((name, _bin_labels(name, edges, discrete), _bin_index(values, edges, discrete)))
     (n1, labels1, idx1), (n2, labels2, idx2) = axes
+    # every cell's count of every action in one pass over the decisions (one count per cell and action, the counts a
+    # mask per cell would give) instead of one pass per cell
+    n_actions = len(action_labels)
+    every = np.bincount(
+        (idx1 * len(labels2) + idx2) * n_actions + recommended, minlength=len(labels1) * len(labels2) * n_actions
+    )
+    every = every.reshape(len(labels1), len(labels2), n_actions)
     cells = []
     for i in range(len(labels1)):
         row = []
         for j in range(len(labels2)):
-            rows = (idx1 == i) & (idx2 == j)
-            counts = np.bincount(recommended[rows], minlength=len(action_labels))
+            counts = every[i, j]
+            total = counts.sum()
             top = int(counts.argmax())
             row.append(
                 {
-                    "decisions": int(rows.sum()),
-                    "action": action_labels[top] if rows.any() else None,
-                    "share": float(counts[top] / rows.sum()) if rows.any() else None,
+                    "decisions": int(total),
+                    "action": action_labels[top] if total else None,
+                    "share": float(counts[top] / total) if total else None,
                 }
             )
         cells.append(row)
@@ -264,7 +277,8 @@ def distill_regime(
     codes = None if groups is None else group_codes(groups)  # patients sorted once: the fitting rows reuse them
     fit = fitting_rows(len(recommended), codes, max_rows, subset_seed)
     tree = make().fit(X[fit], recommended[fit])
-    fidelity = float(np.mean(tree.predict(X) == recommended))
+    leaves = leaf_predictions(tree, X)  # the predictions of tree.predict(X), and the leaves for the rules
+    fidelity = float(np.mean(leaves[1] == recommended))
     oof = None
     if groups is not None:
         fold = np.random.default_rng(random_state).permutation(int(codes.max()) + 1)[codes] % n_folds
@@ -280,5 +294,5 @@ def distill_regime(
     table = (
         two_state_table(frame, recommended, names[order[0]], names[order[1]], action_labels) if len(names) > 1 else {}
     )
-    rules = tree_rules(tree, names, binary, action_labels, X, recommended)
+    rules = tree_rules(tree, names, binary, action_labels, X, recommended, leaves)
     return ReadableRegime(max_depth, fidelity, oof, rules, importance, table, int(fit.size))
