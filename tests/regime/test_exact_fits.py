@@ -53,14 +53,14 @@ def table(n=900, p=6, n_actions=4, seed=0):
 def test_action_cells_give_the_fits_of_the_whole_table(alpha):
     design, action, y = table()
     rng = np.random.default_rng(1)
-    cells = ActionCells.gather(design, action, y, 4)
+    cells = ActionCells.gather(design[:, 1:], action, y, 4)
     for weight in [None, rng.poisson(1.0, y.size).astype(float), rng.poisson(1.0, y.size).astype(float)]:
         expected = separate_fit(design, action, y, alpha, 4, weight)
         assert np.isnan(expected[3]).all()
         np.testing.assert_array_equal(fit_actions(design, action, y, alpha, 4, weight=weight, cells=cells), expected)
         np.testing.assert_array_equal(fit_actions(design, action, y, alpha, 4, weight=weight), expected)
     responses = np.column_stack([y, 2 * y + 1])  # several responses at once, as fitted-Q evaluation passes them
-    wide = ActionCells.gather(design, action, responses, 4)
+    wide = ActionCells.gather(design[:, 1:], action, responses, 4)
     weight = rng.poisson(1.0, y.size).astype(float)
     np.testing.assert_array_equal(
         fit_actions(design, action, responses, alpha, 4, weight=weight, cells=wide),
@@ -72,7 +72,7 @@ def test_a_boolean_weight_fits_the_selected_rows_alone():
     design, action, y = table(seed=2)
     keep = np.random.default_rng(3).random(y.size) < 0.7
     alone = fit_actions(design[keep], action[keep], y[keep], 0.0, 4)
-    cells = ActionCells.gather(design, action, y, 4)
+    cells = ActionCells.gather(design[:, 1:], action, y, 4)
     np.testing.assert_array_equal(fit_actions(design, action, y, 0.0, 4, weight=keep, cells=cells), alone)
     np.testing.assert_array_equal(fit_actions(design, action, y, 0.0, 4, weight=keep), alone)
 
@@ -80,8 +80,8 @@ def test_a_boolean_weight_fits_the_selected_rows_alone():
 def test_shared_slopes_have_no_cells_and_fit_as_before():
     design, action, y = table(seed=4)
     shared = LinearActionModel(4, 1.0, ActionSlopes(True, (1,)))
-    assert shared.cells(design, action, y) is None
-    assert isinstance(LinearActionModel(4).cells(design, action, y), ActionCells)
+    assert shared.cells(design[:, 1:], action, y) is None
+    assert isinstance(LinearActionModel(4).cells(design[:, 1:], action, y), ActionCells)
 
 
 def test_ensemble_replicates_are_the_fits_of_their_weights():

@@ -100,13 +100,14 @@ class PessimisticEnsemble:
         """Fit the full-sample model and the bootstrap models on the table rows ``rows``; return ``self``.
 
         Linear models (``fit_design``) share one design matrix [1, X] (as their own ``fit`` builds it) instead of
-        building it once per fit, and each action's rows of it (``cells``) instead of selecting them once per fit.
+        building it once per fit: with separate slopes as each action's rows of it (``cells``, built from X; no
+        design of the whole table beside them), instead of selecting them once per fit.
         """
         model, weights = self.make_model(), self.resamples.rows(rows)
         self.resamples = None  # the weights are taken: the fitted ensemble does not keep the table's resamples alive
         if hasattr(model, "fit_design"):
-            design = np.hstack([np.ones((X.shape[0], 1)), X])
-            cells = model.cells(design, action, y)
+            cells = model.cells(X, action, y)
+            design = np.hstack([np.ones((X.shape[0], 1)), X]) if cells is None else None
             self.full_ = model.fit_design(design, action, y, None, cells)
             self.replicates_ = [self.make_model().fit_design(design, action, y, w, cells) for w in weights]
         else:

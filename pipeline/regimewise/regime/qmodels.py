@@ -120,7 +120,9 @@ class ActionCells:
     gather of rows spread over the table) took more time than the least-squares fits; with the cells, a fit
     gathers the rows of positive weight out of the action's own compact rows. The rows, their order and so every
     number a fit sees are the same: ``rows[a]`` are the positions of action ``a``'s rows in ascending order, as
-    ``numpy.flatnonzero`` of the action's mask gives them, and ``design[a]``, ``y[a]`` the table's rows there.
+    ``numpy.flatnonzero`` of the action's mask gives them, and ``design[a]``, ``y[a]`` the table's rows of [1, X]
+    and y there. Built from the states X, action by action, so together they hold [1, X] once: the whole table's
+    design is not built beside them.
     """
 
     rows: tuple
@@ -128,9 +130,14 @@ class ActionCells:
     y: tuple
 
     @classmethod
-    def gather(cls, design, action, y, n_actions) -> ActionCells:
+    def gather(cls, X, action, y, n_actions) -> ActionCells:
         rows = tuple(np.flatnonzero(action == a) for a in range(n_actions))
-        return cls(rows, tuple(design[r] for r in rows), tuple(y[r] for r in rows))
+        return cls(rows, tuple(_design(X[r]) for r in rows), tuple(y[r] for r in rows))
+
+    @property
+    def width(self) -> int:
+        """Columns of the design [1, X]."""
+        return self.design[0].shape[1]
 
     def weighted(self, a, weight):
         """Action ``a``'s rows of positive ``weight`` (all of them if None), multiplied by the square roots of their
@@ -151,11 +158,12 @@ def fit_actions(design, action, y, alpha, n_actions, slopes=SEPARATE, weight=Non
     vector: intercept β₀ + γ_a, the common slopes θ, and the action's own slopes on the interaction columns.
     ``weight`` (n,) fits weighted least squares (rows of zero weight are left out; a boolean ``weight`` only
     selects the rows, the same numbers as fitting the selected rows alone). ``cells``
-    (:class:`ActionCells` of ``design``, ``action`` and ``y``; separate slopes only) saves selecting each
-    action's rows again when the same table is fitted with several weights: the same numbers.
+    (:class:`ActionCells` of the table's X, ``action`` and ``y``; separate slopes only) saves selecting each
+    action's rows again when the same table is fitted with several weights: the same numbers; ``design`` may
+    then be None.
     """
     keep_rows = np.ones(len(action), dtype=bool) if weight is None else weight > 0
-    coef = np.full((n_actions, design.shape[1]) + np.shape(y)[1:], np.nan)
+    coef = np.full((n_actions, cells.width if design is None else design.shape[1]) + np.shape(y)[1:], np.nan)
 
     def rooted(rows):
         return _rooted(design[rows], y[rows], None if weight is None else weight[rows])
@@ -471,10 +479,10 @@ class LinearActionModel:
         self.coef_ = fit_actions(design, action, y, self.alpha, self.n_actions, self.slopes, weight, cells)
         return self
 
-    def cells(self, design, action, y):
-        """The :class:`ActionCells` of a table this model will fit several times (with other weights), or None when
-        the slopes are shared (one fit on all rows: nothing to select per action)."""
-        return None if self.slopes.shared else ActionCells.gather(design, action, y, self.n_actions)
+    def cells(self, X, action, y):
+        """The :class:`ActionCells` of a table (states ``X``) this model will fit several times (with other
+        weights), or None when the slopes are shared (one fit on all rows: nothing to select per action)."""
+        return None if self.slopes.shared else ActionCells.gather(X, action, y, self.n_actions)
 
     def predict(self, X):
         return _design(X) @ self.coef_.T
@@ -522,8 +530,8 @@ def out_of_fold_errors(make_model, X, action, y, folds):
     error = np.full(y.shape[0], np.nan)
     model = make_model()
     separate = hasattr(model, "cells") and not model.slopes.shared
-    design = _design(X) if separate else None
-    cells = model.cells(design, action, y) if separate else None
+    design = _design(X) if separate else None  # the folds' rows to predict
+    cells = model.cells(X, action, y) if separate else None
     for f in np.unique(folds):
         test = folds == f
         if test.all():
