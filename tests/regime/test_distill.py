@@ -12,7 +12,15 @@ from sklearn.tree import DecisionTreeClassifier
 
 from regimewise.errors import UserInputError
 from regimewise.protocol import StateVariable
-from regimewise.regime.readable import distill_regime, fitting_rows, tree_rules
+from regimewise.regime.readable import (
+    _bin_index,
+    _bins,
+    distill_regime,
+    fitting_rows,
+    leaf_predictions,
+    tree_rules,
+    two_state_table,
+)
 
 STATES = [
     StateVariable(name="sbp", label="SBP", kind="continuous", plausible_range=(70, 250)),
@@ -77,6 +85,19 @@ def test_fidelity_matches_sklearn_tree(data):
     assert max(readable.importance, key=readable.importance.get) == "sbp"
 
 
+def test_leaf_predictions_are_the_trees_predictions_exactly(data):
+    # source: DecisionTreeClassifier.predict; the fidelity is read off the leaves the rules use, so it must be the
+    # same predictions to the last row and the same mean to the last bit
+    frame, recommended, groups = data
+    X = frame[["sbp", "level", "female"]].to_numpy(dtype=float)
+    tree = DecisionTreeClassifier(max_depth=3, random_state=0).fit(X, recommended)
+    leaf_of, predicted = leaf_predictions(tree, X)
+    np.testing.assert_array_equal(predicted, tree.predict(X))
+    np.testing.assert_array_equal(leaf_of, tree.apply(X))
+    readable = distill_regime(frame, recommended, STATES, LABELS, groups=groups, random_state=0)
+    assert readable.fidelity == float(np.mean(tree.predict(X) == recommended))
+
+
 def test_above_the_row_cap_the_tree_is_fitted_on_whole_patients_and_judged_on_every_decision(data):
     # source: scikit-learn DecisionTreeClassifier(max_depth=3) fitted independently on the chosen rows, and
     # accuracy_score over every decision
@@ -121,6 +142,36 @@ def test_two_state_table_counts_every_decision(data):
     total = sum(cell["decisions"] for row in table["cells"] for cell in row)
     assert total == len(frame)
     assert len(table["cells"]) == len(table["row_bins"]) and len(table["cells"][0]) == len(table["column_bins"])
+
+
+@pytest.mark.parametrize("second", ["level", "female"])
+def test_two_state_table_cells_are_those_of_a_mask_per_cell(data, second):
+    # source: each cell's decisions selected by a mask of their own and counted, as the table was first computed;
+    # the counts, actions and shares must be equal exactly (empty cells included: no decision with level 4 in the
+    # lowest pressure bin below)
+    frame, recommended, _ = data
+    sbp = frame.sbp.to_numpy(dtype=float)
+    lowest = _bin_index(sbp, _bins(sbp, 4)[0], False) == 0
+    frame = frame.assign(level=np.where(lowest, np.minimum(frame.level, 3), frame.level))
+    table = two_state_table(frame, recommended, "sbp", second, LABELS)
+    idx = []
+    for name in ("sbp", second):
+        values = frame[name].to_numpy(dtype=float)
+        edges, discrete = _bins(values, 4)
+        idx.append(_bin_index(values, edges, discrete))
+    empty = 0
+    for i, row in enumerate(table["cells"]):
+        for j, cell in enumerate(row):
+            rows = (idx[0] == i) & (idx[1] == j)
+            counts = np.bincount(recommended[rows], minlength=len(LABELS))
+            top = int(counts.argmax())
+            assert cell == {
+                "decisions": int(rows.sum()),
+                "action": LABELS[top] if rows.any() else None,
+                "share": float(counts[top] / rows.sum()) if rows.any() else None,
+            }
+            empty += not rows.any()
+    assert second == "female" or empty > 0
 
 
 def test_summary_says_it_is_a_summary(data):

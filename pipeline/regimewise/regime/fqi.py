@@ -36,7 +36,7 @@ from regimewise.core.arrays import check_proba, next_row_index
 from regimewise.core.folds import patient_folds
 from regimewise.core.terms import SEPARATE, ActionSlopes
 from regimewise.errors import StatisticalWarning, UserInputError
-from regimewise.regime.permitted import constrained_choice
+from regimewise.regime.permitted import constrained_choice, permitted_choice
 from regimewise.regime.pessimism import PessimisticEnsemble, patient_resamples
 from regimewise.regime.qmodels import (
     BackwardQModel,
@@ -216,21 +216,46 @@ class FittedQIteration(BackwardQModel):
 
     def _raw(self, X, step, scores):
         """Q-values (or pessimistic scores) (n, K) of the fitted models at the given steps."""
-        pick = self._scores if scores else (lambda model, Z: model.predict(Z))
+        return self._predicted(X, step, q=not scores, score=scores)[0]
+
+    def _predicted(self, X, step, q, score):
+        """The fitted models' Q-values (``q``) and/or scores (``score``), each (n, K), at the given steps: a tuple,
+        Q-values first.
+
+        Asked for both, each step's full-sample model predicts once and the pessimistic score is formed from that
+        prediction (:meth:`PessimisticEnsemble.score`), the same numbers as predicting twice. Rows all at one
+        step (one step's rows scored at once, :func:`regimewise.regime.learning.score_by_step`) are passed as they
+        are rather than copied out by a mask: every model copies its rows into a design of its own, so the
+        numbers are the same.
+        """
+
+        def predict(model, Z):
+            full = model.predict(Z)
+            parts = [full] if q else []
+            if score:
+                parts.append(model.score(Z, full) if hasattr(model, "score") else full)
+            return parts
+
         if self.settings.mode == "pooled":
-            return self._mask_unfitted(pick(self.models_[0], self._pooled_X(X, step)), step)
-        q = np.full((X.shape[0], self.n_actions), np.nan)
-        for t in np.unique(step):
-            rows = step == t
-            q[rows] = pick(self.models_[t], X[rows])
-        return self._mask_unfitted(q, step)
+            parts = predict(self.models_[0], self._pooled_X(X, step))
+            return tuple(self._mask_unfitted(part, step) for part in parts)
+        present = np.flatnonzero(np.bincount(step))  # the steps present, ascending (np.unique without a sort)
+        if present.size == 1:
+            parts = predict(self.models_[present[0]], X)
+        else:
+            parts = [np.full((X.shape[0], self.n_actions), np.nan) for _ in range(q + score)]
+            for t in present:
+                rows = step == t
+                for part, predicted in zip(parts, predict(self.models_[t], X[rows])):
+                    part[rows] = predicted
+        return tuple(self._mask_unfitted(part, step) for part in parts)
 
     def _next_values(self, X, step, proba, rules):
         return self._chosen_score(self._raw(X, step, scores=True), proba, rules)
 
     def _chosen_score(self, score, proba, rules):
         """The score of the best permitted action in each row of ``score`` (n, K): the value carried backwards."""
-        choice = constrained_choice(score, proba, self.settings.support_threshold, rules)[0]
+        choice = permitted_choice(score, proba, self.settings.support_threshold, rules)
         return score[np.arange(choice.size), choice]
 
     # ------------------------------------------------------------------------------------------- learning
@@ -294,15 +319,21 @@ class FittedQIteration(BackwardQModel):
         return target, [make], None
 
     def _out_of_fold(self, X, step, action, target, makers):
+        """Mean out-of-fold squared error of the Q-models at each step present.
+
+        Backward mode: each step's errors are averaged as they come (the same numbers, in the same order, as
+        gathering them into a table and reading that step's rows back)."""
         folds = self._folds
         if self.settings.mode == "pooled":
             error = out_of_fold_errors(makers[0], self._pooled_X(X, step), action, target, folds)
-        else:
-            error = np.full(step.size, np.nan)
-            for t in np.unique(step):
-                rows = step == t
-                error[rows] = out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows])
-        return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+            return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+        out = {}
+        for t in np.flatnonzero(np.bincount(step)):  # the steps present, ascending (np.unique without a sort)
+            rows = np.flatnonzero(step == t)
+            out[int(t)] = float(
+                np.nanmean(out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows]))
+            )
+        return out
 
     def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None):
         """Fit the Q-models; return ``self``.
@@ -403,7 +434,16 @@ class FittedQIteration(BackwardQModel):
         -------
         ndarray of int, shape (n,)
         """
-        score = self.scores(X, step)
+        return self._choose(self.scores(X, step), step, behaviour_proba, rule_permitted)
+
+    def recommend_with_q(self, X, step, behaviour_proba, rule_permitted=None):
+        """:meth:`recommend` and :meth:`q_values` at once, each step's full-sample model predicting once for both
+        (the same numbers as calling the two)."""
+        q, score = self._predicted(*self._checked_rows(X, step), q=True, score=True)
+        return self._choose(score, step, behaviour_proba, rule_permitted), q
+
+    def _choose(self, score, step, behaviour_proba, rule_permitted):
+        """The permitted action with the best ``score`` at each row (:meth:`recommend`)."""
         behaviour_proba = check_proba(behaviour_proba, score.shape[0], self.n_actions, "behaviour_proba")
         empty = np.flatnonzero(np.isnan(score).all(axis=1))
         if empty.size:
@@ -412,7 +452,7 @@ class FittedQIteration(BackwardQModel):
                 "data; the regime is undefined there."
             )
         rules = self._check_rules(rule_permitted, score.shape[0])
-        return constrained_choice(score, behaviour_proba, self.settings.support_threshold, rules)[0]
+        return permitted_choice(score, behaviour_proba, self.settings.support_threshold, rules)
 
     def recommend_proba(self, X, step, behaviour_proba, rule_permitted=None):
         """One-hot (n, K) probabilities of the regime, e.g. as ``target_proba`` for off-policy evaluation."""

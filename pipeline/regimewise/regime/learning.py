@@ -246,8 +246,9 @@ def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarr
     at a time rather than for the whole frame.
 
     The step models score each step's rows on their own (:meth:`FittedQIteration.recommend` and ``q_values`` take
-    the rows of step t out of X, in their order, into a copy of their own), and every Q-feature depends on its own
-    row only, so the rows of one step, in the frame's order, get exactly the numbers of the whole frame. Usual
+    the rows of step t out of X, in their order, into a design of their own), and every Q-feature depends on its
+    own row only, so the rows of one step, in the frame's order, get exactly the numbers of the whole frame; one
+    call (:meth:`FittedQIteration.recommend_with_q`) gives both, each step model predicting once. Usual
     care's probabilities (computed in row blocks from the first row) and the clinical rules are computed on the
     whole frame, as ``recommend`` computes them.
     """
@@ -259,8 +260,9 @@ def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarr
     for t in np.unique(steps):
         at = np.flatnonzero(steps == t)
         X = learned.q_features.transform(frame.iloc[at])
-        codes[at] = learned.fqi.recommend(X, steps[at], proba[at], None if permitted is None else permitted[at])
-        q[at] = learned.fqi.q_values(X, steps[at])
+        codes[at], q[at] = learned.fqi.recommend_with_q(
+            X, steps[at], proba[at], None if permitted is None else permitted[at]
+        )
     return codes, q
 
 

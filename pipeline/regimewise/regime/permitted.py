@@ -41,12 +41,36 @@ def constrained_choice(score, behaviour_proba, support_threshold, rule_permitted
         ``unconstrained`` is the best defined, rule-permitted action without the support constraint (the
         fallback where the rules leave no defined action).
     """
+    return _choices(score, behaviour_proba, support_threshold, rule_permitted, True)
+
+
+def permitted_choice(score, behaviour_proba, support_threshold, rule_permitted=None) -> np.ndarray:
+    """The choice of :func:`constrained_choice` alone (the best permitted action, or the fallback), without the
+    unconstrained best action it also finds: the backward induction asks for the choice at every step."""
+    return _choices(score, behaviour_proba, support_threshold, rule_permitted, False)[0]
+
+
+def _choices(score, behaviour_proba, support_threshold, rule_permitted, with_unconstrained):
+    """:func:`constrained_choice` (``unconstrained`` None unless ``with_unconstrained``).
+
+    The fallback (usual care's most likely action) is found at the rows without a permitted action only: every
+    other row takes its best permitted action. Rows without a defined, rule-permitted action have no permitted
+    one either, so those rows are also all the rows whose unconstrained action is the fallback. Each row's
+    argmax sees the same row of scores or probabilities as over the whole table, so the choices are the same.
+    """
     fitted = ~np.isnan(score)
     allowed = fitted if rule_permitted is None else fitted & np.asarray(rule_permitted, dtype=bool)
-    permitted = fitted & permitted_actions(behaviour_proba, support_threshold, rule_permitted)
+    permitted = allowed & permitted_actions(behaviour_proba, support_threshold)
     none_permitted = ~permitted.any(axis=1)
-    best = np.where(permitted, score, -np.inf).argmax(axis=1)
-    fallback_set = np.where(allowed.any(axis=1)[:, None], allowed, fitted)
-    fallback = np.where(fallback_set, behaviour_proba, -np.inf).argmax(axis=1)
-    unconstrained = np.where(allowed.any(axis=1), np.where(allowed, score, -np.inf).argmax(axis=1), fallback)
-    return np.where(none_permitted, fallback, best), unconstrained, none_permitted
+    choice = np.where(permitted, score, -np.inf).argmax(axis=1)
+    unconstrained = np.where(allowed, score, -np.inf).argmax(axis=1) if with_unconstrained else None
+    rows = np.flatnonzero(none_permitted)
+    if rows.size:
+        allowed_here = allowed[rows]
+        any_allowed = allowed_here.any(axis=1)
+        fallback_set = np.where(any_allowed[:, None], allowed_here, fitted[rows])
+        fallback = np.where(fallback_set, np.asarray(behaviour_proba)[rows], -np.inf).argmax(axis=1)
+        choice[rows] = fallback
+        if with_unconstrained:
+            unconstrained[rows] = np.where(any_allowed, unconstrained[rows], fallback)
+    return choice, unconstrained, none_permitted

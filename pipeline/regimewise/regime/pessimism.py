@@ -100,14 +100,16 @@ class PessimisticEnsemble:
         """Fit the full-sample model and the bootstrap models on the table rows ``rows``; return ``self``.
 
         Linear models (``fit_design``) share one design matrix [1, X] (as their own ``fit`` builds it) instead of
-        building it once per fit.
+        building it once per fit: with separate slopes as each action's rows of it (``cells``, built from X; no
+        design of the whole table beside them), instead of selecting them once per fit.
         """
         model, weights = self.make_model(), self.resamples.rows(rows)
         self.resamples = None  # the weights are taken: the fitted ensemble does not keep the table's resamples alive
         if hasattr(model, "fit_design"):
-            design = np.hstack([np.ones((X.shape[0], 1)), X])
-            self.full_ = model.fit_design(design, action, y, None)
-            self.replicates_ = [self.make_model().fit_design(design, action, y, w) for w in weights]
+            cells = model.cells(X, action, y)
+            design = np.hstack([np.ones((X.shape[0], 1)), X]) if cells is None else None
+            self.full_ = model.fit_design(design, action, y, None, cells)
+            self.replicates_ = [self.make_model().fit_design(design, action, y, w, cells) for w in weights]
         else:
             self.full_ = model.fit(X, action, y, None)
             self.replicates_ = [self.make_model().fit(X, action, y, w) for w in weights]
@@ -151,6 +153,7 @@ class PessimisticEnsemble:
             sd = np.nanstd(np.where(defined >= 2, draws, 0.0), axis=0, ddof=1)
         return np.where(defined >= 2, sd, 0.0)
 
-    def score(self, X):
-        """Pessimistic score Q_full − k · sd (n, K); equals :meth:`predict` when ``k == 0``."""
-        return self.predict(X) - self.k * self.spread(X)
+    def score(self, X, predicted=None):
+        """Pessimistic score Q_full − k · sd (n, K); equals :meth:`predict` when ``k == 0``. ``predicted``:
+        :meth:`predict` of ``X`` when the caller has it (not computed again)."""
+        return (self.predict(X) if predicted is None else predicted) - self.k * self.spread(X)

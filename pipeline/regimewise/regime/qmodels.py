@@ -5,6 +5,7 @@ chosen by cross-validation with folds by patient) or gradient boosting, one mode
 from __future__ import annotations
 
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
@@ -98,32 +99,82 @@ def _shared_solve(Z, y, alpha, unpenalised):
     return solved[0] if y.ndim == 1 else np.column_stack(solved)
 
 
-def fit_actions(design, action, y, alpha, n_actions, slopes=SEPARATE, weight=None):
+def _rooted(design, y, weight):
+    """``design`` and ``y`` with every row multiplied by the square root of its ``weight``, in place: the caller
+    passes rows gathered for this fit (copies of its own). ``weight`` None or boolean (rows kept or left out, each
+    kept row's weight 1): the arrays as they are."""
+    if weight is None or weight.dtype == bool:
+        return design, y
+    root = np.sqrt(weight)
+    design *= root[:, None]
+    y *= root if y.ndim == 1 else root[:, None]
+    return design, y
+
+
+@dataclass(frozen=True)
+class ActionCells:
+    """Each action's rows of one table, gathered once (separate slopes: every action is fitted on its own rows).
+
+    A bootstrap ensemble fits the same table 1 + B times with other row weights (:mod:`regimewise.regime.pessimism`).
+    Selecting an action's rows from the whole design again for every fit (a comparison over all rows, then a
+    gather of rows spread over the table) took more time than the least-squares fits; with the cells, a fit
+    gathers the rows of positive weight out of the action's own compact rows. The rows, their order and so every
+    number a fit sees are the same: ``rows[a]`` are the positions of action ``a``'s rows in ascending order, as
+    ``numpy.flatnonzero`` of the action's mask gives them, and ``design[a]``, ``y[a]`` the table's rows of [1, X]
+    and y there. Built from the states X, action by action, so together they hold [1, X] once: the whole table's
+    design is not built beside them.
+    """
+
+    rows: tuple
+    design: tuple
+    y: tuple
+
+    @classmethod
+    def gather(cls, X, action, y, n_actions) -> ActionCells:
+        rows = tuple(np.flatnonzero(action == a) for a in range(n_actions))
+        return cls(rows, tuple(_design(X[r]) for r in rows), tuple(y[r] for r in rows))
+
+    @property
+    def width(self) -> int:
+        """Columns of the design [1, X]."""
+        return self.design[0].shape[1]
+
+    def weighted(self, a, weight):
+        """Action ``a``'s rows of positive ``weight`` (all of them if None), multiplied by the square roots of their
+        weights: the design and the response :func:`fit_actions` fits action ``a`` on."""
+        if weight is None:
+            return self.design[a], self.y[a]
+        w = weight[self.rows[a]]
+        kept = np.flatnonzero(w > 0)
+        return _rooted(self.design[a][kept], self.y[a][kept], w[kept])
+
+
+def fit_actions(design, action, y, alpha, n_actions, slopes=SEPARATE, weight=None, cells=None):
     """Coefficients of every action's linear Q-model on ``design`` ([1, X]): (K, p + 1), or (K, p + 1, R) when
     ``y`` is (n, R); NaN for an action without rows (or without positive weight).
 
     ``slopes`` (:class:`regimewise.core.terms.ActionSlopes`) says whether each action is fitted on its own rows
     (separate) or all actions in one fit with common slopes (shared), returned as each action's coefficient
     vector: intercept β₀ + γ_a, the common slopes θ, and the action's own slopes on the interaction columns.
-    ``weight`` (n,) fits weighted least squares (rows of zero weight are left out).
+    ``weight`` (n,) fits weighted least squares (rows of zero weight are left out; a boolean ``weight`` only
+    selects the rows, the same numbers as fitting the selected rows alone). ``cells``
+    (:class:`ActionCells` of the table's X, ``action`` and ``y``; separate slopes only) saves selecting each
+    action's rows again when the same table is fitted with several weights: the same numbers; ``design`` may
+    then be None.
     """
     keep_rows = np.ones(len(action), dtype=bool) if weight is None else weight > 0
-    coef = np.full((n_actions, design.shape[1]) + np.shape(y)[1:], np.nan)
+    coef = np.full((n_actions, cells.width if design is None else design.shape[1]) + np.shape(y)[1:], np.nan)
 
     def rooted(rows):
-        if weight is None:
-            return design[rows], y[rows]
-        root = np.sqrt(weight[rows])
-        d, t = design[rows], y[rows]  # fresh copies: weighted in place
-        d *= root[:, None]
-        t *= root if y.ndim == 1 else root[:, None]
-        return d, t
+        return _rooted(design[rows], y[rows], None if weight is None else weight[rows])
 
     if not slopes.shared:
         for a in range(n_actions):
-            cell = np.flatnonzero((action == a) & keep_rows)
-            if cell.size:
-                d, t = rooted(cell)
+            if cells is None:
+                d, t = rooted(np.flatnonzero((action == a) & keep_rows))
+            else:
+                d, t = cells.weighted(a, weight)
+            if d.shape[0]:
                 coef[a] = _least_squares(d, t, alpha) if y.ndim == 1 else _least_squares_columns(d, t, alpha)
         return coef
     rows = np.flatnonzero(keep_rows)
@@ -418,14 +469,20 @@ class LinearActionModel:
     def fit(self, X, action, y, weight=None):
         return self.fit_design(_design(X), action, y, weight)
 
-    def fit_design(self, design, action, y, weight=None):
-        """:meth:`fit` on a design matrix [1, X] built once by the caller (e.g. for a bootstrap ensemble).
+    def fit_design(self, design, action, y, weight=None, cells=None):
+        """:meth:`fit` on a design matrix [1, X] built once by the caller (e.g. for a bootstrap ensemble), with the
+        action cells of :meth:`cells` when the caller has them (the same numbers).
 
         Rows of zero weight are dropped before the square-root weights are applied, so a resample's fit touches
         only its own rows (the same numbers, row by row, as weighting every row first).
         """
-        self.coef_ = fit_actions(design, action, y, self.alpha, self.n_actions, self.slopes, weight)
+        self.coef_ = fit_actions(design, action, y, self.alpha, self.n_actions, self.slopes, weight, cells)
         return self
+
+    def cells(self, X, action, y):
+        """The :class:`ActionCells` of a table (states ``X``) this model will fit several times (with other
+        weights), or None when the slopes are shared (one fit on all rows: nothing to select per action)."""
+        return None if self.slopes.shared else ActionCells.gather(X, action, y, self.n_actions)
 
     def predict(self, X):
         return _design(X) @ self.coef_.T
@@ -464,15 +521,26 @@ class BoostedActionModel:
 
 
 def out_of_fold_errors(make_model, X, action, y, folds):
-    """Squared error of each row's taken-action Q predicted by a model fitted without the row's fold."""
+    """Squared error of each row's taken-action Q predicted by a model fitted without the row's fold.
+
+    A linear model fitting each action on its own (one with :meth:`LinearActionModel.cells`) gathers [1, X] and
+    each action's rows once for all the folds; each fold's fit then selects its training rows out of them (a
+    boolean weight), the rows and order of ``X[~test]``, so the same numbers as fitting ``X[~test]`` alone.
+    """
     error = np.full(y.shape[0], np.nan)
+    model = make_model()
+    separate = hasattr(model, "cells") and not model.slopes.shared
+    design = _design(X) if separate else None  # the folds' rows to predict
+    cells = model.cells(X, action, y) if separate else None
     for f in np.unique(folds):
         test = folds == f
         if test.all():
             continue
-        model = make_model().fit(X[~test], action[~test], y[~test], None)
-        q = model.predict(X[test])[np.arange(test.sum()), action[test]]
-        error[test] = (q - y[test]) ** 2
+        if cells is None:
+            q = make_model().fit(X[~test], action[~test], y[~test], None).predict(X[test])
+        else:
+            q = design[test] @ make_model().fit_design(design, action, y, ~test, cells).coef_.T
+        error[test] = (q[np.arange(q.shape[0]), action[test]] - y[test]) ** 2
     return error
 
 
