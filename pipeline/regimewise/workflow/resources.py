@@ -56,28 +56,27 @@ BASE_MB = 400.0
 
 # Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), the whole workflow on
 # 2 cores: peak RSS above the interpreter's 300 MB, and CPU time, per million decisions, rounded up to 100 MB and
-# 0.1 minute (bench/RESULTS.md, 2026-12-04, at d0063e8: every rule on one thread; peaks regime 7.8 GB, crossfit
-# 6.7, evaluate 6.2, behaviour 6.0, survival 5.7, sensitivity_curves 4.1, validate 3.7, describe 3.6 GB). A shard's
-# per-replicate time is at most that of the behaviour, regime and evaluate stages together (1.2 CPU minutes per
-# million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin. Split off since:
-# evaluate_fixed keeps evaluate's memory slope (its time about a third of evaluate's at 100k episodes); regime_fit
-# keeps the regime stage's figures, and the regime rule, now a join of two tables, has the slope measured at 100k
-# (780 MB peak at 1.2M decisions, 2.8 s CPU), as has behaviour_diagnostics (867 MB, 2.9 s CPU).
+# 0.1 minute (bench/RESULTS.md, 2026-12-04, at 7589f9c: every rule on one thread; peaks regime_fit 7.4 GB, crossfit
+# 6.7, evaluate 6.4, behaviour 6.0, survival 5.7, evaluate_fixed 5.5, behaviour_diagnostics 5.0, regime 4.5,
+# sensitivity_curves 4.2, describe 4.0, validate 3.7 GB); validate keeps the wider figures of earlier runs. A
+# shard's per-replicate time is at most that of the model-fitting stages together (behaviour, crossfit, regime_fit,
+# evaluate_fixed and evaluate: about 0.9 CPU minutes per million decisions at 1M); shards were not measured at 1M,
+# so theirs keep a wide margin.
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
-    "behaviour": StageCost(BASE_MB, 500.0, 0.3),
+    "behaviour": StageCost(BASE_MB, 500.0, 0.2),
     "behaviour_diagnostics": StageCost(BASE_MB, 400.0, 0.1),
-    "crossfit": StageCost(BASE_MB, 600.0, 0.4),
-    "regime_fit": StageCost(BASE_MB, 700.0, 0.5),
+    "crossfit": StageCost(BASE_MB, 600.0, 0.3),
+    "regime_fit": StageCost(BASE_MB, 600.0, 0.2),
     "regime": StageCost(BASE_MB, 400.0, 0.1),
-    "evaluate_fixed": StageCost(BASE_MB, 600.0, 0.3),
-    "evaluate": StageCost(BASE_MB, 600.0, 0.5),
-    "describe": StageCost(BASE_MB, 300.0, 0.1),
+    "evaluate_fixed": StageCost(BASE_MB, 500.0, 0.1),
+    "evaluate": StageCost(BASE_MB, 600.0, 0.3),
+    "describe": StageCost(BASE_MB, 400.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
-    "sensitivity_curves": StageCost(BASE_MB, 400.0, 0.2),
+    "sensitivity_curves": StageCost(BASE_MB, 400.0, 0.1),
     "sensitivity": StageCost(BASE_MB, 0.0, 0.0),
-    "survival": StageCost(BASE_MB, 500.0, 0.2),
+    "survival": StageCost(BASE_MB, 500.0, 0.1),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     # not measured at scale: a cohort job simulates a cohort of the records' size and analyses it like a shard
@@ -147,7 +146,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime_fit", 12_000_000)
-    {'mem_mb': 13200, 'runtime': 9}
+    {'mem_mb': 11400, 'runtime': 5}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
