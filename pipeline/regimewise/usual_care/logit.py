@@ -157,7 +157,7 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
         with np.errstate(all="ignore"):
             for rows in row_blocks(n_rows):
                 X = design[rows]
-                log_proba = _log_proba_by_class(X, params)
+                log_proba = log_proba_by_class(X, params)
                 llf += float(log_proba[endog[rows], np.arange(len(X))].sum())
                 proba = np.ascontiguousarray(np.exp(log_proba[1:]).T)  # records × classes, as the products want
                 taken = endog[rows, None] == others
@@ -251,7 +251,7 @@ def log_softmax_by_class(linear):
         return shifted - np.log(np.exp(shifted).sum(axis=0))
 
 
-def _log_proba_by_class(design, params):
+def log_proba_by_class(design, params):
     """Log-probabilities of the reference class and the others, shape (classes, records), computed stably in
     log space (:func:`log_softmax_by_class`).
 
@@ -262,16 +262,16 @@ def _log_proba_by_class(design, params):
     return log_softmax_by_class(linear)
 
 
-def _log_proba(design, params):
-    """:func:`_log_proba_by_class` with one row per record, shape (records, classes)."""
-    return _log_proba_by_class(design, params).T
+def log_proba_rows(design, params):
+    """:func:`log_proba_by_class` with one row per record, shape (records, classes)."""
+    return log_proba_by_class(design, params).T
 
 
 def _log_likelihood(design, endog, params) -> float:
     """Σ log P(action taken), in log space and over blocks of records (no full-size temporaries)."""
     total = 0.0
     for rows in row_blocks(design.shape[0]):
-        log_proba = _log_proba_by_class(design[rows], params)
+        log_proba = log_proba_by_class(design[rows], params)
         total += float(log_proba[endog[rows], np.arange(log_proba.shape[1])].sum())
     return total
 
@@ -415,7 +415,7 @@ class MultinomialLogitBehaviour:
         proba = np.zeros((values.shape[0], self.n_actions_))
         for rows in row_blocks(values.shape[0]):  # blocks: no full-size copy of the design
             design = np.column_stack([np.ones(len(values[rows])), values[rows]])
-            proba[rows, self.classes_] = np.exp(_log_proba(design, self.params_))
+            proba[rows, self.classes_] = np.exp(log_proba_rows(design, self.params_))
         return proba
 
     def _fit_mnlogit(self, design, endog):

@@ -19,8 +19,8 @@ from scipy.stats import chi2
 from regimewise.errors import ConvergenceWarning
 from regimewise.usual_care.logit import (
     MultinomialLogitBehaviour,
-    _log_proba,
-    _log_proba_by_class,
+    log_proba_by_class,
+    log_proba_rows,
     prediction_design,
     row_blocks,
     unscale,
@@ -59,7 +59,7 @@ def _mixture_pass(design, params, z, endog, n_classes):
         X = design[rows]
         taken = endog[rows]
         by_record = np.arange(taken.size)
-        s = np.exp(_log_proba_by_class(X, params))  # (classes, records)
+        s = np.exp(log_proba_by_class(X, params))  # (classes, records)
         s_taken = s[taken, by_record]
         p_taken = (1.0 - share) * s_taken + share / n_classes
         total += float(np.log(p_taken).sum())
@@ -246,5 +246,6 @@ class FloorMixtureLogitBehaviour:
         proba = np.zeros((values.shape[0], self.n_actions_))
         for rows in row_blocks(values.shape[0]):
             design = np.column_stack([np.ones(len(values[rows])), values[rows]])
-            proba[rows, self.classes_] = (1.0 - self.share_) * np.exp(_log_proba(design, self.params_)) + self.floor_
+            logit_part = np.exp(log_proba_rows(design, self.params_))
+            proba[rows, self.classes_] = (1.0 - self.share_) * logit_part + self.floor_
         return proba
