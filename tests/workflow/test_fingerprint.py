@@ -23,6 +23,7 @@ from regimewise.workflow.fingerprint import (
     stage_files,
     stage_modules,
 )
+from regimewise.workflow.stages import STAGES
 
 PACKAGE = Path(regimewise.__file__).parent
 
@@ -56,7 +57,7 @@ def test_editing_a_module_changes_exactly_the_stages_that_need_it(copy):
     [  # the cases the hand-kept list missed (issue: stale results after a code edit)
         ("regimewise.core.quantiles", {"bootstrap", "sensitivity", "sweep_spec", "sweep"}),
         ("regimewise.sensitivity.bounds", {"bootstrap_shard", "sensitivity", "sweep_spec"}),
-        ("regimewise.usual_care.fitting", {"behaviour", "regime", "evaluate", "bootstrap_shard", "sweep_spec"}),
+        ("regimewise.usual_care.fitting", {"behaviour", "regime_fit", "evaluate", "bootstrap_shard", "sweep_spec"}),
         ("regimewise.core.weighting", {"behaviour", "evaluate", "sensitivity", "bootstrap_shard", "describe"}),
     ],
 )
@@ -107,3 +108,20 @@ def test_definition_sources_are_the_standard_library_segments():
     text = "x = 'é'; y = (1,\n     2)\n"
     node = ast.parse(text).body[1]
     assert _segment(text.splitlines(keepends=True), node) == ast.get_source_segment(text, node) == "y = (1,\n     2)"
+
+
+def test_a_rule_is_fingerprinted_by_the_function_its_stages_table_names(copy):
+    # the behaviour rule calls behaviour_fit_stage (behaviour_stage, the whole stage in one call, serves tests and
+    # benchmarks): an edit of that function must rerun the behaviour rule and nothing else
+    path = copy / "workflow" / "stages.py"
+    original = path.read_text(encoding="utf-8")
+    head = "def behaviour_fit_stage(protocol, decisions, proba, model):\n"
+    assert original.count(head) == 1
+    before = stage_code_hashes(copy)
+    path.write_text(original.replace(head, head + "    pass  # edited by the fingerprint test\n"), encoding="utf-8")
+    try:
+        after = stage_code_hashes(copy)
+    finally:
+        path.write_text(original, encoding="utf-8")
+    assert set(before) == set(STAGES)
+    assert {rule for rule in before if before[rule] != after[rule]} == {"behaviour"}

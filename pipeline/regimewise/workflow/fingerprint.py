@@ -2,10 +2,11 @@
 
 Snakemake reruns a job when its ``params`` change but does not see the modules a script imports, so every rule
 carries ``params: code=stage_code_hash("<rule>")``. The fingerprint is derived, never listed by hand: it hashes
-the source of the rule's stage function in :mod:`regimewise.workflow.stages` (and of the module-level helpers it
-uses there), every package module that function's names come from, the transitive closure of their imports read
-from the source with :mod:`ast`, and the data files (templates) beside those modules. Editing any module a stage
-needs, directly or not, changes that stage's fingerprint; editing a module it does not need changes nothing.
+the source of the rule's stage function in :mod:`regimewise.workflow.stages` (the one its ``STAGES`` table names
+for the rule) and of the module-level helpers it uses there, every package module that function's names come from,
+the transitive closure of their imports read from the source with :mod:`ast`, and the data files (templates)
+beside those modules. Editing any module a stage needs, directly or not, changes that stage's fingerprint; editing
+a module it does not need changes nothing.
 """
 
 from __future__ import annotations
@@ -99,20 +100,30 @@ def import_closure(start: set[str], graph: dict[str, set[str]]) -> set[str]:
 
 
 def stage_rules(modules: dict) -> tuple[str, ...]:
-    """Rule names: every ``<rule>_stage`` function of the stages module."""
+    """Rule names: the keys of the stages module's ``STAGES`` table."""
+    return tuple(registered_stages(modules))
+
+
+def registered_stages(modules: dict) -> dict[str, str]:
+    """{rule: the name of its stage function}, read from the ``STAGES`` table of the stages module (a dict literal
+    of rule-name strings to function names): the function the dispatcher calls is the one fingerprinted, whatever
+    its name (a stage split into jobs keeps its one-call function beside the jobs' functions)."""
     tree = ast.parse(modules[STAGES_MODULE].read_text(encoding="utf-8"))
-    return tuple(
-        n.name.removesuffix("_stage") for n in tree.body if isinstance(n, ast.FunctionDef) and n.name.endswith("_stage")
-    )
+    for node in tree.body:
+        targets = [t.id for t in getattr(node, "targets", []) if isinstance(t, ast.Name)]
+        if isinstance(node, ast.Assign) and targets == ["STAGES"] and isinstance(node.value, ast.Dict):
+            return {key.value: value.id for key, value in zip(node.value.keys, node.value.values)}
+    raise KeyError(f"{STAGES_MODULE} has no STAGES table")
 
 
 def _stage_sources(rule: str, modules: dict) -> tuple[list[str], set[str]]:
-    """Source segments of ``<rule>_stage`` and the stages module's helpers it uses; the modules its names need."""
+    """Source segments of the rule's stage function (:func:`registered_stages`) and the stages module's helpers it
+    uses; the modules its names need."""
     path = modules[STAGES_MODULE]
     top, origin = _stages_index(path.read_text(encoding="utf-8"), tuple(sorted(modules.items())))
-    function = f"{rule}_stage"
+    function = registered_stages(modules).get(rule)
     if function not in top:
-        raise KeyError(f"{STAGES_MODULE} has no function {function}() for rule {rule!r}")
+        raise KeyError(f"{STAGES_MODULE} has no stage function for rule {rule!r} in its STAGES table")
     segments, needed, seen, todo = [], set(), set(), [function]
     while todo:
         name = todo.pop()
@@ -214,5 +225,5 @@ def stage_code_hash(rule: str, root: Path = PACKAGE_DIR) -> str:
     """The fingerprint of ``rule`` for a rule's ``params`` (computed once per process, when the Snakefile is read)."""
     hashes = _hashes_once(Path(root))
     if rule not in hashes:
-        raise KeyError(f"no stage function for rule {rule!r}; add {rule}_stage to {STAGES_MODULE}")
+        raise KeyError(f"no stage function for rule {rule!r}; add {rule}_stage to {STAGES_MODULE} and its STAGES")
     return hashes[rule]
