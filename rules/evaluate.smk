@@ -13,7 +13,7 @@ rule evaluate_fixed:
     params:
         code=stage_code_hash("evaluate_fixed"),
     threads: stage_threads("evaluate_fixed")
-    priority: 1  # the evaluate job waits for it: before behaviour_diagnostics when both are ready
+    priority: 1  # the evaluate job waits for it: after regime_fit (2), before behaviour_diagnostics (0)
     resources:
         mem_mb=mem_mb("evaluate_fixed"),
         runtime=runtime("evaluate_fixed"),

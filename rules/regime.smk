@@ -38,7 +38,7 @@ rule regime_fit:
     params:
         code=stage_code_hash("regime_fit"),
     threads: stage_threads("regime_fit")
-    priority: 1  # on the critical path: before evaluate_fixed when both are ready
+    priority: 2  # on the critical path: before evaluate_fixed (1) and behaviour_diagnostics (0) when all are ready
     resources:
         mem_mb=mem_mb("regime_fit"),
         runtime=runtime("regime_fit"),
