@@ -146,6 +146,20 @@ def test_the_regime_stage_writes_the_same_bytes_from_the_crossfit_jobs_table(coh
     assert (evaluated.to_numpy() == np.asarray(labels, dtype=object)[table["evaluated"].to_numpy()]).all()
 
 
+def _join(folder, protocol, fitted, crossfit, out, summary=None):
+    """The regime join job on ``<fitted>.parquet`` (with ``<summary or fitted>.json``) and ``<crossfit>.parquet``,
+    writing ``<out>.parquet`` and ``<out>.json``."""
+    regime_join_stage(
+        protocol,
+        folder / "decisions.parquet",
+        folder / f"{fitted}.parquet",
+        folder / f"{summary or fitted}.json",
+        folder / f"{crossfit}.parquet",
+        folder / f"{out}.parquet",
+        folder / f"{out}.json",
+    )
+
+
 def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes(cohort):
     # the workflow learns the side-by-side regimes in a job beside the crossfit job and joins the two afterwards;
     # the outputs must be those the regime stage writes in one job
@@ -154,29 +168,13 @@ def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes(cohort):
     crossfit_stage(protocol, decisions, folder / "crossfit_j.parquet")
     regime_stage(protocol, decisions, proba, folder / "t_one.parquet", folder / "r_one.json")
     regime_fit_stage(protocol, decisions, proba, folder / "fitted.parquet", folder / "fitted.json")
-    regime_join_stage(
-        protocol,
-        decisions,
-        folder / "fitted.parquet",
-        folder / "fitted.json",
-        folder / "crossfit_j.parquet",
-        folder / "t_two.parquet",
-        folder / "r_two.json",
-    )
-    assert (folder / "t_one.parquet").read_bytes() == (folder / "t_two.parquet").read_bytes()
-    assert (folder / "r_one.json").read_bytes() == (folder / "r_two.json").read_bytes()
+    _join(folder, protocol, "fitted", "crossfit_j", "two")
+    assert (folder / "t_one.parquet").read_bytes() == (folder / "two.parquet").read_bytes()
+    assert (folder / "r_one.json").read_bytes() == (folder / "two.json").read_bytes()
     # a fitted table of other decisions is refused, not joined
     write_parquet(folder / "fitted_other.parquet", read_parquet(folder / "fitted.parquet").iloc[1:])
     with pytest.raises(UserInputError, match="does not hold the side-by-side regimes of these decisions"):
-        regime_join_stage(
-            protocol,
-            decisions,
-            folder / "fitted_other.parquet",
-            folder / "fitted.json",
-            folder / "crossfit_j.parquet",
-            folder / "t_x.parquet",
-            folder / "r_x.json",
-        )
+        _join(folder, protocol, "fitted_other", "crossfit_j", "x", summary="fitted")
 
 
 def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes_when_nothing_is_learned(cohort):
@@ -191,15 +189,7 @@ def test_the_regime_fit_and_join_jobs_write_the_regime_stages_bytes_when_nothing
     regime_stage(protocol, decisions, proba, folder / "n_one.parquet", folder / "n_one.json")
     crossfit_stage(protocol, decisions, folder / "n_cross.parquet")
     regime_fit_stage(protocol, decisions, proba, folder / "n_fitted.parquet", folder / "n_fitted.json")
-    regime_join_stage(
-        protocol,
-        decisions,
-        folder / "n_fitted.parquet",
-        folder / "n_fitted.json",
-        folder / "n_cross.parquet",
-        folder / "n_two.parquet",
-        folder / "n_two.json",
-    )
+    _join(folder, protocol, "n_fitted", "n_cross", "n_two")
     assert (folder / "n_one.parquet").read_bytes() == (folder / "n_two.parquet").read_bytes()
     assert (folder / "n_one.json").read_bytes() == (folder / "n_two.json").read_bytes()
 

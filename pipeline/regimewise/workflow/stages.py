@@ -169,6 +169,12 @@ def _write_probabilities(path, p, frame, model) -> None:
     write_parquet(path, table)
 
 
+def same_rows(table: pd.DataFrame, frame: pd.DataFrame) -> bool:
+    """Whether a temporary table one job wrote for another (probabilities, fold regimes, side-by-side regimes) has
+    the decisions' rows in their order: as many rows, with the same steps."""
+    return len(table) == len(frame) and np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy())
+
+
 def behaviour_fit_stage(protocol, decisions, proba, model):
     """The workflow's first half of :func:`behaviour_stage`: fit the usual-care model and write the records'
     probabilities, and the model's block of behaviour.json (``model``, a temporary file of the workflow read by
@@ -186,7 +192,7 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     table = read_parquet(proba)
-    if len(table) != len(frame) or not np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy()):
+    if not same_rows(table, frame):
         raise UserInputError(f"{proba} does not hold the probabilities of these decisions; rerun the workflow")
     # rows in memory as the fit left them (the diagnostics' sums run over the array in its memory order)
     probabilities = np.ascontiguousarray(table[proba_columns(p.action_labels)].to_numpy(dtype=float))
@@ -227,7 +233,7 @@ def read_crossfit(path, frame, labels) -> tuple[np.ndarray, np.ndarray] | None:
     """The cross-fitted actions (n,) and Q-values (n, K) written by :func:`crossfit_stage`, or None when it
     cross-fitted nothing. Its rows must be the decisions' rows, in their order."""
     table = read_parquet(path)
-    if len(table) != len(frame) or not np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy()):
+    if not same_rows(table, frame):
         raise UserInputError(
             f"{path} does not hold the cross-fitted regimes of these decisions (its rows differ); rerun the workflow"
         )
@@ -357,7 +363,7 @@ def regime_join_stage(protocol, decisions, fitted, fitted_summary, crossfit, tab
     frame = read_parquet(decisions, RECORD_KEYS)
     summary = read_json(fitted_summary)
     columns = read_parquet(fitted)
-    if len(columns) != len(frame) or not np.array_equal(columns["step"].to_numpy(), frame["step"].to_numpy()):
+    if not same_rows(columns, frame):
         raise UserInputError(
             f"{fitted} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
         )
