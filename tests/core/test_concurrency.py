@@ -17,7 +17,7 @@ import yaml
 from support.tiny import REPOSITORY
 from threadpoolctl import threadpool_info
 
-from regimewise.core.concurrency import run_concurrently, share_allocator_arenas
+from regimewise.core.concurrency import keep_freed_memory, run_concurrently, share_allocator_arenas
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import UserInputError
@@ -73,6 +73,13 @@ def test_the_allocator_takes_one_shared_arena_where_the_c_library_is_glibc():
     took = share_allocator_arenas()
     assert took is (platform.libc_ver()[0] == "glibc")
     assert run_concurrently([lambda: np.ones(10**6).sum()] * 2, threads=2) == [10**6, 10**6]
+
+
+def test_the_allocator_keeps_large_arrays_on_its_heap_where_the_c_library_is_glibc():
+    took = keep_freed_memory()
+    assert took is (platform.libc_ver()[0] == "glibc")
+    # arrays above glibc's largest mapping threshold (32 MB), freed and made again, hold the same numbers
+    assert [float(np.full(5 * 10**6, 0.5).sum()) for _ in range(3)] == [2.5e6] * 3
 
 
 @pytest.fixture(scope="module")

@@ -25,7 +25,7 @@ from regimewise.bootstrap.intervals import combine, merge_intervals
 from regimewise.bootstrap.replicates import HeldRegime, run_shard
 from regimewise.bootstrap.sweep import combine_sweep, run_specification
 from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
-from regimewise.core.concurrency import run_concurrently, share_allocator_arenas
+from regimewise.core.concurrency import keep_freed_memory, run_concurrently, share_allocator_arenas
 from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.core.seeds import stream_ints
 from regimewise.data.validate import validate_records, write_error_report
@@ -700,6 +700,7 @@ def run_snakemake_job(smk) -> None:
     ``regimewise error:`` and the job exits with status 1 (Snakemake then removes its partial outputs).
     """
     share_allocator_arenas()  # before any thread: two threads' freed memory is reused, not held twice
+    keep_freed_memory()  # large arrays from the heap, not mapped and faulted in afresh each time
     log_path = Path(smk.log[0])
     log_path.parent.mkdir(parents=True, exist_ok=True)
     handler = logging.FileHandler(log_path, mode="w", encoding="utf-8")
