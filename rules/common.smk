@@ -44,6 +44,11 @@ def selfcheck_inputs(wildcards):
     return {"selfcheck": results("selfcheck/selfcheck.json")} if SETTINGS.selfcheck_cohorts else {}
 
 
+def learned_regime_inputs(wildcards):
+    table = SETTINGS.learned_regime_table
+    return {} if table is None else {table: results(f"regime/{table}.parquet")}
+
+
 def survival_inputs(wildcards):
     return {"survival": results("survival/survival.json")} if SETTINGS.survival else {}
 

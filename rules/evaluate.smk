@@ -23,14 +23,65 @@ rule evaluate_fixed:
         "scripts/run_stage.py"
 
 
-# ---- evaluate: off-policy values of the learned regime, usual care and fixed strategies -----------------
-rule evaluate:
+# ---- evaluate_learned: the learned regime as evaluated and its strategies, as soon as the fold regimes are learned
+rule evaluate_learned:
+    input:
+        unpack(learned_regime_inputs),  # crossfit.parquet; with one fold, regime_fit's table
+        protocol=SETTINGS.protocol_input,
+        decisions=results("validate/decisions.parquet"),
+        proba=results("behaviour/behaviour_proba.parquet"),
+    output:
+        learned=temp(results("evaluate/learned.json")),  # read by the evaluate rule only; not an artifact
+    log:
+        logs("evaluate_learned"),
+    benchmark:
+        benchmarks("evaluate_learned")
+    params:
+        code=stage_code_hash("evaluate_learned"),
+    threads: stage_threads("evaluate_learned")
+    priority: 3  # the longest job after the fold regimes: first when it competes for a core
+    resources:
+        mem_mb=mem_mb("evaluate_learned"),
+        runtime=runtime("evaluate_learned"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+# ---- evaluate_side: the side-by-side regimes' values, as soon as regime_fit has learned them ----------------
+rule evaluate_side:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
-        table=results("regime/recommendations.parquet"),
+        fitted=results("regime/fitted.parquet"),
+    output:
+        side=temp(results("evaluate/side.json")),  # read by the evaluate rule only; not an artifact
+    log:
+        logs("evaluate_side"),
+    benchmark:
+        benchmarks("evaluate_side")
+    params:
+        code=stage_code_hash("evaluate_side"),
+    threads: stage_threads("evaluate_side")
+    resources:
+        mem_mb=mem_mb("evaluate_side"),
+        runtime=runtime("evaluate_side"),
+    conda:
+        "envs/regimewise.yaml"
+    script:
+        "scripts/run_stage.py"
+
+
+# ---- evaluate: values.json joined from the three parts: off-policy values of every regime ----------------
+rule evaluate:
+    input:
+        protocol=SETTINGS.protocol_input,
+        decisions=results("validate/decisions.parquet"),
+        learned=results("evaluate/learned.json"),
         fixed=results("evaluate/fixed.json"),
+        side=results("evaluate/side.json"),
     output:
         values=results("evaluate/values.json"),
     log:
@@ -40,7 +91,6 @@ rule evaluate:
     params:
         code=stage_code_hash("evaluate"),
     threads: stage_threads("evaluate")
-    priority: 1  # on the critical path: before describe and survival when they compete for the cores
     resources:
         mem_mb=mem_mb("evaluate"),
         runtime=runtime("evaluate"),

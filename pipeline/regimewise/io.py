@@ -115,6 +115,11 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     return pd.read_parquet(path, engine="pyarrow", columns=columns)
 
 
+def parquet_rows(path: str | Path) -> int:
+    """The number of rows of the Parquet file at ``path``, read from its metadata without reading any data."""
+    return int(pq.read_metadata(path).num_rows)
+
+
 def parquet_columns(path: str | Path) -> list[str]:
     """The column names of the Parquet file at ``path``, read from its schema without reading any data."""
     return list(pq.read_schema(path).names)

@@ -2,7 +2,8 @@
 and evaluate stages' outputs identical byte for byte with one thread and with two, the behaviour stage's whether it
 writes behaviour.json itself or in a job of its own, the regime stage's whether it
 learns the cross-fitted fold regimes itself or reads them from the crossfit job, and the evaluate stage's whether it
-evaluates usual care and the fixed strategies itself or reads them from the evaluate_fixed job (the project's own
+evaluates usual care and the fixed strategies itself or reads them from the evaluate_fixed job, and whether it
+evaluates every regime in one job or in the evaluate_learned, evaluate_fixed and evaluate_side jobs (the project's own
 rule: the numbers must not depend on the cores or on how the work is split into jobs; no outside reference
 applies)."""
 
@@ -32,6 +33,9 @@ from regimewise.workflow.stages import (
     bootstrap_stage,
     crossfit_stage,
     evaluate_fixed_stage,
+    evaluate_join_stage,
+    evaluate_learned_stage,
+    evaluate_side_stage,
     evaluate_stage,
     headline_contrast,
     regime_fit_stage,
@@ -280,6 +284,78 @@ def test_the_evaluate_stage_refuses_a_fixed_strategies_file_of_other_decisions_o
     (folder / "fixed_other.json").write_text(dumps_json(document), encoding="utf-8")
     with pytest.raises(UserInputError, match="not this protocol's"):
         evaluate_stage(protocol, decisions, proba, table, folder / "v.json", fixed=folder / "fixed_other.json")
+
+
+def _evaluate_in_jobs(folder, protocol, tag, one_fold=False):
+    """The workflow's jobs from the regime stage's to values.json: crossfit, regime_fit and the join, then
+    evaluate_fixed, evaluate_learned (on the crossfit job's table, or with ``one_fold`` on regime_fit's),
+    evaluate_side and the evaluate join; writes ``<tag>_*`` files and returns the join's table and values.json."""
+    decisions, proba = folder / "decisions.parquet", folder / "proba.parquet"
+    f = {name: folder / f"{tag}_{name}" for name in ("crossfit.parquet", "fitted.parquet", "fitted.json")}
+    crossfit_stage(protocol, decisions, f["crossfit.parquet"])
+    regime_fit_stage(protocol, decisions, proba, f["fitted.parquet"], f["fitted.json"])
+    table = folder / f"{tag}_table.parquet"
+    regime_join_stage(
+        protocol, decisions, f["fitted.parquet"], f["fitted.json"], f["crossfit.parquet"], table, folder / "r.json"
+    )
+    parts = {name: folder / f"{tag}_{name}.json" for name in ("fixed", "learned", "side")}
+    evaluate_fixed_stage(protocol, decisions, proba, parts["fixed"])
+    regime = {"fitted": f["fitted.parquet"]} if one_fold else {"crossfit": f["crossfit.parquet"]}
+    evaluate_learned_stage(protocol, decisions, proba, parts["learned"], **regime)
+    evaluate_side_stage(protocol, decisions, proba, f["fitted.parquet"], parts["side"])
+    values = folder / f"{tag}_values.json"
+    evaluate_join_stage(protocol, decisions, parts["learned"], parts["fixed"], parts["side"], values)
+    return table, values
+
+
+def test_the_evaluate_jobs_write_the_evaluate_stages_bytes(cohort):
+    # the workflow evaluates the learned regime (as soon as the fold regimes are learned), the fixed regimes and the
+    # side-by-side regimes in three jobs and joins them; values.json must be the one the stage writes alone
+    folder, _ = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    table, values = _evaluate_in_jobs(folder, protocol, "jobs")
+    evaluate_stage(protocol, decisions, proba, table, folder / "jobs_alone.json")
+    assert (folder / "jobs_alone.json").read_bytes() == values.read_bytes()
+    document = read_json(values)
+    assert (
+        document["side_by_side"]
+        and document["learned_weight_histograms"]
+        and document["regimes"][0]["name"] == ("learned")
+    )
+
+
+def test_the_evaluate_jobs_write_the_evaluate_stages_bytes_with_one_fold_and_with_nothing_learned(cohort):
+    folder, _ = cohort
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    one_fold = {**raw, "evaluation": {**raw["evaluation"], "cross_fit_folds": 1}}
+    nothing = {k: v for k, v in raw.items() if k != "strategies"}  # strategies need a learned regime
+    nothing.update(analysis={"learn_regime": False}, evaluation={**raw["evaluation"], "reference": "always_hold"})
+    decisions, proba = folder / "decisions.parquet", folder / "proba.parquet"
+    for tag, changed in (("one_fold", one_fold), ("nothing", nothing)):
+        protocol = folder / f"{tag}.yaml"
+        protocol.write_text(yaml.safe_dump(changed, sort_keys=False), encoding="utf-8")
+        table, values = _evaluate_in_jobs(folder, protocol, tag, one_fold=tag == "one_fold")
+        evaluate_stage(protocol, decisions, proba, table, folder / f"{tag}_alone.json")
+        assert (folder / f"{tag}_alone.json").read_bytes() == values.read_bytes(), tag
+    assert "side_by_side" not in read_json(folder / "nothing_values.json")
+
+
+def test_the_evaluate_jobs_refuse_parts_of_other_decisions_and_missing_regimes(cohort):
+    folder, _ = cohort
+    protocol, decisions, proba = folder / "protocol.yaml", folder / "decisions.parquet", folder / "proba.parquet"
+    if not (folder / "jobs_values.json").is_file():
+        _evaluate_in_jobs(folder, protocol, "jobs")
+    parts = {name: folder / f"jobs_{name}.json" for name in ("learned", "fixed", "side")}
+    for name, path in parts.items():
+        stale = folder / f"stale_{name}.json"
+        stale.write_text(dumps_json({**read_json(path), "decisions": 7}), encoding="utf-8")
+        with pytest.raises(UserInputError, match="holds the values of 7 decisions"):
+            evaluate_join_stage(protocol, decisions, *{**parts, name: stale}.values(), folder / "v.json")
+    write_parquet(folder / "fitted_short.parquet", read_parquet(folder / "jobs_fitted.parquet").iloc[1:])
+    with pytest.raises(UserInputError, match="does not hold the side-by-side regimes of these decisions"):
+        evaluate_side_stage(protocol, decisions, proba, folder / "fitted_short.parquet", folder / "s.json")
+    with pytest.raises(UserInputError, match="needs the cross-fitted regime's table"):
+        evaluate_learned_stage(protocol, decisions, proba, folder / "l.json", fitted=folder / "jobs_fitted.parquet")
 
 
 def test_the_two_parts_of_the_regimes_together_are_every_regime_in_order(cohort):

@@ -57,7 +57,10 @@ def test_editing_a_module_changes_exactly_the_stages_that_need_it(copy):
     [  # the cases the hand-kept list missed (issue: stale results after a code edit)
         ("regimewise.core.quantiles", {"bootstrap", "sensitivity", "sweep_spec", "sweep"}),
         ("regimewise.sensitivity.bounds", {"bootstrap_shard", "sensitivity", "sweep_spec"}),
-        ("regimewise.usual_care.fitting", {"behaviour", "regime_fit", "evaluate", "bootstrap_shard", "sweep_spec"}),
+        (
+            "regimewise.usual_care.fitting",
+            {"behaviour", "regime_fit", "evaluate_learned", "bootstrap_shard", "sweep_spec"},
+        ),
         ("regimewise.core.weighting", {"behaviour", "evaluate", "sensitivity", "bootstrap_shard", "describe"}),
     ],
 )

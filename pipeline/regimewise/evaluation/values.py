@@ -583,30 +583,99 @@ def evaluate_all(
     part = None if fixed is None else LEARNED_PART
     targets = regime_targets(frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True, part=part)
     regimes, histograms = _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads)
-    if fixed is not None:  # in regime_targets' order: the learned regime, the fixed part, the strategies
-        names = [r["name"] for r in fixed]
-        if names != fixed_regime_names(protocol):
-            raise UserInputError(
-                f"the fixed strategies' values hold {names}, not this protocol's {fixed_regime_names(protocol)}; "
-                "rerun the workflow"
-            )
-        head = 1 if recommended is not None else 0
-        regimes = [*regimes[:head], *fixed, *regimes[head:]]
+    if fixed is not None:
+        regimes = with_fixed_regimes(regimes, fixed, protocol, recommended is not None)
+    return values_document(
+        protocol,
+        observed_part(logged, protocol),
+        regimes,
+        histograms if recommended is not None else None,
+        None if side_by_side is None else _side_by_side(logged, side_by_side, protocol, threads),
+    )
+
+
+def with_fixed_regimes(regimes: list[dict], fixed: list[dict], protocol: Protocol, learned: bool) -> list[dict]:
+    """values.json's regimes: ``regimes`` (the learned part: the learned regime when ``learned``, then the
+    strategies) with ``fixed`` (:func:`evaluate_fixed_regimes`' entries) in their place of :func:`regime_targets`'
+    order: the learned regime, the fixed part, the strategies."""
+    names = [r["name"] for r in fixed]
+    if names != fixed_regime_names(protocol):
+        raise UserInputError(
+            f"the fixed strategies' values hold {names}, not this protocol's {fixed_regime_names(protocol)}; "
+            "rerun the workflow"
+        )
+    head = 1 if learned else 0
+    return [*regimes[:head], *fixed, *regimes[head:]]
+
+
+def observed_part(logged: LoggedDecisions, protocol: Protocol) -> dict:
+    """values.json's head: the discount, the episodes, the minimum reliable ESS and usual care's observed mean
+    return with its patient-clustered standard error."""
     returns = observed_returns(logged, protocol.discount)
     episode_patient = np.zeros(logged.n_episodes, dtype=np.int64)
     episode_patient[logged.episode] = logged.patient
     mean, se = clustered_mean(returns, episode_patient)
-    contrasts = usual_care_contrasts(regimes, protocol.evaluation.estimators)
     return {
         "discount": protocol.discount,
         "episodes": logged.n_episodes,
         "minimum_reliable_ess": minimum_reliable_ess(logged.n_episodes, protocol.evaluation),
         "usual_care_observed": {"mean_return": mean, "se": se, "n_episodes": logged.n_episodes},
-        "regimes": regimes,
-        "contrasts": contrasts,
-        **({"learned_weight_histograms": histograms} if recommended is not None else {}),
-        **({} if side_by_side is None else {"side_by_side": _side_by_side(logged, side_by_side, protocol, threads)}),
     }
+
+
+def values_document(
+    protocol: Protocol, observed: dict, regimes: list[dict], histograms: dict | None, side_by_side: list | None
+) -> dict:
+    """values.json from its parts: :func:`observed_part`, every regime's entry (in :func:`regime_targets`' order),
+    the learned regime's weight histograms (None without a learned regime) and the side-by-side regimes' entries
+    (None without them); the contrasts with usual care are computed here."""
+    return {
+        **observed,
+        "regimes": regimes,
+        "contrasts": usual_care_contrasts(regimes, protocol.evaluation.estimators),
+        **({} if histograms is None else {"learned_weight_histograms": histograms}),
+        **({} if side_by_side is None else {"side_by_side": side_by_side}),
+    }
+
+
+def evaluate_learned_regimes(
+    frame: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    recommended: np.ndarray | None,
+    protocol: Protocol,
+    *,
+    learned_folds: np.ndarray | None = None,
+    learned_q: np.ndarray | None = None,
+    threads: int = 1,
+) -> dict:
+    """The part of values.json that depends on the learned regime and not on the side-by-side ones: its head
+    (``observed``, :func:`observed_part`), the entries of the learned regime and the strategies built from it
+    (``regimes``; without a learned regime, the named strategies) and the learned regime's weight histograms
+    (``histograms``, None without it). :func:`values_document` joins it with the other parts, as
+    :func:`evaluate_all` does with ``fixed`` given; the arguments are :func:`evaluate_all`'s."""
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    targets = regime_targets(
+        frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True, part=LEARNED_PART
+    )
+    regimes, histograms = _evaluate_targets(logged, targets, protocol, True, learned_folds, threads)
+    return {
+        "observed": observed_part(logged, protocol),
+        "regimes": regimes,
+        "histograms": histograms if recommended is not None else None,
+    }
+
+
+def evaluate_side_by_side(
+    frame: pd.DataFrame,
+    behaviour_proba: np.ndarray,
+    side_by_side: dict[str, np.ndarray],
+    protocol: Protocol,
+    *,
+    threads: int = 1,
+) -> list[dict]:
+    """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own."""
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    return _side_by_side(logged, side_by_side, protocol, threads)
 
 
 def _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads) -> tuple[list[dict], dict | None]:

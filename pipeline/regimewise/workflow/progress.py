@@ -24,6 +24,8 @@ STAGE_WORDS = {
     "regime_fit": "regime learning",
     "regime": "recommendations of the learned regimes",
     "evaluate_fixed": "off-policy evaluation of usual care and the fixed strategies",
+    "evaluate_learned": "off-policy evaluation of the learned regime and its strategies",
+    "evaluate_side": "off-policy evaluation of the side-by-side regimes",
     "evaluate": "off-policy evaluation",
     "describe": "cohort description",
     "bootstrap": "bootstrap intervals",

@@ -23,7 +23,9 @@ threads of their process, :mod:`regimewise.core.concurrency`, when a rule asks f
 separate jobs; ``behaviour_diagnostics`` (behaviour.json) runs beside the jobs after ``behaviour``; the
 ``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour`` and ``regime_fit``
 (the side-by-side regimes; the ``regime`` rule joins the two), ``evaluate_fixed`` (the values of usual care, the
-fixed strategies and the comparators) beside ``regime_fit``, and
+fixed strategies and the comparators) beside ``regime_fit``, ``evaluate_learned`` (the cross-fitted regime and its
+strategies) as soon as ``crossfit`` ends and ``evaluate_side`` (the side-by-side regimes) as soon as ``regime_fit``
+ends, the ``evaluate`` rule joining the three, and
 ``sensitivity_curves`` (the bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and
 ``survival`` without waiting for the bootstrap. Snakemake gives a rule no more threads than ``--cores``.
 """
@@ -70,7 +72,9 @@ STAGE_COSTS = {
     "regime_fit": StageCost(BASE_MB, 600.0, 0.2),
     "regime": StageCost(BASE_MB, 400.0, 0.1),
     "evaluate_fixed": StageCost(BASE_MB, 500.0, 0.1),
-    "evaluate": StageCost(BASE_MB, 600.0, 0.3),
+    "evaluate_learned": StageCost(BASE_MB, 600.0, 0.3),
+    "evaluate_side": StageCost(BASE_MB, 600.0, 0.1),
+    "evaluate": StageCost(BASE_MB, 0.0, 0.0),  # joins three JSON files
     "describe": StageCost(BASE_MB, 400.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),

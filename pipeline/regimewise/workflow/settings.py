@@ -33,6 +33,10 @@ class Settings:
     started directly). Only the report (``reproduce``) and the appendix (both) record them.
 
     ``stand_ins`` maps a protocol or records path that has a brace to the stand-in the rules name instead.
+
+    ``learned_regime_table``: which temporary table of the regime stage holds the regime the evaluation scores,
+    ``"crossfit"`` (the cross-fitted fold regimes), ``"fitted"`` (one fold: the regime learned on all records) or
+    None (no regime is learned).
     """
 
     protocol: str
@@ -49,6 +53,7 @@ class Settings:
     selfcheck_replicates: int = 0
     selfcheck_reference_decisions: int = 0  # at most: reference_episodes × horizon (the summary job's reference rule)
     survival: bool = False
+    learned_regime_table: str | None = "crossfit"  # the regime stage's temporary table the evaluation scores
     command: str = ""
     reproduce: str = ""
     stand_ins: dict[str, str] = field(default_factory=dict)
@@ -93,6 +98,13 @@ def load_settings(config: dict) -> Settings:
         bootstrap_shards=pf.protocol.evaluation.shards if pf.protocol.evaluation.replicates else 0,
         sweep_specs=tuple(spec.id for spec in sweep_specifications(pf.protocol)),
         survival=pf.protocol.survival is not None,
+        learned_regime_table=(
+            None
+            if not pf.protocol.analysis.learn_regime
+            else "crossfit"
+            if pf.protocol.evaluation.cross_fit_folds > 1
+            else "fitted"
+        ),
         bootstrap_replicates=pf.protocol.evaluation.replicates,
         sweep_replicates=0 if pf.protocol.sweeps is None else pf.protocol.sweeps.replicates,
         selfcheck_cohorts=0 if pf.protocol.selfcheck is None else pf.protocol.selfcheck.cohorts,

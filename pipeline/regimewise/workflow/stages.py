@@ -35,10 +35,14 @@ from regimewise.errors import ERROR_PREFIX, DataValidationError, StatisticalWarn
 from regimewise.evaluation.values import (
     evaluate_all,
     evaluate_fixed_regimes,
+    evaluate_learned_regimes,
+    evaluate_side_by_side,
     headline_estimator,
     named_strategy_codes,
+    values_document,
+    with_fixed_regimes,
 )
-from regimewise.io import parquet_columns, read_json, read_parquet, write_json, write_parquet, write_text
+from regimewise.io import parquet_columns, parquet_rows, read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.learning import (
@@ -446,13 +450,104 @@ def evaluate_fixed_stage(protocol, decisions, proba, fixed, threads=1):
 
 def read_fixed(path, frame) -> list[dict]:
     """The entries written by :func:`evaluate_fixed_stage`, which must be of these decisions."""
+    return read_values_part(path, len(frame))["regimes"]
+
+
+def read_values_part(path, n_decisions: int) -> dict:
+    """A part of values.json written by one of the evaluate jobs (:func:`evaluate_fixed_stage`,
+    :func:`evaluate_learned_stage`, :func:`evaluate_side_stage`), which must be of these ``n_decisions``
+    decisions."""
     document = read_json(path)
-    if document.get("decisions") != len(frame):
+    if document.get("decisions") != n_decisions:
         raise UserInputError(
-            f"{path} holds the values of {document.get('decisions')} decisions, not of these {len(frame)}; "
+            f"{path} holds the values of {document.get('decisions')} decisions, not of these {n_decisions}; "
             "rerun the workflow"
         )
-    return document["regimes"]
+    return document
+
+
+def fitted_learned_regime(path, frame, labels) -> tuple[np.ndarray, np.ndarray]:
+    """The protocol's learned regime as :func:`regime_fit_stage` wrote it (its ``chosen_`` column, the last, and
+    its Q-values): what the evaluation scores with one cross-fitting fold."""
+    columns = read_parquet(path)
+    if not same_rows(columns, frame):
+        raise UserInputError(
+            f"{path} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
+        )
+    chosen = [c for c in columns.columns if c.startswith("chosen_")]
+    if not chosen:
+        raise UserInputError(f"{path} holds no learned regime; rerun the workflow")
+    return columns[chosen[-1]].to_numpy(dtype=np.int64), columns[[f"q_{a}" for a in labels]].to_numpy(dtype=float)
+
+
+def evaluate_learned_stage(protocol, decisions, proba, learned, crossfit=None, fitted=None, threads=1):
+    """The workflow's part of :func:`evaluate_stage` that depends on the learned regime as evaluated: values of the
+    learned regime and of the strategies built from it (without a learned regime, of the named strategies), with
+    values.json's head (:func:`regimewise.evaluation.values.evaluate_learned_regimes`), in a temporary file read by
+    :func:`evaluate_join_stage`.
+
+    The regime evaluated is the cross-fitted one: ``crossfit``, the table of :func:`crossfit_stage`, so this job
+    starts when the fold regimes are learned, beside the side-by-side regimes. With one fold it is the regime
+    learned on all records, from ``fitted`` (:func:`regime_fit_stage`)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    probabilities = read_probabilities(proba, p.action_labels)
+    recommended = learned_q = folds = None
+    if p.analysis.learn_regime:
+        folds = crossfit_folds(frame, p)
+        if (crossfit if folds is not None else fitted) is None:
+            raise UserInputError(
+                f"the evaluation needs the {'cross-fitted' if folds is not None else 'learned'} regime's table; "
+                "rerun the workflow"
+            )
+        if folds is None:
+            recommended, learned_q = fitted_learned_regime(fitted, frame, p.action_labels)
+        else:
+            crossfitted = read_crossfit(crossfit, frame, p.action_labels)
+            if crossfitted is None:
+                raise UserInputError(f"{crossfit} holds no cross-fitted regime; rerun the workflow")
+            recommended, learned_q = crossfitted
+    part = evaluate_learned_regimes(
+        frame, probabilities, recommended, p, learned_folds=folds, learned_q=learned_q, threads=threads
+    )
+    write_json(learned, {"decisions": len(frame), **part})
+
+
+def evaluate_side_stage(protocol, decisions, proba, fitted, side, threads=1):
+    """The workflow's part of :func:`evaluate_stage` for the side-by-side regimes: every estimator for each of
+    them (:func:`regimewise.evaluation.values.evaluate_side_by_side`), read from the table of
+    :func:`regime_fit_stage`, so this job starts as soon as they are learned; a temporary file read by
+    :func:`evaluate_join_stage`. Without a learned regime there is none (null)."""
+    p = load_protocol(protocol).protocol
+    frame = read_parquet(decisions)
+    columns = read_parquet(fitted)
+    if not same_rows(columns, frame):
+        raise UserInputError(
+            f"{fitted} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
+        )
+    variants = {
+        c.removeprefix("chosen_"): columns[c].to_numpy(dtype=np.int64)
+        for c in columns.columns
+        if c.startswith("chosen_")
+    }
+    del columns
+    entries = None
+    if p.analysis.learn_regime and variants:
+        probabilities = read_probabilities(proba, p.action_labels)
+        entries = evaluate_side_by_side(frame, probabilities, variants, p, threads=threads)
+    write_json(side, {"decisions": len(frame), "side_by_side": entries})
+
+
+def evaluate_join_stage(protocol, decisions, learned, fixed, side, values):
+    """The workflow's evaluate rule: values.json joined from the parts of :func:`evaluate_learned_stage`,
+    :func:`evaluate_fixed_stage` and :func:`evaluate_side_stage` (the same bytes as :func:`evaluate_stage`). Each
+    part must be of these decisions (their count is read from the file's metadata, not its rows)."""
+    p = load_protocol(protocol).protocol
+    n = parquet_rows(decisions)
+    head = read_values_part(learned, n)
+    regimes = with_fixed_regimes(head["regimes"], read_values_part(fixed, n)["regimes"], p, p.analysis.learn_regime)
+    entries = read_values_part(side, n)["side_by_side"]
+    write_json(values, values_document(p, head["observed"], regimes, head["histograms"], entries))
 
 
 def evaluate_stage(protocol, decisions, proba, table, values, fixed=None, threads=1):
@@ -673,7 +768,9 @@ STAGES = {
     "regime_fit": regime_fit_stage,
     "regime": regime_join_stage,
     "evaluate_fixed": evaluate_fixed_stage,
-    "evaluate": evaluate_stage,
+    "evaluate_learned": evaluate_learned_stage,
+    "evaluate_side": evaluate_side_stage,
+    "evaluate": evaluate_join_stage,
     "describe": describe_stage,
     "bootstrap_shard": bootstrap_shard_stage,
     "bootstrap": bootstrap_stage,
