@@ -15,6 +15,7 @@ from scipy import stats
 from support import small_mdp as sm
 
 from regimewise.core.arrays import check_layout
+from regimewise.core.weighting import kish_ess
 from regimewise.errors import StatisticalWarning, UserInputError
 from regimewise.evaluation import ope
 from regimewise.evaluation.ope import (
@@ -63,6 +64,28 @@ def test_hand_worked_example():
         assert est.max_weight_share == pytest.approx(4 / 7.75)
         assert est.n_following == 2 and est.n_episodes == 3  # episode 1 leaves the regime with prob .5
         assert est.per_step_ess == pytest.approx((5.25**2 / 9.5625, 7.75**2 / 23.8125))
+
+
+def test_the_weight_diagnostics_are_computed_once_per_weights_and_equal_kishs_formula_per_column(monkeypatch):
+    # every estimator reports the same ESS figures of the same weights: they are computed once (at 1M episodes
+    # x 12 the six estimators' repeated computation was a fifth of the evaluate stage), each exactly as
+    # core.weighting.kish_ess computes it on that column alone (Kish 1965, as the hand-worked example above)
+    rng = np.random.default_rng(3)
+    n, h = 400, 3
+    episode, step = np.repeat(np.arange(n // h + 1), h)[:n], np.tile(np.arange(h), n // h + 1)[:n]
+    behaviour = rng.dirichlet([2.0, 2.0, 2.0], size=n)
+    target = rng.dirichlet([1.0, 1.0, 1.0], size=n)
+    action = np.array([rng.choice(3, p=row) for row in behaviour])
+    weights = ope.importance_weights(step, action, rng.normal(size=n), episode, behaviour, target, horizon=h)
+    calls = []
+    real = ope._kish
+    monkeypatch.setattr(ope, "_kish", lambda w: calls.append(1) or real(w))
+    out = ope.estimates_from_weights(weights, 1.0, rng.normal(size=n), rng.normal(size=n))
+    assert len(out) == 6 and len(calls) == 1 + h  # the final weights and each step's, once
+    columns = [np.ascontiguousarray(c) for c in weights.cumulative.T]
+    for est in out.values():
+        assert est.per_step_ess == tuple(kish_ess(c) for c in columns)  # bit for bit
+        assert est.ess == kish_ess(columns[-1])
 
 
 def test_closed_form_standard_errors_of_the_hand_worked_example():

@@ -23,6 +23,7 @@ Kish, L. (1965). Survey Sampling. Wiley (effective sample size).
 
 from __future__ import annotations
 
+import functools
 import warnings
 from dataclasses import asdict, dataclass
 
@@ -127,6 +128,18 @@ class ImportanceWeights:
     row_episode: np.ndarray
     row_step: np.ndarray
     n_following: int
+
+    @functools.cached_property
+    def diagnostics(self) -> tuple[float, float, tuple]:
+        """(Kish ESS of the final weights, largest final weight's share of their sum, Kish ESS at each step),
+        computed once and shared by every estimator on these weights."""
+        final = self.cumulative[:, -1]
+        total = final.sum()
+        return (
+            _kish(final),
+            float(final.max() / total) if total > 0 else float("nan"),
+            tuple(_kish(column) for column in self.cumulative.T),
+        )
 
     def to_grid(self, values):
         """Place per-decision ``values`` (n,) on the (E, H) grid, zero where an episode has ended."""
@@ -235,18 +248,17 @@ def _kish(w):
 
 
 def _estimate(name, value, weights, se=float("nan")):
-    final = weights.cumulative[:, -1]
-    total = final.sum()
-    ess = _kish(final)
+    ess, max_weight_share, per_step_ess = weights.diagnostics
+    n_episodes = weights.cumulative.shape[0]
     return OffPolicyEstimate(
         estimator=name,
         value=float(value),
         ess=ess,
-        ess_fraction=ess / final.size,
-        max_weight_share=float(final.max() / total) if total > 0 else float("nan"),
+        ess_fraction=ess / n_episodes,
+        max_weight_share=max_weight_share,
         n_following=weights.n_following,
-        n_episodes=int(final.size),
-        per_step_ess=tuple(_kish(column) for column in weights.cumulative.T),
+        n_episodes=int(n_episodes),
+        per_step_ess=per_step_ess,
         se=float(se),
     )
 
