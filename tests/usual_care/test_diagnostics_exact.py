@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy.stats import rankdata
 
-from regimewise.usual_care.metrics import _binary_auc, multiclass_auc
+from regimewise.usual_care.metrics import _binary_auc, brier_score, multiclass_auc
 
 
 def _reference_binary_auc(positive, score):
@@ -53,3 +53,19 @@ def test_multiclass_auc_on_column_views_is_the_rank_sum_form_to_the_bit(seed):
     codes = rng.integers(0, 3, size=5000)
     old = float(np.mean([_reference_binary_auc(codes == k, proba[:, k]) for k in range(3)]))
     assert multiclass_auc(codes, proba, 3) == old
+
+
+def _reference_brier(codes, proba):
+    outcome = np.zeros_like(proba)
+    outcome[np.arange(codes.size), codes] = 1.0
+    return float(np.mean(np.sum((proba - outcome) ** 2, axis=1)))
+
+
+@pytest.mark.parametrize("order", ["C", "F"])
+@pytest.mark.parametrize("n_actions", [2, 4])
+@pytest.mark.parametrize("n", [1, 9, 10_000])
+def test_brier_score_is_the_one_hot_form_to_the_bit(n, n_actions, order):
+    rng = np.random.default_rng(n + n_actions)
+    proba = np.asarray(rng.dirichlet(np.ones(n_actions), size=n), order=order)
+    codes = rng.integers(0, n_actions, size=n)
+    assert brier_score(codes, proba, n_actions).hex() == _reference_brier(codes, proba).hex()

@@ -105,9 +105,8 @@ def brier_score(action, proba, n_actions):
     """
     proba = as_proba(proba)
     codes = as_actions(action, n_actions, n_rows=proba.shape[0])
-    outcome = np.zeros_like(proba)
-    outcome[np.arange(codes.size), codes] = 1.0
-    return float(np.mean(np.sum((proba - outcome) ** 2, axis=1)))
+    taken = np.arange(n_actions) == codes[:, None]  # the one-hot outcome, as booleans (1.0 and 0.0 in the sum)
+    return float(np.mean(np.sum((proba - taken) ** 2, axis=1)))
 
 
 def reliability_curve(outcome, predicted, n_bins=10):
