@@ -123,14 +123,23 @@ def _box_over_gammas(proba_taken, follows, slot, n_slots, kept, confounded, adop
     fixed_log = np.bincount(slot[fixed], weights=np.log(fixed_factor), minlength=n_slots)
     moving_slot = slot[moves]
     odds = 1.0 / proba_taken[moves] - 1.0  # as inverse_probability_bounds has it
+    factor = np.empty(odds.shape[0])  # worked in place: x + c and x·c are c + x and c·x to the bit
 
-    def product(bound):  # each slot's product of factors
-        factor = bound if adoption == 1.0 else 1.0 - adoption + adoption * bound  # 0 + 1·b is b exactly
-        return np.exp(fixed_log + np.bincount(moving_slot, weights=np.log(factor), minlength=n_slots))
+    def product():  # each slot's product of factors, one bound of 1/e in ``factor``
+        if adoption != 1.0:  # 1 − ε + ε·bound; at ε = 1 that is the bound exactly (0 + 1·b is b)
+            np.multiply(factor, adoption, out=factor)
+            np.add(factor, 1.0 - adoption, out=factor)
+        np.log(factor, out=factor)
+        return np.exp(fixed_log + np.bincount(moving_slot, weights=factor, minlength=n_slots))
 
     def at(gamma):
         _check_gamma(gamma)
-        return product(1.0 + odds / gamma), product(1.0 + gamma * odds)
+        np.divide(odds, gamma, out=factor)
+        np.add(factor, 1.0, out=factor)  # 1 + odds/Γ
+        lower = product()
+        np.multiply(odds, gamma, out=factor)
+        np.add(factor, 1.0, out=factor)  # 1 + Γ·odds
+        return lower, product()
 
     return at
 
