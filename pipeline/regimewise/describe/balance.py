@@ -17,15 +17,22 @@ SMD_FLAG = 0.1  # Austin (2009): |SMD| >= 0.1 signals a meaningful imbalance (co
 
 def _weighted_moments(x, w, binary):
     """Weighted mean and variance; the variance is Austin & Stuart's (2015) unbiased weighted form."""
-    x = np.asarray(x, dtype=float)
     w = np.asarray(w, dtype=float)
-    mean = float(np.sum(w * x) / np.sum(w))
+    return _moments(x, w, np.sum(w), binary, lambda: np.sum(w**2))
+
+
+def _moments(x, w, total, binary, squares):
+    """:func:`_weighted_moments` given the weights' sum ``total`` and a function giving the sum of their squares;
+    ``w=None`` for unit weights (``total`` is then the count: multiplying by 1.0 changes no bit)."""
+    x = np.asarray(x, dtype=float)
+    mean = float(np.sum(x if w is None else w * x) / total)
     if binary:
         return mean, mean * (1.0 - mean)
-    denominator = np.sum(w) ** 2 - np.sum(w**2)
+    denominator = total**2 - squares()
     if denominator <= 0:
         return mean, float("nan")
-    return mean, float(np.sum(w) / denominator * np.sum(w * (x - mean) ** 2))
+    deviation = (x - mean) ** 2
+    return mean, float(total / denominator * np.sum(deviation if w is None else w * deviation))
 
 
 def weighted_smd(x1, x0, w1, w0, binary=False):
@@ -45,8 +52,12 @@ def weighted_smd(x1, x0, w1, w0, binary=False):
     """
     if len(x1) < 2 or len(x0) < 2:
         return None
-    m1, v1 = _weighted_moments(x1, w1, binary)
-    m0, v0 = _weighted_moments(x0, w0, binary)
+    return _difference(_weighted_moments(x1, w1, binary), _weighted_moments(x0, w0, binary))
+
+
+def _difference(moments1, moments0):
+    """The standardised difference of two groups' (mean, variance), as :func:`weighted_smd` defines it."""
+    (m1, v1), (m0, v0) = moments1, moments0
     spread = np.sqrt((v1 + v0) / 2.0)
     if not np.isfinite(spread):
         return None
@@ -107,14 +118,15 @@ def balance_by_step(decisions, proba, protocol):
     steps = decisions["step"].to_numpy()
     out = {}
     for t in np.unique(steps):
-        rows = steps == t
+        rows = np.flatnonzero(steps == t)
+        groups = [_Group(rows[codes[rows] == k], weights) for k in range(len(labels))]
         states = {
-            column.name: _state_balance(column.values[rows], codes[rows], weights[rows], labels, column.binary)
+            column.name: _state_balance(column.values, groups, labels, column.binary)
             for s in protocol.states
             for column in state_columns(decisions, s)
         }
         out[str(int(t))] = {
-            "decisions": int(rows.sum()),
+            "decisions": int(rows.size),
             "states": states,
             "n_flagged_unweighted": sum(
                 v["max_abs_unweighted"] is not None and v["max_abs_unweighted"] >= SMD_FLAG for v in states.values()
@@ -126,13 +138,40 @@ def balance_by_step(decisions, proba, protocol):
     return out
 
 
-def _state_balance(x, codes, weights, labels, binary):
+class _Group:
+    """The decisions of one action at one step (row numbers in the records' order) with their weights, and the
+    sums of the weights that every state's moments reuse."""
+
+    def __init__(self, rows, weights):
+        self.rows = rows
+        self.weights = weights[rows]
+        self.count = np.float64(rows.size)  # the sum of unit weights
+        self.total = np.sum(self.weights)
+        self._squares = None
+
+    def squares(self):
+        if self._squares is None:
+            self._squares = np.sum(self.weights**2)
+        return self._squares
+
+    def moments(self, values, binary):
+        """The group's unweighted and weighted (mean, variance) of ``values`` (every decision's)."""
+        x = values[self.rows]
+        unit = _moments(x, None, self.count, binary, lambda: self.count)
+        return unit, _moments(x, self.weights, self.total, binary, self.squares)
+
+
+def _state_balance(values, groups, labels, binary):
+    """One state's SMDs at a step between each action's group and the reference's (``groups[0]``)."""
     unweighted, weighted = {}, {}
-    ref = codes == 0
-    for k, label in enumerate(labels[1:], start=1):
-        grp = codes == k
-        unweighted[label] = smd(x[grp], x[ref], binary)
-        weighted[label] = weighted_smd(x[grp], x[ref], weights[grp], weights[ref], binary)
+    ref = groups[0]
+    for group, label in zip(groups[1:], labels[1:], strict=True):
+        if group.rows.size < 2 or ref.rows.size < 2:
+            unweighted[label] = weighted[label] = None
+            continue
+        (unit1, weighted1), (unit0, weighted0) = group.moments(values, binary), ref.moments(values, binary)
+        unweighted[label] = _difference(unit1, unit0)
+        weighted[label] = _difference(weighted1, weighted0)
 
     def largest(values):
         finite = [abs(v) for v in values.values() if v is not None]

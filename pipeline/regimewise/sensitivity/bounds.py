@@ -83,6 +83,18 @@ def weight_bounds_over_gammas(proba_taken, follows, episode, n_episodes, confoun
     factor 1 − ε) contributes the same logarithm at every Γ, so those are summed once per episode; the returned
     function recomputes only the factors of the other decisions.
     """
+    proba_taken, follows, episode, confounded = _decision_arrays(proba_taken, follows, episode, confounded, adoption)
+    departs = _departures(follows, episode, n_episodes, adoption)
+    box = _box_over_gammas(proba_taken, follows, episode, n_episodes, ~departs[episode], confounded, adoption)
+
+    def at(gamma):
+        return tuple(np.where(departs, 0.0, bound) for bound in box(gamma))
+
+    return at
+
+
+def _decision_arrays(proba_taken, follows, episode, confounded, adoption):
+    """The decisions' arrays as the bounds use them, checked (the probabilities at every decision)."""
     proba_taken = np.asarray(proba_taken, dtype=float)
     follows = np.asarray(follows, dtype=bool)
     episode = np.asarray(episode, dtype=np.int64)
@@ -90,24 +102,44 @@ def weight_bounds_over_gammas(proba_taken, follows, episode, n_episodes, confoun
     if not 0.0 < adoption <= 1.0:
         raise UserInputError(f"the adoption share must lie in (0, 1], got {adoption}")
     inverse_probability_bounds(proba_taken, 1.0)  # the probabilities' check, at every decision
-    departs = np.zeros(n_episodes, dtype=bool)
-    if adoption == 1.0:  # under partial adoption a decision that departs keeps 1 − ε: nobody drops out
-        departs = np.bincount(episode, weights=~follows, minlength=n_episodes) > 0
-    kept = ~departs[episode]
+    return proba_taken, follows, episode, confounded
+
+
+def _departures(follows, episode, n_episodes, adoption) -> np.ndarray:
+    """Episodes that depart from a deterministic regime somewhere (none under partial adoption, where a decision
+    that departs keeps 1 − ε: nobody drops out)."""
+    if adoption == 1.0:
+        return np.bincount(episode, weights=~follows, minlength=n_episodes) > 0
+    return np.zeros(n_episodes, dtype=bool)
+
+
+def _box_over_gammas(proba_taken, follows, slot, n_slots, kept, confounded, adoption):
+    """Γ ↦ the products of the factors of the decisions ``kept``, one bound of 1/e at the moving decisions,
+    summed into ``slot`` (the episodes in any numbering 0..n_slots-1; each slot's logarithms add up in the
+    decisions' order whatever the numbering). The probabilities are checked already."""
     moves = kept & confounded & follows  # the decisions whose factor depends on Γ
     fixed = kept & ~moves
     fixed_factor = 1.0 - adoption + adoption * follows[fixed] / proba_taken[fixed]
-    fixed_log = np.bincount(episode[fixed], weights=np.log(fixed_factor), minlength=n_episodes)
-    moving_episode, moving_proba = episode[moves], proba_taken[moves]
+    fixed_log = np.bincount(slot[fixed], weights=np.log(fixed_factor), minlength=n_slots)
+    moving_slot = slot[moves]
+    odds = 1.0 / proba_taken[moves] - 1.0  # as inverse_probability_bounds has it
+    factor = np.empty(odds.shape[0])  # worked in place: x + c and x·c are c + x and c·x to the bit
 
-    def product(bound):  # each episode's product of factors, one bound of 1/e at the moving decisions
-        factor = 1.0 - adoption + adoption * bound
-        moving_log = np.bincount(moving_episode, weights=np.log(factor), minlength=n_episodes)
-        return np.where(departs, 0.0, np.exp(fixed_log + moving_log))
+    def product():  # each slot's product of factors, one bound of 1/e in ``factor``
+        if adoption != 1.0:  # 1 − ε + ε·bound; at ε = 1 that is the bound exactly (0 + 1·b is b)
+            np.multiply(factor, adoption, out=factor)
+            np.add(factor, 1.0 - adoption, out=factor)
+        np.log(factor, out=factor)
+        return np.exp(fixed_log + np.bincount(moving_slot, weights=factor, minlength=n_slots))
 
     def at(gamma):
-        low, high = inverse_probability_bounds(moving_proba, gamma)
-        return product(low), product(high)
+        _check_gamma(gamma)
+        np.divide(odds, gamma, out=factor)
+        np.add(factor, 1.0, out=factor)  # 1 + odds/Γ
+        lower = product()
+        np.multiply(odds, gamma, out=factor)
+        np.add(factor, 1.0, out=factor)  # 1 + Γ·odds
+        return lower, product()
 
     return at
 
@@ -182,28 +214,59 @@ def bounds_curve(returns, proba_taken, follows, episode, gammas, confounded=None
     array (len(gammas), 2).
 
     The returns are sorted once; each Γ only changes the weight box (Zhao, Small & Bhattacharya 2019), whose
-    Γ-free part :func:`weight_bounds_over_gammas` computes once.
+    Γ-free part :func:`weight_bounds_over_gammas` computes once. The box is built for the episodes that keep a
+    weight only, numbered in the sorted order: an episode that departs from the regime has weights [0, 0], which
+    add exact zeros to every cumulative sum, so leaving it out changes no bound except perhaps the sign of a
+    zero; a bound of zero is therefore found again with every episode.
     """
     returns = np.asarray(returns, dtype=float)
+    proba_taken, follows, episode, confounded = _decision_arrays(proba_taken, follows, episode, confounded, adoption)
     order = np.argsort(-returns, kind="mergesort")
-    y = returns[order]
-    box = weight_bounds_over_gammas(proba_taken, follows, episode, returns.size, confounded, adoption)
+    departs = _departures(follows, episode, returns.size, adoption)[order]  # in the sorted order
+    ranked = order[~departs]  # the episodes that keep a weight, by decreasing return
+    rank = np.full(returns.size, -1, dtype=np.int64)
+    rank[ranked] = np.arange(ranked.size)
+    box = _box_over_gammas(proba_taken, follows, rank[episode], ranked.size, rank[episode] >= 0, confounded, adoption)
+    y = returns[ranked]
+    y_reversed = -y[::-1]
     out = np.empty((len(gammas), 2))
     for i, gamma in enumerate(gammas):
-        lower, upper = (bound[order] for bound in box(gamma))
+        lower, upper = box(gamma)
         out[i, 1] = _sorted_upper_bound(y, lower, upper)
-        out[i, 0] = -_sorted_upper_bound(-y[::-1], lower[::-1], upper[::-1])
+        out[i, 0] = -_sorted_upper_bound(y_reversed, lower[::-1], upper[::-1])
+        if departs.any() and np.any(out[i] == 0.0):
+            out[i] = _every_episode_bounds(returns[order], lower, upper, departs)
     return out
+
+
+def _every_episode_bounds(y, lower, upper, departs) -> tuple[float, float]:
+    """Lower and upper bound over every episode (sorted), with [0, 0] for those that depart."""
+    a, b = np.zeros(y.size), np.zeros(y.size)
+    a[~departs], b[~departs] = lower, upper
+    return -_sorted_upper_bound(-y[::-1], a[::-1], b[::-1]), _sorted_upper_bound(y, a, b)
 
 
 def _sorted_upper_bound(y, a, b) -> float:
     """Upper bound for values already sorted in decreasing order (see :func:`weighted_mean_upper_bound`)."""
     if not np.any(b > 0):
         return math.nan
-    num = np.concatenate([[0.0], np.cumsum(b * y)]) + np.concatenate([np.cumsum((a * y)[::-1])[::-1], [0.0]])
-    den = np.concatenate([[0.0], np.cumsum(b)]) + np.concatenate([np.cumsum(a[::-1])[::-1], [0.0]])
+    num = _threshold_sums(b * y, a * y)
+    den = _threshold_sums(b, a)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return float(np.max(np.where(den > 0, num / den, -np.inf)))
+        np.divide(num, den, out=num)
+    return float(np.max(np.where(den > 0, num, -np.inf)))
+
+
+def _threshold_sums(upper, lower) -> np.ndarray:
+    """For k = 0..n: the sum of ``upper``'s first k terms plus the sum of ``lower``'s other terms, each a running
+    sum (from the front and from the back) added in the arrays' order."""
+    n = upper.size
+    out, rest = np.empty(n + 1), np.empty(n + 1)
+    out[0], rest[n] = 0.0, 0.0
+    np.cumsum(upper, out=out[1:])
+    np.cumsum(lower[::-1], out=rest[:n][::-1])
+    out += rest
+    return out
 
 
 # ---------------------------------------------------------------------------------------------- tipping point

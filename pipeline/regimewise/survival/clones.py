@@ -162,10 +162,15 @@ def _block_cumprod(values, position):
     """Running product of ``values`` within each episode's block (``position``: place in the block, 0, 1, ...).
 
     The products are formed in the order a grouped running product forms them (1·v_0, then ·v_1, ...), one
-    place in the block at a time for all episodes together, so every product is the same float."""
+    place in the block at a time for all episodes together, so every product is the same float. The blocks
+    are contiguous, so the rows at a place are found from the blocks' starts and lengths, not the whole array."""
     out = np.array(values, dtype=float)
-    for place in range(1, int(position.max(initial=0)) + 1):
-        at = np.flatnonzero(position == place)
+    starts = np.flatnonzero(position == 0)
+    lengths = np.diff(starts, append=position.shape[0])
+    for place in range(1, int(lengths.max(initial=1))):
+        starts = starts[lengths > place]  # the blocks that reach this place (fewer at every place)
+        lengths = lengths[lengths > place]
+        at = starts + place
         out[at] = out[at - 1] * out[at]
     return out
 

@@ -5,7 +5,6 @@ average), Brier score (Brier 1950) and reliability curves (Niculescu-Mizil & Car
 from __future__ import annotations
 
 import numpy as np
-from scipy.stats import rankdata
 
 from regimewise.core.arrays import as_actions, as_proba
 from regimewise.errors import UserInputError
@@ -36,11 +35,24 @@ def probability_of_taken(proba, action):
 
 
 def _binary_auc(positive, score):
-    """Area under the ROC curve via the Mann–Whitney statistic with mid-ranks for ties."""
-    ranks = rankdata(score)
+    """Area under the ROC curve via the Mann–Whitney statistic with mid-ranks for ties.
+
+    The positives' rank sum is counted exactly in integers (twice each mid-rank: the scores below plus the scores
+    at most equal, plus one), from the sorted scores of each class: the rank sums of the positives among
+    themselves add up to n₊(n₊ + 1)/2, so only the negatives below and tied need counting. The sum is a
+    half-integer below 2⁵³ and so what a floating-point sum of the mid-ranks gives in any order.
+    """
+    positive = np.asarray(positive, dtype=bool)
+    score = np.asarray(score, dtype=float)
+    if np.isnan(score).any():
+        return np.float64(np.nan)  # a missing score leaves every rank undefined
     n_pos = positive.sum()
     n_neg = positive.size - n_pos
-    return (ranks[positive].sum() - n_pos * (n_pos + 1) / 2) / (n_pos * n_neg)
+    pos, neg = np.sort(score[positive]), np.sort(score[~positive])
+    below = np.searchsorted(neg, pos, side="left").sum(dtype=np.int64)
+    at_most = np.searchsorted(neg, pos, side="right").sum(dtype=np.int64)
+    rank_sum = (below + at_most + n_pos * (n_pos + 1)) / 2
+    return (rank_sum - n_pos * (n_pos + 1) / 2) / (n_pos * n_neg)
 
 
 def multiclass_auc(action, proba, n_actions):
@@ -93,9 +105,8 @@ def brier_score(action, proba, n_actions):
     """
     proba = as_proba(proba)
     codes = as_actions(action, n_actions, n_rows=proba.shape[0])
-    outcome = np.zeros_like(proba)
-    outcome[np.arange(codes.size), codes] = 1.0
-    return float(np.mean(np.sum((proba - outcome) ** 2, axis=1)))
+    taken = np.arange(n_actions) == codes[:, None]  # the one-hot outcome, as booleans (1.0 and 0.0 in the sum)
+    return float(np.mean(np.sum((proba - taken) ** 2, axis=1)))
 
 
 def reliability_curve(outcome, predicted, n_bins=10):
