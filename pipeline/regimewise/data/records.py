@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import as_level_text
+from regimewise.data.distinct import TableText
 from regimewise.data.findings import (
     MAX_DAY,
     MAX_FINDINGS_PER_RULE,
@@ -95,8 +96,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
 
 
 # ---------------------------------------------------------------------------------------------- entry points
-def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Finding]:
-    """All findings for a decisions table (empty list when it is clean)."""
+def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str, text: TableText | None = None) -> list[Finding]:
+    """All findings for a decisions table (empty list when it is clean); ``text``, if given, is the frame's."""
     rules = decision_rules(pf)
     missing = [r.column for r in rules if r.column not in frame.columns]
     if missing:
@@ -112,7 +113,7 @@ def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Fi
             )
             for c in missing
         ]
-    findings = field_findings(file, frame, rules)
+    findings = field_findings(file, frame, rules, text)
     if not findings:
         findings = _sequence_findings(file, frame, pf) + level_findings(pf, frame, file)
     return findings
@@ -258,9 +259,15 @@ def episode_rules(pf: ProtocolFile, frame: pd.DataFrame) -> list[FieldRule]:
 
 
 def check_episodes(
-    pf: ProtocolFile, frame: pd.DataFrame, file: str, decisions: pd.DataFrame, dropped_episodes: set[str]
+    pf: ProtocolFile,
+    frame: pd.DataFrame,
+    file: str,
+    decisions: pd.DataFrame,
+    dropped_episodes: set[str],
+    text: TableText | None = None,
 ) -> list[Finding]:
-    """Field rules of the episodes table, then referential integrity with the (clean) decisions table.
+    """Field rules of the episodes table, then referential integrity with the (clean) decisions table; ``text``,
+    if given, is the frame's :class:`regimewise.data.distinct.TableText`.
 
     Follow-up must reach the last decision day only for censored episodes: the event may be non-fatal, so an
     episode with an event can have decisions after it (see synthetic_cohort/README.md).
@@ -278,7 +285,7 @@ def check_episodes(
                 fix="add the episode identifier column",
             )
         ]
-    findings = field_findings(file, frame, episode_rules(pf, frame))
+    findings = field_findings(file, frame, episode_rules(pf, frame), text)
     if findings:
         return findings
     last = _episode_ends(decisions)
@@ -333,7 +340,7 @@ def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
         "episode appears twice",
         "one row per episode",
     )
-    for episode in sorted(set(last.index) - set(ids))[:MAX_FINDINGS_PER_RULE]:
+    for episode in absent_from(last.index, ids)[:MAX_FINDINGS_PER_RULE]:
         findings.append(
             Finding(
                 file=file,
@@ -357,6 +364,12 @@ def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
         "remove the episode or add its decisions",
     )
     return findings
+
+
+def absent_from(index: pd.Index, ids: pd.Series) -> list:
+    """The entries of ``index`` that are not among ``ids``, sorted (``sorted(set(index) - set(ids))``): one
+    hash lookup per entry instead of two sets of Python objects."""
+    return sorted(set(index[~index.isin(ids)]))
 
 
 def _episode_consistency(file, frame, cols, last) -> list[Finding]:
@@ -424,8 +437,15 @@ def clean_episodes(
     frame = frame.drop(columns=[c for c in ("patient_id", cols.patient_id) if c in frame.columns])
     text = [c for c in frame.columns if c != "episode_id" and not pd.api.types.is_numeric_dtype(frame[c])]
     frame = frame.drop(columns=text)  # free text never travels into the results
-    merged = counts.merge(frame, on="episode_id", how="left", validate="one_to_one")
+    merged = counts.merge(frame, on="episode_id", how="left", validate=one_to_one(counts, frame, "episode_id"))
     return merged.sort_values("episode_id", kind="mergesort").reset_index(drop=True)
+
+
+def one_to_one(left: pd.DataFrame, right: pd.DataFrame, key: str) -> str | None:
+    """``merge``'s ``validate`` for a join that must be one-to-one: None when both key columns are unique (checked
+    here, at less cost than merge's own check), else ``"one_to_one"`` so that merge raises its error."""
+    unique = left[key].is_unique and right[key].is_unique
+    return None if unique else "one_to_one"
 
 
 def episodes_table(pf: ProtocolFile, decisions: pd.DataFrame) -> pd.DataFrame:

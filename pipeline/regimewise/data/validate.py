@@ -23,6 +23,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from regimewise.data.distinct import TableText
 from regimewise.data.findings import (
     MAX_FINDINGS_PER_RULE,
     Finding,
@@ -66,18 +67,22 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     name = Path(path).name
     pf, defaulted = default_columns(pf, raw)
     p = pf.protocol
-    findings = identifier_findings(name, raw, pf) + long_text_findings(name, raw)
+    text = TableText(raw)  # each text column factorized once for the rules below
+    findings = identifier_findings(name, raw, pf, text) + long_text_findings(name, raw, text)
     if episodes_raw is not None:
         ep_name = pf.episodes_path.name
-        findings += identifier_findings(ep_name, episodes_raw, pf) + long_text_findings(ep_name, episodes_raw)
+        ep_text = TableText(episodes_raw)
+        findings += identifier_findings(ep_name, episodes_raw, pf, ep_text)
+        findings += long_text_findings(ep_name, episodes_raw, ep_text)
     if findings:
         return findings, None
     frame, missing_actions = apply_missing_policy(pf, raw)
     findings = (
         survival_day_findings(pf, name, defaulted)
         or policy_findings(pf, name, frame, missing_actions, len(raw))
-        or check_decisions(pf, frame, name)
+        or check_decisions(pf, frame, name, text if frame is raw else None)  # the policy changed no row
     )
+    del text  # its codes (one integer per row and text column) are not held while the clean tables are built
     if findings:
         return findings, None
     decisions = clean_decisions(pf, frame)
@@ -87,7 +92,7 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
         set() if len(decisions) == len(raw) else set(raw[cols.episode_id].astype(str)) - set(decisions["episode_id"])
     )
     if episodes_raw is not None:
-        findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped)
+        findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped, ep_text)
         if findings:
             return findings, None
     episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
