@@ -23,6 +23,8 @@ COLUMNS = {
     "ids": ["P1", "P2", "P1", None, "P3", "P2"],
     "long": [LONG, "a", None, LONG + "y", float("nan"), "é" * 250],
     "blank": ["a", " ", "", "\t", None, "b"],
+    "absent": ["a", pd.NA, "c", float("nan"), None, "b"],
+    "absent_nat": ["a", pd.NA, pd.NaT, float("nan"), None, "b"],
     "surrogate": ["a\ud800", "b", "a\ud800" * 100, None, "c", "d"],
     "mixed": ["a", 1, 2.5, None, LONG, "b"],
     "empty": [None, None, None, None, None, None],
@@ -42,7 +44,7 @@ def test_lengths_of_the_distinct_values_are_those_of_every_cell(column):
     values = _table()[column]
     distinct = distinct_text(values)
     if distinct is None:  # not a column of str: measured cell by cell as before
-        assert column == "mixed"
+        assert column in ("mixed", "absent_nat")
         return
     lengths = distinct_lengths(*distinct)
     assert np.array_equal(lengths.astype(np.int64), text_lengths(values).astype(np.int64))
@@ -56,10 +58,14 @@ def test_long_text_findings_are_the_same_with_shared_text():
 
 def test_field_findings_are_the_same_with_shared_text():
     frame = _table()
-    rules = [FieldRule(c, "text", fix="fill it") for c in ("ids", "blank", "mixed", "empty", "category")]
+    rules = [
+        FieldRule(c, "text", fix="fill it")
+        for c in ("ids", "blank", "absent", "absent_nat", "mixed", "empty", "category")
+    ]
     shared = field_findings("d.csv", frame, rules, TableText(frame))
     assert shared == field_findings("d.csv", frame, rules)
     assert {(f.column, f.row) for f in shared} >= {("blank", 5), ("blank", 6), ("blank", 7), ("ids", 7)}
+    assert sorted(f.row for f in shared if f.column == "absent") == [5, 7, 8]  # pd.NA, NaN and None
 
 
 @pytest.mark.parametrize("role", [ID, DECLARED, "other"])

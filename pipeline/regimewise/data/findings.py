@@ -137,7 +137,10 @@ def _failing_rows(frame: pd.DataFrame, rule: FieldRule, text: TableText | None =
     """Boolean mask of rows whose value breaks the field rule (vectorised); ``text``, if given, is the frame's."""
     raw = frame[rule.column]
     if rule.kind == "text":
-        return raw.isna().to_numpy() | blank_mask(raw, FIND if text is None else text(rule.column))
+        distinct = FIND if text is None else text(rule.column)
+        if distinct is FIND or distinct is None:
+            return raw.isna().to_numpy() | blank_mask(raw, distinct)
+        return (distinct[0] < 0) | blank_mask(raw, distinct)  # factorize codes -1 exactly the cells isna finds
     if rule.kind == "label":
         return ~raw.isin(rule.labels).to_numpy()
     if rule.kind == "level":
