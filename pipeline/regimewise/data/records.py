@@ -32,10 +32,15 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
     source = source_rows(frame)
     ep, step = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64)
     day = step if cols.day is None else frame[cols.day]  # the decision index never goes backwards
-    in_order = _in_episode_step_order(ep.to_numpy(), step.to_numpy())  # the usual case: no sort needed
-    order = np.arange(len(frame)) if in_order else np.lexsort((step.to_numpy(), ep.to_numpy()))
-    ep_s, step_s, day_s = ep.to_numpy()[order], step.to_numpy()[order], day.to_numpy(dtype=float)[order]
-    same = np.r_[False, ep_s[1:] == ep_s[:-1]]
+    ep_s, step_s, day_s = ep.to_numpy(), step.to_numpy(), day.to_numpy(dtype=float)
+    repeated = ep_s[1:] == ep_s[:-1]  # the same episode as the row before, in file order
+    in_order = _in_episode_step_order(ep_s, step_s, repeated)  # the usual case: no sort needed
+    order = np.arange(len(frame))
+    if not in_order:
+        order = np.lexsort((step_s, ep_s))
+        ep_s, step_s, day_s = ep_s[order], step_s[order], day_s[order]
+        repeated = ep_s[1:] == ep_s[:-1]
+    same = np.r_[False, repeated]
     duplicate = same & np.r_[False, step_s[1:] == step_s[:-1]]
     for i in np.flatnonzero(duplicate):
         findings.append(
@@ -77,7 +82,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
             )
         )
     if cols.patient_id is not None:
-        patient_s = frame[cols.patient_id].astype(str).to_numpy()[order]
+        patient_s = frame[cols.patient_id].astype(str).to_numpy()
+        patient_s = patient_s if in_order else patient_s[order]
         switched = same & np.r_[False, patient_s[1:] != patient_s[:-1]]  # a new patient id within an episode
         for episode in np.unique(ep_s[switched]):
             row = int(source[np.flatnonzero(ep.to_numpy() == str(episode))[0]])
@@ -235,12 +241,13 @@ def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
     return out.sort_values(["episode_id", "step"], kind="mergesort").reset_index(drop=True)
 
 
-def _in_episode_step_order(episode: np.ndarray, step: np.ndarray) -> bool:
-    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give."""
+def _in_episode_step_order(episode: np.ndarray, step: np.ndarray, same: np.ndarray | None = None) -> bool:
+    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give.
+    ``same``, when the caller has it, is ``episode[1:] == episode[:-1]``."""
     if episode.size < 2:
         return True
     later = episode[1:] > episode[:-1]
-    same = episode[1:] == episode[:-1]
+    same = episode[1:] == episode[:-1] if same is None else same
     return bool(np.all(later | (same & (step[1:] > step[:-1]))))
 
 
@@ -372,15 +379,29 @@ def absent_from(index: pd.Index, ids: pd.Series) -> list:
     return sorted(set(index[~index.isin(ids)]))
 
 
+def episode_ends_of(frame: pd.DataFrame, cols, last: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """The decisions' patient (object) and last day (float, NaN for an episode without decisions) of each row of
+    the episodes table ``frame``, from :func:`_episode_ends`'s ``last``.
+
+    In the usual case the table lists the decisions' episodes in their order: ``last`` is then read as it is,
+    without the join by episode id (a hash of every id) that any other table needs."""
+    ids = frame[cols.episode_id].astype(str).to_numpy()
+    joinable = "_patient" not in frame.columns and "last_day" not in frame.columns  # else the join refuses them
+    if joinable and len(ids) == len(last) and np.array_equal(ids, last.index.to_numpy()):
+        return last["_patient"].to_numpy(), last["last_day"].to_numpy(dtype=float)
+    joined = frame.assign(_id=ids).join(last, on="_id")
+    return joined["_patient"].to_numpy(), joined["last_day"].to_numpy(dtype=float)
+
+
 def _episode_consistency(file, frame, cols, last) -> list[Finding]:
     """The same patient in both tables, and censored follow-up reaching the last decision (when the records have
     real days; the decision index standing in for the day says nothing about follow-up)."""
     source = source_rows(frame)
-    joined = frame.assign(_id=frame[cols.episode_id].astype(str)).join(last, on="_id")
-    present = joined["last_day"].notna().to_numpy()
+    patient, last_day = episode_ends_of(frame, cols, last)
+    present = ~np.isnan(last_day)
     findings = []
     if cols.patient_id is not None and cols.patient_id in frame.columns:
-        differs = present & (joined[cols.patient_id].astype(str) != joined["_patient"]).to_numpy()
+        differs = present & (frame[cols.patient_id].astype(str).to_numpy() != patient)
         findings += _rows_found(
             file,
             source,
@@ -392,9 +413,8 @@ def _episode_consistency(file, frame, cols, last) -> list[Finding]:
             "give the episode the same patient id in both tables",
         )
     if cols.day is not None and cols.followup in frame.columns and cols.event in frame.columns:
-        follow = pd.to_numeric(joined[cols.followup]).to_numpy(dtype=float)
-        censored = pd.to_numeric(joined[cols.event]).to_numpy(dtype=float) == 0
-        last_day = joined["last_day"].to_numpy(dtype=float)
+        follow = pd.to_numeric(frame[cols.followup]).to_numpy(dtype=float)
+        censored = pd.to_numeric(frame[cols.event]).to_numpy(dtype=float) == 0
         short = np.flatnonzero(present & censored & (follow < last_day))
         findings += _rows_found(
             file,
