@@ -13,7 +13,14 @@ import pandas as pd
 import pytest
 
 from regimewise.data.findings import clip_text
-from regimewise.data.records import _episode_consistency, _episode_ends, _sequence_findings, episode_ends_of
+from regimewise.data.records import (
+    _episode_consistency,
+    _episode_ends,
+    _sequence_findings,
+    episode_ends_of,
+    episode_runs,
+)
+from regimewise.data.validate import steps_present
 
 
 class Columns:
@@ -147,3 +154,20 @@ def test_a_table_with_the_joins_column_names_still_goes_through_the_join():
     frame, last = _episodes("same")
     with pytest.raises(ValueError, match="overlap"):
         episode_ends_of(frame.assign(last_day=0), Columns, last)
+
+
+# ---------------------------------------------------------------------------------------------- validation.json
+@pytest.mark.parametrize("seed", range(4))
+def test_counts_by_step_and_patients_are_the_former_ones(seed):
+    rng = np.random.default_rng(seed)
+    lengths = rng.integers(1, 6, 40)
+    episodes = np.repeat([f"E{i:03d}" for i in range(40)], lengths)
+    patients = np.repeat([f"P{i:03d}" for i in rng.integers(0, 25, 40)], lengths)  # some patients, several episodes
+    decisions = pd.DataFrame(
+        {"episode_id": episodes, "patient_id": patients, "step": np.concatenate([np.arange(n) for n in lengths])}
+    )
+    starts, _ = episode_runs(decisions)
+    former = {str(k): int(v) for k, v in decisions.groupby("step").size().items()}
+    assert steps_present(decisions["step"].to_numpy()) == former
+    assert decisions["patient_id"].iloc[starts].nunique() == decisions["patient_id"].nunique()
+    assert steps_present(np.array([3, 3, 1])) == {"1": 1, "3": 2}  # absent steps are left out, as groupby does

@@ -21,6 +21,7 @@ from collections import Counter
 from dataclasses import dataclass, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from regimewise.data.distinct import TableText
@@ -295,9 +296,9 @@ def summarise(
         "rows_dropped_missing": int(len(raw) - len(decisions)),
         "episodes_dropped_missing": int(episodes_dropped),
         "episodes": int(starts.size),
-        "patients": int(decisions["patient_id"].nunique()),
+        "patients": int(decisions["patient_id"].iloc[starts].nunique()),  # one patient per episode (checked)
         "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.tolist()).items())},
-        "decisions_by_step": {str(k): int(v) for k, v in decisions.groupby("step").size().items()},
+        "decisions_by_step": steps_present(decisions["step"].to_numpy()),
         "actions": {a: int(actions.get(a, 0)) for a in p.action_labels},
         "findings_by_rule": {rule: 0 for rule in RULES_CHECKED},
         "missing_data": missing_actions or {},
@@ -305,6 +306,13 @@ def summarise(
         "extra_columns_ignored": sorted(set(map(str, raw.columns)) - known),
         **({"categorical_levels": levels} if levels else {}),
     }
+
+
+def steps_present(step: np.ndarray) -> dict[str, int]:
+    """Decisions at each step present, in step order (``groupby("step").size()`` of clean steps, 0 or more, by
+    counting instead of grouping)."""
+    counts = np.bincount(step)
+    return {str(k): int(counts[k]) for k in np.flatnonzero(counts)}
 
 
 RULES_CHECKED = (
