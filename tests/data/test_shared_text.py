@@ -68,6 +68,14 @@ def test_field_findings_are_the_same_with_shared_text():
     assert sorted(f.row for f in shared if f.column == "absent") == [5, 7, 8]  # pd.NA, NaN and None
 
 
+def test_action_label_findings_are_the_same_with_shared_text():
+    frame = _table().assign(action=["hold", "step_up", None, "Hold", float("nan"), "hold "])
+    rules = [FieldRule("action", "label", labels=("hold", "step_up"), fix="use a label")]
+    shared = field_findings("d.csv", frame, rules, TableText(frame))
+    assert shared == field_findings("d.csv", frame, rules)
+    assert [f.row for f in shared] == [6, 7, 8, 9]
+
+
 @pytest.mark.parametrize("role", [ID, DECLARED, "other"])
 def test_identifier_hits_are_the_same_with_shared_text(role):
     frame = _table().drop(columns="surrogate")  # the guard cannot read a lone surrogate, either way

@@ -142,7 +142,11 @@ def _failing_rows(frame: pd.DataFrame, rule: FieldRule, text: TableText | None =
             return raw.isna().to_numpy() | blank_mask(raw, distinct)
         return (distinct[0] < 0) | blank_mask(raw, distinct)  # factorize codes -1 exactly the cells isna finds
     if rule.kind == "label":
-        return ~raw.isin(rule.labels).to_numpy()
+        distinct = None if text is None else text(rule.column)
+        if distinct is None:
+            return ~raw.isin(rule.labels).to_numpy()
+        codes, uniques = distinct  # each distinct value looked up once; a missing cell is no label
+        return broadcast(~pd.Series(uniques, dtype=object).isin(rule.labels).to_numpy(), codes, True)
     if rule.kind == "level":
         codes, uniques = pd.factorize(raw, use_na_sentinel=True)
         known = np.isin(np.asarray([level_text(u) for u in uniques], dtype=object), np.asarray(rule.labels, object))
