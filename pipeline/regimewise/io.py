@@ -96,18 +96,41 @@ def read_json(path: str | Path):
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = None) -> None:
+def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = None, labels=None) -> None:
     """Write a DataFrame to Parquet atomically (no index; deterministic for the same pyarrow version).
 
-    ``caution``, if given, is stored in the file's metadata under the key ``regimewise.caution``.
+    ``caution``, if given, is stored in the file's metadata under the key ``regimewise.caution``. ``labels``, if
+    given, maps columns of ``frame`` holding integer codes to the text labels the codes stand for: such a column
+    is written as its labels' text, the same bytes as a column of those strings (:func:`labelled_table`).
     """
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    table = labelled_table(frame, labels) if labels else pa.Table.from_pandas(frame, preserve_index=False)
     if caution is not None:
         table = table.replace_schema_metadata(
             {**(table.schema.metadata or {}), b"regimewise.caution": caution.encode()}
         )
     with atomic_path(path) as tmp:
         pq.write_table(table, tmp, compression="zstd")
+
+
+def with_text(frame: pd.DataFrame, labels: dict) -> pd.DataFrame:
+    """``frame`` with each code column of ``labels`` replaced by its labels (an object column of ``str``)."""
+    return frame.assign(**{c: np.asarray(text, dtype=object)[frame[c].to_numpy()] for c, text in labels.items()})
+
+
+def labelled_table(frame: pd.DataFrame, labels: dict) -> pa.Table:
+    """The table ``pa.Table.from_pandas(with_text(frame, labels), preserve_index=False)`` would give, with its
+    schema and pandas metadata, built without a Python string per row of the code columns: each label column is
+    its labels taken by the codes, every other column converted as ``from_pandas`` converts it."""
+    if frame.empty:  # no row to read the columns' types from
+        return pa.Table.from_pandas(with_text(frame, labels), preserve_index=False)
+    schema = pa.Schema.from_pandas(with_text(frame.iloc[:1], labels), preserve_index=False)
+    arrays = [
+        pa.array(list(labels[c]), type=field.type).take(pa.array(frame[c].to_numpy()))
+        if c in labels
+        else pa.array(frame[c], type=field.type, from_pandas=True)
+        for c, field in zip(frame.columns, schema)
+    ]
+    return pa.Table.from_arrays(arrays, schema=schema)
 
 
 def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:

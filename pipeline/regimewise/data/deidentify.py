@@ -49,7 +49,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from regimewise.data.distinct import broadcast, distinct_text
+from regimewise.data.distinct import FIND, broadcast, distinct_text
 from regimewise.data.numbers import content_hits, named_age_hits, universal_hits, whole_numbers
 from regimewise.protocol.identifiers import (
     ANY_EXACT,
@@ -199,7 +199,9 @@ def suggests_postcode(name: str) -> bool:
 
 
 # ---------------------------------------------------------------------------------------------- values
-def value_hits(column: str, values: pd.Series, role: str = OTHER, age: bool | None = None) -> list[IdentifierHit]:
+def value_hits(
+    column: str, values: pd.Series, role: str = OTHER, age: bool | None = None, distinct=FIND
+) -> list[IdentifierHit]:
     """Identifier-like cells of one column, by content whatever its type (one hit per row, sorted by row).
 
     ``role`` is :data:`ID` for the episode and patient id columns, :data:`DECLARED` for the other columns the
@@ -208,14 +210,18 @@ def value_hits(column: str, values: pd.Series, role: str = OTHER, age: bool | No
     column holds ages (a state declared as an age); None reads it from the column's name (:func:`is_age_column`).
 
     A row's category is that of the first rule it breaks (number rules, then text rules). Text columns are read
-    once per distinct value (:func:`regimewise.data.distinct.distinct_text`).
+    once per distinct value (:func:`regimewise.data.distinct.distinct_text`; ``distinct``, when given, is its
+    result for ``values``, already found).
     """
     if pd.api.types.is_datetime64_any_dtype(values):
         rows = np.flatnonzero(values.notna().to_numpy())
         return [IdentifierHit(column, int(r), "full date", 10) for r in rows]
     age = is_age_column(column) if age is None else age
     text_column = pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values)
-    distinct = distinct_text(values) if text_column else None
+    if not text_column:
+        distinct = None
+    elif distinct is FIND:
+        distinct = distinct_text(values)
     categories: list[str] = []
     # per row, the index in categories of the first rule it breaks (-1: none); there are a few dozen categories
     first = np.full(len(values), -1, dtype=np.int8)
@@ -354,7 +360,7 @@ def header_category(name: str) -> str | None:
 
 
 def find_identifiers(
-    frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=(), ages=(), levels=None
+    frame: pd.DataFrame, acknowledged=(), id_columns=(), declared=(), ages=(), levels=None, text=None
 ) -> list[IdentifierHit]:
     """Every identifier-like column header and value in a table, skipping acknowledged columns.
 
@@ -366,7 +372,8 @@ def find_identifiers(
     protocol's author listed one by one (and the protocol's own guard checked), so it is not read by value
     shape (a declared site code ``10001`` is not a postcode); the column's other cells are read as above
     (validation also reports them as undeclared levels). The levels of a state declared as an age (in ``ages``)
-    are still read as ages: a level above 89 is refused.
+    are still read as ages: a level above 89 is refused. ``text``, if given, is the frame's
+    :class:`regimewise.data.distinct.TableText` (used for the columns read as they are).
     """
     acknowledged, id_columns, declared, ages = set(acknowledged), set(id_columns), set(declared), set(ages)
     levels = dict(levels or {})
@@ -382,7 +389,8 @@ def find_identifiers(
         role = ID if name in id_columns else DECLARED if name in declared else OTHER
         labels = name in levels and name not in ages  # an age state's levels are still ages
         values = _undeclared_levels(frame[column], levels[name]) if labels else frame[column]
-        hits += value_hits(name, values, role, age=True if name in ages else None)
+        distinct = FIND if labels or text is None else text(column)
+        hits += value_hits(name, values, role, age=True if name in ages else None, distinct=distinct)
     return hits
 
 

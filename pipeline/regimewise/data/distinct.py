@@ -37,6 +37,27 @@ def distinct_text(values: pd.Series) -> tuple[np.ndarray, np.ndarray] | None:
     return codes, uniques
 
 
+FIND = object()
+"""Stands for a column's distinct values not found yet (an argument's default; None means not a text column)."""
+
+
+class TableText:
+    """The text columns of one table, each factorized once (:func:`distinct_text`) for every rule that reads it.
+
+    Give it only to rules that read the same, unmodified table: the codes are positions of its rows.
+    """
+
+    def __init__(self, frame: pd.DataFrame):
+        self.frame = frame
+        self._found: dict = {}
+
+    def __call__(self, column) -> tuple[np.ndarray, np.ndarray] | None:
+        """:func:`distinct_text` of the column (None when it is not a text column)."""
+        if column not in self._found:
+            self._found[column] = distinct_text(self.frame[column])
+        return self._found[column]
+
+
 def broadcast(per_value: np.ndarray, codes: np.ndarray, missing) -> np.ndarray:
     """Each row's entry of ``per_value`` (one per distinct value) by its code, ``missing`` where the code is -1."""
     return np.append(per_value, np.asarray([missing], dtype=per_value.dtype))[codes]

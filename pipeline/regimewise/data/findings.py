@@ -15,6 +15,7 @@ import pyarrow.compute as pc
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, ValidationError, create_model
 
 from regimewise.data.deidentify import find_identifiers, is_age_column, mask, shown_value
+from regimewise.data.distinct import FIND, TableText, broadcast
 from regimewise.data.missing import blank_mask
 from regimewise.protocol.loading import ProtocolFile
 from regimewise.protocol.types import level_text
@@ -132,13 +133,20 @@ def row_model(rules: list[FieldRule]) -> type[BaseModel]:
 
 
 # ---------------------------------------------------------------------------------------------- field checks
-def _failing_rows(frame: pd.DataFrame, rule: FieldRule) -> np.ndarray:
-    """Boolean mask of rows whose value breaks the field rule (vectorised)."""
+def _failing_rows(frame: pd.DataFrame, rule: FieldRule, text: TableText | None = None) -> np.ndarray:
+    """Boolean mask of rows whose value breaks the field rule (vectorised); ``text``, if given, is the frame's."""
     raw = frame[rule.column]
     if rule.kind == "text":
-        return raw.isna().to_numpy() | blank_mask(raw)
+        distinct = FIND if text is None else text(rule.column)
+        if distinct is FIND or distinct is None:
+            return raw.isna().to_numpy() | blank_mask(raw, distinct)
+        return (distinct[0] < 0) | blank_mask(raw, distinct)  # factorize codes -1 exactly the cells isna finds
     if rule.kind == "label":
-        return ~raw.isin(rule.labels).to_numpy()
+        distinct = None if text is None else text(rule.column)
+        if distinct is None:
+            return ~raw.isin(rule.labels).to_numpy()
+        codes, uniques = distinct  # each distinct value looked up once; a missing cell is no label
+        return broadcast(~pd.Series(uniques, dtype=object).isin(rule.labels).to_numpy(), codes, True)
     if rule.kind == "level":
         codes, uniques = pd.factorize(raw, use_na_sentinel=True)
         known = np.isin(np.asarray([level_text(u) for u in uniques], dtype=object), np.asarray(rule.labels, object))
@@ -234,10 +242,15 @@ def plain(msg: str) -> str:
     return " ".join(msg.split()).rstrip(".")
 
 
-def field_findings(file: str, frame: pd.DataFrame, rules: list[FieldRule]) -> list[Finding]:
-    """Vectorised check of every field rule; the pydantic model explains at most a capped number of rows per rule."""
+def field_findings(
+    file: str, frame: pd.DataFrame, rules: list[FieldRule], text: TableText | None = None
+) -> list[Finding]:
+    """Vectorised check of every field rule; the pydantic model explains at most a capped number of rows per rule.
+
+    ``text``, if given, holds the frame's text columns already factorized (:class:`TableText` of this frame).
+    """
     chosen = np.zeros(len(frame), dtype=bool)
-    bad = [_failing_rows(frame, rule) for rule in rules]
+    bad = [_failing_rows(frame, rule, text) for rule in rules]
     shown = [_listed_rows(failing) for failing in bad]  # a capped rule keeps one place for its count
     for rows in shown:
         chosen[rows] = True
@@ -303,8 +316,11 @@ ID_FIX = (
 )
 
 
-def identifier_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list[Finding]:
-    """Identifier-like column headers and values (Safe Harbor categories); values and headers are never shown."""
+def identifier_findings(
+    file: str, frame: pd.DataFrame, pf: ProtocolFile, text: TableText | None = None
+) -> list[Finding]:
+    """Identifier-like column headers and values (Safe Harbor categories); values and headers are never shown.
+    ``text``, if given, is the frame's :class:`TableText`."""
     acknowledged = [a.column for a in pf.protocol.data.acknowledged_columns]
     ids, declared = guard_roles(pf)
     ages = [s.source_column for s in pf.protocol.states if is_age_column(s.name)]  # declared as ages
@@ -312,7 +328,8 @@ def identifier_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> lis
     position = {str(c): i + 1 for i, c in enumerate(frame.columns)}
     findings = []
     levels = {s.source_column: s.levels for s in pf.protocol.states if s.kind == "categorical"}  # labels, not values
-    for hit in find_identifiers(frame, acknowledged, id_columns=ids, declared=declared, ages=ages, levels=levels):
+    hits = find_identifiers(frame, acknowledged, id_columns=ids, declared=declared, ages=ages, levels=levels, text=text)
+    for hit in hits:
         if hit.row is None:
             findings.append(
                 Finding(
@@ -362,15 +379,17 @@ def _identifier_fix(hit, ids, declared) -> str:
     return fix
 
 
-def long_text_findings(file: str, frame: pd.DataFrame) -> list[Finding]:
-    """Text cells longer than MAX_TEXT_CHARS (free text does not belong in an analysis extract)."""
+def long_text_findings(file: str, frame: pd.DataFrame, text: TableText | None = None) -> list[Finding]:
+    """Text cells longer than MAX_TEXT_CHARS (free text does not belong in an analysis extract); ``text``, if
+    given, is the frame's :class:`TableText`, whose distinct values are measured instead of every cell."""
     findings = []
     source = source_rows(frame)
     for column in frame.columns:
         values = frame[column]
         if not pd.api.types.is_object_dtype(values):
             continue
-        lengths = text_lengths(values)
+        distinct = None if text is None else text(column)
+        lengths = text_lengths(values) if distinct is None else distinct_lengths(*distinct)
         for row in np.flatnonzero(lengths > MAX_TEXT_CHARS)[:MAX_FINDINGS_PER_RULE]:
             findings.append(
                 Finding(
@@ -384,6 +403,12 @@ def long_text_findings(file: str, frame: pd.DataFrame) -> list[Finding]:
                 )
             )
     return findings
+
+
+def distinct_lengths(codes: np.ndarray, uniques: np.ndarray) -> np.ndarray:
+    """:func:`text_lengths` of a text column from its distinct values (:func:`distinct_text`): each value is
+    measured once (code points, as ``len``) and broadcast back to the rows, 0 where missing."""
+    return broadcast(text_lengths(pd.Series(uniques, dtype=object)), codes, 0)
 
 
 def text_lengths(values: pd.Series) -> np.ndarray:

@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import indicator_name
-from regimewise.data.distinct import blank_text, broadcast, distinct_text
+from regimewise.data.distinct import FIND, blank_text, broadcast, distinct_text
 from regimewise.protocol.loading import ProtocolFile
 
 POLICIES = ("refuse", "drop", "carry_forward", "indicator")
@@ -36,9 +36,13 @@ def _missing_mask(values: pd.Series) -> np.ndarray:
     return missing | blank_mask(values)
 
 
-def blank_mask(values: pd.Series) -> np.ndarray:
-    """Cells holding only whitespace (a text column's distinct values are checked once each, all at once)."""
-    distinct = distinct_text(values)
+def blank_mask(values: pd.Series, distinct=FIND) -> np.ndarray:
+    """Cells holding only whitespace (a text column's distinct values are checked once each, all at once).
+
+    ``distinct``, when given, is the column's :func:`regimewise.data.distinct.distinct_text`, already found.
+    """
+    if distinct is FIND:
+        distinct = distinct_text(values)
     if distinct is not None:
         codes, uniques = distinct
         return broadcast(blank_text(uniques), codes, False)

@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 
 from regimewise.core.features import as_level_text
+from regimewise.data.distinct import TableText
 from regimewise.data.findings import (
     MAX_DAY,
     MAX_FINDINGS_PER_RULE,
@@ -31,10 +32,15 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
     source = source_rows(frame)
     ep, step = frame[cols.episode_id].astype(str), frame[cols.step].astype(np.int64)
     day = step if cols.day is None else frame[cols.day]  # the decision index never goes backwards
-    in_order = _in_episode_step_order(ep.to_numpy(), step.to_numpy())  # the usual case: no sort needed
-    order = np.arange(len(frame)) if in_order else np.lexsort((step.to_numpy(), ep.to_numpy()))
-    ep_s, step_s, day_s = ep.to_numpy()[order], step.to_numpy()[order], day.to_numpy(dtype=float)[order]
-    same = np.r_[False, ep_s[1:] == ep_s[:-1]]
+    ep_s, step_s, day_s = ep.to_numpy(), step.to_numpy(), day.to_numpy(dtype=float)
+    repeated = ep_s[1:] == ep_s[:-1]  # the same episode as the row before, in file order
+    in_order = _in_episode_step_order(ep_s, step_s, repeated)  # the usual case: no sort needed
+    order = np.arange(len(frame))
+    if not in_order:
+        order = np.lexsort((step_s, ep_s))
+        ep_s, step_s, day_s = ep_s[order], step_s[order], day_s[order]
+        repeated = ep_s[1:] == ep_s[:-1]
+    same = np.r_[False, repeated]
     duplicate = same & np.r_[False, step_s[1:] == step_s[:-1]]
     for i in np.flatnonzero(duplicate):
         findings.append(
@@ -76,7 +82,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
             )
         )
     if cols.patient_id is not None:
-        patient_s = frame[cols.patient_id].astype(str).to_numpy()[order]
+        patient_s = frame[cols.patient_id].astype(str).to_numpy()
+        patient_s = patient_s if in_order else patient_s[order]
         switched = same & np.r_[False, patient_s[1:] != patient_s[:-1]]  # a new patient id within an episode
         for episode in np.unique(ep_s[switched]):
             row = int(source[np.flatnonzero(ep.to_numpy() == str(episode))[0]])
@@ -95,8 +102,8 @@ def _sequence_findings(file: str, frame: pd.DataFrame, pf: ProtocolFile) -> list
 
 
 # ---------------------------------------------------------------------------------------------- entry points
-def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Finding]:
-    """All findings for a decisions table (empty list when it is clean)."""
+def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str, text: TableText | None = None) -> list[Finding]:
+    """All findings for a decisions table (empty list when it is clean); ``text``, if given, is the frame's."""
     rules = decision_rules(pf)
     missing = [r.column for r in rules if r.column not in frame.columns]
     if missing:
@@ -112,7 +119,7 @@ def check_decisions(pf: ProtocolFile, frame: pd.DataFrame, file: str) -> list[Fi
             )
             for c in missing
         ]
-    findings = field_findings(file, frame, rules)
+    findings = field_findings(file, frame, rules, text)
     if not findings:
         findings = _sequence_findings(file, frame, pf) + level_findings(pf, frame, file)
     return findings
@@ -234,12 +241,13 @@ def clean_decisions(pf: ProtocolFile, frame: pd.DataFrame) -> pd.DataFrame:
     return out.sort_values(["episode_id", "step"], kind="mergesort").reset_index(drop=True)
 
 
-def _in_episode_step_order(episode: np.ndarray, step: np.ndarray) -> bool:
-    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give."""
+def _in_episode_step_order(episode: np.ndarray, step: np.ndarray, same: np.ndarray | None = None) -> bool:
+    """Whether rows are strictly increasing in (episode id as text, step): the order sort_values would give.
+    ``same``, when the caller has it, is ``episode[1:] == episode[:-1]``."""
     if episode.size < 2:
         return True
     later = episode[1:] > episode[:-1]
-    same = episode[1:] == episode[:-1]
+    same = episode[1:] == episode[:-1] if same is None else same
     return bool(np.all(later | (same & (step[1:] > step[:-1]))))
 
 
@@ -258,9 +266,15 @@ def episode_rules(pf: ProtocolFile, frame: pd.DataFrame) -> list[FieldRule]:
 
 
 def check_episodes(
-    pf: ProtocolFile, frame: pd.DataFrame, file: str, decisions: pd.DataFrame, dropped_episodes: set[str]
+    pf: ProtocolFile,
+    frame: pd.DataFrame,
+    file: str,
+    decisions: pd.DataFrame,
+    dropped_episodes: set[str],
+    text: TableText | None = None,
 ) -> list[Finding]:
-    """Field rules of the episodes table, then referential integrity with the (clean) decisions table.
+    """Field rules of the episodes table, then referential integrity with the (clean) decisions table; ``text``,
+    if given, is the frame's :class:`regimewise.data.distinct.TableText`.
 
     Follow-up must reach the last decision day only for censored episodes: the event may be non-fatal, so an
     episode with an event can have decisions after it (see synthetic_cohort/README.md).
@@ -278,7 +292,7 @@ def check_episodes(
                 fix="add the episode identifier column",
             )
         ]
-    findings = field_findings(file, frame, episode_rules(pf, frame))
+    findings = field_findings(file, frame, episode_rules(pf, frame), text)
     if findings:
         return findings
     last = _episode_ends(decisions)
@@ -333,7 +347,7 @@ def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
         "episode appears twice",
         "one row per episode",
     )
-    for episode in sorted(set(last.index) - set(ids))[:MAX_FINDINGS_PER_RULE]:
+    for episode in absent_from(last.index, ids)[:MAX_FINDINGS_PER_RULE]:
         findings.append(
             Finding(
                 file=file,
@@ -359,15 +373,35 @@ def _episode_links(file, frame, cols, last, dropped_episodes) -> list[Finding]:
     return findings
 
 
+def absent_from(index: pd.Index, ids: pd.Series) -> list:
+    """The entries of ``index`` that are not among ``ids``, sorted (``sorted(set(index) - set(ids))``): one
+    hash lookup per entry instead of two sets of Python objects."""
+    return sorted(set(index[~index.isin(ids)]))
+
+
+def episode_ends_of(frame: pd.DataFrame, cols, last: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """The decisions' patient (object) and last day (float, NaN for an episode without decisions) of each row of
+    the episodes table ``frame``, from :func:`_episode_ends`'s ``last``.
+
+    In the usual case the table lists the decisions' episodes in their order: ``last`` is then read as it is,
+    without the join by episode id (a hash of every id) that any other table needs."""
+    ids = frame[cols.episode_id].astype(str).to_numpy()
+    joinable = "_patient" not in frame.columns and "last_day" not in frame.columns  # else the join refuses them
+    if joinable and len(ids) == len(last) and np.array_equal(ids, last.index.to_numpy()):
+        return last["_patient"].to_numpy(), last["last_day"].to_numpy(dtype=float)
+    joined = frame.assign(_id=ids).join(last, on="_id")
+    return joined["_patient"].to_numpy(), joined["last_day"].to_numpy(dtype=float)
+
+
 def _episode_consistency(file, frame, cols, last) -> list[Finding]:
     """The same patient in both tables, and censored follow-up reaching the last decision (when the records have
     real days; the decision index standing in for the day says nothing about follow-up)."""
     source = source_rows(frame)
-    joined = frame.assign(_id=frame[cols.episode_id].astype(str)).join(last, on="_id")
-    present = joined["last_day"].notna().to_numpy()
+    patient, last_day = episode_ends_of(frame, cols, last)
+    present = ~np.isnan(last_day)
     findings = []
     if cols.patient_id is not None and cols.patient_id in frame.columns:
-        differs = present & (joined[cols.patient_id].astype(str) != joined["_patient"]).to_numpy()
+        differs = present & (frame[cols.patient_id].astype(str).to_numpy() != patient)
         findings += _rows_found(
             file,
             source,
@@ -379,9 +413,8 @@ def _episode_consistency(file, frame, cols, last) -> list[Finding]:
             "give the episode the same patient id in both tables",
         )
     if cols.day is not None and cols.followup in frame.columns and cols.event in frame.columns:
-        follow = pd.to_numeric(joined[cols.followup]).to_numpy(dtype=float)
-        censored = pd.to_numeric(joined[cols.event]).to_numpy(dtype=float) == 0
-        last_day = joined["last_day"].to_numpy(dtype=float)
+        follow = pd.to_numeric(frame[cols.followup]).to_numpy(dtype=float)
+        censored = pd.to_numeric(frame[cols.event]).to_numpy(dtype=float) == 0
         short = np.flatnonzero(present & censored & (follow < last_day))
         findings += _rows_found(
             file,
@@ -424,8 +457,15 @@ def clean_episodes(
     frame = frame.drop(columns=[c for c in ("patient_id", cols.patient_id) if c in frame.columns])
     text = [c for c in frame.columns if c != "episode_id" and not pd.api.types.is_numeric_dtype(frame[c])]
     frame = frame.drop(columns=text)  # free text never travels into the results
-    merged = counts.merge(frame, on="episode_id", how="left", validate="one_to_one")
+    merged = counts.merge(frame, on="episode_id", how="left", validate=one_to_one(counts, frame, "episode_id"))
     return merged.sort_values("episode_id", kind="mergesort").reset_index(drop=True)
+
+
+def one_to_one(left: pd.DataFrame, right: pd.DataFrame, key: str) -> str | None:
+    """``merge``'s ``validate`` for a join that must be one-to-one: None when both key columns are unique (checked
+    here, at less cost than merge's own check), else ``"one_to_one"`` so that merge raises its error."""
+    unique = left[key].is_unique and right[key].is_unique
+    return None if unique else "one_to_one"
 
 
 def episodes_table(pf: ProtocolFile, decisions: pd.DataFrame) -> pd.DataFrame:

@@ -21,8 +21,10 @@ from collections import Counter
 from dataclasses import dataclass, replace
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
+from regimewise.data.distinct import TableText
 from regimewise.data.findings import (
     MAX_FINDINGS_PER_RULE,
     Finding,
@@ -66,18 +68,22 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
     name = Path(path).name
     pf, defaulted = default_columns(pf, raw)
     p = pf.protocol
-    findings = identifier_findings(name, raw, pf) + long_text_findings(name, raw)
+    text = TableText(raw)  # each text column factorized once for the rules below
+    findings = identifier_findings(name, raw, pf, text) + long_text_findings(name, raw, text)
     if episodes_raw is not None:
         ep_name = pf.episodes_path.name
-        findings += identifier_findings(ep_name, episodes_raw, pf) + long_text_findings(ep_name, episodes_raw)
+        ep_text = TableText(episodes_raw)
+        findings += identifier_findings(ep_name, episodes_raw, pf, ep_text)
+        findings += long_text_findings(ep_name, episodes_raw, ep_text)
     if findings:
         return findings, None
     frame, missing_actions = apply_missing_policy(pf, raw)
     findings = (
         survival_day_findings(pf, name, defaulted)
         or policy_findings(pf, name, frame, missing_actions, len(raw))
-        or check_decisions(pf, frame, name)
+        or check_decisions(pf, frame, name, text if frame is raw else None)  # the policy changed no row
     )
+    del text  # its codes (one integer per row and text column) are not held while the clean tables are built
     if findings:
         return findings, None
     decisions = clean_decisions(pf, frame)
@@ -87,7 +93,7 @@ def collect_findings(pf: ProtocolFile) -> tuple[list[Finding], ValidationResult 
         set() if len(decisions) == len(raw) else set(raw[cols.episode_id].astype(str)) - set(decisions["episode_id"])
     )
     if episodes_raw is not None:
-        findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped)
+        findings = check_episodes(pf, episodes_raw, pf.episodes_path.name, decisions, dropped, ep_text)
         if findings:
             return findings, None
     episodes = clean_episodes(pf, episodes_raw, decisions, dropped)
@@ -290,9 +296,9 @@ def summarise(
         "rows_dropped_missing": int(len(raw) - len(decisions)),
         "episodes_dropped_missing": int(episodes_dropped),
         "episodes": int(starts.size),
-        "patients": int(decisions["patient_id"].nunique()),
+        "patients": int(decisions["patient_id"].iloc[starts].nunique()),  # one patient per episode (checked)
         "episode_length": {str(k): int(v) for k, v in sorted(Counter(lengths.tolist()).items())},
-        "decisions_by_step": {str(k): int(v) for k, v in decisions.groupby("step").size().items()},
+        "decisions_by_step": steps_present(decisions["step"].to_numpy()),
         "actions": {a: int(actions.get(a, 0)) for a in p.action_labels},
         "findings_by_rule": {rule: 0 for rule in RULES_CHECKED},
         "missing_data": missing_actions or {},
@@ -300,6 +306,13 @@ def summarise(
         "extra_columns_ignored": sorted(set(map(str, raw.columns)) - known),
         **({"categorical_levels": levels} if levels else {}),
     }
+
+
+def steps_present(step: np.ndarray) -> dict[str, int]:
+    """Decisions at each step present, in step order (``groupby("step").size()`` of clean steps, 0 or more, by
+    counting instead of grouping)."""
+    counts = np.bincount(step)
+    return {str(k): int(counts[k]) for k in np.flatnonzero(counts)}
 
 
 RULES_CHECKED = (

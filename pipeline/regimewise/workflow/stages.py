@@ -392,19 +392,18 @@ def write_recommendations(path, p, frame, chosen, evaluated, evaluated_q, q, per
     ``evaluated_q_<action>``: the gains of the override strategies), each side-by-side regime's action, the learned
     regime's Q-values and the permitted actions.
 
-    Built here and released on return: its label columns are Python strings, several times the size of the
-    codes, and the stage's summaries do not need them. Each label cell points at one of the K label strings (an
-    object array), not at a string of its own."""
-    labels = np.asarray(p.action_labels, dtype=object)
+    The label columns are held as action codes and written as their labels' text
+    (:func:`regimewise.io.labelled_table`): no Python string per row and label column is built."""
     out = frame[["episode_id", "step", "action"]].copy()
-    out["recommended"] = labels[chosen[list(chosen)[-1]]]
-    out["evaluated"] = labels[evaluated]  # what the evaluation scores: learned without the row's patient
+    out["recommended"] = chosen[list(chosen)[-1]]
+    out["evaluated"] = evaluated  # what the evaluation scores: learned without the row's patient
     out[evaluated_q_columns(p.action_labels)] = evaluated_q
     for name, codes in chosen.items():
-        out[f"recommended_{name}"] = labels[codes]
+        out[f"recommended_{name}"] = codes
     out[[f"q_{a}" for a in p.action_labels]] = q
     out[[f"permitted_{a}" for a in p.action_labels]] = permitted
-    write_parquet(path, out, caution=RECOMMENDATION_CAUTION)
+    coded = ["recommended", "evaluated", *(f"recommended_{name}" for name in chosen)]
+    write_parquet(path, out, caution=RECOMMENDATION_CAUTION, labels=dict.fromkeys(coded, p.action_labels))
 
 
 def no_regime_summary(p) -> dict:
