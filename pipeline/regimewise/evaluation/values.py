@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import functools
 import itertools
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass, replace
 
@@ -235,24 +236,54 @@ def regime_targets(
             yield {"name": c.name, "label": c.label, "target": deterministic(codes), "comparator": c}
     if not learned:
         return
+    inputs = StrategyInputs(recommended, behaviour_proba, learned_q) if by_rows else None  # shared by the strategies
     for s in protocol_strategies(protocol.strategies):  # built inline: no local name keeps the last one alive
         yield {
             "name": s.name,
             "label": s.label,
-            "target": _strategy_by_rows(s, recommended, behaviour_proba, learned_q)
+            "target": _strategy_by_rows(s, inputs)
             if by_rows
             else strategy_proba(s, recommended, behaviour_proba, learned_q),
             "strategy": s,
         }
 
 
-def _strategy_by_rows(s, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
-    """Strategy ``s`` as a function of rows that returns its (m, K) probabilities there. It is built on no rows
-    first, so that a strategy that cannot be built (override_gain without Q-values) stops here, as it would whole."""
+class StrategyInputs:
+    """What the strategies are built from (the learned regime's recommendations, usual care's probabilities and the
+    cross-fitted Q-values), read at the rows asked for and shared by every strategy of a list.
+
+    The outcome models ask each strategy of a pass in turn for the same rows (a step's decisions, spread over the
+    whole table: :func:`regimewise.regime.qmodels.evaluate_policies`), and gathering those rows took longer than
+    building the probabilities from them. So the rows last asked for are remembered with what was gathered there,
+    and given again while the same rows object (not merely equal positions) is asked for. Each thread remembers
+    its own (the folds' passes may run in threads). What is given is never written by the strategies, and the rows
+    are gathered by the same indexing as before, so every strategy sees the same numbers in the same layout.
+    """
+
+    def __init__(self, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
+        self.recommended = recommended
+        self.behaviour_proba = behaviour_proba
+        self.learned_q = learned_q
+        self._last = threading.local()
+
+    def at(self, rows) -> tuple:
+        """(recommended, usual care's probabilities, Q-values or None) at ``rows`` (positions, a mask or a slice)."""
+        last = getattr(self._last, "entry", None)
+        if last is not None and last[0] is rows:
+            return last[1]
+        q = None if self.learned_q is None else self.learned_q[rows]
+        gathered = (self.recommended[rows], self.behaviour_proba[rows], q)
+        self._last.entry = (rows, gathered)
+        return gathered
+
+
+def _strategy_by_rows(s, inputs: StrategyInputs):
+    """Strategy ``s`` as a function of rows that returns its (m, K) probabilities there, built from ``inputs`` at
+    those rows. It is built on no rows first, so that a strategy that cannot be built (override_gain without
+    Q-values) stops here, as it would whole."""
 
     def rows_proba(rows):
-        q = None if learned_q is None else learned_q[rows]
-        return strategy_proba(s, recommended[rows], behaviour_proba[rows], q)
+        return strategy_proba(s, *inputs.at(rows))
 
     rows_proba(slice(0, 0))
     return rows_proba
