@@ -318,7 +318,13 @@ def named_strategy_words(protocol: Protocol, name: str) -> str:
     return f"the named strategy '{named_strategy_label(protocol, name)}'"
 
 
-def evaluate_regime(
+def evaluate_regime(logged: LoggedDecisions, target, protocol: Protocol, deterministic: bool, *args, **kwargs) -> dict:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict: the
+    estimates of :func:`regime_estimates`, which takes the same arguments."""
+    return regime_estimates(logged, target, protocol, deterministic, *args, **kwargs)[0]
+
+
+def regime_estimates(
     logged: LoggedDecisions,
     target: np.ndarray,
     protocol: Protocol,
@@ -327,8 +333,11 @@ def evaluate_regime(
     folds: np.ndarray | None = None,
     fitted=None,
     records_regime: bool = False,
-) -> dict:
-    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict.
+    changed: bool = False,
+) -> tuple[dict, float | None]:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict, and with
+    ``changed`` the regime's share of decisions changed from usual care (:func:`row_mean` of
+    :func:`regimewise.evaluation.strategies.changed_by_row`; else None).
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
@@ -340,8 +349,9 @@ def evaluate_regime(
     ``records_regime``: the regime is usual care, the one the records follow
     (:func:`regimewise.evaluation.verdicts.verdict`). ``target``: the regime's (n, K) probabilities, its (n,)
     action codes, or a function of the rows (:func:`regimewise.regime.qmodels.target_rows`); its (n, K)
-    probabilities are built only for the importance weights, and a block of rows at a time for its unsupported
-    share, so they are not held while the estimators run.
+    probabilities are built once, for the importance weights and the shares (unsupported, changed), read a block of
+    rows at a time as :func:`row_mean` would build them (the same numbers), and are not held while the estimators
+    run.
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
@@ -354,13 +364,18 @@ def evaluate_regime(
             raise fitted
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
-    weights = importance_weights(  # the regime's (n, K) probabilities live for this call only
+    proba = whole_target(target, logged.behaviour_proba)  # the regime's (n, K) probabilities, until the shares
+    weights = importance_weights(
         *logged.weighting_table(),
-        whole_target(target, logged.behaviour_proba),
+        proba,
         horizon=protocol.horizon,
         action_labels=protocol.action_labels,
         layout_checked=logged.layout_checked,
     )
+    threshold = protocol.constraints.support_threshold
+    share = row_mean(proba, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
+    share_changed = row_mean(proba, logged.behaviour_proba, changed_by_row) if changed else None
+    del proba
     results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
     del weights
     for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
@@ -372,8 +387,6 @@ def evaluate_regime(
         results["PDWIS"], estimator=ESTIMATORS["fqe"].label, value=fqe_value, se=float("nan")
     )
     floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
-    threshold = protocol.constraints.support_threshold
-    share = row_mean(target, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
     out = {}
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATORS[name].label].to_dict() | {"estimator": name}  # one spelling: the protocol's
@@ -391,7 +404,7 @@ def evaluate_regime(
             else None,
         )
         out[name] = estimate
-    return out
+    return out, share_changed
 
 
 def evaluate_target(
@@ -408,19 +421,17 @@ def evaluate_target(
     folds = learned_folds if name == "learned" or strategy is not None else None
     deterministic = name != "usual_care" and strategy is None
     target = t["target"]  # as regime_targets gives it: (n, K), action codes or a function of the rows
-    out = {
-        "name": name,
-        "label": t["label"],
-        "estimates": evaluate_regime(
-            logged, target, protocol, deterministic, strict, folds, fitted, records_regime=name == "usual_care"
-        ),
-    }
+    changed = strategy is not None or "comparator" in t
+    estimates, share_changed = regime_estimates(
+        logged, target, protocol, deterministic, strict, folds, fitted, name == "usual_care", changed
+    )
+    out = {"name": name, "label": t["label"], "estimates": estimates}
     if strategy is not None:
-        out.update(strategy.to_dict(), share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
+        out.update(strategy.to_dict(), share_changed=share_changed)
     if "comparator" in t:
         c = t["comparator"]
         out.update(comparator=True, words=c.words(protocol.states), source=c.source)
-        out.update(share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
+        out.update(share_changed=share_changed)
     return out
 
 
