@@ -19,6 +19,7 @@ from regimewise.core.arrays import (
     check_layout,
     check_proba,
     next_row_index,
+    step_order,
 )
 from regimewise.core.terms import SEPARATE
 from regimewise.errors import StatisticalWarning, UserInputError
@@ -284,7 +285,7 @@ def evaluate_policies(
     n, n_regimes = step.shape[0], len(targets)
     # rows regrouped by step (stable: episode order kept within a step); the rows each least-squares fit sees,
     # and their order, are those of the decision table
-    order = np.argsort(step, kind="stable")
+    order = step_order(step, horizon)
     bounds = np.concatenate([[0], np.cumsum(np.bincount(step, minlength=horizon)[:horizon])])  # step t: [b_t, b_t+1)
     X = X if hasattr(X, "shape") else np.asarray(X, dtype=float)  # an array, or rows computed when asked for
     source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X and of the targets behind each
