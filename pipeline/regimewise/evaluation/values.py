@@ -22,7 +22,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from regimewise.core.arrays import check_layout
+from regimewise.core.arrays import check_finite, check_layout, check_proba
 from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import QFeatures, StateArrays, StateScaler, action_codes, episode_codes
 from regimewise.core.terms import SEPARATE, ActionSlopes
@@ -96,7 +96,8 @@ class LoggedDecisions:
     patient: np.ndarray
     behaviour_proba: np.ndarray
     slopes: ActionSlopes = SEPARATE  # how the outcome models' coefficients vary with the action
-    layout_checked: bool = False  # step, action and episode come from check_layout (so every weighting skips it)
+    # step, action and episode come from check_layout, behaviour_proba from check_proba (every weighting skips them)
+    layout_checked: bool = False
 
     @classmethod
     def from_frame(
@@ -113,14 +114,19 @@ class LoggedDecisions:
             protocol.horizon,
             len(protocol.actions),
         )
+        # the rewards and usual care's probabilities too, checked in the order of every weighting (the same errors)
+        reward = check_finite(frame["reward"].to_numpy(dtype=float), "reward", 1)
+        proba = np.asarray(behaviour_proba, dtype=float)
+        if proba.ndim == 2:  # else every weighting stops at its shape before the checks it skips
+            proba = check_proba(proba, len(frame), proba.shape[1], "behaviour_proba")
         return cls(
             X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
             step=step,
             action=action,
-            reward=frame["reward"].to_numpy(dtype=float),
+            reward=reward,
             episode=episode,
             patient=pd.factorize(frame["patient_id"], sort=False)[0],
-            behaviour_proba=behaviour_proba,
+            behaviour_proba=proba,
             slopes=features.action_slopes(protocol),
             layout_checked=True,
         )
