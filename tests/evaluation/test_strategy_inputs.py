@@ -7,6 +7,7 @@ as the reference, on small invented data."""
 from __future__ import annotations
 
 import threading
+import weakref
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -99,3 +100,15 @@ def test_threads_each_read_their_own_rows():
         for rows, out in pool.map(fold_pass, folds):
             for s, got in out:
                 assert same(got, replaced_rows_proba(s, recommended, proba, learned_q, rows)), s.name
+
+
+def test_what_was_gathered_is_let_go_with_the_rows():
+    recommended, proba, learned_q = inputs()
+    shared = StrategyInputs(recommended, proba, learned_q)
+    rows = np.arange(0, 3000, 11)
+    gathered = weakref.ref(shared.at(rows)[1])
+    assert gathered() is not None and shared.at(rows)[1] is gathered()
+    del rows
+    assert gathered() is None
+    block = slice(0, 500)
+    assert shared.at(block)[1].base is proba  # a slice's views, not remembered

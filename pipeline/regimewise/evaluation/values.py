@@ -16,6 +16,7 @@ from __future__ import annotations
 import functools
 import itertools
 import threading
+import weakref
 from collections.abc import Iterator
 from dataclasses import dataclass, replace
 
@@ -261,9 +262,12 @@ class StrategyInputs:
     The outcome models ask each strategy of a pass in turn for the same rows (a step's decisions, spread over the
     whole table: :func:`regimewise.regime.qmodels.evaluate_policies`), and gathering those rows took longer than
     building the probabilities from them. So the rows last asked for are remembered with what was gathered there,
-    and given again while the same rows object (not merely equal positions) is asked for. Each thread remembers
-    its own (the folds' passes may run in threads). What is given is never written by the strategies, and the rows
-    are gathered by the same indexing as before, so every strategy sees the same numbers in the same layout.
+    and given again while the same rows object (not merely equal positions) is asked for. What was gathered is let
+    go as soon as that rows object is (the outcome models let go of a step's rows at the end of the step), so it
+    does not stay in the allocator's way of later arrays; a slice is not remembered (it gives views). Each thread
+    remembers its own (the folds' passes may run in threads). What is given is never written by the strategies,
+    and the rows are gathered by the same indexing as before, so every strategy sees the same numbers in the same
+    layout.
     """
 
     def __init__(self, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
@@ -274,13 +278,23 @@ class StrategyInputs:
 
     def at(self, rows) -> tuple:
         """(recommended, usual care's probabilities, Q-values or None) at ``rows`` (positions, a mask or a slice)."""
-        last = getattr(self._last, "entry", None)
-        if last is not None and last[0] is rows:
+        local = self._last
+        last = getattr(local, "entry", None)
+        if last is not None and last[0]() is rows:
             return last[1]
+        local.entry = None  # what was gathered for other rows is let go first
         q = None if self.learned_q is None else self.learned_q[rows]
         gathered = (self.recommended[rows], self.behaviour_proba[rows], q)
-        self._last.entry = (rows, gathered)
+        if isinstance(rows, np.ndarray):
+            local.entry = (weakref.ref(rows, functools.partial(_forget, local)), gathered)
         return gathered
+
+
+def _forget(local: threading.local, ref: weakref.ref) -> None:
+    """Let go of what :meth:`StrategyInputs.at` remembers for rows that are gone (``ref``: their reference)."""
+    entry = getattr(local, "entry", None)
+    if entry is not None and entry[0] is ref:
+        local.entry = None
 
 
 def _strategy_by_rows(s, inputs: StrategyInputs):

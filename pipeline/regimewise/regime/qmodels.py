@@ -326,6 +326,7 @@ def evaluate_policies(
                 value[r][here] = _regime_average(q, targets[r], positions, action_labels)
             except UserInputError as err:
                 failed[r] = err
+        positions = block = None  # this step's rows let go, and with them what a target kept for them
     return [(taken[r], value[r]) if failed[r] is None else failed[r] for r in range(n_regimes)]
 
 
