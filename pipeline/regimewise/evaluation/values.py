@@ -384,7 +384,12 @@ def regime_estimates(
             raise fitted
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
-    proba = whole_target(target, logged.behaviour_proba)  # the regime's (n, K) probabilities, until the shares
+    # the regime's (n, K) probabilities, for its shares and then its weights (the shares first: their column of
+    # terms is not held beside the weights)
+    proba = whole_target(target, logged.behaviour_proba)
+    threshold = protocol.constraints.support_threshold
+    share = row_mean(proba, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
+    share_changed = row_mean(proba, logged.behaviour_proba, changed_by_row) if changed else None
     weights = importance_weights(
         *logged.weighting_table(),
         proba,
@@ -392,9 +397,6 @@ def regime_estimates(
         action_labels=protocol.action_labels,
         layout_checked=logged.layout_checked,
     )
-    threshold = protocol.constraints.support_threshold
-    share = row_mean(proba, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
-    share_changed = row_mean(proba, logged.behaviour_proba, changed_by_row) if changed else None
     del proba
     results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
     del weights
