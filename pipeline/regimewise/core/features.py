@@ -366,12 +366,15 @@ class KeptPowers:
         fresh = np.ones(len(positions), dtype=bool)
         fresh[read] = False
         out = []
+        every = 0 < read.size == len(positions)  # every row kept (the slots are then the positions)
         for i, k in enumerate(degrees):
             if read.size:
                 values = np.empty_like(powered)  # the layout of powered**k
-                if read.size < len(positions):
+                if every:  # the kept rows taken whole at once (a far faster gather), then laid out
+                    values[...] = np.take(self.store[i], slots, axis=0)
+                else:
                     values[fresh] = powered[fresh] ** k
-                values[read] = self.store[i, slots[known]]
+                    values[read] = self.store[i, slots[known]]
             else:  # nothing kept yet (or past the capacity): computed as without a store
                 values = powered**k
             if write.size:

@@ -166,7 +166,8 @@ def importance_weights(
     action_labels : sequence of str, optional
         The protocol's label of each action code, used to name actions in errors.
     layout_checked : bool, default False
-        step, action and episode are what :func:`regimewise.core.arrays.check_layout` returned for them (as a
+        step, action and episode are what :func:`regimewise.core.arrays.check_layout` returned for them, and
+        behaviour_proba what :func:`regimewise.core.arrays.check_proba` returned for it on these decisions (as a
         caller that weights many regimes on one table checks it once): used as they are, not checked and copied
         again for every regime.
 
@@ -191,7 +192,8 @@ def importance_weights(
     reward = check_finite(reward, "reward", 1)
     if reward.shape[0] != n:
         raise UserInputError(f"reward has {reward.shape[0]} values for {n} decisions; pass one per decision.")
-    behaviour_proba = check_proba(behaviour_proba, n, n_actions, "behaviour_proba")
+    if not layout_checked:
+        behaviour_proba = check_proba(behaviour_proba, n, n_actions, "behaviour_proba")
     target_proba = check_proba(target_proba, n, n_actions, "target_proba")
     shape = (episode[-1] + 1, horizon)
     ratio = np.ones(shape)

@@ -9,6 +9,7 @@ import functools
 
 import numpy as np
 
+from regimewise.core.arrays import dense_codes
 from regimewise.core.concurrency import run_concurrently
 from regimewise.errors import UserInputError
 from regimewise.estimators import ESTIMATORS
@@ -80,7 +81,7 @@ def _fold_models(logged, targets: list, protocol: Protocol, rows: np.ndarray | s
         logged.step[rows],
         logged.action[rows],
         logged.reward[rows],
-        logged.episode if whole else np.unique(logged.episode[rows], return_inverse=True)[1],
+        logged.episode if whole else dense_codes(logged.episode[rows]),
         targets,
         horizon=protocol.horizon,
         n_actions=len(protocol.actions),

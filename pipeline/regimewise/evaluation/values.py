@@ -15,13 +15,15 @@ from __future__ import annotations
 
 import functools
 import itertools
+import threading
+import weakref
 from collections.abc import Iterator
 from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
-from regimewise.core.arrays import check_layout
+from regimewise.core.arrays import check_finite, check_layout, check_proba
 from regimewise.core.concurrency import run_concurrently
 from regimewise.core.features import QFeatures, StateArrays, StateScaler, action_codes, episode_codes
 from regimewise.core.terms import SEPARATE, ActionSlopes
@@ -95,7 +97,8 @@ class LoggedDecisions:
     patient: np.ndarray
     behaviour_proba: np.ndarray
     slopes: ActionSlopes = SEPARATE  # how the outcome models' coefficients vary with the action
-    layout_checked: bool = False  # step, action and episode come from check_layout (so every weighting skips it)
+    # step, action and episode come from check_layout, behaviour_proba from check_proba (every weighting skips them)
+    layout_checked: bool = False
 
     @classmethod
     def from_frame(
@@ -112,14 +115,19 @@ class LoggedDecisions:
             protocol.horizon,
             len(protocol.actions),
         )
+        # the rewards and usual care's probabilities too, checked in the order of every weighting (the same errors)
+        reward = check_finite(frame["reward"].to_numpy(dtype=float), "reward", 1)
+        proba = np.asarray(behaviour_proba, dtype=float)
+        if proba.ndim == 2:  # else every weighting stops at its shape before the checks it skips
+            proba = check_proba(proba, len(frame), proba.shape[1], "behaviour_proba")
         return cls(
             X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
             step=step,
             action=action,
-            reward=frame["reward"].to_numpy(dtype=float),
+            reward=reward,
             episode=episode,
             patient=pd.factorize(frame["patient_id"], sort=False)[0],
-            behaviour_proba=behaviour_proba,
+            behaviour_proba=proba,
             slopes=features.action_slopes(protocol),
             layout_checked=True,
         )
@@ -235,24 +243,67 @@ def regime_targets(
             yield {"name": c.name, "label": c.label, "target": deterministic(codes), "comparator": c}
     if not learned:
         return
+    inputs = StrategyInputs(recommended, behaviour_proba, learned_q) if by_rows else None  # shared by the strategies
     for s in protocol_strategies(protocol.strategies):  # built inline: no local name keeps the last one alive
         yield {
             "name": s.name,
             "label": s.label,
-            "target": _strategy_by_rows(s, recommended, behaviour_proba, learned_q)
+            "target": _strategy_by_rows(s, inputs)
             if by_rows
             else strategy_proba(s, recommended, behaviour_proba, learned_q),
             "strategy": s,
         }
 
 
-def _strategy_by_rows(s, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
-    """Strategy ``s`` as a function of rows that returns its (m, K) probabilities there. It is built on no rows
-    first, so that a strategy that cannot be built (override_gain without Q-values) stops here, as it would whole."""
+class StrategyInputs:
+    """What the strategies are built from (the learned regime's recommendations, usual care's probabilities and the
+    cross-fitted Q-values), read at the rows asked for and shared by every strategy of a list.
+
+    The outcome models ask each strategy of a pass in turn for the same rows (a step's decisions, spread over the
+    whole table: :func:`regimewise.regime.qmodels.evaluate_policies`), and gathering those rows took longer than
+    building the probabilities from them. So the rows last asked for are remembered with what was gathered there,
+    and given again while the same rows object (not merely equal positions) is asked for. What was gathered is let
+    go as soon as that rows object is (the outcome models let go of a step's rows at the end of the step), so it
+    does not stay in the allocator's way of later arrays; a slice is not remembered (it gives views). Each thread
+    remembers its own (the folds' passes may run in threads). What is given is never written by the strategies,
+    and the rows are gathered by the same indexing as before, so every strategy sees the same numbers in the same
+    layout.
+    """
+
+    def __init__(self, recommended: np.ndarray, behaviour_proba: np.ndarray, learned_q: np.ndarray | None):
+        self.recommended = recommended
+        self.behaviour_proba = behaviour_proba
+        self.learned_q = learned_q
+        self._last = threading.local()
+
+    def at(self, rows) -> tuple:
+        """(recommended, usual care's probabilities, Q-values or None) at ``rows`` (positions, a mask or a slice)."""
+        local = self._last
+        last = getattr(local, "entry", None)
+        if last is not None and last[0]() is rows:
+            return last[1]
+        local.entry = None  # what was gathered for other rows is let go first
+        q = None if self.learned_q is None else self.learned_q[rows]
+        gathered = (self.recommended[rows], self.behaviour_proba[rows], q)
+        if isinstance(rows, np.ndarray):
+            local.entry = (weakref.ref(rows, functools.partial(_forget, local)), gathered)
+        return gathered
+
+
+def _forget(local: threading.local, ref: weakref.ref) -> None:
+    """Let go of what :meth:`StrategyInputs.at` remembers for rows that are gone (``ref``: their reference)."""
+    entry = getattr(local, "entry", None)
+    if entry is not None and entry[0] is ref:
+        local.entry = None
+
+
+def _strategy_by_rows(s, inputs: StrategyInputs):
+    """Strategy ``s`` as a function of rows that returns its (m, K) probabilities there, built from ``inputs`` at
+    those rows. It is built on no rows first, so that a strategy that cannot be built (override_gain without
+    Q-values) stops here, as it would whole."""
 
     def rows_proba(rows):
-        q = None if learned_q is None else learned_q[rows]
-        return strategy_proba(s, recommended[rows], behaviour_proba[rows], q)
+        return strategy_proba(s, *inputs.at(rows))
 
     rows_proba(slice(0, 0))
     return rows_proba
@@ -287,7 +338,13 @@ def named_strategy_words(protocol: Protocol, name: str) -> str:
     return f"the named strategy '{named_strategy_label(protocol, name)}'"
 
 
-def evaluate_regime(
+def evaluate_regime(logged: LoggedDecisions, target, protocol: Protocol, deterministic: bool, *args, **kwargs) -> dict:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict: the
+    estimates of :func:`regime_estimates`, which takes the same arguments."""
+    return regime_estimates(logged, target, protocol, deterministic, *args, **kwargs)[0]
+
+
+def regime_estimates(
     logged: LoggedDecisions,
     target: np.ndarray,
     protocol: Protocol,
@@ -296,8 +353,11 @@ def evaluate_regime(
     folds: np.ndarray | None = None,
     fitted=None,
     records_regime: bool = False,
-) -> dict:
-    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict.
+    changed: bool = False,
+) -> tuple[dict, float | None]:
+    """The protocol's estimators for one regime, as JSON-ready dicts with a low-ESS flag and a verdict, and with
+    ``changed`` the regime's share of decisions changed from usual care (:func:`row_mean` of
+    :func:`regimewise.evaluation.strategies.changed_by_row`; else None).
 
     ``n_following`` (episodes whose every action the regime takes with probability 1) is reported for
     deterministic regimes only; it is null for a stochastic regime such as usual care. With ``strict=False``
@@ -309,8 +369,9 @@ def evaluate_regime(
     ``records_regime``: the regime is usual care, the one the records follow
     (:func:`regimewise.evaluation.verdicts.verdict`). ``target``: the regime's (n, K) probabilities, its (n,)
     action codes, or a function of the rows (:func:`regimewise.regime.qmodels.target_rows`); its (n, K)
-    probabilities are built only for the importance weights, and a block of rows at a time for its unsupported
-    share, so they are not held while the estimators run.
+    probabilities are built once, for the importance weights and the shares (unsupported, changed), read a block of
+    rows at a time as :func:`row_mean` would build them (the same numbers), and are not held while the estimators
+    run.
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
@@ -323,13 +384,20 @@ def evaluate_regime(
             raise fitted
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
-    weights = importance_weights(  # the regime's (n, K) probabilities live for this call only
+    # the regime's (n, K) probabilities, for its shares and then its weights (the shares first: their column of
+    # terms is not held beside the weights)
+    proba = whole_target(target, logged.behaviour_proba)
+    threshold = protocol.constraints.support_threshold
+    share = row_mean(proba, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
+    share_changed = row_mean(proba, logged.behaviour_proba, changed_by_row) if changed else None
+    weights = importance_weights(
         *logged.weighting_table(),
-        whole_target(target, logged.behaviour_proba),
+        proba,
         horizon=protocol.horizon,
         action_labels=protocol.action_labels,
         layout_checked=logged.layout_checked,
     )
+    del proba
     results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
     del weights
     for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
@@ -341,8 +409,6 @@ def evaluate_regime(
         results["PDWIS"], estimator=ESTIMATORS["fqe"].label, value=fqe_value, se=float("nan")
     )
     floor = minimum_reliable_ess(logged.n_episodes, protocol.evaluation)
-    threshold = protocol.constraints.support_threshold
-    share = row_mean(target, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
     out = {}
     for name in protocol.evaluation.estimators:
         estimate = results[ESTIMATORS[name].label].to_dict() | {"estimator": name}  # one spelling: the protocol's
@@ -360,7 +426,7 @@ def evaluate_regime(
             else None,
         )
         out[name] = estimate
-    return out
+    return out, share_changed
 
 
 def evaluate_target(
@@ -377,19 +443,17 @@ def evaluate_target(
     folds = learned_folds if name == "learned" or strategy is not None else None
     deterministic = name != "usual_care" and strategy is None
     target = t["target"]  # as regime_targets gives it: (n, K), action codes or a function of the rows
-    out = {
-        "name": name,
-        "label": t["label"],
-        "estimates": evaluate_regime(
-            logged, target, protocol, deterministic, strict, folds, fitted, records_regime=name == "usual_care"
-        ),
-    }
+    changed = strategy is not None or "comparator" in t
+    estimates, share_changed = regime_estimates(
+        logged, target, protocol, deterministic, strict, folds, fitted, name == "usual_care", changed
+    )
+    out = {"name": name, "label": t["label"], "estimates": estimates}
     if strategy is not None:
-        out.update(strategy.to_dict(), share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
+        out.update(strategy.to_dict(), share_changed=share_changed)
     if "comparator" in t:
         c = t["comparator"]
         out.update(comparator=True, words=c.words(protocol.states), source=c.source)
-        out.update(share_changed=row_mean(target, logged.behaviour_proba, changed_by_row))
+        out.update(share_changed=share_changed)
     return out
 
 

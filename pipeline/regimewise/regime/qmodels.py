@@ -19,6 +19,7 @@ from regimewise.core.arrays import (
     check_layout,
     check_proba,
     next_row_index,
+    step_order,
 )
 from regimewise.core.terms import SEPARATE
 from regimewise.errors import StatisticalWarning, UserInputError
@@ -284,7 +285,7 @@ def evaluate_policies(
     n, n_regimes = step.shape[0], len(targets)
     # rows regrouped by step (stable: episode order kept within a step); the rows each least-squares fit sees,
     # and their order, are those of the decision table
-    order = np.argsort(step, kind="stable")
+    order = step_order(step, horizon)
     bounds = np.concatenate([[0], np.cumsum(np.bincount(step, minlength=horizon)[:horizon])])  # step t: [b_t, b_t+1)
     X = X if hasattr(X, "shape") else np.asarray(X, dtype=float)  # an array, or rows computed when asked for
     source = order if x_rows is None else np.asarray(x_rows)[order]  # the row of X and of the targets behind each
@@ -298,12 +299,13 @@ def evaluate_policies(
     design[:, 0] = 1.0
     for t in range(horizon - 1, -1, -1):
         here = order[bounds[t] : bounds[t + 1]]  # this step's decisions
+        positions = source[bounds[t] : bounds[t + 1]]  # their rows of X and of the targets, one object for all
         later = next_row[here]
         cont = np.flatnonzero(later >= 0)
         later = later[cont]
         at_step = design[: here.size]  # [1, X] of this step's rows
         for start in range(0, here.size, GATHER_ROWS):  # in blocks: features computed on demand stay small
-            block = source[bounds[t] + start : min(bounds[t] + start + GATHER_ROWS, bounds[t + 1])]
+            block = positions[start : start + GATHER_ROWS]
             at_step[start : start + block.size, 1:] = X[block]
         target = np.repeat(reward[here][:, None], n_regimes, axis=1)
         for r in range(n_regimes):
@@ -321,12 +323,35 @@ def evaluate_policies(
                 q[:, a] = np.einsum("np,p->n", at_step, np.ascontiguousarray(coef[a][:, r]))
             taken[r][here] = q[np.arange(here.size), acted]
             try:
-                value[r][here] = policy_average(
-                    q, target_rows(targets[r], source[bounds[t] : bounds[t + 1]], n_actions), action_labels
-                )
+                value[r][here] = _regime_average(q, targets[r], positions, action_labels)
             except UserInputError as err:
                 failed[r] = err
+        positions = block = None  # this step's rows let go, and with them what a target kept for them
     return [(taken[r], value[r]) if failed[r] is None else failed[r] for r in range(n_regimes)]
+
+
+def _regime_average(q, target, rows, action_labels=None):
+    """:func:`policy_average` of ``q`` (m, K) under ``target`` at ``rows`` (as :func:`target_rows` reads them). A
+    regime given by its action codes takes its action's Q-value (:func:`chosen_value`) without building its one-hot
+    probabilities: the same numbers."""
+    if isinstance(target, np.ndarray) and target.ndim == 1:
+        return chosen_value(q, target[rows], action_labels)
+    return policy_average(q, target_rows(target, rows, q.shape[1]), action_labels)
+
+
+def chosen_value(q, codes, action_labels=None):
+    """:func:`policy_average` of ``q`` (m, K) under the one-hot probabilities of ``codes`` (m,), bit for bit, and
+    the same error where the chosen action's Q is undefined.
+
+    That row sum adds 1.0 · Q(s, chosen) (NaN and infinities replaced as ``numpy.nan_to_num`` does) to zeros (numpy's
+    sum starts from +0.0, even over one action): adding +0.0 changes no number but turns -0.0 into +0.0, which
+    ``+ 0.0`` does here."""
+    chosen = q[np.arange(codes.shape[0]), codes]
+    undefined = np.flatnonzero(np.isnan(chosen))
+    if undefined.size:
+        raise _undefined_value(codes[undefined[0]], 1.0, action_labels)
+    chosen = np.nan_to_num(chosen)
+    return chosen + 0.0
 
 
 def policy_average(q, proba, action_labels=None):
@@ -337,12 +362,17 @@ def policy_average(q, proba, action_labels=None):
     undefined = (proba > 0) & np.isnan(q)
     if undefined.any():
         row, a = np.argwhere(undefined)[0]
-        raise UserInputError(
-            f"the evaluated regime gives {action_name(a, action_labels)} probability {proba[row, a]:.3g} at a "
-            "decision where that action never occurs in the data at that step, so its value cannot be fitted; "
-            "restrict the regime to actions seen at every step."
-        )
+        raise _undefined_value(a, proba[row, a], action_labels)
     return np.where(proba > 0, proba * np.nan_to_num(q), 0.0).sum(axis=1)
+
+
+def _undefined_value(a, probability, action_labels=None) -> UserInputError:
+    """The error of a regime that gives action ``a`` ``probability`` where its Q-value was never fitted."""
+    return UserInputError(
+        f"the evaluated regime gives {action_name(a, action_labels)} probability {probability:.3g} at a "
+        "decision where that action never occurs in the data at that step, so its value cannot be fitted; "
+        "restrict the regime to actions seen at every step."
+    )
 
 
 class BackwardQModel:
