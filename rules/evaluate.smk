@@ -13,7 +13,7 @@ rule evaluate_fixed:
     params:
         code=stage_code_hash("evaluate_fixed"),
     threads: stage_threads("evaluate_fixed")
-    priority: 1  # the evaluate job waits for it: after regime_fit (2), before behaviour_diagnostics (0)
+    priority: 20  # the evaluate join waits for it (the order of the jobs' priorities: rules/regime.smk)
     resources:
         mem_mb=mem_mb("evaluate_fixed"),
         runtime=runtime("evaluate_fixed"),
@@ -39,7 +39,7 @@ rule evaluate_learned:
     params:
         code=stage_code_hash("evaluate_learned"),
     threads: stage_threads("evaluate_learned")
-    priority: 3  # the longest job after the fold regimes: first when it competes for a core
+    priority: 60  # the longest job after the fold regimes: first when it competes for a core
     resources:
         mem_mb=mem_mb("evaluate_learned"),
         runtime=runtime("evaluate_learned"),
@@ -65,6 +65,7 @@ rule evaluate_side:
     params:
         code=stage_code_hash("evaluate_side"),
     threads: stage_threads("evaluate_side")
+    priority: 15
     resources:
         mem_mb=mem_mb("evaluate_side"),
         runtime=runtime("evaluate_side"),

@@ -38,7 +38,11 @@ rule regime_fit:
     params:
         code=stage_code_hash("regime_fit"),
     threads: stage_threads("regime_fit")
-    priority: 2  # on the critical path: before evaluate_fixed (1) and behaviour_diagnostics (0) when all are ready
+    # Priorities, when jobs compete for a core (at 1M episodes x 12 the order decides about a minute of the run):
+    # evaluate_learned 60, regime_fit 50, the regime join 40 (survival, the curves and describe wait for it),
+    # survival 30 (the longest job after the join), evaluate_fixed 20, evaluate_side 15, sensitivity_curves 10,
+    # the others 0 (behaviour_diagnostics and describe fill the gaps)
+    priority: 50
     resources:
         mem_mb=mem_mb("regime_fit"),
         runtime=runtime("regime_fit"),
@@ -66,6 +70,7 @@ rule regime:
     params:
         code=stage_code_hash("regime"),
     threads: stage_threads("regime")
+    priority: 40
     resources:
         mem_mb=mem_mb("regime"),
         runtime=runtime("regime"),

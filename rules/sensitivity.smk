@@ -14,6 +14,7 @@ rule sensitivity_curves:
     params:
         code=stage_code_hash("sensitivity_curves"),
     threads: 1
+    priority: 10
     resources:
         mem_mb=mem_mb("sensitivity_curves"),
         runtime=runtime("sensitivity_curves"),

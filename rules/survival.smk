@@ -16,6 +16,7 @@ rule survival:
     params:
         code=stage_code_hash("survival"),
     threads: 1
+    priority: 30
     resources:
         mem_mb=mem_mb("survival"),
         runtime=runtime("survival"),

@@ -58,22 +58,22 @@ BASE_MB = 400.0
 
 # Slopes from bench/bench_scale.py at 1,000,000 episodes x 12 decisions (12M decisions), the whole workflow on
 # 2 cores: peak RSS above the interpreter's 300 MB, and CPU time, per million decisions, rounded up to 100 MB and
-# 0.1 minute (bench/RESULTS.md, 2026-12-04, at 7589f9c: every rule on one thread; peaks regime_fit 7.4 GB, crossfit
-# 6.7, evaluate 6.4, behaviour 6.0, survival 5.7, evaluate_fixed 5.5, behaviour_diagnostics 5.0, regime 4.5,
-# sensitivity_curves 4.2, describe 4.0, validate 3.7 GB); validate keeps the wider figures of earlier runs. A
-# shard's per-replicate time is at most that of the model-fitting stages together (behaviour, crossfit, regime_fit,
-# evaluate_fixed and evaluate: about 0.9 CPU minutes per million decisions at 1M); shards were not measured at 1M,
-# so theirs keep a wide margin.
+# 0.1 minute (bench/RESULTS.md, 2026-12-04, at fd68800: every rule on one thread, large arrays kept on the heap;
+# peaks regime_fit 7.7 GB, behaviour 6.9, crossfit 6.9, evaluate_learned 6.3, survival 6.0, evaluate_side 5.9,
+# evaluate_fixed 5.6, behaviour_diagnostics 4.8, regime 4.2, sensitivity_curves 4.1, validate 3.7, describe
+# 3.6 GB); rules measured lower keep the figures of earlier runs. A shard's per-replicate time is at most that of
+# the model-fitting stages together (behaviour, crossfit, regime_fit and the evaluate jobs: about 0.9 CPU minutes
+# per million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin.
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
-    "behaviour": StageCost(BASE_MB, 500.0, 0.2),
+    "behaviour": StageCost(BASE_MB, 600.0, 0.2),
     "behaviour_diagnostics": StageCost(BASE_MB, 400.0, 0.1),
     "crossfit": StageCost(BASE_MB, 600.0, 0.3),
-    "regime_fit": StageCost(BASE_MB, 600.0, 0.2),
+    "regime_fit": StageCost(BASE_MB, 700.0, 0.2),
     "regime": StageCost(BASE_MB, 400.0, 0.1),
     "evaluate_fixed": StageCost(BASE_MB, 500.0, 0.1),
-    "evaluate_learned": StageCost(BASE_MB, 600.0, 0.3),
-    "evaluate_side": StageCost(BASE_MB, 600.0, 0.1),
+    "evaluate_learned": StageCost(BASE_MB, 600.0, 0.2),
+    "evaluate_side": StageCost(BASE_MB, 500.0, 0.1),
     "evaluate": StageCost(BASE_MB, 0.0, 0.0),  # joins three JSON files
     "describe": StageCost(BASE_MB, 400.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
@@ -150,7 +150,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime_fit", 12_000_000)
-    {'mem_mb': 11400, 'runtime': 5}
+    {'mem_mb': 13200, 'runtime': 5}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
