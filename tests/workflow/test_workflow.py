@@ -119,6 +119,25 @@ def test_dry_run_lists_every_stage(study, tmp_path):
         assert rule in stdout
 
 
+def _job_inputs(stdout, rule):
+    """The input line of ``rule``'s job in a dry run's listing."""
+    block = stdout.split(f"rule {rule}:", 1)[1]
+    return next(line for line in block.splitlines() if line.strip().startswith("input:"))
+
+
+@pytest.mark.parametrize(("folds", "table"), [(2, "regime/crossfit.parquet"), (1, "regime/fitted.parquet")])
+def test_the_learned_regime_is_evaluated_from_the_table_that_holds_it(study, tmp_path, folds, table):
+    # cross-fitted: the fold regimes' table, so evaluate_learned need not wait for regime_fit; one fold: the regime
+    # learned on all records, regime_fit's table
+    raw = yaml.safe_load(study.read_text(encoding="utf-8"))
+    raw["evaluation"]["cross_fit_folds"] = folds
+    protocol = study.parent / f"folds_{folds}.yaml"
+    protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    inputs = _job_inputs(_dry_run(protocol, tmp_path), "evaluate_learned")
+    other = {"regime/crossfit.parquet", "regime/fitted.parquet"} - {table}
+    assert table in inputs and other.pop() not in inputs, inputs
+
+
 def test_no_shard_jobs_without_replicates(study, tmp_path):
     raw = yaml.safe_load(study.read_text(encoding="utf-8"))
     raw["evaluation"]["replicates"] = 0
