@@ -359,6 +359,20 @@ def regime_fit_stage(protocol, decisions, proba, fitted, fitted_summary, threads
     write_json(fitted_summary, learned.summary)
 
 
+def read_fitted(path, frame, chosen_only: bool = False) -> pd.DataFrame:
+    """The table of :func:`regime_fit_stage`, which must hold these decisions' rows (:func:`same_rows`); with
+    ``chosen_only``, its steps and the regimes' ``chosen_`` action codes only."""
+    columns = None
+    if chosen_only:
+        columns = ["step", *(c for c in parquet_columns(path) if c.startswith("chosen_"))]
+    table = read_parquet(path, columns)
+    if not same_rows(table, frame):
+        raise UserInputError(
+            f"{path} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
+        )
+    return table
+
+
 def regime_join_stage(protocol, decisions, fitted, fitted_summary, crossfit, table, regime):
     """The workflow's second half of :func:`regime_stage`: join the side-by-side regimes of
     :func:`regime_fit_stage` with the cross-fitted fold regimes of :func:`crossfit_stage` into the regime stage's
@@ -366,11 +380,7 @@ def regime_join_stage(protocol, decisions, fitted, fitted_summary, crossfit, tab
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions, RECORD_KEYS)
     summary = read_json(fitted_summary)
-    columns = read_parquet(fitted)
-    if not same_rows(columns, frame):
-        raise UserInputError(
-            f"{fitted} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
-        )
+    columns = read_fitted(fitted, frame)
     if not p.analysis.learn_regime:
         write_parquet(table, frame[RECORD_KEYS].copy())
         write_json(regime, summary)
@@ -468,11 +478,7 @@ def read_values_part(path, n_decisions: int) -> dict:
 def fitted_learned_regime(path, frame, labels) -> tuple[np.ndarray, np.ndarray]:
     """The protocol's learned regime as :func:`regime_fit_stage` wrote it (its ``chosen_`` column, the last, and
     its Q-values): what the evaluation scores with one cross-fitting fold."""
-    columns = read_parquet(path)
-    if not same_rows(columns, frame):
-        raise UserInputError(
-            f"{path} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
-        )
+    columns = read_fitted(path, frame)
     chosen = [c for c in columns.columns if c.startswith("chosen_")]
     if not chosen:
         raise UserInputError(f"{path} holds no learned regime; rerun the workflow")
@@ -519,11 +525,7 @@ def evaluate_side_stage(protocol, decisions, proba, fitted, side, threads=1):
     :func:`evaluate_join_stage`. Without a learned regime there is none (null)."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
-    columns = read_parquet(fitted)
-    if not same_rows(columns, frame):
-        raise UserInputError(
-            f"{fitted} does not hold the side-by-side regimes of these decisions (its rows differ); rerun the workflow"
-        )
+    columns = read_fitted(fitted, frame, chosen_only=True)
     variants = {
         c.removeprefix("chosen_"): columns[c].to_numpy(dtype=np.int64)
         for c in columns.columns
