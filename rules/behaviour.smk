@@ -38,6 +38,7 @@ rule behaviour_diagnostics:
     params:
         code=stage_code_hash("behaviour_diagnostics"),
     threads: 1
+    priority: PRIORITY["behaviour_diagnostics"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("behaviour_diagnostics"),
         runtime=runtime("behaviour_diagnostics"),

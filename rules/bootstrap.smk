@@ -16,6 +16,7 @@ rule bootstrap_shard:
     params:
         code=stage_code_hash("bootstrap_shard"),
     threads: 1
+    priority: PRIORITY["bootstrap_shard"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("bootstrap_shard"),
         runtime=runtime("bootstrap_shard"),
@@ -39,6 +40,7 @@ rule bootstrap:
     params:
         code=stage_code_hash("bootstrap"),
     threads: 1
+    priority: PRIORITY["bootstrap"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("bootstrap"),
         runtime=runtime("bootstrap"),

@@ -15,6 +15,7 @@ rule describe:
     params:
         code=stage_code_hash("describe"),
     threads: 1
+    priority: PRIORITY["describe"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("describe"),
         runtime=runtime("describe"),

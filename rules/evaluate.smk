@@ -13,7 +13,7 @@ rule evaluate_fixed:
     params:
         code=stage_code_hash("evaluate_fixed"),
     threads: stage_threads("evaluate_fixed")
-    priority: 20  # the evaluate join waits for it (the order of the jobs' priorities: rules/regime.smk)
+    priority: PRIORITY["evaluate_fixed"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("evaluate_fixed"),
         runtime=runtime("evaluate_fixed"),
@@ -39,7 +39,7 @@ rule evaluate_learned:
     params:
         code=stage_code_hash("evaluate_learned"),
     threads: stage_threads("evaluate_learned")
-    priority: 60  # the longest job after the fold regimes: first when it competes for a core
+    priority: PRIORITY["evaluate_learned"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("evaluate_learned"),
         runtime=runtime("evaluate_learned"),
@@ -65,7 +65,7 @@ rule evaluate_side:
     params:
         code=stage_code_hash("evaluate_side"),
     threads: stage_threads("evaluate_side")
-    priority: 15
+    priority: PRIORITY["evaluate_side"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("evaluate_side"),
         runtime=runtime("evaluate_side"),
@@ -92,6 +92,7 @@ rule evaluate:
     params:
         code=stage_code_hash("evaluate"),
     threads: stage_threads("evaluate")
+    priority: PRIORITY["evaluate"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("evaluate"),
         runtime=runtime("evaluate"),

@@ -38,11 +38,7 @@ rule regime_fit:
     params:
         code=stage_code_hash("regime_fit"),
     threads: stage_threads("regime_fit")
-    # Priorities, when jobs compete for a core (at 1M episodes x 12 the order decides about a minute of the run):
-    # evaluate_learned 60, regime_fit 50, the regime join 40 (survival, the curves and describe wait for it),
-    # survival 30 (the longest job after the join), evaluate_fixed 20, evaluate_side 15, sensitivity_curves 10,
-    # the others 0 (behaviour_diagnostics and describe fill the gaps)
-    priority: 50
+    priority: PRIORITY["regime_fit"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("regime_fit"),
         runtime=runtime("regime_fit"),
@@ -70,7 +66,7 @@ rule regime:
     params:
         code=stage_code_hash("regime"),
     threads: stage_threads("regime")
-    priority: 40
+    priority: PRIORITY["regime"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("regime"),
         runtime=runtime("regime"),

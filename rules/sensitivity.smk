@@ -14,7 +14,7 @@ rule sensitivity_curves:
     params:
         code=stage_code_hash("sensitivity_curves"),
     threads: 1
-    priority: 10
+    priority: PRIORITY["sensitivity_curves"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("sensitivity_curves"),
         runtime=runtime("sensitivity_curves"),
@@ -40,6 +40,7 @@ rule sensitivity:
     params:
         code=stage_code_hash("sensitivity"),
     threads: 1
+    priority: PRIORITY["sensitivity"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("sensitivity"),
         runtime=runtime("sensitivity"),

@@ -16,7 +16,7 @@ rule survival:
     params:
         code=stage_code_hash("survival"),
     threads: 1
-    priority: 30
+    priority: PRIORITY["survival"]  # longest path to the end first (rules/common.smk)
     resources:
         mem_mb=mem_mb("survival"),
         runtime=runtime("survival"),
