@@ -10,6 +10,8 @@ from __future__ import annotations
 import ast
 import modulefinder
 import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -23,7 +25,7 @@ from regimewise.workflow.fingerprint import (
     stage_files,
     stage_modules,
 )
-from regimewise.workflow.stages import STAGES
+from regimewise.workflow.stages import HEAVY_LIBRARIES, STAGES
 
 PACKAGE = Path(regimewise.__file__).parent
 
@@ -128,3 +130,24 @@ def test_a_rule_is_fingerprinted_by_the_function_its_stages_table_names(copy):
         path.write_text(original, encoding="utf-8")
     assert set(before) == set(STAGES)
     assert {rule for rule in before if before[rule] != after[rule]} == {"behaviour"}
+
+
+@pytest.mark.parametrize(
+    "module",
+    [
+        "regimewise.workflow.stages",  # every job imports it
+        # what the short jobs use: the joins of evaluate and sensitivity, the bootstrap's intervals, the
+        # regime join, the appendix, and validation (alone on the machine at the start of a run)
+        "regimewise.evaluation.values",
+        "regimewise.bootstrap.intervals",
+        "regimewise.sensitivity.analysis",
+        "regimewise.appendix.assemble",
+        "regimewise.data.validate",
+    ],
+)
+def test_a_job_starts_without_the_heavy_libraries(module):
+    # a fresh interpreter: this test process has long imported them all
+    code = f"import sys, {module}; print(' '.join(m for m in HEAVY if m in sys.modules))"
+    code = f"HEAVY = {HEAVY_LIBRARIES!r}\n" + code.replace("; print", "\nprint")
+    loaded = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
+    assert loaded == [], f"importing {module} loads {loaded}; import them inside the functions that use them"

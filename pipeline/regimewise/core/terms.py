@@ -14,7 +14,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-import patsy
 
 from regimewise.errors import UserInputError
 
@@ -82,6 +81,8 @@ class TermColumns:
             if part[0] == "interaction":
                 blocks += [scaled[:, a] * scaled[:, b] for a, b in part[1]]
             elif part[0] == "spline":
+                import patsy  # here, not at the top: a job without spline terms starts without it
+
                 values = frame[part[1]].to_numpy(dtype=float)
                 basis = np.asarray(patsy.build_design_matrices([part[2]], {"x": values})[0])
                 blocks += list(basis.T)
@@ -126,4 +127,6 @@ def spline_basis(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX):
             f"state {name!r}: a spline with {df} degrees of freedom needs more than {df} distinct values, the "
             f"records have {distinct}; {fix}"
         )
+    import patsy  # here, not at the top: a job without spline terms starts without it
+
     return patsy.dmatrix(f"cr(x, df={df}, constraints='center') - 1", {"x": values})

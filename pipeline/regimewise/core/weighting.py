@@ -14,7 +14,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-import statsmodels.api as sm
 
 from regimewise.core.arrays import as_actions
 from regimewise.errors import UserInputError
@@ -220,6 +219,8 @@ def ipw_mean_difference(outcome, treated, weights, cluster=None):
     if not np.all(np.isin(a, (0.0, 1.0))) or np.unique(a).size < 2:
         raise UserInputError("treated must be coded 0/1 and contain both groups")
     groups = np.arange(y.size) if cluster is None else _cluster_codes(cluster, y.size)
+    import statsmodels.api as sm  # here, not at the top: most jobs that read this module never fit a GEE
+
     model = sm.GEE(y, sm.add_constant(a), groups=groups, cov_struct=sm.cov_struct.Independence(), weights=w)
     result = model.fit()
     low, high = np.asarray(result.conf_int(alpha=0.05))[1]

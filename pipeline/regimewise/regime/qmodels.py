@@ -9,8 +9,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg
-from sklearn.ensemble import HistGradientBoostingRegressor
-from sklearn.exceptions import NotFittedError
 
 from regimewise.core.arrays import (
     action_name,
@@ -449,6 +447,8 @@ class BackwardQModel:
     def _checked_rows(self, X, step):
         """Check that the model is fitted and that X and step describe decisions it can score."""
         if not hasattr(self, self._fitted_attribute):
+            from sklearn.exceptions import NotFittedError  # scikit-learn's, imported where it is raised
+
             raise NotFittedError(f"this {type(self).__name__} is not fitted yet; call fit(...) first.")
         X = check_finite(X, "X", 2)
         step = check_codes(step, "step", self.horizon)
@@ -534,6 +534,8 @@ class BoostedActionModel:
     def fit(self, X, action, y, weight=None):
         present = action if weight is None else action[weight > 0]
         self.seen_ = np.bincount(present, minlength=self.n_actions) > 0
+        from sklearn.ensemble import HistGradientBoostingRegressor  # only boosted Q-models need scikit-learn
+
         self.model_ = HistGradientBoostingRegressor(
             early_stopping=False, random_state=self.random_state, **(self.params or {})
         ).fit(np.hstack([X, np.eye(self.n_actions)[action]]), y, sample_weight=weight)

@@ -20,17 +20,17 @@ import numpy as np
 import pandas as pd
 from threadpoolctl import threadpool_limits
 
+# Every workflow job imports this module. The modules that bring scikit-learn, statsmodels, lifelines, patsy or
+# matplotlib are imported inside the stages that use them (HEAVY_LIBRARIES, checked by a test): a short job, such
+# as a join or the appendix, would otherwise spend more time importing them than working.
 from regimewise.appendix.assemble import AppendixRun, write_appendix
 from regimewise.bootstrap.intervals import combine, merge_intervals
-from regimewise.bootstrap.replicates import HeldRegime, run_shard
-from regimewise.bootstrap.sweep import combine_sweep, run_specification
 from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
 from regimewise.core.concurrency import keep_freed_memory, run_concurrently, share_allocator_arenas
 from regimewise.core.features import QFeatures, StateScaler, action_codes
 from regimewise.core.seeds import stream_ints
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
-from regimewise.describe.cohort import cohort_table
 from regimewise.errors import ERROR_PREFIX, DataValidationError, StatisticalWarning, UserInputError
 from regimewise.evaluation.values import (
     evaluate_all,
@@ -45,21 +45,10 @@ from regimewise.evaluation.values import (
 from regimewise.io import parquet_columns, parquet_rows, read_json, read_parquet, write_json, write_parquet, write_text
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
-from regimewise.regime.learning import (
-    assemble_cross_fit,
-    cross_fit_tasks,
-    crossfit_folds,
-    variant_tasks,
-)
 from regimewise.regime.permitted import permitted_actions
-from regimewise.regime.readable import distill_regime
 from regimewise.regime.summary import regime_summary, safeguard_summary
-from regimewise.report.html import render_html
 from regimewise.report.provenance import build_provenance
 from regimewise.report.summary import build_summary
-from regimewise.selfcheck.cohort import cohort_outcome
-from regimewise.selfcheck.run import selfcheck_document, write_selfcheck
-from regimewise.selfcheck.world import fitted_world
 from regimewise.sensitivity.analysis import (
     bounded_actions,
     comparator_curves,
@@ -68,15 +57,15 @@ from regimewise.sensitivity.analysis import (
     sensitivity_target,
     summarise_sensitivity,
 )
-from regimewise.survival.analysis import survival_analysis, survival_intervals
 from regimewise.usual_care.diagnostics import (
     diagnostics_document,
     model_block,
     overlap_by_step,
     usual_care_diagnostics,
 )
-from regimewise.usual_care.fitting import fit_usual_care, usual_care_folds
 from regimewise.workflow.settings import real_input
+
+HEAVY_LIBRARIES = ("sklearn", "statsmodels", "lifelines", "patsy", "matplotlib", "scipy.stats", "scipy.optimize")
 
 
 def report_stage(
@@ -98,6 +87,8 @@ def report_stage(
 ):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs; ``reproduce`` is the
     command that reruns the analysis (rule parameter, from the command line that started the run)."""
+    from regimewise.report.html import render_html
+
     pf = load_protocol(protocol)
     p = pf.protocol
     parts = {
@@ -160,6 +151,8 @@ def behaviour_stage(protocol, decisions, proba, diagnostics):
     The workflow splits this stage in two jobs, :func:`behaviour_fit_stage` (on the critical path: every later
     model needs the probabilities) and :func:`behaviour_diagnostics_stage` (beside the jobs after it), which write
     the same bytes."""
+    from regimewise.usual_care.fitting import fit_usual_care
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     model = fit_usual_care(frame, p)
@@ -183,6 +176,8 @@ def behaviour_fit_stage(protocol, decisions, proba, model):
     """The workflow's first half of :func:`behaviour_stage`: fit the usual-care model and write the records'
     probabilities, and the model's block of behaviour.json (``model``, a temporary file of the workflow read by
     :func:`behaviour_diagnostics_stage`)."""
+    from regimewise.usual_care.fitting import fit_usual_care
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     fitted = fit_usual_care(frame, p)
@@ -193,6 +188,8 @@ def behaviour_fit_stage(protocol, decisions, proba, model):
 def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
     """The workflow's second half of :func:`behaviour_stage`: behaviour.json from the records, the probabilities
     :func:`behaviour_fit_stage` wrote (which must be of these decisions) and the model's block (the same bytes)."""
+    from regimewise.usual_care.fitting import usual_care_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     table = read_parquet(proba)
@@ -222,6 +219,8 @@ def crossfit_stage(protocol, decisions, crossfit, threads=1):
     consumed there). With one fold (``evaluation.cross_fit_folds: 1``) or no learned regime the table holds the
     decisions' keys only: the regime stage then evaluates the regime it learns on all records.
     """
+    from regimewise.regime.learning import assemble_cross_fit, cross_fit_tasks, crossfit_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     out = frame[["episode_id", "step"]].copy()
@@ -263,6 +262,8 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
     With ``analysis.learn_regime: false`` nothing is learned: the table keeps the decisions' keys and the action
     taken only, and regime.json says that no regime was learned (:func:`no_regime_summary`).
     """
+    from regimewise.regime.learning import assemble_cross_fit, cross_fit_tasks, crossfit_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     if not p.analysis.learn_regime:
@@ -299,6 +300,9 @@ class SideBySide:
 def learn_side_by_side(p, frame, probabilities, cross_fits, threads=1) -> tuple[SideBySide, list]:
     """Learn the side-by-side regimes (and run the tasks ``cross_fits`` beside them, the longest first); returns
     their :class:`SideBySide` and the results of ``cross_fits``."""
+    from regimewise.regime.learning import variant_tasks
+    from regimewise.regime.readable import distill_regime
+
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
     X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
     fits = variant_tasks(frame, probabilities, p, features, X=X)
@@ -494,6 +498,8 @@ def evaluate_learned_stage(protocol, decisions, proba, learned, crossfit=None, f
     The regime evaluated is the cross-fitted one: ``crossfit``, the table of :func:`crossfit_stage`, so this job
     starts when the fold regimes are learned, beside the side-by-side regimes. With one fold it is the regime
     learned on all records, from ``fitted`` (:func:`regime_fit_stage`)."""
+    from regimewise.regime.learning import crossfit_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
@@ -558,6 +564,8 @@ def evaluate_stage(protocol, decisions, proba, table, values, fixed=None, thread
 
     ``fixed``, the file of :func:`evaluate_fixed_stage` (the workflow's), gives the values of usual care, the fixed
     strategies and the comparators; without it the stage computes them itself (the same numbers)."""
+    from regimewise.regime.learning import crossfit_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     done = None if fixed is None else read_fixed(fixed, frame)
@@ -591,6 +599,8 @@ def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
     """Cohort table (with follow-up and events when the episodes have them), balance before and after weighting,
     and overlap of taken and recommended actions by step (without a learned regime, the headline named
     strategy's actions)."""
+    from regimewise.describe.cohort import cohort_table
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     outcomes = None if episodes is None else read_parquet(episodes)
@@ -622,6 +632,9 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
     section, each replicate also estimates every strategy's survival. With ``evaluation.bootstrap_regime: fixed``
     the replicates hold the regime stage's cross-fitted regime (``table``) fixed; without ``table`` it is learned
     again here from the records (the same numbers, at the cost of one more learning)."""
+    from regimewise.bootstrap.replicates import HeldRegime, run_shard
+    from regimewise.regime.learning import crossfit_folds
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
@@ -703,6 +716,8 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     """Survival of every strategy by clone–censor–weight, with diagnostics and bootstrap intervals from the
     shards (whose replicates refit usual care and the dropout model, and hold the regime fixed or learn it again as
     ``evaluation.bootstrap_regime`` says)."""
+    from regimewise.survival.analysis import survival_analysis, survival_intervals
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
@@ -719,6 +734,8 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
 # ---------------------------------------------------------------------------------------------- sweep
 def sweep_spec_stage(protocol, decisions, spec, result):
     """One specification of the sweep (wildcard ``spec``): refit, evaluate and bootstrap; one BLAS thread."""
+    from regimewise.bootstrap.sweep import run_specification
+
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     with threadpool_limits(limits=1):
@@ -729,6 +746,8 @@ def sweep_spec_stage(protocol, decisions, spec, result):
 
 def sweep_stage(protocol, specs, sweep):
     """Combine the specifications into the table sorted by the learned-minus-usual-care contrast."""
+    from regimewise.bootstrap.sweep import combine_sweep
+
     p = load_protocol(protocol).protocol
     write_json(sweep, combine_sweep([read_json(path) for path in specs], p))
 
@@ -736,6 +755,9 @@ def sweep_stage(protocol, specs, sweep):
 # ---------------------------------------------------------------------------------------------- self-check
 def selfcheck_cohort_stage(protocol, decisions, episodes, cohort, result):
     """One look-alike cohort of the self-check (wildcard ``cohort``): simulate, analyse, and compute its truths."""
+    from regimewise.selfcheck.cohort import cohort_outcome
+    from regimewise.selfcheck.world import fitted_world
+
     p = load_protocol(protocol).protocol
     world = fitted_world(
         read_parquet(decisions), p, episodes=read_parquet(episodes), confounder_gamma=p.selfcheck.confounder_gamma
@@ -752,6 +774,9 @@ def selfcheck_cohort_stage(protocol, decisions, episodes, cohort, result):
 
 def selfcheck_stage(protocol, decisions, episodes, cohorts, selfcheck, page):
     """The self-check's summary (selfcheck.json) and its page (selfcheck.html) from the cohort jobs."""
+    from regimewise.selfcheck.run import selfcheck_document, write_selfcheck
+    from regimewise.selfcheck.world import fitted_world
+
     p = load_protocol(protocol).protocol
     records, outcomes = read_parquet(decisions), read_parquet(episodes)
     results = [read_json(path) for path in cohorts]
