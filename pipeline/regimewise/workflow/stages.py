@@ -206,7 +206,11 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
 
 
 def read_probabilities(path, labels) -> np.ndarray:
-    return read_parquet(path)[proba_columns(labels)].to_numpy(dtype=float)
+    """Usual care's probabilities (n, K) from the behaviour stage's table, reading its probability columns only:
+    the same values in the same memory layout as taking them from the whole table, without converting a text key
+    per decision (at 12M decisions, 1 to 3 s of each job that reads them)."""
+    columns = proba_columns(labels)
+    return read_parquet(path, columns)[columns].to_numpy(dtype=float)
 
 
 # ---------------------------------------------------------------------------------------------- regime
