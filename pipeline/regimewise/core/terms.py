@@ -63,7 +63,7 @@ class TermColumns:
                 group = tuple(f"{scaler.names[a]}:{scaler.names[b]}" for a, b in columns)
             elif term.spline is not None:
                 df = term.df or default_df
-                info = spline_basis(frame[term.spline].to_numpy(dtype=float), df, term.spline).design_info
+                info = spline_design(frame[term.spline].to_numpy(dtype=float), df, term.spline)
                 parts.append(("spline", term.spline, info))
                 group = tuple(f"ns({term.spline})[{k}]" for k in range(len(info.column_names)))
             else:
@@ -120,13 +120,49 @@ SPLINE_FIX = "lower the spline's df or enter the state without one"
 
 def spline_basis(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX):
     """patsy's centred natural cubic regression spline basis of ``values`` (Wood 2017, *Generalized Additive
-    Models*, 2nd ed., section 5.3.1); :class:`UserInputError` when the values are too few for ``df``."""
-    distinct = np.unique(values).size
-    if distinct <= df:
+    Models*, 2nd ed., section 5.3.1), a design matrix whose ``design_info`` (:func:`spline_design`) builds the
+    basis at other values; :class:`UserInputError` when the values are too few for ``df``."""
+    import patsy  # here, not at the top: a job without spline terms starts without it
+
+    return patsy.build_design_matrices([spline_design(values, df, name, fix)], {"x": values})[0]
+
+
+# Values the type check of a spline's factor sees: its column count is the basis's df whatever the values.
+TYPE_CHECK_ROWS = 8
+
+
+def spline_design(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX):
+    """The design info of :func:`spline_basis` (``patsy.dmatrix(...).design_info``, the same knots and centring):
+    ``patsy.build_design_matrices([info], {"x": x})`` gives the basis at any values ``x``.
+
+    The fits build the basis from the info, so the matrix ``dmatrix`` evaluates along with the info would be
+    thrown away; and patsy checks the factor's type by evaluating the basis on the data of one more pass, after
+    the knots are placed, which here holds a few values only. The knots and the centring constraint come from
+    the one pass over all values that ``cr`` asks for."""
+    if not has_distinct(values, df + 1):
         raise UserInputError(
             f"state {name!r}: a spline with {df} degrees of freedom needs more than {df} distinct values, the "
-            f"records have {distinct}; {fix}"
+            f"records have {np.unique(values).size}; {fix}"
         )
     import patsy  # here, not at the top: a job without spline terms starts without it
 
-    return patsy.dmatrix(f"cr(x, df={df}, constraints='center') - 1", {"x": values})
+    passes = []
+
+    def data():  # patsy asks for the data once per pass of cr's memorizing (one), then once for the type check
+        passes.append(None)
+        return iter([{"x": values if len(passes) == 1 else values[:TYPE_CHECK_ROWS]}])
+
+    rhs = patsy.ModelDesc.from_formula(f"cr(x, df={df}, constraints='center') - 1").rhs_termlist
+    return patsy.design_matrix_builders([rhs], data, eval_env=0)[0]
+
+
+def has_distinct(values: np.ndarray, count: int, unique=np.unique, first: int = 4096) -> bool:
+    """Whether ``values`` hold at least ``count`` distinct values (``unique(values).size >= count``), read from a
+    first part of them growing fourfold: the first rows of a table hold enough of them as a rule, and the
+    distinct values of every row (a sort or a hash of millions of values) are then never needed."""
+    rows = first
+    while rows < len(values):
+        if unique(values[:rows]).size >= count:
+            return True
+        rows *= 4
+    return unique(values).size >= count

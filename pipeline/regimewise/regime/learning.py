@@ -19,12 +19,14 @@ import pandas as pd
 
 from regimewise.core.features import (
     QFeatures,
+    StateArrays,
     action_codes,
     episode_codes,
     patient_clusters,
 )
 from regimewise.core.folds import patient_folds
 from regimewise.core.seeds import stream_ints
+from regimewise.core.terms import has_distinct
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
@@ -113,6 +115,17 @@ def fit_q_learning(
     )
 
 
+def q_design_of_rows(features: QFeatures, frame: pd.DataFrame) -> Callable[[np.ndarray | slice], np.ndarray]:
+    """A function of rows (integer positions or a slice) giving ``features.transform(frame.iloc[rows])``: the same
+    bits in the same memory layout. Without ``q_model.terms`` the states are taken out of the frame once
+    (:class:`regimewise.core.features.StateArrays`) and each block of rows is gathered from them, instead of a
+    frame of every column (the ids' strings too) built per block."""
+    if features.terms is not None:
+        return lambda rows: features.transform(frame.iloc[rows])
+    states = StateArrays(features.scaler, frame)
+    return lambda rows: features.transform_arrays(states, rows)
+
+
 def boosting_params(protocol: Protocol) -> dict:
     """Keyword arguments of the gradient boosting Q-model from the protocol."""
     q = protocol.q_model
@@ -175,7 +188,7 @@ def crossfit_folds(decisions: pd.DataFrame, protocol: Protocol) -> np.ndarray | 
     if k == 1:
         return None
     patients = patient_clusters(decisions)
-    if pd.unique(patients).size < 2 * k:
+    if not has_distinct(patients, 2 * k, pd.unique):
         raise UserInputError(
             f"evaluation.cross_fit_folds is {k} but the records hold {pd.unique(patients).size} patients; "
             f"lower it (at least 2 patients per fold are needed)"
@@ -257,9 +270,10 @@ def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarr
     steps = frame["step"].to_numpy(dtype=np.int64)
     codes = np.empty(len(frame), dtype=np.intp)
     q = np.empty((len(frame), len(learned.action_labels)))
+    design = q_design_of_rows(learned.q_features, frame)
     for t in np.unique(steps):
         at = np.flatnonzero(steps == t)
-        X = learned.q_features.transform(frame.iloc[at])
+        X = design(at)
         codes[at], q[at] = learned.fqi.recommend_with_q(
             X, steps[at], proba[at], None if permitted is None else permitted[at]
         )

@@ -10,7 +10,7 @@ import numpy as np
 import patsy
 
 from regimewise.core.features import StateScaler, stack_by_blocks
-from regimewise.core.terms import TermColumns, spline_basis, uncentred
+from regimewise.core.terms import TermColumns, spline_design, uncentred
 
 
 @dataclass(frozen=True)
@@ -40,7 +40,7 @@ class BehaviourDesign:
         use_splines = spec.kind == "multinomial_logit"
         fix = "lower behaviour_model.spline_df or remove the state from behaviour_model.spline_states"
         splines = tuple(
-            (name, spline_basis(frame[name].to_numpy(dtype=float), spec.spline_df, name, fix).design_info)
+            (name, spline_design(frame[name].to_numpy(dtype=float), spec.spline_df, name, fix))
             for name in (spec.spline_states if use_splines else [])
         )
         terms = TermColumns.fit(spec.terms, frame, scaler, spec.spline_df) if spec.terms else None
