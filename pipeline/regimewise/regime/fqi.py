@@ -271,20 +271,27 @@ class FittedQIteration(BackwardQModel):
         target = reward.copy()
         self.models_ = [None] * self.horizon
         makers = [None] * self.horizon
-        score = np.full((step.size, self.n_actions), np.nan)
+        # every row is at some step and every step's rows are written below, so no row is left unset (no NaN fill
+        # of the whole table first)
+        score = np.empty((step.size, self.n_actions))
+        after = None  # the scores of step t + 1's rows, which are the next rows of step t (as ``score[later]``)
         for t in range(self.horizon - 1, -1, -1):
             rows = np.flatnonzero(step == t)
             if not rows.size:
+                after = None
                 continue
             later = next_row[rows]
             cont, later = rows[later >= 0], later[later >= 0]
             if cont.size:
+                next_score = after if after is not None and after.shape[0] == later.size else score[later]
                 target[cont] = reward[cont] + self.settings.gamma * self._chosen_score(
-                    score[later], proba[later], None if rules is None else rules[later]
+                    next_score, proba[later], None if rules is None else rules[later]
                 )
             X_t = X[rows]
             self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
-            score[rows] = self._mask_unfitted(self._scores(self.models_[t], X_t), step[rows])  # as _raw gives them
+            # as _raw gives them: the rows are all at step t, so step t's fitted actions mask every row
+            after = np.where(self.fitted_actions_[t], self._scores(self.models_[t], X_t), np.nan)
+            score[rows] = after
         self.n_iterations_, self.converged_ = self.horizon, True
         return target, makers, score
 
