@@ -1,16 +1,19 @@
 """The backward induction of fitted-Q iteration and the bootstrap fits' row gathers give the numbers they gave when
 written the plain way, bit for bit.
 
-Source of truth: the code as written before (``old_fit_backward``, ``old_weighted`` below): a NaN-filled score table
-whose next-step scores are read back from it by the next rows, each step's scores masked by the fitted actions of
-every row's step, and a bootstrap fit's rows gathered whole and then multiplied by the square roots of their weights.
+Source of truth: the code as written before (``old_fit_backward``, ``old_out_of_fold``, ``old_weighted`` below): a
+NaN-filled score table whose next-step scores are read back from it by the next rows, each step's scores masked by
+the fitted actions of every row's step, the choices made on the whole table at the end, each step's out-of-fold error
+on its rows gathered again after the fits, and a bootstrap fit's rows gathered whole and then multiplied by the
+square roots of their weights.
 """
 
 import numpy as np
 import pytest
 
 from regimewise.regime.fqi import FittedQIteration, QLearningSettings
-from regimewise.regime.qmodels import ROOTED_BLOCK_ROWS, ActionCells, _gathered_rooted, _rooted
+from regimewise.regime.permitted import constrained_choice
+from regimewise.regime.qmodels import ROOTED_BLOCK_ROWS, ActionCells, _gathered_rooted, _rooted, out_of_fold_errors
 
 
 def old_weighted(cells, a, weight):
@@ -51,7 +54,7 @@ def test_blocked_weighting_gives_the_gathered_rows_weighted(responses):
 
 
 def old_fit_backward(self, X, step, action, reward, next_row, proba, rules):
-    """``FittedQIteration._fit_backward`` as written before."""
+    """``FittedQIteration._fit_backward`` as written before, with the choices the old ``fit`` made from its scores."""
     target = reward.copy()
     self.models_ = [None] * self.horizon
     makers = [None] * self.horizon
@@ -70,11 +73,26 @@ def old_fit_backward(self, X, step, action, reward, next_row, proba, rules):
         self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
         score[rows] = self._mask_unfitted(self._scores(self.models_[t], X_t), step[rows])
     self.n_iterations_, self.converged_ = self.horizon, True
-    return target, makers, score
+    # the old fit then chose at every row from the whole table's scores
+    return target, makers, constrained_choice(score, proba, self.settings.support_threshold, rules)
+
+
+def old_out_of_fold(self, X, step, action, target, makers):
+    """``FittedQIteration._out_of_fold`` as written before: each step's rows gathered out of X again."""
+    folds = self._folds
+    if self.settings.mode == "pooled":
+        error = out_of_fold_errors(makers[0], self._pooled_X(X, step), action, target, folds)
+        return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
+    out = {}
+    for t in np.flatnonzero(np.bincount(step)):
+        rows = np.flatnonzero(step == t)
+        out[int(t)] = float(np.nanmean(out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows])))
+    return out
 
 
 class OldFittedQIteration(FittedQIteration):
     _fit_backward = old_fit_backward
+    _out_of_fold = old_out_of_fold
 
 
 def decision_table(seed, episodes=300, horizon=4, n_actions=3):
@@ -100,6 +118,8 @@ def decision_table(seed, episodes=300, horizon=4, n_actions=3):
         QLearningSettings(support_threshold=0.0),
         QLearningSettings(support_threshold=0.2, gamma=0.9),
         QLearningSettings(support_threshold=0.2, pessimism=1.0, ensemble_size=5, oof_error=True),
+        QLearningSettings(support_threshold=0.2, alpha="cv", oof_error=True),
+        QLearningSettings(support_threshold=0.1, mode="pooled", max_iterations=5, oof_error=True),
     ],
 )
 @pytest.mark.parametrize("with_rules", [False, True])
@@ -118,4 +138,5 @@ def test_backward_induction_gives_the_fits_as_written_before(settings, with_rule
         new.n_without_permitted_action_,
     )
     assert old.oof_mse_ == new.oof_mse_
+    assert (old.oof_mse_ is None) == (not settings.oof_error)
     assert old.scores(X, step).tobytes() == new.scores(X, step).tobytes()
