@@ -260,33 +260,45 @@ class FittedQIteration(BackwardQModel):
 
     # ------------------------------------------------------------------------------------------- learning
     def _fit_backward(self, X, step, action, reward, next_row, proba, rules):
-        """Fit the step models from the last step back; return the targets, the model makers and the scores (n, K)
-        of the fitted models at every row.
+        """Fit the step models from the last step back; return the targets, the model makers and the choices at
+        every row (:func:`regimewise.regime.permitted.constrained_choice` of the fitted models' scores).
 
-        Each step's rows are scored once, right after their model is fitted: the next-state values of the step
-        before read these scores, and :meth:`fit` reuses them for the choices at the records. Steps run 0, 1, 2, …
-        within an episode (:func:`regimewise.core.arrays.check_layout`), so the next rows of step t are exactly the
-        rows of step t + 1, in the same order: the same numbers as scoring them again.
+        Each step's rows are scored once, right after their model is fitted, and their choices made at once: the
+        next-state values of the step before read the chosen scores, and :meth:`fit` keeps the choices for the
+        records. Steps run 0, 1, 2, … within an episode (:func:`regimewise.core.arrays.check_layout`), so the next
+        rows of step t are exactly the rows of step t + 1, in the same order; and a row's choice depends on its own
+        row only: the same numbers as scoring and choosing again on the whole table.
         """
         target = reward.copy()
         self.models_ = [None] * self.horizon
         makers = [None] * self.horizon
-        score = np.full((step.size, self.n_actions), np.nan)
+        # every row is at some step and every step's rows are written below (no row is left unset)
+        choice, unconstrained = np.empty(step.size, dtype=np.intp), np.empty(step.size, dtype=np.intp)
+        none_permitted = np.empty(step.size, dtype=bool)
+        chosen = None  # the chosen scores of step t + 1's rows, which are the next rows of step t
         for t in range(self.horizon - 1, -1, -1):
             rows = np.flatnonzero(step == t)
             if not rows.size:
+                chosen = None
                 continue
             later = next_row[rows]
-            cont, later = rows[later >= 0], later[later >= 0]
+            cont = rows[later >= 0]
             if cont.size:
-                target[cont] = reward[cont] + self.settings.gamma * self._chosen_score(
-                    score[later], proba[later], None if rules is None else rules[later]
-                )
+                if chosen is None or chosen.size != cont.size:
+                    raise RuntimeError("the next rows of a step are not the rows of the step after it")
+                target[cont] = reward[cont] + self.settings.gamma * chosen
             X_t = X[rows]
             self.models_[t], makers[t] = self._fit_model(X_t, action[rows], target[rows], rows)
-            score[rows] = self._mask_unfitted(self._scores(self.models_[t], X_t), step[rows])  # as _raw gives them
+            if self.settings.oof_error:  # step t's targets are final now: scored on the rows gathered for the fit
+                self._step_oof[t] = self._step_out_of_fold(makers[t], X_t, action[rows], target[rows], rows)
+            # as _raw gives them: the rows are all at step t, so step t's fitted actions mask every row
+            score = np.where(self.fitted_actions_[t], self._scores(self.models_[t], X_t), np.nan)
+            choice[rows], unconstrained[rows], none_permitted[rows] = constrained_choice(
+                score, proba[rows], self.settings.support_threshold, None if rules is None else rules[rows]
+            )
+            chosen = score[np.arange(rows.size), choice[rows]]  # as _chosen_score reads them
         self.n_iterations_, self.converged_ = self.horizon, True
-        return target, makers, score
+        return target, makers, (choice, unconstrained, none_permitted)
 
     def _fit_pooled(self, X, step, action, reward, next_row, proba, rules):
         Xp = self._pooled_X(X, step)
@@ -327,13 +339,13 @@ class FittedQIteration(BackwardQModel):
         if self.settings.mode == "pooled":
             error = out_of_fold_errors(makers[0], self._pooled_X(X, step), action, target, folds)
             return {int(t): float(np.nanmean(error[step == t])) for t in np.unique(step)}
-        out = {}
-        for t in np.flatnonzero(np.bincount(step)):  # the steps present, ascending (np.unique without a sort)
-            rows = np.flatnonzero(step == t)
-            out[int(t)] = float(
-                np.nanmean(out_of_fold_errors(makers[t], X[rows], action[rows], target[rows], folds[rows]))
-            )
-        return out
+        # the steps present, ascending (np.unique without a sort); each step's error was computed by _fit_backward
+        # right after its fit, on the rows it had gathered for it (not gathered out of X again here)
+        return {int(t): self._step_oof[t] for t in np.flatnonzero(np.bincount(step))}
+
+    def _step_out_of_fold(self, make, X_t, action_t, target_t, rows):
+        """Mean out-of-fold squared error of one step's Q-models, on that step's rows (``rows`` of the table)."""
+        return float(np.nanmean(out_of_fold_errors(make, X_t, action_t, target_t, self._folds[rows])))
 
     def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None):
         """Fit the Q-models; return ``self``.
@@ -366,21 +378,22 @@ class FittedQIteration(BackwardQModel):
         self.fitted_actions_ = counts > 0
         self.n_features_in_ = X.shape[1]
         self.alpha_ = []
+        self._step_oof = {}
         learn = self._fit_pooled if self.settings.mode == "pooled" else self._fit_backward
         with threadpool_limits(limits=1):  # many small tall-skinny solves: BLAS threads only contend
-            target, makers, score = learn(X, step, action, reward, next_row_index(episode), proba, rules)
+            target, makers, choices = learn(X, step, action, reward, next_row_index(episode), proba, rules)
             self._set_coef()
             self.oof_mse_ = self._out_of_fold(X, step, action, target, makers) if self.settings.oof_error else None
         self._warn_unfitted(step)
-        if score is None:
-            score = self._raw(X, step, scores=True)
-        choice, unconstrained, none_permitted = constrained_choice(score, proba, self.settings.support_threshold, rules)
+        if choices is None:
+            choices = constrained_choice(self._raw(X, step, scores=True), proba, self.settings.support_threshold, rules)
+        choice, unconstrained, none_permitted = choices
         self.record_choice_ = choice
         self.n_changed_by_support_ = int(np.sum(choice != unconstrained))
         self.n_without_permitted_action_ = int(np.sum(none_permitted))
         # the folds and resamples (one entry per decision and per patient) serve the fits only: not kept with the
         # fitted models, which a stage holds for several regimes at once
-        del self._folds, self._resamples
+        del self._folds, self._resamples, self._step_oof
         return self
 
     def _check_rules(self, rule_permitted, n_rows):

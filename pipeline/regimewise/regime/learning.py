@@ -71,16 +71,19 @@ def fit_q_learning(
     safeguards: str = "pessimistic",
     oof_error: bool = False,
     X: np.ndarray | None = None,
+    arrays: dict | None = None,
 ) -> FittedQIteration:
     """Fitted-Q iteration on the decisions with the protocol's Q-model, learning mode and safeguards.
 
     ``safeguards`` is one of :data:`SAFEGUARDS`: each level adds one safeguard to the previous one
     (``"pessimistic"``, the default, applies every safeguard the protocol sets). ``X`` is
-    ``features.transform(decisions)`` when the caller has it already (computed here if None).
+    ``features.transform(decisions)`` and ``arrays`` is :func:`decision_arrays` of the decisions when the caller
+    has them already (computed here if None).
     """
     level = SAFEGUARDS.index(safeguards)
     c, q = protocol.constraints, protocol.q_model
     rules = ClinicalRuleSet.from_protocol(protocol) if level >= 2 else None
+    arrays = decision_arrays(decisions, protocol) if arrays is None else arrays
     settings = QLearningSettings(
         gamma=protocol.discount,
         support_threshold=c.support_threshold if level >= 1 else 0.0,
@@ -105,13 +108,13 @@ def fit_q_learning(
         action_labels=protocol.action_labels,
     ).fit(
         features.transform(decisions) if X is None else X,
-        decisions["step"].to_numpy(dtype=np.int64),
-        action_codes(decisions, protocol.action_labels),
-        protocol.reward.sign * decisions["reward"].to_numpy(dtype=float),  # lower is better: maximise −reward
-        episode_codes(decisions),
+        arrays["step"],
+        arrays["action"],
+        arrays["reward"],
+        arrays["episode"],
         behaviour_proba,
         rule_permitted=None if rules is None else rules.permitted(decisions),
-        groups=pd.factorize(patient_clusters(decisions), sort=False)[0] if "patient_id" in decisions else None,
+        groups=arrays["groups"],
     )
 
 
@@ -124,6 +127,19 @@ def q_design_of_rows(features: QFeatures, frame: pd.DataFrame) -> Callable[[np.n
         return lambda rows: features.transform(frame.iloc[rows])
     states = StateArrays(features.scaler, frame)
     return lambda rows: features.transform_arrays(states, rows)
+
+
+def decision_arrays(decisions: pd.DataFrame, protocol: Protocol) -> dict:
+    """The arrays of the decisions :func:`fit_q_learning` fits on besides the Q-features and the clinical rules:
+    ``step``, ``action`` codes, ``reward`` (to maximise), ``episode`` codes and patient ``groups`` (None without
+    ``patient_id``). The fits only read them, so the side-by-side regimes share one set (:func:`variant_tasks`)."""
+    return {
+        "step": decisions["step"].to_numpy(dtype=np.int64),
+        "action": action_codes(decisions, protocol.action_labels),
+        "reward": protocol.reward.sign * decisions["reward"].to_numpy(dtype=float),  # lower is better: maximise −reward
+        "episode": episode_codes(decisions),
+        "groups": pd.factorize(patient_clusters(decisions), sort=False)[0] if "patient_id" in decisions else None,
+    }
 
 
 def boosting_params(protocol: Protocol) -> dict:
@@ -145,15 +161,19 @@ def variant_tasks(
 
     Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
     protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
-    ``features.transform(decisions)``, built here once for all of them when not given; the fits only read it.
-    Each callable lets go of ``X`` when it has run, so once every one has run the caller's ``del X`` frees it (the
-    regime stage's summaries need memory of their own); a callable run a second time builds ``X`` again.
+    ``features.transform(decisions)``, built here once for all of them when not given; the fits only read it, and
+    likewise the decisions' codes (:func:`decision_arrays`, which took each fit about a second of the pandas work
+    at a million episodes). Each callable lets go of ``X`` and of the codes when it has run, so once every one has
+    run the caller's ``del X`` frees it (the regime stage's summaries need memory of their own); a callable run a
+    second time builds them again.
     """
     names = list(SAFEGUARDS if protocol.constraints.pessimism > 0 else SAFEGUARDS[:-1])
     X = features.transform(decisions) if X is None else X
+    arrays = decision_arrays(decisions, protocol)
 
     def task(name, held):
         def fit():
+            X, arrays = held.pop() if held else (None, None)  # each callable's own list: no other thread touches it
             return fit_q_learning(
                 decisions,
                 behaviour_proba,
@@ -161,12 +181,13 @@ def variant_tasks(
                 features,
                 safeguards=name,
                 oof_error=name == names[-1],
-                X=held.pop() if held else None,  # each callable's own list: no other thread touches it
+                X=X,
+                arrays=arrays,
             )
 
         return fit
 
-    return {name: task(name, [X]) for name in names}
+    return {name: task(name, [(X, arrays)]) for name in names}
 
 
 def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
