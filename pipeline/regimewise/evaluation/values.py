@@ -61,11 +61,13 @@ class FeatureRows:
     are computed from the frame's rows instead, every column the scaler reads included (its missing indicators).
     """
 
-    def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol):
+    def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol, keep_powers: bool = True):
         self.features = features
         self.frame = frame
         self.states = StateArrays(features.scaler, frame) if features.terms is None else None
-        self.kept = features.kept_powers(len(frame), KEPT_POWER_BYTES) if self.states is not None else None
+        # without ``keep_powers`` (rows read in one pass only: kept cubes would never be read) none are kept
+        keep = keep_powers and self.states is not None
+        self.kept = features.kept_powers(len(frame), KEPT_POWER_BYTES) if keep else None
         # the terms read the states' columns and the scaler its indicators: a block gathers those, not the ids
         wanted = [s.name for s in protocol.states] + list(features.scaler.indicators)
         self.columns = [c for c in wanted if c in frame.columns]
@@ -102,9 +104,16 @@ class LoggedDecisions:
 
     @classmethod
     def from_frame(
-        cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, *, feature_rows: bool = False
+        cls,
+        frame: pd.DataFrame,
+        behaviour_proba: np.ndarray,
+        protocol: Protocol,
+        *,
+        feature_rows: bool = False,
+        keep_powers: bool = True,
     ) -> LoggedDecisions:
-        """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame``."""
+        """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame`` (``keep_powers``:
+        its argument)."""
         features = QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol, frame)
         # the layout every importance weighting needs, checked once here (the error it raises is the one the first
         # weighting would raise)
@@ -121,7 +130,7 @@ class LoggedDecisions:
         if proba.ndim == 2:  # else every weighting stops at its shape before the checks it skips
             proba = check_proba(proba, len(frame), proba.shape[1], "behaviour_proba")
         return cls(
-            X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
+            X=FeatureRows(features, frame, protocol, keep_powers) if feature_rows else features.transform(frame),
             step=step,
             action=action,
             reward=reward,
@@ -767,8 +776,10 @@ def evaluate_side_by_side(
     *,
     threads: int = 1,
 ) -> list[dict]:
-    """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own."""
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own. When one pass
+    takes every regime, the features are read once: no cube of theirs is kept for a later pass."""
+    passes = -(-len(side_by_side) // regimes_per_pass(len(frame)))
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True, keep_powers=passes > 1)
     return _side_by_side(logged, side_by_side, protocol, threads)
 
 
