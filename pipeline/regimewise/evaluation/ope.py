@@ -31,6 +31,7 @@ import numpy as np
 
 from regimewise.core.arrays import (
     action_name,
+    check_codes,
     check_finite,
     check_layout,
     check_proba,
@@ -143,6 +144,8 @@ class ImportanceWeights:
 
     def to_grid(self, values):
         """Place per-decision ``values`` (n,) on the (E, H) grid, zero where an episode has ended."""
+        if self.row_step.shape[0] == self.cumulative.size:  # every episode lasts H steps: row i is cell i
+            return np.array(values, dtype=float).reshape(self.cumulative.shape)
         grid = np.zeros(self.cumulative.shape)
         grid[self.row_episode, self.row_step] = values
         return grid
@@ -159,8 +162,9 @@ def importance_weights(
         Decision table, rows sorted by episode then step.
     behaviour_proba : ndarray, shape (n, K)
         Usual care's (estimated) probability of every action at each decision.
-    target_proba : ndarray, shape (n, K)
-        The evaluated regime's probability of every action at each decision (one-hot if deterministic).
+    target_proba : ndarray, shape (n, K) or (n,)
+        The evaluated regime's probability of every action at each decision (one-hot if deterministic), or a
+        deterministic regime's action codes (n,): the weights of its one-hot probabilities, without building them.
     horizon : int
         Number of decision steps H.
     action_labels : sequence of str, optional
@@ -194,20 +198,35 @@ def importance_weights(
         raise UserInputError(f"reward has {reward.shape[0]} values for {n} decisions; pass one per decision.")
     if not layout_checked:
         behaviour_proba = check_proba(behaviour_proba, n, n_actions, "behaviour_proba")
-    target_proba = check_proba(target_proba, n, n_actions, "target_proba")
+    codes = np.ndim(target_proba) == 1
+    if codes:  # one-hot probabilities are a distribution: the codes need only be actions
+        target_proba = check_codes(target_proba, "target_proba", n_actions)
+        if target_proba.shape[0] != n:
+            raise UserInputError(f"target_proba has {target_proba.shape[0]} action codes for {n} decisions.")
+    elif not (layout_checked and target_proba is behaviour_proba):  # usual care's own, checked: not again
+        target_proba = check_proba(target_proba, n, n_actions, "target_proba")
     shape = (episode[-1] + 1, horizon)
     ratio = np.ones(shape)
     followed = np.ones(shape, dtype=bool)
     unseen = 0
-    # the grids' cells in row-major order: a decision's cell is episode * horizon + step
+    # usual care's zero probabilities looked for once: without any, no decision counts towards the warning below
+    some_zero = bool(behaviour_proba.min() <= 0)
+    # the grids' cells in row-major order: a decision's cell is episode * horizon + step; when every episode lasts
+    # the horizon, the rows fill the grid in that order and a block's cells are its rows
+    full = n == ratio.size
     ratio_cells, followed_cells = ratio.reshape(-1), followed.reshape(-1)
     for start in range(0, n, WEIGHT_ROWS):  # a block of rows at a time: no n-sized temporaries per regime
         rows = slice(start, min(start + WEIGHT_ROWS, n))  # views of the block, not copies
         taken, behaviour, target = action[rows], behaviour_proba[rows], target_proba[rows]
         at = np.arange(taken.shape[0])
-        taken_b, taken_e = behaviour[at, taken], target[at, taken]
-        unseen += _check_positivity(taken_b, taken, behaviour, target, action_labels, first_row=start)
-        cells = episode[rows] * horizon + step[rows]
+        taken_b = behaviour[at, taken]
+        # a one-hot row's probability of the action taken is exactly 1.0 or 0.0
+        taken_e = (target == taken).astype(float) if codes else target[at, taken]
+        _check_positivity(taken_b, taken, action_labels, first_row=start)
+        if some_zero:
+            never = behaviour <= 0
+            unseen += int(np.sum(never[at, target] if codes else (never & (target > 0)).any(axis=1)))
+        cells = rows if full else episode[rows] * horizon + step[rows]
         ratio_cells[cells] = taken_e / taken_b
         followed_cells[cells] = taken_e >= 1 - _FOLLOW_TOLERANCE
     if unseen:
@@ -217,8 +236,11 @@ def importance_weights(
             StatisticalWarning,
             stacklevel=2,
         )
-    grid_reward = np.zeros(shape)
-    grid_reward[episode, step] = reward
+    if full:
+        grid_reward = np.array(reward, dtype=float).reshape(shape)
+    else:
+        grid_reward = np.zeros(shape)
+        grid_reward[episode, step] = reward
     return ImportanceWeights(
         cumulative=np.cumprod(ratio, axis=1, out=ratio),
         reward=grid_reward,
@@ -231,9 +253,8 @@ def importance_weights(
 WEIGHT_ROWS = 65_536  # decisions whose taken probabilities are read at a time
 
 
-def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_labels, first_row=0):
-    """Refuse a taken action usual care could not take; return how many decisions (of these rows, the table's
-    from ``first_row``) the regime gives probability to an action usual care never takes (warned about once)."""
+def _check_positivity(taken_b, action, action_labels, first_row=0):
+    """Refuse a taken action usual care could not take (of these rows, the table's from ``first_row``)."""
     bad = np.flatnonzero(taken_b <= 0)
     if bad.size:
         raise UserInputError(
@@ -241,12 +262,22 @@ def _check_positivity(taken_b, action, behaviour_proba, target_proba, action_lab
             f"{action_name(action[bad[0]], action_labels)} is 0, so its importance weight is undefined; fix the "
             "usual-care model (e.g. bound probabilities away from 0)."
         )
-    return int(np.sum(((behaviour_proba <= 0) & (target_proba > 0)).any(axis=1)))
 
 
 def _kish(w):
-    """Kish ESS (:func:`regimewise.core.weighting.kish_ess`), 0 when every weight is 0."""
-    return kish_ess(w) if w.sum() > 0 else 0.0
+    """Kish ESS (:func:`regimewise.core.weighting.kish_ess`), 0 when every weight is 0.
+
+    ``w`` is a column of the (E, H) grid: it is read once into a contiguous copy and summed there (the same sums:
+    numpy sums a vector in the same order whatever its stride). A finite positive sum has no infinite or missing
+    term, so with no negative weight kish_ess's checks hold and it is its formula on that sum; else kish_ess
+    decides (and raises as it does)."""
+    w = np.ascontiguousarray(w)
+    total = w.sum()
+    if not total > 0:
+        return 0.0
+    if np.isfinite(total) and w.min() >= 0:
+        return float(total**2 / np.sum(w**2))
+    return kish_ess(w)
 
 
 def _estimate(name, value, weights, se=float("nan")):
@@ -337,10 +368,7 @@ def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
 
     Their sum over episodes is the estimate.
     """
-    n_rows = weights.row_step.shape[0]
-    q, v = check_finite(q_taken, "q_taken", 1), check_finite(v_target, "v_target", 1)
-    if not q.shape[0] == v.shape[0] == n_rows:
-        raise UserInputError(f"q_taken and v_target need one value per decision ({n_rows}); pass them from fqi.")
+    q, v = _checked_models(weights, q_taken, v_target)
     previous = np.hstack([np.full((normalised.shape[0], 1), 1.0 / normalised.shape[0]), normalised[:, :-1]])
     # normalised · r − (normalised · Q̂ − previous · V̂), each product formed in place in its own grid: the same
     # operations on the same numbers (a product does not depend on the order of its factors), fewer (E, H) grids
@@ -353,6 +381,15 @@ def _doubly_robust_value(normalised, weights, q_taken, v_target, gamma):
     terms = normalised * weights.reward
     terms -= model
     return terms @ _discounts(terms.shape[1], gamma)
+
+
+def _checked_models(weights, q_taken, v_target):
+    """Q̂ taken and V̂ as finite float vectors of one value per decision, or the error saying what is wrong."""
+    n_rows = weights.row_step.shape[0]
+    q, v = check_finite(q_taken, "q_taken", 1), check_finite(v_target, "v_target", 1)
+    if not q.shape[0] == v.shape[0] == n_rows:
+        raise UserInputError(f"q_taken and v_target need one value per decision ({n_rows}); pass them from fqi.")
+    return q, v
 
 
 @computes("dr")
@@ -432,19 +469,28 @@ def evaluate_off_policy(
     return estimates_from_weights(weights, gamma, q_taken, v_target)
 
 
-def estimates_from_weights(weights, gamma=1.0, q_taken=None, v_target=None):
+def estimates_from_weights(weights, gamma=1.0, q_taken=None, v_target=None, names=None):
     """Every estimator of this module on importance weights computed once (:func:`importance_weights`), so that
     the evaluated regime's (n, K) probabilities need not be held while the estimators run.
+
+    ``names`` (registry names, optional): only those estimators are computed, the others' work is not done. The
+    Q-model's values are still checked as a doubly robust estimator would check them, so the same inputs stop
+    with the same error.
 
     Returns
     -------
     dict of str to OffPolicyEstimate
-        As :func:`evaluate_off_policy`.
+        As :func:`evaluate_off_policy` (with ``names``, theirs only).
     """
     results = []
+    models = q_taken is not None and v_target is not None
     for name, estimate in COMPUTE.items():
+        if names is not None and name not in names:
+            continue
         if ESTIMATORS[name].family == "weights":
             results.append(estimate(weights, gamma))
-        elif q_taken is not None and v_target is not None:
+        elif models:
             results.append(estimate(weights, q_taken, v_target, gamma))
+    if models and names is not None and not any(ESTIMATORS[n].family == "both" for n in COMPUTE if n in names):
+        _checked_models(weights, q_taken, v_target)
     return {result.estimator: result for result in results}

@@ -111,7 +111,7 @@ def override_proba(recommended, q_values, behaviour_proba, threshold):
     rows = np.arange(behaviour_proba.shape[0])
     moved = overridden_actions(recommended, q_values, threshold)
     out = np.where(moved, 0.0, behaviour_proba)
-    out[rows, recommended] += np.sum(np.where(moved, behaviour_proba, 0.0), axis=1)
+    out[rows, recommended] += row_sums(np.where(moved, behaviour_proba, 0.0))
     return _tidy(out)
 
 
@@ -129,7 +129,26 @@ def incremental_proba(recommended, behaviour_proba, delta):
 def _tidy(proba):
     """Rows clipped to [0, 1] and renormalised: removes rounding that would leave a sum of 1 + 1e-16."""
     proba = np.clip(proba, 0.0, 1.0)
-    return proba / proba.sum(axis=1, keepdims=True)
+    return proba / row_sums(proba)[:, None]
+
+
+SHORT_ROW = 8  # numpy adds a row of fewer values one after the other, in any memory layout (row_sums)
+
+
+def row_sums(values) -> np.ndarray:
+    """``numpy.sum(values, axis=1)`` of a 2-D float array, bit for bit, added a column at a time.
+
+    numpy adds a row of fewer than :data:`SHORT_ROW` values one value after the other, starting from +0.0, in any
+    memory layout (a longer row of a row-major array is added pairwise). On a row-major (m, K) array it does so one
+    short row at a time, several times slower than adding whole columns in that order, as here; longer rows are
+    left to numpy. (tests/evaluation/test_row_sums.py holds numpy to this.)"""
+    values = np.asarray(values)
+    if values.ndim != 2 or values.dtype != np.float64 or not 0 < values.shape[1] < SHORT_ROW:
+        return np.sum(values, axis=1)
+    out = values[:, 0] + 0.0
+    for j in range(1, values.shape[1]):
+        out += values[:, j]
+    return out
 
 
 def strategy_proba(s: Strategy, recommended, behaviour_proba, q_values=None):
@@ -157,9 +176,15 @@ def share_changed(target_proba, behaviour_proba) -> float:
 
 def changed_by_row(target_proba, behaviour_proba) -> np.ndarray:
     """Per decision, Σ_a max(0, π_e(a|s) − p̂_b(a|s)) (the terms of :func:`share_changed`; a row's term depends on
-    that row alone)."""
+    that row alone).
+
+    ``target_proba`` may be a deterministic regime's action codes (m,): its one-hot row's only positive term is
+    1 − p̂_b(its action|s), and adding zeros to it leaves it as it is (the same number, its row not built)."""
+    if np.ndim(target_proba) == 1:  # a deterministic regime's codes: of its one-hot row, 1 − p̂_b(its action|s)
+        behaviour = np.asarray(behaviour_proba, dtype=float)
+        return 1.0 - behaviour[np.arange(behaviour.shape[0]), np.asarray(target_proba)]
     diff = np.asarray(target_proba, dtype=float) - np.asarray(behaviour_proba, dtype=float)
-    return np.sum(np.clip(diff, 0.0, None), axis=1)
+    return row_sums(np.clip(diff, 0.0, None))
 
 
 def protocol_strategies(spec) -> list[Strategy]:

@@ -32,7 +32,7 @@ from regimewise.estimators import ESTIMATORS
 from regimewise.evaluation.fqe import FittedQEvaluation
 from regimewise.evaluation.ope import estimates_from_weights, importance_weights
 from regimewise.evaluation.outcome_models import needs_outcome_model, outcome_models
-from regimewise.evaluation.strategies import changed_by_row, protocol_strategies, strategy_proba
+from regimewise.evaluation.strategies import SHORT_ROW, changed_by_row, protocol_strategies, strategy_proba
 from regimewise.evaluation.verdicts import outcome_model_share, unsupported_by_row, verdict, worst
 from regimewise.protocol.model import Protocol
 from regimewise.protocol.sections import EvaluationSpec
@@ -61,11 +61,13 @@ class FeatureRows:
     are computed from the frame's rows instead, every column the scaler reads included (its missing indicators).
     """
 
-    def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol):
+    def __init__(self, features: QFeatures, frame: pd.DataFrame, protocol: Protocol, keep_powers: bool = True):
         self.features = features
         self.frame = frame
         self.states = StateArrays(features.scaler, frame) if features.terms is None else None
-        self.kept = features.kept_powers(len(frame), KEPT_POWER_BYTES) if self.states is not None else None
+        # without ``keep_powers`` (rows read in one pass only: kept cubes would never be read) none are kept
+        keep = keep_powers and self.states is not None
+        self.kept = features.kept_powers(len(frame), KEPT_POWER_BYTES) if keep else None
         # the terms read the states' columns and the scaler its indicators: a block gathers those, not the ids
         wanted = [s.name for s in protocol.states] + list(features.scaler.indicators)
         self.columns = [c for c in wanted if c in frame.columns]
@@ -102,9 +104,16 @@ class LoggedDecisions:
 
     @classmethod
     def from_frame(
-        cls, frame: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, *, feature_rows: bool = False
+        cls,
+        frame: pd.DataFrame,
+        behaviour_proba: np.ndarray,
+        protocol: Protocol,
+        *,
+        feature_rows: bool = False,
+        keep_powers: bool = True,
     ) -> LoggedDecisions:
-        """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame``."""
+        """The arrays of ``frame``; with ``feature_rows`` X is a :class:`FeatureRows` of ``frame`` (``keep_powers``:
+        its argument)."""
         features = QFeatures.from_protocol(StateScaler.fit(frame, protocol), protocol, frame)
         # the layout every importance weighting needs, checked once here (the error it raises is the one the first
         # weighting would raise)
@@ -121,7 +130,7 @@ class LoggedDecisions:
         if proba.ndim == 2:  # else every weighting stops at its shape before the checks it skips
             proba = check_proba(proba, len(frame), proba.shape[1], "behaviour_proba")
         return cls(
-            X=FeatureRows(features, frame, protocol) if feature_rows else features.transform(frame),
+            X=FeatureRows(features, frame, protocol, keep_powers) if feature_rows else features.transform(frame),
             step=step,
             action=action,
             reward=reward,
@@ -276,14 +285,20 @@ class StrategyInputs:
         self.learned_q = learned_q
         self._last = threading.local()
 
-    def at(self, rows) -> tuple:
-        """(recommended, usual care's probabilities, Q-values or None) at ``rows`` (positions, a mask or a slice)."""
+    def at(self, rows, with_q: bool = True) -> tuple:
+        """(recommended, usual care's probabilities, Q-values or None) at ``rows`` (positions, a mask or a slice).
+        Without ``with_q`` the Q-values are None unless they were gathered for these rows already: only the override
+        strategies read them, and a pass without one need not gather them."""
         local = self._last
         last = getattr(local, "entry", None)
         if last is not None and last[0]() is rows:
-            return last[1]
+            gathered = last[1]
+            if with_q and gathered[2] is None and self.learned_q is not None:
+                gathered = (*gathered[:2], self.learned_q[rows])
+                local.entry = (last[0], gathered)
+            return gathered
         local.entry = None  # what was gathered for other rows is let go first
-        q = None if self.learned_q is None else self.learned_q[rows]
+        q = None if self.learned_q is None or not with_q else self.learned_q[rows]
         gathered = (self.recommended[rows], self.behaviour_proba[rows], q)
         if isinstance(rows, np.ndarray):
             local.entry = (weakref.ref(rows, functools.partial(_forget, local)), gathered)
@@ -303,7 +318,7 @@ def _strategy_by_rows(s, inputs: StrategyInputs):
     Q-values) stops here, as it would whole."""
 
     def rows_proba(rows):
-        return strategy_proba(s, *inputs.at(rows))
+        return strategy_proba(s, *inputs.at(rows, with_q=s.family == "override_gain"))
 
     rows_proba(slice(0, 0))
     return rows_proba
@@ -371,7 +386,8 @@ def regime_estimates(
     action codes, or a function of the rows (:func:`regimewise.regime.qmodels.target_rows`); its (n, K)
     probabilities are built once, for the importance weights and the shares (unsupported, changed), read a block of
     rows at a time as :func:`row_mean` would build them (the same numbers), and are not held while the estimators
-    run.
+    run. Action codes are read as they are (:func:`weighted_target`). Only the protocol's estimators are computed
+    (:func:`regimewise.evaluation.ope.estimates_from_weights`).
     """
     q_taken, v_target, fqe_value = None, None, float("nan")
     if fitted is None and needs_outcome_model(protocol):  # the Q-models are fitted only when an estimator uses them
@@ -385,8 +401,8 @@ def regime_estimates(
     elif fitted is not None:
         q_taken, v_target, fqe_value = fitted
     # the regime's (n, K) probabilities, for its shares and then its weights (the shares first: their column of
-    # terms is not held beside the weights)
-    proba = whole_target(target, logged.behaviour_proba)
+    # terms is not held beside the weights); a regime given by its action codes is weighted and shared from them
+    proba = weighted_target(target, logged.behaviour_proba)
     threshold = protocol.constraints.support_threshold
     share = row_mean(proba, logged.behaviour_proba, lambda t, b: unsupported_by_row(t, b, threshold))
     share_changed = row_mean(proba, logged.behaviour_proba, changed_by_row) if changed else None
@@ -398,7 +414,9 @@ def regime_estimates(
         layout_checked=logged.layout_checked,
     )
     del proba
-    results = estimates_from_weights(weights, protocol.discount, q_taken, v_target)
+    # the protocol's estimators, and PDWIS, whose weight diagnostics the model-only estimate carries
+    wanted = {*protocol.evaluation.estimators, "pdwis"}
+    results = estimates_from_weights(weights, protocol.discount, q_taken, v_target, names=wanted)
     del weights
     for e in ESTIMATORS.values():  # a model-based estimate carries the regime's weight diagnostics
         if e.needs_q_model:
@@ -464,15 +482,33 @@ def whole_target(target, behaviour_proba: np.ndarray) -> np.ndarray:
     """A regime's (n, K) probabilities from a target as :func:`regimewise.regime.qmodels.target_rows` reads it,
     filled a block of :data:`SHARE_ROWS` rows at a time, so that building them takes little more memory than
     they hold (a strategy built whole makes several (n, K) temporaries). (n, K) probabilities are returned as
-    given."""
+    given.
+
+    With fewer than :data:`regimewise.evaluation.strategies.SHORT_ROW` actions they are laid out column by
+    column: numpy sums such rows in the same order in either layout (:func:`regimewise.evaluation.strategies.row_sums`),
+    so every row sum of them is the same number, and the row sums of their check
+    (:func:`regimewise.core.arrays.check_proba`) and shares run down whole columns instead of row by row. They
+    enter no matrix product."""
     if isinstance(target, np.ndarray) and target.ndim == 2:
         return target
     n, k = behaviour_proba.shape
-    out = np.empty((n, k))
+    out = np.empty((n, k), order="F" if k < SHORT_ROW else "C")
     for start in range(0, n, SHARE_ROWS):
         rows = slice(start, start + SHARE_ROWS)
         out[rows] = target_rows(target, rows, k)
     return out
+
+
+def weighted_target(target, behaviour_proba: np.ndarray) -> np.ndarray:
+    """What a regime's importance weights and shares are computed from: its (n,) action codes when ``target`` is
+    given by them (every code an action of usual care's columns), else its (n, K) probabilities
+    (:func:`whole_target`). The weights and the shares of the codes are those of their one-hot probabilities
+    (:func:`regimewise.evaluation.ope.importance_weights`, :func:`row_mean`), which are then never built."""
+    k = behaviour_proba.shape[1]
+    if isinstance(target, np.ndarray) and target.ndim == 1 and target.dtype.kind in "iu":
+        if target.size and 0 <= target.min() and target.max() < k:
+            return target
+    return whole_target(target, behaviour_proba)
 
 
 def row_mean(target, behaviour_proba: np.ndarray, term) -> float:
@@ -480,12 +516,15 @@ def row_mean(target, behaviour_proba: np.ndarray, term) -> float:
     alone (:func:`regimewise.evaluation.verdicts.unsupported_by_row`,
     :func:`regimewise.evaluation.strategies.changed_by_row`). The regime's probabilities are built a block of
     :data:`SHARE_ROWS` rows at a time (:func:`regimewise.regime.qmodels.target_rows`) rather than whole; the mean
-    is taken over the whole column of terms, so it is the number the whole (n, K) matrix gives."""
+    is taken over the whole column of terms, so it is the number the whole (n, K) matrix gives. A regime given by
+    its (n,) action codes (:func:`weighted_target`) passes its codes to ``term``, which reads them as its one-hot
+    probabilities."""
     n, k = behaviour_proba.shape
+    codes = isinstance(target, np.ndarray) and target.ndim == 1
     terms = np.empty(n)
     for start in range(0, n, SHARE_ROWS):
         rows = slice(start, start + SHARE_ROWS)
-        terms[rows] = term(target_rows(target, rows, k), behaviour_proba[rows])
+        terms[rows] = term(target[rows] if codes else target_rows(target, rows, k), behaviour_proba[rows])
     return float(np.mean(terms))
 
 
@@ -737,8 +776,10 @@ def evaluate_side_by_side(
     *,
     threads: int = 1,
 ) -> list[dict]:
-    """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own."""
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own. When one pass
+    takes every regime, the features are read once: no cube of theirs is kept for a later pass."""
+    passes = -(-len(side_by_side) // regimes_per_pass(len(frame)))
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True, keep_powers=passes > 1)
     return _side_by_side(logged, side_by_side, protocol, threads)
 
 
@@ -758,7 +799,8 @@ def _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads)
             threads,
         )
         if chunk[0]["name"] == "learned":
-            histograms = weight_histograms(logged, whole_target(chunk[0]["target"], logged.behaviour_proba), protocol)
+            learned = weighted_target(chunk[0]["target"], logged.behaviour_proba)
+            histograms = weight_histograms(logged, learned, protocol)
         del chunk, models
     return regimes, histograms
 

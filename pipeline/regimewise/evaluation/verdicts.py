@@ -31,6 +31,7 @@ from __future__ import annotations
 import numpy as np
 
 from regimewise.estimators import ESTIMATORS
+from regimewise.evaluation.strategies import row_sums
 
 SUPPORTED = "supported"
 MODEL_PROJECTION = "model projection"
@@ -48,10 +49,18 @@ def unsupported_share(target_proba, behaviour_proba, support_threshold: float) -
 
 def unsupported_by_row(target_proba, behaviour_proba, support_threshold: float) -> np.ndarray:
     """Per decision, the regime's probability on actions usual care takes with probability < threshold (the
-    terms of :func:`unsupported_share`; a row's term depends on that row alone)."""
+    terms of :func:`unsupported_share`; a row's term depends on that row alone).
+
+    ``target_proba`` may be a deterministic regime's action codes (m,): the row sum of its one-hot row is then
+    1.0 where its action is below the threshold and 0.0 elsewhere (zeros and one 1.0 add up to exactly that), read
+    without building the row."""
+    if np.ndim(target_proba) == 1:
+        codes = np.asarray(target_proba)
+        below = np.asarray(behaviour_proba, dtype=float) < support_threshold
+        return below[np.arange(codes.shape[0]), codes].astype(float)
     target = np.asarray(target_proba, dtype=float)
     below = np.asarray(behaviour_proba, dtype=float) < support_threshold
-    return np.sum(np.where(below, target, 0.0), axis=1)
+    return row_sums(np.where(below, target, 0.0))
 
 
 def verdict(
