@@ -10,23 +10,23 @@ SETTINGS = load_settings(config)
 
 # Job priorities, for when jobs compete for a core: each rule's seconds of work on its longest path to the end of
 # the run (its own time plus the longest chain of jobs that wait for it), measured at 1M episodes x 12 on 2 cores
-# (bench/RESULTS.md, the run of 46aceb1). Longest path first keeps the cores busy to the end: the short jobs the
+# (bench/RESULTS.md, the run of 4532638). Longest path first keeps the cores busy to the end: the short jobs the
 # report waits for come last, where a long one would leave the other core idle. The bootstrap shards, long with
 # many replicates, come first among what is ready when they are.
 PRIORITY = {
     "bootstrap_shard": 200,
-    "regime_fit": 189,
-    "evaluate_learned": 110,
-    "regime": 82,
-    "evaluate_fixed": 68,
-    "survival": 57,
-    "evaluate_side": 54,
-    "sensitivity_curves": 47,
-    "behaviour_diagnostics": 43,
-    "describe": 33,
-    "evaluate": 20,
-    "bootstrap": 17,
-    "sensitivity": 14,
+    "regime_fit": 158,
+    "evaluate_learned": 77,
+    "regime": 69,
+    "survival": 52,
+    "evaluate_fixed": 45,
+    "sensitivity_curves": 35,
+    "evaluate_side": 34,
+    "behaviour_diagnostics": 32,
+    "describe": 23,
+    "evaluate": 10,
+    "bootstrap": 9,
+    "sensitivity": 8,
 }
 
 
