@@ -208,7 +208,7 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
 def read_probabilities(path, labels) -> np.ndarray:
     """Usual care's probabilities (n, K) from the behaviour stage's table, reading its probability columns only:
     the same values in the same memory layout as taking them from the whole table, without converting a text key
-    per decision (at 12M decisions, 1 to 3 s of each job that reads them)."""
+    per decision (at 12M decisions, 2 to 4 s of each job that reads them)."""
     columns = proba_columns(labels)
     return read_parquet(path, columns)[columns].to_numpy(dtype=float)
 
