@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from regimewise.data.deidentify import (
@@ -263,11 +263,20 @@ NUMBER_TEXT = st.one_of(
 
 @settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(cells=st.lists(st.one_of(NUMBER_TEXT, st.none()), min_size=1, max_size=30), dtype=st.sampled_from(TEXT_DTYPES))
+@example(cells=["", "1535440080131727232"], dtype="object")  # integer and float parsers one unit apart
 def test_numbers_parsed_per_distinct_value_match_the_whole_column(cells, dtype):
     # Text that cannot be a number (a letter before any digit, and no infinity) is not parsed at all.
     values = _column(cells, dtype)
     expected = pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
-    np.testing.assert_array_equal(whole_numbers(values, distinct_text(values))[0], expected)
+    found = whole_numbers(values, distinct_text(values))[0]
+    # pandas parses a column whose cells are all integers with its integer parser and any other column with its
+    # float parser, which is not correctly rounded beyond 2**53: '1535440080131727232' beside an empty cell gives
+    # 1.535440080131727e+18, alone 1.5354400801317274e+18 (the tie rounded to even), one unit in the last place
+    # apart (found by this test; pandas 2.x). Below 2**53 both parse whole numbers exactly, and the guard's rules
+    # read whole numbers below 10**15 only, so beyond 2**53 one unit in the last place is allowed.
+    exact = ~(np.isfinite(expected) & (np.abs(expected) >= 2.0**53))  # infinities and NaN compared as they are
+    np.testing.assert_array_equal(found[exact], expected[exact])
+    assert np.all(np.abs(found[~exact] - expected[~exact]) <= np.spacing(np.abs(expected[~exact])))
 
 
 def _grouped_ends(decisions):
