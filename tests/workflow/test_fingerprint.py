@@ -147,7 +147,6 @@ def test_a_rule_is_fingerprinted_by_the_function_its_stages_table_names(copy):
 )
 def test_a_job_starts_without_the_heavy_libraries(module):
     # a fresh interpreter: this test process has long imported them all
-    code = f"import sys, {module}; print(' '.join(m for m in HEAVY if m in sys.modules))"
-    code = f"HEAVY = {HEAVY_LIBRARIES!r}\n" + code.replace("; print", "\nprint")
+    code = f"import sys, {module}\nprint(' '.join(m for m in {HEAVY_LIBRARIES!r} if m in sys.modules))"
     loaded = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout.split()
     assert loaded == [], f"importing {module} loads {loaded}; import them inside the functions that use them"
