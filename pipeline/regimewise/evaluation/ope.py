@@ -265,19 +265,10 @@ def _check_positivity(taken_b, action, action_labels, first_row=0):
 
 
 def _kish(w):
-    """Kish ESS (:func:`regimewise.core.weighting.kish_ess`), 0 when every weight is 0.
-
-    ``w`` is a column of the (E, H) grid: it is read once into a contiguous copy and summed there (the same sums:
-    numpy sums a vector in the same order whatever its stride). A finite positive sum has no infinite or missing
-    term, so with no negative weight kish_ess's checks hold and it is its formula on that sum; else kish_ess
-    decides (and raises as it does)."""
+    """Kish ESS (:func:`regimewise.core.weighting.kish_ess`) of a column of the (E, H) grid, 0 when every weight is
+    0; the column is read once into contiguous memory for both."""
     w = np.ascontiguousarray(w)
-    total = w.sum()
-    if not total > 0:
-        return 0.0
-    if np.isfinite(total) and w.min() >= 0:
-        return float(total**2 / np.sum(w**2))
-    return kish_ess(w)
+    return kish_ess(w) if w.sum() > 0 else 0.0
 
 
 def _estimate(name, value, weights, se=float("nan")):
