@@ -9,8 +9,8 @@ import pytest
 from support.tiny import tiny_protocol_dict
 
 import regimewise.core.features as features_module
+from regimewise.core.arrays import has_distinct
 from regimewise.core.features import QFeatures, StateScaler
-from regimewise.core.terms import has_distinct
 from regimewise.protocol import Protocol
 from regimewise.regime.learning import q_design_of_rows
 

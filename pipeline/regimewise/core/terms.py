@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regimewise.core.arrays import has_distinct
 from regimewise.errors import UserInputError
 
 
@@ -154,15 +155,3 @@ def spline_design(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX)
 
     rhs = patsy.ModelDesc.from_formula(f"cr(x, df={df}, constraints='center') - 1").rhs_termlist
     return patsy.design_matrix_builders([rhs], data, eval_env=0)[0]
-
-
-def has_distinct(values: np.ndarray, count: int, unique=np.unique, first: int = 4096) -> bool:
-    """Whether ``values`` hold at least ``count`` distinct values (``unique(values).size >= count``), read from a
-    first part of them growing fourfold: the first rows of a table hold enough of them as a rule, and the
-    distinct values of every row (a sort or a hash of millions of values) are then never needed."""
-    rows = first
-    while rows < len(values):
-        if unique(values[:rows]).size >= count:
-            return True
-        rows *= 4
-    return unique(values).size >= count

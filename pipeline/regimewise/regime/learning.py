@@ -17,6 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regimewise.core.arrays import has_distinct
 from regimewise.core.features import (
     QFeatures,
     StateArrays,
@@ -26,7 +27,6 @@ from regimewise.core.features import (
 )
 from regimewise.core.folds import patient_folds
 from regimewise.core.seeds import stream_ints
-from regimewise.core.terms import has_distinct
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
