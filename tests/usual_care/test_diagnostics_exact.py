@@ -10,7 +10,15 @@ import numpy as np
 import pytest
 from scipy.stats import rankdata
 
-from regimewise.usual_care.metrics import _binary_auc, brier_score, multiclass_auc
+from regimewise.usual_care.diagnostics import behaviour_diagnostics_by_step
+from regimewise.usual_care.metrics import (
+    _binary_auc,
+    auc_of_class_scores,
+    brier_score,
+    merged_class_scores,
+    multiclass_auc,
+    sorted_class_scores,
+)
 
 
 def _reference_binary_auc(positive, score):
@@ -69,3 +77,50 @@ def test_brier_score_is_the_one_hot_form_to_the_bit(n, n_actions, order):
     proba = np.asarray(rng.dirichlet(np.ones(n_actions), size=n), order=order)
     codes = rng.integers(0, n_actions, size=n)
     assert brier_score(codes, proba, n_actions).hex() == _reference_brier(codes, proba).hex()
+
+
+@pytest.mark.parametrize("scores", sorted(SCORES))
+@pytest.mark.parametrize("seed", range(3))
+def test_merged_class_scores_are_the_union_sorted(seed, scores):
+    rng = np.random.default_rng(seed)
+    blocks, codes, proba = [], [], []
+    for size in (0, 1, 50, 3000):  # an empty block and a block of one decision among them
+        column = SCORES[scores](rng, 3 * size).reshape(size, 3)
+        code = rng.integers(0, 3, size=size)
+        blocks.append(sorted_class_scores(code, column, 3))
+        codes.append(code)
+        proba.append(column)
+    whole = sorted_class_scores(np.concatenate(codes), np.concatenate(proba), 3)
+    merged = merged_class_scores(blocks, 3)
+    for k in range(3):
+        for side in (0, 1):  # the same values in the same order (-0.0 and 0.0 compare equal, as the counts see them)
+            assert np.array_equal(merged[k][side], whole[k][side])
+    assert [a.size for a, _ in merged_class_scores([], 3)] == [0, 0, 0]
+
+
+def test_auc_of_class_scores_with_a_missing_score_is_undefined():
+    proba = np.array([[0.2, 0.8], [np.nan, 0.5], [0.6, 0.4]])
+    assert np.isnan(auc_of_class_scores(sorted_class_scores([0, 1, 0], proba, 2)))
+    assert np.isnan(multiclass_auc([0, 1, 0], proba, 2))
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_auc_by_step_and_overall_are_multiclass_auc_to_the_bit(seed):
+    """Each step's AUC and the whole cohort's, now from sorted pieces merged across steps, against
+    :func:`multiclass_auc` on the block's rows (the computation used before, itself checked to the bit against
+    the rank-sum form above)."""
+    rng = np.random.default_rng(seed)
+    n_steps, per_step, n_actions = 5, 400, 4
+    steps = np.tile(np.arange(n_steps), per_step)  # decisions by episode then step, as the records are
+    proba = np.round(rng.dirichlet(np.ones(n_actions), size=steps.size), 2) + 0.01  # with ties, none zero
+    proba /= proba.sum(axis=1, keepdims=True)
+    codes = rng.integers(0, n_actions, size=steps.size)
+    codes[steps == 1] = np.where(codes[steps == 1] == 3, 2, codes[steps == 1])  # action 3 never taken at step 1
+    codes[steps == 2] = 0  # one action only at step 2: no AUC there
+    labels = [f"a{k}" for k in range(n_actions)]
+    out = behaviour_diagnostics_by_step(steps, codes, proba, labels, 0.05, (1, 99))
+    for t in range(n_steps):
+        rows = steps == t
+        expected = None if t == 2 else float(multiclass_auc(codes[rows], proba[rows], n_actions))
+        assert out["by_step"][str(t)]["auc"] == expected
+    assert out["overall"]["auc"] == float(multiclass_auc(codes, proba, n_actions))

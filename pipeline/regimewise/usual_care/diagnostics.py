@@ -27,10 +27,12 @@ from regimewise.core.weighting import (
     weight_summary,
 )
 from regimewise.usual_care.metrics import (
+    auc_of_class_scores,
     brier_score,
-    multiclass_auc,
+    merged_class_scores,
     probability_of_taken,
     reliability_curve,
+    sorted_class_scores,
 )
 
 # Overlap verdict thresholds. CRUMP_CUT after Crump et al. (2009), who keep propensities within [0.1, 0.9]
@@ -112,11 +114,12 @@ def _weights_block(taken, percentiles):
     }
 
 
-def _calibration_block(codes, proba, n_actions, labels):
+def _calibration_block(codes, proba, n_actions, labels, scores):
+    """``scores``: the block's :func:`sorted_class_scores` (the AUC's sorted pieces)."""
     present = np.unique(codes).size
     return {
         "decisions": int(codes.size),
-        "auc": float(multiclass_auc(codes, proba, n_actions)) if present > 1 else None,
+        "auc": auc_of_class_scores(scores) if present > 1 else None,
         "brier": brier_score(codes, proba, n_actions),
         "reliability": {label: reliability_curve(codes == k, proba[:, k]) for k, label in enumerate(labels)},
     }
@@ -147,17 +150,22 @@ def behaviour_diagnostics_by_step(steps, codes, proba, labels, support_threshold
     steps = np.asarray(steps)
     codes = np.asarray(codes)
     taken = probability_of_taken(proba, codes)
+    n_actions = len(labels)
 
-    def block(rows):
+    def block(rows, scores):
         return {
-            **_calibration_block(codes[rows], proba[rows], len(labels), labels),
+            **_calibration_block(codes[rows], proba[rows], n_actions, labels, scores),
             "taken_probability": probability_summary(taken[rows]),
             "share_taken_below_support": float(np.mean(taken[rows] < support_threshold)),
             "weights": _weights_block(taken[rows], percentiles),
         }
 
-    by_step = {str(int(t)): block(np.flatnonzero(steps == t)) for t in np.unique(steps)}
-    return {"overall": block(np.arange(steps.size)), "by_step": by_step}
+    step_rows = {t: np.flatnonzero(steps == t) for t in np.unique(steps)}
+    # each step's scores sorted once; the whole cohort's AUC merges them (merged_class_scores), not sorting again
+    step_scores = {t: sorted_class_scores(codes[rows], proba[rows], n_actions) for t, rows in step_rows.items()}
+    by_step = {str(int(t)): block(rows, step_scores[t]) for t, rows in step_rows.items()}
+    overall = merged_class_scores(list(step_scores.values()), n_actions)
+    return {"overall": block(np.arange(steps.size), overall), "by_step": by_step}
 
 
 def overlap_by_step(steps, codes, recommended, proba, support_threshold):

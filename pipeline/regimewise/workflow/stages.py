@@ -192,7 +192,7 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
 
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
-    table = read_parquet(proba)
+    table = read_parquet(proba, ["step", *proba_columns(p.action_labels)])  # not the text keys: 12M strings at 1M
     if not same_rows(table, frame):
         raise UserInputError(f"{proba} does not hold the probabilities of these decisions; rerun the workflow")
     # rows in memory as the fit left them (the diagnostics' sums run over the array in its memory order)
