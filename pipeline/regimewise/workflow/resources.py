@@ -61,15 +61,19 @@ BASE_MB = 400.0
 # 0.1 minute (bench/RESULTS.md, 2026-12-04, at fd68800: every rule on one thread, large arrays kept on the heap;
 # peaks regime_fit 7.7 GB, behaviour 6.9, crossfit 6.9, evaluate_learned 6.3, survival 6.0, evaluate_side 5.9,
 # evaluate_fixed 5.6, behaviour_diagnostics 4.8, regime 4.2, sensitivity_curves 4.1, validate 3.7, describe
-# 3.6 GB); rules measured lower keep the figures of earlier runs. A shard's per-replicate time is at most that of
-# the model-fitting stages together (behaviour, crossfit, regime_fit and the evaluate jobs: about 0.9 CPU minutes
-# per million decisions at 1M); shards were not measured at 1M, so theirs keep a wide margin.
+# 3.6 GB); rules measured lower keep the figures of earlier runs. Times: the larger of that run's and of the run
+# at 63f4457 (2026-12-05) on a machine of the same size whose jobs took 2.1-3.8 times the CPU (behaviour 0.4,
+# crossfit 0.5, regime_fit 0.3 and survival 0.2 minutes per million decisions come from the slower one). A
+# shard's per-replicate time is at most that of the model-fitting stages together (behaviour, crossfit,
+# regime_fit and the evaluate jobs: about 0.9 CPU minutes per million decisions at 1M at fd68800, 1.4
+# on the slower); shards were not measured at 1M, so theirs keep a wide margin (at 100k on the slower machine,
+# 0.7 minutes per replicate per million decisions).
 STAGE_COSTS = {
     "validate": StageCost(BASE_MB, 400.0, 0.2),
-    "behaviour": StageCost(BASE_MB, 600.0, 0.2),
+    "behaviour": StageCost(BASE_MB, 600.0, 0.4),
     "behaviour_diagnostics": StageCost(BASE_MB, 400.0, 0.1),
-    "crossfit": StageCost(BASE_MB, 600.0, 0.3),
-    "regime_fit": StageCost(BASE_MB, 700.0, 0.2),
+    "crossfit": StageCost(BASE_MB, 600.0, 0.5),
+    "regime_fit": StageCost(BASE_MB, 700.0, 0.3),
     "regime": StageCost(BASE_MB, 400.0, 0.1),
     "evaluate_fixed": StageCost(BASE_MB, 500.0, 0.1),
     "evaluate_learned": StageCost(BASE_MB, 600.0, 0.2),
@@ -80,7 +84,7 @@ STAGE_COSTS = {
     "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
     "sensitivity_curves": StageCost(BASE_MB, 400.0, 0.1),
     "sensitivity": StageCost(BASE_MB, 0.0, 0.0),
-    "survival": StageCost(BASE_MB, 500.0, 0.1),
+    "survival": StageCost(BASE_MB, 500.0, 0.2),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
     # not measured at scale: a cohort job simulates a cohort of the records' size and analyses it like a shard
@@ -150,7 +154,7 @@ def stage_resources(rule: str, decisions: int, replicates: int = 0, attempt: int
     Examples
     --------
     >>> stage_resources("regime_fit", 12_000_000)
-    {'mem_mb': 13200, 'runtime': 5}
+    {'mem_mb': 13200, 'runtime': 6}
     """
     cost = STAGE_COSTS[rule]
     millions = decisions / 1e6
