@@ -108,11 +108,17 @@ def registered_stages(modules: dict) -> dict[str, str]:
     """{rule: the name of its stage function}, read from the ``STAGES`` table of the stages module (a dict literal
     of rule-name strings to function names): the function the dispatcher calls is the one fingerprinted, whatever
     its name (a stage split into jobs keeps its one-call function beside the jobs' functions)."""
-    tree = ast.parse(modules[STAGES_MODULE].read_text(encoding="utf-8"))
-    for node in tree.body:
+    return dict(_stages_table(modules[STAGES_MODULE].read_text(encoding="utf-8")))
+
+
+@cache
+def _stages_table(source: str) -> tuple[tuple[str, str], ...]:
+    """:func:`registered_stages` of the stages module's source, parsed once per source text (the fingerprint asks
+    for it once per rule and per module it looks at)."""
+    for node in ast.parse(source).body:
         targets = [t.id for t in getattr(node, "targets", []) if isinstance(t, ast.Name)]
         if isinstance(node, ast.Assign) and targets == ["STAGES"] and isinstance(node.value, ast.Dict):
-            return {key.value: value.id for key, value in zip(node.value.keys, node.value.values)}
+            return tuple((key.value, value.id) for key, value in zip(node.value.keys, node.value.values))
     raise KeyError(f"{STAGES_MODULE} has no STAGES table")
 
 
