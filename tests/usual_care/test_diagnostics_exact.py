@@ -12,13 +12,18 @@ from scipy.stats import rankdata
 
 from regimewise.usual_care.diagnostics import behaviour_diagnostics_by_step
 from regimewise.usual_care.metrics import (
-    _binary_auc,
+    _auc_of_sorted,
     auc_of_class_scores,
     brier_score,
     merged_class_scores,
     multiclass_auc,
     sorted_class_scores,
 )
+
+
+def _binary_auc(positive, score):
+    """The package's AUC of one class against the rest: its counts on the two classes' sorted scores."""
+    return _auc_of_sorted(np.sort(score[positive]), np.sort(score[~positive]))
 
 
 def _reference_binary_auc(positive, score):

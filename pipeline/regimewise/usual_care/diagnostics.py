@@ -115,8 +115,8 @@ def _weights_block(taken, percentiles):
 
 
 def _calibration_block(codes, proba, n_actions, labels, scores):
-    """``scores``: the block's :func:`sorted_class_scores` (the AUC's sorted pieces)."""
-    present = np.unique(codes).size
+    """``scores``: the block's :func:`sorted_class_scores` (the AUC's sorted pieces; they say which actions occur)."""
+    present = sum(pos.size > 0 for pos, _ in scores)
     return {
         "decisions": int(codes.size),
         "auc": auc_of_class_scores(scores) if present > 1 else None,

@@ -34,16 +34,9 @@ def probability_of_taken(proba, action):
     return proba[np.arange(codes.size), codes]
 
 
-def _binary_auc(positive, score):
-    """Area under the ROC curve via the Mann–Whitney statistic with mid-ranks for ties (:func:`_auc_of_sorted`
-    of the two classes' scores, each sorted)."""
-    positive = np.asarray(positive, dtype=bool)
-    score = np.asarray(score, dtype=float)
-    return _auc_of_sorted(np.sort(score[positive]), np.sort(score[~positive]))
-
-
 def _auc_of_sorted(pos, neg):
-    """The AUC of positives scoring ``pos`` against negatives scoring ``neg``, both sorted increasingly.
+    """The AUC of positives scoring ``pos`` against negatives scoring ``neg``, both sorted increasingly: the
+    Mann–Whitney statistic with mid-ranks for ties.
 
     The positives' rank sum is counted exactly in integers (twice each mid-rank: the scores below plus the scores
     at most equal, plus one), from the sorted scores of each class: the rank sums of the positives among
@@ -123,11 +116,7 @@ def multiclass_auc(action, proba, n_actions):
     proba = as_proba(proba)
     if proba.shape[1] != n_actions:
         raise UserInputError(f"proba has {proba.shape[1]} columns but n_actions is {n_actions}")
-    codes = as_actions(action, n_actions, n_rows=proba.shape[0])
-    present = np.unique(codes)
-    if present.size < 2:
-        return float("nan")
-    return float(np.mean([_binary_auc(codes == k, proba[:, k]) for k in present]))
+    return auc_of_class_scores(sorted_class_scores(action, proba, n_actions))
 
 
 def brier_score(action, proba, n_actions):
