@@ -5,7 +5,6 @@ it must be cross-fitted (``behaviour_model.folds`` ≥ 2).
 from __future__ import annotations
 
 import numpy as np
-from sklearn.ensemble import HistGradientBoostingClassifier
 from threadpoolctl import threadpool_limits
 
 from regimewise.core.arrays import as_actions
@@ -70,6 +69,8 @@ class GradientBoostingBehaviour:
         self.classes_ = np.unique(codes)
         self.estimator_ = None
         if self.classes_.size > 1:
+            from sklearn.ensemble import HistGradientBoostingClassifier  # only boosted usual-care models need it
+
             estimator = HistGradientBoostingClassifier(
                 max_iter=self.max_iter,
                 learning_rate=self.learning_rate,

@@ -12,9 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-import statsmodels.api as sm
 from scipy.special import log_softmax
-from sklearn.exceptions import NotFittedError
 
 from regimewise.core.arrays import as_actions
 from regimewise.errors import ConvergenceWarning, StatisticalWarning, UserInputError
@@ -58,6 +56,8 @@ def standardise(values):
 def prediction_design(model, X, fitted_attribute):
     """Check that ``model`` is fitted and ``X`` has its number of columns; return ``as_design(X)``."""
     if not hasattr(model, fitted_attribute):
+        from sklearn.exceptions import NotFittedError  # scikit-learn's, imported where it is raised
+
         raise NotFittedError(f"this {type(model).__name__} is not fitted yet; call fit(X, action, n_actions)")
     values, names = as_design(X)
     if values.shape[1] != model.n_features_in_:
@@ -75,6 +75,8 @@ def _run_mnlogit(design, endog, method, maxiter):
     """
     if method == "newton":
         return _newton_mnlogit(design, endog, maxiter)
+    import statsmodels.api as sm  # only the other optimisers: a job fitting by Newton does not load statsmodels
+
     with warnings.catch_warnings(), np.errstate(all="ignore"):
         warnings.simplefilter("ignore")
         try:
