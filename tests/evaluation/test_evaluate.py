@@ -245,7 +245,9 @@ def test_targets_built_by_rows_equal_the_whole_targets(with_strategies, monkeypa
 def test_the_number_of_passes_stops_growing_with_the_records():
     # the rule's purpose (no outside source): each pass repeats work in proportion to n, so above the memory
     # budget the regimes per pass must stay constant, or the stage's time would grow as n squared
-    per_pass = [values_module.regimes_per_pass(n) for n in (12_000_000, 120_000_000, 1_200_000_000)]
+    per_pass = [values_module.regimes_per_pass(n) for n in (120_000_000, 1_200_000_000, 12_000_000_000)]
     assert per_pass[0] == per_pass[1] == per_pass[2] >= 3
+    # 1M episodes x 12: the learned regime and its 9 strategies of the demo protocol in one pass
+    assert values_module.regimes_per_pass(12_000_000) >= 10
     assert values_module.regimes_per_pass(24_000) > 100  # a demo-sized study: every regime in one pass
     assert values_module.regimes_per_pass(10**12) >= 1  # never zero

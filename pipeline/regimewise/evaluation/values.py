@@ -150,7 +150,10 @@ class LoggedDecisions:
         return int(self.episode.max()) + 1
 
 
-PASS_BYTES = 64 * 2**20  # memory for the outcome models' results of one pass's regimes
+# memory for the outcome models' results of one pass's regimes: at 1M episodes x 12 (192 MB per regime) every part
+# of the workflow's evaluation (the learned regime and its 9 strategies, the 6 fixed regimes, the side-by-side
+# ones) is one pass, which reads the features and forms each step's Gram matrices once instead of 2-3 times
+PASS_BYTES = 2 * 2**30
 MIN_REGIMES_PER_PASS = 4  # however many decisions: the number of passes must not grow with n
 
 
@@ -756,7 +759,10 @@ def evaluate_learned_regimes(
     (``regimes``; without a learned regime, the named strategies) and the learned regime's weight histograms
     (``histograms``, None without it). :func:`values_document` joins it with the other parts, as
     :func:`evaluate_all` does with ``fixed`` given; the arguments are :func:`evaluate_all`'s."""
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    count = (recommended is not None) + len(protocol_strategies(protocol.strategies))
+    logged = LoggedDecisions.from_frame(
+        frame, behaviour_proba, protocol, feature_rows=True, keep_powers=_several_passes(count, len(frame))
+    )
     targets = regime_targets(
         frame, logged.behaviour_proba, recommended, protocol, learned_q, by_rows=True, part=LEARNED_PART
     )
@@ -778,9 +784,15 @@ def evaluate_side_by_side(
 ) -> list[dict]:
     """values.json's ``side_by_side`` entries (:func:`evaluate_all`'s ``side_by_side``), on their own. When one pass
     takes every regime, the features are read once: no cube of theirs is kept for a later pass."""
-    passes = -(-len(side_by_side) // regimes_per_pass(len(frame)))
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True, keep_powers=passes > 1)
+    keep = _several_passes(len(side_by_side), len(frame))
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True, keep_powers=keep)
     return _side_by_side(logged, side_by_side, protocol, threads)
+
+
+def _several_passes(n_regimes: int, n_decisions: int) -> bool:
+    """Whether ``n_regimes`` take more than one pass: only then are the features' cubes worth keeping
+    (:class:`FeatureRows`); within one pass each row's features are read once (the folds' rows are disjoint)."""
+    return n_regimes > regimes_per_pass(n_decisions)
 
 
 def _evaluate_targets(logged, targets, protocol, strict, learned_folds, threads) -> tuple[list[dict], dict | None]:
@@ -813,7 +825,8 @@ def evaluate_fixed_regimes(
 
     They need the records and usual care's probabilities only, so the workflow computes them in a job of their own
     while the regime is learned, and :func:`evaluate_all` takes them (``fixed``)."""
-    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True)
+    keep = _several_passes(len(fixed_regime_names(protocol)), len(frame))
+    logged = LoggedDecisions.from_frame(frame, behaviour_proba, protocol, feature_rows=True, keep_powers=keep)
     targets = regime_targets(frame, logged.behaviour_proba, None, protocol, by_rows=True, part=FIXED_PART)
     return _evaluate_targets(logged, targets, protocol, True, None, threads)[0]
 
