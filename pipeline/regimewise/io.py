@@ -96,12 +96,17 @@ def read_json(path: str | Path):
     return json.loads(Path(path).read_text(encoding="utf-8"))
 
 
-def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = None, labels=None) -> None:
+def write_parquet(
+    path: str | Path, frame: pd.DataFrame, caution: str | None = None, labels=None, temporary: bool = False
+) -> None:
     """Write a DataFrame to Parquet atomically (no index; deterministic for the same pyarrow version).
 
     ``caution``, if given, is stored in the file's metadata under the key ``regimewise.caution``. ``labels``, if
     given, maps columns of ``frame`` holding integer codes to the text labels the codes stand for: such a column
     is written as its labels' text, the same bytes as a column of those strings (:func:`labelled_table`).
+    ``temporary``: a table one workflow job writes for another and the workflow deletes (never an artifact),
+    written without compression or dictionary pages, which cost the writer more time than the reader saves (a
+    Q-value column barely compresses).
     """
     table = labelled_table(frame, labels) if labels else pa.Table.from_pandas(frame, preserve_index=False)
     if caution is not None:
@@ -109,7 +114,10 @@ def write_parquet(path: str | Path, frame: pd.DataFrame, caution: str | None = N
             {**(table.schema.metadata or {}), b"regimewise.caution": caution.encode()}
         )
     with atomic_path(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd")
+        if temporary:
+            pq.write_table(table, tmp, compression="none", use_dictionary=False)
+        else:
+            pq.write_table(table, tmp, compression="zstd")
 
 
 def with_text(frame: pd.DataFrame, labels: dict) -> pd.DataFrame:

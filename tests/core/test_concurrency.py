@@ -146,7 +146,7 @@ def test_the_regime_stage_writes_the_same_bytes_from_the_crossfit_jobs_table(coh
     crossfit_stage(protocol, decisions, folder / "crossfit.parquet", threads=2)
     table = read_parquet(folder / "crossfit.parquet")
     labels = pf.protocol.action_labels
-    assert list(table.columns) == ["episode_id", "step", "evaluated", *[f"evaluated_q_{a}" for a in labels]]
+    assert list(table.columns) == ["step", "evaluated", *[f"evaluated_q_{a}" for a in labels]]
     written = {}
     for name, crossfit in (("alone", None), ("split", folder / "crossfit.parquet")):
         out, regime = folder / f"table_{name}.parquet", folder / f"regime_{name}.json"
@@ -227,7 +227,7 @@ def test_the_crossfit_job_writes_only_keys_with_one_fold(cohort):
     raw["evaluation"]["cross_fit_folds"] = 1
     (folder / "one_fold.yaml").write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
     crossfit_stage(folder / "one_fold.yaml", folder / "decisions.parquet", folder / "crossfit_one.parquet")
-    assert list(read_parquet(folder / "crossfit_one.parquet").columns) == ["episode_id", "step"]
+    assert list(read_parquet(folder / "crossfit_one.parquet").columns) == ["step"]
 
 
 def test_the_evaluate_stage_writes_the_same_bytes_with_two_threads(cohort):

@@ -227,19 +227,20 @@ def crossfit_stage(protocol, decisions, crossfit, threads=1):
 
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
-    out = frame[["episode_id", "step"]].copy()
+    out = frame[["step"]].copy()  # the steps let the readers check the rows (same_rows); no text keys
     folds = crossfit_folds(frame, p) if p.analysis.learn_regime else None
     if folds is not None:
         evaluated, q = assemble_cross_fit(frame, p, run_concurrently(cross_fit_tasks(frame, p, folds), threads))
         out["evaluated"] = evaluated
         out[evaluated_q_columns(p.action_labels)] = q
-    write_parquet(crossfit, out)
+    write_parquet(crossfit, out, temporary=True)
 
 
 def read_crossfit(path, frame, labels) -> tuple[np.ndarray, np.ndarray] | None:
     """The cross-fitted actions (n,) and Q-values (n, K) written by :func:`crossfit_stage`, or None when it
     cross-fitted nothing. Its rows must be the decisions' rows, in their order."""
-    table = read_parquet(path)
+    wanted = ["step", "evaluated", *evaluated_q_columns(labels)]
+    table = read_parquet(path, [c for c in wanted if c in parquet_columns(path)])
     if not same_rows(table, frame):
         raise UserInputError(
             f"{path} does not hold the cross-fitted regimes of these decisions (its rows differ); rerun the workflow"
@@ -354,7 +355,7 @@ def regime_fit_stage(protocol, decisions, proba, fitted, fitted_summary, threads
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     if not p.analysis.learn_regime:
-        write_parquet(fitted, frame[["step"]].copy())
+        write_parquet(fitted, frame[["step"]].copy(), temporary=True)
         write_json(fitted_summary, no_regime_summary(p))
         return
     learned, _ = learn_side_by_side(p, frame, read_probabilities(proba, p.action_labels), [], threads)
@@ -363,7 +364,7 @@ def regime_fit_stage(protocol, decisions, proba, fitted, fitted_summary, threads
         out[f"chosen_{name}"] = np.asarray(codes).astype(np.min_scalar_type(max(len(p.action_labels) - 1, 0)))
     out[[f"q_{a}" for a in p.action_labels]] = learned.q
     out[[f"permitted_{a}" for a in p.action_labels]] = learned.permitted
-    write_parquet(fitted, out)
+    write_parquet(fitted, out, temporary=True)
     write_json(fitted_summary, learned.summary)
 
 
