@@ -146,6 +146,30 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     return pd.read_parquet(path, engine="pyarrow", columns=columns)
 
 
+def read_label_codes(path: str | Path, column: str, labels) -> np.ndarray:
+    """Codes (n,) of the text column ``column`` of the Parquet file at ``path``: each value's position in ``labels``,
+    -1 for a value not among them or missing. The column is read as Arrow's dictionary, so its few distinct texts
+    are turned into codes once, not one Python string per row (an action-label column of 12M rows at 1M episodes
+    x 12): the codes ``pandas.Categorical(read_parquet(path, [column])[column], categories=labels).codes`` gives.
+    """
+    chunks = pq.read_table(path, columns=[column], read_dictionary=[column]).column(column).chunks
+    position = {label: j for j, label in enumerate(labels)}
+    out = np.empty(sum(len(chunk) for chunk in chunks), dtype=np.int64)
+    start = 0
+    for chunk in chunks:
+        if not pa.types.is_dictionary(chunk.type):  # not text (a column of nulls only, say): pandas' codes
+            codes = pd.Categorical(chunk.to_pandas(), categories=list(labels)).codes
+            out[start : start + len(chunk)] = codes
+            start += len(chunk)
+            continue
+        lookup = np.array([position.get(text, -1) for text in chunk.dictionary.to_pylist()] + [-1], dtype=np.int64)
+        # a missing value's index is undefined: it points past the dictionary, at the -1 appended there
+        indices = chunk.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)
+        out[start : start + len(chunk)] = lookup[indices]
+        start += len(chunk)
+    return out
+
+
 def parquet_rows(path: str | Path) -> int:
     """The number of rows of the Parquet file at ``path``, read from its metadata without reading any data."""
     return int(pq.read_metadata(path).num_rows)

@@ -42,7 +42,16 @@ from regimewise.evaluation.values import (
     values_document,
     with_fixed_regimes,
 )
-from regimewise.io import parquet_columns, parquet_rows, read_json, read_parquet, write_json, write_parquet, write_text
+from regimewise.io import (
+    parquet_columns,
+    parquet_rows,
+    read_json,
+    read_label_codes,
+    read_parquet,
+    write_json,
+    write_parquet,
+    write_text,
+)
 from regimewise.protocol.loading import load_protocol
 from regimewise.regime.clinical_rules import ClinicalRuleSet
 from regimewise.regime.permitted import permitted_actions
@@ -436,10 +445,14 @@ def no_regime_summary(p) -> dict:
 
 
 # ---------------------------------------------------------------------------------------------- evaluate
-def column_codes(recommendations: pd.DataFrame, column: str, labels) -> np.ndarray:
-    """Action codes of one action-label column of the regime stage's recommendations table (that column only is
-    copied, not the table)."""
-    return action_codes(recommendations[[column]].rename(columns={column: "action"}), labels)
+def column_codes(table, column: str, labels) -> np.ndarray:
+    """Action codes of one action-label column of the regime stage's recommendations table (the file ``table``),
+    that column only read, as Arrow's dictionary (:func:`regimewise.io.read_label_codes`); the error of
+    :func:`regimewise.core.features.action_codes` for a label outside the protocol's."""
+    codes = read_label_codes(table, column, labels)
+    if (codes < 0).any():
+        raise ValueError("an action label is not in the protocol's action set; validate the records first")
+    return codes
 
 
 def evaluated_q_columns(labels) -> list[str]:
@@ -450,9 +463,8 @@ def evaluated_q_columns(labels) -> list[str]:
 def evaluated_regime(table, labels) -> tuple[np.ndarray, np.ndarray]:
     """The cross-fitted regime as the evaluation scores it, read from the regime stage's table (its columns only):
     action codes (n,) and Q-values (n, K)."""
-    recommendations = read_parquet(table, ["evaluated", *evaluated_q_columns(labels)])
-    q = recommendations[evaluated_q_columns(labels)].to_numpy(dtype=float)
-    return column_codes(recommendations, "evaluated", labels), q
+    q = read_parquet(table, evaluated_q_columns(labels)).to_numpy(dtype=float)
+    return column_codes(table, "evaluated", labels), q
 
 
 def evaluate_fixed_stage(protocol, decisions, proba, fixed, threads=1):
@@ -580,9 +592,7 @@ def evaluate_stage(protocol, decisions, proba, table, values, fixed=None, thread
         return
     recommended, learned_q = evaluated_regime(table, p.action_labels)  # cross-fitted (regime stage)
     side = [c for c in parquet_columns(table) if c.startswith("recommended_")]  # side-by-side regimes
-    variants = {
-        c.removeprefix("recommended_"): column_codes(read_parquet(table, [c]), c, p.action_labels) for c in side
-    }
+    variants = {c.removeprefix("recommended_"): column_codes(table, c, p.action_labels) for c in side}
     write_json(
         values,
         evaluate_all(
@@ -611,7 +621,7 @@ def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
     outcomes = None if episodes is None else read_parquet(episodes)
     probabilities = read_probabilities(proba, p.action_labels)
     if p.analysis.learn_regime:
-        recommended = column_codes(read_parquet(table, ["recommended"]), "recommended", p.action_labels)
+        recommended = column_codes(table, "recommended", p.action_labels)
     else:
         recommended = named_strategy_codes(frame, p, p.headline_regime)
     write_json(
@@ -668,7 +678,7 @@ def sensitivity_curves_stage(protocol, decisions, proba, table, curves):
     frame = read_parquet(decisions)
     recommended = None
     if p.analysis.learn_regime:
-        recommended = column_codes(read_parquet(table, ["evaluated"]), "evaluated", p.action_labels)  # as evaluated
+        recommended = column_codes(table, "evaluated", p.action_labels)  # as evaluated
     recommended = bounded_actions(frame, p, recommended)
     target = sensitivity_target(p)
     probabilities = read_probabilities(proba, p.action_labels)
