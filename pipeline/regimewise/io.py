@@ -163,7 +163,7 @@ def read_label_codes(path: str | Path, column: str, labels) -> np.ndarray:
             start += len(chunk)
             continue
         lookup = np.array([position.get(text, -1) for text in chunk.dictionary.to_pylist()] + [-1], dtype=np.int64)
-        # a missing value's index is undefined: it points past the dictionary, at the -1 appended there
+        # a missing value has no index into the dictionary: it takes that of the -1 appended to the lookup
         indices = chunk.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)
         out[start : start + len(chunk)] = lookup[indices]
         start += len(chunk)
