@@ -157,15 +157,13 @@ def read_label_codes(path: str | Path, column: str, labels) -> np.ndarray:
     out = np.empty(sum(len(chunk) for chunk in chunks), dtype=np.int64)
     start = 0
     for chunk in chunks:
-        if not pa.types.is_dictionary(chunk.type):  # not text (a column of nulls only, say): pandas' codes
+        if pa.types.is_dictionary(chunk.type):
+            lookup = [position.get(text, -1) for text in chunk.dictionary.to_pylist()] + [-1]
+            # a missing value has no index into the dictionary: it takes that of the -1 appended to the lookup
+            codes = np.asarray(lookup, dtype=np.int64)[chunk.indices.fill_null(len(lookup) - 1).to_numpy()]
+        else:  # not text (a column of nulls only, say): pandas' codes
             codes = pd.Categorical(chunk.to_pandas(), categories=list(labels)).codes
-            out[start : start + len(chunk)] = codes
-            start += len(chunk)
-            continue
-        lookup = np.array([position.get(text, -1) for text in chunk.dictionary.to_pylist()] + [-1], dtype=np.int64)
-        # a missing value has no index into the dictionary: it takes that of the -1 appended to the lookup
-        indices = chunk.indices.fill_null(len(lookup) - 1).to_numpy(zero_copy_only=False)
-        out[start : start + len(chunk)] = lookup[indices]
+        out[start : start + len(chunk)] = codes
         start += len(chunk)
     return out
 

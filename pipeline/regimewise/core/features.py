@@ -501,7 +501,12 @@ def patient_clusters(frame: pd.DataFrame) -> np.ndarray:
 
 def action_codes(frame: pd.DataFrame, labels: tuple[str, ...]) -> np.ndarray:
     """Integer codes of the action labels, in the protocol's order."""
-    codes = pd.Categorical(frame["action"], categories=list(labels)).codes
+    return known_action_codes(pd.Categorical(frame["action"], categories=list(labels)).codes)
+
+
+def known_action_codes(codes: np.ndarray) -> np.ndarray:
+    """``codes`` (int64), the positions of action labels in the protocol's labels, refused when a label was not
+    among them (code -1)."""
     if (codes < 0).any():
         raise ValueError("an action label is not in the protocol's action set; validate the records first")
     return codes.astype(np.int64)

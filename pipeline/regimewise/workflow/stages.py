@@ -27,7 +27,7 @@ from regimewise.appendix.assemble import AppendixRun, write_appendix
 from regimewise.bootstrap.intervals import combine, merge_intervals
 from regimewise.cautions import RECOMMENDATION_CAUTION, stage_caution
 from regimewise.core.concurrency import keep_freed_memory, run_concurrently, share_allocator_arenas
-from regimewise.core.features import QFeatures, StateScaler, action_codes
+from regimewise.core.features import QFeatures, StateScaler, action_codes, known_action_codes
 from regimewise.core.seeds import stream_ints
 from regimewise.data.validate import validate_records, write_error_report
 from regimewise.describe.balance import balance_by_step
@@ -248,8 +248,8 @@ def crossfit_stage(protocol, decisions, crossfit, threads=1):
 def read_crossfit(path, frame, labels) -> tuple[np.ndarray, np.ndarray] | None:
     """The cross-fitted actions (n,) and Q-values (n, K) written by :func:`crossfit_stage`, or None when it
     cross-fitted nothing. Its rows must be the decisions' rows, in their order."""
-    wanted = ["step", "evaluated", *evaluated_q_columns(labels)]
-    table = read_parquet(path, [c for c in wanted if c in parquet_columns(path)])
+    present = set(parquet_columns(path))  # without a learned regime the table holds the steps only
+    table = read_parquet(path, [c for c in ["step", "evaluated", *evaluated_q_columns(labels)] if c in present])
     if not same_rows(table, frame):
         raise UserInputError(
             f"{path} does not hold the cross-fitted regimes of these decisions (its rows differ); rerun the workflow"
@@ -447,12 +447,9 @@ def no_regime_summary(p) -> dict:
 # ---------------------------------------------------------------------------------------------- evaluate
 def column_codes(table, column: str, labels) -> np.ndarray:
     """Action codes of one action-label column of the regime stage's recommendations table (the file ``table``),
-    that column only read, as Arrow's dictionary (:func:`regimewise.io.read_label_codes`); the error of
-    :func:`regimewise.core.features.action_codes` for a label outside the protocol's."""
-    codes = read_label_codes(table, column, labels)
-    if (codes < 0).any():
-        raise ValueError("an action label is not in the protocol's action set; validate the records first")
-    return codes
+    that column only read, as Arrow's dictionary (:func:`regimewise.io.read_label_codes`), refused as
+    :func:`regimewise.core.features.action_codes` refuses a label outside the protocol's."""
+    return known_action_codes(read_label_codes(table, column, labels))
 
 
 def evaluated_q_columns(labels) -> list[str]:
