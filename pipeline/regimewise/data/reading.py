@@ -12,7 +12,7 @@ import pyarrow.parquet as pq
 
 from regimewise.data.deidentify import scrub, shown_value
 from regimewise.errors import UserInputError, os_reason
-from regimewise.io import require_file
+from regimewise.io import read_parquet, require_file
 
 NEWLINE = b"\n"
 
@@ -35,7 +35,7 @@ def read_table(path: str | Path, what: str, delimiter: str = ",") -> pd.DataFram
             schema = pq.read_schema(path)
             _refuse_repeated_names(schema.names, path, what)
             _refuse_nested_types(schema, path, what)
-            frame = pd.read_parquet(path, engine="pyarrow")
+            frame = read_parquet(path)
         elif suffix in {".csv", ".txt", ".tsv"}:
             _refuse_nul_bytes(path, what)
             _refuse_repeated_names(_csv_header(path, delimiter), path, what)
