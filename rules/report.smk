@@ -25,7 +25,7 @@ rule report:
     params:
         code=stage_code_hash("report"),
         reproduce=reproduce_line,
-    threads: 1
+    threads: stage_threads("report")
     resources:
         mem_mb=mem_mb("report"),
         runtime=runtime("report"),

@@ -18,7 +18,12 @@ import yaml
 from support.tiny import REPOSITORY
 from threadpoolctl import threadpool_info
 
-from regimewise.core.concurrency import keep_freed_memory, run_concurrently, share_allocator_arenas
+from regimewise.core.concurrency import (
+    keep_freed_memory,
+    run_concurrently,
+    run_in_processes,
+    share_allocator_arenas,
+)
 from regimewise.data.records import clean_decisions
 from regimewise.demo.simulate import simulate_cohort
 from regimewise.errors import UserInputError
@@ -60,6 +65,27 @@ def test_an_error_in_a_task_is_raised_to_the_caller():
 
     with pytest.raises(ValueError, match="singular design at step 3"):
         run_concurrently([lambda: 1, fails], threads=2)
+
+
+def test_processes_return_results_in_task_order_and_run_in_other_processes():
+    import os
+
+    delays = [0.2, 0.0, 0.1, 0.0]
+    tasks = [lambda i=i, d=d: (time.sleep(d), i, os.getpid())[1:] for i, d in enumerate(delays)]
+    results = run_in_processes(tasks, processes=2)
+    assert [i for i, _ in results] == [0, 1, 2, 3]
+    assert os.getpid() not in {pid for _, pid in results}  # forked workers (Linux, where the suite runs)
+    assert [i for i, _ in run_in_processes(tasks, processes=1)] == [0, 1, 2, 3]
+    assert {pid for _, pid in run_in_processes(tasks, processes=1)} == {os.getpid()}
+    assert run_in_processes([], processes=2) == []
+
+
+def test_an_error_in_a_process_is_raised_to_the_caller():
+    def fails():
+        raise ValueError("no figure for an empty curve")
+
+    with pytest.raises(ValueError, match="no figure for an empty curve"):
+        run_in_processes([lambda: 1, fails], processes=2)
 
 
 def test_blas_runs_on_one_thread_inside_the_tasks():

@@ -67,6 +67,18 @@ def panel_of(html: str) -> str:
     return html[start : html.index("</section>", start)]
 
 
+def test_figures_drawn_in_two_processes_give_the_same_page(two_runs, study):
+    # the report rule draws its figures in two processes: the page must be the one a single process draws
+    (out, _), _ = two_runs
+    pf = load_protocol(study)
+    parts = _parts(out)
+    prov = build_provenance(pf)
+    headline = build_summary(pf.protocol, parts, prov)
+    one = render_html(pf.protocol, parts, prov, headline, processes=1)
+    assert render_html(pf.protocol, parts, prov, headline, processes=2) == one
+    assert one.count("<svg ") >= 8  # the figures were drawn, not left out
+
+
 def test_every_panel_number_equals_its_source_in_summary(outputs):
     _, summary, html = outputs
     parser = SummaryNumbers()

@@ -29,6 +29,8 @@ from __future__ import annotations
 
 import ctypes
 import ctypes.util
+import multiprocessing
+import sys
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from typing import TypeVar
@@ -84,3 +86,32 @@ def run_concurrently(tasks: Sequence[Callable[[], T]], threads: int = 1) -> list
             return [task() for task in tasks]
         with ThreadPoolExecutor(max_workers=min(threads, len(tasks))) as pool:
             return list(pool.map(lambda task: task(), tasks))
+
+
+_FORKED_TASKS: Sequence[Callable] = ()  # the tasks of run_in_processes, inherited by its forked workers
+
+
+def _run_forked(index: int):
+    return _FORKED_TASKS[index]()
+
+
+def run_in_processes(tasks: Sequence[Callable[[], T]], processes: int = 1) -> list[T]:
+    """The results of ``tasks`` (callables without arguments), in their order; up to ``processes`` at once.
+
+    For tasks that hold the interpreter lock most of the time (drawing figures, string work), which threads
+    would run one at a time: each runs in a worker process forked from this one, so it sees this process's
+    objects without copying them, and sends back only its result (which must pickle). Workers take the tasks in
+    their order as they become free: give the longest first. With ``processes`` 1, a single task, or where the
+    operating system cannot fork (Windows; macOS's forks are unsafe and Python does not start them by default),
+    they run one after the other in this process, with the same results. An exception in a task is raised here.
+    """
+    global _FORKED_TASKS
+    processes = min(max(1, int(processes)), len(tasks))
+    if processes <= 1 or sys.platform == "darwin" or "fork" not in multiprocessing.get_all_start_methods():
+        return [task() for task in tasks]
+    _FORKED_TASKS = list(tasks)
+    try:
+        with multiprocessing.get_context("fork").Pool(processes) as pool:
+            return pool.map(_run_forked, range(len(tasks)), chunksize=1)
+    finally:
+        _FORKED_TASKS = ()

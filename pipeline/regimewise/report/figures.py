@@ -135,15 +135,22 @@ def balance_figure(balance, state_labels) -> str:
 
 def section_figures(protocol, behaviour, cohort) -> dict:
     """Inline SVG figures of the usual-care and cohort sections (empty strings where there are no data)."""
+    return {name: draw() for name, draw in section_figure_tasks(protocol, behaviour, cohort).items()}
 
+
+def section_figure_tasks(protocol, behaviour, cohort) -> dict:
+    """What :func:`section_figures` draws, one callable per figure (each returns its SVG text, or an empty
+    string where there are no data), so that the figures can be drawn at once in several processes."""
     labels = {}
     for s in protocol.states:  # a categorical state is balanced level by level
         levels = s.coded_levels if s.kind == "categorical" else ()
         labels.update({dummy_name(s.name, v): f"{s.label}: {v}" for v in levels} or {s.name: s.label})
     return {
-        "reliability": reliability_figure(behaviour["by_step"], protocol.action_labels),
-        "overlap": "" if cohort is None else overlap_figure(cohort["overlap_by_step"], _headline_label(protocol)),
-        "balance": "" if cohort is None else balance_figure(cohort["balance_by_step"], labels),
+        "reliability": lambda: reliability_figure(behaviour["by_step"], protocol.action_labels),
+        "overlap": lambda: (
+            "" if cohort is None else overlap_figure(cohort["overlap_by_step"], _headline_label(protocol))
+        ),
+        "balance": lambda: "" if cohort is None else balance_figure(cohort["balance_by_step"], labels),
     }
 
 

@@ -14,13 +14,14 @@ from importlib import resources
 import jinja2
 
 from regimewise.cautions import REPORT_CAUTIONS
+from regimewise.core.concurrency import run_in_processes
 from regimewise.estimators import ESTIMATORS
 from regimewise.report.figures import (
     SPARSE_BIN,
     actions_by_step_figure,
     contrast_figure,
     drawn_contrasts,
-    section_figures,
+    section_figure_tasks,
     sensitivity_figure,
     survival_figure,
     sweep_figure,
@@ -69,39 +70,65 @@ def template_environment(p) -> jinja2.Environment:
     return environment
 
 
-def render_html(p, parts, prov, headline) -> str:
+def render_html(p, parts, prov, headline, processes: int = 1) -> str:
+    """The report page. Its figures are drawn in up to ``processes`` processes at once (the same SVG text: each
+    figure is drawn from the same numbers by the same code, :func:`regimewise.core.concurrency.run_in_processes`)."""
     environment = template_environment(p)
     template = environment.get_template("report.html")
     regime = parts["regime"]
+    values = parts["values"]
+    section = section_figure_tasks(p, parts["behaviour"], parts.get("cohort"))
+    # the longest to draw first (at 1M episodes x 12: balance, weights, overlap and reliability about 2 to 4 s
+    # each, the others about 1 s), so that the last figure drawn is a short one
+    drawn = {
+        "balance": section["balance"],
+        "weight_figure": None
+        if "learned_weight_histograms" not in values
+        else lambda: weight_histogram_figure(values["learned_weight_histograms"]),
+        "overlap": section["overlap"],
+        "reliability": section["reliability"],
+        "survival_figure": None
+        if parts.get("survival") is None
+        else lambda: survival_figure(parts["survival"], p.report.min_cell_count),
+        "value_figure": lambda: contrast_figure(values, p.evaluation.estimators),
+        "actions_figure": None
+        if "by_step" not in regime
+        else lambda: actions_by_step_figure(p.action_labels, regime["by_step"]),
+        "tradeoff_figure": None
+        if headline["strategies"] is None
+        else lambda: tradeoff_figure(headline["strategies"]["table"]),
+        "sensitivity_figure": None
+        if parts.get("sensitivity") is None
+        else lambda: sensitivity_figure(parts["sensitivity"]),
+        "sweep_figure": None if parts.get("sweep") is None else lambda: sweep_figure(parts["sweep"]),
+    }
+    tasks = {name: draw for name, draw in drawn.items() if draw is not None}
+    figures = dict.fromkeys(drawn) | dict(zip(tasks, run_in_processes(list(tasks.values()), processes)))
     return template.render(
         p=p,
         cautions=REPORT_CAUTIONS,
         validation=parts["validation"],
         behaviour=parts["behaviour"],
         regime=regime,
-        values=parts["values"],
+        values=values,
         prov=prov,
         summary=headline,
-        actions_figure=actions_by_step_figure(p.action_labels, regime["by_step"]) if "by_step" in regime else None,
-        value_figure=contrast_figure(parts["values"], p.evaluation.estimators),
-        unplotted=unplotted(parts["values"], p.evaluation.estimators),
-        tradeoff_figure=None if headline["strategies"] is None else tradeoff_figure(headline["strategies"]["table"]),
-        weight_figure=weight_histogram_figure(parts["values"]["learned_weight_histograms"])
-        if "learned_weight_histograms" in parts["values"]
-        else None,
+        actions_figure=figures["actions_figure"],
+        value_figure=figures["value_figure"],
+        unplotted=unplotted(values, p.evaluation.estimators),
+        tradeoff_figure=figures["tradeoff_figure"],
+        weight_figure=figures["weight_figure"],
         cohort=parts.get("cohort"),
-        usual_care_figures=section_figures(p, parts["behaviour"], parts.get("cohort")),
+        usual_care_figures={name: figures[name] for name in section},
         sensitivity=parts.get("sensitivity"),
-        sensitivity_figure=None if parts.get("sensitivity") is None else sensitivity_figure(parts["sensitivity"]),
+        sensitivity_figure=figures["sensitivity_figure"],
         sweep=parts.get("sweep"),
         selfcheck=parts.get("selfcheck"),
-        sweep_figure=None if parts.get("sweep") is None else sweep_figure(parts["sweep"]),
+        sweep_figure=figures["sweep_figure"],
         survival=parts.get("survival"),
         sparse_bin=SPARSE_BIN,
         estimators=ESTIMATORS,
-        survival_figure=None
-        if parts.get("survival") is None
-        else survival_figure(parts["survival"], p.report.min_cell_count),
+        survival_figure=figures["survival_figure"],
     )
 
 

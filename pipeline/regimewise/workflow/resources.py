@@ -17,9 +17,10 @@ re-evaluates resource functions just before it schedules a job); before that (th
 dry run), it is estimated from the records file's size, erring high.
 
 Threads (:data:`STAGE_THREADS`): every rule runs one process, and BLAS is held to one thread in every stage
-(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. Every rule asks
-for one thread (:data:`STAGE_THREADS` says why; the regime and evaluate stages can run their independent fits on two
-threads of their process, :mod:`regimewise.core.concurrency`, when a rule asks for them). Bootstrap shards are
+(:func:`regimewise.workflow.stages.run_snakemake_job`), so the numbers never depend on the cores. Every rule but
+the report asks for one thread (:data:`STAGE_THREADS` says why; the regime and evaluate stages can run their
+independent fits on two threads of their process, :mod:`regimewise.core.concurrency`, when a rule asks for them;
+the report, alone at the end, draws its figures in two processes). Bootstrap shards are
 separate jobs; ``behaviour_diagnostics`` (behaviour.json) runs beside the jobs after ``behaviour``; the
 ``crossfit`` rule (the cross-fitted fold regimes) runs beside ``behaviour`` and ``regime_fit``
 (the side-by-side regimes; the ``regime`` rule joins the two), ``evaluate_fixed`` (the values of usual care, the
@@ -95,19 +96,20 @@ STAGE_COSTS = {
     "appendix": StageCost(BASE_MB, 0.0, 0.1),
 }
 
-# Threads each rule asks for (1 where not listed). None asks for more at present. The regime and evaluate stages can
-# run their independent fits on two threads (their functions' ``threads``), and did until the crossfit and
-# sensitivity_curves rules were split off; now a second core is better spent on the jobs that can run beside them
-# (behaviour beside crossfit; sensitivity_curves, survival and describe beside evaluate), and at 1M episodes x 12
-# two concurrent fits held about 1.6 GB more than one, taking the regime stage above 8 GB (bench/RESULTS.md).
-STAGE_THREADS: dict[str, int] = {}
+# Threads each rule asks for (1 where not listed). The regime and evaluate stages can run their independent fits on
+# two threads (their functions' ``threads``), and did until the crossfit and sensitivity_curves rules were split
+# off; now a second core is better spent on the jobs that can run beside them (behaviour beside crossfit;
+# sensitivity_curves, survival and describe beside evaluate), and at 1M episodes x 12 two concurrent fits held
+# about 1.6 GB more than one, taking the regime stage above 8 GB (bench/RESULTS.md). The report runs alone at the
+# end of every run, so its figures are drawn in two processes (a few MB each; the same bytes).
+STAGE_THREADS: dict[str, int] = {"report": 2}
 
 
 def stage_threads(rule: str) -> int:
     """Threads to request for ``rule`` (:data:`STAGE_THREADS`; 1 for the others).
 
-    >>> stage_threads("evaluate"), stage_threads("regime")
-    (1, 1)
+    >>> stage_threads("evaluate"), stage_threads("regime"), stage_threads("report")
+    (1, 1, 2)
     """
     if rule not in STAGE_COSTS:
         raise KeyError(f"no resource figures for rule {rule!r}")

@@ -93,9 +93,11 @@ def report_stage(
     survival=None,
     selfcheck=None,
     reproduce="",
+    threads=1,
 ):
     """Assemble summary.json, the provenance appendix and report.html from the stage outputs; ``reproduce`` is the
-    command that reruns the analysis (rule parameter, from the command line that started the run)."""
+    command that reruns the analysis (rule parameter, from the command line that started the run); the report's
+    figures are drawn in up to ``threads`` processes at once (the same bytes)."""
     from regimewise.report.html import render_html
 
     pf = load_protocol(protocol)
@@ -115,7 +117,7 @@ def report_stage(
     headline = build_summary(p, parts, prov)
     write_json(provenance, prov)
     write_json(summary, headline)
-    write_text(html, render_html(p, parts, prov, headline))
+    write_text(html, render_html(p, parts, prov, headline, processes=threads))
 
 
 def appendix_stage(protocol, html, summary, provenance, manifest, command="", reproduce=""):
