@@ -32,7 +32,8 @@ import ctypes.util
 import multiprocessing
 import sys
 from collections.abc import Callable, Sequence
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
+from contextlib import contextmanager
 from typing import TypeVar
 
 from threadpoolctl import threadpool_limits
@@ -88,11 +89,30 @@ def run_concurrently(tasks: Sequence[Callable[[], T]], threads: int = 1) -> list
             return list(pool.map(lambda task: task(), tasks))
 
 
-_FORKED_TASKS: Sequence[Callable] = ()  # the tasks of run_in_processes, inherited by its forked workers
+_FORKED_TASKS: Sequence[Callable] = ()  # the tasks of the forked workers, which inherit them when forked
 
 
 def _run_forked(index: int):
     return _FORKED_TASKS[index]()
+
+
+def can_fork() -> bool:
+    """Whether worker processes can be forked here (not on Windows; on macOS forks are unsafe and Python does
+    not start them by default)."""
+    return sys.platform != "darwin" and "fork" in multiprocessing.get_all_start_methods()
+
+
+@contextmanager
+def _forked_workers(tasks: Sequence[Callable], processes: int):
+    """A pool of ``processes`` workers forked from this process, which see ``tasks`` as ``_FORKED_TASKS``.
+    A worker that dies (killed, out of memory) makes the pending results raise ``BrokenProcessPool``."""
+    global _FORKED_TASKS
+    _FORKED_TASKS = list(tasks)
+    try:
+        with ProcessPoolExecutor(processes, mp_context=multiprocessing.get_context("fork")) as pool:
+            yield pool
+    finally:
+        _FORKED_TASKS = ()
 
 
 def run_in_processes(tasks: Sequence[Callable[[], T]], processes: int = 1) -> list[T]:
@@ -101,17 +121,12 @@ def run_in_processes(tasks: Sequence[Callable[[], T]], processes: int = 1) -> li
     For tasks that hold the interpreter lock most of the time (drawing figures, string work), which threads
     would run one at a time: each runs in a worker process forked from this one, so it sees this process's
     objects without copying them, and sends back only its result (which must pickle). Workers take the tasks in
-    their order as they become free: give the longest first. With ``processes`` 1, a single task, or where the
-    operating system cannot fork (Windows; macOS's forks are unsafe and Python does not start them by default),
-    they run one after the other in this process, with the same results. An exception in a task is raised here.
+    their order as they become free: give the longest first. With ``processes`` 1, a single task, or where
+    processes cannot be forked (:func:`can_fork`), they run one after the other in this process, with the same
+    results. An exception in a task is raised here.
     """
-    global _FORKED_TASKS
     processes = min(max(1, int(processes)), len(tasks))
-    if processes <= 1 or sys.platform == "darwin" or "fork" not in multiprocessing.get_all_start_methods():
+    if processes <= 1 or not can_fork():
         return [task() for task in tasks]
-    _FORKED_TASKS = list(tasks)
-    try:
-        with multiprocessing.get_context("fork").Pool(processes) as pool:
-            return pool.map(_run_forked, range(len(tasks)), chunksize=1)
-    finally:
-        _FORKED_TASKS = ()
+    with _forked_workers(tasks, processes) as pool:
+        return list(pool.map(_run_forked, range(len(tasks))))
