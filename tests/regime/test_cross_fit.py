@@ -146,6 +146,30 @@ def test_held_out_rows_scored_step_by_step_get_the_numbers_of_the_whole_frame():
     assert q.tobytes() == learned.q_values(shuffled).tobytes()
 
 
+def test_folds_warm_started_from_the_first_give_the_same_numbers_on_any_number_of_threads():
+    # every fold after the first starts its usual-care fit from the first fold's model, which it waits for: two
+    # threads must give the bytes one gives, and the Q-values of the fold regimes learned cold (the Q-models read
+    # usual care's probabilities only through which actions are supported)
+    from regimewise.core.concurrency import run_concurrently
+    from regimewise.data.records import clean_decisions
+    from regimewise.demo.simulate import simulate_cohort
+    from regimewise.protocol import load_protocol
+
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    p = pf.protocol.model_copy(update={"evaluation": pf.protocol.evaluation.model_copy(update={"cross_fit_folds": 3})})
+    d = clean_decisions(pf, simulate_cohort(400, seed=8).decisions)
+    folds = crossfit_folds(d, p)
+    one = run_concurrently(cross_fit_tasks(d, p, folds), threads=1)
+    two = run_concurrently(cross_fit_tasks(d, p, folds), threads=2)
+    for (held, codes, q), (held2, codes2, q2) in zip(one, two):
+        assert held.tobytes() == held2.tobytes() and codes.tobytes() == codes2.tobytes() and q.tobytes() == q2.tobytes()
+    for fold, (held, codes, q) in zip(np.unique(folds), one):
+        rows = d.loc[held].reset_index(drop=True)
+        cold = fold_regime(d, p, folds, fold)
+        np.testing.assert_array_equal(codes, cold.recommend(rows))
+        np.testing.assert_allclose(q, cold.q_values(rows), rtol=1e-9, atol=1e-12)
+
+
 def test_rows_of_a_mask_equal_the_reset_selection():
     from regimewise.regime.learning import rows_of
 

@@ -296,8 +296,8 @@ def test_newton_breakdown_falls_back_to_bfgs(anes, anes_model, monkeypatch):
     X, pid, _ = anes
     run = logit._run_mnlogit
 
-    def newton_breaks(design, endog, method, maxiter):
-        return None if method == "newton" else run(design, endog, method, maxiter)
+    def newton_breaks(design, endog, method, maxiter, start=None):
+        return None if method == "newton" else run(design, endog, method, maxiter, start)
 
     monkeypatch.setattr(logit, "_run_mnlogit", newton_breaks)
     with pytest.warns(ConvergenceWarning, match="refitted with BFGS"):

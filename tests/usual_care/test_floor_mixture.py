@@ -130,3 +130,38 @@ def test_protocol_refuses_the_floor_with_boosting():
     settings = {**spec.model_dump(), "kind": "gradient_boosting", "folds": 2, "floor_mixture": True, "terms": []}
     with pytest.raises(ValueError, match="floor_mixture applies to the multinomial_logit"):
         type(spec).model_validate(settings)
+
+
+def test_a_warm_start_from_another_sample_finds_the_same_maximum_in_fewer_iterations():
+    # Reference: the same fit from the usual start (0), and statsmodels' MNLogit (Newton from 0), for the plain
+    # logit. Two samples of one population, as two cross-fitting folds of the same patients are; the plain
+    # log-likelihood is concave, so it has one maximum. The mixture always starts from its own plain logit.
+    X_a, action_a, _ = _simulate(4000, 0.15, seed=11)
+    X_b, action_b, _ = _simulate(4000, 0.15, seed=12)
+    first = FloorMixtureLogitBehaviour().fit(X_a, action_a, n_actions=3)
+    cold = FloorMixtureLogitBehaviour().fit(X_b, action_b, n_actions=3)
+    warm = FloorMixtureLogitBehaviour().fit(X_b, action_b, n_actions=3, start=first)
+    np.testing.assert_allclose(warm.logit_params_, cold.logit_params_, rtol=1e-10, atol=1e-12)
+    reference = sm.MNLogit(action_b, sm.add_constant(X_b)).fit(method="newton", disp=0)
+    np.testing.assert_allclose(warm.logit_params_, reference.params, rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(warm.params_, cold.params_, rtol=1e-9, atol=1e-11)
+    assert warm.share_ == pytest.approx(cold.share_, rel=1e-9)
+    assert warm.llf_ == pytest.approx(cold.llf_, rel=1e-12)
+    assert warm.converged_ and warm.n_iter_ == cold.n_iter_
+
+    plain_first = MultinomialLogitBehaviour().fit(X_a, action_a, n_actions=3)
+    plain_cold = MultinomialLogitBehaviour().fit(X_b, action_b, n_actions=3)
+    plain_warm = MultinomialLogitBehaviour().fit(X_b, action_b, n_actions=3, start=plain_first)
+    np.testing.assert_allclose(plain_warm.params_, plain_cold.params_, rtol=1e-10, atol=1e-12)
+    assert plain_warm.n_iter_ < plain_cold.n_iter_
+
+
+def test_a_start_that_saw_other_actions_or_columns_is_not_used():
+    X, action, _ = _simulate(2000, 0.1, seed=13)
+    cold = MultinomialLogitBehaviour().fit(X, action, n_actions=3)
+    two_actions = FloorMixtureLogitBehaviour().fit(X, np.minimum(action, 1), n_actions=3)
+    one_column = FloorMixtureLogitBehaviour().fit(X[:, :1], action, n_actions=3)
+    for start in (two_actions, one_column):
+        again = MultinomialLogitBehaviour().fit(X, action, n_actions=3, start=start)
+        np.testing.assert_array_equal(again.params_, cold.params_)  # the usual start, the same iterations
+        assert again.n_iter_ == cold.n_iter_

@@ -11,6 +11,7 @@ Research use only: a learned regime is a hypothesis for study, not a treatment r
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -190,9 +191,10 @@ def variant_tasks(
     return {name: task(name, [(X, arrays)]) for name in names}
 
 
-def learn_regime(decisions: pd.DataFrame, protocol: Protocol) -> LearnedRegime:
-    """Fit usual care, then the constrained regime, on validated decisions sorted by episode and step."""
-    usual_care = fit_usual_care(decisions, protocol)
+def learn_regime(decisions: pd.DataFrame, protocol: Protocol, usual_care=None) -> LearnedRegime:
+    """Fit usual care (unless ``usual_care``, the :class:`~regimewise.usual_care.fitting.UsualCareModel` of these
+    decisions, is given), then the constrained regime, on validated decisions sorted by episode and step."""
+    usual_care = fit_usual_care(decisions, protocol) if usual_care is None else usual_care
     proba = usual_care.record_proba
     features = QFeatures.from_protocol(usual_care.scaler, protocol, decisions)
     fqi = fit_q_learning(decisions, proba, protocol, features)
@@ -240,7 +242,7 @@ def cross_fitted_recommendations(
 
 
 def cross_fitted_regime(
-    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol
+    decisions: pd.DataFrame, behaviour_proba: np.ndarray, protocol: Protocol, start=None
 ) -> tuple[np.ndarray, np.ndarray]:
     """The cross-fitted recommendations of :func:`cross_fitted_recommendations` and, from the same fold regimes,
     the Q-values (n, K) of every action: each patient's Q-values from the Q-models learned without that patient.
@@ -248,31 +250,71 @@ def cross_fitted_regime(
     The strategies that switch only when the learned regime's estimated gain is large enough
     (:mod:`regimewise.evaluation.strategies`) read their gains from these Q-values, so a patient's gain is never
     estimated by a model that learned from that patient. The fold regimes are learned one after the other
-    (the regime stage runs the same :func:`cross_fit_tasks` on its threads).
+    (the regime stage runs the same :func:`cross_fit_tasks` on its threads). ``start``: as for
+    :func:`cross_fit_tasks`.
     """
     folds = crossfit_folds(decisions, protocol)
     if folds is None:
         learned = learn_regime(decisions, protocol)
         return learned.recommend(decisions, behaviour_proba), learned.q_values(decisions)
-    return assemble_cross_fit(decisions, protocol, [task() for task in cross_fit_tasks(decisions, protocol, folds)])
+    tasks = cross_fit_tasks(decisions, protocol, folds, start)
+    return assemble_cross_fit(decisions, protocol, [task() for task in tasks])
 
 
 def cross_fit_tasks(
-    decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray
+    decisions: pd.DataFrame, protocol: Protocol, folds: np.ndarray, start=None
 ) -> list[Callable[[], tuple[np.ndarray, np.ndarray, np.ndarray]]]:
     """One callable per fold of ``folds``: it learns the fold's regime from the other folds and returns the fold's
     rows (boolean mask), the regime's recommendations there and its Q-values (n_fold, K). The regime (usual-care
-    model, Q-model ensembles) is released when the callable returns."""
+    model, Q-model ensembles) is released when the callable returns.
 
-    def task(fold):
+    Each fold's usual-care model starts its Newton iterations from ``start`` (a usual-care model of the same
+    patients' decisions, ``UsualCareModel.model``; :func:`~regimewise.usual_care.fitting.fit_usual_care`), or,
+    without one, every fold after the first from the first fold's model, which shares half its patients with
+    each of them: the same maxima, in fewer iterations. The first fold's callable hands its model on as soon as
+    it is fitted, and the others wait for it, so the numbers do not depend on how many run at once; run the
+    callables in their order (the first starts first), as :func:`~regimewise.core.concurrency.run_concurrently`
+    does, or one after the other.
+    """
+    handoff = _Handoff() if start is None else None
+
+    def task(index, fold):
         def learn_and_score():
             held_out = folds == fold
-            learned = fold_regime(decisions, protocol, folds, fold)
+            training = rows_of(decisions, ~held_out)
+            if handoff is None:
+                usual_care = fit_usual_care(training, protocol, start)
+            elif index == 0:
+                usual_care = None
+                try:
+                    usual_care = fit_usual_care(training, protocol)
+                finally:  # the others start cold if this fit fails (its error is raised to the caller)
+                    handoff.put(None if usual_care is None else usual_care.model)
+            else:
+                usual_care = fit_usual_care(training, protocol, handoff.get())
+            learned = learn_regime(training, protocol, usual_care)
+            del training
             return held_out, *score_by_step(learned, rows_of(decisions, held_out))
 
         return learn_and_score
 
-    return [task(fold) for fold in np.unique(folds)]
+    return [task(index, fold) for index, fold in enumerate(np.unique(folds))]
+
+
+class _Handoff:
+    """One value handed from one task to others, which wait for it (tasks may run on threads)."""
+
+    def __init__(self):
+        self._ready = threading.Event()
+        self._value = None
+
+    def put(self, value) -> None:
+        self._value = value
+        self._ready.set()
+
+    def get(self):
+        self._ready.wait()
+        return self._value
 
 
 def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:

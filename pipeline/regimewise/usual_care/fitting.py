@@ -53,13 +53,18 @@ def _behaviour_model_factory(protocol: Protocol, seed: int):
     return lambda: MultinomialLogitBehaviour(maxiter=spec.max_iterations)
 
 
-def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareModel:
+def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol, start=None) -> UsualCareModel:
     """Fit the protocol's usual-care model with K-fold cross-fitting by patient (none when ``folds`` is 1).
 
     The model (multinomial logit, optionally mixed with an even floor, or gradient boosting; optionally with
     spline terms) is fitted once per fold
     for the records' out-of-fold probabilities and once on all decisions for new states. Seeds come from the
     protocol's root seed (stream ``usual_care`` of :mod:`regimewise.core.seeds`).
+
+    ``start``: a usual-care model fitted on other records of the same protocol (``UsualCareModel.model`` of another
+    cross-fitting fold of the same patients, say), whose coefficients start the Newton iterations of the logit
+    model fitted on all decisions (``fit(..., start=)``): the same maximum, in fewer iterations. Boosting, and the
+    models of the folds of ``behaviour_model.folds``, ignore it.
     """
     spec = protocol.behaviour_model
     model_seed = stream_ints(protocol.seed, "usual_care", 2)[1]
@@ -67,7 +72,8 @@ def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol) -> UsualCareMode
     X = design.transform(decisions)
     codes = action_codes(decisions, protocol.action_labels)
     make_model = _behaviour_model_factory(protocol, int(model_seed))
-    model = make_model().fit(X, codes, len(protocol.actions))
+    warm = {} if start is None or spec.kind == "gradient_boosting" else {"start": start}
+    model = make_model().fit(X, codes, len(protocol.actions), **warm)
     folds = usual_care_folds(decisions, protocol)
     if spec.folds == 1:  # parametric model, no cross-fitting: in-sample probabilities for the records
         out_of_fold = model.predict_proba(X)

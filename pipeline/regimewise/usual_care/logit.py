@@ -65,16 +65,17 @@ def prediction_design(model, X, fitted_attribute):
     return values, names
 
 
-def _run_mnlogit(design, endog, method, maxiter):
+def _run_mnlogit(design, endog, method, maxiter, start=None):
     """Maximum-likelihood fit of the multinomial logit, or ``None`` when it breaks down (singular Hessian,
     non-finite estimates).
 
-    ``"newton"`` is :func:`_newton_mnlogit`, which reads the records in blocks; any other method is statsmodels'
-    ``MNLogit`` optimiser of that name, whose own warnings are silenced here (the caller reports convergence
-    problems in its own words).
+    ``"newton"`` is :func:`_newton_mnlogit`, which reads the records in blocks, from ``start`` (coefficients on
+    the design's scale) if given; any other method is statsmodels' ``MNLogit`` optimiser of that name, from
+    statsmodels' start, whose own warnings are silenced here (the caller reports convergence problems in its own
+    words).
     """
     if method == "newton":
-        return _newton_mnlogit(design, endog, maxiter)
+        return _newton_mnlogit(design, endog, maxiter, start=start)
     import statsmodels.api as sm  # only the other optimisers: a job fitting by Newton does not load statsmodels
 
     with warnings.catch_warnings(), np.errstate(all="ignore"):
@@ -126,16 +127,17 @@ HALVINGS = 30
 LLF_ROUNDING = 1e-9
 
 
-def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
+def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10, start=None):
     """Newton's method for the multinomial logit, as statsmodels' ``MNLogit.fit(method="newton")`` runs it, with
     step halving where a full step would lower the log-likelihood.
 
-    Start at 0; each step solves (H + ridge·I) Δ = −score with the Hessian H of the log-likelihood; stop when no
-    coefficient moves by more than ``tol`` or after ``maxiter`` passes (then ``converged`` is False). statsmodels'
-    defaults (``tol`` 1e-8, ridge 1e-10) are kept, so both give the same estimates to rounding; the tests check
-    it. The score and the Hessian are sums over the records, accumulated here block by block: with A_j = X·p_j
-    (each row of X times the probability of class j), −H has blocks δ_jl X'diag(p_j)X − A_j'A_l, two matrix
-    products per block (Agresti 2013, Categorical Data Analysis, 3rd ed., §8.1 for the likelihood equations).
+    Start at 0 (or at ``start``, coefficients (columns, classes - 1) on the design's scale); each step solves (H +
+    ridge·I) Δ = −score with the Hessian H of the log-likelihood; stop when no coefficient moves by more than
+    ``tol`` or after ``maxiter`` passes (then ``converged`` is False). statsmodels' defaults (``tol`` 1e-8, ridge
+    1e-10) are kept, so both give the same estimates to rounding; the tests check it. The score and the Hessian are
+    sums over the records, accumulated here block by block: with A_j = X·p_j (each row of X times the probability of
+    class j), −H has blocks δ_jl X'diag(p_j)X − A_j'A_l, two matrix products per block (Agresti 2013, Categorical
+    Data Analysis, 3rd ed., §8.1 for the likelihood equations).
     Memory stays at a block's worth of temporaries instead of several copies of the design.
 
     The log-likelihood is concave, so a full Newton step raises it wherever the quadratic model holds and the
@@ -148,7 +150,9 @@ def _newton_mnlogit(design, endog, maxiter, tol=1e-8, ridge=1e-10):
     """
     n_rows, n_cols = design.shape
     n_other = int(endog.max())  # classes 1 .. n_other against the reference class 0
-    params = np.zeros((n_cols, n_other))
+    params = np.zeros((n_cols, n_other)) if start is None else np.array(start, dtype=float)
+    if params.shape != (n_cols, n_other):
+        raise ValueError(f"start has shape {params.shape}; the design needs {(n_cols, n_other)}")
     others = np.arange(1, n_other + 1)
     best = None  # (params, log-likelihood, step) of the last point a step was taken from
     halvings = 0
@@ -360,8 +364,13 @@ class MultinomialLogitBehaviour:
         self.maxiter = maxiter
         self.method = method
 
-    def fit(self, X, action, n_actions):
+    def fit(self, X, action, n_actions, start=None):
         """Fit the model on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``.
+
+        ``start``: a model fitted on other records of the same design columns (another fold of the same
+        patients, say; a plain logit, or a mixture with an even floor, whose plain logit is read), whose
+        coefficients start Newton's method instead of 0 when it saw the same actions (:func:`warm_start`). The
+        maximum is the same; fewer iterations reach it.
 
         Returns
         -------
@@ -374,10 +383,10 @@ class MultinomialLogitBehaviour:
             after the BFGS fallback. Quasi-separation (only some decisions predicted with certainty) is not an
             error: it shows as a :class:`ConvergenceWarning` and probabilities near 0 and 1.
         """
-        self.fit_scaled(X, action, n_actions)
+        self.fit_scaled(X, action, n_actions, start)
         return self
 
-    def fit_scaled(self, X, action, n_actions):
+    def fit_scaled(self, X, action, n_actions, start=None):
         """:meth:`fit`, returning the design it ran on (a :class:`ScaledDesign`; ``None`` when only one action
         occurs), so that a model refined from this fit (:class:`~regimewise.usual_care.mixture.
         FloorMixtureLogitBehaviour`) need not check, standardise and copy the covariates a second time."""
@@ -396,7 +405,8 @@ class MultinomialLogitBehaviour:
         design = scaled_design(values, mean, scale)
         self._check_rank(design)
         endog = np.searchsorted(self.classes_, codes)
-        result = self._fit_mnlogit(design, endog)
+        plain = "logit_params_" if hasattr(start, "logit_params_") else "params_"  # a mixture's plain logit
+        result = self._fit_mnlogit(design, endog, warm_start(start, self, plain, mean, scale))
         params = np.asarray(result.params)
         # statsmodels' llf overflows to nan when probabilities saturate; compute it in log space instead.
         llf = _log_likelihood(design, endog, params)
@@ -420,10 +430,11 @@ class MultinomialLogitBehaviour:
             proba[rows, self.classes_] = np.exp(log_proba_rows(design, self.params_))
         return proba
 
-    def _fit_mnlogit(self, design, endog):
-        """Fit MNLogit; if Newton's method breaks down, refit once with BFGS; if that fails too, raise."""
+    def _fit_mnlogit(self, design, endog, start=None):
+        """Fit MNLogit (Newton's method from ``start``, on the design's scale, if given); if Newton's method breaks
+        down, refit once with BFGS; if that fails too, raise."""
         self.method_ = self.method
-        result = _run_mnlogit(design, endog, self.method, self.maxiter)
+        result = _run_mnlogit(design, endog, self.method, self.maxiter, start)
         if result is None and self.method == "newton":
             self.method_ = "bfgs"
             result = _run_mnlogit(design, endog, "bfgs", self.maxiter)
@@ -467,6 +478,29 @@ class MultinomialLogitBehaviour:
                 StatisticalWarning,
                 stacklevel=3,
             )
+
+
+def warm_start(model, fitting, attribute, mean, scale):
+    """The coefficients ``attribute`` of ``model`` (a model fitted on other records) on the scale of the fit under
+    way (``fitting``, whose classes and columns are set, and its covariates' ``mean`` and ``scale``), to start
+    Newton's method there; None (start as usual) without a model, or when the two saw different actions or
+    columns, or the model's coefficients are not finite."""
+    if model is None or not hasattr(model, attribute):
+        return None
+    if not np.array_equal(model.classes_, fitting.classes_) or model.n_features_in_ != fitting.n_features_in_:
+        return None
+    params = np.asarray(getattr(model, attribute), dtype=float)
+    if params.shape != (fitting.n_features_in_ + 1, fitting.classes_.size - 1) or not np.isfinite(params).all():
+        return None
+    return rescale(params, mean, scale)
+
+
+def rescale(params, mean, scale):
+    """Coefficients on the original covariates (row 0 the intercepts) mapped onto the centred and scaled
+    covariates of a fit: the inverse of :func:`unscale` (a constant column, left out of the fit, moves into the
+    intercept at its value)."""
+    varying = scale > 0
+    return np.vstack([params[0] + mean @ params[1:], params[1:][varying] * scale[varying, None]])
 
 
 def unscale(params_scaled, mean, scale):

@@ -21,6 +21,7 @@ from regimewise.usual_care.logit import (
     log_proba_by_class,
     log_proba_rows,
     prediction_design,
+    rescale,
     row_blocks,
     unscale,
 )
@@ -196,17 +197,25 @@ class FloorMixtureLogitBehaviour:
     def __init__(self, maxiter=100):
         self.maxiter = maxiter
 
-    def fit(self, X, action, n_actions):
+    def fit(self, X, action, n_actions, start=None):
         """Fit on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``; returns self.
+
+        ``start``: a mixture (or a plain logit) fitted on other records of the same design columns (another fold of
+        the same patients, say): its plain logit's coefficients start the plain logit's Newton iterations when it
+        saw the same actions (:func:`~regimewise.usual_care.logit.warm_start`); the plain logit's maximum is
+        unique, so only the iterations change. The mixture itself always starts from this fit's plain logit and a
+        share of 5%: its likelihood may have several maxima (on a few thousand decisions, a start from another
+        fold's mixture ended elsewhere), and the fit must not depend on where another fit ended.
 
         Raises :class:`UserInputError` where the plain logit does (malformed input, rank deficiency, complete
         separation, a breakdown even after BFGS).
         """
         logit = MultinomialLogitBehaviour(maxiter=self.maxiter)
-        scaled = logit.fit_scaled(X, action, n_actions)  # the design, classes and scaling the mixture reuses
+        scaled = logit.fit_scaled(X, action, n_actions, start)  # the design, classes and scaling the mixture reuses
         for name in ("classes_", "n_actions_", "n_features_in_", "feature_names_in_"):
             setattr(self, name, getattr(logit, name))
         self.logit_llf_ = logit.llf_
+        self.logit_params_ = logit.params_
         self.method_ = "newton"
         if self.classes_.size == 1:
             self.params_, self.share_, self.floor_ = logit.params_, 0.0, 0.0
@@ -214,16 +223,15 @@ class FloorMixtureLogitBehaviour:
             self.converged_, self.n_iter_ = True, 0
             return self
         design, endog, mean, scale = scaled.design, scaled.endog, scaled.mean, scaled.scale
-        varying = scale > 0  # the plain logit's coefficients on the centred and scaled covariates start the fit
-        intercept, slopes = logit.params_[0] + mean @ logit.params_[1:], logit.params_[1:][varying]
-        start = np.vstack([intercept, slopes * scale[varying, None]])
+        # the plain logit's coefficients on the centred and scaled covariates start the fit
+        start_params, start_z = rescale(logit.params_, mean, scale), _Z_START
         n_classes = self.classes_.size
         with np.errstate(over="ignore", under="ignore", divide="ignore"):
             params, z, llf, converged, iterations = _newton_mixture(
-                design, endog, n_classes, start, _Z_START, self.maxiter
+                design, endog, n_classes, start_params, start_z, self.maxiter
             )
         if llf < self.logit_llf_:  # a worse local optimum: the plain logit (share 0) is the better point
-            params, z, llf = start, -np.inf, self.logit_llf_
+            params, z, llf = rescale(logit.params_, mean, scale), -np.inf, self.logit_llf_
         self.llf_ = float(llf)
         self.share_ = float(expit(z))
         self.floor_ = self.share_ / n_classes
