@@ -39,3 +39,26 @@ def test_shared_codes_are_the_codes_each_fit_built_and_give_the_same_fits():
         assert shared.coef_.tobytes() == alone.coef_.tobytes()
         assert shared.record_choice_.tobytes() == alone.record_choice_.tobytes()
         assert shared.oof_mse_ == alone.oof_mse_
+
+
+def test_q_values_kept_by_the_fit_are_those_predicted_again():
+    # Source of truth: FittedQIteration.q_values of the training features after the fit, as the regime stage
+    # computed them before; the fit keeps them for the protocol's learned regime (the last side-by-side one)
+    pf = load_protocol(REPOSITORY / "config" / "protocol.yaml")
+    p = pf.protocol
+    d = clean_decisions(pf, simulate_cohort(300, seed=4).decisions)
+    proba = fit_usual_care(d, p).record_proba
+    features = QFeatures.from_protocol(StateScaler.fit(d, p), p, d)
+    X, step = features.transform(d), d["step"].to_numpy(dtype=np.int64)
+    fits = {name: task() for name, task in variant_tasks(d, proba, p, features).items()}
+    assert [name for name, fit in fits.items() if fit.record_q_ is not None] == ["pessimistic"]
+    learned = fits["pessimistic"]
+    expected = learned.q_values(X, step)
+    assert learned.record_q_.dtype == expected.dtype and learned.record_q_.tobytes() == expected.tobytes()
+    cold = fit_q_learning(d, proba, p, features, safeguards="pessimistic", oof_error=True)
+    assert cold.record_choice_.tobytes() == learned.record_choice_.tobytes()  # keeping them changes no choice
+    assert cold.coef_.tobytes() == learned.coef_.tobytes()
+    # pooled mode predicts once after its iterations
+    pooled = p.model_copy(update={"q_model": p.q_model.model_copy(update={"learning_mode": "pooled"})})
+    kept = fit_q_learning(d, proba, pooled, features, safeguards="rules", keep_q=True)
+    assert kept.record_q_.tobytes() == kept.q_values(X, step).tobytes()

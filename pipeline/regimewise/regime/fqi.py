@@ -142,6 +142,9 @@ class FittedQIteration(BackwardQModel):
     record_choice_ : ndarray of int, shape (n,)
         The regime's action at each decision it was fitted on: what :meth:`recommend` returns for the training
         ``X``, ``step``, ``behaviour_proba`` and ``rule_permitted``, without scoring them again.
+    record_q_ : ndarray, shape (n, K), or None
+        With ``fit(..., keep_q=True)``: :meth:`q_values` of the training ``X`` and ``step``, kept from the fit
+        (backward mode predicts each step's rows once, right after fitting its model); None otherwise.
 
     References
     ----------
@@ -205,8 +208,11 @@ class FittedQIteration(BackwardQModel):
             return PessimisticEnsemble(make, self._resamples, self.settings.pessimism).fit(X, action, y, rows), make
         return make().fit(X, action, y, None), make
 
-    def _scores(self, model, X):
-        return model.score(X) if hasattr(model, "score") else model.predict(X)
+    def _scores(self, model, X, predicted=None):
+        """The model's scores at ``X``; ``predicted``: its :meth:`predict` of ``X`` when the caller has it."""
+        if hasattr(model, "score"):
+            return model.score(X, predicted)
+        return model.predict(X) if predicted is None else predicted
 
     def _pooled_X(self, X, step):
         return np.column_stack([X, np.asarray(step, dtype=float) / max(self.horizon - 1, 1)])
@@ -292,7 +298,12 @@ class FittedQIteration(BackwardQModel):
             if self.settings.oof_error:  # step t's targets are final now: scored on the rows gathered for the fit
                 self._step_oof[t] = self._step_out_of_fold(makers[t], X_t, action[rows], target[rows], rows)
             # as _raw gives them: the rows are all at step t, so step t's fitted actions mask every row
-            score = np.where(self.fitted_actions_[t], self._scores(self.models_[t], X_t), np.nan)
+            if self.record_q_ is None:
+                score = np.where(self.fitted_actions_[t], self._scores(self.models_[t], X_t), np.nan)
+            else:  # the step's Q-values, kept, are what q_values gives at these rows
+                full = self.models_[t].predict(X_t)
+                self.record_q_[rows] = np.where(self.fitted_actions_[t], full, np.nan)
+                score = np.where(self.fitted_actions_[t], self._scores(self.models_[t], X_t, full), np.nan)
             choice[rows], unconstrained[rows], none_permitted[rows] = constrained_choice(
                 score, proba[rows], self.settings.support_threshold, None if rules is None else rules[rows]
             )
@@ -347,7 +358,7 @@ class FittedQIteration(BackwardQModel):
         """Mean out-of-fold squared error of one step's Q-models, on that step's rows (``rows`` of the table)."""
         return float(np.nanmean(out_of_fold_errors(make, X_t, action_t, target_t, self._folds[rows])))
 
-    def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None):
+    def fit(self, X, step, action, reward, episode, behaviour_proba, rule_permitted=None, groups=None, keep_q=False):
         """Fit the Q-models; return ``self``.
 
         Parameters
@@ -363,6 +374,9 @@ class FittedQIteration(BackwardQModel):
         groups : ndarray, shape (n,), optional
             Patient of each decision: the unit of cross-validation folds and bootstrap resamples (episode
             if None).
+        keep_q : bool, default False
+            Keep the Q-values of every action at the training decisions as ``record_q_`` (the numbers
+            :meth:`q_values` gives there, without predicting them again).
         """
         step, action, episode, X, reward, proba = self._checked_table(X, step, action, reward, episode, behaviour_proba)
         rules = self._check_rules(rule_permitted, step.shape[0])
@@ -380,11 +394,15 @@ class FittedQIteration(BackwardQModel):
         self.alpha_ = []
         self._step_oof = {}
         learn = self._fit_pooled if self.settings.mode == "pooled" else self._fit_backward
+        # backward mode scores each step's rows right after its fit: asked to keep the Q-values there, it keeps them
+        self.record_q_ = np.empty((step.size, self.n_actions)) if keep_q and learn == self._fit_backward else None
         with threadpool_limits(limits=1):  # many small tall-skinny solves: BLAS threads only contend
             target, makers, choices = learn(X, step, action, reward, next_row_index(episode), proba, rules)
             self._set_coef()
             self.oof_mse_ = self._out_of_fold(X, step, action, target, makers) if self.settings.oof_error else None
         self._warn_unfitted(step)
+        if keep_q and self.record_q_ is None:
+            self.record_q_ = self._raw(X, step, scores=False)
         if choices is None:
             choices = constrained_choice(self._raw(X, step, scores=True), proba, self.settings.support_threshold, rules)
         choice, unconstrained, none_permitted = choices

@@ -73,13 +73,15 @@ def fit_q_learning(
     oof_error: bool = False,
     X: np.ndarray | None = None,
     arrays: dict | None = None,
+    keep_q: bool = False,
 ) -> FittedQIteration:
     """Fitted-Q iteration on the decisions with the protocol's Q-model, learning mode and safeguards.
 
     ``safeguards`` is one of :data:`SAFEGUARDS`: each level adds one safeguard to the previous one
     (``"pessimistic"``, the default, applies every safeguard the protocol sets). ``X`` is
     ``features.transform(decisions)`` and ``arrays`` is :func:`decision_arrays` of the decisions when the caller
-    has them already (computed here if None).
+    has them already (computed here if None). ``keep_q``: keep the Q-values at the decisions
+    (``FittedQIteration.record_q_``).
     """
     level = SAFEGUARDS.index(safeguards)
     c, q = protocol.constraints, protocol.q_model
@@ -116,6 +118,7 @@ def fit_q_learning(
         behaviour_proba,
         rule_permitted=None if rules is None else rules.permitted(decisions),
         groups=arrays["groups"],
+        keep_q=keep_q,
     )
 
 
@@ -161,7 +164,8 @@ def variant_tasks(
     callable each, for :func:`regimewise.core.concurrency.run_concurrently`.
 
     Each is learned on its own (the safeguards also shape the values carried backwards); the last one is the
-    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models. ``X`` is
+    protocol's learned regime. Only the last computes the out-of-fold error of its Q-models and keeps its
+    Q-values at the decisions (``record_q_``). ``X`` is
     ``features.transform(decisions)``, built here once for all of them when not given; the fits only read it, and
     likewise the decisions' codes (:func:`decision_arrays`, which took each fit about a second of the pandas work
     at a million episodes). Each callable lets go of ``X`` and of the codes when it has run, so once every one has
@@ -184,6 +188,7 @@ def variant_tasks(
                 oof_error=name == names[-1],
                 X=X,
                 arrays=arrays,
+                keep_q=name == names[-1],
             )
 
         return fit

@@ -320,7 +320,7 @@ def learn_side_by_side(p, frame, probabilities, cross_fits, threads=1) -> tuple[
     from regimewise.regime.readable import distill_regime
 
     features = QFeatures.from_protocol(StateScaler.fit(frame, p), p, frame)
-    X = features.transform(frame)  # built once: the learnings and the learned regime's Q-values share it
+    X = features.transform(frame)  # built once: the learnings share it
     fits = variant_tasks(frame, probabilities, p, features, X=X)
     # the fold regimes first: each also fits its own usual-care model, the longest tasks
     done = run_concurrently([*cross_fits, *fits.values()], threads)
@@ -331,7 +331,7 @@ def learn_side_by_side(p, frame, probabilities, cross_fits, threads=1) -> tuple[
     chosen = {name: fqi.record_choice_ for name, fqi in variants.items()}
     fqi = variants[list(variants)[-1]]
     recommended = chosen[list(chosen)[-1]]
-    q = fqi.q_values(X, frame["step"].to_numpy(dtype=np.int64))
+    q = fqi.record_q_  # the learned regime's Q-values at the records, kept by its fit (q_values of X there)
     del X
     permitted = permitted_actions(probabilities, p.constraints.support_threshold, rules.permitted(frame))
     summary = regime_summary(p, frame, fqi, features, recommended, probabilities)
