@@ -165,3 +165,53 @@ def test_a_start_that_saw_other_actions_or_columns_is_not_used():
         again = MultinomialLogitBehaviour().fit(X, action, n_actions=3, start=start)
         np.testing.assert_array_equal(again.params_, cold.params_)  # the usual start, the same iterations
         assert again.n_iter_ == cold.n_iter_
+
+
+def test_the_last_newton_step_skips_only_derivatives_nobody_reads():
+    # Source of truth: Newton's method as it ran before, every trial point with its score and Hessian, written out
+    # here; the fit now forms only the log-likelihood at the trial of a step no larger than the tolerance
+    from regimewise.usual_care.mixture import _Z_BOUNDS, _Z_START, _newton_mixture
+
+    X, action, _ = _simulate(3000, 0.15, seed=21)
+    design = np.column_stack([np.ones(len(X)), X])
+    start = MultinomialLogitBehaviour().fit(X, action, n_actions=3).params_
+    assert _mixture_pass(design, start, -1.0, action, 3, derivatives=False) == (
+        _mixture_pass(design, start, -1.0, action, 3)[0],
+        None,
+        None,
+    )
+
+    def before(params, z, maxiter=100, tol=1e-8):
+        n_cols, n_other = params.shape
+        theta = np.append(params.T.ravel(), z)
+
+        def unpack(v):
+            return v[:-1].reshape(n_other, n_cols).T, float(np.clip(v[-1], *_Z_BOUNDS))
+
+        llf, score, hessian = _mixture_pass(design, *unpack(theta), action, 3)
+        for iteration in range(1, maxiter + 1):
+            information = -hessian
+            try:
+                np.linalg.cholesky(information)
+                step = np.linalg.solve(information, score)
+            except np.linalg.LinAlgError:
+                step = score / np.maximum(np.abs(np.diag(information)), 1.0)
+            for _ in range(60):
+                trial = theta + step
+                trial[-1] = np.clip(trial[-1], *_Z_BOUNDS)
+                new_llf, new_score, new_hessian = _mixture_pass(design, *unpack(trial), action, 3)
+                if np.isfinite(new_llf) and new_llf >= llf - 1e-12 * abs(llf):
+                    break
+                step = step / 2.0
+            else:
+                return *unpack(theta), llf, False, iteration
+            moved = np.max(np.abs(trial - theta))
+            theta, llf, score, hessian = trial, new_llf, new_score, new_hessian
+            if moved <= tol:
+                return *unpack(theta), llf, True, iteration
+        return *unpack(theta), llf, False, maxiter
+
+    expected = before(start, _Z_START)
+    got = _newton_mixture(design, action, 3, start, _Z_START, 100)
+    assert expected[2:] == got[2:] and expected[1] == got[1]  # log-likelihood, convergence, iterations; share
+    assert expected[0].tobytes() == got[0].tobytes()

@@ -32,8 +32,9 @@ _Z_BOUNDS = (-20.0, 20.0)
 _Z_START = float(np.log(0.05 / 0.95))
 
 
-def _mixture_pass(design, params, z, endog, n_classes):
-    """Log-likelihood, score and Hessian of the mixture in (β, z), summed over the records in row blocks.
+def _mixture_pass(design, params, z, endog, n_classes, derivatives=True):
+    """Log-likelihood, score and Hessian of the mixture in (β, z), summed over the records in row blocks; with
+    ``derivatives`` False, the log-likelihood alone (the same number) and None, None.
 
     With s = softmax(x'β) over the classes (β = 0 for class 0), share λ = expit(z), P_a = (1 − λ) s_a + λ/K and
     r = (1 − λ) s_t / P_t for the class t taken (the posterior probability that the decision came from the logit
@@ -63,6 +64,8 @@ def _mixture_pass(design, params, z, endog, n_classes):
         s_taken = s[taken, by_record]
         p_taken = (1.0 - share) * s_taken + share / n_classes
         total += float(np.log(p_taken).sum())
+        if not derivatives:
+            continue
         r = (1.0 - share) * s_taken / p_taken
         residual = (np.arange(1, n_classes)[:, None] == taken) - s[1:]  # e_j − s_j, classes 1..K−1
         g_share = (1.0 / n_classes - s_taken) / p_taken
@@ -84,6 +87,8 @@ def _mixture_pass(design, params, z, endog, n_classes):
                 hessian[j * n_cols : (j + 1) * n_cols, k * n_cols : (k + 1) * n_cols] += block
                 if j != k:
                     hessian[k * n_cols : (k + 1) * n_cols, j * n_cols : (j + 1) * n_cols] += block.T
+    if not derivatives:
+        return total, None, None
     hessian[-1, :-1] = hessian[:-1, -1]
     return total, score, hessian
 
@@ -109,19 +114,26 @@ def _newton_mixture(design, endog, n_classes, params, z, maxiter, tol=1e-8):
             step = np.linalg.solve(information, score)
         except np.linalg.LinAlgError:
             step = score / np.maximum(np.abs(np.diag(information)), 1.0)
+        # a step this small ends the fit once taken (a halved or clipped trial moves less): its trial point needs
+        # the log-likelihood only, not the score and Hessian no further step would use
+        last = bool(np.max(np.abs(step)) <= tol)
         for _ in range(60):
             trial = theta + step
             trial[-1] = np.clip(trial[-1], *_Z_BOUNDS)
-            new_llf, new_score, new_hessian = _mixture_pass(design, *unpack(trial), endog, n_classes)
+            new_llf, new_score, new_hessian = _mixture_pass(
+                design, *unpack(trial), endog, n_classes, derivatives=not last
+            )
             if np.isfinite(new_llf) and new_llf >= llf - 1e-12 * abs(llf):
                 break
             step = step / 2.0
         else:
             return *unpack(theta), llf, False, iteration
         moved = np.max(np.abs(trial - theta))
-        theta, llf, score, hessian = trial, new_llf, new_score, new_hessian
         if moved <= tol:
-            return *unpack(theta), llf, True, iteration
+            return *unpack(trial), new_llf, True, iteration
+        if new_hessian is None:  # rounding moved the point by more than the step: its derivatives after all
+            new_llf, new_score, new_hessian = _mixture_pass(design, *unpack(trial), endog, n_classes)
+        theta, llf, score, hessian = trial, new_llf, new_score, new_hessian
     return *unpack(theta), llf, False, maxiter
 
 
