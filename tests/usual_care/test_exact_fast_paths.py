@@ -17,9 +17,12 @@ def _reference_log_softmax_by_class(linear):
     return log_softmax(linear.T, axis=1).T
 
 
-def _reference_mixture_pass(design, params, z, endog, n_classes):
+def _reference_mixture_pass(design, params, z, endog, n_classes, derivatives=True):
     """The mixture's pass as first written: records × classes arrays, one weighted copy of the block per pair of
-    classes (the formulas are in :func:`regimewise.usual_care.mixture._mixture_pass`)."""
+    classes (the formulas are in :func:`regimewise.usual_care.mixture._mixture_pass`); without ``derivatives``,
+    its log-likelihood alone, as the fit asks at the trial of its last step."""
+    if not derivatives:
+        return _reference_mixture_pass(design, params, z, endog, n_classes)[0], None, None
     n_cols, n_other = params.shape
     size, classes, total = n_other * n_cols + 1, np.arange(n_classes), 0.0
     score, hessian = np.zeros(size), np.zeros((size, size))
