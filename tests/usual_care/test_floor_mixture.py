@@ -134,7 +134,7 @@ def test_protocol_refuses_the_floor_with_boosting():
 
 def test_a_warm_start_from_another_sample_finds_the_same_maximum_in_fewer_iterations():
     # Reference: the same fit from the usual start (0), and statsmodels' MNLogit (Newton from 0), for the plain
-    # logit. Two samples of one population, as two cross-fitting folds of the same patients are; the plain
+    # logit. Two samples of one population, as the training records of two cross-fitting folds are; the plain
     # log-likelihood is concave, so it has one maximum. The mixture always starts from its own plain logit.
     X_a, action_a, _ = _simulate(4000, 0.15, seed=11)
     X_b, action_b, _ = _simulate(4000, 0.15, seed=12)

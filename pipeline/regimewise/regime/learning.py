@@ -275,11 +275,11 @@ def cross_fit_tasks(
 
     Each fold's usual-care model starts its Newton iterations from ``start`` (a usual-care model of the same
     patients' decisions, ``UsualCareModel.model``; :func:`~regimewise.usual_care.fitting.fit_usual_care`), or,
-    without one, every fold after the first from the first fold's model, which shares half its patients with
-    each of them: the same maxima, in fewer iterations. The first fold's callable hands its model on as soon as
-    it is fitted, and the others wait for it, so the numbers do not depend on how many run at once; run the
-    callables in their order (the first starts first), as :func:`~regimewise.core.concurrency.run_concurrently`
-    does, or one after the other.
+    without one, every fold after the first from the first fold's model, fitted on other patients of the same
+    records (with two folds, the other half): the same maxima, in fewer iterations. The first fold's callable hands
+    its model on as soon as it is fitted, and the others wait for it, so the numbers do not depend on how many run
+    at once; run the callables in their order (the first starts first), as
+    :func:`~regimewise.core.concurrency.run_concurrently` does, or one after the other.
     """
     handoff = _Handoff() if start is None else None
 

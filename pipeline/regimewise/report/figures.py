@@ -133,14 +133,10 @@ def balance_figure(balance, state_labels) -> str:
     )
 
 
-def section_figures(protocol, behaviour, cohort) -> dict:
-    """Inline SVG figures of the usual-care and cohort sections (empty strings where there are no data)."""
-    return {name: draw() for name, draw in section_figure_tasks(protocol, behaviour, cohort).items()}
-
-
 def section_figure_tasks(protocol, behaviour, cohort) -> dict:
-    """What :func:`section_figures` draws, one callable per figure (each returns its SVG text, or an empty
-    string where there are no data), so that the figures can be drawn at once in several processes."""
+    """The inline SVG figures of the usual-care and cohort sections, one callable per figure (each returns its SVG
+    text, or an empty string where there are no data), so that the figures can be drawn at once in several
+    processes (:func:`regimewise.report.html.render_html`)."""
     labels = {}
     for s in protocol.states:  # a categorical state is balanced level by level
         levels = s.coded_levels if s.kind == "categorical" else ()

@@ -62,7 +62,7 @@ def fit_usual_care(decisions: pd.DataFrame, protocol: Protocol, start=None) -> U
     protocol's root seed (stream ``usual_care`` of :mod:`regimewise.core.seeds`).
 
     ``start``: a usual-care model fitted on other records of the same protocol (``UsualCareModel.model`` of another
-    cross-fitting fold of the same patients, say), whose coefficients start the Newton iterations of the logit
+    cross-fitting fold's training records, say), whose coefficients start the Newton iterations of the logit
     model fitted on all decisions (``fit(..., start=)``): the same maximum, in fewer iterations. Boosting, and the
     models of the folds of ``behaviour_model.folds``, ignore it.
     """

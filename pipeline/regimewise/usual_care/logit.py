@@ -367,8 +367,8 @@ class MultinomialLogitBehaviour:
     def fit(self, X, action, n_actions, start=None):
         """Fit the model on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``.
 
-        ``start``: a model fitted on other records of the same design columns (another fold of the same
-        patients, say; a plain logit, or a mixture with an even floor, whose plain logit is read), whose
+        ``start``: a model fitted on other records of the same design columns (another cross-fitting fold's
+        training records, say; a plain logit, or a mixture with an even floor, whose plain logit is read), whose
         coefficients start Newton's method instead of 0 when it saw the same actions (:func:`warm_start`). The
         maximum is the same; fewer iterations reach it.
 

@@ -212,12 +212,12 @@ class FloorMixtureLogitBehaviour:
     def fit(self, X, action, n_actions, start=None):
         """Fit on covariates ``X`` (n, p) and action codes ``action`` (n,) in ``0 .. n_actions-1``; returns self.
 
-        ``start``: a mixture (or a plain logit) fitted on other records of the same design columns (another fold of
-        the same patients, say): its plain logit's coefficients start the plain logit's Newton iterations when it
-        saw the same actions (:func:`~regimewise.usual_care.logit.warm_start`); the plain logit's maximum is
-        unique, so only the iterations change. The mixture itself always starts from this fit's plain logit and a
-        share of 5%: its likelihood may have several maxima (on a few thousand decisions, a start from another
-        fold's mixture ended elsewhere), and the fit must not depend on where another fit ended.
+        ``start``: a mixture (or a plain logit) fitted on other records of the same design columns (another
+        cross-fitting fold's training records, say): its plain logit's coefficients start the plain logit's Newton
+        iterations when it saw the same actions (:func:`~regimewise.usual_care.logit.warm_start`); the plain logit's
+        maximum is unique, so only the iterations change. The mixture itself always starts from this fit's plain
+        logit and a share of 5%: its likelihood may have several maxima (on a few thousand decisions, a start from
+        another fold's mixture ended elsewhere), and the fit must not depend on where another fit ended.
 
         Raises :class:`UserInputError` where the plain logit does (malformed input, rank deficiency, complete
         separation, a breakdown even after BFGS).
