@@ -144,11 +144,12 @@ def labelled_table(frame: pd.DataFrame, labels: dict) -> pa.Table:
 def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
     """The table at ``path``; with ``columns``, only those columns are read from the file.
 
-    The DataFrame ``pandas.read_parquet(path, columns=columns)`` gives, for less time and memory: read on the
-    calling thread (Arrow's pool would add threads that cost a workflow job's core more than they save, since
-    its neighbours hold the other cores) and converted column by column, each Arrow column freed once converted,
-    without gathering the columns of one type into one block first (for the decisions table at 1M episodes x 12,
-    6 to 9 s of CPU and about 5 s).
+    The DataFrame ``pandas.read_parquet(path, columns=columns)`` gives, read on the calling thread (Arrow's pool
+    would add threads that cost a workflow job's core more than they save, since its neighbours hold the other
+    cores) and converted column by column, each Arrow column freed once converted, without gathering the columns
+    of one type into one block first. The read alone of the decisions table at 1M episodes x 12 takes about 5 s of
+    CPU instead of 6 to 9; the jobs that read it did not measurably gain (their later pandas work on the frame
+    costs about what the reader saves, bench/RESULTS.md), but the whole table is never held twice.
     """
     table = pq.read_table(path, columns=columns, use_threads=False, use_pandas_metadata=True)
     return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
