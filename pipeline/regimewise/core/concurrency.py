@@ -33,7 +33,6 @@ import multiprocessing
 import sys
 from collections.abc import Callable, Sequence
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
-from contextlib import contextmanager
 from typing import TypeVar
 
 from threadpoolctl import threadpool_limits
@@ -102,19 +101,6 @@ def can_fork() -> bool:
     return sys.platform != "darwin" and "fork" in multiprocessing.get_all_start_methods()
 
 
-@contextmanager
-def _forked_workers(tasks: Sequence[Callable], processes: int):
-    """A pool of ``processes`` workers forked from this process, which see ``tasks`` as ``_FORKED_TASKS``.
-    A worker that dies (killed, out of memory) makes the pending results raise ``BrokenProcessPool``."""
-    global _FORKED_TASKS
-    _FORKED_TASKS = list(tasks)
-    try:
-        with ProcessPoolExecutor(processes, mp_context=multiprocessing.get_context("fork")) as pool:
-            yield pool
-    finally:
-        _FORKED_TASKS = ()
-
-
 def run_in_processes(tasks: Sequence[Callable[[], T]], processes: int = 1) -> list[T]:
     """The results of ``tasks`` (callables without arguments), in their order; up to ``processes`` at once.
 
@@ -128,5 +114,10 @@ def run_in_processes(tasks: Sequence[Callable[[], T]], processes: int = 1) -> li
     processes = min(max(1, int(processes)), len(tasks))
     if processes <= 1 or not can_fork():
         return [task() for task in tasks]
-    with _forked_workers(tasks, processes) as pool:
-        return list(pool.map(_run_forked, range(len(tasks))))
+    global _FORKED_TASKS
+    _FORKED_TASKS = list(tasks)  # inherited by the workers, forked at the first task; a dead one raises here
+    try:
+        with ProcessPoolExecutor(processes, mp_context=multiprocessing.get_context("fork")) as pool:
+            return list(pool.map(_run_forked, range(len(tasks))))
+    finally:
+        _FORKED_TASKS = ()

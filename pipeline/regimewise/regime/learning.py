@@ -11,8 +11,8 @@ Research use only: a learned regime is a hypothesis for study, not a treatment r
 
 from __future__ import annotations
 
-import threading
 from collections.abc import Callable
+from concurrent.futures import Future
 from dataclasses import dataclass
 
 import numpy as np
@@ -281,7 +281,7 @@ def cross_fit_tasks(
     at once; run the callables in their order (the first starts first), as
     :func:`~regimewise.core.concurrency.run_concurrently` does, or one after the other.
     """
-    handoff = _Handoff() if start is None else None
+    handoff = Future() if start is None else None  # the first fold's usual-care model, for the others
 
     def task(index, fold):
         def learn_and_score():
@@ -294,9 +294,9 @@ def cross_fit_tasks(
                 try:
                     usual_care = fit_usual_care(training, protocol)
                 finally:  # the others start cold if this fit fails (its error is raised to the caller)
-                    handoff.put(None if usual_care is None else usual_care.model)
+                    handoff.set_result(None if usual_care is None else usual_care.model)
             else:
-                usual_care = fit_usual_care(training, protocol, handoff.get())
+                usual_care = fit_usual_care(training, protocol, handoff.result())
             learned = learn_regime(training, protocol, usual_care)
             del training
             return held_out, *score_by_step(learned, rows_of(decisions, held_out))
@@ -304,22 +304,6 @@ def cross_fit_tasks(
         return learn_and_score
 
     return [task(index, fold) for index, fold in enumerate(np.unique(folds))]
-
-
-class _Handoff:
-    """One value handed from one task to others, which wait for it (tasks may run on threads)."""
-
-    def __init__(self):
-        self._ready = threading.Event()
-        self._value = None
-
-    def put(self, value) -> None:
-        self._value = value
-        self._ready.set()
-
-    def get(self):
-        self._ready.wait()
-        return self._value
 
 
 def score_by_step(learned: LearnedRegime, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:

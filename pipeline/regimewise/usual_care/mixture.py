@@ -235,15 +235,14 @@ class FloorMixtureLogitBehaviour:
             self.converged_, self.n_iter_ = True, 0
             return self
         design, endog, mean, scale = scaled.design, scaled.endog, scaled.mean, scaled.scale
-        # the plain logit's coefficients on the centred and scaled covariates start the fit
-        start_params, start_z = rescale(logit.params_, mean, scale), _Z_START
+        start = rescale(logit.params_, mean, scale)  # the plain logit's coefficients start the fit
         n_classes = self.classes_.size
         with np.errstate(over="ignore", under="ignore", divide="ignore"):
             params, z, llf, converged, iterations = _newton_mixture(
-                design, endog, n_classes, start_params, start_z, self.maxiter
+                design, endog, n_classes, start, _Z_START, self.maxiter
             )
         if llf < self.logit_llf_:  # a worse local optimum: the plain logit (share 0) is the better point
-            params, z, llf = rescale(logit.params_, mean, scale), -np.inf, self.logit_llf_
+            params, z, llf = start, -np.inf, self.logit_llf_
         self.llf_ = float(llf)
         self.share_ = float(expit(z))
         self.floor_ = self.share_ / n_classes
