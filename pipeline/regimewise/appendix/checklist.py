@@ -21,7 +21,7 @@ import jinja2
 from regimewise.appendix.answers import METHODS, Answer, Run, report_sections
 from regimewise.appendix.findings import FINDINGS
 from regimewise.appendix.guidelines import GUIDELINES, Guideline, Item
-from regimewise.report.html import report_stylesheet
+from regimewise.report.stylesheet import report_stylesheet
 
 CHECKLIST_SCHEMA_VERSION = "1"
 FILLED = "filled by the tool"

@@ -45,11 +45,6 @@ def _number(x, digits=3):
     return "—" if x is None else f"{x:,.{digits}f}"
 
 
-def report_stylesheet() -> str:
-    """The report's stylesheet (``templates/report.css``), shared by every HTML page a run writes."""
-    return resources.files("regimewise.report").joinpath("templates", "report.css").read_text(encoding="utf-8")
-
-
 def template_environment(p) -> jinja2.Environment:
     """The report's templates with their filters (cell counts, numbers, percentages, identifiers as words)."""
     environment = jinja2.Environment(

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from html import escape
 
-from regimewise.report.html import report_stylesheet
+from regimewise.report.stylesheet import report_stylesheet
 
 TARGET_WORDS = {"value": "value", "contrast": "difference from usual care"}
 SURVIVAL_WORDS = {"survival": "survival", "risk_difference": "risk difference from usual care"}
