@@ -49,12 +49,17 @@ def study(folder: Path, args) -> Path:
     return path
 
 
-def snakemake(protocol: Path, out: Path, cores: int, target: str, forcerun=()) -> float:
+# The evaluate jobs' parts and the bounds curves, which the combine rule joins with the shards: made by the untimed
+# run and kept (--notemp) for the timed reruns of the shards and the combine rule.
+POINT_ESTIMATES = ("evaluate/learned.json", "evaluate/fixed.json", "evaluate/side.json", "sensitivity/curves.json")
+
+
+def snakemake(protocol: Path, out: Path, cores: int, targets, forcerun=()) -> float:
     command = [
         sys.executable,
         "-m",
         "snakemake",
-        target,
+        *targets,
         "--snakefile",
         str(REPOSITORY / "Snakefile"),
         "--directory",
@@ -62,6 +67,7 @@ def snakemake(protocol: Path, out: Path, cores: int, target: str, forcerun=()) -
         "--cores",
         str(cores),
         "--quiet",
+        "--notemp",
         *(["--forcerun", *forcerun] if forcerun else []),
         "--config",
         f"protocol={protocol}",
@@ -83,12 +89,12 @@ def main(argv=None) -> None:
         folder = Path(tmp)
         protocol = study(folder, args)
         out = folder / "out"
-        snakemake(protocol, out, 2, "evaluate/values.json")
+        snakemake(protocol, out, 2, POINT_ESTIMATES)
         times, outputs = {}, {}
         for cores in (1, 2):
             print(f"load average before the {cores}-core run: {os.getloadavg()[0]:.2f}")
             times[cores] = snakemake(
-                protocol, out, cores, "bootstrap/intervals.json", forcerun=("bootstrap_shard", "bootstrap")
+                protocol, out, cores, ["bootstrap/intervals.json"], forcerun=("bootstrap_shard", "combine")
             )
             outputs[cores] = (out / "bootstrap" / "intervals.json").read_bytes()
             print(f"{cores} core(s): {times[cores]:.1f} s wall clock")

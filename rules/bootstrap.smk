@@ -1,4 +1,4 @@
-# ---- bootstrap: replicates in shards (separate jobs, one thread each), then combined into intervals ------
+# ---- bootstrap_shard: replicates in shards (separate jobs, one thread each; the combine rule joins them) --
 rule bootstrap_shard:
     input:
         protocol=SETTINGS.protocol_input,
@@ -20,30 +20,6 @@ rule bootstrap_shard:
     resources:
         mem_mb=mem_mb("bootstrap_shard"),
         runtime=runtime("bootstrap_shard"),
-    conda:
-        "envs/regimewise.yaml"
-    script:
-        "scripts/run_stage.py"
-
-
-rule bootstrap:
-    input:
-        protocol=SETTINGS.protocol_input,
-        values=results("evaluate/values.json"),
-        shards=bootstrap_shard_files(),
-    output:
-        intervals=results("bootstrap/intervals.json"),
-    log:
-        logs("bootstrap"),
-    benchmark:
-        benchmarks("bootstrap")
-    params:
-        code=stage_code_hash("bootstrap"),
-    threads: 1
-    priority: PRIORITY["bootstrap"]  # longest path to the end first (rules/common.smk)
-    resources:
-        mem_mb=mem_mb("bootstrap"),
-        runtime=runtime("bootstrap"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -24,9 +24,7 @@ PRIORITY = {
     "evaluate_side": 34,
     "behaviour_diagnostics": 32,
     "describe": 23,
-    "evaluate": 10,
-    "bootstrap": 9,
-    "sensitivity": 8,
+    "combine": 10,
 }
 
 

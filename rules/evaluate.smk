@@ -5,7 +5,7 @@ rule evaluate_fixed:
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:
-        fixed=temp(results("evaluate/fixed.json")),  # read by the evaluate rule only; not an artifact
+        fixed=temp(results("evaluate/fixed.json")),  # read by the combine rule only; not an artifact
     log:
         logs("evaluate_fixed"),
     benchmark:
@@ -31,7 +31,7 @@ rule evaluate_learned:
         decisions=results("validate/decisions.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:
-        learned=temp(results("evaluate/learned.json")),  # read by the evaluate rule only; not an artifact
+        learned=temp(results("evaluate/learned.json")),  # read by the combine rule only; not an artifact
     log:
         logs("evaluate_learned"),
     benchmark:
@@ -57,7 +57,7 @@ rule evaluate_side:
         proba=results("behaviour/behaviour_proba.parquet"),
         fitted=results("regime/fitted.parquet"),
     output:
-        side=temp(results("evaluate/side.json")),  # read by the evaluate rule only; not an artifact
+        side=temp(results("evaluate/side.json")),  # read by the combine rule only; not an artifact
     log:
         logs("evaluate_side"),
     benchmark:
@@ -69,33 +69,6 @@ rule evaluate_side:
     resources:
         mem_mb=mem_mb("evaluate_side"),
         runtime=runtime("evaluate_side"),
-    conda:
-        "envs/regimewise.yaml"
-    script:
-        "scripts/run_stage.py"
-
-
-# ---- evaluate: values.json joined from the three parts: off-policy values of every regime ----------------
-rule evaluate:
-    input:
-        protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
-        learned=results("evaluate/learned.json"),
-        fixed=results("evaluate/fixed.json"),
-        side=results("evaluate/side.json"),
-    output:
-        values=results("evaluate/values.json"),
-    log:
-        logs("evaluate"),
-    benchmark:
-        benchmarks("evaluate")
-    params:
-        code=stage_code_hash("evaluate"),
-    threads: stage_threads("evaluate")
-    priority: PRIORITY["evaluate"]  # longest path to the end first (rules/common.smk)
-    resources:
-        mem_mb=mem_mb("evaluate"),
-        runtime=runtime("evaluate"),
     conda:
         "envs/regimewise.yaml"
     script:

@@ -6,7 +6,7 @@ rule sensitivity_curves:
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),
     output:
-        curves=temp(results("sensitivity/curves.json")),  # read by the sensitivity rule only; not an artifact
+        curves=temp(results("sensitivity/curves.json")),  # read by the combine rule only; not an artifact
     log:
         logs("sensitivity_curves"),
     benchmark:
@@ -18,32 +18,6 @@ rule sensitivity_curves:
     resources:
         mem_mb=mem_mb("sensitivity_curves"),
         runtime=runtime("sensitivity_curves"),
-    conda:
-        "envs/regimewise.yaml"
-    script:
-        "scripts/run_stage.py"
-
-
-# ---- sensitivity: bounds under unmeasured confounding, tipping point, E-values ---------------------------
-rule sensitivity:
-    input:
-        protocol=SETTINGS.protocol_input,
-        curves=results("sensitivity/curves.json"),
-        intervals=results("bootstrap/intervals.json"),
-        shards=bootstrap_shard_files(),
-    output:
-        sensitivity=results("sensitivity/sensitivity.json"),
-    log:
-        logs("sensitivity"),
-    benchmark:
-        benchmarks("sensitivity")
-    params:
-        code=stage_code_hash("sensitivity"),
-    threads: 1
-    priority: PRIORITY["sensitivity"]  # longest path to the end first (rules/common.smk)
-    resources:
-        mem_mb=mem_mb("sensitivity"),
-        runtime=runtime("sensitivity"),
     conda:
         "envs/regimewise.yaml"
     script:

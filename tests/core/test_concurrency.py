@@ -36,6 +36,7 @@ from regimewise.workflow.stages import (
     behaviour_fit_stage,
     behaviour_stage,
     bootstrap_stage,
+    combine_stage,
     crossfit_stage,
     evaluate_fixed_stage,
     evaluate_join_stage,
@@ -431,3 +432,28 @@ def test_the_sensitivity_stage_writes_what_the_analysis_finds_from_the_curves_jo
     )
     assert (folder / "sens.json").read_text(encoding="utf-8") == dumps_json(direct)
     assert direct["comparators"]  # the demo protocol bounds its comparators too
+
+
+def test_the_combine_job_writes_what_the_three_joins_write(cohort):
+    # the workflow's combine rule runs the evaluate join, the bootstrap's intervals and the sensitivity summary in one
+    # job: the three files must be those the three stage functions write one by one
+    folder, _ = cohort
+    raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
+    raw["evaluation"].update(replicates=0, shards=1)  # intervals.json without replicates: no shard to run here
+    protocol = folder / "combine.yaml"
+    protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
+    decisions, proba = folder / "decisions.parquet", folder / "proba.parquet"
+    if not (folder / "jobs_values.json").is_file():
+        _evaluate_in_jobs(folder, folder / "protocol.yaml", "jobs")
+    parts = [folder / f"jobs_{name}.json" for name in ("learned", "fixed", "side")]
+    curves = folder / "combine_curves.json"
+    sensitivity_curves_stage(protocol, decisions, proba, folder / "jobs_table.parquet", curves)
+    one_by_one = [folder / f"alone_{name}.json" for name in ("values", "intervals", "sensitivity")]
+    evaluate_join_stage(protocol, decisions, *parts, one_by_one[0])
+    bootstrap_stage(protocol, one_by_one[0], [], one_by_one[1])
+    sensitivity_stage(protocol, curves, one_by_one[1], [], one_by_one[2])
+    combined = [folder / f"combined_{name}.json" for name in ("values", "intervals", "sensitivity")]
+    combine_stage(protocol, decisions, *parts, curves, [], *combined)
+    for alone, joined in zip(one_by_one, combined):
+        assert joined.read_bytes() == alone.read_bytes(), joined.name
+    assert read_json(combined[0])["side_by_side"] and read_json(combined[2])["comparators"]

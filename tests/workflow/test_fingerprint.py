@@ -57,13 +57,13 @@ def test_editing_a_module_changes_exactly_the_stages_that_need_it(copy):
 @pytest.mark.parametrize(
     ("module", "rules"),
     [  # the cases the hand-kept list missed (issue: stale results after a code edit)
-        ("regimewise.core.quantiles", {"bootstrap", "sensitivity", "sweep_spec", "sweep"}),
-        ("regimewise.sensitivity.bounds", {"bootstrap_shard", "sensitivity", "sweep_spec"}),
+        ("regimewise.core.quantiles", {"combine", "sweep_spec", "sweep"}),
+        ("regimewise.sensitivity.bounds", {"bootstrap_shard", "combine", "sweep_spec"}),
         (
             "regimewise.usual_care.fitting",
             {"behaviour", "regime_fit", "evaluate_learned", "bootstrap_shard", "sweep_spec"},
         ),
-        ("regimewise.core.weighting", {"behaviour", "evaluate", "sensitivity", "bootstrap_shard", "describe"}),
+        ("regimewise.core.weighting", {"behaviour", "evaluate_fixed", "combine", "bootstrap_shard", "describe"}),
     ],
 )
 def test_the_modules_the_old_list_missed_now_count(module, rules):

@@ -25,18 +25,18 @@ localrule bootstrap_shard:
     wildcards: shard=1
     resources: tmpdir=/tmp, runtime=5, mem_mb=700, mem=700 MB, mem_mib=668
 [Thu Dec  3 01:52:25 2026]
-localrule evaluate:
-    input: protocol.yaml, validate/decisions.parquet, behaviour/behaviour_proba.parquet, regime/recommendations.parquet
-    output: evaluate/values.json
-    log: logs/evaluate.log
+localrule evaluate_fixed:
+    input: protocol.yaml, validate/decisions.parquet, behaviour/behaviour_proba.parquet
+    output: evaluate/fixed.json
+    log: logs/evaluate_fixed.log
     jobid: 10
-    benchmark: benchmarks/evaluate.tsv
+    benchmark: benchmarks/evaluate_fixed.tsv
     resources: tmpdir=/tmp, runtime=5, mem_mb=700, mem=700 MB, mem_mib=668
 Select jobs to execute...
 pipeline/regimewise/evaluation/ope.py:395: StatisticalWarning: no episode has a positive importance weight
   results.append(estimate(weights, gamma))
 [Thu Dec  3 01:52:34 2026]
-Finished jobid: 10 (Rule: evaluate)
+Finished jobid: 10 (Rule: evaluate_fixed)
 7 of 14 steps (50%) done
 Execute 1 jobs...
 
@@ -70,7 +70,7 @@ def test_one_line_per_finished_job_in_the_order_snakemake_reports_them():
             shown.append(out)
     # the regime job finished before this excerpt began (never announced in it), so it gets no line
     assert shown == [
-        "[7/14] off-policy evaluation done (9 s)",
+        "[7/14] off-policy evaluation of usual care and the fixed strategies done (9 s)",
         "[8/14] bootstrap shard 2 of 2 done (11 s)",
     ]
 
@@ -80,7 +80,7 @@ def test_the_closing_line_counts_the_warnings_in_the_stage_logs_and_names_them(t
     logs.mkdir()
     # Snakemake's log holds only this invocation's jobs (here: a rerun of the report alone): not counted
     (logs / "workflow.log").write_text(STREAM + "Finished jobid: 1 (Rule: report)\n", encoding="utf-8")
-    (logs / "evaluate.log").write_text(
+    (logs / "evaluate_fixed.log").write_text(
         "WARNING StatisticalWarning: no episode has a positive importance weight\n"
         "WARNING StatisticalWarning: no episode agrees with always_add_agent\n"
         "INFO resource use: wall 1.93 s, cpu 4.04 s, peak rss 368.6 MB\n",
@@ -90,9 +90,9 @@ def test_the_closing_line_counts_the_warnings_in_the_stage_logs_and_names_them(t
     (logs / "report.log").write_text("INFO resource use: wall 1.00 s, cpu 1.00 s, peak rss 300.0 MB\n", "utf-8")
     assert warning_line(logs) == (
         "3 statistical warnings (read them before the estimates); listed in "
-        f"{logs / 'evaluate.log'}, {logs / 'survival.log'}"
+        f"{logs / 'evaluate_fixed.log'}, {logs / 'survival.log'}"
     )
-    for name in ("evaluate.log", "survival.log"):
+    for name in ("evaluate_fixed.log", "survival.log"):
         (logs / name).unlink()
     assert warning_line(logs) == "no statistical warnings"
     (logs / "regime.log").write_text("WARNING StatisticalWarning: one\n", encoding="utf-8")

@@ -115,7 +115,7 @@ def _dry_run(protocol, folder):
 
 def test_dry_run_lists_every_stage(study, tmp_path):
     stdout = _dry_run(study, tmp_path)
-    for rule in ("validate", "behaviour", "regime", "evaluate", "bootstrap_shard", "report"):
+    for rule in ("validate", "behaviour", "regime", "evaluate_learned", "bootstrap_shard", "combine", "report"):
         assert rule in stdout
 
 
@@ -145,7 +145,7 @@ def test_no_shard_jobs_without_replicates(study, tmp_path):
     protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
     stdout = _dry_run(protocol, tmp_path)
     assert "bootstrap_shard" not in stdout
-    for rule in ("bootstrap", "sensitivity", "survival", "report"):
+    for rule in ("combine", "survival", "report"):
         assert f"rule {rule}:" in stdout or f"localrule {rule}:" in stdout, stdout
 
 

@@ -26,9 +26,10 @@ separate jobs; ``behaviour_diagnostics`` (behaviour.json) runs beside the jobs a
 (the side-by-side regimes; the ``regime`` rule joins the two), ``evaluate_fixed`` (the values of usual care, the
 fixed strategies and the comparators) beside ``regime_fit``, ``evaluate_learned`` (the cross-fitted regime and its
 strategies) as soon as ``crossfit`` ends and ``evaluate_side`` (the side-by-side regimes) as soon as ``regime_fit``
-ends, the ``evaluate`` rule joining the three, and
-``sensitivity_curves`` (the bounds curves) needs only the regime stage's table, so it runs beside ``describe`` and
-``survival`` without waiting for the bootstrap. Snakemake gives a rule no more threads than ``--cores``.
+ends, and ``sensitivity_curves`` (the bounds curves) needs only the regime stage's table, so it runs beside
+``describe`` and ``survival`` without waiting for the bootstrap; one ``combine`` job then joins the evaluate jobs'
+parts into values.json, the shards into the bootstrap intervals and the curves into sensitivity.json. Snakemake
+gives a rule no more threads than ``--cores``.
 """
 
 from __future__ import annotations
@@ -79,12 +80,10 @@ STAGE_COSTS = {
     "evaluate_fixed": StageCost(BASE_MB, 500.0, 0.1),
     "evaluate_learned": StageCost(BASE_MB, 600.0, 0.2),
     "evaluate_side": StageCost(BASE_MB, 500.0, 0.1),
-    "evaluate": StageCost(BASE_MB, 0.0, 0.0),  # joins three JSON files
     "describe": StageCost(BASE_MB, 400.0, 0.1),
     "bootstrap_shard": StageCost(BASE_MB, 1600.0, 0.1, per_replicate_minutes=2.5),
-    "bootstrap": StageCost(BASE_MB, 0.0, 0.0),
     "sensitivity_curves": StageCost(BASE_MB, 400.0, 0.1),
-    "sensitivity": StageCost(BASE_MB, 0.0, 0.0),
+    "combine": StageCost(BASE_MB, 0.0, 0.0),  # joins JSON files
     "survival": StageCost(BASE_MB, 500.0, 0.2),
     "sweep_spec": StageCost(BASE_MB, 1600.0, 2.5, per_replicate_minutes=2.5),
     "sweep": StageCost(BASE_MB, 0.0, 0.0),
@@ -108,7 +107,7 @@ STAGE_THREADS: dict[str, int] = {"report": 2}
 def stage_threads(rule: str) -> int:
     """Threads to request for ``rule`` (:data:`STAGE_THREADS`; 1 for the others).
 
-    >>> stage_threads("evaluate"), stage_threads("regime"), stage_threads("report")
+    >>> stage_threads("evaluate_learned"), stage_threads("regime"), stage_threads("report")
     (1, 1, 2)
     """
     if rule not in STAGE_COSTS:
