@@ -155,6 +155,24 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
 
 
+def read_float_matrix(path: str | Path, columns) -> np.ndarray:
+    """The numeric ``columns`` of the Parquet file at ``path`` as one float array (n, k), without a DataFrame: the
+    array ``read_parquet(path, columns)[columns].to_numpy(dtype=float)`` gives, value for value and in its memory
+    layout (column-major: each column one contiguous run, as pandas builds it from a frame's per-column blocks), so
+    later sums over it run in the same order. Read column by column into the array, each Arrow chunk converted
+    once: at 1M episodes x 12, usual care's four probability columns in about 1.5 s of CPU instead of 3 to 4.
+    """
+    columns = list(columns)
+    table = pq.read_table(path, columns=columns, use_threads=False)
+    out = np.empty((len(columns), table.num_rows))
+    for row, name in zip(out, columns):
+        start = 0
+        for chunk in table.column(name).chunks:  # a null becomes NaN, as in pandas' float conversion
+            row[start : start + len(chunk)] = chunk.to_numpy(zero_copy_only=False)
+            start += len(chunk)
+    return out.T
+
+
 def read_label_codes(path: str | Path, column: str, labels) -> np.ndarray:
     """Codes (n,) of the text column ``column`` of the Parquet file at ``path``: each value's position in ``labels``,
     -1 for a value not among them or missing. The column is read as Arrow's dictionary, so its few distinct texts

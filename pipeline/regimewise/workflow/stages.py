@@ -45,6 +45,7 @@ from regimewise.evaluation.values import (
 from regimewise.io import (
     parquet_columns,
     parquet_rows,
+    read_float_matrix,
     read_json,
     read_label_codes,
     read_parquet,
@@ -219,9 +220,9 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
 def read_probabilities(path, labels) -> np.ndarray:
     """Usual care's probabilities (n, K) from the behaviour stage's table, reading its probability columns only:
     the same values in the same memory layout as taking them from the whole table, without converting a text key
-    per decision (at 12M decisions, 2 to 4 s of each job that reads them)."""
-    columns = proba_columns(labels)
-    return read_parquet(path, columns)[columns].to_numpy(dtype=float)
+    per decision (at 12M decisions, 2 to 4 s of each job that reads them) nor building a DataFrame
+    (:func:`regimewise.io.read_float_matrix`)."""
+    return read_float_matrix(path, proba_columns(labels))
 
 
 # ---------------------------------------------------------------------------------------------- regime
@@ -462,7 +463,7 @@ def evaluated_q_columns(labels) -> list[str]:
 def evaluated_regime(table, labels) -> tuple[np.ndarray, np.ndarray]:
     """The cross-fitted regime as the evaluation scores it, read from the regime stage's table (its columns only):
     action codes (n,) and Q-values (n, K)."""
-    q = read_parquet(table, evaluated_q_columns(labels)).to_numpy(dtype=float)
+    q = read_float_matrix(table, evaluated_q_columns(labels))
     return column_codes(table, "evaluated", labels), q
 
 
