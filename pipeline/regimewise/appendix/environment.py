@@ -37,12 +37,14 @@ LIBRARY_KEYS = ("user_api", "internal_api", "prefix", "version", "num_threads", 
 
 def distributions() -> dict[str, str]:
     """Every installed distribution (name normalised as PEP 503 says) and its version; the first found on the
-    import path wins, as for imports."""
+    import path wins, as for imports. Each distribution's metadata file is parsed once (``dist.version`` would
+    parse it again)."""
     found: dict[str, str] = {}
     for dist in metadata.distributions():
-        name = dist.metadata["Name"]
+        fields = dist.metadata
+        name = fields["Name"]
         if name:
-            found.setdefault(re.sub(r"[-_.]+", "-", name).lower(), dist.version)
+            found.setdefault(re.sub(r"[-_.]+", "-", name).lower(), fields["Version"])
     return dict(sorted(found.items()))
 
 
