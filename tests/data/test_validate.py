@@ -140,6 +140,22 @@ def test_episodes_table_checked_and_joined(tmp_path):
     assert result.episodes["event"].sum() == 8 and (result.episodes["n_decisions"] == 3).all()
 
 
+def test_validated_episodes_validate_again_to_the_same_table(tmp_path):
+    # an episodes file with its own n_decisions (here the validated table given again as records, each count
+    # wrong by one in the file): the records' count replaces it, instead of a join that would have named both
+    # columns n_decisions_x and n_decisions_y and left none named n_decisions
+    from support.tiny import tiny_episodes
+
+    decisions = tiny_decisions()
+    first = validate_records(
+        load_protocol(write_tiny(tmp_path / "first", decisions=decisions, episodes=tiny_episodes(decisions)))
+    )
+    again = first.episodes.assign(n_decisions=first.episodes["n_decisions"] + 1)
+    second = validate_records(load_protocol(write_tiny(tmp_path / "again", decisions=first.decisions, episodes=again)))
+    pd.testing.assert_frame_equal(second.episodes, first.episodes)
+    pd.testing.assert_frame_equal(second.decisions, first.decisions)
+
+
 # ---------------------------------------------------------------------------------------------- missing data
 def _with_missing(tmp_path, policy):
     from support.tiny import tiny_protocol_dict

@@ -439,7 +439,12 @@ def episode_runs(decisions: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
 def clean_episodes(
     pf: ProtocolFile, frame: pd.DataFrame | None, decisions: pd.DataFrame, dropped_episodes: set[str]
 ) -> pd.DataFrame:
-    """The episodes table: decision counts per episode, joined with the protocol's episodes file when given."""
+    """The episodes table: decision counts per episode, joined with the protocol's episodes file when given.
+
+    The count of each episode's decisions in the clean records is its ``n_decisions``: a column of that name in the
+    episodes file (a count of the user's own, or a validated episodes table given again as records) is replaced by
+    it, as the decisions' patient replaces the file's; otherwise the two would meet in the join as
+    ``n_decisions_x`` and ``n_decisions_y`` and neither would keep the name."""
     starts, lengths = episode_runs(decisions)
     counts = pd.DataFrame(
         {
@@ -454,7 +459,7 @@ def clean_episodes(
     frame = frame.rename(columns={cols.episode_id: "episode_id", cols.followup: "followup_days", cols.event: "event"})
     frame["episode_id"] = frame["episode_id"].astype(str)
     frame = frame[~frame["episode_id"].isin(dropped_episodes)]
-    frame = frame.drop(columns=[c for c in ("patient_id", cols.patient_id) if c in frame.columns])
+    frame = frame.drop(columns=[c for c in ("patient_id", cols.patient_id, "n_decisions") if c in frame.columns])
     text = [c for c in frame.columns if c != "episode_id" and not pd.api.types.is_numeric_dtype(frame[c])]
     frame = frame.drop(columns=text)  # free text never travels into the results
     merged = counts.merge(frame, on="episode_id", how="left", validate=one_to_one(counts, frame, "episode_id"))

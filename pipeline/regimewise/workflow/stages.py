@@ -471,7 +471,7 @@ def evaluate_fixed_stage(protocol, decisions, proba, fixed, threads=1):
     """Values of the regimes that do not depend on the learned regime (usual care, the fixed strategies, the
     protocol's comparators: :func:`regimewise.evaluation.values.evaluate_fixed_regimes`), written for the evaluate
     stage. They need the records and usual care's probabilities only, so the workflow runs this job while the
-    regime is learned; its file is a temporary one of the workflow, consumed by the evaluate rule."""
+    regime is learned; its file is a temporary one of the workflow, consumed by the combine rule."""
     p = load_protocol(protocol).protocol
     frame = read_parquet(decisions)
     regimes = evaluate_fixed_regimes(frame, read_probabilities(proba, p.action_labels), p, threads=threads)
@@ -563,9 +563,10 @@ def evaluate_side_stage(protocol, decisions, proba, fitted, side, threads=1):
 
 
 def evaluate_join_stage(protocol, decisions, learned, fixed, side, values):
-    """The workflow's evaluate rule: values.json joined from the parts of :func:`evaluate_learned_stage`,
-    :func:`evaluate_fixed_stage` and :func:`evaluate_side_stage` (the same bytes as :func:`evaluate_stage`). Each
-    part must be of these decisions (their count is read from the file's metadata, not its rows)."""
+    """The first join of the workflow's combine rule (:func:`combine_stage`): values.json joined from the parts of
+    :func:`evaluate_learned_stage`, :func:`evaluate_fixed_stage` and :func:`evaluate_side_stage` (the same bytes as
+    :func:`evaluate_stage`). Each part must be of these decisions (their count is read from the file's metadata,
+    not its rows)."""
     p = load_protocol(protocol).protocol
     n = parquet_rows(decisions)
     head = read_values_part(learned, n)
