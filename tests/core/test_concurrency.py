@@ -35,6 +35,7 @@ from regimewise.workflow.stages import (
     behaviour_diagnostics_stage,
     behaviour_fit_stage,
     behaviour_stage,
+    bootstrap_shard_stage,
     bootstrap_stage,
     combine_stage,
     crossfit_stage,
@@ -436,10 +437,11 @@ def test_the_sensitivity_stage_writes_what_the_analysis_finds_from_the_curves_jo
 
 def test_the_combine_job_writes_what_the_three_joins_write(cohort):
     # the workflow's combine rule runs the evaluate join, the bootstrap's intervals and the sensitivity summary in one
-    # job: the three files must be those the three stage functions write one by one
+    # job, reading the shard files once for both: the three files must be those the three stage functions write one
+    # by one (two shards of one replicate each, so that both uses of the shards are exercised)
     folder, _ = cohort
     raw = yaml.safe_load((folder / "protocol.yaml").read_text(encoding="utf-8"))
-    raw["evaluation"].update(replicates=0, shards=1)  # intervals.json without replicates: no shard to run here
+    raw["evaluation"].update(replicates=2, shards=2)
     protocol = folder / "combine.yaml"
     protocol.write_text(yaml.safe_dump(raw, sort_keys=False), encoding="utf-8")
     decisions, proba = folder / "decisions.parquet", folder / "proba.parquet"
@@ -448,12 +450,17 @@ def test_the_combine_job_writes_what_the_three_joins_write(cohort):
     parts = [folder / f"jobs_{name}.json" for name in ("learned", "fixed", "side")]
     curves = folder / "combine_curves.json"
     sensitivity_curves_stage(protocol, decisions, proba, folder / "jobs_table.parquet", curves)
+    shards = [folder / f"combine_shard_{k}.json" for k in range(2)]
+    for k, shard in enumerate(shards):
+        bootstrap_shard_stage(protocol, decisions, k, shard, table=folder / "jobs_table.parquet")
     one_by_one = [folder / f"alone_{name}.json" for name in ("values", "intervals", "sensitivity")]
     evaluate_join_stage(protocol, decisions, *parts, one_by_one[0])
-    bootstrap_stage(protocol, one_by_one[0], [], one_by_one[1])
-    sensitivity_stage(protocol, curves, one_by_one[1], [], one_by_one[2])
+    bootstrap_stage(protocol, one_by_one[0], shards, one_by_one[1])
+    sensitivity_stage(protocol, curves, one_by_one[1], shards, one_by_one[2])
     combined = [folder / f"combined_{name}.json" for name in ("values", "intervals", "sensitivity")]
-    combine_stage(protocol, decisions, *parts, curves, [], *combined)
+    combine_stage(protocol, decisions, *parts, curves, shards, *combined)
     for alone, joined in zip(one_by_one, combined):
         assert joined.read_bytes() == alone.read_bytes(), joined.name
-    assert read_json(combined[0])["side_by_side"] and read_json(combined[2])["comparators"]
+    intervals, sensitivity = read_json(combined[1]), read_json(combined[2])
+    assert intervals["replicates"] == 2 and intervals["contrasts"]
+    assert sensitivity["replicates_used"] == 2 and sensitivity["table"] and sensitivity["comparators"]

@@ -665,8 +665,16 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
 
 def bootstrap_stage(protocol, values, shards, intervals):
     """Combine the shards into percentile intervals for every value and contrast; flag disagreeing estimators."""
-    p = load_protocol(protocol).protocol
-    write_json(intervals, combine(read_json(values), [read_json(path) for path in shards], p))
+    _write_intervals(load_protocol(protocol).protocol, values, read_shards(shards), intervals)
+
+
+def read_shards(shards) -> list[dict]:
+    """The documents of the bootstrap shard files (:func:`bootstrap_shard_stage`), in the order given."""
+    return [read_json(path) for path in shards]
+
+
+def _write_intervals(p, values, found, intervals) -> None:
+    write_json(intervals, combine(read_json(values), found, p))
 
 
 # ---------------------------------------------------------------------------------------------- sensitivity
@@ -707,10 +715,14 @@ def read_curves(path) -> tuple[dict, dict]:
 def sensitivity_stage(protocol, curves, intervals, shards, sensitivity):
     """Bounds of the learned regime's (or the headline strategy's) value and contrast over Γ (the curves of
     :func:`sensitivity_curves_stage`), their bootstrap intervals, Γ* and E-values."""
-    p = load_protocol(protocol).protocol
+    _write_sensitivity(load_protocol(protocol).protocol, curves, intervals, read_shards(shards), sensitivity)
+
+
+def _write_sensitivity(p, curves, intervals, found, sensitivity) -> None:
+    """:func:`sensitivity_stage` with the shards' documents ``found`` read already."""
     point, comparators = read_curves(curves)
     target = sensitivity_target(p)
-    replicates = [r["sensitivity"] for path in shards for r in read_json(path)["replicates"] if "sensitivity" in r]
+    replicates = [r["sensitivity"] for shard in found for r in shard["replicates"] if "sensitivity" in r]
     bootstrap = read_json(intervals)
     headline = headline_contrast(bootstrap, p, target["name"])
     out = summarise_sensitivity(point, replicates, p, headline, target)
@@ -723,10 +735,12 @@ def combine_stage(protocol, decisions, learned, fixed, side, curves, shards, val
     one job: values.json from the evaluate jobs' parts (:func:`evaluate_join_stage`), the bootstrap intervals from
     values.json and the shards (:func:`bootstrap_stage`), then sensitivity.json from the bounds curves, the
     intervals and the shards (:func:`sensitivity_stage`). Each file is the one its function writes on its own (the
-    same bytes); together they take one job's start-up instead of three (the imports are most of a join's time)."""
+    same bytes); together they take one job's start-up instead of three (the imports are most of a join's time),
+    and the shard files, read once, serve both the intervals and the sensitivity analysis."""
     evaluate_join_stage(protocol, decisions, learned, fixed, side, values)
-    bootstrap_stage(protocol, values, shards, intervals)
-    sensitivity_stage(protocol, curves, intervals, shards, sensitivity)
+    p, found = load_protocol(protocol).protocol, read_shards(shards)
+    _write_intervals(p, values, found, intervals)
+    _write_sensitivity(p, curves, intervals, found, sensitivity)
 
 
 def headline_contrast(intervals: dict, p, regime: str = "learned") -> dict | None:
