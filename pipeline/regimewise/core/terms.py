@@ -82,11 +82,7 @@ class TermColumns:
             if part[0] == "interaction":
                 blocks += [scaled[:, a] * scaled[:, b] for a, b in part[1]]
             elif part[0] == "spline":
-                import patsy  # here, not at the top: a job without spline terms starts without it
-
-                values = frame[part[1]].to_numpy(dtype=float)
-                basis = np.asarray(patsy.build_design_matrices([part[2]], {"x": values})[0])
-                blocks += list(basis.T)
+                blocks += list(spline_values(part[2], frame[part[1]].to_numpy(dtype=float)).T)
             else:
                 blocks.append(scaled[:, part[1]] ** part[2])
         return np.column_stack(blocks) if blocks else np.zeros((len(frame), 0))
@@ -126,6 +122,68 @@ def spline_basis(values: np.ndarray, df: int, name: str, fix: str = SPLINE_FIX):
     import patsy  # here, not at the top: a job without spline terms starts without it
 
     return patsy.build_design_matrices([spline_design(values, df, name, fix)], {"x": values})[0]
+
+
+# Rows of a spline basis computed at a time (:func:`spline_values`): a few MB of temporaries instead of eight
+# arrays of the whole table's size.
+SPLINE_BLOCK_ROWS = 16_384
+
+
+def spline_values(info, values: np.ndarray) -> np.ndarray:
+    """``numpy.asarray(patsy.build_design_matrices([info], {"x": values})[0])`` for a design info of
+    :func:`spline_design`, the same bits in the same memory layout, with the spline's unconstrained basis computed
+    :data:`SPLINE_BLOCK_ROWS` rows at a time.
+
+    patsy evaluates the basis with whole-table temporaries (eight arrays of rows x knots at 12M rows); here its own
+    function for the unconstrained basis (``_get_free_crs_dmatrix``) runs on one block of rows after another, into a
+    matrix of the layout its whole-table result has, and the centring constraint is absorbed by the one matrix
+    product patsy makes on the whole matrix (a product is left as it was: another shape may round differently).
+    Each entry of the basis depends on its own value only, so the blocks change no bit (a test compares with
+    patsy). Values with a missing or infinite entry, and design infos of another kind, go through patsy itself.
+    """
+    import patsy  # here, not at the top: a job without spline terms starts without it
+
+    values = np.asarray(values)
+    transform = _cr_transform(info)
+    if transform is None or values.ndim != 1 or values.dtype != np.float64 or not np.isfinite(values).all():
+        return np.asarray(patsy.build_design_matrices([info], {"x": values})[0])
+    from patsy.mgcv_cubic_splines import _get_free_crs_dmatrix
+    from scipy import linalg
+
+    knots, constraints = transform._all_knots, transform._constraints
+    free = np.empty((values.size, knots.size), order="F")  # the layout of patsy's (knots x rows).T
+    for start in range(0, values.size, SPLINE_BLOCK_ROWS):
+        rows = slice(start, start + SPLINE_BLOCK_ROWS)
+        free[rows] = _get_free_crs_dmatrix(values[rows], knots)
+    if constraints is not None:  # patsy's _absorb_constraints
+        q, _ = linalg.qr(np.transpose(constraints))
+        free = np.dot(free, q[:, constraints.shape[0] :])
+    out = np.empty(free.shape)  # patsy's design matrix: C order, each column 1 times the factor's column
+    out[...] = 1
+    out *= free
+    return out
+
+
+def _cr_transform(info):
+    """The fitted ``cr`` transform of a design info of :func:`spline_design` (one term of one natural, not cyclic,
+    cubic regression spline of ``x``), or None for any other design info."""
+    try:
+        from patsy.mgcv_cubic_splines import CR
+    except ImportError:  # another patsy: its own path serves
+        return None
+    factors = list(info.factor_infos.values())
+    if len(factors) != 1 or len(info.term_codings) != 1 or factors[0].type != "numerical":
+        return None
+    transforms = list(factors[0].state.get("transforms", {}).values())
+    if len(transforms) != 1 or not isinstance(transforms[0], CR) or transforms[0]._cyclic:
+        return None
+    (subterms,) = info.term_codings.values()
+    expected = transforms[0]._all_knots.size - (
+        0 if transforms[0]._constraints is None else len(transforms[0]._constraints)
+    )
+    if len(subterms) != 1 or subterms[0].num_columns != expected or factors[0].num_columns != expected:
+        return None
+    return transforms[0]
 
 
 # Values the type check of a spline's factor sees: its column count is the basis's df whatever the values.

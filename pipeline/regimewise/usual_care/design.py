@@ -6,11 +6,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numpy as np
-import patsy
-
 from regimewise.core.features import StateScaler, stack_by_blocks
-from regimewise.core.terms import TermColumns, spline_design, uncentred
+from regimewise.core.terms import TermColumns, spline_design, spline_values, uncentred
 
 
 @dataclass(frozen=True)
@@ -57,7 +54,7 @@ class BehaviourDesign:
         linear = [j for j, name in enumerate(self.scaler.names) if name not in replaced]
         whole = []
         for name, info in self.splines:
-            whole.append(np.asarray(patsy.build_design_matrices([info], {"x": frame[name].to_numpy(dtype=float)})[0]))
+            whole.append(spline_values(info, frame[name].to_numpy(dtype=float)))
         if self.terms is not None:
             whole.append(self.terms.transform(frame, uncentred(self.scaler, frame)))
         if self.include_step:
