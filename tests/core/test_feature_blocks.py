@@ -8,6 +8,7 @@ import pytest
 from support.tiny import tiny_protocol_dict
 
 import regimewise.core.features as features_module
+from regimewise.core.arrays import exact_power
 from regimewise.core.features import QFeatures, StateScaler
 from regimewise.core.terms import uncentred
 from regimewise.protocol import Protocol
@@ -19,7 +20,7 @@ def whole_table(features, frame):
     states = (scaler.unscaled(frame) - np.asarray(scaler.means)) / np.asarray(scaler.scales)
     powered = states[:, list(features.squared)]
     blocks = [states[:, features._linear()]]
-    blocks += [powered**k for k in range(2, features.degree + 1) if features.squared]
+    blocks += [exact_power(powered, k) for k in range(2, features.degree + 1) if features.squared]
     if features.terms is not None:
         blocks.append(features.terms.transform(frame, uncentred(scaler, frame)))
     return np.column_stack(blocks) if len(blocks) > 1 else blocks[0]

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from regimewise.core.arrays import exact_power
 from regimewise.core.terms import SEPARATE, ActionSlopes, TermColumns, uncentred
 from regimewise.errors import UserInputError
 from regimewise.protocol.model import Protocol
@@ -338,9 +339,10 @@ def _stacked_order(parts: list) -> str:
 
 class KeptPowers:
     """The powers above the square (cubes) of the numeric scaled states of the first rows of a table, computed once
-    and then read: a cube of a negative number is the slowest element-wise operation of the Q-features by far, and
-    the evaluation reads every row's features in every pass. Each element's power depends on that element alone
-    (the same bits whatever else is in the array, checked in the tests), so a kept power is the computed one.
+    and then read: a cube (:func:`regimewise.core.arrays.exact_power`, a dozen operations per element) is the
+    slowest element-wise operation of the Q-features, and the evaluation reads every row's features in every pass.
+    Each element's power depends on that element alone (the same bits whatever else is in the array, checked in
+    the tests), so a kept power is the computed one.
 
     Rows ``0 .. capacity - 1`` are kept, ``capacity`` being as many as ``budget`` bytes hold (all of a table
     that fits); later rows are computed every time, so the memory stays bounded whatever the table's size. The
@@ -356,8 +358,8 @@ class KeptPowers:
         self.kept = np.zeros(self.capacity, dtype=bool)
 
     def powers(self, positions: np.ndarray, powered: np.ndarray, degrees) -> list[np.ndarray]:
-        """``[powered**k for k in degrees]`` for the rows at ``positions`` (``powered`` holds their numeric scaled
-        states), each in the memory layout of ``powered**k``; the kept rows read, the others computed (and kept
+        """``[exact_power(powered, k) for k in degrees]`` for the rows at ``positions`` (``powered`` holds their numeric
+        scaled states), each in the memory layout of ``powered**k``; the kept rows read, the others computed (and kept
         when there is room). ``degrees``: every degree above 2 of the features, in order."""
         inside = np.flatnonzero(positions < self.capacity)
         slots = positions[inside]
@@ -373,10 +375,10 @@ class KeptPowers:
                 if every:  # the kept rows taken whole at once (a far faster gather), then laid out
                     values[...] = np.take(self.store[i], slots, axis=0)
                 else:
-                    values[fresh] = powered[fresh] ** k
+                    values[fresh] = exact_power(powered[fresh], k)
                     values[read] = self.store[i, slots[known]]
             else:  # nothing kept yet (or past the capacity): computed as without a store
-                values = powered**k
+                values = exact_power(powered, k)
             if write.size:
                 self.store[i, slots[~known]] = values[write]
             out.append(values)
@@ -453,7 +455,7 @@ class QFeatures:
         degrees = range(2, self.degree + 1) if squared else range(0)
         powered = states[:, squared]
         if power is None or len(degrees) < 2:
-            return [states[:, self._linear()], *(powered**k for k in degrees)]
+            return [states[:, self._linear()], *(exact_power(powered, k) for k in degrees)]
         return [states[:, self._linear()], powered**2, *power(powered, degrees[1:])]
 
     def kept_powers(self, n: int, budget: int) -> KeptPowers:

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from regimewise.core.arrays import has_distinct
+from regimewise.core.arrays import exact_power, has_distinct
 from regimewise.errors import UserInputError
 
 
@@ -84,7 +84,7 @@ class TermColumns:
             elif part[0] == "spline":
                 blocks += list(spline_values(part[2], frame[part[1]].to_numpy(dtype=float)).T)
             else:
-                blocks.append(scaled[:, part[1]] ** part[2])
+                blocks.append(exact_power(scaled[:, part[1]], part[2]))
         return np.column_stack(blocks) if blocks else np.zeros((len(frame), 0))
 
     @property
