@@ -223,10 +223,11 @@ def _cube(x):
         square = x * x
         square_error = _product_error(x, x, square)  # x^2 = square + square_error exactly
         cube = square * x
-        # x^3 = cube + (square * x - cube) + square_error * x; the last term is below 2^-104 of x^3, so the one
-        # rounding of the sum is the correct rounding of x^3 but where x^3 lies within 2^-104 of it from a midpoint
+        # x^3 = cube + (square * x - cube) + square_error * x; the sum's terms carry x^3 to within 2^-104 of it, so
+        # its one rounding is the correct rounding of x^3 unless x^3 lies that close to a midpoint of two doubles
         cube += _product_error(square, x, cube) + square_error * x
-    outside = ~((np.abs(x) >= _EXACT_CUBE_RANGE[0]) & (np.abs(x) <= _EXACT_CUBE_RANGE[1]))  # 0, inf, NaN too
+    size = np.abs(x)
+    outside = ~((size >= _EXACT_CUBE_RANGE[0]) & (size <= _EXACT_CUBE_RANGE[1]))  # zeros, infinities, NaN too
     if outside.any():
         cube[outside] = x[outside] ** 3
     return cube

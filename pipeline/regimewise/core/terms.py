@@ -177,13 +177,12 @@ def _cr_transform(info):
     transforms = list(factors[0].state.get("transforms", {}).values())
     if len(transforms) != 1 or not isinstance(transforms[0], CR) or transforms[0]._cyclic:
         return None
+    cr = transforms[0]
     (subterms,) = info.term_codings.values()
-    expected = transforms[0]._all_knots.size - (
-        0 if transforms[0]._constraints is None else len(transforms[0]._constraints)
-    )
-    if len(subterms) != 1 or subterms[0].num_columns != expected or factors[0].num_columns != expected:
+    columns = cr._all_knots.size - (0 if cr._constraints is None else len(cr._constraints))
+    if len(subterms) != 1 or subterms[0].num_columns != columns or factors[0].num_columns != columns:
         return None
-    return transforms[0]
+    return cr
 
 
 # Values the type check of a spline's factor sees: its column count is the basis's df whatever the values.
