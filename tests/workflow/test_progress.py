@@ -83,11 +83,11 @@ def test_the_closing_line_counts_the_warnings_in_the_stage_logs_and_names_them(t
     (logs / "evaluate_fixed.log").write_text(
         "WARNING StatisticalWarning: no episode has a positive importance weight\n"
         "WARNING StatisticalWarning: no episode agrees with always_add_agent\n"
-        "INFO resource use: wall 1.93 s, cpu 4.04 s, peak rss 368.6 MB\n",
+        "INFO resource use: wall 1.93 s, cpu 4.04 s, system 0.31 s, peak rss 368.6 MB\n",
         encoding="utf-8",
     )
     (logs / "survival.log").write_text("WARNING StatisticalWarning: few clones follow always_step_up\n", "utf-8")
-    (logs / "report.log").write_text("INFO resource use: wall 1.00 s, cpu 1.00 s, peak rss 300.0 MB\n", "utf-8")
+    (logs / "report.log").write_text("INFO resource use: wall 1.00 s, cpu 1.00 s, system 0.08 s, peak rss 300.0 MB\n", "utf-8")
     assert warning_line(logs) == (
         "3 statistical warnings (read them before the estimates); listed in "
         f"{logs / 'evaluate_fixed.log'}, {logs / 'survival.log'}"
