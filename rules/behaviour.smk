@@ -2,7 +2,7 @@
 rule behaviour:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
     output:
         proba=results("behaviour/behaviour_proba.parquet"),
         model=temp(results("behaviour/model.json")),  # read by the behaviour_diagnostics rule only; not an artifact
@@ -26,7 +26,7 @@ rule behaviour:
 rule behaviour_diagnostics:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         proba=results("behaviour/behaviour_proba.parquet"),
         model=results("behaviour/model.json"),
     output:

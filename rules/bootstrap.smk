@@ -2,7 +2,7 @@
 rule bootstrap_shard:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         episodes=results("validate/episodes.parquet"),
         table=results("regime/recommendations.parquet"),
     output:

@@ -28,6 +28,13 @@ PRIORITY = {
 }
 
 
+# The validated decisions as every later job reads them: the validate rule writes the Parquet artifact and this
+# uncompressed Arrow copy of the same table, which the jobs memory-map instead of decoding the Parquet again
+# (regimewise.io.write_mapped_table). Hidden, so never an artifact of the manifest. The combine rule, which only
+# counts the decisions, and the report, which only waits for them, keep the Parquet artifact as their input.
+MAPPED_DECISIONS = "validate/.decisions.arrow"
+
+
 def results(path):
     return path if SETTINGS.results == "." else f"{SETTINGS.results}/{path}"
 

@@ -2,7 +2,7 @@
 rule describe:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         episodes=results("validate/episodes.parquet"),
         proba=results("behaviour/behaviour_proba.parquet"),
         table=results("regime/recommendations.parquet"),

@@ -2,7 +2,7 @@
 rule evaluate_fixed:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:
         fixed=temp(results("evaluate/fixed.json")),  # read by the combine rule only; not an artifact
@@ -28,7 +28,7 @@ rule evaluate_learned:
     input:
         unpack(learned_regime_inputs),  # crossfit.parquet; with one fold, regime_fit's table
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:
         learned=temp(results("evaluate/learned.json")),  # read by the combine rule only; not an artifact
@@ -53,7 +53,7 @@ rule evaluate_learned:
 rule evaluate_side:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         proba=results("behaviour/behaviour_proba.parquet"),
         fitted=results("regime/fitted.parquet"),
     output:

@@ -2,7 +2,7 @@
 rule crossfit:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
     output:
         crossfit=temp(results("regime/crossfit.parquet")),  # read by the regime rule only; not an artifact
     log:
@@ -25,7 +25,7 @@ rule crossfit:
 rule regime_fit:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         proba=results("behaviour/behaviour_proba.parquet"),
     output:
         # read by the regime rule only; not artifacts
@@ -52,7 +52,7 @@ rule regime_fit:
 rule regime:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         fitted=results("regime/fitted.parquet"),
         fitted_summary=results("regime/fitted.json"),
         crossfit=results("regime/crossfit.parquet"),

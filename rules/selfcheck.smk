@@ -2,7 +2,7 @@
 rule selfcheck_cohort:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         episodes=results("validate/episodes.parquet"),
     output:
         result=results("selfcheck/cohorts/cohort_{cohort}.json"),
@@ -27,7 +27,7 @@ rule selfcheck_cohort:
 rule selfcheck:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
         episodes=results("validate/episodes.parquet"),
         cohorts=selfcheck_cohort_files(),
     output:

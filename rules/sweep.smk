@@ -2,7 +2,7 @@
 rule sweep_spec:
     input:
         protocol=SETTINGS.protocol_input,
-        decisions=results("validate/decisions.parquet"),
+        decisions=results(MAPPED_DECISIONS),
     output:
         result=results("sweep/specs/{spec}.json"),
     log:

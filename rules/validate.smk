@@ -6,6 +6,7 @@ rule validate:
         decisions=results("validate/decisions.parquet"),
         episodes=results("validate/episodes.parquet"),
         summary=results("validate/validation.json"),
+        mapped=results(MAPPED_DECISIONS),  # the same decisions, memory-mapped by the later jobs; not an artifact
     log:
         main=logs("validate"),
         errors=f"{SETTINGS.logs}/validation_errors.csv",

@@ -87,7 +87,9 @@ def test_the_closing_line_counts_the_warnings_in_the_stage_logs_and_names_them(t
         encoding="utf-8",
     )
     (logs / "survival.log").write_text("WARNING StatisticalWarning: few clones follow always_step_up\n", "utf-8")
-    (logs / "report.log").write_text("INFO resource use: wall 1.00 s, cpu 1.00 s, system 0.08 s, peak rss 300.0 MB\n", "utf-8")
+    (logs / "report.log").write_text(
+        "INFO resource use: wall 1.00 s, cpu 1.00 s, system 0.08 s, peak rss 300.0 MB\n", "utf-8"
+    )
     assert warning_line(logs) == (
         "3 statistical warnings (read them before the estimates); listed in "
         f"{logs / 'evaluate_fixed.log'}, {logs / 'survival.log'}"

@@ -46,6 +46,7 @@ from regimewise.io import (
     parquet_columns,
     parquet_rows,
     read_float_matrix,
+    read_frame,
     read_json,
     read_label_codes,
     read_parquet,
@@ -132,11 +133,13 @@ log = logging.getLogger("regimewise")
 
 
 # ---------------------------------------------------------------------------------------------- validate
-def validate_stage(protocol, decisions, episodes, summary, errors=None):
+def validate_stage(protocol, decisions, episodes, summary, errors=None, mapped=None):
     """Check the records and write clean Parquet tables and validation.json.
 
     ``errors`` (the rule's log ``errors``, in the logs folder, never a stage output) receives
-    validation_errors.csv: every finding when validation fails, only the header when it passes.
+    validation_errors.csv: every finding when validation fails, only the header when it passes. ``mapped``: also
+    write the decisions there as the file the later jobs memory-map (:func:`regimewise.io.write_mapped_table`;
+    the same table, read by :func:`regimewise.io.read_frame`).
     """
     pf = load_protocol(protocol)
     try:
@@ -147,7 +150,7 @@ def validate_stage(protocol, decisions, episodes, summary, errors=None):
         raise
     if errors is not None:
         write_error_report(errors, ())
-    write_parquet(decisions, result.decisions)
+    write_parquet(decisions, result.decisions, mapped=mapped)
     write_parquet(episodes, result.episodes)
     write_json(summary, result.summary)
     log.info("validated %d decisions in %d episodes", len(result.decisions), result.summary["episodes"])
@@ -166,7 +169,7 @@ def behaviour_stage(protocol, decisions, proba, diagnostics):
     from regimewise.usual_care.fitting import fit_usual_care
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     model = fit_usual_care(frame, p)
     _write_probabilities(proba, p, frame, model)
     write_json(diagnostics, usual_care_diagnostics(p, frame, model))
@@ -191,7 +194,7 @@ def behaviour_fit_stage(protocol, decisions, proba, model):
     from regimewise.usual_care.fitting import fit_usual_care
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     fitted = fit_usual_care(frame, p)
     _write_probabilities(proba, p, frame, fitted)
     write_json(model, model_block(p, fitted))
@@ -203,7 +206,7 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
     from regimewise.usual_care.fitting import usual_care_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     table = read_parquet(proba, ["step", *proba_columns(p.action_labels)])  # not the text keys: 12M strings at 1M
     if not same_rows(table, frame):
         raise UserInputError(f"{proba} does not hold the probabilities of these decisions; rerun the workflow")
@@ -238,7 +241,7 @@ def crossfit_stage(protocol, decisions, crossfit, threads=1):
     from regimewise.regime.learning import assemble_cross_fit, cross_fit_tasks, crossfit_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     out = frame[["step"]].copy()  # the steps let the readers check the rows (same_rows); no text keys
     folds = crossfit_folds(frame, p) if p.analysis.learn_regime else None
     if folds is not None:
@@ -282,7 +285,7 @@ def regime_stage(protocol, decisions, proba, table, regime, crossfit=None, threa
     from regimewise.regime.learning import assemble_cross_fit, cross_fit_tasks, crossfit_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     if not p.analysis.learn_regime:
         write_parquet(table, frame[RECORD_KEYS].copy())
         write_json(regime, no_regime_summary(p))
@@ -365,7 +368,7 @@ def regime_fit_stage(protocol, decisions, proba, fitted, fitted_summary, threads
     regime's action codes, the learned regime's Q-values and the permitted actions per decision (``fitted``) and
     the summary (``fitted_summary``), temporary files of the workflow read by :func:`regime_join_stage`."""
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     if not p.analysis.learn_regime:
         write_parquet(fitted, frame[["step"]].copy(), temporary=True)
         write_json(fitted_summary, no_regime_summary(p))
@@ -399,7 +402,7 @@ def regime_join_stage(protocol, decisions, fitted, fitted_summary, crossfit, tab
     :func:`regime_fit_stage` with the cross-fitted fold regimes of :func:`crossfit_stage` into the regime stage's
     table and regime.json (the same bytes as :func:`regime_stage`). Both files must be of these decisions."""
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions, RECORD_KEYS)
+    frame = read_frame(decisions, RECORD_KEYS)
     summary = read_json(fitted_summary)
     columns = read_fitted(fitted, frame)
     if not p.analysis.learn_regime:
@@ -473,7 +476,7 @@ def evaluate_fixed_stage(protocol, decisions, proba, fixed, threads=1):
     stage. They need the records and usual care's probabilities only, so the workflow runs this job while the
     regime is learned; its file is a temporary one of the workflow, consumed by the combine rule."""
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     regimes = evaluate_fixed_regimes(frame, read_probabilities(proba, p.action_labels), p, threads=threads)
     write_json(fixed, {"decisions": len(frame), "regimes": regimes})
 
@@ -518,7 +521,7 @@ def evaluate_learned_stage(protocol, decisions, proba, learned, crossfit=None, f
     from regimewise.regime.learning import crossfit_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
     recommended = learned_q = folds = None
     if p.analysis.learn_regime:
@@ -547,7 +550,7 @@ def evaluate_side_stage(protocol, decisions, proba, fitted, side, threads=1):
     :func:`regime_fit_stage`, so this job starts as soon as they are learned; a temporary file read by
     :func:`evaluate_join_stage`. Without a learned regime there is none (null)."""
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     columns = read_fitted(fitted, frame, chosen_only=True)
     variants = {
         c.removeprefix("chosen_"): columns[c].to_numpy(dtype=np.int64)
@@ -585,7 +588,7 @@ def evaluate_stage(protocol, decisions, proba, table, values, fixed=None, thread
     from regimewise.regime.learning import crossfit_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     done = None if fixed is None else read_fixed(fixed, frame)
     if not p.analysis.learn_regime:  # usual care and the named strategies only
         probabilities = read_probabilities(proba, p.action_labels)
@@ -618,7 +621,7 @@ def describe_stage(protocol, decisions, proba, table, cohort, episodes=None):
     from regimewise.describe.cohort import cohort_table
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     outcomes = None if episodes is None else read_parquet(episodes)
     probabilities = read_probabilities(proba, p.action_labels)
     if p.analysis.learn_regime:
@@ -652,7 +655,7 @@ def bootstrap_shard_stage(protocol, decisions, shard, replicates, episodes=None,
     from regimewise.regime.learning import crossfit_folds
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     outcomes = read_parquet(episodes) if p.survival is not None and episodes is not None else None
     held = None
     if table is not None and p.evaluation.bootstrap_regime == "fixed" and p.analysis.learn_regime:
@@ -684,7 +687,7 @@ def sensitivity_curves_stage(protocol, decisions, proba, table, curves):
     evaluate stage; :func:`sensitivity_stage` combines its curves with the bootstrap's (a temporary file of the
     workflow, consumed there; JSON with non-finite numbers kept as they are)."""
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     recommended = None
     if p.analysis.learn_regime:
         recommended = column_codes(table, "evaluated", p.action_labels)  # as evaluated
@@ -760,7 +763,7 @@ def survival_stage(protocol, decisions, episodes, proba, table, shards, survival
     from regimewise.survival.analysis import survival_analysis, survival_intervals
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     probabilities = read_probabilities(proba, p.action_labels)
     recommended, learned_q = None, None  # without a learned regime: usual care and the named strategies only
     if p.analysis.learn_regime:
@@ -778,7 +781,7 @@ def sweep_spec_stage(protocol, decisions, spec, result):
     from regimewise.bootstrap.sweep import run_specification
 
     p = load_protocol(protocol).protocol
-    frame = read_parquet(decisions)
+    frame = read_frame(decisions)
     with threadpool_limits(limits=1):
         out = run_specification(frame, p, spec)
     write_json(result, out)
@@ -801,7 +804,7 @@ def selfcheck_cohort_stage(protocol, decisions, episodes, cohort, result):
 
     p = load_protocol(protocol).protocol
     world = fitted_world(
-        read_parquet(decisions), p, episodes=read_parquet(episodes), confounder_gamma=p.selfcheck.confounder_gamma
+        read_frame(decisions), p, episodes=read_parquet(episodes), confounder_gamma=p.selfcheck.confounder_gamma
     )
     with threadpool_limits(limits=1), warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the analysis of the records themselves reports its warnings
@@ -819,7 +822,7 @@ def selfcheck_stage(protocol, decisions, episodes, cohorts, selfcheck, page):
     from regimewise.selfcheck.world import fitted_world
 
     p = load_protocol(protocol).protocol
-    records, outcomes = read_parquet(decisions), read_parquet(episodes)
+    records, outcomes = read_frame(decisions), read_parquet(episodes)
     results = [read_json(path) for path in cohorts]
     world = fitted_world(records, p, episodes=outcomes, confounder_gamma=p.selfcheck.confounder_gamma)
     document = selfcheck_document(records, world, p, results, p.selfcheck.model_dump(), outcomes)
