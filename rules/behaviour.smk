@@ -5,6 +5,7 @@ rule behaviour:
         decisions=results(MAPPED_DECISIONS),
     output:
         proba=results("behaviour/behaviour_proba.parquet"),
+        mapped=results(MAPPED_PROBABILITIES),  # the same table, memory-mapped by the later jobs; not an artifact
         model=temp(results("behaviour/model.json")),  # read by the behaviour_diagnostics rule only; not an artifact
     log:
         logs("behaviour"),
@@ -27,7 +28,7 @@ rule behaviour_diagnostics:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
         model=results("behaviour/model.json"),
     output:
         diagnostics=results("behaviour/behaviour.json"),

@@ -33,6 +33,8 @@ PRIORITY = {
 # (regimewise.io.write_mapped_table). Hidden, so never an artifact of the manifest. The combine rule, which only
 # counts the decisions, and the report, which only waits for them, keep the Parquet artifact as their input.
 MAPPED_DECISIONS = "validate/.decisions.arrow"
+# Likewise usual care's probabilities, written by the behaviour rule beside behaviour_proba.parquet.
+MAPPED_PROBABILITIES = "behaviour/.behaviour_proba.arrow"
 
 
 def results(path):

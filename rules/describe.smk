@@ -4,7 +4,7 @@ rule describe:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
         episodes=results("validate/episodes.parquet"),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
         table=results("regime/recommendations.parquet"),
     output:
         cohort=results("describe/cohort.json"),

@@ -3,7 +3,7 @@ rule evaluate_fixed:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
     output:
         fixed=temp(results("evaluate/fixed.json")),  # read by the combine rule only; not an artifact
     log:
@@ -29,7 +29,7 @@ rule evaluate_learned:
         unpack(learned_regime_inputs),  # crossfit.parquet; with one fold, regime_fit's table
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
     output:
         learned=temp(results("evaluate/learned.json")),  # read by the combine rule only; not an artifact
     log:
@@ -54,7 +54,7 @@ rule evaluate_side:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
         fitted=results("regime/fitted.parquet"),
     output:
         side=temp(results("evaluate/side.json")),  # read by the combine rule only; not an artifact

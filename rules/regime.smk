@@ -26,7 +26,7 @@ rule regime_fit:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
     output:
         # read by the regime rule only; not artifacts
         fitted=temp(results("regime/fitted.parquet")),

@@ -3,7 +3,7 @@ rule sensitivity_curves:
     input:
         protocol=SETTINGS.protocol_input,
         decisions=results(MAPPED_DECISIONS),
-        proba=results("behaviour/behaviour_proba.parquet"),
+        proba=results(MAPPED_PROBABILITIES),
         table=results("regime/recommendations.parquet"),
     output:
         curves=temp(results("sensitivity/curves.json")),  # read by the combine rule only; not an artifact

@@ -184,30 +184,39 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
 
 
+def _mapped_table(path: str | Path) -> pa.Table:
+    """The table of a file of :func:`write_mapped_table`, memory-mapped (no column is read until used)."""
+    try:
+        return pa.ipc.open_file(pa.memory_map(str(path))).read_all()
+    except (OSError, pa.ArrowInvalid) as err:
+        raise UserInputError(f"cannot read {path} ({err}); rerun the workflow") from None
+
+
 def read_frame(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
     """:func:`read_parquet` of a Parquet file, or the same DataFrame from a file of :func:`write_mapped_table`
     (its suffix :data:`MAPPED_SUFFIX`): memory-mapped, only ``columns`` (all if None) converted, column by
     column, as :func:`read_parquet` converts them."""
     if Path(path).suffix != MAPPED_SUFFIX:
         return read_parquet(path, columns)
-    try:
-        table = pa.ipc.open_file(pa.memory_map(str(path))).read_all()
-    except (OSError, pa.ArrowInvalid) as err:
-        raise UserInputError(f"cannot read {path} ({err}); rerun the workflow") from None
+    table = _mapped_table(path)
     if columns is not None:
         table = table.select(columns)
     return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
 
 
 def read_float_matrix(path: str | Path, columns) -> np.ndarray:
-    """The numeric ``columns`` of the Parquet file at ``path`` as one float array (n, k), without a DataFrame: the
-    array ``read_parquet(path, columns)[columns].to_numpy(dtype=float)`` gives, value for value and in its memory
-    layout (column-major: each column one contiguous run, as pandas builds it from a frame's per-column blocks), so
-    later sums over it run in the same order. Read column by column into the array, each Arrow chunk converted
-    once: at 1M episodes x 12, usual care's four probability columns in about 1.5 s of CPU instead of 3 to 4.
+    """The numeric ``columns`` of the Parquet file at ``path`` (or of a file of :func:`write_mapped_table`,
+    memory-mapped) as one float array (n, k), without a DataFrame: the array ``read_parquet(path,
+    columns)[columns].to_numpy(dtype=float)`` gives, value for value and in its memory layout (column-major: each
+    column one contiguous run, as pandas builds it from a frame's per-column blocks), so later sums over it run in
+    the same order. Read column by column into the array, each Arrow chunk converted once: at 1M episodes x 12,
+    usual care's four probability columns in about 1.5 s of CPU instead of 3 to 4 from Parquet.
     """
     columns = list(columns)
-    table = pq.read_table(path, columns=columns, use_threads=False)
+    if Path(path).suffix == MAPPED_SUFFIX:
+        table = _mapped_table(path).select(columns)
+    else:
+        table = pq.read_table(path, columns=columns, use_threads=False)
     out = np.empty((len(columns), table.num_rows))
     for row, name in zip(out, columns):
         start = 0

@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 
 from regimewise.errors import UserInputError
-from regimewise.io import read_frame, read_parquet, write_parquet
+from regimewise.io import read_float_matrix, read_frame, read_parquet, write_parquet
 
 
 def decisions_like(n=5_000, seed=3) -> pd.DataFrame:
@@ -69,3 +69,17 @@ def test_a_damaged_mapped_table_is_a_clear_error(tmp_path):
         read_frame(tmp_path / ".decisions.arrow")
     with pytest.raises(UserInputError, match="rerun the workflow"):
         read_frame(tmp_path / "missing.arrow")
+
+
+def test_a_float_matrix_reads_alike_from_the_mapped_table(tmp_path):
+    # usual care's probabilities as the later jobs read them: the same bytes and memory layout either way
+    frame = decisions_like()
+    labels = ["p_hold", "p_up", "p_down"]
+    frame[labels] = np.random.default_rng(5).dirichlet(np.ones(3), size=len(frame))
+    write_parquet(tmp_path / "proba.parquet", frame, mapped=tmp_path / ".proba.arrow")
+    mapped, parquet = (
+        read_float_matrix(tmp_path / ".proba.arrow", labels),
+        read_float_matrix(tmp_path / "proba.parquet", labels),
+    )
+    assert mapped.tobytes() == parquet.tobytes()
+    assert mapped.strides == parquet.strides and mapped.flags["F_CONTIGUOUS"] == parquet.flags["F_CONTIGUOUS"]

@@ -175,10 +175,10 @@ def behaviour_stage(protocol, decisions, proba, diagnostics):
     write_json(diagnostics, usual_care_diagnostics(p, frame, model))
 
 
-def _write_probabilities(path, p, frame, model) -> None:
+def _write_probabilities(path, p, frame, model, mapped=None) -> None:
     table = frame[["episode_id", "step"]].copy()
     table[proba_columns(p.action_labels)] = model.record_proba
-    write_parquet(path, table)
+    write_parquet(path, table, mapped=mapped)
 
 
 def same_rows(table: pd.DataFrame, frame: pd.DataFrame) -> bool:
@@ -187,16 +187,17 @@ def same_rows(table: pd.DataFrame, frame: pd.DataFrame) -> bool:
     return len(table) == len(frame) and np.array_equal(table["step"].to_numpy(), frame["step"].to_numpy())
 
 
-def behaviour_fit_stage(protocol, decisions, proba, model):
+def behaviour_fit_stage(protocol, decisions, proba, model, mapped=None):
     """The workflow's first half of :func:`behaviour_stage`: fit the usual-care model and write the records'
     probabilities, and the model's block of behaviour.json (``model``, a temporary file of the workflow read by
-    :func:`behaviour_diagnostics_stage`)."""
+    :func:`behaviour_diagnostics_stage`). ``mapped``: also write the probabilities' table there as the file the
+    later jobs memory-map (:func:`regimewise.io.write_mapped_table`)."""
     from regimewise.usual_care.fitting import fit_usual_care
 
     p = load_protocol(protocol).protocol
     frame = read_frame(decisions)
     fitted = fit_usual_care(frame, p)
-    _write_probabilities(proba, p, frame, fitted)
+    _write_probabilities(proba, p, frame, fitted, mapped)
     write_json(model, model_block(p, fitted))
 
 
@@ -207,7 +208,7 @@ def behaviour_diagnostics_stage(protocol, decisions, proba, model, diagnostics):
 
     p = load_protocol(protocol).protocol
     frame = read_frame(decisions)
-    table = read_parquet(proba, ["step", *proba_columns(p.action_labels)])  # not the text keys: 12M strings at 1M
+    table = read_frame(proba, ["step", *proba_columns(p.action_labels)])  # not the text keys: 12M strings at 1M
     if not same_rows(table, frame):
         raise UserInputError(f"{proba} does not hold the probabilities of these decisions; rerun the workflow")
     # rows in memory as the fit left them (the diagnostics' sums run over the array in its memory order)
