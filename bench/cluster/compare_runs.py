@@ -42,12 +42,15 @@ def sha256(path: Path) -> str:
 
 
 def artifacts(root: Path) -> dict[str, str]:
-    """SHA-256 of every file under the stage folders of a results folder, by path relative to it."""
+    """SHA-256 of every file under the stage folders of a results folder, by path relative to it; hidden files
+    (the memory-mapped copies of tables the later jobs read) are intermediates, not artifacts, as in the
+    manifest."""
     found = {}
     for folder in STAGE_FOLDERS:
         for path in sorted((root / folder).rglob("*")):
-            if path.is_file():
-                found[path.relative_to(root).as_posix()] = sha256(path)
+            relative = path.relative_to(root)
+            if path.is_file() and not any(part.startswith(".") for part in relative.parts):
+                found[relative.as_posix()] = sha256(path)
     return found
 
 
