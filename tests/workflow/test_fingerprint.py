@@ -120,7 +120,7 @@ def test_a_rule_is_fingerprinted_by_the_function_its_stages_table_names(copy):
     # benchmarks): an edit of that function must rerun the behaviour rule and nothing else
     path = copy / "workflow" / "stages.py"
     original = path.read_text(encoding="utf-8")
-    head = "def behaviour_fit_stage(protocol, decisions, proba, model):\n"
+    head = "def behaviour_fit_stage(protocol, decisions, proba, model, mapped=None):\n"
     assert original.count(head) == 1
     before = stage_code_hashes(copy)
     path.write_text(original.replace(head, head + "    pass  # edited by the fingerprint test\n"), encoding="utf-8")
