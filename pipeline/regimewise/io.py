@@ -139,10 +139,11 @@ def write_mapped_table(path: str | Path, table: pa.Table) -> None:
 
     A table that many workflow jobs read whole (the validated decisions) is decoded from Parquet in each of them:
     at 1M episodes x 12, about 2 s of CPU for the decompression and decoding plus the kernel's clearing of the
-    memory the decoded columns fill before pandas copies them (1 to 4 s more). Read from this file the columns
-    come straight from the page cache, the one copy pandas makes aside (bench/RESULTS.md). The file is about as
-    large as the table in memory (1.4 GB at 1M x 12 against 97 MB of Parquet): a workflow intermediate, never an
-    artifact.
+    memory the decoded columns fill (1 to 4 s more). Read from this file, a numeric column written as one chunk
+    (a table built from one DataFrame is) becomes a read-only view of the mapped file's pages in the page cache,
+    with nothing decoded, copied or cleared; the text columns are converted as from Parquet (bench/RESULTS.md).
+    The file is about as large as the table in memory (1.4 GB at 1M x 12 against 97 MB of Parquet): a workflow
+    intermediate, never an artifact.
     """
     with atomic_path(path) as tmp:
         with pa.OSFile(str(tmp), "wb") as sink, pa.ipc.new_file(sink, table.schema) as writer:
@@ -195,7 +196,10 @@ def _mapped_table(path: str | Path) -> pa.Table:
 def read_frame(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
     """:func:`read_parquet` of a Parquet file, or the same DataFrame from a file of :func:`write_mapped_table`
     (its suffix :data:`MAPPED_SUFFIX`): memory-mapped, only ``columns`` (all if None) converted, column by
-    column, as :func:`read_parquet` converts them."""
+    column, as :func:`read_parquet` converts them. Its numeric columns may be read-only views of the file: no
+    stage writes into the frame it read (the suite and the scale runs read these views), and a new one must copy
+    what it changes.
+    """
     if Path(path).suffix != MAPPED_SUFFIX:
         return read_parquet(path, columns)
     table = _mapped_table(path)

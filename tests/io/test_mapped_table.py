@@ -83,3 +83,11 @@ def test_a_float_matrix_reads_alike_from_the_mapped_table(tmp_path):
     )
     assert mapped.tobytes() == parquet.tobytes()
     assert mapped.strides == parquet.strides and mapped.flags["F_CONTIGUOUS"] == parquet.flags["F_CONTIGUOUS"]
+
+
+def test_numeric_columns_of_the_mapped_table_are_views_of_the_file(tmp_path):
+    # one chunk per column (a table built from one DataFrame): pandas gets the mapped pages, not a copy
+    write_parquet(tmp_path / "decisions.parquet", decisions_like(), mapped=tmp_path / ".decisions.arrow")
+    frame = read_frame(tmp_path / ".decisions.arrow")
+    assert not frame["reward"].to_numpy().flags.writeable
+    assert not frame["step"].to_numpy().flags.writeable
