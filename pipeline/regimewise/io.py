@@ -12,7 +12,8 @@ import json
 import math
 import os
 import tempfile
-from contextlib import contextmanager
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager, nullcontext
 from pathlib import Path
 
 import numpy as np
@@ -120,13 +121,17 @@ def write_parquet(
         table = table.replace_schema_metadata(
             {**(table.schema.metadata or {}), b"regimewise.caution": caution.encode()}
         )
-    with atomic_path(path) as tmp:
-        if temporary:
-            pq.write_table(table, tmp, compression="none", use_dictionary=False)
-        else:
-            pq.write_table(table, tmp, compression="zstd")
-    if mapped is not None:
-        write_mapped_table(mapped, table)
+    # the mapped copy is written on a second thread beside the Parquet file (Arrow releases the interpreter lock in
+    # both writers): the validate job, which writes the decisions' copy, runs alone at the start of a run
+    with ThreadPoolExecutor(max_workers=1) if mapped is not None else nullcontext() as pool:
+        copy = None if mapped is None else pool.submit(write_mapped_table, mapped, table)
+        with atomic_path(path) as tmp:
+            if temporary:
+                pq.write_table(table, tmp, compression="none", use_dictionary=False)
+            else:
+                pq.write_table(table, tmp, compression="zstd")
+        if copy is not None:
+            copy.result()  # its error, if any, is raised here
 
 
 # Suffix of the tables :func:`read_frame` memory-maps rather than decodes.

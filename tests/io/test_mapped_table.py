@@ -91,3 +91,12 @@ def test_numeric_columns_of_the_mapped_table_are_views_of_the_file(tmp_path):
     frame = read_frame(tmp_path / ".decisions.arrow")
     assert not frame["reward"].to_numpy().flags.writeable
     assert not frame["step"].to_numpy().flags.writeable
+
+
+def test_a_failed_copy_is_raised_and_leaves_no_partial_copy(tmp_path):
+    # the copy is written on a second thread beside the Parquet file: its error must reach the caller
+    (tmp_path / "copy").mkdir()
+    with pytest.raises(UserInputError, match="directory"):
+        write_parquet(tmp_path / "decisions.parquet", decisions_like(100), mapped=tmp_path / "copy")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["copy", "decisions.parquet"]
+    assert list((tmp_path / "copy").iterdir()) == []
