@@ -122,7 +122,8 @@ def write_parquet(
             {**(table.schema.metadata or {}), b"regimewise.caution": caution.encode()}
         )
     # the mapped copy is written on a second thread beside the Parquet file (Arrow releases the interpreter lock in
-    # both writers): the validate job, which writes the decisions' copy, runs alone at the start of a run
+    # both writers): the validate job, which writes the decisions' copy, runs alone at the start of a run and has
+    # the second core to itself; the behaviour job's copy of the probabilities is a few seconds of one more thread
     with ThreadPoolExecutor(max_workers=1) if mapped is not None else nullcontext() as pool:
         copy = None if mapped is None else pool.submit(write_mapped_table, mapped, table)
         with atomic_path(path) as tmp:
