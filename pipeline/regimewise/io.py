@@ -187,7 +187,13 @@ def read_parquet(path: str | Path, columns: list[str] | None = None) -> pd.DataF
     CPU instead of 6 to 9; the jobs that read it did not measurably gain (their later pandas work on the frame
     costs about what the reader saves, bench/RESULTS.md), but the whole table is never held twice.
     """
-    table = pq.read_table(path, columns=columns, use_threads=False, use_pandas_metadata=True)
+    return _to_frame(pq.read_table(path, columns=columns, use_threads=False, use_pandas_metadata=True))
+
+
+def _to_frame(table: pa.Table) -> pd.DataFrame:
+    """``table`` as pandas: on the calling thread, column by column (one block per column), each Arrow column let
+    go once converted. :func:`read_parquet` and :func:`read_frame` both convert this way, so a frame is the same
+    from either file."""
     return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
 
 
@@ -202,16 +208,14 @@ def _mapped_table(path: str | Path) -> pa.Table:
 def read_frame(path: str | Path, columns: list[str] | None = None) -> pd.DataFrame:
     """:func:`read_parquet` of a Parquet file, or the same DataFrame from a file of :func:`write_mapped_table`
     (its suffix :data:`MAPPED_SUFFIX`): memory-mapped, only ``columns`` (all if None) converted, column by
-    column, as :func:`read_parquet` converts them. Its numeric columns may be read-only views of the file: no
-    stage writes into the frame it read (the suite and the scale runs read these views), and a new one must copy
-    what it changes.
+    column, as :func:`read_parquet` converts them (:func:`_to_frame`). Its numeric columns may be read-only views
+    of the file: no stage writes into the frame it read (the suite and the scale runs read these views), and a new
+    one must copy what it changes.
     """
     if Path(path).suffix != MAPPED_SUFFIX:
         return read_parquet(path, columns)
     table = _mapped_table(path)
-    if columns is not None:
-        table = table.select(columns)
-    return table.to_pandas(split_blocks=True, self_destruct=True, use_threads=False)
+    return _to_frame(table if columns is None else table.select(columns))
 
 
 def read_float_matrix(path: str | Path, columns) -> np.ndarray:
